@@ -1,0 +1,126 @@
+"""The analysis contract and its result.
+
+An analysis is any callable ``data -> p-value`` or ``data -> result`` where the
+result has a ``pvalue`` and optionally ``estimate``, ``se``, ``ci_low``,
+``ci_high`` (attributes or mapping keys).  :func:`as_test_result` turns any of
+these into a :class:`TestResult`.
+
+Built-in analyses are :class:`Analysis` objects; those with a batch path
+implement :meth:`Analysis.batch`, which takes a
+:class:`~simpower.processes.base.Batch` and returns a dict of arrays
+(``pvalue`` required; ``estimate``, ``se``, ``ci_low``, ``ci_high`` optional),
+equal to applying the analysis replicate by replicate.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from .._validation import Choice, Real
+from ..components import Component
+
+FIELDS = ("pvalue", "estimate", "se", "ci_low", "ci_high")
+
+ALTERNATIVE = Choice(("two-sided", "greater", "less"))
+
+
+@dataclass
+class TestResult:
+    """Outcome of one analysis on one data set."""
+
+    pvalue: float
+    estimate: float = math.nan
+    se: float = math.nan
+    ci_low: float = math.nan
+    ci_high: float = math.nan
+    statistic: float = math.nan
+    df: float = math.nan
+    #: several hypotheses in one analysis (adjusted p-values), with their names
+    pvalues: np.ndarray | None = None
+    names: tuple[str, ...] = field(default_factory=tuple)
+
+    __test__ = False  # not a pytest class
+
+    def confidence_interval(self) -> tuple[float, float]:
+        return (self.ci_low, self.ci_high)
+
+
+def _num(x: Any) -> float:
+    if x is None:
+        return math.nan
+    try:
+        return float(x)
+    except (TypeError, ValueError):
+        return math.nan
+
+
+def as_test_result(obj: Any) -> TestResult:
+    """Coerce what an analysis returned into a :class:`TestResult`.
+
+    Accepts a number (the p-value), a mapping, or an object with attributes
+    (``pvalue`` or ``p_value``; scipy result objects qualify).  Raises
+    ``TypeError`` when no p-value can be found.
+    """
+    if isinstance(obj, TestResult):
+        return obj
+    if isinstance(obj, (numbers.Real, np.floating, np.integer)) and not isinstance(obj, bool):
+        return TestResult(pvalue=float(obj))
+    get = obj.get if isinstance(obj, dict) else (lambda k, d=None: getattr(obj, k, d))
+    p = get("pvalue", None)
+    if p is None:
+        p = get("p_value", None)
+    if p is None:
+        raise TypeError(
+            f"the analysis returned {type(obj).__name__}; return a p-value, or a dict/object with 'pvalue'"
+        )
+    ci = get("ci", None)
+    lo, hi = (ci if ci is not None else (get("ci_low", None), get("ci_high", None)))
+    pvals = get("pvalues", None)
+    return TestResult(
+        pvalue=_num(p),
+        estimate=_num(get("estimate", None)),
+        se=_num(get("se", None)),
+        ci_low=_num(lo),
+        ci_high=_num(hi),
+        statistic=_num(get("statistic", None)),
+        df=_num(get("df", None)),
+        pvalues=None if pvals is None else np.asarray(pvals, dtype=float),
+        names=tuple(get("names", None) or ()),
+    )
+
+
+class Analysis(Component):
+    """Base class of built-in analyses."""
+
+    kind = "analysis"
+    #: one sentence stating the null hypothesis, shown in reports
+    null_hypothesis: str = ""
+
+    def __call__(self, data) -> TestResult:  # pragma: no cover - abstract
+        raise NotImplementedError
+
+    def batch(self, batch) -> dict[str, np.ndarray] | None:
+        """Statistics for all replicates of a batch, or None if there is no batch path."""
+        return None
+
+    @property
+    def has_batch(self) -> bool:
+        return type(self).batch is not Analysis.batch
+
+    def supports_batch(self, batch) -> bool:
+        """Whether :meth:`batch` can handle this particular batch (layout checks)."""
+        return self.has_batch
+
+    def analytic_power(self, process, alpha: float) -> float | None:
+        """Closed-form power of this analysis for ``process``, where the analytic core covers it."""
+        return None
+
+
+#: shared parameter declarations
+ALPHA = Real(0.0, 1.0, low_open=True, high_open=True)
+CI_LEVEL = Real(0.0, 1.0, low_open=True, high_open=True)

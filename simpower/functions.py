@@ -1,0 +1,167 @@
+"""Wrappers that give user callables the component contract.
+
+A user process ``f(rng, **params)`` or analysis ``g(data, **params)`` is wrapped
+so it has parameters (for sweeps), a spec (for the fingerprint and reports), and
+pickles by *reference* when it came from ``module:function`` or
+``path/file.py:function``, so worker processes re-import it rather than rely on
+pickling code.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import inspect
+from pathlib import Path
+from typing import Any, Callable
+
+from .analyses.base import Analysis, as_test_result
+from .errors import ParameterError, nearest
+from .processes.base import Process
+
+
+def _source_hash(fn: Callable) -> str:
+    try:
+        src = inspect.getsource(fn)
+    except (OSError, TypeError):
+        return ""
+    return hashlib.sha256(src.encode()).hexdigest()[:12]
+
+
+class _FunctionMixin:
+    def _init_function(self, fn, params, ref, base_dir):
+        object.__setattr__(self, "_fn", fn)
+        object.__setattr__(self, "_ref", ref)
+        object.__setattr__(self, "_base_dir", None if base_dir is None else str(base_dir))
+        object.__setattr__(self, "_p", dict(params or {}))
+        self._check_signature()
+
+    def _check_signature(self):
+        try:
+            sig = inspect.signature(self._fn)
+        except (TypeError, ValueError):
+            return
+        ps = list(sig.parameters.values())
+        if any(p.kind is p.VAR_KEYWORD for p in ps):
+            return
+        accepted = {p.name for p in ps[1:] if p.kind in (p.POSITIONAL_OR_KEYWORD, p.KEYWORD_ONLY)}
+        for key in self._p:
+            if key not in accepted:
+                raise ParameterError(
+                    f"`{key}` is not a parameter of {self.label}.{nearest(key, accepted)}"
+                )
+
+    @property
+    def label(self) -> str:
+        return self._ref or f"{getattr(self._fn, '__module__', '?')}:{getattr(self._fn, '__qualname__', '?')}"
+
+    def get_params(self, deep: bool = True):
+        return dict(self._p)
+
+    def replace(self, **changes):
+        unknown = [k for k in changes if k not in self._p]
+        if unknown:
+            raise ParameterError(
+                f"`{unknown[0]}` is not a parameter of {self.label}.{nearest(unknown[0], self._p)}"
+            )
+        return type(self)(self._fn, {**self._p, **changes}, ref=self._ref, base_dir=self._base_dir)
+
+    def spec(self):
+        from .components import to_plain
+
+        out = {"type": self.label, **{k: to_plain(v) for k, v in self._p.items()}}
+        out["_source"] = _source_hash(self._fn)
+        return out
+
+    def describe(self) -> str:
+        ps = ", ".join(f"{k} = {v}" for k, v in self._p.items())
+        return f"user {self.kind} {self.label}" + (f" ({ps})" if ps else "")
+
+    def __repr__(self):
+        return f"{type(self).__name__}({self.label!r}, {self._p!r})"
+
+    def __getstate__(self):
+        state = {"_p": self._p, "_ref": self._ref, "_base_dir": self._base_dir}
+        if self._ref is None:
+            state["_fn"] = self._fn
+        return state
+
+    def __setstate__(self, state):
+        object.__setattr__(self, "_p", state["_p"])
+        object.__setattr__(self, "_ref", state["_ref"])
+        object.__setattr__(self, "_base_dir", state["_base_dir"])
+        fn = state.get("_fn")
+        if fn is None:
+            from .registry import resolve_reference
+
+            fn = resolve_reference(state["_ref"], state["_base_dir"])
+        object.__setattr__(self, "_fn", fn)
+
+
+class FunctionProcess(_FunctionMixin, Process):
+    """A user function ``f(rng, **params) -> data`` as a process."""
+
+    def __init__(self, fn: Callable, params: dict[str, Any] | None = None, ref: str | None = None,
+                 base_dir: str | Path | None = None, effect_param: str | None = None,
+                 size_param: str | None = None):
+        self._init_function(fn, params, ref, base_dir)
+        object.__setattr__(self, "effect_param", effect_param if effect_param in self._p else
+                           ("effect" if "effect" in self._p else None))
+        object.__setattr__(self, "size_param", size_param if size_param in self._p else
+                           ("n" if "n" in self._p else None))
+
+    def __call__(self, rng):
+        return self._fn(rng, **self._p)
+
+    def __getstate__(self):
+        s = super().__getstate__()
+        s["effect_param"], s["size_param"] = self.effect_param, self.size_param
+        return s
+
+    def __setstate__(self, state):
+        super().__setstate__(state)
+        object.__setattr__(self, "effect_param", state.get("effect_param"))
+        object.__setattr__(self, "size_param", state.get("size_param"))
+
+    def replace(self, **changes):
+        new = super().replace(**changes)
+        object.__setattr__(new, "effect_param", self.effect_param)
+        object.__setattr__(new, "size_param", self.size_param)
+        return new
+
+
+class FunctionAnalysis(_FunctionMixin, Analysis):
+    """A user function ``g(data, **params) -> p-value | result`` as an analysis."""
+
+    def __init__(self, fn: Callable, params: dict[str, Any] | None = None, ref: str | None = None,
+                 base_dir: str | Path | None = None):
+        self._init_function(fn, params, ref, base_dir)
+
+    def __call__(self, data):
+        return as_test_result(self._fn(data, **self._p))
+
+
+def wrap_callable(kind: str, fn: Callable, params: dict[str, Any] | None = None, ref: str | None = None,
+                  base_dir: str | Path | None = None):
+    if kind == "process":
+        return FunctionProcess(fn, params, ref=ref, base_dir=base_dir)
+    if kind == "analysis":
+        return FunctionAnalysis(fn, params, ref=ref, base_dir=base_dir)
+    raise ParameterError(f"a user function cannot serve as a {kind}; give a built-in {kind} name.")
+
+
+def as_process(obj, params: dict[str, Any] | None = None) -> Process:
+    if isinstance(obj, Process):
+        if params:
+            return obj.replace(**params)
+        return obj
+    if callable(obj):
+        return FunctionProcess(obj, params)
+    raise ParameterError(f"`process` must be a Process or a callable (rng, **params) -> data; got {obj!r}.")
+
+
+def as_analysis(obj) -> Analysis:
+    if isinstance(obj, Analysis):
+        return obj
+    if callable(obj):
+        return FunctionAnalysis(obj)
+    raise ParameterError(f"`analysis` must be an Analysis or a callable data -> p-value; got {obj!r}.")

@@ -1,0 +1,106 @@
+"""The data-generating process contract.
+
+A process is any callable ``(rng, **params) -> data`` where ``data`` is a long
+table: a dict of equal-length 1-D arrays (or a pandas DataFrame).  Built-in
+processes are :class:`Process` objects holding their parameters; calling one
+with an ``rng`` draws one replicate.
+
+A process may also draw a whole chunk of replicates at once
+(:meth:`Process.draw_batch`), returning a :class:`Batch`; the engine then hands
+the batch to analyses that have a batch path, and per-replicate slices
+(:meth:`Batch.replicate`) to those that do not, so every analysis sees the same
+simulated data sets (common random numbers).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from ..components import Component
+
+
+@dataclass
+class Batch:
+    """``size`` replicates as arrays.
+
+    ``per_rep`` arrays have a leading replicate axis of length ``size``;
+    ``shared`` arrays are the same in every replicate (the design: arm
+    labels, cluster ids...).  ``info`` carries scalars an analysis may need.
+    Rows where ``per_rep['present']`` is False (padding for variable sizes)
+    are dropped from per-replicate slices.
+    """
+
+    size: int
+    per_rep: dict[str, np.ndarray]
+    shared: dict[str, np.ndarray] = field(default_factory=dict)
+    info: dict[str, Any] = field(default_factory=dict)
+
+    def replicate(self, i: int) -> dict[str, np.ndarray]:
+        """Replicate ``i`` as a long table (dict of equal-length 1-D arrays)."""
+        row = {**self.shared, **{k: v[i] for k, v in self.per_rep.items()}}
+        present = row.pop("present", None)
+        if present is not None:
+            row = {k: v[present] for k, v in row.items()}
+        return row
+
+    def __getitem__(self, key: str) -> np.ndarray:
+        if key in self.per_rep:
+            return self.per_rep[key]
+        return self.shared[key]
+
+    def __contains__(self, key: str) -> bool:
+        return key in self.per_rep or key in self.shared
+
+
+class Process(Component):
+    """Base class of built-in data-generating processes."""
+
+    kind = "process"
+
+    #: name of the parameter that carries the effect (set to 0 for the null)
+    effect_param: str | None = "effect"
+    #: name of the sample-size parameter the required-n search varies
+    size_param: str | None = "n"
+
+    def __call__(self, rng: np.random.Generator) -> dict[str, np.ndarray]:
+        """Draw one replicate (a long table)."""
+        batch = self.draw_batch(rng, 1)
+        if batch is None:  # pragma: no cover - subclasses override one or the other
+            raise NotImplementedError(f"{type(self).__name__} draws neither one replicate nor a batch")
+        return batch.replicate(0)
+
+    def draw_batch(self, rng: np.random.Generator, size: int) -> Batch | None:
+        """Draw ``size`` replicates at once, or return None if there is no batch path."""
+        return None
+
+    @property
+    def has_batch(self) -> bool:
+        return type(self).draw_batch is not Process.draw_batch
+
+    def true_effect(self) -> float | None:
+        """The estimand the analyses estimate (for bias and coverage), if known."""
+        v = self._p.get(self.effect_param) if self.effect_param else None
+        return float(v) if v is not None else None
+
+    def null(self) -> "Process":
+        """The same process with no effect (everything else kept)."""
+        if not self.effect_param:
+            from ..errors import ParameterError
+
+            raise ParameterError(f"{self.name}: no effect parameter to set to zero; give the null scenario yourself.")
+        return self.replace(**{self.effect_param: self.null_value()})
+
+    def null_value(self) -> float:
+        return 0.0
+
+    def normal_case(self) -> dict[str, Any] | None:
+        """If the analytic core covers this process, the facts it needs; else None.
+
+        Keys: ``design`` ('one-sample' | 'paired' | 'two-sample'), ``effect``,
+        ``n`` (control arm / pairs / sample), ``ratio``, ``sd`` (or ``sd0`` and
+        ``sd1``).
+        """
+        return None

@@ -1,0 +1,144 @@
+"""Normal outcomes: one sample, paired measurements, two arms.
+
+These are the cases the analytic core covers exactly, so they anchor the
+engine's cross-check against closed-form power.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .._validation import Int, Real
+from ..errors import ParameterError
+from .base import Batch, Process
+
+POSITIVE = Real(0.0, low_open=True)
+
+
+class NormalOneSample(Process):
+    """``n`` draws from N(effect, sd^2); the analyses test a null mean of 0 by default.
+
+    Parameters
+    ----------
+    n : int >= 2
+    effect : float
+        True mean minus the null mean (0: give outcomes as differences from
+        the null value, or set the analysis's ``null_mean``).
+    sd : float > 0
+    """
+
+    name = "normal_one_sample"
+    params = {"n": Int(low=2), "effect": Real(), "sd": POSITIVE}
+    defaults = {"effect": 0.0, "sd": 1.0}
+
+    def draw_batch(self, rng, size):
+        y = rng.standard_normal((size, self.n))
+        y *= self.sd
+        y += self.effect
+        return Batch(size, {"y": y})
+
+    def describe(self):
+        return (f"one sample of n = {self.n} from a normal distribution with SD {self.sd:g} "
+                f"and mean {self.effect:g} (null mean 0)")
+
+    def normal_case(self):
+        return {"design": "one-sample", "effect": self.effect, "n": self.n, "sd": self.sd, "ratio": 1.0}
+
+
+class NormalPaired(Process):
+    """``n`` pairs (condition 0, condition 1), bivariate normal with correlation ``corr``.
+
+    Condition 1 has mean ``effect`` more than condition 0. The SD of the
+    within-pair difference is sqrt(sd0^2 + sd1^2 - 2 corr sd0 sd1).
+
+    The long table has columns ``y``, ``arm`` (0/1) and ``pair`` (0..n-1),
+    rows ordered by arm, then pair.
+    """
+
+    name = "normal_paired"
+    params = {"n": Int(low=2), "effect": Real(), "sd0": POSITIVE, "sd1": POSITIVE,
+              "corr": Real(-1.0, 1.0, low_open=True, high_open=True)}
+    defaults = {"effect": 0.0, "sd0": 1.0, "sd1": 1.0, "corr": 0.5}
+
+    @property
+    def sd_difference(self) -> float:
+        return float(np.sqrt(self.sd0**2 + self.sd1**2 - 2 * self.corr * self.sd0 * self.sd1))
+
+    def draw_batch(self, rng, size):
+        n = self.n
+        z = rng.standard_normal((size, 2, n))
+        y0 = self.sd0 * z[:, 0]
+        y1 = self.effect + self.sd1 * (self.corr * z[:, 0] + np.sqrt(1 - self.corr**2) * z[:, 1])
+        y = np.concatenate([y0, y1], axis=1)
+        arm = np.repeat(np.array([0, 1]), n)
+        pair = np.tile(np.arange(n), 2)
+        return Batch(size, {"y": y}, {"arm": arm, "pair": pair})
+
+    def describe(self):
+        return (f"{self.n} pairs, normal with SDs {self.sd0:g} and {self.sd1:g} and within-pair "
+                f"correlation {self.corr:g}; mean difference {self.effect:g} "
+                f"(SD of differences {self.sd_difference:.4g})")
+
+    def normal_case(self):
+        return {"design": "paired", "effect": self.effect, "n": self.n, "sd": self.sd_difference, "ratio": 1.0}
+
+
+class NormalTwoArm(Process):
+    """Two independent arms, normal outcomes, possibly unequal SDs and allocation.
+
+    Parameters
+    ----------
+    n : int >= 2
+        Size of the control arm (arm 0).
+    ratio : float > 0
+        Allocation ratio n_treatment / n_control; the treatment arm has
+        ``round(ratio * n)`` participants (at least 2).
+    effect : float
+        Mean of the treatment arm minus mean of the control arm.
+    sd : float > 0
+        SD in the control arm.
+    sd_ratio : float > 0
+        SD of the treatment arm divided by ``sd``.
+    mean0 : float
+        Control-arm mean.
+
+    The long table has columns ``y`` and ``arm`` (0 = control, 1 = treatment),
+    control rows first.
+    """
+
+    name = "normal_two_arm"
+    params = {"n": Int(low=2), "effect": Real(), "sd": POSITIVE, "sd_ratio": POSITIVE,
+              "ratio": POSITIVE, "mean0": Real()}
+    defaults = {"effect": 0.0, "sd": 1.0, "sd_ratio": 1.0, "ratio": 1.0, "mean0": 0.0}
+
+    def _check(self):
+        if self.n1 < 2:
+            raise ParameterError(f"`ratio` gives a treatment arm of {self.n1} (< 2) with n = {self.n}; raise n or ratio.")
+
+    @property
+    def n1(self) -> int:
+        return int(round(self.ratio * self.n))
+
+    @property
+    def sd1(self) -> float:
+        return self.sd * self.sd_ratio
+
+    def draw_batch(self, rng, size):
+        n0, n1 = self.n, self.n1
+        y = rng.standard_normal((size, n0 + n1))
+        y[:, :n0] *= self.sd
+        y[:, n0:] *= self.sd1
+        if self.mean0:
+            y[:, :n0] += self.mean0
+        y[:, n0:] += self.mean0 + self.effect
+        arm = np.repeat(np.array([0, 1], dtype=np.int8), [n0, n1])
+        return Batch(size, {"y": y}, {"arm": arm}, info={"n0": n0, "n1": n1})
+
+    def describe(self):
+        sds = f"SD {self.sd:g}" if self.sd_ratio == 1 else f"SDs {self.sd:g} (control) and {self.sd1:g} (treatment)"
+        return (f"two arms of {self.n} (control) and {self.n1} (treatment), normal outcomes with {sds}; "
+                f"treatment minus control mean difference {self.effect:g}")
+
+    def normal_case(self):
+        return {"design": "two-sample", "effect": self.effect, "n": self.n, "ratio": self.n1 / self.n,
+                "sd0": self.sd, "sd1": self.sd1, "sd": self.sd if self.sd_ratio == 1 else None}

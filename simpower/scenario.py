@@ -1,0 +1,174 @@
+"""A scenario: one data-generating process, one or more analyses, and alpha.
+
+Validated once at construction; a value that can be copied with changes
+(:meth:`Scenario.with_params`) for sweeps and searches, described in words for
+reports, and fingerprinted for the run store.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any, Mapping
+
+from ._validation import Real
+from .components import fingerprint, to_plain
+from .errors import ParameterError, nearest
+from .functions import as_analysis, as_process
+
+ALPHA = Real(0.0, 1.0, low_open=True, high_open=True)
+
+
+class Scenario:
+    """Process + analyses + alpha.
+
+    Parameters
+    ----------
+    process : Process or callable
+        A built-in process object, or a function ``f(rng, **params) -> data``.
+    analysis : Analysis or callable, optional
+        The planned analysis. Give ``analyses`` instead to compare several on
+        the same simulated data sets; the first one is the primary.
+    analyses : mapping of name -> analysis, or list of analyses
+    alpha : float in (0, 1)
+        Significance level; a replicate rejects when p <= alpha.
+    params : dict, optional
+        Parameters of a user process function.
+    true_effect : float, optional
+        The estimand, for bias and coverage, when the process cannot tell it.
+    name, description : str
+        Shown in reports.
+    """
+
+    def __init__(self, process, analysis=None, *, analyses=None, alpha: float = 0.05,
+                 params: Mapping[str, Any] | None = None, true_effect: float | None = None,
+                 name: str = "", description: str = ""):
+        self.process = as_process(process, dict(params) if params else None)
+        if analysis is not None and analyses is not None:
+            raise ParameterError("give `analysis` or `analyses`, not both.")
+        if analysis is None and analyses is None:
+            raise ParameterError("`analysis` is required: name the planned analysis.")
+        if analyses is None:
+            analyses = [analysis]
+        if isinstance(analyses, Mapping):
+            items = list(analyses.items())
+        else:
+            items = []
+            for a in analyses:
+                a = as_analysis(a)
+                label = getattr(a, "name", None) or getattr(a, "label", "analysis")
+                base, k = label, 2
+                while label in dict(items):
+                    label, k = f"{base}_{k}", k + 1
+                items.append((label, a))
+        if not items:
+            raise ParameterError("`analyses` is empty: give at least one analysis.")
+        self.analyses = {str(k): as_analysis(v) for k, v in items}
+        self.alpha = ALPHA.clean("alpha", alpha)
+        self._true_effect = None if true_effect is None else Real().clean("true_effect", true_effect)
+        self.name = name
+        self.description = description
+
+    # -- derived ---------------------------------------------------------
+    @property
+    def primary(self) -> str:
+        return next(iter(self.analyses))
+
+    @property
+    def true_effect(self) -> float | None:
+        if self._true_effect is not None:
+            return self._true_effect
+        try:
+            return self.process.true_effect()
+        except Exception:
+            return None
+
+    def analytic_power(self) -> dict[str, float | None]:
+        """Closed-form power of each analysis where the analytic core covers the case."""
+        out = {}
+        for name, a in self.analyses.items():
+            try:
+                v = a.analytic_power(self.process, self.alpha)
+            except Exception:
+                v = None
+            out[name] = None if v is None or not math.isfinite(float(v)) else float(v)
+        return out
+
+    # -- copies ------------------------------------------------------------
+    def get_params(self) -> dict[str, Any]:
+        """Sweepable parameters: process ones by bare name, ``alpha``, and ``<analysis>.<param>``."""
+        out = {k: v for k, v in self.process.get_params(deep=True).items()}
+        out["alpha"] = self.alpha
+        for name, a in self.analyses.items():
+            for k, v in a.get_params(deep=True).items():
+                out[f"{name}.{k}"] = v
+        return out
+
+    def with_params(self, **changes: Any) -> "Scenario":
+        """A copy with parameters changed.
+
+        Keys: a process parameter (``n``, ``effect``, ``outcome.cv``, also as
+        ``process.n``), ``alpha``, ``true_effect``, or ``<analysis>.<param>``
+        (``analysis.<param>`` reaches the primary analysis).
+        """
+        proc_changes: dict[str, Any] = {}
+        an_changes: dict[str, dict[str, Any]] = {}
+        alpha = self.alpha
+        true_effect = self._true_effect
+        proc_params = self.process.get_params(deep=True)
+        for key, value in changes.items():
+            if key == "alpha":
+                alpha = value
+                continue
+            if key == "true_effect":
+                true_effect = value
+                continue
+            head, _, rest = key.partition(".")
+            if head == "process" and rest:
+                proc_changes[rest] = value
+            elif head == "analysis" and rest:
+                an_changes.setdefault(self.primary, {})[rest] = value
+            elif head in self.analyses and rest:
+                an_changes.setdefault(head, {})[rest] = value
+            elif key in proc_params:
+                proc_changes[key] = value
+            else:
+                raise ParameterError(f"`{key}` is not a parameter of this scenario.{nearest(key, self.get_params())}")
+        new = object.__new__(Scenario)
+        new.process = self.process.replace(**proc_changes) if proc_changes else self.process
+        new.analyses = {n: (a.replace(**an_changes[n]) if n in an_changes else a) for n, a in self.analyses.items()}
+        new.alpha = ALPHA.clean("alpha", alpha)
+        new._true_effect = true_effect
+        new.name, new.description = self.name, self.description
+        return new
+
+    def null(self) -> "Scenario":
+        """The same scenario with the effect set to its null value (everything else kept)."""
+        new = self.with_params()
+        new.process = self.process.null()
+        if self._true_effect is not None:
+            new._true_effect = self.process.null().true_effect() if self.process.effect_param else 0.0
+        return new
+
+    # -- description -----------------------------------------------------
+    def spec(self) -> dict[str, Any]:
+        return {
+            "process": self.process.spec(),
+            "analyses": {n: a.spec() for n, a in self.analyses.items()},
+            "alpha": self.alpha,
+            "true_effect": to_plain(self._true_effect),
+        }
+
+    def fingerprint(self) -> str:
+        return fingerprint(self.spec())
+
+    def describe(self) -> list[str]:
+        lines = [f"Data: {self.process.describe()}."]
+        for n, a in self.analyses.items():
+            h0 = getattr(a, "null_hypothesis", "")
+            lines.append(f"Analysis `{n}`: {a.describe()}" + (f"; H0: {h0}." if h0 else "."))
+        lines.append(f"A replicate rejects H0 when its p-value is at most alpha = {self.alpha:g}.")
+        return lines
+
+    def __repr__(self):
+        an = ", ".join(f"{k}={v!r}" for k, v in self.analyses.items())
+        return f"Scenario(process={self.process!r}, analyses={{{an}}}, alpha={self.alpha:g})"
