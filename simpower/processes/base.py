@@ -104,3 +104,48 @@ class Process(Component):
         ``sd1``).
         """
         return None
+
+
+class Missingness(Component):
+    """Base class of missing-outcome mechanisms (MCAR, MAR, MNAR, ...), used as a nested component.
+
+    A process holding one (conventionally in its ``missing`` parameter) calls
+    :meth:`mask` after drawing complete outcomes, sets the masked outcomes to
+    NaN, and sets ``Batch.info["missing"] = True``.
+    """
+
+    kind = "missingness"
+
+    def mask(self, rng: np.random.Generator, y: np.ndarray, covariates: dict[str, np.ndarray]) -> np.ndarray:
+        """Boolean array shaped like ``y`` (True = outcome missing).
+
+        ``y`` holds the complete outcomes, shape ``(replicates, rows)`` (or
+        ``(rows,)``); ``covariates`` holds observed variables of the same shape
+        that a MAR mechanism may depend on (e.g. ``"baseline"``, ``"arm"``).
+        """
+        raise NotImplementedError
+
+    def describe(self) -> str:
+        return super().describe()
+
+
+class Outcome(Component):
+    """Base class of outcome distributions (normal, lognormal, gamma, ...), used as a nested component.
+
+    An outcome knows its population ``mean`` and ``sd`` and draws control-arm
+    values with :meth:`sample`; designs apply the effect (shift, ratio or
+    standardised d) and per-arm SDs around it.
+    """
+
+    kind = "outcome"
+
+    def sample(self, rng: np.random.Generator, size) -> np.ndarray:
+        raise NotImplementedError
+
+    @property
+    def mean(self) -> float:
+        raise NotImplementedError
+
+    @property
+    def sd(self) -> float:
+        raise NotImplementedError
