@@ -1,0 +1,1 @@
+"""The command line: ``simpower <command> ...``; one module per command (``cmd_*.py``)."""

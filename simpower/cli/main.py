@@ -1,0 +1,69 @@
+"""Entry point: finds the command modules and turns errors into one line and exit code 2.
+
+Each ``simpower/cli/cmd_<name>.py`` defines ``register(subparsers)`` adding
+its sub-command with ``set_defaults(func=...)``; ``func(args)`` returns the exit
+code. Adding a command means adding a module; nothing here changes.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import pkgutil
+import sys
+
+from .. import __version__
+from ..errors import SimpowerError
+
+EXIT_BAD_INPUT = 2
+EXIT_INTERRUPTED = 130
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="simpower",
+        description="Statistical power by Monte Carlo simulation: describe the data you expect and the "
+                    "analysis you plan; read power, type I error, bias and coverage with their Monte Carlo error.",
+    )
+    parser.add_argument("--version", action="version", version=f"simpower {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show the full traceback of an unexpected error")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    from . import __path__ as cli_path
+
+    for mod in sorted(pkgutil.iter_modules(cli_path), key=lambda m: m.name):
+        if mod.name.startswith("cmd_"):
+            importlib.import_module(f"{__package__}.{mod.name}").register(sub)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "func", None):
+        parser.print_help(sys.stderr)
+        return EXIT_BAD_INPUT
+    try:
+        return int(args.func(args) or 0)
+    except KeyboardInterrupt:
+        print("simpower: interrupted.", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except SimpowerError as exc:
+        from ..engine import RunInterrupted
+
+        print(f"simpower: error: {exc}", file=sys.stderr)
+        return EXIT_INTERRUPTED if isinstance(exc, RunInterrupted) else EXIT_BAD_INPUT
+    except (ValueError, TypeError, KeyError, OSError) as exc:
+        if args.debug:
+            raise
+        print(f"simpower: error: {type(exc).__name__}: {exc} (run with --debug for the traceback)", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except Exception as exc:  # an internal error: one line unless --debug
+        if args.debug:
+            raise
+        print(f"simpower: internal error: {type(exc).__name__}: {exc} (run with --debug for the traceback)",
+              file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
