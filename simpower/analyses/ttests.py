@@ -76,8 +76,15 @@ def _ci(est, se, crit):
 
 
 class _TBase(Analysis):
+    """Shared parts of the t-tests. Confidence intervals are two-sided at ``ci_level``
+    whatever the ``alternative``, so coverage is comparable across analyses."""
+
     params = {"alternative": ALTERNATIVE, "ci_level": CI_LEVEL, "null_mean": Real()}
     defaults = {"alternative": "two-sided", "ci_level": 0.95, "null_mean": 0.0}
+
+    def _two_sided_ci(self, est, se, df):
+        crit = float(stats.t.ppf(0.5 + self.ci_level / 2, df))
+        return est - crit * se, est + crit * se
 
     def _result(self, est, se, df):
         t = (est - self.null_mean) / se
@@ -111,10 +118,9 @@ class TTest(_TBase):
             df = y0.size + y1.size - 2
             sp2 = ((y0.size - 1) * y0.var(ddof=1) + (y1.size - 1) * y1.var(ddof=1)) / df
             se = math.sqrt(sp2 * (1 / y0.size + 1 / y1.size))
-        ci = r.confidence_interval(self.ci_level)
-        shift = self.null_mean if "arm" in data else 0.0
-        return TestResult(pvalue=float(r.pvalue), estimate=est, se=se, ci_low=float(ci.low) + shift,
-                          ci_high=float(ci.high) + shift, statistic=float(r.statistic), df=float(r.df))
+        lo, hi = self._two_sided_ci(est, se, float(r.df))
+        return TestResult(pvalue=float(r.pvalue), estimate=est, se=se, ci_low=lo, ci_high=hi,
+                          statistic=float(r.statistic), df=float(r.df))
 
     def supports_batch(self, batch):
         if "arm" not in batch:
@@ -159,9 +165,9 @@ class WelchT(_TBase):
         r = stats.ttest_ind(y1 - self.null_mean, y0, equal_var=False, alternative=self.alternative)
         est = float(y1.mean() - y0.mean())
         se = math.sqrt(y0.var(ddof=1) / y0.size + y1.var(ddof=1) / y1.size)
-        ci = r.confidence_interval(self.ci_level)
-        return TestResult(pvalue=float(r.pvalue), estimate=est, se=se, ci_low=float(ci.low) + self.null_mean,
-                          ci_high=float(ci.high) + self.null_mean, statistic=float(r.statistic), df=float(r.df))
+        lo, hi = self._two_sided_ci(est, se, float(r.df))
+        return TestResult(pvalue=float(r.pvalue), estimate=est, se=se, ci_low=lo, ci_high=hi,
+                          statistic=float(r.statistic), df=float(r.df))
 
     def supports_batch(self, batch):
         return _batch_arms(batch) is not None
@@ -212,10 +218,10 @@ class PairedT(_TBase):
     def __call__(self, data):
         d = self._differences(data)
         r = stats.ttest_1samp(d, self.null_mean, alternative=self.alternative)
-        ci = r.confidence_interval(self.ci_level)
-        return TestResult(pvalue=float(r.pvalue), estimate=float(d.mean()),
-                          se=float(d.std(ddof=1) / math.sqrt(d.size)), ci_low=float(ci.low),
-                          ci_high=float(ci.high), statistic=float(r.statistic), df=float(r.df))
+        est, se = float(d.mean()), float(d.std(ddof=1) / math.sqrt(d.size))
+        lo, hi = self._two_sided_ci(est, se, float(r.df))
+        return TestResult(pvalue=float(r.pvalue), estimate=est, se=se, ci_low=lo, ci_high=hi,
+                          statistic=float(r.statistic), df=float(r.df))
 
     def supports_batch(self, batch):
         if _batch_arms(batch) is None or "pair" not in batch.shared:
