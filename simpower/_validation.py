@@ -19,7 +19,11 @@ from .errors import ParameterError
 
 
 def _fmt(v: Any) -> str:
-    return repr(v) if isinstance(v, str) else f"{v}"
+    if isinstance(v, str):
+        return repr(v)
+    if isinstance(v, float):
+        return f"{v:g}"
+    return f"{v}"
 
 
 @dataclass(frozen=True)

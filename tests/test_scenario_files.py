@@ -1,0 +1,124 @@
+"""Scenario files: TOML loading, references to user code, one-line errors naming the field."""
+
+import textwrap
+
+import numpy as np
+import pytest
+
+import simpower as sp
+from simpower.errors import ScenarioFileError
+from simpower.scenario_files import load, loads, parse_assignment
+
+GOOD = """
+name = "demo"
+alpha = 0.05
+reps = 500
+seed = 42
+
+[process]
+type = "normal_two_arm"
+n = 20
+effect = 0.5
+
+[analyses.student]
+type = "t_test"
+
+[analyses.welch]
+type = "welch_t"
+alternative = "greater"
+"""
+
+
+def test_loads_builds_scenario_and_run_settings():
+    sf = loads(GOOD)
+    assert sf.run == {"reps": 500, "seed": 42}
+    assert list(sf.scenario.analyses) == ["student", "welch"]
+    assert sf.scenario.analyses["welch"].alternative == "greater"
+    assert sf.scenario.process == sp.NormalTwoArm(n=20, effect=0.5)
+    # the spec round-trips through the registry
+    spec = sf.scenario.process.spec()
+    from simpower.registry import build
+
+    assert build("process", spec) == sf.scenario.process
+
+
+def test_overrides_from_command_line():
+    sf = loads(GOOD, overrides={"reps": 100, "seed": None})
+    assert sf.run["reps"] == 100 and sf.run["seed"] == 42
+    assert parse_assignment("n=80") == ("n", 80)
+    assert parse_assignment("alternative=greater") == ("alternative", "greater")
+    assert parse_assignment("effect=0.25") == ("effect", 0.25)
+
+
+@pytest.mark.parametrize("text, pattern", [
+    ("[process\ntype='x'", r"TOML syntax error: .*line 1"),
+    (GOOD.replace("n = 20", "n = 0"), r"`process.n` must be an integer >= 2; got 0"),
+    (GOOD.replace("effect = 0.5", "efect = 0.5"), r"`process.efect` is not a parameter .*Did you mean 'effect'"),
+    (GOOD.replace('type = "t_test"', 'type = "t_tset"'), r"unknown analysis 't_tset'.*Did you mean 't_test'"),
+    (GOOD.replace('type = "normal_two_arm"', 'type = "normal_twoarm"'), r"Did you mean 'normal_two_arm'"),
+    (GOOD.replace("alpha = 0.05", "alpha = 1.5"), r"`alpha` must be in \(0, 1\); got 1.5"),
+    (GOOD.replace("alpha = 0.05", "alhpa = 0.05"), r"line 3.*unknown field `alhpa`.*Did you mean 'alpha'"),
+    (GOOD.replace("n = 20", "n = 20\nsd = -1"), r"`process.sd` must be > 0; got -1"),
+    (GOOD.replace("reps = 500", "reps = -3"), r"`reps` must be an integer >= 1"),
+    ("alpha = 0.05\n[analysis]\ntype='t_test'", r"\[process\] table is required"),
+])
+def test_bad_files_give_one_line_errors(text, pattern):
+    with pytest.raises(ScenarioFileError, match=pattern) as info:
+        loads(text, path="plan.toml")
+    assert "\n" not in str(info.value)
+    assert str(info.value).startswith("plan.toml")
+
+
+def test_missing_file():
+    with pytest.raises(ScenarioFileError, match="no such scenario file"):
+        load("does/not/exist.toml")
+
+
+def test_user_code_by_file_reference(tmp_path):
+    (tmp_path / "mycode.py").write_text(textwrap.dedent("""
+        import numpy as np
+        from scipy import stats
+
+        def draw(rng, n, shift):
+            return {"y": np.r_[rng.normal(size=n), rng.normal(shift, size=n)], "arm": np.repeat([0, 1], n)}
+
+        def analyse(data):
+            y, a = data["y"], data["arm"]
+            return stats.ttest_ind(y[a == 1], y[a == 0]).pvalue
+    """))
+    (tmp_path / "s.toml").write_text(textwrap.dedent("""
+        [process]
+        type = "mycode.py:draw"
+        n = 15
+        shift = 0.8
+        [analysis]
+        type = "mycode.py:analyse"
+    """))
+    sf = load(tmp_path / "s.toml")
+    r1 = sp.run(sf.scenario, reps=300, seed=5, n_jobs=1)
+    r2 = sp.run(sf.scenario, reps=300, seed=5, n_jobs=2, chunk_size=200)  # workers re-import by reference
+    assert np.array_equal(r1.pvalues, r2.pvalues)
+    assert r1.summaries[r1.primary]["n_failed"] == 0
+
+
+def test_bad_references(tmp_path):
+    (tmp_path / "m.py").write_text("def f(rng, n):\n    return {'y': rng.normal(size=n)}\n")
+    base = "[analysis]\ntype='t_test'\n[process]\n"
+    with pytest.raises(ScenarioFileError, match="has no attribute 'g'"):
+        loads(base + "type='m.py:g'\nn=3", path=tmp_path / "s.toml")
+    with pytest.raises(ScenarioFileError, match="not found"):
+        loads(base + "type='nope.py:f'\nn=3", path=tmp_path / "s.toml")
+    with pytest.raises(ScenarioFileError, match="`m` is not a parameter of m.py:f. Valid: n"):
+        loads(base + "type='m.py:f'\nm=3", path=tmp_path / "s.toml")
+    with pytest.raises(ScenarioFileError, match="cannot import module 'no_such_module_xyz'"):
+        loads(base + "type='no_such_module_xyz:f'", path=tmp_path / "s.toml")
+
+
+def test_bundled_scenarios_load():
+    from pathlib import Path
+
+    files = sorted((Path(__file__).parent.parent / "scenarios").glob("*.toml"))
+    assert files
+    for f in files:
+        sf = load(f)
+        assert sf.scenario.analyses
