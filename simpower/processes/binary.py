@@ -1,0 +1,164 @@
+"""Binary outcomes in two independent arms (risks, odds ratios, risk ratios, risk differences).
+
+The control arm has event risk ``p0``; the treatment arm's risk ``p1`` follows
+from exactly one effect parameter:
+
+* ``odds_ratio``: ``p1 / (1 - p1) = odds_ratio * p0 / (1 - p0)``;
+* ``risk_ratio``: ``p1 = risk_ratio * p0`` (must stay below 1);
+* ``risk_difference``: ``p1 = p0 + risk_difference`` (must stay in (0, 1)).
+
+The long table has columns ``y`` (0.0 / 1.0; NaN where a ``missing``
+mechanism hid the outcome), ``arm`` (0 control, 1 treatment, control rows
+first) and, with missingness, ``observed``.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from .._validation import Choice, Int, Real
+from ..components import Nested
+from ..errors import ParameterError
+from .base import Batch, Process
+
+POSITIVE = Real(0.0, low_open=True)
+EFFECTS = ("odds_ratio", "risk_ratio", "risk_difference")
+ESTIMANDS = ("risk_difference", "log_odds_ratio", "log_risk_ratio")
+
+
+def risk_from_effect(p0: float, *, odds_ratio=None, risk_ratio=None, risk_difference=None) -> float:
+    """Treatment-arm risk implied by a control risk and one effect measure."""
+    if odds_ratio is not None:
+        odds = odds_ratio * p0 / (1.0 - p0)
+        return odds / (1.0 + odds)
+    if risk_ratio is not None:
+        return risk_ratio * p0
+    return p0 + risk_difference
+
+
+class BinaryTwoArm(Process):
+    """Two independent arms with a binary outcome (1 = event).
+
+    Parameters
+    ----------
+    n : int >= 2
+        Size of the control arm (arm 0).
+    p0 : float in (0, 1)
+        Event risk in the control arm.
+    odds_ratio, risk_ratio, risk_difference : float
+        The treatment effect: give exactly one. ``odds_ratio`` and
+        ``risk_ratio`` must be > 0, and the implied treatment risk must lie in
+        (0, 1).
+    ratio : float > 0
+        Allocation ratio; the treatment arm has ``round(ratio * n)``
+        participants (at least 2).
+    estimand : {'risk_difference', 'log_odds_ratio', 'log_risk_ratio'}
+        What :meth:`true_effect` returns, for bias and coverage: match it to
+        the analysis's estimate (``two_proportions`` and ``chi_square``
+        estimate the risk difference, ``logistic`` and ``fisher_exact`` the
+        log odds ratio). Default 'risk_difference'.
+    missing : Missingness, optional
+        Missing-outcome mechanism; masked outcomes are NaN in ``y``.
+
+    Notes
+    -----
+    The null scenario (:meth:`null`) sets the given effect to its null value:
+    1 for an odds or risk ratio, 0 for a risk difference. :meth:`normal_case`
+    is None (the t/z analytic case does not apply); :meth:`binary_case` gives
+    the facts the two-proportion normal approximation needs.
+    """
+
+    name = "binary_two_arm"
+    params = {
+        "n": Int(low=2),
+        "p0": Real(0.0, 1.0, low_open=True, high_open=True),
+        "odds_ratio": Real(0.0, low_open=True, optional=True),
+        "risk_ratio": Real(0.0, low_open=True, optional=True),
+        "risk_difference": Real(-1.0, 1.0, low_open=True, high_open=True, optional=True),
+        "ratio": POSITIVE,
+        "estimand": Choice(ESTIMANDS),
+        "missing": Nested("missingness", optional=True),
+    }
+    defaults = {"odds_ratio": None, "risk_ratio": None, "risk_difference": None, "ratio": 1.0,
+                "estimand": "risk_difference", "missing": None}
+    size_param = "n"
+
+    def _check(self):
+        given = [k for k in EFFECTS if self._p[k] is not None]
+        if len(given) != 1:
+            got = "none" if not given else " and ".join(f"`{k}`" for k in given)
+            raise ParameterError(
+                f"`odds_ratio`, `risk_ratio`, `risk_difference`: give exactly one effect; got {got}."
+            )
+        p1 = self.p1
+        if not 0.0 < p1 < 1.0:
+            k = given[0]
+            raise ParameterError(
+                f"`{k}` = {self._p[k]:g} with p0 = {self.p0:g} gives a treatment risk of {p1:g}; "
+                f"it must be in (0, 1)."
+            )
+        if self.n1 < 2:
+            raise ParameterError(f"`ratio` gives a treatment arm of {self.n1} (< 2) with n = {self.n}; raise n or ratio.")
+
+    # -- derived ---------------------------------------------------------
+    @property
+    def effect_param(self) -> str:  # type: ignore[override]
+        """The effect parameter that was given (set to its null value by :meth:`null`)."""
+        return next(k for k in EFFECTS if self._p[k] is not None)
+
+    def null_value(self) -> float:
+        return 0.0 if self.effect_param == "risk_difference" else 1.0
+
+    @property
+    def n1(self) -> int:
+        return int(round(self.ratio * self.n))
+
+    @property
+    def p1(self) -> float:
+        return risk_from_effect(self.p0, odds_ratio=self._p["odds_ratio"], risk_ratio=self._p["risk_ratio"],
+                                risk_difference=self._p["risk_difference"])
+
+    def true_effect(self) -> float:
+        p0, p1 = self.p0, self.p1
+        if self.estimand == "log_odds_ratio":
+            return math.log(p1 / (1 - p1)) - math.log(p0 / (1 - p0))
+        if self.estimand == "log_risk_ratio":
+            return math.log(p1 / p0)
+        return p1 - p0
+
+    def binary_case(self) -> dict | None:
+        """Facts for the two-proportion normal approximation, or None with missing outcomes.
+
+        Keys ``p0``, ``p1``, ``n`` (control arm) and ``ratio`` (realised
+        n1 / n0).
+        """
+        if self.missing is not None:
+            return None
+        return {"p0": self.p0, "p1": self.p1, "n": self.n, "ratio": self.n1 / self.n}
+
+    # -- drawing -----------------------------------------------------------
+    def draw_batch(self, rng, size):
+        n0, n1 = self.n, self.n1
+        u = rng.random((size, n0 + n1))
+        y = np.empty_like(u)
+        np.less(u[:, :n0], self.p0, out=y[:, :n0])
+        np.less(u[:, n0:], self.p1, out=y[:, n0:])
+        arm = np.repeat(np.array([0, 1], dtype=np.int8), [n0, n1])
+        per_rep = {"y": y}
+        info = {"n0": n0, "n1": n1}
+        if self.missing is not None:
+            arms = np.broadcast_to(arm, y.shape)
+            hide = np.asarray(self.missing.mask(rng, y, {"arm": arms}), bool)
+            y[hide] = np.nan
+            per_rep["observed"] = (~hide).astype(np.int8)
+            info["missing"] = True
+        return Batch(size, per_rep, {"arm": arm}, info=info)
+
+    def describe(self):
+        given = self.effect_param
+        miss = f"; missing outcomes: {self.missing.describe()}" if self.missing is not None else ""
+        return (f"two arms of {self.n} (control) and {self.n1} (treatment), binary outcome with event "
+                f"risks {self.p0:g} (control) and {self.p1:.4g} (treatment; {given} = {self._p[given]:g}), "
+                f"participants independent{miss}")
