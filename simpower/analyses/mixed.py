@@ -1,0 +1,512 @@
+"""The linear mixed model with a random intercept: statsmodels MixedLM per replicate, REML batches.
+
+Model: ``y_ij = x_ij' beta + b_j + e_ij`` with ``b_j ~ N(0, sigma_b^2)`` per
+group (cluster or subject) and ``e_ij ~ N(0, sigma_e^2)``, fitted by REML.
+The test is on one fixed-effect coefficient (by default the arm effect).
+
+Per replicate, :class:`MixedModel` calls ``statsmodels`` ``MixedLM`` and lets
+its warnings (``ConvergenceWarning`` and the like) through, so the engine
+records fit trouble per replicate.
+
+The batch path covers the two-arm random-intercept model ``y ~ C(arm)`` with
+groups = ``cluster`` (arms constant within clusters, or varying within them,
+any cluster sizes). With ``gamma = sigma_b^2 / sigma_e^2`` each group's
+covariance is ``sigma_e^2 (I + gamma J)``, whose inverse is
+``(I - c J) / sigma_e^2`` with ``c = gamma / (1 + m gamma)``; so the GLS
+estimate given ``gamma`` and the REML criterion with ``sigma_e^2`` profiled
+out need only per-cluster sums (size, arm count, sum of y, sum of arm * y).
+The one-dimensional criterion in the ICC ``gamma / (1 + gamma)`` is scanned
+on a grid and refined by bisection on its derivative, for all replicates at
+once; when the derivative at 0 is >= 0 the estimate is the boundary,
+``sigma_b^2 = 0``. Standard errors then follow statsmodels: the inverse of
+the observed Hessian of the profiled REML log-likelihood in (beta, gamma).
+The batch path also raises statsmodels' two fit-trouble flags (estimated
+cluster variance below 0.01, a Hessian that is not negative definite) as
+``warning:ConvergenceWarning`` so both paths count the same replicates.
+
+Degrees of freedom for the test (``df``):
+
+``"wald"``
+    normal reference distribution (statsmodels' own p-values);
+``"between-within"``
+    t with the between-within df: groups minus the number of fixed-effect
+    columns constant within groups for a between-group coefficient
+    (``clusters - 2`` in a cluster-randomised two-arm trial), else
+    observations minus groups minus the number of within-group columns
+    (Schluchter & Elashoff 1990; recommended for small cluster trials by
+    Li & Redden 2015, BMC Medical Research Methodology);
+``"satterthwaite"``
+    t with Satterthwaite's df for the model-based variance
+    ``[(X' V^-1 X)^-1]_kk`` and its SE, the variance-parameter covariance
+    taken from the expected REML information (Giesbrecht & Burns 1985,
+    Biometrics). In balanced cluster-randomised designs this SE equals the
+    statsmodels one and the df equal ``clusters - 2``.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+
+import numpy as np
+from scipy import stats
+
+from .._validation import Anything, Choice
+from ..errors import ParameterError
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
+
+DF_METHODS = ("wald", "between-within", "satterthwaite")
+
+#: statsmodels' threshold under which it warns that the estimate may be on the boundary
+BOUNDARY_VARIANCE = 0.01
+BOUNDARY_MESSAGE = "The MLE may be on the boundary of the parameter space."
+HESSIAN_MESSAGE = "The Hessian matrix at the estimated parameter values is not positive definite."
+
+#: formulas the batch path understands (after removing spaces)
+BATCH_FORMULAS = ("y~C(arm)", "y~arm", "y~1+C(arm)", "y~1+arm")
+
+#: grid over the ICC (gamma / (1 + gamma)) scanned before refinement; dense near 0
+GRID = 0.999 * np.linspace(0.0, 1.0, 33) ** 2
+BISECTIONS = 48
+
+
+class _Text(Anything):
+    """A non-empty string (``pattern``: a regular expression it must match)."""
+
+    def __init__(self, what: str, pattern: str = r".+", optional: bool = False):
+        object.__setattr__(self, "what", what)
+        object.__setattr__(self, "pattern", pattern)
+        object.__setattr__(self, "optional", optional)
+
+    def describe(self) -> str:
+        return self.what
+
+    def clean(self, name, value):
+        if value is None and self.optional:
+            return None
+        if not isinstance(value, str) or not re.fullmatch(self.pattern, value.strip(), re.S):
+            raise ParameterError(f"`{name}` must be {self.what}; got {value!r}.")
+        return value.strip()
+
+
+# ---------------------------------------------------------------------------
+# p-values and intervals
+# ---------------------------------------------------------------------------
+def _p_and_crit(stat, df, alternative, ci_level):
+    """p-value of ``stat`` and the CI multiplier, normal when ``df`` is None (arrays allowed)."""
+    dist = stats.norm if df is None else stats.t(df)
+    if alternative == "two-sided":
+        p = 2.0 * dist.sf(np.abs(stat))
+    elif alternative == "greater":
+        p = dist.sf(stat)
+    else:
+        p = dist.cdf(stat)
+    return p, dist.ppf(0.5 + ci_level / 2)
+
+
+# ---------------------------------------------------------------------------
+# Satterthwaite df of a random-intercept model from per-group sums (any X)
+# ---------------------------------------------------------------------------
+def satterthwaite(m, u, S, sb2, se2, k):
+    """Model-based variance of coefficient ``k`` and its Satterthwaite df.
+
+    Parameters
+    ----------
+    m : array (..., G)
+        Group sizes (0 for padding groups).
+    u : array (..., G, p)
+        ``X_j' 1`` per group.
+    S : array (..., G, p, p)
+        ``X_j' X_j`` per group.
+    sb2, se2 : array (...)
+        Between-group and residual variances.
+    k : int
+        Column of X under test.
+
+    Returns
+    -------
+    var, df : arrays (...)
+        ``[(X' V^-1 X)^-1]_kk`` and ``2 var^2 / (g' I^-1 g)`` with ``g`` the
+        gradient of ``var`` in (sigma_b^2, sigma_e^2) and ``I`` the expected
+        REML information (Giesbrecht & Burns 1985).
+    """
+    sb2 = np.asarray(sb2, float)[..., None]
+    se2 = np.asarray(se2, float)[..., None]
+    lam = se2 + m * sb2                      # eigenvalue of V_j along the ones vector
+    c = sb2 / lam / se2                      # V_j^-1 = I/se2 - c J
+    uu = u[..., :, None] * u[..., None, :]
+    W = lambda w: np.einsum("...g,...gij->...ij", w, uu)  # noqa: E731  sum_j w_j u_j u_j'
+    Ssum = S.sum(axis=-3)
+    A = Ssum / se2[..., None] - W(c)
+    # X'V^-1 D V^-1 X for D = J (b) and D = I (e)
+    Mb = W(1.0 / lam**2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        inv_m = np.where(m > 0, 1.0 / np.where(m > 0, m, 1.0), 0.0)
+    Me = Ssum / se2[..., None] ** 2 - W(inv_m * (1.0 / se2**2 - 1.0 / lam**2))
+    # X'V^-1 D_a V^-1 D_b V^-1 X
+    Nbb = W(m / lam**3)
+    Nbe = W(1.0 / lam**3)
+    Nee = Ssum / se2[..., None] ** 3 - W(inv_m * (1.0 / se2**3 - 1.0 / lam**3))
+    T = {("b", "b"): ((m / lam) ** 2).sum(-1),
+         ("b", "e"): (m / lam**2).sum(-1),
+         ("e", "e"): (np.where(m > 0, (m - 1) / se2**2 + 1.0 / lam**2, 0.0)).sum(-1)}
+    Ai = np.linalg.inv(A)
+    M = {"b": Mb, "e": Me}
+    Nm = {("b", "b"): Nbb, ("b", "e"): Nbe, ("e", "e"): Nee}
+    AM = {a: Ai @ M[a] for a in M}
+    info = np.empty(A.shape[:-2] + (2, 2))
+    for i, a in enumerate("be"):
+        for j, b in enumerate("be"):
+            key = (a, b) if (a, b) in T else (b, a)
+            tr2 = np.einsum("...ij,...ji->...", Ai, Nm[key])
+            tr3 = np.einsum("...ij,...ji->...", AM[a], AM[b])
+            info[..., i, j] = 0.5 * (T[key] - 2.0 * tr2 + tr3)
+    var = Ai[..., k, k]
+    grad = np.stack([(AM[a] @ Ai)[..., k, k] for a in "be"], axis=-1)
+    with np.errstate(all="ignore"):
+        cov = np.linalg.inv(info)
+        df = 2.0 * var**2 / np.einsum("...i,...ij,...j->...", grad, cov, grad)
+    return var, df
+
+
+def _group_sums(exog, groups):
+    """Per-group ``m``, ``X_j' 1`` and ``X_j' X_j`` of a design matrix."""
+    labels, g = np.unique(groups, return_inverse=True)
+    G, p = labels.size, exog.shape[1]
+    m = np.bincount(g, minlength=G).astype(float)
+    u = np.zeros((G, p))
+    np.add.at(u, g, exog)
+    S = np.zeros((G, p, p))
+    np.add.at(S, g, exog[:, :, None] * exog[:, None, :])
+    return m, u, S, g
+
+
+def between_within_df(exog, groups, k):
+    """Between-within df for column ``k`` of ``exog`` (Schluchter & Elashoff 1990)."""
+    _, g = np.unique(groups, return_inverse=True)
+    G = g.max() + 1
+    between = []
+    for j in range(exog.shape[1]):
+        col = exog[:, j]
+        lo = np.full(G, np.inf)
+        hi = np.full(G, -np.inf)
+        np.minimum.at(lo, g, col)
+        np.maximum.at(hi, g, col)
+        between.append(bool(np.all(hi - lo <= 1e-12 * max(1.0, float(np.abs(col).max())))))
+    n_between = sum(between)
+    if between[k]:
+        return float(G - n_between)
+    return float(exog.shape[0] - G - (exog.shape[1] - n_between))
+
+
+# ---------------------------------------------------------------------------
+# the batched REML solver for y ~ arm, random intercept by cluster
+# ---------------------------------------------------------------------------
+class _Sums:
+    """Per-cluster sums of a batch, shape (R, G); y centred per replicate."""
+
+    def __init__(self, m, a, s, sa, yy, shift, n_obs, n_groups, arm_within):
+        self.m, self.a, self.s, self.sa, self.yy = m, a, s, sa, yy
+        self.shift, self.n_obs, self.n_groups, self.arm_within = shift, n_obs, n_groups, arm_within
+        self.fac = n_obs - 2.0               # REML: N - p
+
+
+def _profile(g, st: _Sums, derivative: bool = True):
+    """Profiled REML criterion ``-2 l`` (up to a constant), its d/dgamma, and the GLS fit.
+
+    ``g`` has shape (R,) or (R, K) (K trial values per replicate).
+    """
+    extra = g.ndim == 2
+    m, a, s, sa = (x[:, None, :] if extra else x for x in (st.m, st.a, st.s, st.sa))
+    gg = g[..., None]
+    h = 1.0 / (1.0 + m * gg)
+    c = gg * h
+    A00 = (m - c * m * m).sum(-1)
+    A01 = (a - c * m * a).sum(-1)
+    A11 = (a - c * a * a).sum(-1)
+    w0 = (s - c * m * s).sum(-1)
+    w1 = (sa - c * a * s).sum(-1)
+    det = A00 * A11 - A01 * A01
+    b0 = (A11 * w0 - A01 * w1) / det
+    b1 = (A00 * w1 - A01 * w0) / det
+    yy = st.yy[:, None] if extra else st.yy
+    fac = st.fac[:, None] if extra else st.fac
+    Q = yy - (c * s * s).sum(-1) - (b0 * w0 + b1 * w1)
+    f = fac * np.log(Q) + np.log1p(m * gg).sum(-1) + np.log(det)
+    if not derivative:
+        return f, None, (b0, b1, Q, det, A00, A01, A11)
+    e = s - m * b0[..., None] - a * b1[..., None]
+    h2 = h * h
+    # tr(A^-1 A') with A' = -sum h^2 u u'
+    D00, D01, D11 = (h2 * m * m).sum(-1), (h2 * m * a).sum(-1), (h2 * a * a).sum(-1)
+    tr = (A11 * D00 - 2 * A01 * D01 + A00 * D11) / det
+    df = -fac * (h2 * e * e).sum(-1) / Q + (m * h).sum(-1) - tr
+    return f, df, (b0, b1, Q, det, A00, A01, A11)
+
+
+def _solve_gamma(st: _Sums):
+    """REML estimate of gamma per replicate: grid scan, then bisection on the derivative."""
+    R = st.m.shape[0]
+    rho = np.broadcast_to(GRID, (R, GRID.size))
+    with np.errstate(all="ignore"):
+        f, _, _ = _profile(rho / (1.0 - rho), st, derivative=False)
+    f = np.where(np.isfinite(f), f, np.inf)
+    k = np.argmin(f, axis=1)
+    lo = GRID[np.maximum(k - 1, 0)]
+    hi = GRID[np.minimum(k + 1, GRID.size - 1)]
+    with np.errstate(all="ignore"):
+        _, d0, _ = _profile(np.zeros(R), st)
+    boundary = (k == 0) & (d0 >= 0)
+    lo = np.where(k == 0, 0.0, lo)
+    for _ in range(BISECTIONS):
+        mid = 0.5 * (lo + hi)
+        with np.errstate(all="ignore"):
+            _, d, _ = _profile(mid / (1.0 - mid), st)
+        up = d > 0
+        hi = np.where(up, mid, hi)
+        lo = np.where(up, lo, mid)
+    rho_hat = np.where(boundary, 0.0, 0.5 * (lo + hi))
+    return rho_hat / (1.0 - rho_hat)
+
+
+def _observed_cov(g, st: _Sums, fit):
+    """Inverse of minus statsmodels' Hessian of the profiled REML log-likelihood in (b0, b1, gamma)."""
+    b0, b1, Q, det, A00, A01, A11 = fit
+    m, a, s = st.m, st.a, st.s
+    gg = g[:, None]
+    h = 1.0 / (1.0 + m * gg)
+    c1 = h * h                                # dc/dgamma
+    c2 = -2.0 * m * h**3                      # d2c/dgamma2
+    e = s - m * b0[:, None] - a * b1[:, None]
+    fac = st.fac
+    H = np.empty((g.size, 3, 3))
+    H[:, 0, 0] = -fac * A00 / Q
+    H[:, 0, 1] = H[:, 1, 0] = -fac * A01 / Q
+    H[:, 1, 1] = -fac * A11 / Q
+    H[:, 0, 2] = H[:, 2, 0] = -fac * (c1 * e * m).sum(-1) / Q
+    H[:, 1, 2] = H[:, 2, 1] = -fac * (c1 * e * a).sum(-1) / Q
+    qg = (c1 * e * e).sum(-1)
+    # A^-1, A' = -sum c1 uu', A'' = -sum c2 uu'
+    Ai = np.stack([np.stack([A11, -A01], -1), np.stack([-A01, A00], -1)], -2) / det[:, None, None]
+
+    def usum(w):
+        out = np.empty((g.size, 2, 2))
+        out[:, 0, 0] = (w * m * m).sum(-1)
+        out[:, 0, 1] = out[:, 1, 0] = (w * m * a).sum(-1)
+        out[:, 1, 1] = (w * a * a).sum(-1)
+        return out
+
+    A1 = -usum(c1)
+    A2 = -usum(c2)
+    AiA1 = Ai @ A1
+    tr_ld2 = np.einsum("rii->r", Ai @ A2) - np.einsum("rij,rji->r", AiA1, AiA1)
+    H[:, 2, 2] = (0.5 * fac * ((c2 * e * e).sum(-1) / Q + qg**2 / Q**2)
+                  + 0.5 * (m * m * h * h).sum(-1) - 0.5 * tr_ld2)
+    with np.errstate(all="ignore"):
+        ok = np.all(np.isfinite(H), axis=(1, 2))
+        H[~ok] = np.eye(3)
+        cov = np.linalg.inv(-H)
+        cov[~ok] = np.nan
+    not_pd = np.any(np.diagonal(H, axis1=1, axis2=2) >= 0, axis=1) & ok
+    return cov, not_pd
+
+
+def _ids(col, R):
+    """Integer codes 0..G-1 of cluster ids, shape (N,) or (R, N), and G."""
+    col = np.asarray(col)
+    if np.issubdtype(col.dtype, np.integer) and col.size and col.min() >= 0 and col.max() < 64 * col.shape[-1]:
+        return col.astype(np.intp), int(col.max()) + 1
+    labels, inv = np.unique(col, return_inverse=True)
+    return inv.reshape(col.shape), labels.size
+
+
+def batch_sums(batch) -> _Sums:
+    """Per-cluster sums of a Batch with columns ``y``, ``arm``, ``cluster`` (and optional ``present``)."""
+    y = np.asarray(batch.per_rep["y"], float)
+    R, N = y.shape
+    ok = np.isfinite(y)
+    if "present" in batch.per_rep:
+        ok &= np.asarray(batch.per_rep["present"], bool)
+    arm = np.broadcast_to(np.asarray(batch["arm"]), (R, N)).astype(float)
+    ids, G = _ids(batch["cluster"], R)
+    w = ok.astype(float)
+    y0 = np.where(ok, y, 0.0)
+    n_obs = w.sum(1)
+    with np.errstate(all="ignore"):
+        shift = y0.sum(1) / n_obs
+    yc = np.where(ok, y - shift[:, None], 0.0)
+    aw = arm * w
+    if ids.ndim == 1:
+        onehot = np.zeros((N, G))
+        onehot[np.arange(N), ids] = 1.0
+        m, a, s, sa = w @ onehot, aw @ onehot, yc @ onehot, (aw * yc) @ onehot
+    else:
+        flat = (ids + G * np.arange(R)[:, None]).ravel()
+        bc = lambda v: np.bincount(flat, v.ravel(), R * G).reshape(R, G)  # noqa: E731
+        m, a, s, sa = bc(w), bc(aw), bc(yc), bc(aw * yc)
+    present_groups = m > 0
+    n_groups = present_groups.sum(1).astype(float)
+    # arm constant within every cluster <=> each cluster's arm count is 0 or its size
+    within = np.any(present_groups & (a > 0.5) & (a < m - 0.5), axis=1)
+    yy = (yc * yc).sum(1)
+    return _Sums(m, a, s, sa, yy, shift, n_obs, n_groups, within)
+
+
+def fit_batch(batch):
+    """Batched REML fit: dict of arrays (R,) ``b0, b1, se, gamma, sigma_b2, sigma_e2, ...``."""
+    st = batch_sums(batch)
+    g = _solve_gamma(st)
+    with np.errstate(all="ignore"):
+        _, _, fit = _profile(g, st, derivative=False)
+        b0, b1, Q, det = fit[:4]
+        scale = Q / st.fac
+        cov, not_pd = _observed_cov(g, st, fit)
+    return {"b0": b0 + st.shift, "b1": b1, "se": np.sqrt(cov[:, 1, 1]), "gamma": g, "sigma_b2": g * scale,
+            "sigma_e2": scale, "sums": st, "not_pd": not_pd}
+
+
+# ---------------------------------------------------------------------------
+# the analysis
+# ---------------------------------------------------------------------------
+class MixedModel(Analysis):
+    """Linear mixed model with a random intercept per group, fitted by REML (statsmodels MixedLM).
+
+    H0: the fixed-effect coefficient ``term`` (by default the arm effect,
+    arm 1 minus arm 0) is 0, against ``alternative``.
+
+    Parameters
+    ----------
+    formula : str
+        Fixed-effects formula (patsy), default ``"y ~ C(arm)"``; e.g.
+        ``"y ~ C(arm) * C(visit)"`` for repeated measures.
+    groups : str
+        Column holding the random-intercept groups: ``"cluster"`` (default)
+        or ``"subject"`` for repeated measures.
+    term : str, optional
+        Coefficient to test; default ``"C(arm)[T.1]"`` or ``"arm"``,
+        whichever the formula produces.
+    df : {'wald', 'between-within', 'satterthwaite'}
+        Reference distribution of the test (see the module notes).
+    alternative : {'two-sided', 'greater', 'less'}
+    ci_level : float in (0, 1)
+
+    Notes
+    -----
+    Rows with a missing outcome are dropped (complete cases). The batch path
+    applies to ``y ~ C(arm)`` (or ``y ~ arm``) with ``groups = "cluster"`` and
+    arm coded 0/1; other formulas are fitted replicate by replicate.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from simpower.analyses.mixed import MixedModel
+    >>> rng = np.random.default_rng(1)
+    >>> cluster = np.repeat(np.arange(12), 10)
+    >>> arm = (cluster >= 6).astype(int)
+    >>> y = 0.8 * arm + rng.normal(0, 0.5, 12)[cluster] + rng.normal(0, 1, 120)
+    >>> res = MixedModel(df="between-within")({"y": y, "arm": arm, "cluster": cluster})
+    >>> res.df   # 12 clusters - 2
+    10.0
+    """
+
+    name = "mixed_model"
+    null_hypothesis = "the fixed-effect coefficient under test (the arm effect) is 0"
+    params = {"formula": _Text("a formula like 'y ~ C(arm)'", r"[^~]+~.+"),
+              "groups": _Text("a column name like 'cluster' or 'subject'", r"\w+"),
+              "term": _Text("a coefficient name like 'C(arm)[T.1]'", optional=True),
+              "df": Choice(DF_METHODS), "alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
+    defaults = {"formula": "y ~ C(arm)", "groups": "cluster", "term": None, "df": "wald",
+                "alternative": "two-sided", "ci_level": 0.95}
+
+    # -- per replicate -------------------------------------------------------
+    def _term_index(self, names):
+        if self.term is not None:
+            if self.term not in names:
+                from ..errors import nearest
+
+                raise ParameterError(f"`term` {self.term!r} is not a coefficient of the model.{nearest(self.term, names)}")
+            return names.index(self.term)
+        for cand in ("C(arm)[T.1]", "arm"):
+            if cand in names:
+                return names.index(cand)
+        raise ParameterError(f"`term` is needed: the formula has no arm coefficient; coefficients: {', '.join(names)}.")
+
+    def __call__(self, data):
+        import pandas as pd
+        import statsmodels.formula.api as smf
+
+        frame = pd.DataFrame({k: np.asarray(v) for k, v in dict(data).items()}) if not isinstance(data, pd.DataFrame) else data
+        if self.groups not in frame:
+            raise ValueError(f"mixed_model needs a {self.groups!r} column (the `groups` parameter)")
+        frame = frame[np.isfinite(frame["y"].to_numpy(float))]
+        model = smf.mixedlm(self.formula, frame, groups=frame[self.groups])
+        fit = model.fit(reml=True)
+        names = list(model.exog_names)
+        k = self._term_index(names)
+        est = float(fit.fe_params.iloc[k])
+        se = float(fit.bse_fe.iloc[k])
+        df = None
+        if self.df == "between-within":
+            df = between_within_df(model.exog, model.groups, k)
+        elif self.df == "satterthwaite":
+            m, u, S, _ = _group_sums(model.exog, model.groups)
+            var, df = satterthwaite(m, u, S, float(fit.cov_re.iloc[0, 0]), float(fit.scale), k)
+            se, df = float(np.sqrt(var)), float(df)
+        return self._result(np.asarray(est), np.asarray(se), df, scalar=True)
+
+    def _result(self, est, se, df, scalar=False):
+        with np.errstate(all="ignore"):
+            z = est / se
+            p, crit = _p_and_crit(z, df, self.alternative, self.ci_level)
+        out = {"pvalue": p, "estimate": est, "se": se, "ci_low": est - crit * se, "ci_high": est + crit * se}
+        if scalar:
+            return TestResult(**{k: float(v) for k, v in out.items()}, statistic=float(z),
+                              df=math.inf if df is None else float(df))
+        return out
+
+    # -- batch ---------------------------------------------------------------
+    def supports_batch(self, batch):
+        if self.formula.replace(" ", "") not in BATCH_FORMULAS or self.groups != "cluster":
+            return False
+        if self.term not in (None, "C(arm)[T.1]" if "C(" in self.formula else "arm"):
+            return False
+        if not all(c in batch for c in ("y", "arm", "cluster")) or "y" not in batch.per_rep:
+            return False
+        y = batch.per_rep["y"]
+        if y.ndim != 2 or y.shape[0] != batch.size:
+            return False
+        for col in ("arm", "cluster", "present"):
+            if col not in batch:
+                continue
+            v = np.asarray(batch[col])
+            if v.shape not in (y.shape, y.shape[1:]) or (col == "present" and v.shape != y.shape):
+                return False
+        arm = np.asarray(batch["arm"])
+        if not np.issubdtype(arm.dtype, np.number):
+            return False
+        if "present" in batch.per_rep:
+            arm = np.broadcast_to(arm, y.shape)[np.asarray(batch.per_rep["present"], bool)]
+        if not np.all((arm == 0) | (arm == 1)):
+            return False
+        cl = np.asarray(batch["cluster"])
+        return bool(np.issubdtype(cl.dtype, np.integer))
+
+    def batch(self, batch):
+        fit = fit_batch(batch)
+        st = fit["sums"]
+        est, se = fit["b1"], fit["se"]
+        df = None
+        if self.df == "between-within":
+            df = np.where(st.arm_within, st.n_obs - st.n_groups - 1.0, st.n_groups - 2.0)
+        elif self.df == "satterthwaite":
+            u = np.stack([st.m, st.a], -1)
+            S = np.empty(st.m.shape + (2, 2))
+            S[..., 0, 0], S[..., 0, 1], S[..., 1, 0], S[..., 1, 1] = st.m, st.a, st.a, st.a
+            with np.errstate(all="ignore"):
+                var, df = satterthwaite(st.m, u, S, fit["sigma_b2"], fit["sigma_e2"], 1)
+            se = np.sqrt(var)
+        out = self._result(est, se, df)
+        boundary = fit["sigma_b2"] < BOUNDARY_VARIANCE
+        out["trouble"] = {"warning:ConvergenceWarning": boundary | fit["not_pd"]}
+        out["trouble_messages"] = {"warning:ConvergenceWarning": BOUNDARY_MESSAGE}
+        return out
