@@ -469,3 +469,17 @@ def test_bad_input_gives_one_line_parameter_error(call, message):
     text = str(info.value)
     assert message in text and "\n" not in text
     assert isinstance(info.value, ValueError)
+
+
+def test_noncentral_t_fallback_agrees_with_scipy_where_scipy_is_finite():
+    # Reference: scipy.stats.nct.cdf. Our quadrature (used only where scipy returns NaN)
+    # must reproduce scipy on cells where scipy is finite, and the filled cells must obey
+    # 0 <= P(T <= x) <= Phi(-nc) for x <= 0 < nc.
+    from simpower.analytic._nct import _by_quadrature, nct_cdf
+
+    for df, nc, x in [(3.0, 2.0, -3.18), (0.7, 1.0, 0.5), (57.5, -1.2, 1.9), (900.0, 4.0, 2.5), (5.0, 0.0, -2.0)]:
+        assert _by_quadrature(df, nc, x) == pytest.approx(stats.nct.cdf(x, df, nc), rel=1e-8, abs=1e-14)
+    filled = nct_cdf(np.array([3.0, 3.0]), np.array([8.0, 2.0]), -3.18)
+    assert np.all(np.isfinite(filled))
+    assert 0.0 <= filled[0] <= stats.norm.cdf(-8.0)
+    assert filled[1] == pytest.approx(stats.nct.cdf(-3.18, 3.0, 2.0), rel=1e-12)

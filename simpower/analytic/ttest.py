@@ -68,10 +68,11 @@ class TFamily:
             fam = TFamily(g, per_n, self.lost, self.label)
             f = lambda m: fam.power(e, m, s, a, alternative)  # noqa: E731
             n_floor = (self.lost + 1.0) / per_n  # df = 1
-            if f(n_floor) >= p:
+            at_floor = float(f(n_floor))
+            if at_floor >= p:
                 raise ParameterError(
-                    f"`effect` = {e:g} is so large that power {p:g} is reached before df = 1 "
-                    f"(n = {n_floor:g}); no smaller t-test sample is meaningful."
+                    f"`power` = {p:g} is already exceeded at the smallest t-test sample for effect {e:g} "
+                    f"(n = {n_floor:g}, df = 1, power {at_floor:.3g}); ask for more power."
                 )
             # The t-test never beats the z-test at the same n (the z-test is UMP /
             # UMP unbiased with known SD), so the z-test's n is a lower bracket.
@@ -173,6 +174,12 @@ def t_n(effect, power, *, sd=1.0, alpha=0.05, alternative="two-sided", design="o
     -------
     float or ndarray
         Continuous n (pairs for "paired", control-arm size for "two-sample").
+
+    Raises
+    ------
+    ParameterError
+        On bad input, or when the smallest sample with df = 1 already exceeds
+        ``power`` (a low target with a large effect): no t-test size answers that.
 
     Examples
     --------

@@ -46,7 +46,9 @@ def _check_n(n, ratio):
     bad = np.broadcast_to(ratio * m <= 1.0, np.broadcast(m, ratio).shape)
     if np.any(bad):
         mb = np.broadcast_to(m, bad.shape)
-        raise ParameterError(f"`n` must leave more than 1 treatment observation (ratio * n > 1); got {c._show(mb, bad)}.")
+        raise ParameterError(
+            f"`n` must leave more than 1 treatment observation (ratio * n > 1); got {c._show(mb, bad)}."
+        )
     return m
 
 
@@ -113,6 +115,12 @@ def welch_n(effect, power, *, sd0=1.0, sd1=1.0, ratio=1.0, alpha=0.05, alternati
     float or ndarray
         Continuous control-arm n; the treatment arm needs ``ratio`` times it.
 
+    Raises
+    ------
+    ParameterError
+        On bad input, or when 2 observations in the smaller arm already exceed
+        ``power``.
+
     Examples
     --------
     With equal SDs the answer is within a fraction of a participant of the
@@ -130,10 +138,11 @@ def welch_n(effect, power, *, sd0=1.0, sd1=1.0, ratio=1.0, alpha=0.05, alternati
     def one(e_, p_, s0_, s1_, r_, a_):
         f = lambda m: float(_power(e_, m, s0_, s1_, r_, a_, alternative))  # noqa: E731
         floor = 2.0 * max(1.0, 1.0 / r_)  # at least 2 per arm
-        if f(floor) >= p_:
+        at_floor = f(floor)
+        if at_floor >= p_:
             raise ParameterError(
-                f"`effect` = {e_:g} is so large that power {p_:g} is reached with fewer than "
-                f"2 observations per arm (n = {floor:g}); Welch's test needs more."
+                f"`power` = {p_:g} is already exceeded with 2 observations in the smaller arm for "
+                f"effect {e_:g} (n = {floor:g}, power {at_floor:.3g}); ask for more power."
             )
         # z-test with the same SE reaches the power at n_z; Welch's test (a t-test) needs more.
         n_z = (float(required_delta(p_, a_, alternative)) / e_) ** 2 * (s0_**2 + s1_**2 / r_)
