@@ -1,0 +1,398 @@
+"""Sweeps: a scenario over a grid of parameters, one tidy row per grid point and analysis.
+
+A :class:`Grid` is a list of axes crossed with each other (a cartesian
+product); an axis is one parameter with its values, or several parameters
+whose values change *together* (zipped sets of equal length). Values are
+lists or ranges (:class:`Range`: a step, a count of evenly spaced values, or a
+count of log-spaced values).
+
+:func:`sweep` runs every point with one pool of workers (parallel across grid
+points and replicates) and returns a pandas DataFrame; :func:`null_check` runs
+the same points with the effect set to its null and judges the type I error
+by Bradley's (1978) liberal criterion.
+
+Every point is seeded by its content key (:func:`simpower.sequential.point_key`),
+so a point's numbers depend on its parameters and the seed only, not on
+where it sits in the grid.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from dataclasses import dataclass
+from typing import Any, Iterable, Mapping, Sequence
+
+import numpy as np
+import pandas as pd
+
+from .engine import normalize_seed, run_many
+from .errors import ParameterError
+from .sequential import check_target_mcse, point_key, run_many_to_mcse
+from .summaries import bradley_liberal
+
+#: columns of a sweep table after the grid parameters, in order
+RESULT_COLUMNS = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "n_ok", "failures",
+                  "failure_causes", "analytic_power", "distance_mcse", "path", "seconds")
+
+
+@dataclass(frozen=True)
+class Range:
+    """Evenly spaced values from ``start`` to ``stop`` (both included).
+
+    Give ``step`` (an arithmetic sequence; ``stop`` is included when it falls
+    on the step) or ``count`` (that many values, linear or, with
+    ``scale="log"``, geometric). Values of an integer parameter are rounded
+    and duplicates dropped.
+    """
+
+    start: float
+    stop: float
+    step: float | None = None
+    count: int | None = None
+    scale: str = "linear"
+
+    def __post_init__(self):
+        for f in ("start", "stop"):
+            v = getattr(self, f)
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+                raise ParameterError(f"range `{f}` must be a finite number; got {v!r}.")
+        if (self.step is None) == (self.count is None):
+            raise ParameterError("a range needs exactly one of `step` or `count`.")
+        if self.step is not None and (not isinstance(self.step, (int, float)) or self.step <= 0):
+            raise ParameterError(f"range `step` must be > 0; got {self.step!r}.")
+        if self.count is not None and (not isinstance(self.count, int) or isinstance(self.count, bool)
+                                       or self.count < 1):
+            raise ParameterError(f"range `count` must be an integer >= 1; got {self.count!r}.")
+        if self.scale not in ("linear", "log"):
+            raise ParameterError(f"range `scale` must be 'linear' or 'log'; got {self.scale!r}.")
+        if self.scale == "log" and (self.step is not None or self.start <= 0 or self.stop <= 0):
+            raise ParameterError("a log range needs `count` (not `step`) and `start`, `stop` > 0.")
+        if self.stop < self.start:
+            raise ParameterError(f"range `stop` ({self.stop:g}) must be >= `start` ({self.start:g}).")
+
+    def values(self, integer: bool = False) -> list:
+        if self.step is not None:
+            k = int(math.floor((self.stop - self.start) / self.step + 1e-9))
+            vals = [self.start + i * self.step for i in range(k + 1)]
+        elif self.scale == "log":
+            vals = list(np.geomspace(self.start, self.stop, self.count))
+        else:
+            vals = list(np.linspace(self.start, self.stop, self.count))
+        if integer:
+            return list(dict.fromkeys(int(round(v)) for v in vals))
+        return [float(round(v, 12)) for v in vals]
+
+    def __str__(self):
+        if self.step is not None:
+            return f"{self.start:g} to {self.stop:g} step {self.step:g}"
+        return f"{self.count} {'log-spaced' if self.scale == 'log' else 'evenly spaced'} values from " \
+               f"{self.start:g} to {self.stop:g}"
+
+
+def _axis_values(name: str, values) -> list | Range:
+    if isinstance(values, Range):
+        return values
+    if isinstance(values, Mapping):
+        return range_from_table(name, values)
+    if isinstance(values, (str, bytes)) or not isinstance(values, Iterable):
+        return [values]
+    vals = list(values)
+    if not vals:
+        raise ParameterError(f"the grid is empty: `{name}` has no values.")
+    return vals
+
+
+def range_from_table(name: str, table: Mapping[str, Any]) -> Range:
+    """A :class:`Range` from a TOML inline table ``{from, to, step | count, scale}``."""
+    allowed = {"from", "to", "step", "count", "scale"}
+    for key in table:
+        if key not in allowed:
+            from .errors import nearest
+
+            raise ParameterError(f"range of `{name}`: unknown field `{key}`.{nearest(key, allowed)}")
+    if "from" not in table or "to" not in table:
+        raise ParameterError(f"range of `{name}` needs `from` and `to` (and `step` or `count`).")
+    try:
+        return Range(table["from"], table["to"], table.get("step"), table.get("count"), table.get("scale", "linear"))
+    except ParameterError as exc:
+        raise ParameterError(f"range of `{name}`: {exc}") from None
+
+
+class Grid:
+    """Grid points: axes crossed with each other; an axis may hold parameters that vary together.
+
+    Build with :meth:`cross` (cartesian product of parameters), :meth:`together`
+    (zipped sets) and ``*`` (cross two grids), or :meth:`points` (an explicit
+    list of settings).
+
+    Examples
+    --------
+    >>> g = Grid.cross(n=[40, 60], effect=Range(0.3, 0.5, step=0.1)) * Grid.together(sd=[8, 10], mean0=[0, 1])
+    >>> len(g.settings())
+    12
+    >>> g.settings()[0]
+    {'n': 40, 'effect': 0.3, 'sd': 8, 'mean0': 0}
+    """
+
+    def __init__(self, axes: Sequence[tuple[tuple[str, ...], Any]] = ()):
+        self.axes = list(axes)
+        seen: set[str] = set()
+        for names, _ in self.axes:
+            for n in names:
+                if n in seen:
+                    raise ParameterError(f"`{n}` appears twice in the grid; give each parameter once.")
+                seen.add(n)
+
+    @classmethod
+    def cross(cls, **values) -> "Grid":
+        """Every combination of the given parameters' values."""
+        return cls([((name,), _axis_values(name, v)) for name, v in values.items()])
+
+    @classmethod
+    def together(cls, **values) -> "Grid":
+        """Parameters whose values change together (equal-length lists, zipped)."""
+        if not values:
+            raise ParameterError("the grid is empty: `together` needs at least one parameter.")
+        resolved = {n: _axis_values(n, v) for n, v in values.items()}
+        return cls([(tuple(resolved), resolved)])
+
+    @classmethod
+    def points(cls, settings: Sequence[Mapping[str, Any]]) -> "Grid":
+        """An explicit list of settings (every one naming the same parameters)."""
+        settings = [dict(s) for s in settings]
+        if not settings:
+            raise ParameterError("the grid is empty: give at least one setting.")
+        names = tuple(settings[0])
+        for s in settings:
+            if tuple(s) != names:
+                raise ParameterError(f"every grid setting must name the same parameters {list(names)}; got {list(s)}.")
+        return cls([(names, {n: [s[n] for s in settings] for n in names})])
+
+    def __mul__(self, other: "Grid") -> "Grid":
+        return Grid(self.axes + other.axes)
+
+    @property
+    def names(self) -> list[str]:
+        return [n for names, _ in self.axes for n in names]
+
+    def settings(self, scenario=None) -> list[dict[str, Any]]:
+        """The grid points as dicts, first axis slowest; ranges resolved (rounded for integer parameters)."""
+        if not self.axes:
+            raise ParameterError("the grid is empty: give at least one parameter to vary.")
+        current = scenario.get_params() if scenario is not None else {}
+        columns = []
+        for names, vals in self.axes:
+            if len(names) == 1 and not isinstance(vals, dict):
+                columns.append([(v,) for v in self._resolve(names[0], vals, current)])
+                continue
+            lists = [self._resolve(n, vals[n], current) for n in names]
+            lengths = {len(v) for v in lists}
+            if len(lengths) != 1:
+                shown = ", ".join(f"{n}: {len(v)}" for n, v in zip(names, lists))
+                raise ParameterError(f"parameters that vary together need equally many values; got {shown}.")
+            columns.append(list(zip(*lists)))
+        out = []
+        for combo in itertools.product(*columns):
+            point: dict[str, Any] = {}
+            for (names, _), vals in zip(self.axes, combo):
+                point.update(zip(names, vals))
+            out.append(point)
+        return out
+
+    @staticmethod
+    def _resolve(name, vals, current) -> list:
+        integer = isinstance(current.get(name), (int, np.integer)) and not isinstance(current.get(name), bool)
+        if isinstance(vals, Range):
+            return vals.values(integer=integer)
+        vals = list(vals)
+        if not vals:
+            raise ParameterError(f"the grid is empty: `{name}` has no values.")
+        if integer:
+            vals = [int(v) if isinstance(v, float) and v.is_integer() else v for v in vals]
+        return vals
+
+    def describe(self) -> list[str]:
+        lines = []
+        for names, vals in self.axes:
+            if len(names) == 1 and not isinstance(vals, dict):
+                lines.append(f"`{names[0]}`: {vals if isinstance(vals, Range) else ', '.join(map(str, vals))}")
+            else:
+                parts = "; ".join(f"`{n}` = {vals[n]}" for n in names)
+                lines.append(f"together: {parts}")
+        return lines
+
+    def __repr__(self):
+        return f"Grid({self.axes!r})"
+
+
+def as_grid(grid) -> Grid:
+    """A :class:`Grid` from a Grid, a mapping (crossed) or a list of settings."""
+    if isinstance(grid, Grid):
+        return grid
+    if isinstance(grid, Mapping):
+        if not grid:
+            raise ParameterError("the grid is empty: give at least one parameter to vary.")
+        return Grid.cross(**grid)
+    if isinstance(grid, Sequence) and not isinstance(grid, (str, bytes)):
+        return Grid.points(grid)
+    raise ParameterError(f"`grid` must be a Grid, a mapping of parameter -> values, or a list of settings; got {grid!r}.")
+
+
+def grid_scenarios(scenario, grid) -> tuple[list[dict], list]:
+    """The grid's settings and the scenario at each (bad names raise with the nearest valid one)."""
+    g = as_grid(grid)
+    settings = g.settings(scenario)
+    return settings, [scenario.with_params(**s) for s in settings]
+
+
+def _rows(settings, results, extra=None) -> list[dict]:
+    rows = []
+    for point, res in zip(settings, results):
+        for name, s in res.summaries.items():
+            row = dict(point)
+            row.update({
+                "analysis": name, "power": s["power"], "mcse": s["mcse"], "ci_low": s["ci_low"],
+                "ci_high": s["ci_high"], "reps": s["reps"], "n_ok": s["n_ok"], "failures": s["n_failed"],
+                "failure_causes": "; ".join(f"{c} x{k}" for c, k in s["failures"].items()),
+                "analytic_power": s.get("analytic_power"), "distance_mcse": s.get("distance_mcse"),
+                "path": s.get("path", ""), "seconds": res.chunk_seconds,
+            })
+            if extra:
+                row.update(extra(res, name, s))
+            rows.append(row)
+    return rows
+
+
+def _run_points(scenarios, reps, seed, n_jobs, chunk_size, store, progress, fit_trouble, target_mcse, max_reps,
+                min_reps, max_failure_rate):
+    """Run unique points once (content keys), in one pool; return results in the scenarios' order."""
+    keys = [point_key(s) for s in scenarios]
+    unique: dict[int, Any] = {}
+    for k, s in zip(keys, scenarios):
+        unique.setdefault(k, s)
+    ukeys = list(unique)
+    if target_mcse is not None:
+        outs = run_many_to_mcse(list(unique.values()), target_mcse, max_reps=max_reps, min_reps=min_reps, seed=seed,
+                                n_jobs=n_jobs, chunk_size=chunk_size, store=store, progress=progress,
+                                fit_trouble=fit_trouble, keys=ukeys, max_failure_rate=max_failure_rate)
+    else:
+        outs = run_many(list(unique.values()), reps, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, store=store,
+                        progress=progress, fit_trouble=fit_trouble, keys=ukeys, max_failure_rate=max_failure_rate,
+                        desc="sweeping")
+    by_key = dict(zip(ukeys, outs))
+    return [by_key[k] for k in keys]
+
+
+def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
+          store=None, progress: bool | None = None, fit_trouble: str = "failure", target_mcse: float | None = None,
+          max_reps: int = 100_000, min_reps: int = 1000, max_failure_rate: float = 0.5,
+          return_results: bool = False):
+    """Simulate ``scenario`` at every point of ``grid``; one row per grid point and analysis.
+
+    Parameters
+    ----------
+    scenario : Scenario
+    grid : Grid, mapping or list of dicts
+        A mapping ``{"n": [40, 60, 80], "effect": Range(0.3, 0.6, step=0.1)}``
+        is crossed; see :class:`Grid` for zipped sets. Names are those of
+        :meth:`Scenario.with_params` (``n``, ``outcome.cv``, ``alpha``,
+        ``<analysis>.<param>``).
+    reps : int
+        Replicates per point (ignored when ``target_mcse`` is given).
+    seed : int >= 0, SeedSequence or None
+        Recorded in ``table.attrs["seed"]``; pass it back to reproduce the table.
+    n_jobs : int
+        Workers shared by all points (-1: all cores).
+    chunk_size : int, optional
+    store : run store, optional
+        Finished chunks are reused and saved (e.g. the SQLite run store, for
+        resumable overnight sweeps).
+    target_mcse : float, optional
+        Run each point until its power's MCSE reaches this (sequential
+        stopping, between ``min_reps`` and ``max_reps``).
+    return_results : bool
+        Also return the list of RunResults (one per grid point).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Grid parameter columns, then :data:`RESULT_COLUMNS`; ``attrs`` holds
+        the seed, chunk size, scenario fingerprint and grid names.
+
+    Examples
+    --------
+    >>> import simpower as sp
+    >>> sc = sp.Scenario(sp.NormalTwoArm(n=64, effect=0.5), sp.TTest())
+    >>> t = sweep(sc, {"n": [20, 64]}, reps=2000, seed=1, n_jobs=1)
+    >>> list(t["n"]), bool(abs(t["power"][1] - t["analytic_power"][1]) < 4 * t["mcse"][1])
+    ([20, 64], True)
+    """
+    entropy = normalize_seed(seed)
+    if target_mcse is not None:
+        target_mcse = check_target_mcse(target_mcse)
+    settings, scenarios = grid_scenarios(scenario, grid)
+    results = _run_points(scenarios, reps, entropy, n_jobs, chunk_size, store, progress, fit_trouble, target_mcse,
+                          max_reps, min_reps, max_failure_rate)
+    extra = None
+    if target_mcse is not None:
+        extra = lambda res, name, s: {"mcse_reached": res.extra["sequential"]["reached"]}  # noqa: E731
+    table = pd.DataFrame(_rows(settings, results, extra))
+    table.attrs.update({
+        "kind": "sweep", "seed": entropy, "fingerprint": scenario.fingerprint(), "grid": list(settings[0]),
+        "chunk_size": results[0].chunk_size, "reps": None if target_mcse is not None else reps,
+        "target_mcse": target_mcse, "alpha": scenario.alpha, "fit_trouble": fit_trouble,
+    })
+    return (table, results) if return_results else table
+
+
+def null_check(scenario, grid=None, reps: int = 10_000, *, seed=None, n_jobs: int | None = -1,
+               chunk_size: int | None = None, store=None, progress: bool | None = None, fit_trouble: str = "failure",
+               max_failure_rate: float = 0.5) -> pd.DataFrame:
+    """Type I error of each analysis with the effect set to its null, everything else kept.
+
+    With a ``grid``, at every grid point. Each row gives the rejection rate
+    under the null, its MCSE and Wilson interval, and whether it meets
+    Bradley's (1978) liberal criterion 0.5 alpha <= rate <= 1.5 alpha
+    (Bradley, Br J Math Stat Psychol 31:144-152). With R replicates the MCSE
+    at the nominal level is sqrt(alpha(1-alpha)/R): 0.0022 for alpha = 0.05
+    and R = 10000.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Grid parameter columns (if any), ``analysis``, ``alpha``,
+        ``type1_error``, ``mcse``, ``ci_low``, ``ci_high``, ``reps``, ``n_ok``,
+        ``failures``, ``failure_causes``, ``bradley_low``, ``bradley_high``,
+        ``meets_bradley``, ``distance_mcse`` (from alpha, at the MCSE of alpha),
+        ``path``, ``seconds``.
+
+    Examples
+    --------
+    >>> import simpower as sp
+    >>> sc = sp.Scenario(sp.NormalTwoArm(n=20, effect=0.5), sp.TTest())
+    >>> t = null_check(sc, reps=4000, seed=2, n_jobs=1)
+    >>> bool(t["meets_bradley"][0]), bool(abs(t["type1_error"][0] - 0.05) < 4 * t["mcse"][0])
+    (True, True)
+    """
+    entropy = normalize_seed(seed)
+    if grid is None:
+        settings, scenarios = [{}], [scenario]
+    else:
+        settings, scenarios = grid_scenarios(scenario, grid)
+    nulls = [s.null() for s in scenarios]
+    results = _run_points(nulls, reps, entropy, n_jobs, chunk_size, store, progress, fit_trouble, None, None, None,
+                          max_failure_rate)
+
+    def extra(res, name, s):
+        a = res.scenario.alpha
+        m = math.sqrt(a * (1 - a) / s["n_ok"]) if s["n_ok"] else math.nan
+        return {"alpha": a, "bradley_low": 0.5 * a, "bradley_high": 1.5 * a,
+                "meets_bradley": bool(s["n_ok"] and bradley_liberal(s["power"], a)),
+                "distance_mcse": (s["power"] - a) / m if s["n_ok"] else math.nan}
+
+    table = pd.DataFrame(_rows(settings, results, extra)).rename(columns={"power": "type1_error"})
+    table = table.drop(columns=["analytic_power"])
+    table.attrs.update({"kind": "null_check", "seed": entropy, "fingerprint": scenario.fingerprint(),
+                        "grid": list(settings[0]), "chunk_size": results[0].chunk_size, "reps": reps})
+    return table
