@@ -1,0 +1,201 @@
+"""Equivalence (two one-sided tests) and non-inferiority t-tests.
+
+Layouts as the t-tests (:mod:`simpower.analyses.ttests`): one sample (``y``;
+the estimand is the mean), or two arms (``y``, ``arm``; the estimand is
+mean(arm 1) - mean(arm 0)). Welch's or the pooled-variance t statistic.
+The per-replicate paths call ``scipy.stats.ttest_ind`` / ``ttest_1samp``;
+the batch paths compute the same statistics with numpy.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy import stats
+
+from .. import analytic
+from .._validation import Bool, Real
+from ..errors import ParameterError
+from .base import CI_LEVEL, Analysis, TestResult
+from .ttests import TTest, _batch_arms, _mean_var, _split_arms, p_from_t
+
+POSITIVE = Real(0.0, low_open=True)
+
+
+def _t_parts(data, equal_var):
+    """(samples, estimate, se, df) of a one-sample or two-arm table."""
+    if "arm" not in data:
+        y = np.asarray(data["y"], float)
+        y = y[np.isfinite(y)]
+        return (y,), float(y.mean()), float(y.std(ddof=1) / math.sqrt(y.size)), y.size - 1.0
+    y0, y1 = _split_arms(data)
+    n0, n1 = y0.size, y1.size
+    v0, v1 = y0.var(ddof=1), y1.var(ddof=1)
+    if equal_var:
+        df = n0 + n1 - 2.0
+        se = math.sqrt(((n0 - 1) * v0 + (n1 - 1) * v1) / df * (1 / n0 + 1 / n1))
+    else:
+        a0, a1 = v0 / n0, v1 / n1
+        se = math.sqrt(a0 + a1)
+        df = (a0 + a1) ** 2 / (a0**2 / (n0 - 1) + a1**2 / (n1 - 1))
+    return (y0, y1), float(y1.mean() - y0.mean()), se, float(df)
+
+
+def _scipy_p(samples, value, equal_var, alternative):
+    """One-sided p-value of H0: estimand = value, from scipy."""
+    if len(samples) == 1:
+        return float(stats.ttest_1samp(samples[0], value, alternative=alternative).pvalue)
+    y0, y1 = samples
+    return float(stats.ttest_ind(y1 - value, y0, equal_var=equal_var, alternative=alternative).pvalue)
+
+
+def _batch_parts(batch, equal_var):
+    with np.errstate(all="ignore"):
+        if "arm" not in batch:
+            y = batch.per_rep["y"]
+            m, v = _mean_var(y)
+            return m, np.sqrt(v / y.shape[1]), y.shape[1] - 1.0
+        y0, y1 = _batch_arms(batch)
+        n0, n1 = y0.shape[1], y1.shape[1]
+        m0, v0 = _mean_var(y0)
+        m1, v1 = _mean_var(y1)
+        if equal_var:
+            df = n0 + n1 - 2.0
+            return m1 - m0, np.sqrt(((n0 - 1) * v0 + (n1 - 1) * v1) / df * (1 / n0 + 1 / n1)), df
+        a0, a1 = v0 / n0, v1 / n1
+        return m1 - m0, np.sqrt(a0 + a1), (a0 + a1) ** 2 / (a0**2 / (n0 - 1) + a1**2 / (n1 - 1))
+
+
+def _ci(est, se, df, level):
+    crit = stats.t.ppf(0.5 + level / 2, df)
+    return est - crit * se, est + crit * se
+
+
+class TOST(Analysis):
+    """Equivalence by two one-sided t-tests (Schuirmann 1987, J Pharmacokinet Biopharm 15:657-680).
+
+    H0: the estimand lies outside the equivalence range, theta <= ``low`` or
+    theta >= ``high``; H1: ``low`` < theta < ``high``. The p-value is the
+    larger of the two one-sided p-values (H0: theta <= low; H0: theta >= high).
+    Rejecting at alpha is the same as the (1 - 2 alpha) two-sided CI lying
+    inside (low, high); the reported CI has level ``ci_level`` (default 0.90,
+    the interval matching alpha = 0.05).
+
+    Parameters
+    ----------
+    margin : float > 0, optional
+        Symmetric range (-margin, margin). Give ``margin`` or both ``low`` and
+        ``high``.
+    low, high : float, optional
+        Asymmetric range, low < high.
+    equal_var : bool, default False
+        Pooled variance (Schuirmann's original test) instead of Welch's.
+    ci_level : float in (0, 1), default 0.90
+    """
+
+    name = "tost"
+    null_hypothesis = "the mean difference (or mean) lies outside the equivalence range (low, high)"
+    params = {"margin": Real(0.0, low_open=True, optional=True), "low": Real(optional=True),
+              "high": Real(optional=True), "equal_var": Bool(), "ci_level": CI_LEVEL}
+    defaults = {"margin": None, "low": None, "high": None, "equal_var": False, "ci_level": 0.90}
+
+    def _check(self):
+        given = self.low is not None or self.high is not None
+        if self.margin is not None and given:
+            raise ParameterError("`margin` and `low`/`high` both given: give a symmetric margin or the range.")
+        if self.margin is None and (self.low is None or self.high is None):
+            raise ParameterError("`margin` is required (or give both `low` and `high`): the equivalence range.")
+        if self.margin is None and not self.low < self.high:
+            raise ParameterError(f"`low` must be < `high`; got low = {self.low:g}, high = {self.high:g}.")
+
+    @property
+    def bounds(self) -> tuple[float, float]:
+        if self.margin is not None:
+            return -self.margin, self.margin
+        return self.low, self.high
+
+    def __call__(self, data):
+        low, high = self.bounds
+        samples, est, se, df = _t_parts(data, self.equal_var)
+        p_low = _scipy_p(samples, low, self.equal_var, "greater")
+        p_high = _scipy_p(samples, high, self.equal_var, "less")
+        lo, hi = _ci(est, se, df, self.ci_level)
+        return TestResult(pvalue=max(p_low, p_high), estimate=est, se=se, ci_low=lo, ci_high=hi, df=df)
+
+    def supports_batch(self, batch):
+        return TTest.supports_batch(TTest(), batch)
+
+    def batch(self, batch):
+        low, high = self.bounds
+        est, se, df = _batch_parts(batch, self.equal_var)
+        with np.errstate(all="ignore"):
+            p = np.maximum(p_from_t((est - low) / se, df, "greater"), p_from_t((est - high) / se, df, "less"))
+            lo, hi = _ci(est, se, df, self.ci_level)
+        return {"pvalue": p, "estimate": est, "se": se, "ci_low": lo, "ci_high": hi}
+
+
+class NonInferiority(Analysis):
+    """Non-inferiority one-sided t-test against a margin.
+
+    With ``higher_is_better`` (default), H0: theta <= -``margin`` against
+    H1: theta > -margin (arm 1 is not worse than arm 0 by the margin or more);
+    otherwise H0: theta >= margin against H1: theta < margin. theta is
+    mean(arm 1) - mean(arm 0), or the mean of one sample.
+
+    Parameters
+    ----------
+    margin : float > 0
+        The non-inferiority margin, in outcome units.
+    higher_is_better : bool, default True
+    equal_var : bool, default False
+        Pooled variance instead of Welch's.
+    ci_level : float in (0, 1), default 0.95
+        Level of the reported two-sided CI; the one-sided test at alpha
+        rejects when the relevant bound of the (1 - 2 alpha) CI clears the
+        margin.
+    """
+
+    name = "non_inferiority"
+    null_hypothesis = "arm 1 is worse than arm 0 by at least the margin"
+    params = {"margin": POSITIVE, "higher_is_better": Bool(), "equal_var": Bool(), "ci_level": CI_LEVEL}
+    defaults = {"higher_is_better": True, "equal_var": False, "ci_level": 0.95}
+
+    @property
+    def _null(self) -> tuple[float, str]:
+        return (-self.margin, "greater") if self.higher_is_better else (self.margin, "less")
+
+    def __call__(self, data):
+        value, alt = self._null
+        samples, est, se, df = _t_parts(data, self.equal_var)
+        lo, hi = _ci(est, se, df, self.ci_level)
+        return TestResult(pvalue=_scipy_p(samples, value, self.equal_var, alt), estimate=est, se=se,
+                          ci_low=lo, ci_high=hi, statistic=(est - value) / se, df=df)
+
+    def supports_batch(self, batch):
+        return TTest.supports_batch(TTest(), batch)
+
+    def batch(self, batch):
+        value, alt = self._null
+        est, se, df = _batch_parts(batch, self.equal_var)
+        with np.errstate(all="ignore"):
+            lo, hi = _ci(est, se, df, self.ci_level)
+            return {"pvalue": p_from_t((est - value) / se, df, alt), "estimate": est, "se": se,
+                    "ci_low": lo, "ci_high": hi}
+
+    def analytic_power(self, process, alpha):
+        """Power of the shifted one-sided t-test (pooled) or Welch test, normal outcomes."""
+        nc = process.normal_case()
+        if nc is None or nc["design"] not in ("one-sample", "two-sample"):
+            return None
+        value, alt = self._null
+        shift = nc["effect"] - value
+        if nc["design"] == "one-sample":
+            return analytic.t_power(shift, nc["n"], sd=nc["sd"], alpha=alpha, alternative=alt, design="one-sample")
+        if self.equal_var:
+            if nc.get("sd") is None:
+                return None
+            return analytic.t_power(shift, nc["n"], sd=nc["sd"], alpha=alpha, alternative=alt,
+                                    design="two-sample", ratio=nc["ratio"])
+        return analytic.welch_power(shift, nc["n"], sd0=nc["sd0"], sd1=nc["sd1"], ratio=nc["ratio"],
+                                    alpha=alpha, alternative=alt)

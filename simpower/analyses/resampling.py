@@ -1,0 +1,324 @@
+"""Resampling analyses (permutation test, bootstrap CI) and the t-test on log outcomes.
+
+Layouts: one sample (column ``y``), paired (``y``, ``arm``, ``pair``: the
+within-pair differences arm 1 - arm 0), or two independent arms (``y`` and
+``arm`` in {0, 1}). Missing outcomes are dropped.
+
+Reproducible resampling without an ``rng``
+-------------------------------------------
+An analysis sees only the data, so the permutation and bootstrap analyses draw
+their resamples from a generator seeded by ``SeedSequence([seed, h...])``,
+where ``h`` are words of a SHA-256 hash of the data's bytes and ``seed`` is
+the analysis parameter. The resamples are therefore a fixed function of the
+data set: a run gives the same numbers for any number of jobs or executor,
+two analyses with the same ``seed`` on one data set use the same resamples,
+and different data sets (replicates) get unrelated streams. Change ``seed`` to
+get another set of resamples.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+
+import numpy as np
+from scipy import special, stats
+
+from .._validation import Bool, Choice, Int, Real
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
+from .ttests import PairedT, _batch_arms, _mean_var, _split_arms, p_from_t
+
+POSITIVE = Real(0.0, low_open=True)
+SEED = Int(low=0)
+
+
+def data_rng(seed: int, *arrays) -> np.random.Generator:
+    """A generator that depends only on ``seed`` and the bytes (and lengths) of ``arrays``."""
+    h = hashlib.sha256()
+    for a in arrays:
+        a = np.ascontiguousarray(a, dtype=np.float64)
+        h.update(a.size.to_bytes(8, "little"))
+        h.update(a.tobytes())
+    words = np.frombuffer(h.digest()[:16], dtype=np.uint32).tolist()
+    return np.random.default_rng(np.random.SeedSequence([int(seed), *words]))
+
+
+def _layout(data):
+    """('one', d) for one sample or pairs (values or differences), ('two', (y0, y1)) for two arms."""
+    if "arm" not in data:
+        y = np.asarray(data["y"], float)
+        return "one", y[np.isfinite(y)]
+    if "pair" in data:
+        return "one", PairedT._differences(data)
+    return "two", _split_arms(data)
+
+
+_LOCATION = {"mean": np.mean, "median": np.median}
+
+
+class PermutationTest(Analysis):
+    """Permutation test of a difference in location (``scipy.stats.permutation_test``).
+
+    H0: the two arms' outcomes are exchangeable once ``null_value`` is
+    subtracted from arm 1 (two arms); the within-pair differences (or the
+    one-sample values) minus ``null_value`` are symmetric about 0 (pairs / one
+    sample: random sign flips).
+
+    Parameters
+    ----------
+    statistic : {'mean', 'median'}, default 'mean'
+        Difference of arm means (medians), or the mean (median) of the values.
+    n_resamples : int >= 1, default 1999
+        Random permutations; when it is at least the number of distinct
+        permutations, scipy enumerates them all (exact test).
+    seed : int >= 0, default 0
+        Combined with a hash of the data (see the module notes).
+    alternative : {'two-sided', 'greater', 'less'}
+    null_value : float, default 0
+
+    The estimate is the observed statistic (no SE or CI). The p-value counts
+    the observed arrangement among the resamples, as scipy does.
+    """
+
+    name = "permutation_test"
+    null_hypothesis = "arm labels are exchangeable (or differences symmetric about null_value)"
+    params = {"statistic": Choice(("mean", "median")), "n_resamples": Int(low=1), "seed": SEED,
+              "alternative": ALTERNATIVE, "null_value": Real()}
+    defaults = {"statistic": "mean", "n_resamples": 1999, "seed": 0, "alternative": "two-sided",
+                "null_value": 0.0}
+
+    def __call__(self, data):
+        kind, values = _layout(data)
+        loc = _LOCATION[self.statistic]
+        if kind == "two":
+            y0, y1 = values
+            x1 = y1 - self.null_value
+            samples, ptype = (x1, y0), "independent"
+
+            def stat(a, b, axis):
+                return loc(a, axis=axis) - loc(b, axis=axis)
+        else:
+            x = values - self.null_value
+            samples, ptype = (x, np.zeros_like(x)), "samples"
+
+            def stat(a, b, axis):
+                return loc(a - b, axis=axis)
+        rng = data_rng(self.seed, *samples)
+        r = stats.permutation_test(samples, stat, permutation_type=ptype, vectorized=True,
+                                   n_resamples=self.n_resamples, alternative=self.alternative, rng=rng)
+        return TestResult(pvalue=float(r.pvalue), estimate=float(r.statistic) + self.null_value,
+                          statistic=float(r.statistic))
+
+
+class BootstrapCI(Analysis):
+    """Bootstrap confidence interval (``scipy.stats.bootstrap``) and its dual p-value.
+
+    H0: the estimand (difference of arm means or medians; the mean or median
+    of one sample or of within-pair differences) equals ``null_value``.
+
+    A bootstrap interval has no p-value of its own; this analysis reports the
+    p-value of the test that inverts the interval family: the smallest
+    ``1 - level`` at which the interval of the same ``method`` excludes
+    ``null_value`` (one-sided intervals for one-sided alternatives). So
+    ``pvalue <= 1 - ci_level`` exactly when the reported two-sided CI excludes
+    ``null_value``, up to the 1/B granularity of the bootstrap distribution.
+    With G the bootstrap distribution function at a point
+    (G(x) = (#{t* < x} + #{t* <= x}) / 2B, as scipy's percentile of score) the
+    one-sided p-values for H1 'greater' are:
+
+    * percentile: G(null_value);
+    * basic: 1 - G(2 t - null_value);
+    * bca: Phi(u - z0), u = (w - z0) / (1 + a (w - z0)), w = Phi^-1(G(null_value)),
+      with z0 and the acceleration a as in Efron & Tibshirani (1993, An
+      Introduction to the Bootstrap, eqs. 14.14-14.15; jackknife per sample),
+      the inverse of the BCa endpoint formula (Efron 1987, JASA 82:171-185);
+
+    'less' takes 1 minus these, 'two-sided' twice the smaller (at most 1).
+    The coverage of the CI is this analysis's main use.
+
+    Parameters
+    ----------
+    statistic : {'mean', 'median'}, default 'mean'
+    method : {'percentile', 'basic', 'bca'}, default 'bca'
+    n_resamples : int >= 1, default 1999
+    ci_level : float in (0, 1), default 0.95
+        Level of the reported two-sided CI.
+    seed : int >= 0, default 0
+        Combined with a hash of the data (see the module notes).
+    alternative : {'two-sided', 'greater', 'less'}
+    null_value : float, default 0
+
+    The SE is the SD of the bootstrap distribution.
+    """
+
+    name = "bootstrap_ci"
+    null_hypothesis = "the difference in means (or medians), or the mean (median), equals null_value"
+    params = {"statistic": Choice(("mean", "median")), "method": Choice(("percentile", "basic", "bca")),
+              "n_resamples": Int(low=1), "ci_level": CI_LEVEL, "seed": SEED, "alternative": ALTERNATIVE,
+              "null_value": Real()}
+    defaults = {"statistic": "mean", "method": "bca", "n_resamples": 1999, "ci_level": 0.95, "seed": 0,
+                "alternative": "two-sided", "null_value": 0.0}
+
+    def _statistic(self, kind):
+        loc = _LOCATION[self.statistic]
+        if kind == "two":
+            return lambda a, b, axis=-1: loc(b, axis=axis) - loc(a, axis=axis)
+        return lambda a, axis=-1: loc(a, axis=axis)
+
+    def __call__(self, data):
+        kind, values = _layout(data)
+        samples = tuple(values) if kind == "two" else (values,)
+        stat = self._statistic(kind)
+        rng = data_rng(self.seed, *samples)
+        r = stats.bootstrap(samples, stat, n_resamples=self.n_resamples, vectorized=True,
+                            confidence_level=self.ci_level, method=self.method, rng=rng)
+        theta = float(stat(*samples))
+        p_greater = self._p_greater(samples, stat, theta, np.asarray(r.bootstrap_distribution, float))
+        p = {"greater": p_greater, "less": 1.0 - p_greater}.get(self.alternative)
+        if p is None:
+            p = min(1.0, 2.0 * min(p_greater, 1.0 - p_greater))
+        ci = r.confidence_interval
+        return TestResult(pvalue=float(p), estimate=theta, se=float(r.standard_error), ci_low=float(ci.low),
+                          ci_high=float(ci.high))
+
+    def _p_greater(self, samples, stat, theta, boot):
+        def g(x):
+            return (np.count_nonzero(boot < x) + np.count_nonzero(boot <= x)) / (2.0 * boot.size)
+
+        if self.method == "percentile":
+            return g(self.null_value)
+        if self.method == "basic":
+            return 1.0 - g(2.0 * theta - self.null_value)
+        z0 = special.ndtri(g(theta))
+        a = acceleration(samples, stat)
+        q = g(self.null_value)
+        if q <= 0.0 or q >= 1.0:
+            return float(q >= 1.0)
+        v = special.ndtri(q) - z0
+        denom = 1.0 + a * v
+        if denom <= 0.0:  # beyond every BCa endpoint
+            return float(v > 0)
+        return float(special.ndtr(v / denom - z0))
+
+
+def acceleration(samples, stat) -> float:
+    """Jackknife acceleration of the BCa interval, pooled over samples (Efron & Tibshirani 1993, eq. 14.15)."""
+    num = den = 0.0
+    for j, x in enumerate(samples):
+        n = x.size
+        keep = ~np.eye(n, dtype=bool)
+        jack = np.broadcast_to(x, (n, n))[keep].reshape(n, n - 1)
+        args = [np.broadcast_to(s, (n, s.size)) for s in samples]
+        args[j] = jack
+        t = stat(*args, axis=-1)
+        u = (n - 1) * (t.mean() - t)
+        num += np.sum(u**3) / n**3
+        den += np.sum(u**2) / n**2
+    return float(num / (6.0 * den**1.5)) if den > 0 else 0.0
+
+
+class LogT(Analysis):
+    """t-test on log-transformed positive outcomes: a ratio of geometric means.
+
+    H0: the ratio of geometric means arm 1 / arm 0 (two arms) or the geometric
+    mean (one sample; the geometric mean of within-pair ratios for pairs)
+    equals ``null_ratio``.
+
+    Parameters
+    ----------
+    equal_var : bool, default False
+        Pooled variance (Student) instead of Welch's test on the log scale.
+    alternative : {'two-sided', 'greater', 'less'}
+    ci_level : float in (0, 1), default 0.95
+    null_ratio : float > 0, default 1
+
+    The estimate is the ratio exp(mean log y1 - mean log y0); the CI is the
+    exponentiated t interval of the log ratio; the SE is the delta-method SE
+    of the ratio (ratio x SE of the log ratio), so it compares with the
+    empirical SE of the estimate. A replicate with an outcome <= 0 raises
+    ``ValueError`` (counted by the engine as ``error:ValueError``).
+    """
+
+    name = "log_t"
+    null_hypothesis = "the ratio of geometric means (or the geometric mean) equals null_ratio"
+    params = {"equal_var": Bool(), "alternative": ALTERNATIVE, "ci_level": CI_LEVEL, "null_ratio": POSITIVE}
+    defaults = {"equal_var": False, "alternative": "two-sided", "ci_level": 0.95, "null_ratio": 1.0}
+
+    @staticmethod
+    def _log(y):
+        bad = int(np.count_nonzero(y <= 0))
+        if bad:
+            raise ValueError(f"log_t needs positive outcomes; got {bad} value(s) <= 0")
+        return np.log(y)
+
+    def __call__(self, data):
+        mu = math.log(self.null_ratio)
+        y = np.asarray(data["y"], float)
+        ok = np.isfinite(y)
+        ly = np.full(y.shape, np.nan)
+        ly[ok] = self._log(y[ok])
+        table = {**data, "y": ly}
+        if "arm" not in data or "pair" in data:
+            d = ly[ok] if "arm" not in data else PairedT._differences(table)
+            r = stats.ttest_1samp(d, mu, alternative=self.alternative)
+            est, se_log = float(d.mean()), float(d.std(ddof=1) / math.sqrt(d.size))
+        else:
+            l0, l1 = _split_arms(table)
+            r = stats.ttest_ind(l1 - mu, l0, equal_var=self.equal_var, alternative=self.alternative)
+            est = float(l1.mean() - l0.mean())
+            if self.equal_var:
+                df = l0.size + l1.size - 2
+                sp2 = ((l0.size - 1) * l0.var(ddof=1) + (l1.size - 1) * l1.var(ddof=1)) / df
+                se_log = math.sqrt(sp2 * (1 / l0.size + 1 / l1.size))
+            else:
+                se_log = math.sqrt(l0.var(ddof=1) / l0.size + l1.var(ddof=1) / l1.size)
+        crit = stats.t.ppf(0.5 + self.ci_level / 2, r.df)
+        ratio = math.exp(est)
+        return TestResult(pvalue=float(r.pvalue), estimate=ratio, se=ratio * se_log,
+                          ci_low=math.exp(est - crit * se_log), ci_high=math.exp(est + crit * se_log),
+                          statistic=float(r.statistic), df=float(r.df))
+
+    def supports_batch(self, batch):
+        if "arm" not in batch:
+            return "present" not in batch.per_rep and not batch.info.get("missing")
+        if "pair" in batch:
+            return PairedT.supports_batch(PairedT(), batch)
+        return _batch_arms(batch) is not None
+
+    def batch(self, batch):
+        y = batch.per_rep["y"]
+        bad = np.any(y <= 0, axis=1)
+        with np.errstate(all="ignore"):
+            ly = np.log(np.where(y > 0, y, np.nan))
+            sub = type(batch)(batch.size, {**batch.per_rep, "y": ly}, batch.shared, batch.info)
+            if "arm" not in batch or "pair" in batch:
+                if "arm" in batch:
+                    l0, l1 = _batch_arms(sub)
+                    d = l1 - l0
+                else:
+                    d = ly
+                m, v = _mean_var(d)
+                est, se_log, df = m, np.sqrt(v / d.shape[1]), d.shape[1] - 1
+            else:
+                l0, l1 = _batch_arms(sub)
+                n0, n1 = l0.shape[1], l1.shape[1]
+                m0, v0 = _mean_var(l0)
+                m1, v1 = _mean_var(l1)
+                est = m1 - m0
+                if self.equal_var:
+                    df = n0 + n1 - 2
+                    se_log = np.sqrt(((n0 - 1) * v0 + (n1 - 1) * v1) / df * (1 / n0 + 1 / n1))
+                else:
+                    a0, a1 = v0 / n0, v1 / n1
+                    se_log = np.sqrt(a0 + a1)
+                    df = (a0 + a1) ** 2 / (a0**2 / (n0 - 1) + a1**2 / (n1 - 1))
+            t = (est - math.log(self.null_ratio)) / se_log
+            crit = stats.t.ppf(0.5 + self.ci_level / 2, df)
+            ratio = np.exp(est)
+            out = {"pvalue": np.where(bad, np.nan, p_from_t(t, df, self.alternative)), "estimate": ratio,
+                   "se": ratio * se_log, "ci_low": np.exp(est - crit * se_log),
+                   "ci_high": np.exp(est + crit * se_log)}
+        if bad.any():
+            out["trouble"] = {"error:ValueError": bad}
+            out["trouble_messages"] = {"error:ValueError": "ValueError: log_t needs positive outcomes"}
+        return out
