@@ -1,0 +1,397 @@
+"""Analyses of clustered and repeated data that are not mixed models.
+
+* :class:`ClusterMeansT` -- the cluster-level summary t-test: one mean per
+  cluster, compared between arms (Donner & Klar 2000, ch. 6). Batch path for
+  equal and variable cluster sizes (padded layouts).
+* :class:`GEE` -- generalised estimating equations with a Gaussian family,
+  exchangeable working correlation and robust (sandwich) SEs, through
+  :mod:`statsmodels` (Liang & Zeger 1986).
+* :class:`FinalVisitT` -- complete-case Student or Welch t-test at the final
+  visit of a repeated-measures table. Batch path.
+
+Missing outcomes (NaN in ``y``) are dropped: these are complete-case analyses,
+valid when outcomes are missing completely at random.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from .._validation import Anything, Bool, Choice, Int
+from ..errors import ParameterError
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
+from .ttests import p_from_t, p_from_z
+
+
+def _t_fields(est, se, df, alternative, ci_level):
+    """p-value and CI of ``est / se`` against t(df) (arrays allowed)."""
+    t = est / se
+    crit = stats.t.ppf(0.5 + ci_level / 2, df)
+    return {"pvalue": p_from_t(t, df, alternative), "estimate": est, "se": se,
+            "ci_low": est - crit * se, "ci_high": est + crit * se}
+
+
+# -- cluster summaries ------------------------------------------------------------
+def cluster_summaries(data) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-cluster sums and counts of observed outcomes, and each cluster's arm, for one long table.
+
+    Raises
+    ------
+    ValueError
+        If a cluster has members in both arms (individual randomisation).
+    """
+    y = np.asarray(data["y"], float)
+    arm = np.asarray(data["arm"])
+    _, inv = np.unique(np.asarray(data["cluster"]), return_inverse=True)
+    inv = inv.ravel()
+    ok = np.isfinite(y)
+    counts = np.bincount(inv[ok])
+    sums = np.bincount(inv[ok], weights=y[ok], minlength=counts.size)
+    members = np.bincount(inv)
+    arm_sum = np.bincount(inv, weights=arm.astype(float))
+    if np.any((arm_sum != 0) & (arm_sum != members)):
+        raise ValueError("cluster_means_t needs cluster randomisation: a cluster has members in both arms")
+    counts = np.concatenate([counts, np.zeros(members.size - counts.size, counts.dtype)])
+    sums = np.concatenate([sums, np.zeros(members.size - sums.size)])
+    return sums, counts, (arm_sum > 0).astype(int)
+
+
+class ClusterMeansT(Analysis):
+    """Two-sample t-test on cluster means (cluster-level summary analysis).
+
+    Each cluster is reduced to the mean of its observed outcomes (clusters
+    with none are dropped), and the arms' cluster means are compared.
+
+    Parameters
+    ----------
+    weights : {"equal", "size"}
+        "equal" (default): Student's t-test on the cluster means, pooled
+        variance, df = clusters - 2. Exact when clusters are equal in size
+        and outcomes normal. "size": difference of size-weighted means (the
+        individual-level mean difference), each arm's variance estimated by
+        ``k/(k-1) * sum_c (m_c / M)^2 (mean_c - mean)^2`` over its k clusters
+        (m_c observed members, M their total; a sandwich estimator), df =
+        clusters - 2. With equal sizes both choices give the same test.
+    alternative : {"two-sided", "greater", "less"}
+        H1 "greater": arm 1 above arm 0.
+    ci_level : float in (0, 1)
+
+    Notes
+    -----
+    H0: the two arms have the same mean outcome (the mean of cluster means
+    for "equal", of individuals for "size"). Needs ``y``, ``arm`` and
+    ``cluster`` columns with every cluster in a single arm.
+    """
+
+    name = "cluster_means_t"
+    null_hypothesis = "the two arms have equal mean cluster-level outcomes"
+    params = {"weights": Choice(("equal", "size")), "alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
+    defaults = {"weights": "equal", "alternative": "two-sided", "ci_level": 0.95}
+
+    # -- per replicate (scipy / statsmodels) --------------------------------------
+    def __call__(self, data) -> TestResult:
+        sums, counts, arm = cluster_summaries(data)
+        keep = counts > 0
+        means = sums[keep] / counts[keep]
+        arm, counts = arm[keep], counts[keep]
+        m0, m1 = means[arm == 0], means[arm == 1]
+        if self.weights == "equal":
+            r = stats.ttest_ind(m1, m0, equal_var=True, alternative=self.alternative)
+            df = m0.size + m1.size - 2
+            sp2 = ((m0.size - 1) * m0.var(ddof=1) + (m1.size - 1) * m1.var(ddof=1)) / df
+            se = math.sqrt(sp2 * (1 / m0.size + 1 / m1.size))
+            ci = r.confidence_interval(self.ci_level)
+            return TestResult(pvalue=float(r.pvalue), estimate=float(m1.mean() - m0.mean()), se=se,
+                              ci_low=float(ci.low), ci_high=float(ci.high), statistic=float(r.statistic),
+                              df=float(df))
+        est, var = 0.0, 0.0
+        for a, sign in ((0, -1.0), (1, 1.0)):
+            mean_a, var_a = _size_weighted_arm(data, a)
+            est += sign * mean_a
+            var += var_a
+        df = m0.size + m1.size - 2
+        out = _t_fields(est, math.sqrt(var), df, self.alternative, self.ci_level)
+        return TestResult(**{k: float(v) for k, v in out.items()}, statistic=est / math.sqrt(var), df=float(df))
+
+    # -- batch --------------------------------------------------------------------
+    def supports_batch(self, batch):
+        if not all(c in batch for c in ("y", "arm", "cluster")):
+            return False
+        cluster = batch["cluster"]
+        return np.issubdtype(cluster.dtype, np.integer) and cluster.min() >= 0 and cluster.max() < 4 * cluster.shape[-1]
+
+    def batch(self, batch):
+        y = batch.per_rep["y"]
+        reps, width = y.shape
+        present = batch.per_rep.get("present")
+        present = np.ones((reps, width), bool) if present is None else present
+        cluster = np.broadcast_to(batch["cluster"], (reps, width))
+        arm = np.broadcast_to(batch["arm"], (reps, width))
+        n_cl = int(cluster.max()) + 1
+        idx = cluster + n_cl * np.arange(reps)[:, None]
+        ok = present & np.isfinite(y)
+
+        def per_cluster(mask, weights=None):
+            w = None if weights is None else weights[mask]
+            return np.bincount(idx[mask], weights=w, minlength=reps * n_cl).reshape(reps, n_cl)
+
+        counts = per_cluster(ok)
+        sums = per_cluster(ok, y)
+        members = per_cluster(present)
+        arm_sum = per_cluster(present, arm.astype(float))
+        mixed = ((arm_sum != 0) & (arm_sum != members)).any(axis=1)
+        keep = counts > 0
+        with np.errstate(all="ignore"):
+            means = np.where(keep, sums / counts, 0.0)
+            in1 = keep & (arm_sum > 0)
+            in0 = keep & ~(arm_sum > 0)
+            k0, k1 = in0.sum(axis=1), in1.sum(axis=1)
+            df = (k0 + k1 - 2).astype(float)
+            if self.weights == "equal":
+                mean0, ss0 = _masked_mean_ss(means, in0)
+                mean1, ss1 = _masked_mean_ss(means, in1)
+                se = np.sqrt((ss0 + ss1) / df * (1.0 / k0 + 1.0 / k1))
+            else:
+                mean0, v0 = _weighted_arm(means, counts, in0)
+                mean1, v1 = _weighted_arm(means, counts, in1)
+                se = np.sqrt(v0 + v1)
+            out = _t_fields(mean1 - mean0, se, df, self.alternative, self.ci_level)
+        if mixed.any():
+            for f in out:
+                out[f] = np.where(mixed, np.nan, out[f])
+            out["trouble"] = {"error:ValueError": mixed}
+            out["trouble_messages"] = {"error:ValueError": "cluster_means_t needs cluster randomisation: "
+                                                            "a cluster has members in both arms"}
+        return out
+
+    # -- closed form ------------------------------------------------------------
+    def analytic_power(self, process, alpha):
+        """Exact power for equal clusters under cluster randomisation without missing data.
+
+        The cluster means are then i.i.d. normal with variance
+        ``sigma_b^2 + sigma_w^2 / m`` in each arm, so Student's t-test on them
+        has noncentral-t power with df = 2k - 2 (Donner & Klar 2000, ch. 6).
+        """
+        from .. import analytic
+
+        if getattr(process, "name", None) != "cluster_trial" or not process.equal_sizes:
+            return None
+        if process.randomise != "cluster" or process.missing is not None:
+            return None
+        m = int(process.cluster_size)
+        sd_means = math.sqrt(process.between_sd**2 + process.within_sd**2 / m)
+        return analytic.t_power(process.effect, process.clusters, sd=sd_means, alpha=alpha,
+                                alternative=self.alternative, design="two-sample")
+
+
+def _masked_mean_ss(x, mask):
+    k = mask.sum(axis=1)
+    mean = np.where(mask, x, 0.0).sum(axis=1) / k
+    d = np.where(mask, x - mean[:, None], 0.0)
+    return mean, np.einsum("ij,ij->i", d, d)
+
+
+def _weighted_arm(means, counts, mask):
+    """Size-weighted arm mean and its sandwich variance, per replicate."""
+    w = np.where(mask, counts, 0).astype(float)
+    total = w.sum(axis=1)
+    k = mask.sum(axis=1)
+    mean = (w * np.where(mask, means, 0.0)).sum(axis=1) / total
+    r = np.where(mask, (means - mean[:, None]) * w / total[:, None], 0.0)
+    return mean, k / (k - 1.0) * np.einsum("ij,ij->i", r, r)
+
+
+def _size_weighted_arm(data, a):
+    """Individual-level mean of arm ``a`` and k/(k-1) times its cluster-robust variance (statsmodels OLS)."""
+    import statsmodels.api as sm
+
+    y = np.asarray(data["y"], float)
+    sel = (np.asarray(data["arm"]) == a) & np.isfinite(y)
+    groups = np.unique(np.asarray(data["cluster"])[sel], return_inverse=True)[1].ravel()
+    k = int(groups.max()) + 1
+    fit = sm.OLS(y[sel], np.ones(sel.sum())).fit(cov_type="cluster",
+                                                 cov_kwds={"groups": groups, "use_correction": False})
+    return float(fit.params[0]), k / (k - 1.0) * float(fit.bse[0]) ** 2
+
+
+# -- GEE ----------------------------------------------------------------------
+def _default_design(df: pd.DataFrame) -> tuple[pd.DataFrame, str]:
+    """Intercept + arm (cluster data), or visit x arm with the final visit as reference (repeated data)."""
+    X = pd.DataFrame({"Intercept": 1.0, "arm": df["arm"].astype(float)}, index=df.index)
+    if "visit" in df and df["visit"].nunique() > 1:
+        last = df["visit"].max()
+        for v in sorted(df["visit"].unique()):
+            if v == last:
+                continue
+            ind = (df["visit"] == v).astype(float)
+            X[f"visit[{v}]"] = ind
+            X[f"arm:visit[{v}]"] = ind * X["arm"]
+    return X, "arm"
+
+
+class GEE(Analysis):
+    """Gaussian GEE with robust SEs (statsmodels), groups = cluster (or subject).
+
+    Parameters
+    ----------
+    formula : str, optional
+        A patsy formula for the mean model, e.g. ``"y ~ arm + baseline"``.
+        Default: ``y ~ arm`` for cluster data; for repeated data (a ``visit``
+        column) visit as a factor crossed with arm, with the final visit as
+        the reference level, so the ``arm`` coefficient is the treatment
+        difference at the final visit.
+    term : str
+        The coefficient tested and reported (default ``"arm"``).
+    cov_struct : {"exchangeable", "independence"}
+        Working correlation within groups.
+    cov_type : {"robust", "bias_reduced"}
+        Sandwich SEs, or the Mancl-DeRouen bias-reduced sandwich (fewer clusters).
+    distribution : {"normal", "t"}
+        Reference distribution of the Wald statistic: normal (statsmodels'
+        default) or t with (groups - coefficients) df, safer with few groups.
+    maxiter : int >= 1
+        Iteration limit of the GEE fit; hitting it warns (recorded per replicate).
+    alternative, ci_level
+        As elsewhere; H1 "greater": coefficient > 0.
+
+    Notes
+    -----
+    H0: the ``term`` coefficient is 0 (for the defaults, no difference between
+    arms, at the final visit for repeated data). Groups are ``cluster`` when
+    the table has that column, else ``subject``. Rows with missing ``y`` are
+    dropped: valid under missingness completely at random only. Fit warnings
+    (``ConvergenceWarning``, ...) are not silenced.
+    """
+
+    name = "gee"
+    null_hypothesis = "the coefficient of `term` (default: arm, at the final visit for repeated data) is 0"
+    params = {"formula": Anything(), "term": Anything(), "cov_struct": Choice(("exchangeable", "independence")),
+              "cov_type": Choice(("robust", "bias_reduced")), "distribution": Choice(("normal", "t")),
+              "maxiter": Int(low=1), "alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
+    defaults = {"formula": None, "term": "arm", "cov_struct": "exchangeable", "cov_type": "robust",
+                "distribution": "normal", "maxiter": 60, "alternative": "two-sided", "ci_level": 0.95}
+
+    def _check(self):
+        if self.formula is not None and (not isinstance(self.formula, str) or "~" not in self.formula):
+            raise ParameterError(f"`formula` must be a formula string like 'y ~ arm'; got {self.formula!r}.")
+        if not isinstance(self.term, str) or not self.term:
+            raise ParameterError(f"`term` must be a coefficient name such as 'arm'; got {self.term!r}.")
+
+    def _structure(self):
+        from statsmodels.genmod import cov_struct
+
+        return cov_struct.Exchangeable() if self.cov_struct == "exchangeable" else cov_struct.Independence()
+
+    def fit(self, data):
+        """The statsmodels GEE results object for one long table."""
+        import statsmodels.api as sm
+
+        df = pd.DataFrame({k: np.asarray(v) for k, v in dict(data).items()})
+        group_col = "cluster" if "cluster" in df else "subject" if "subject" in df else None
+        if group_col is None:
+            raise ValueError("gee needs a 'cluster' or 'subject' column to define groups")
+        df = df[np.isfinite(df["y"].to_numpy(float))]
+        family = sm.families.Gaussian()
+        if self.formula is None:
+            X, _ = _default_design(df)
+            model = sm.GEE(df["y"].astype(float), X, groups=df[group_col].to_numpy(), family=family,
+                           cov_struct=self._structure())
+        else:
+            model = sm.GEE.from_formula(self.formula, groups=group_col, data=df, family=family,
+                                        cov_struct=self._structure())
+        res = model.fit(maxiter=self.maxiter, cov_type=self.cov_type)
+        if res is None:  # statsmodels warned (singular covariance...) and gave up
+            raise ValueError("the GEE fit returned no estimates (singular covariance of the estimates)")
+        return res
+
+    def __call__(self, data) -> TestResult:
+        res = self.fit(data)
+        names = list(res.model.exog_names)
+        if self.term not in names:
+            from ..errors import nearest
+
+            raise ValueError(f"`term` {self.term!r} is not a coefficient of the GEE model.{nearest(self.term, names)}")
+        j = names.index(self.term)
+        est, se = float(res.params.iloc[j]), float(res.bse.iloc[j])
+        z = est / se
+        if self.distribution == "normal":
+            p = float(p_from_z(z, self.alternative))
+            crit = stats.norm.ppf(0.5 + self.ci_level / 2)
+            df = math.inf
+        else:
+            df = float(len(np.unique(res.model.groups)) - len(names))
+            p = float(p_from_t(z, df, self.alternative))
+            crit = stats.t.ppf(0.5 + self.ci_level / 2, df)
+        return TestResult(pvalue=p, estimate=est, se=se, ci_low=float(est - crit * se),
+                          ci_high=float(est + crit * se), statistic=z, df=df)
+
+
+# -- final visit ----------------------------------------------------------------
+class FinalVisitT(Analysis):
+    """Complete-case t-test between arms at the final visit of repeated measures.
+
+    Parameters
+    ----------
+    welch : bool
+        Welch's unequal-variance t-test instead of Student's (default False).
+    alternative, ci_level
+        H1 "greater": arm 1 above arm 0.
+
+    Notes
+    -----
+    H0: equal arm means at the final visit (the largest ``visit``), using the
+    subjects observed there. Ignores earlier visits: the naive analysis,
+    biased under MAR dropout that depends on earlier outcomes.
+    """
+
+    name = "final_visit_t"
+    null_hypothesis = "equal arm means at the final visit (complete cases)"
+    params = {"welch": Bool(), "alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
+    defaults = {"welch": False, "alternative": "two-sided", "ci_level": 0.95}
+
+    def __call__(self, data) -> TestResult:
+        y = np.asarray(data["y"], float)
+        visit = np.asarray(data["visit"])
+        arm = np.asarray(data["arm"])
+        sel = (visit == visit.max()) & np.isfinite(y)
+        y0, y1 = y[sel & (arm == 0)], y[sel & (arm == 1)]
+        r = stats.ttest_ind(y1, y0, equal_var=not self.welch, alternative=self.alternative)
+        ci = r.confidence_interval(self.ci_level)
+        if self.welch:
+            se = math.sqrt(y0.var(ddof=1) / y0.size + y1.var(ddof=1) / y1.size)
+        else:
+            df = y0.size + y1.size - 2
+            sp2 = ((y0.size - 1) * y0.var(ddof=1) + (y1.size - 1) * y1.var(ddof=1)) / df
+            se = math.sqrt(sp2 * (1 / y0.size + 1 / y1.size))
+        return TestResult(pvalue=float(r.pvalue), estimate=float(y1.mean() - y0.mean()), se=se,
+                          ci_low=float(ci.low), ci_high=float(ci.high), statistic=float(r.statistic),
+                          df=float(r.df))
+
+    def supports_batch(self, batch):
+        return ("visit" in batch.shared and "arm" in batch.shared and "present" not in batch.per_rep
+                and "y" in batch.per_rep)
+
+    def batch(self, batch):
+        visit, arm = batch.shared["visit"], batch.shared["arm"]
+        last = visit == visit.max()
+        y = batch.per_rep["y"][:, last]
+        a = arm[last]
+        ok = np.isfinite(y)
+        in0, in1 = ok & (a == 0), ok & (a == 1)
+        with np.errstate(all="ignore"):
+            n0, n1 = in0.sum(axis=1), in1.sum(axis=1)
+            m0, ss0 = _masked_mean_ss(y, in0)
+            m1, ss1 = _masked_mean_ss(y, in1)
+            v0, v1 = ss0 / (n0 - 1), ss1 / (n1 - 1)
+            if self.welch:
+                a0, a1 = v0 / n0, v1 / n1
+                se = np.sqrt(a0 + a1)
+                df = (a0 + a1) ** 2 / (a0**2 / (n0 - 1) + a1**2 / (n1 - 1))
+            else:
+                df = (n0 + n1 - 2).astype(float)
+                se = np.sqrt((ss0 + ss1) / df * (1.0 / n0 + 1.0 / n1))
+            return _t_fields(m1 - m0, se, df, self.alternative, self.ci_level)
