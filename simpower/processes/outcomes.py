@@ -46,7 +46,7 @@ def _one_of(owner: str, values: dict, a: str, b: str, required: bool = True) -> 
     """Name of the one parameter of the pair (a, b) that was given; error if both (or neither)."""
     given = [k for k in (a, b) if values[k] is not None]
     if len(given) == 2:
-        raise ParameterError(f"`{a}` and `{b}` were both given for {owner}: give exactly one of them.")
+        raise ParameterError(f"`{a}`: give exactly one of `{a}` or `{b}` for {owner}, not both.")
     if not given:
         if required:
             raise ParameterError(f"`{a}` or `{b}` is required for {owner}: give exactly one of them.")
@@ -216,8 +216,8 @@ class Gamma(Distribution):
         if by_shape and by_mean:
             a = "shape" if p["shape"] is not None else "scale"
             b = "mean" if p["mean"] is not None else "cv"
-            raise ParameterError(f"`{a}` and `{b}` were both given for gamma: give `shape` (and `scale`), "
-                                 "or `mean` and `cv`.")
+            raise ParameterError(f"`{a}`: give `shape` (and `scale`) or `mean` and `cv` for gamma, not both "
+                                 f"(`{b}` was given too).")
         if by_mean:
             for k in ("mean", "cv"):
                 if p[k] is None:
@@ -278,8 +278,8 @@ class SkewNormal(Distribution):
         direct = [k for k in ("location", "scale", "shape") if p[k] is not None]
         target = [k for k in ("mean", "sd", "skewness") if p[k] is not None]
         if direct and target:
-            raise ParameterError(f"`{direct[0]}` and `{target[0]}` were both given for skew_normal: give "
-                                 "`location`/`scale`/`shape`, or `mean`/`sd`/`skewness`.")
+            raise ParameterError(f"`{direct[0]}`: give `location`/`scale`/`shape` or `mean`/`sd`/`skewness` for "
+                                 f"skew_normal, not both (`{target[0]}` was given too).")
         if target:
             if p["skewness"] is None:
                 raise ParameterError("`skewness` is required for skew_normal when `mean` or `sd` is given.")

@@ -1,0 +1,457 @@
+"""Independent arms with any continuous outcome: ``two_arm`` and ``multi_arm``.
+
+A design composes an outcome distribution (``outcome``, see
+:mod:`simpower.processes.outcomes`), a treatment effect, per-arm SDs, an
+optional baseline covariate and an optional missingness mechanism
+(``missing``, see :mod:`simpower.processes.missing`).
+
+The treatment arm's values are the outcome's draws X transformed by the effect:
+
+* ``effect_type = "shift"``: X + effect (a mean difference in outcome units);
+* ``"d"``: X + effect * SD (a standardised mean difference, SD = the outcome's SD);
+* ``"ratio"``: X * effect (a ratio of means; the outcome must be non-negative).
+
+``sd_ratio`` (per-arm ``sds`` for ``multi_arm``) then scales the arm's deviations
+around its mean, which leaves the mean alone and multiplies the SD.
+
+The long table has columns ``y`` and ``arm`` (control = 0, rows in arm
+order), plus ``baseline`` when a baseline covariate is asked for and
+``observed`` (1/0) when a missingness mechanism is given (missing outcomes are
+NaN in ``y``).
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+
+import numpy as np
+from numpy.polynomial.hermite_e import hermegauss
+from scipy import optimize
+
+from .._validation import Anything, Choice, Int, Real
+from ..components import Nested
+from ..errors import ParameterError
+from .base import Batch, Process
+from .outcomes import Normal
+
+POSITIVE = Real(0.0, low_open=True)
+EFFECT_TYPE = Choice(("shift", "ratio", "d"))
+CORR = Real(-1.0, 1.0, low_open=True, high_open=True, optional=True)
+
+_NODES, _TERMS = 120, 60
+
+
+# -- the baseline covariate: a Gaussian copula with a calibrated latent correlation ---------
+
+def copula_series(outcome) -> tuple[np.ndarray, float]:
+    """Hermite coefficients of the outcome's normal-scores transform g(z) = F^{-1}(Phi(z)).
+
+    Returns (c, v): with Z1, Z2 standard bivariate normal with correlation r,
+    Cov(g(Z1), g(Z2)) = sum_k c[k-1] r^k (Mehler's formula; c_k = E[g(Z) He_k(Z)]^2 / k!)
+    and v = Var g(Z). Computed by Gauss-Hermite quadrature on 120 nodes, 60 terms.
+    """
+    x, w = hermegauss(_NODES)
+    w = w / w.sum()
+    g = np.asarray(outcome.from_normal(x), dtype=float)
+    m = w @ g
+    v = float(w @ (g - m) ** 2)
+    h_prev, h = np.ones_like(x), x.copy()
+    c = np.empty(_TERMS)
+    for k in range(1, _TERMS + 1):
+        c[k - 1] = (w @ (g * h)) ** 2
+        h_prev, h = h, (x * h - math.sqrt(k) * h_prev) / math.sqrt(k + 1)
+    return c, v
+
+
+def copula_correlation(outcome, latent: float) -> float:
+    """Pearson correlation of g(Z1) and g(Z2) when Z1, Z2 are normal with correlation ``latent``."""
+    c, v = copula_series(outcome)
+    k = np.arange(1, c.size + 1)
+    return float(np.sum(c * latent**k) / v)
+
+
+def latent_correlation(outcome, rho: float, field: str = "baseline_corr") -> float:
+    """The normal-scores correlation that gives Pearson correlation ``rho`` between baseline and outcome.
+
+    Exact (= ``rho``) for a normal outcome; otherwise the root of the Mehler
+    series (:func:`copula_series`) in [-1, 1]. A ``rho`` outside the reachable
+    range [corr at -1, corr at +1] is a ParameterError naming ``field``.
+    """
+    if rho == 0:
+        return 0.0
+    if isinstance(outcome, Normal):
+        return rho
+    if not hasattr(outcome, "from_normal"):
+        raise ParameterError(f"`{field}` needs an outcome with a quantile function (from_normal); "
+                             f"{type(outcome).__name__} has none.")
+    c, v = copula_series(outcome)
+    if not (np.all(np.isfinite(c)) and math.isfinite(v) and v > 0):
+        raise ParameterError(f"`{field}`: the outcome's SD is not finite, so no correlation can be set.")
+    k = np.arange(1, c.size + 1)
+
+    def pearson(r):
+        return float(np.sum(c * r**k) / v)
+
+    low, high = pearson(-1.0), pearson(1.0)
+    if not (low < rho < high) and not math.isclose(rho, high, abs_tol=1e-9):
+        raise ParameterError(f"`{field}` = {rho:g} cannot be reached with this outcome through a Gaussian copula; "
+                             f"the reachable Pearson correlations are ({low:.3f}, {high:.3f}).")
+    if rho >= high:
+        return 1.0
+    return float(optimize.brentq(lambda r: pearson(r) - rho, -1.0, 1.0, xtol=1e-13))
+
+
+# -- shared pieces --------------------------------------------------------------------------
+
+def _effect_values(x, outcome, effect, effect_type, sd_factor):
+    """Apply an effect and an SD factor to draws ``x`` of ``outcome`` (one arm)."""
+    centre = outcome.center if hasattr(outcome, "center") else outcome.mean
+    if effect_type == "ratio":
+        y, m = x * effect, centre * effect
+    else:
+        shift = effect * outcome.sd if effect_type == "d" else effect
+        y, m = x + shift, centre + shift
+    if sd_factor != 1:
+        y = m + sd_factor * (y - m)
+    return y
+
+
+def _check_outcome_for(outcome, effect_type, needs_centre: bool, owner: str):
+    """Cross-field checks between an outcome and the effect type / SD changes."""
+    try:
+        _outcome_rules(outcome, effect_type, needs_centre)
+    except ParameterError as exc:
+        msg = str(exc)
+        if msg.startswith("`") and not msg.startswith("`effect"):
+            msg = "`outcome." + msg[1:]
+        raise ParameterError(msg) from None
+
+
+def _outcome_rules(outcome, effect_type, needs_centre):
+    if effect_type == "ratio":
+        low = getattr(outcome, "lower_bound", -math.inf)
+        if not low >= 0:
+            raise ParameterError(
+                f"`effect_type` = 'ratio' needs an outcome that cannot be negative; {outcome.describe()} can "
+                f"(lower bound {low:g}): use 'shift' or 'd', or a positive outcome such as lognormal or gamma.")
+        if not outcome.mean > 0:
+            raise ParameterError(f"`effect_type` = 'ratio' needs an outcome with a positive mean; got {outcome.mean:g}.")
+    if effect_type == "d":
+        outcome.sd  # noqa: B018 - raises a ParameterError when the SD does not exist
+    if needs_centre:
+        outcome.center if hasattr(outcome, "center") else outcome.mean  # noqa: B018
+
+
+def _apply_missing(missing, rng, y, covariates, per_rep, info):
+    if missing is None:
+        return
+    m = np.asarray(missing.mask(rng, y, covariates), dtype=bool)
+    y[m] = np.nan
+    per_rep["observed"] = (~m).astype(np.int8)
+    info["missing"] = True
+
+
+def _check_missing(missing, available, owner):
+    if missing is None:
+        return
+    for col in getattr(missing, "requires", ()):
+        if col not in available:
+            hint = " set `baseline_corr` to add a baseline column." if col == "baseline" else ""
+            raise ParameterError(f"`missing.on` = {col!r} is not a column of {owner} (it has "
+                                 f"{', '.join(sorted(available))});{hint}")
+
+
+def _describe_effect(effect, effect_type, outcome):
+    if effect_type == "shift":
+        return f"treatment adds {effect:g} to the outcome"
+    if effect_type == "d":
+        return f"treatment adds {effect:g} SD ({effect * outcome.sd:.4g}) to the outcome"
+    return f"treatment multiplies the outcome by {effect:g}"
+
+
+class TwoArm(Process):
+    """Two independent arms with any outcome distribution, effect type, SDs, baseline and missingness.
+
+    Parameters
+    ----------
+    n : int >= 2
+        Size of the control arm (arm 0).
+    ratio : float > 0, default 1
+        Allocation ratio n_treatment / n_control; the treatment arm has
+        ``round(ratio * n)`` participants (at least 2).
+    outcome : outcome, default normal(0, 1)
+        Distribution of the control arm's outcome (object or ``{type = ...}`` table;
+        a frozen scipy distribution works too).
+    effect : float, default 0
+        Size of the effect, in the units ``effect_type`` says.
+    effect_type : {"shift", "d", "ratio"}, default "shift"
+        ``shift``: treatment adds ``effect``; ``d``: treatment adds ``effect``
+        times the outcome's SD; ``ratio``: treatment multiplies the outcome by
+        ``effect`` (> 0; the outcome must be non-negative).
+    sd_ratio : float > 0, default 1
+        The treatment arm's deviations around its mean are multiplied by this
+        (its SD becomes sd_ratio times what the effect alone gives).
+    baseline_corr : float in (-1, 1), optional
+        Adds a ``baseline`` column: a pre-randomisation measurement with the
+        same distribution as the control-arm outcome, whose Pearson
+        correlation with the outcome is ``baseline_corr`` in each arm. Baseline
+        and outcome are joined by a Gaussian copula (normal scores with a
+        correlation calibrated so that the Pearson correlation on the outcome
+        scale is ``baseline_corr``; for a normal outcome the two coincide).
+        For a skewed outcome, strongly negative values may be unreachable (an
+        error says the range).
+    missing : missingness, optional
+        A mechanism (``mcar``, ``mar``, ``mnar``) applied after the effect;
+        missing outcomes become NaN and an ``observed`` column is added.
+
+    Notes
+    -----
+    ``true_effect()`` is the difference in population means (treatment minus
+    control) in outcome units, which the t-tests and regression analyses
+    estimate: ``effect`` for ``shift``, ``effect * sd`` for ``d``, and
+    ``mean0 * (effect - 1)`` for ``ratio`` (the ratio itself is ``effect``).
+    The null (``null()``) sets ``effect`` to 0, or to 1 for ``ratio``.
+    """
+
+    name = "two_arm"
+    params = {"n": Int(low=2), "ratio": POSITIVE, "outcome": Nested("outcome"), "effect": Real(),
+              "effect_type": EFFECT_TYPE, "sd_ratio": POSITIVE, "baseline_corr": CORR,
+              "missing": Nested("missingness", optional=True)}
+    defaults = {"ratio": 1.0, "outcome": Normal(), "effect": 0.0, "effect_type": "shift", "sd_ratio": 1.0,
+                "baseline_corr": None, "missing": None}
+
+    def __setstate__(self, state):
+        super().__setstate__(state)
+        self._check()
+
+    def _check(self):
+        if self.n1 < 2:
+            raise ParameterError(f"`ratio` gives a treatment arm of {self.n1} (< 2) with n = {self.n}; raise n or ratio.")
+        if self.effect_type == "ratio" and not self.effect > 0:
+            raise ParameterError(f"`effect` must be > 0 when `effect_type` = 'ratio'; got {self.effect:g}.")
+        _check_outcome_for(self.outcome, self.effect_type, self.sd_ratio != 1, self.name)
+        available = {"arm"} | ({"baseline"} if self.baseline_corr is not None else set())
+        _check_missing(self.missing, available, self.name)
+        latent = None if self.baseline_corr is None else latent_correlation(self.outcome, self.baseline_corr)
+        object.__setattr__(self, "_latent", latent)
+
+    @property
+    def n1(self) -> int:
+        """Size of the treatment arm."""
+        return int(round(self.ratio * self.n))
+
+    @property
+    def latent_corr(self) -> float | None:
+        """Correlation of the normal scores of baseline and outcome (None without a baseline)."""
+        return self._latent
+
+    def null_value(self):
+        return 1.0 if self.effect_type == "ratio" else 0.0
+
+    def draw_batch(self, rng, size):
+        n0, n1 = self.n, self.n1
+        shape = (size, n0 + n1)
+        per_rep = {}
+        if self._latent is None:
+            x = np.asarray(self.outcome.sample(rng, shape), dtype=float)
+        else:
+            z_base = rng.standard_normal(shape)
+            z = self._latent * z_base + math.sqrt(1.0 - self._latent**2) * rng.standard_normal(shape)
+            x = np.asarray(self.outcome.from_normal(z), dtype=float)
+            per_rep["baseline"] = np.asarray(self.outcome.from_normal(z_base), dtype=float)
+        x[:, n0:] = _effect_values(x[:, n0:], self.outcome, self.effect, self.effect_type, self.sd_ratio)
+        per_rep["y"] = x
+        arm = np.repeat(np.array([0, 1], dtype=np.int8), [n0, n1])
+        info = {"n0": n0, "n1": n1}
+        covariates = {"arm": np.broadcast_to(arm, shape)}
+        if "baseline" in per_rep:
+            covariates["baseline"] = per_rep["baseline"]
+        _apply_missing(self.missing, rng, x, covariates, per_rep, info)
+        return Batch(size, per_rep, {"arm": arm}, info)
+
+    def true_effect(self):
+        if self.effect_type == "shift":
+            return float(self.effect)
+        if self.effect_type == "d":
+            return float(self.effect * self.outcome.sd)
+        return float(self.outcome.mean * (self.effect - 1.0))
+
+    def describe(self):
+        parts = [f"two independent arms of {self.n} (control) and {self.n1} (treatment)",
+                 f"outcome {self.outcome.describe()}",
+                 _describe_effect(self.effect, self.effect_type, self.outcome)]
+        if self.sd_ratio != 1:
+            parts.append(f"treatment-arm deviations around its mean scaled by {self.sd_ratio:g}")
+        if self.baseline_corr is not None:
+            parts.append(f"a baseline covariate with the outcome's distribution, correlation {self.baseline_corr:g} "
+                         f"with the outcome (Gaussian copula, normal-scores correlation {self._latent:.3f})")
+        if self.missing is not None:
+            parts.append(self.missing.describe())
+        parts.append(f"estimand: treatment minus control difference in mean outcome = {self.true_effect():.4g}")
+        return "; ".join(parts)
+
+    def normal_case(self):
+        if not isinstance(self.outcome, Normal) or self.missing is not None or self.baseline_corr is not None:
+            return None
+        sd0 = self.outcome.sd
+        return {"design": "two-sample", "effect": self.true_effect(), "n": self.n, "ratio": self.n1 / self.n,
+                "sd0": sd0, "sd1": sd0 * self.sd_ratio, "sd": sd0 if self.sd_ratio == 1 else None}
+
+
+def _numbers(field, value, k=None, positive=False):
+    if isinstance(value, (str, bytes)) or not hasattr(value, "__len__"):
+        raise ParameterError(f"`{field}` must be a list of numbers; got {value!r}.")
+    vals = list(value)
+    if k is not None and len(vals) != k:
+        raise ParameterError(f"`{field}` must have one entry per arm ({k}); got {len(vals)}.")
+    for v in vals:
+        if isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(v) or (positive and v <= 0):
+            need = "positive numbers" if positive else "finite numbers"
+            raise ParameterError(f"`{field}` must hold {need}; got {value!r}.")
+    return tuple(float(v) for v in vals)
+
+
+class MultiArm(Process):
+    """k >= 2 independent arms (arm 0 = control) with per-arm effects, sizes and SDs.
+
+    Parameters
+    ----------
+    effects : list of k numbers
+        Effect of each arm relative to control, in the units of
+        ``effect_type``; the first entry is the control arm and must be the
+        null value (0, or 1 for ``ratio``). ``k`` is its length.
+    n : int >= 2 or list of k ints >= 2
+        Size of the control arm (then ``allocation`` gives the others), or
+        the size of every arm.
+    allocation : list of k positive numbers, optional
+        Relative arm sizes: arm j has ``round(n * allocation[j] / allocation[0])``
+        participants. Default: equal arms. Not with a list ``n``.
+    sds : list of k positive numbers, optional
+        SD of each arm in outcome units; arm j's deviations around its mean
+        are multiplied by ``sds[j] / outcome.sd``. Default: the outcome's SD.
+    outcome : outcome, default normal(0, 1)
+    effect_type : {"shift", "d", "ratio"}, default "shift"
+    missing : missingness, optional
+        ``mcar``, ``mnar``, or ``mar`` with ``on = "arm"``.
+
+    Notes
+    -----
+    Columns ``y`` and ``arm`` (0..k-1, in arm order). ``true_effects()`` gives
+    each arm's mean difference from control in outcome units; ``true_effect()``
+    is that of arm 1 when k = 2, else None (a k-arm analysis has several estimands).
+    """
+
+    name = "multi_arm"
+    effect_param = "effects"
+    params = {"effects": Anything(optional=False), "n": Anything(optional=False), "allocation": Anything(),
+              "sds": Anything(), "outcome": Nested("outcome"), "effect_type": EFFECT_TYPE,
+              "missing": Nested("missingness", optional=True)}
+    defaults = {"allocation": None, "sds": None, "outcome": Normal(), "effect_type": "shift", "missing": None}
+
+    def __setstate__(self, state):
+        super().__setstate__(state)
+        self._check()
+
+    def _check(self):
+        p = dict(self._p)
+        p["effects"] = effects = _numbers("effects", p["effects"])
+        k = len(effects)
+        if k < 2:
+            raise ParameterError(f"`effects` must list at least 2 arms (control first); got {k}.")
+        null = 1.0 if p["effect_type"] == "ratio" else 0.0
+        if effects[0] != null:
+            raise ParameterError(f"`effects[0]` is the control arm and must be {null:g}; got {effects[0]:g} "
+                                 f"(give effects relative to control, e.g. [{null:g}, ...]).")
+        if p["effect_type"] == "ratio" and min(effects) <= 0:
+            raise ParameterError(f"`effects` must be > 0 when `effect_type` = 'ratio'; got {list(effects)}.")
+        n = p["n"]
+        if isinstance(n, numbers.Integral) and not isinstance(n, bool):
+            n = Int(low=2).clean("n", n)
+            if p["allocation"] is not None:
+                p["allocation"] = alloc = _numbers("allocation", p["allocation"], k, positive=True)
+                sizes = tuple(int(round(n * a / alloc[0])) for a in alloc)
+            else:
+                sizes = (n,) * k
+        else:
+            if isinstance(n, (str, bytes)) or not hasattr(n, "__len__"):
+                raise ParameterError(f"`n` must be an integer >= 2 or a list of {k} integers >= 2; got {n!r}.")
+            if p["allocation"] is not None:
+                raise ParameterError("`allocation` and a list `n` were both given: give arm sizes or weights, not both.")
+            n = tuple(Int(low=2).clean(f"n[{j}]", v) for j, v in enumerate(n))
+            if len(n) != k:
+                raise ParameterError(f"`n` must have one entry per arm ({k}); got {len(n)}.")
+            sizes = n
+        p["n"] = n
+        small = [j for j, s in enumerate(sizes) if s < 2]
+        if small:
+            raise ParameterError(f"`allocation` gives arm {small[0]} only {sizes[small[0]]} participants (< 2); "
+                                 "raise n or that arm's weight.")
+        outcome = p["outcome"]
+        if p["sds"] is not None:
+            p["sds"] = _numbers("sds", p["sds"], k, positive=True)
+            base_sd = outcome.sd
+            factors = tuple(s / base_sd for s in p["sds"])
+        else:
+            factors = (1.0,) * k
+        _check_outcome_for(outcome, p["effect_type"], any(f != 1 for f in factors), self.name)
+        _check_missing(p["missing"], {"arm"}, self.name)
+        object.__setattr__(self, "_p", p)
+        object.__setattr__(self, "_sizes", sizes)
+        object.__setattr__(self, "_factors", factors)
+
+    @property
+    def k(self) -> int:
+        """Number of arms."""
+        return len(self.effects)
+
+    @property
+    def sizes(self) -> tuple[int, ...]:
+        """Participants per arm."""
+        return self._sizes
+
+    def null_value(self):
+        return [1.0 if self.effect_type == "ratio" else 0.0] * self.k
+
+    def true_effects(self) -> list[float]:
+        """Mean difference of each arm from control, in outcome units (0 for the control arm)."""
+        o = self.outcome
+        if self.effect_type == "shift":
+            return list(self.effects)
+        if self.effect_type == "d":
+            return [e * o.sd for e in self.effects]
+        return [o.mean * (e - 1.0) for e in self.effects]
+
+    def true_effect(self):
+        return self.true_effects()[1] if self.k == 2 else None
+
+    def draw_batch(self, rng, size):
+        sizes = self._sizes
+        total = sum(sizes)
+        shape = (size, total)
+        x = np.asarray(self.outcome.sample(rng, shape), dtype=float)
+        start = 0
+        for j, m in enumerate(sizes):
+            if j > 0 or self._factors[j] != 1:
+                x[:, start:start + m] = _effect_values(x[:, start:start + m], self.outcome, self.effects[j],
+                                                       self.effect_type, self._factors[j])
+            start += m
+        arm = np.repeat(np.arange(self.k, dtype=np.int8), sizes)
+        per_rep = {"y": x}
+        info = {"sizes": sizes}
+        _apply_missing(self.missing, rng, x, {"arm": np.broadcast_to(arm, shape)}, per_rep, info)
+        return Batch(size, per_rep, {"arm": arm}, info)
+
+    def describe(self):
+        eff = ", ".join(f"{e:g}" for e in self.effects[1:])
+        unit = {"shift": "added to the outcome", "d": "SDs added to the outcome",
+                "ratio": "multiplying the outcome"}[self.effect_type]
+        parts = [f"{self.k} independent arms of sizes {', '.join(map(str, self._sizes))} (arm 0 = control)",
+                 f"outcome {self.outcome.describe()}", f"effects vs control {eff} ({unit})"]
+        if self.sds is not None:
+            parts.append(f"arm SDs {', '.join(f'{s:g}' for s in self.sds)}")
+        if self.missing is not None:
+            parts.append(self.missing.describe())
+        te = ", ".join(f"{t:.4g}" for t in self.true_effects()[1:])
+        parts.append(f"estimands: mean differences from control = {te}")
+        return "; ".join(parts)
