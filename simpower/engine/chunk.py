@@ -1,19 +1,39 @@
 """One chunk of replicates: draw, analyse, capture failures.
 
-A chunk's random numbers depend only on (run entropy, grid point, chunk index)
-through ``SeedSequence(entropy, spawn_key=(point, chunk))`` -- the same stream
+Reproducibility promise: a chunk's random numbers depend only on (run
+entropy, grid point key, chunk index) through
+``SeedSequence(entropy, spawn_key=(point, chunk))`` -- the same stream
 ``SeedSequence(entropy).spawn(...)[point].spawn(...)[chunk]`` would give -- and
 on the chunk's size, which belongs to the plan. So the numbers are the same for
-any number of jobs and any executor.
+any number of jobs, any executor (serial, loky, dask) and any order in which
+chunks finish, and a chunk recomputed after a crash equals the lost one.
 
 Failure causes are strings: ``"error:<ExceptionType>"`` (the analysis raised),
 ``"process:<ExceptionType>"`` (drawing the data raised),
 ``"nonfinite_pvalue"``, ``"warning:<WarningType>"`` (fit trouble: the analysis
-warned; its values are kept and the run's policy decides), ``"timeout"``.
+warned; its values are kept and the run's policy decides), ``"timeout"`` (a
+per-replicate call ran past the time limit). A failing replicate never stops
+the chunk; the first message of each cause is kept.
+
+Time limit: with ``timeout`` set, every per-replicate *analysis* call is
+interrupted by ``SIGALRM`` (``signal.setitimer``) after ``timeout`` seconds
+and recorded as ``"timeout"``. Drawing the data is not timed: an interrupted
+draw would leave the chunk's generator part-way and shift the numbers of the
+later replicates by an amount that depends on the clock, breaking the
+promise above (analyses draw no numbers from the chunk's generator). That works only on
+POSIX, in the main thread of a process: the serial path and loky worker
+processes qualify; dask workers (threads) and the threading backend do not,
+and there the limit is not enforced (``ChunkOutput.timeout_enforced`` is
+False; the runner warns). Batch paths are not timed, and a long call inside C
+code (one huge LAPACK call) is interrupted only when it returns to Python.
 """
 
 from __future__ import annotations
 
+import os
+import signal
+import socket
+import threading
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -23,6 +43,7 @@ import numpy as np
 from ..analyses.base import FIELDS, as_test_result
 
 IGNORED_WARNINGS = (DeprecationWarning, PendingDeprecationWarning, FutureWarning, ImportWarning, ResourceWarning)
+TIMEOUT = "timeout"
 
 
 def chunk_seed(entropy: int, point: int, chunk: int) -> np.random.SeedSequence:
@@ -44,6 +65,57 @@ class ChunkOutput:
     paths: dict[str, str] = field(default_factory=dict)
     hypotheses: dict[str, list[str]] = field(default_factory=dict)
     seconds: float = 0.0
+    #: wall-clock start (seconds since the epoch) and the worker that ran it ("host:pid")
+    started_at: float = 0.0
+    worker: str = ""
+    #: None: no time limit asked; True/False: whether the limit could be enforced there
+    timeout_enforced: bool | None = None
+
+
+class ReplicateTimeout(BaseException):
+    """Raised by the SIGALRM handler inside a timed call.
+
+    A ``BaseException`` so that a user's ``except Exception`` cannot swallow it.
+    """
+
+
+class _Limiter:
+    """Per-replicate time limit through ``signal.setitimer`` (POSIX main thread only)."""
+
+    def __init__(self, seconds: float | None):
+        self.seconds = seconds
+        self.enforced = bool(seconds) and hasattr(signal, "setitimer") and \
+            threading.current_thread() is threading.main_thread()
+        self._old = None
+
+    def __enter__(self):
+        if self.enforced:
+            self._old = signal.signal(signal.SIGALRM, self._fire)
+        return self
+
+    def __exit__(self, *exc):
+        if self.enforced:
+            signal.setitimer(signal.ITIMER_REAL, 0)
+            signal.signal(signal.SIGALRM, self._old if self._old is not None else signal.SIG_DFL)
+        return False
+
+    @staticmethod
+    def _fire(signum, frame):
+        raise ReplicateTimeout
+
+    def call(self, fn, arg):
+        """``fn(arg)`` under the time limit (raises ReplicateTimeout when it runs out)."""
+        if not self.enforced:
+            return fn(arg)
+        signal.setitimer(signal.ITIMER_REAL, self.seconds)
+        try:
+            return fn(arg)
+        finally:
+            signal.setitimer(signal.ITIMER_REAL, 0)
+
+    @property
+    def message(self) -> str:
+        return f"a replicate ran past the time limit of {self.seconds:g} s"
 
 
 class _Causes:
@@ -64,7 +136,7 @@ def _empty(size: int) -> dict[str, np.ndarray]:
     return rec
 
 
-def _fill(rec, i, res, causes: _Causes):
+def _fill(rec, i, res):
     rec["pvalue"][i] = res.pvalue
     rec["estimate"][i] = res.estimate
     rec["se"][i] = res.se
@@ -77,16 +149,19 @@ def _fill(rec, i, res, causes: _Causes):
         pv[i, : res.pvalues.size] = res.pvalues
 
 
-def _apply_one(analysis, data, rec, i, causes: _Causes, hyp: dict, name: str):
+def _apply_one(analysis, data, rec, i, causes: _Causes, hyp: dict, name: str, limit: _Limiter):
     """Run one analysis on one data set, recording values or the failure cause."""
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            res = as_test_result(analysis(data))
+            res = as_test_result(limit.call(analysis, data))
+        except ReplicateTimeout:
+            rec["status"][i] = causes.code(TIMEOUT, limit.message)
+            return
         except Exception as exc:  # a user analysis may raise anything: count it by type
             rec["status"][i] = causes.code(f"error:{type(exc).__name__}", f"{type(exc).__name__}: {exc}")
             return
-    _fill(rec, i, res, causes)
+    _fill(rec, i, res)
     if res.names and name not in hyp:
         hyp[name] = list(res.names)
     if not np.isfinite(res.pvalue):
@@ -108,14 +183,30 @@ def _apply_batch(analysis, batch, rec, causes: _Causes, hyp: dict, name: str):
         if "names" in out:
             hyp[name] = list(out["names"])
     for cause, mask in (out.get("trouble") or {}).items():
-        rec["status"][np.asarray(mask, bool) & (rec["status"] == 0)] = causes.code(cause, out.get("trouble_messages", {}).get(cause, ""))
+        rec["status"][np.asarray(mask, bool) & (rec["status"] == 0)] = causes.code(
+            cause, out.get("trouble_messages", {}).get(cause, ""))
     bad = ~np.isfinite(rec["pvalue"]) & (rec["status"] == 0)
     if bad.any():
         rec["status"][bad] = causes.code("nonfinite_pvalue", "p-value was not finite (e.g. zero variance)")
 
 
-def run_chunk(scenario, entropy: int, point: int, chunk: int, size: int) -> ChunkOutput:
-    """Simulate and analyse ``size`` replicates of ``scenario``; never raises for a failing replicate."""
+def run_chunk(scenario, entropy: int, point: int, chunk: int, size: int,
+              timeout: float | None = None) -> ChunkOutput:
+    """Simulate and analyse ``size`` replicates of ``scenario``; never raises for a failing replicate.
+
+    Parameters
+    ----------
+    scenario : Scenario
+    entropy : int
+        The run's seed entropy.
+    point, chunk : int
+        Grid point key and chunk index (the seed's spawn key).
+    size : int
+        Replicates in this chunk (fixed by the plan).
+    timeout : float, optional
+        Time limit in seconds for each per-replicate analysis call (see the module notes).
+    """
+    started = time.time()
     t0 = time.perf_counter()
     rng = np.random.default_rng(chunk_seed(entropy, point, chunk))
     process = scenario.process
@@ -124,28 +215,30 @@ def run_chunk(scenario, entropy: int, point: int, chunk: int, size: int) -> Chun
     records = {name: _empty(size) for name in analyses}
     paths: dict[str, str] = {}
     hyp: dict[str, list[str]] = {}
-    if process.has_batch:
-        batch = process.draw_batch(rng, size)
-        for name, analysis in analyses.items():
-            rec = records[name]
-            if analysis.has_batch and analysis.supports_batch(batch):
-                paths[name] = "batch"
-                _apply_batch(analysis, batch, rec, causes, hyp, name)
-            else:
-                paths[name] = "per-replicate"
-                for i in range(size):
-                    _apply_one(analysis, batch.replicate(i), rec, i, causes, hyp, name)
-    else:
-        paths = {name: "per-replicate" for name in analyses}
-        for i in range(size):
-            try:
-                data = process(rng)
-            except Exception as exc:
-                code = causes.code(f"process:{type(exc).__name__}", f"{type(exc).__name__}: {exc}")
-                for rec in records.values():
-                    rec["status"][i] = code
-                continue
+    with _Limiter(timeout) as limit:
+        if process.has_batch:
+            batch = process.draw_batch(rng, size)
             for name, analysis in analyses.items():
-                _apply_one(analysis, data, records[name], i, causes, hyp, name)
+                rec = records[name]
+                if analysis.has_batch and analysis.supports_batch(batch):
+                    paths[name] = "batch"
+                    _apply_batch(analysis, batch, rec, causes, hyp, name)
+                else:
+                    paths[name] = "per-replicate"
+                    for i in range(size):
+                        _apply_one(analysis, batch.replicate(i), rec, i, causes, hyp, name, limit)
+        else:
+            paths = {name: "per-replicate" for name in analyses}
+            for i in range(size):
+                try:
+                    data = process(rng)
+                except Exception as exc:
+                    code = causes.code(f"process:{type(exc).__name__}", f"{type(exc).__name__}: {exc}")
+                    for rec in records.values():
+                        rec["status"][i] = code
+                    continue
+                for name, analysis in analyses.items():
+                    _apply_one(analysis, data, records[name], i, causes, hyp, name, limit)
     return ChunkOutput(point, chunk, size, records, causes.causes, causes.messages, paths, hyp,
-                       time.perf_counter() - t0)
+                       time.perf_counter() - t0, started_at=started, worker=f"{socket.gethostname()}:{os.getpid()}",
+                       timeout_enforced=None if not timeout else limit.enforced)

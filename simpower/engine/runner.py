@@ -1,12 +1,35 @@
-"""Plan and run: chunks, seeds, executor, progress, failure threshold, store hooks.
+"""Plan and run: chunks, seeds, executor, progress, failure policy, run store, resume.
 
-The plan fixes the chunk size from the scenario (never from ``n_jobs``):
-:data:`BATCH_CHUNK` replicates when the process draws batches, else
-:data:`LOOP_CHUNK`. Chunk k of point g covers replicates
+Reproducibility promise. The plan fixes the chunk size from the scenario
+(never from ``n_jobs``): :data:`BATCH_CHUNK` replicates when the process draws
+batches, else :data:`LOOP_CHUNK`. Chunk k of grid point g covers replicates
 ``[k * chunk_size, min(reps, (k + 1) * chunk_size))`` and is seeded by
-``SeedSequence(seed, spawn_key=(g, k))``; so runs with the same seed agree
-whatever the number of jobs or the executor, and a longer run extends a
-shorter one chunk for chunk.
+``SeedSequence(seed, spawn_key=(g, k))``; its numbers depend only on (seed,
+point key, chunk index, chunk size). So runs with the same seed agree whatever
+the number of jobs or the executor (serial, loky, dask), a longer run extends a
+shorter one chunk for chunk, and a run resumed from a store equals an
+uninterrupted one bit for bit (failure codes included: causes are numbered by
+first appearance in chunk order, see :mod:`simpower.engine.collect`).
+
+Run store. With ``store=`` (a path or a store object with ``load``/``save``)
+every finished chunk is saved as it arrives and stored chunks are reused. A
+path opens a :class:`~simpower.engine.store.RunStore`, which checks each grid
+point's scenario fingerprint, seed and chunk size and refuses a mismatch. When
+``seed`` is None and the store already holds a run, its seed is reused, so the
+same call resumes.
+
+Failure policy. A failing replicate never stops a chunk. After each chunk the
+runner checks, per grid point and analysis, the share of replicates with a
+*hard* failure (an exception, a non-finite p-value, a timeout, a failed draw;
+fit-trouble warnings are not counted): once at least ``min(reps, 100)``
+replicates are in and that share exceeds ``max_failure_rate``, the run stops
+with a :class:`~simpower.errors.RunError` naming the causes and the first
+message of each. Finished chunks stay in the store.
+
+Memory. ``keep_records=False`` keeps only per-chunk tallies
+(:mod:`simpower.engine.tally`) instead of per-replicate arrays; it is the
+default above :data:`KEEP_RECORDS_LIMIT` replicates per point, so memory is
+bounded by the chunk size, not the total.
 """
 
 from __future__ import annotations
@@ -14,22 +37,36 @@ from __future__ import annotations
 import math
 import sys
 import time
-from dataclasses import dataclass
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any, Protocol, Sequence
 
 import numpy as np
 
 from ..errors import ParameterError, RunError
-from ..result import Records, RunResult
+from ..result import RunResult
+from ..summaries import WARNING_PREFIX
 from .chunk import ChunkOutput, run_chunk
-from .executor import effective_jobs, execute
+from .collect import CauseBook, RecordCollector
+from .executor import check_backend, effective_jobs, execute
+from .tally import PointTally, StreamedResult
 
 BATCH_CHUNK = 2000
 LOOP_CHUNK = 200
+#: above this many replicates per point, records are not kept in memory unless asked
+KEEP_RECORDS_LIMIT = 1_000_000
+#: replicates a point needs before the failure threshold is applied
+MIN_FOR_STOP = 100
 
 
 class ChunkStore(Protocol):
-    """What the engine needs of a run store (see :mod:`simpower.engine.store`)."""
+    """What the engine needs of a run store (see :mod:`simpower.engine.store`).
+
+    A store may also offer ``bind(point, scenario, seed, chunk_size, reps)``
+    (check or record a grid point) and a ``seed`` attribute (the stored seed);
+    the runner uses them when present.
+    """
 
     def load(self, point: int, chunk: int, size: int) -> ChunkOutput | None: ...
 
@@ -70,143 +107,212 @@ class _Point:
     scenario: Any
     reps: int
     key: int
-    arrays: dict
-    causes: list
-    messages: dict
-    paths: dict
-    hyp: dict
+    chunk_size: int
+    collector: RecordCollector | None
+    tally: PointTally | None
+    paths: dict = field(default_factory=dict)
     chunk_seconds: float = 0.0
     done: int = 0
-    failed: int = 0
+    hard: dict = field(default_factory=dict)
+    counts: dict = field(default_factory=dict)
+    #: streaming mode only: the causes and hypothesis labels seen so far
+    stream_book: CauseBook | None = None
+    hyp: dict = field(default_factory=dict)
+
+    def add(self, out: ChunkOutput) -> None:
+        if self.collector is not None:
+            self.collector.add(out, out.chunk * self.chunk_size)
+        else:
+            self.stream_book.remap(out)
+            for name, h in out.hypotheses.items():
+                self.hyp.setdefault(name, h)
+            self.tally.add(out)
+        for name, rec in out.records.items():
+            codes, n = np.unique(rec["status"][rec["status"] > 0], return_counts=True)
+            per = self.counts.setdefault(name, {})
+            for code, k in zip(codes, n):
+                cause = out.causes[int(code) - 1]
+                per[cause] = per.get(cause, 0) + int(k)
+                if not cause.startswith(WARNING_PREFIX):
+                    self.hard[name] = self.hard.get(name, 0) + int(k)
+        for name, p in out.paths.items():
+            self.paths.setdefault(name, p)
+        self.chunk_seconds += out.seconds
+        self.done += out.size
+
+    @property
+    def book(self) -> CauseBook:
+        return self.collector.book if self.collector is not None else self.stream_book
 
 
-def _merge(pt: _Point, out: ChunkOutput, chunk_size: int) -> None:
-    start = out.chunk * chunk_size
-    stop = start + out.size
-    remap = np.zeros(len(out.causes) + 1, np.int16)
-    for j, cause in enumerate(out.causes, start=1):
-        if cause not in pt.causes:
-            pt.causes.append(cause)
-            pt.messages[cause] = out.messages.get(cause, "")
-        remap[j] = pt.causes.index(cause) + 1
-    for name, rec in out.records.items():
-        arr = pt.arrays[name]
-        for f, v in rec.items():
-            if f == "status":
-                arr["status"][start:stop] = remap[v]
-            elif f == "pvalues":
-                if "pvalues" not in arr:
-                    arr["pvalues"] = np.full((pt.reps, v.shape[1]), np.nan)
-                arr["pvalues"][start:stop, : v.shape[1]] = v
-            else:
-                arr[f][start:stop] = v
-        pt.failed += int(np.count_nonzero(rec["status"] > 0))
-    for name, p in out.paths.items():
-        pt.paths.setdefault(name, p)
-    for name, h in out.hypotheses.items():
-        pt.hyp.setdefault(name, h)
-    pt.chunk_seconds += out.seconds
-    pt.done += out.size
+def _check_failures(pt: _Point, limit: float, store) -> None:
+    """Raise RunError once a point's share of hard failures exceeds ``limit``."""
+    if pt.done < min(pt.reps, MIN_FOR_STOP) or not pt.hard:
+        return
+    name, worst = max(pt.hard.items(), key=lambda kv: kv[1])
+    if worst <= limit * pt.done:
+        return
+    book = pt.book
+    causes = {c: n for c, n in pt.counts.get(name, {}).items() if not c.startswith(WARNING_PREFIX)}
+    shown = ", ".join(f"{c} x{n}" for c, n in sorted(causes.items(), key=lambda kv: -kv[1]))
+    first = "; ".join(f"first {c}: {book.messages.get(c, '')}" for c in list(causes)[:3])
+    kept = f" Finished chunks are kept in {getattr(store, 'path', 'the store')}." if store is not None else ""
+    raise RunError(f"stopped: {worst} of {pt.done} replicates of analysis `{name}` failed at grid point {pt.key} "
+                   f"({worst / pt.done:.1%} > max_failure_rate {limit:g}): {shown} ({first}). Fix the analysis "
+                   f"or raise `max_failure_rate` (--max-failure-rate).{kept}")
 
 
-def _hard_failures(out: ChunkOutput) -> int:
-    worst = 0
-    for rec in out.records.values():
-        bad = rec["status"] > 0
-        for j, cause in enumerate(out.causes, start=1):
-            if cause.startswith("warning:"):
-                bad &= rec["status"] != j
-        worst = max(worst, int(bad.sum()))
-    return worst
-
-
-def _progress(total: int, enabled: bool | None, desc: str):
+def _progress(total: int, enabled: bool | None, desc: str, initial: int = 0):
     if enabled is None:
         enabled = sys.stderr.isatty()
     from tqdm import tqdm
 
-    return tqdm(total=total, disable=not enabled, file=sys.stderr, unit="rep", desc=desc, leave=False,
-                dynamic_ncols=True)
+    return tqdm(total=total, initial=initial, disable=not enabled, file=sys.stderr, unit="rep", desc=desc,
+                leave=False, dynamic_ncols=True)
+
+
+def _open_store(store):
+    """(store object, owned) for a path or an object."""
+    if store is None or hasattr(store, "load"):
+        return store, False
+    if isinstance(store, (str, Path)):
+        from .store import RunStore
+
+        return RunStore(store), True
+    raise ParameterError(f"`store` must be a file path or a store with load/save; got {store!r}.")
+
+
+def _check_args(reps, keys, n_scen, chunk_size, fit_trouble, max_failure_rate, timeout, keep_records):
+    if fit_trouble not in ("failure", "nonrejection"):
+        raise ParameterError(f"`fit_trouble` must be 'failure' or 'nonrejection'; got {fit_trouble!r}.")
+    if isinstance(max_failure_rate, bool) or not isinstance(max_failure_rate, (int, float)) \
+            or not (0 < max_failure_rate <= 1):
+        raise ParameterError(f"`max_failure_rate` must be in (0, 1]; got {max_failure_rate!r}.")
+    if timeout is not None and (isinstance(timeout, bool) or not isinstance(timeout, (int, float))
+                                or not (timeout > 0 and math.isfinite(timeout))):
+        raise ParameterError(f"`timeout` must be a number of seconds > 0 (or None); got {timeout!r}.")
+    if keep_records not in (None, True, False):
+        raise ParameterError(f"`keep_records` must be True, False or None (automatic); got {keep_records!r}.")
+    reps_list = [reps] * n_scen if np.ndim(reps) == 0 else list(reps)
+    if len(reps_list) != n_scen:
+        raise ParameterError(f"`reps` must be one integer or one per scenario ({n_scen}); got {len(reps_list)}.")
+    for r in reps_list:
+        if isinstance(r, bool) or not isinstance(r, (int, np.integer)) or r < 1:
+            raise ParameterError(f"`reps` must be an integer >= 1; got {r!r}.")
+    keys = list(range(n_scen)) if keys is None else [int(k) for k in keys]
+    if len(keys) != n_scen or len(set(keys)) != n_scen or min(keys, default=0) < 0:
+        raise ParameterError(f"`keys` must be {n_scen} distinct integers >= 0; got {keys!r}.")
+    if chunk_size is not None and (isinstance(chunk_size, bool) or not isinstance(chunk_size, (int, np.integer))
+                                   or chunk_size < 1):
+        raise ParameterError(f"`chunk_size` must be an integer >= 1; got {chunk_size!r}.")
+    return reps_list, keys
 
 
 def run_many(scenarios: Sequence, reps: int | Sequence[int], *, seed=None, n_jobs: int | None = -1,
              chunk_size: int | None = None, progress: bool | None = None, fit_trouble: str = "failure",
-             backend: str | None = None, address: str | None = None, store: ChunkStore | None = None,
-             max_failure_rate: float = 0.5, keys: Sequence[int] | None = None,
-             desc: str = "simulating") -> list[RunResult]:
+             backend: str | None = None, address: Any = None, store: Any = None,
+             max_failure_rate: float = 0.5, keys: Sequence[int] | None = None, desc: str = "simulating",
+             timeout: float | None = None, keep_records: bool | None = None) -> list[RunResult]:
     """Run several scenarios (grid points) with one pool of workers.
 
-    Point ``i`` uses seed key ``keys[i]`` (default ``i``). See :func:`run`.
+    Point ``i`` uses seed key ``keys[i]`` (default ``i``). See :func:`run` for
+    the other parameters; ``reps`` may give one count per scenario.
     """
-    entropy = normalize_seed(seed)
-    if fit_trouble not in ("failure", "nonrejection"):
-        raise ParameterError(f"`fit_trouble` must be 'failure' or 'nonrejection'; got {fit_trouble!r}.")
-    if not (0 < max_failure_rate <= 1):
-        raise ParameterError(f"`max_failure_rate` must be in (0, 1]; got {max_failure_rate}.")
     scenarios = list(scenarios)
-    reps_list = [reps] * len(scenarios) if np.ndim(reps) == 0 else list(reps)
-    for r in reps_list:
-        if isinstance(r, bool) or not isinstance(r, (int, np.integer)) or r < 1:
-            raise ParameterError(f"`reps` must be an integer >= 1; got {r!r}.")
-    keys = list(range(len(scenarios))) if keys is None else list(keys)
-    if chunk_size is not None and (not isinstance(chunk_size, (int, np.integer)) or chunk_size < 1):
-        raise ParameterError(f"`chunk_size` must be an integer >= 1; got {chunk_size!r}.")
-    sizes = [chunk_size or default_chunk_size(s) for s in scenarios]
+    reps_list, keys = _check_args(reps, keys, len(scenarios), chunk_size, fit_trouble, max_failure_rate,
+                                  timeout, keep_records)
+    backend = check_backend(backend)
+    store, owned = _open_store(store)
+    try:
+        stored_seed = getattr(store, "seed", None) if store is not None else None
+        entropy = normalize_seed(stored_seed if seed is None and stored_seed is not None else seed)
+        return _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend,
+                    address, store, max_failure_rate, desc, timeout, keep_records)
+    finally:
+        if owned:
+            store.close()
 
+
+def _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble):
     points = []
-    tasks = []
     for sc, r, key, cs in zip(scenarios, reps_list, keys, sizes):
-        arrays = {name: {f: np.full(r, np.nan) for f in ("pvalue", "estimate", "se", "ci_low", "ci_high")}
-                  for name in sc.analyses}
-        for a in arrays.values():
-            a["status"] = np.zeros(r, np.int16)
-        pt = _Point(sc, int(r), int(key), arrays, [], {}, {}, {})
+        keep = keep_records if keep_records is not None else r <= KEEP_RECORDS_LIMIT
+        if keep:
+            pt = _Point(sc, int(r), key, cs, RecordCollector(sc.analyses, int(r)), None)
+        else:
+            pt = _Point(sc, int(r), key, cs, None, PointTally(sc.analyses, sc.alpha, fit_trouble, sc.true_effect),
+                        stream_book=CauseBook())
         points.append(pt)
-        for k, size in plan_chunks(int(r), cs):
-            cached = store.load(key, k, size) if store is not None else None
+    return points
+
+
+def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend, address,
+         store, max_failure_rate, desc, timeout, keep_records):
+    sizes = [int(chunk_size or default_chunk_size(s)) for s in scenarios]
+    points = _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble)
+    by_key = {pt.key: pt for pt in points}
+    tasks = []
+    reused = 0
+    for pt in points:
+        if store is not None and hasattr(store, "bind"):
+            store.bind(pt.key, pt.scenario, entropy, pt.chunk_size, pt.reps)
+        for k, size in plan_chunks(pt.reps, pt.chunk_size):
+            cached = store.load(pt.key, k, size) if store is not None else None
             if cached is not None:
-                _merge(pt, cached, cs)
+                pt.add(cached)
+                reused += size
             else:
-                tasks.append((sc, entropy, int(key), k, size))
-    by_key = {pt.key: (pt, cs) for pt, cs in zip(points, sizes)}
+                extra = (timeout,) if timeout else ()
+                tasks.append((pt.scenario, entropy, pt.key, k, size, *extra))
+    for pt in points:
+        _check_failures(pt, max_failure_rate, store)
     total = sum(t[4] for t in tasks)
     t0 = time.perf_counter()
-    bar = _progress(total, progress, desc)
+    bar = _progress(total + reused, progress, desc, initial=reused)
+    gen = execute(run_chunk, tasks, n_jobs=n_jobs, backend=backend, address=address)
+    unenforced = False
     try:
-        for out in execute(run_chunk, tasks, n_jobs=n_jobs, backend=backend, address=address):
-            pt, cs = by_key[out.point]
+        for out in gen:
+            pt = by_key[out.point]
             if store is not None:
                 store.save(out)
-            _merge(pt, out, cs)
+            pt.add(out)
+            unenforced |= out.timeout_enforced is False
             bar.update(out.size)
-            if pt.failed > max_failure_rate * pt.done * len(pt.arrays) and pt.done >= min(pt.reps, 100):
-                worst = _hard_failures(out)
-                if worst > max_failure_rate * out.size:
-                    first = next(iter(pt.messages.items()), ("", ""))
-                    raise RunError(
-                        f"stopped: more than {max_failure_rate:.0%} of replicates failed "
-                        f"(first {first[0]}: {first[1]}); fix the analysis or raise `max_failure_rate`."
-                    )
+            _check_failures(pt, max_failure_rate, store)
     except KeyboardInterrupt:
-        raise RunInterrupted("interrupted; finished chunks were kept" + (" in the store" if store else "")) from None
+        done = sum(pt.done for pt in points)
+        where = (f"; {done} of {sum(reps_list)} replicates are in {getattr(store, 'path', 'the store')}: "
+                 f"run the same call again (same store) to resume" if store is not None else
+                 "; nothing was kept: give a store (store=PATH, --store PATH) to make a run resumable")
+        raise RunInterrupted("interrupted" + where + ".") from None
     finally:
+        gen.close()
         bar.close()
+    if unenforced:
+        warnings.warn(f"the per-replicate time limit ({timeout:g} s) could not be enforced on this executor "
+                      f"(it needs a process's main thread: serial or loky); it was ignored.", RuntimeWarning,
+                      stacklevel=3)
     seconds = time.perf_counter() - t0
-    results = []
-    for pt, cs in zip(points, sizes):
-        recs = {name: Records(a["pvalue"], a["estimate"], a["se"], a["ci_low"], a["ci_high"], a["status"],
-                              list(pt.causes), dict(pt.messages), a.get("pvalues"), pt.hyp.get(name, []))
-                for name, a in pt.arrays.items()}
-        results.append(RunResult(pt.scenario, pt.reps, entropy, cs, recs, pt.paths, seconds, fit_trouble,
-                                 n_jobs=effective_jobs(n_jobs), backend=backend, point=pt.key,
-                                 chunk_seconds=pt.chunk_seconds))
-    return results
+    return [_result(pt, entropy, seconds, fit_trouble, n_jobs, backend, store) for pt in points]
+
+
+def _result(pt: _Point, entropy, seconds, fit_trouble, n_jobs, backend, store) -> RunResult:
+    jobs = effective_jobs(n_jobs) if backend != "dask" else None
+    if pt.collector is not None:
+        return RunResult(pt.scenario, pt.reps, entropy, pt.chunk_size, pt.collector.records(), pt.paths, seconds,
+                         fit_trouble, n_jobs=jobs, backend=backend, point=pt.key, chunk_seconds=pt.chunk_seconds)
+    causes, messages, _ = pt.stream_book.canonical()
+    return StreamedResult(pt.scenario, pt.reps, entropy, pt.chunk_size, pt.tally, causes, messages, pt.paths,
+                          seconds, fit_trouble, n_jobs=jobs, backend=backend, point=pt.key,
+                          chunk_seconds=pt.chunk_seconds, hypotheses=pt.hyp,
+                          store_path=str(getattr(store, "path", "")) or None)
 
 
 def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
         progress: bool | None = None, fit_trouble: str = "failure", backend: str | None = None,
-        address: str | None = None, store: ChunkStore | None = None, max_failure_rate: float = 0.5,
-        point: int = 0) -> RunResult:
+        address: Any = None, store: Any = None, max_failure_rate: float = 0.5, point: int = 0,
+        timeout: float | None = None, keep_records: bool | None = None) -> RunResult:
     """Simulate ``reps`` replicates of ``scenario`` and summarise them.
 
     Parameters
@@ -214,23 +320,40 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
     scenario : Scenario
     reps : int >= 1
     seed : int >= 0, SeedSequence or None
-        None draws fresh entropy; the result records it (``result.seed``).
+        None draws fresh entropy (or reuses the store's seed when resuming);
+        the result records it (``result.seed``).
     n_jobs : int
-        Worker processes; -1 (default) uses all cores.
+        Worker processes; -1 (default) uses all cores; 1 runs in this process.
     chunk_size : int, optional
         Replicates per task; defaults to the plan's choice for the scenario.
+        Part of the reproducibility promise: the same seed and chunk size give
+        the same numbers.
     progress : bool, optional
         Progress bar on stderr; default on only when stderr is a terminal.
     fit_trouble : {'failure', 'nonrejection'}
         What replicates whose analysis warned (non-convergence, singular fit)
         count as; the result shows both figures either way.
     backend : {None, 'loky', 'serial', 'threading', 'dask'}
-    address : str, optional
-        dask scheduler address for ``backend='dask'``.
-    store : run store, optional
-        Finished chunks are saved there and reused on a rerun.
+        None is loky worker processes (or this process when ``n_jobs=1``).
+    address : str or dask.distributed.Client, optional
+        The dask scheduler (``"tcp://host:8786"``) for ``backend='dask'``; None
+        uses the current dask client or starts a local cluster.
+    store : str, Path or store object, optional
+        A run store file: finished chunks are committed there as they arrive
+        and reused when the same call runs again (resume).
     max_failure_rate : float in (0, 1]
-        Stop with an error once more than this share of replicates fail.
+        Stop with an error once more than this share of an analysis'
+        replicates fail hard (exceptions, non-finite p-values, timeouts).
+    point : int
+        The grid point key (seed spawn key) of this scenario.
+    timeout : float, optional
+        Per-replicate time limit (seconds) of per-replicate analysis calls;
+        a replicate past it counts as failure ``"timeout"``. Enforced on the
+        serial path and in loky workers (POSIX), not on dask or threads.
+    keep_records : bool, optional
+        Keep per-replicate arrays in memory (``result.records``). None: keep
+        up to 1,000,000 replicates, stream summaries above (records then stay
+        in the store only).
 
     Examples
     --------
@@ -242,4 +365,5 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
     """
     return run_many([scenario], reps, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, progress=progress,
                     fit_trouble=fit_trouble, backend=backend, address=address, store=store,
-                    max_failure_rate=max_failure_rate, keys=[point])[0]
+                    max_failure_rate=max_failure_rate, keys=[point], timeout=timeout,
+                    keep_records=keep_records)[0]

@@ -1,0 +1,584 @@
+"""The run store: a SQLite file holding every finished chunk, as data only.
+
+One file per run or sweep. Each finished chunk is written in one transaction
+(its ``chunks`` row, the per-replicate arrays and the failure causes commit
+together or not at all), in WAL mode, so a ``kill -9`` at any moment leaves a
+valid store whose finished chunks a rerun reuses. With the default
+``sync="normal"`` a power cut may lose the last few commits (never corrupt the
+file); ``sync="full"`` makes every commit reach the disk before the run goes on.
+
+Nothing is pickled: arrays are raw little-endian bytes with ``dtype``,
+``shape`` and a CRC-32 beside them, the scenario is its JSON spec, and only
+numeric dtypes from a short list are ever decoded -- a store received from
+someone else is safe to open.
+
+Each grid point records its own scenario fingerprint, the seed entropy and the
+chunk size; :meth:`RunStore.bind` refuses a point whose scenario, seed or chunk
+size changed, naming what changed. Because a chunk's numbers depend only on
+(seed, point key, chunk index, chunk size) (see :mod:`simpower.engine.chunk`),
+a resumed run equals an uninterrupted one bit for bit.
+
+Tables: ``meta(key, value)``; ``points(point, fingerprint, seed, chunk_size,
+reps, analyses, scenario, updated_at)``; ``chunks(point, chunk, size, seconds,
+started_at, finished_at, worker, timeout_enforced)``; ``arrays(point, chunk,
+analysis, field, dtype, shape, crc32, data)``; ``causes(point, chunk, code,
+cause, message)``; ``chunk_analyses(point, chunk, analysis, path,
+hypotheses)``.
+
+Examples
+--------
+>>> import simpower as sp, tempfile, os
+>>> from simpower.engine.store import open_store
+>>> path = os.path.join(tempfile.mkdtemp(), "run.sqlite")
+>>> sc = sp.Scenario(sp.NormalTwoArm(n=20, effect=0.5), sp.TTest())
+>>> res = sp.run(sc, reps=500, seed=3, n_jobs=1, store=path)
+>>> with open_store(path) as st:
+...     reps = st.replicates()
+...     pts = st.points()
+>>> len(reps), int(pts.loc[0, "reps_done"])
+(500, 500)
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import sqlite3
+import struct
+import time
+import zlib
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Any, Iterator
+
+import numpy as np
+import pandas as pd
+
+from ..errors import StoreError
+from .chunk import ChunkOutput
+
+FORMAT = "simpower-run-store"
+VERSION = "1"
+#: the only dtypes ever decoded from a store
+DTYPES = {"<f8": np.dtype("<f8"), "<i2": np.dtype("<i2"), "<i4": np.dtype("<i4"), "<i8": np.dtype("<i8"),
+          "|b1": np.dtype("|b1")}
+SQLITE_MAGIC = b"SQLite format 3\x00"
+RECORD_FIELDS = ("pvalue", "estimate", "se", "ci_low", "ci_high")
+
+SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS points (
+    point INTEGER PRIMARY KEY, fingerprint TEXT NOT NULL, seed TEXT NOT NULL, chunk_size INTEGER NOT NULL,
+    reps INTEGER NOT NULL, analyses TEXT NOT NULL, scenario TEXT NOT NULL, updated_at REAL);
+CREATE TABLE IF NOT EXISTS chunks (
+    point INTEGER NOT NULL, chunk INTEGER NOT NULL, size INTEGER NOT NULL, seconds REAL NOT NULL,
+    started_at REAL, finished_at REAL, worker TEXT, timeout_enforced INTEGER, PRIMARY KEY (point, chunk));
+CREATE TABLE IF NOT EXISTS arrays (
+    point INTEGER NOT NULL, chunk INTEGER NOT NULL, analysis TEXT NOT NULL, field TEXT NOT NULL,
+    dtype TEXT NOT NULL, shape TEXT NOT NULL, crc32 INTEGER NOT NULL, data BLOB NOT NULL,
+    PRIMARY KEY (point, chunk, analysis, field));
+CREATE TABLE IF NOT EXISTS causes (
+    point INTEGER NOT NULL, chunk INTEGER NOT NULL, code INTEGER NOT NULL, cause TEXT NOT NULL, message TEXT,
+    PRIMARY KEY (point, chunk, code));
+CREATE TABLE IF NOT EXISTS chunk_analyses (
+    point INTEGER NOT NULL, chunk INTEGER NOT NULL, analysis TEXT NOT NULL, path TEXT, hypotheses TEXT,
+    PRIMARY KEY (point, chunk, analysis));
+"""
+TABLES = ("meta", "points", "chunks", "arrays", "causes", "chunk_analyses")
+
+
+# -- array codec -------------------------------------------------------------
+def encode_array(a: np.ndarray) -> tuple[str, str, int, bytes]:
+    """(dtype, shape, crc32, bytes) of a numeric array, little-endian."""
+    a = np.asarray(a)
+    dt = a.dtype.newbyteorder("<") if a.dtype.byteorder not in ("|", "<") else a.dtype
+    code = dt.str
+    if code not in DTYPES:
+        raise StoreError(f"cannot store an array of dtype {a.dtype} (allowed: {', '.join(DTYPES)}).")
+    data = np.ascontiguousarray(a, dtype=dt).tobytes()
+    return code, json.dumps(list(a.shape)), zlib.crc32(data), data
+
+
+def decode_array(dtype: str, shape: str, crc: int, data: bytes, where: str = "") -> np.ndarray:
+    """The array encoded by :func:`encode_array`; checks dtype, size and CRC."""
+    dt = DTYPES.get(dtype)
+    if dt is None:
+        raise StoreError(f"{where}: array of dtype {dtype!r} refused (a store holds only {', '.join(DTYPES)}).")
+    try:
+        dims = [int(d) for d in json.loads(shape)]
+    except (ValueError, TypeError):
+        raise StoreError(f"{where}: unreadable array shape {shape!r}; the store is corrupted.") from None
+    if len(data) != dt.itemsize * math.prod(dims):
+        raise StoreError(f"{where}: array holds {len(data)} bytes, expected {dt.itemsize * math.prod(dims)} "
+                         f"for shape {tuple(dims)}; the store is corrupted.")
+    if zlib.crc32(data) != int(crc):
+        raise StoreError(f"{where}: array checksum mismatch; the store is corrupted.")
+    return np.frombuffer(data, dtype=dt).reshape(dims).astype(dt.newbyteorder("="), copy=True)
+
+
+# -- file checks ---------------------------------------------------------------
+def check_file(path: Path) -> None:
+    """Refuse files that are not SQLite or whose main file is shorter than its header says."""
+    size = path.stat().st_size
+    if size == 0:
+        return  # SQLite creates the file lazily; an empty file is a fresh store
+    with open(path, "rb") as fh:
+        head = fh.read(100)
+    if len(head) < 100 or head[:16] != SQLITE_MAGIC:
+        raise StoreError(f"{path}: not a simpower run store (not a SQLite file).")
+    page = struct.unpack(">H", head[16:18])[0]
+    page = 65536 if page == 1 else page
+    pages = struct.unpack(">I", head[28:32])[0]
+    valid = head[24:28] == head[92:96]
+    if valid and pages and size < page * pages:
+        raise StoreError(f"{path}: the store is truncated ({size} bytes; its header says {page * pages}). "
+                         f"Restore it from a copy or move it away and start afresh.")
+
+
+def _spec_diff(old: Any, new: Any, prefix: str = "") -> list[str]:
+    """Dotted names whose values differ between two specs, with old -> new."""
+    if isinstance(old, dict) and isinstance(new, dict):
+        out = []
+        for k in sorted(set(old) | set(new), key=str):
+            out += _spec_diff(old.get(k, "<absent>"), new.get(k, "<absent>"), f"{prefix}{k}.")
+        return out
+    if old != new:
+        return [f"{prefix[:-1] or 'scenario'}: {old!r} -> {new!r}"]
+    return []
+
+
+def _flatten(spec: dict, prefix: str = "") -> dict[str, Any]:
+    out = {}
+    for k, v in spec.items():
+        if isinstance(v, dict):
+            out.update(_flatten(v, f"{prefix}{k}."))
+        elif k != "type" and not k.startswith("_") and (v is None or isinstance(v, (int, float, str, bool))):
+            out[f"{prefix}{k}"] = v
+    return out
+
+
+class RunStore:
+    """A SQLite run store (see the module notes).
+
+    Parameters
+    ----------
+    path : str or Path
+        The store file; created when ``mode='a'`` and absent.
+    mode : {'a', 'r'}
+        'a' reads and appends (a run); 'r' reads only (never writes, never creates).
+    command : list of str, optional
+        The command line that started the run, kept so ``simpower resume`` can rerun it.
+    sync : {'normal', 'full'}
+        SQLite ``synchronous`` setting: 'normal' survives a killed process (kill -9)
+        and stays valid after a power cut (losing the last commits); 'full'
+        flushes every commit to the disk.
+    check : bool
+        Run SQLite's ``quick_check`` when opening (cost grows with the file).
+    """
+
+    def __init__(self, path, mode: str = "a", command: list[str] | None = None, sync: str = "normal",
+                 check: bool = False):
+        if mode not in ("a", "r"):
+            raise StoreError(f"`mode` must be 'a' or 'r'; got {mode!r}.")
+        if sync not in ("normal", "full"):
+            raise StoreError(f"`sync` must be 'normal' or 'full'; got {sync!r}.")
+        self.path = Path(path)
+        self.mode = mode
+        if mode == "r" and not self.path.is_file():
+            raise StoreError(f"{self.path}: no such run store.")
+        if self.path.is_dir():
+            raise StoreError(f"{self.path}: is a folder; give a file name for the run store.")
+        if self.path.exists():
+            check_file(self.path)
+        elif mode == "a":
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+        self._conn: sqlite3.Connection | None = None
+        with self._guard("opening"):
+            if mode == "r":
+                self._conn = sqlite3.connect(f"file:{self.path.resolve()}?mode=ro", uri=True)
+            else:
+                self._conn = sqlite3.connect(str(self.path), isolation_level=None)
+                self._conn.execute("PRAGMA journal_mode=WAL")
+                self._conn.execute(f"PRAGMA synchronous={sync.upper()}")
+            if check:
+                row = self._conn.execute("PRAGMA quick_check").fetchone()
+                if row[0] != "ok":
+                    raise StoreError(f"{self.path}: the store is corrupted (SQLite: {row[0]}).")
+            self._init_schema(command)
+
+    # -- plumbing ----------------------------------------------------------------
+    @contextmanager
+    def _guard(self, doing: str):
+        try:
+            yield
+        except StoreError:
+            raise
+        except sqlite3.DatabaseError as exc:
+            raise StoreError(f"{self.path}: the store is unreadable or corrupted while {doing} (SQLite: {exc}). "
+                             f"Restore it from a copy or move it away and start afresh.") from None
+
+    def _init_schema(self, command):
+        c = self._conn
+        tables = {r[0] for r in c.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+        if not tables:
+            if self.mode == "r":
+                raise StoreError(f"{self.path}: an empty file, not a simpower run store.")
+            with self._transaction():
+                for stmt in SCHEMA.strip().split(";"):
+                    if stmt.strip():
+                        c.execute(stmt)
+                from .. import __version__
+
+                c.executemany("INSERT INTO meta VALUES (?, ?)", [
+                    ("format", FORMAT), ("version", VERSION), ("created_at", repr(time.time())),
+                    ("simpower_version", __version__)])
+        else:
+            missing = [t for t in TABLES if t not in tables]
+            fmt = c.execute("SELECT value FROM meta WHERE key='format'").fetchone() if "meta" in tables else None
+            if missing or fmt is None or fmt[0] != FORMAT:
+                raise StoreError(f"{self.path}: a SQLite file but not a simpower run store"
+                                 + (f" (missing tables: {', '.join(missing)})." if missing else "."))
+            ver = c.execute("SELECT value FROM meta WHERE key='version'").fetchone()
+            if ver is None or ver[0] != VERSION:
+                raise StoreError(f"{self.path}: run store format version {ver[0] if ver else '?'}; "
+                                 f"this simpower reads version {VERSION}.")
+        if command is not None and self.mode == "a":
+            with self._transaction():
+                c.execute("INSERT OR REPLACE INTO meta VALUES ('command', ?)", (json.dumps(list(command)),))
+                c.execute("INSERT OR REPLACE INTO meta VALUES ('cwd', ?)", (os.getcwd(),))
+
+    @contextmanager
+    def _transaction(self):
+        c = self._conn
+        c.execute("BEGIN IMMEDIATE")
+        try:
+            yield c
+        except BaseException:
+            c.execute("ROLLBACK")
+            raise
+        else:
+            c.execute("COMMIT")
+
+    def close(self) -> None:
+        if self._conn is not None:
+            try:
+                self._conn.close()
+            finally:
+                self._conn = None
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
+
+    def __repr__(self):
+        return f"RunStore({str(self.path)!r}, mode={self.mode!r})"
+
+    def _need_writable(self):
+        if self.mode != "a":
+            raise StoreError(f"{self.path}: opened read-only.")
+
+    # -- metadata ------------------------------------------------------------------
+    def meta(self) -> dict[str, str]:
+        with self._guard("reading metadata"):
+            return dict(self._conn.execute("SELECT key, value FROM meta"))
+
+    @property
+    def seed(self) -> int | None:
+        """The seed entropy of the run(s) in this store, or None if it holds no point yet."""
+        with self._guard("reading the seed"):
+            row = self._conn.execute("SELECT seed FROM points ORDER BY point LIMIT 1").fetchone()
+        return None if row is None else int(row[0])
+
+    @property
+    def command(self) -> list[str] | None:
+        m = self.meta()
+        return json.loads(m["command"]) if "command" in m else None
+
+    def bind(self, point: int, scenario, seed: int, chunk_size: int, reps: int) -> None:
+        """Record grid point ``point`` or check that it matches what the store holds.
+
+        Raises :class:`~simpower.errors.StoreError` when the stored point was
+        made by another scenario, seed or chunk size (so two runs never mix).
+        """
+        fp = scenario.fingerprint()
+        spec = scenario.spec()
+        with self._guard("checking the scenario"):
+            row = self._conn.execute("SELECT fingerprint, seed, chunk_size, reps, scenario FROM points "
+                                     "WHERE point=?", (int(point),)).fetchone()
+        if row is not None:
+            old_fp, old_seed, old_cs, old_reps, old_spec = row
+            where = f"{self.path}: grid point {point}"
+            if old_fp != fp:
+                changes = _spec_diff(json.loads(old_spec), json.loads(json.dumps(spec, default=str)))
+                what = "; ".join(changes[:4]) if changes else "the spec differs"
+                raise StoreError(f"{where} was run with another scenario (fingerprint {old_fp}, now {fp}: {what}). "
+                                 f"Use another store file, or move this one away to start afresh.")
+            if int(old_seed) != int(seed):
+                raise StoreError(f"{where} was run with seed {old_seed}, this run asks seed {seed}; "
+                                 f"give seed {old_seed} to resume, or use another store file.")
+            if int(old_cs) != int(chunk_size):
+                raise StoreError(f"{where} was run with chunk size {old_cs}, this run asks {chunk_size}; "
+                                 f"give chunk_size {old_cs} to resume, or use another store file.")
+            if int(old_reps) == int(reps):
+                return
+        self._need_writable()
+        with self._guard("recording the scenario"), self._transaction() as c:
+            c.execute("INSERT OR REPLACE INTO points VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                      (int(point), fp, str(int(seed)), int(chunk_size), int(reps),
+                       json.dumps(list(scenario.analyses)), json.dumps(spec, default=str), time.time()))
+
+    # -- chunks ----------------------------------------------------------------------
+    def save(self, out: ChunkOutput) -> None:
+        """Commit one finished chunk (replacing a stored chunk of the same index)."""
+        self._need_writable()
+        key = (int(out.point), int(out.chunk))
+        rows = []
+        for name, rec in out.records.items():
+            for f, arr in rec.items():
+                rows.append((*key, name, f, *encode_array(arr)))
+        with self._guard("saving a chunk"), self._transaction() as c:
+            for table in ("chunks", "arrays", "causes", "chunk_analyses"):
+                c.execute(f"DELETE FROM {table} WHERE point=? AND chunk=?", key)
+            c.executemany("INSERT INTO arrays VALUES (?, ?, ?, ?, ?, ?, ?, ?)", rows)
+            c.executemany("INSERT INTO causes VALUES (?, ?, ?, ?, ?)",
+                          [(*key, j, cause, out.messages.get(cause, ""))
+                           for j, cause in enumerate(out.causes, start=1)])
+            c.executemany("INSERT INTO chunk_analyses VALUES (?, ?, ?, ?, ?)",
+                          [(*key, name, out.paths.get(name, ""), json.dumps(out.hypotheses.get(name, [])))
+                           for name in out.records])
+            c.execute("INSERT INTO chunks VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                      (*key, int(out.size), float(out.seconds), float(out.started_at), time.time(), out.worker,
+                       None if out.timeout_enforced is None else int(out.timeout_enforced)))
+
+    def load(self, point: int, chunk: int, size: int) -> ChunkOutput | None:
+        """The stored chunk, or None if absent or of another size."""
+        key = (int(point), int(chunk))
+        with self._guard("reading a chunk"):
+            row = self._conn.execute("SELECT size, seconds, started_at, worker, timeout_enforced FROM chunks "
+                                     "WHERE point=? AND chunk=?", key).fetchone()
+            if row is None or int(row[0]) != int(size):
+                return None
+            return self._read_chunk(key, row)
+
+    def _read_chunk(self, key, row) -> ChunkOutput:
+        c = self._conn
+        where = f"{self.path}: point {key[0]} chunk {key[1]}"
+        records: dict[str, dict[str, np.ndarray]] = {}
+        for name, f, dt, shape, crc, data in c.execute(
+                "SELECT analysis, field, dtype, shape, crc32, data FROM arrays WHERE point=? AND chunk=?", key):
+            records.setdefault(name, {})[f] = decode_array(dt, shape, crc, data, where)
+        causes, messages = [], {}
+        for code, cause, msg in c.execute("SELECT code, cause, message FROM causes WHERE point=? AND chunk=? "
+                                          "ORDER BY code", key):
+            causes.append(cause)
+            messages[cause] = msg or ""
+        paths, hyp = {}, {}
+        for name, path, h in c.execute("SELECT analysis, path, hypotheses FROM chunk_analyses "
+                                       "WHERE point=? AND chunk=?", key):
+            paths[name] = path
+            h = json.loads(h or "[]")
+            if h:
+                hyp[name] = h
+        size = int(row[0])
+        for name, rec in records.items():
+            bad = [f for f in (*RECORD_FIELDS, "status") if f not in rec or rec[f].shape[:1] != (size,)]
+            if bad:
+                raise StoreError(f"{where}: analysis {name!r} lacks or has mis-sized fields {bad}; "
+                                 f"the store is corrupted.")
+            if rec["status"].max(initial=0) > len(causes):
+                raise StoreError(f"{where}: failure codes without causes; the store is corrupted.")
+        if not records or set(records) != set(paths):
+            raise StoreError(f"{where}: records are missing; the store is corrupted.")
+        te = row[4]
+        return ChunkOutput(key[0], key[1], size, records, causes, messages, paths, hyp, float(row[1]),
+                           started_at=float(row[2] or 0.0), worker=row[3] or "",
+                           timeout_enforced=None if te is None else bool(te))
+
+    def done_chunks(self, point: int | None = None) -> list[tuple[int, int, int]]:
+        """(point, chunk, size) of the stored chunks."""
+        q = "SELECT point, chunk, size FROM chunks" + ("" if point is None else " WHERE point=?")
+        with self._guard("listing chunks"):
+            return [tuple(map(int, r)) for r in self._conn.execute(q + " ORDER BY point, chunk",
+                                                                   () if point is None else (int(point),))]
+
+    def iter_chunks(self, point: int | None = None) -> Iterator[ChunkOutput]:
+        """Stored chunks in (point, chunk) order, one at a time (bounded memory)."""
+        for p, k, size in self.done_chunks(point):
+            out = self.load(p, k, size)
+            if out is not None:
+                yield out
+
+    # -- reading back ------------------------------------------------------------------
+    def scenario_spec(self, point: int = 0) -> dict[str, Any]:
+        """The JSON spec of grid point ``point``'s scenario."""
+        with self._guard("reading the scenario"):
+            row = self._conn.execute("SELECT scenario FROM points WHERE point=?", (int(point),)).fetchone()
+        if row is None:
+            raise StoreError(f"{self.path}: no grid point {point}.{self._points_hint()}")
+        return json.loads(row[0])
+
+    def _points_hint(self) -> str:
+        keys = [r[0] for r in self._conn.execute("SELECT point FROM points ORDER BY point")]
+        return f" Points: {keys[:12]}." if keys else " The store holds no point."
+
+    def _point_rows(self) -> list[tuple]:
+        with self._guard("reading points"):
+            return self._conn.execute("SELECT point, fingerprint, seed, chunk_size, reps, analyses, scenario "
+                                      "FROM points ORDER BY point").fetchall()
+
+    def chunks(self) -> pd.DataFrame:
+        """One row per stored chunk: point, chunk, size, seconds, started_at, finished_at, worker."""
+        with self._guard("reading chunks"):
+            return pd.read_sql_query("SELECT point, chunk, size, seconds, started_at, finished_at, worker, "
+                                     "timeout_enforced FROM chunks ORDER BY point, chunk", self._conn)
+
+    def records(self, point: int = 0):
+        """Per-replicate records of a point, as ``{analysis: Records}``.
+
+        The stored chunks laid end to end in chunk order: for a finished point,
+        replicate i is record i; an unfinished one lacks the missing chunks
+        (``replicates()`` carries explicit replicate numbers).
+        """
+        from .collect import assemble_records
+
+        rows = [r for r in self._point_rows() if r[0] == int(point)]
+        if not rows:
+            raise StoreError(f"{self.path}: no grid point {point}.{self._points_hint()}")
+        total = sum(size for _, _, size in self.done_chunks(point))
+        return assemble_records(json.loads(rows[0][5]), total, self.iter_chunks(point))
+
+    def iter_replicates(self, point: int | None = None, analysis: str | None = None) -> Iterator[pd.DataFrame]:
+        """The per-replicate table, one stored chunk at a time (for exports of any size)."""
+        sizes = {int(r[0]): int(r[3]) for r in self._point_rows()}
+        for out in self.iter_chunks(point):
+            start = out.chunk * sizes[out.point]
+            names = np.array([""] + list(out.causes), dtype=object)
+            for name, rec in out.records.items():
+                if analysis is not None and name != analysis:
+                    continue
+                df = pd.DataFrame({"point": out.point, "analysis": name, "chunk": out.chunk,
+                                   "replicate": np.arange(start, start + out.size)})
+                for f in RECORD_FIELDS:
+                    df[f] = rec[f]
+                df["failure"] = names[rec["status"]]
+                if "pvalues" in rec:
+                    labels = out.hypotheses.get(name, [])
+                    for j in range(rec["pvalues"].shape[1]):
+                        df[f"pvalue[{labels[j] if j < len(labels) else j}]"] = rec["pvalues"][:, j]
+                yield df
+
+    def replicates(self, point: int | None = None, analysis: str | None = None) -> pd.DataFrame:
+        """One row per replicate and analysis: point, analysis, chunk, replicate, pvalue, estimate,
+        se, ci_low, ci_high, failure ('' when clean)."""
+        parts = list(self.iter_replicates(point, analysis))
+        if not parts:
+            cols = ["point", "analysis", "chunk", "replicate", *RECORD_FIELDS, "failure"]
+            return pd.DataFrame({c: [] for c in cols})
+        return pd.concat(parts, ignore_index=True)
+
+    def failures(self) -> pd.DataFrame:
+        """Failure counts by point, analysis and cause, with the first message of each cause."""
+        rows: dict[tuple, list] = {}
+        for out in self.iter_chunks():
+            for name, rec in out.records.items():
+                codes, counts = np.unique(rec["status"][rec["status"] > 0], return_counts=True)
+                for code, n in zip(codes, counts):
+                    cause = out.causes[int(code) - 1]
+                    k = (out.point, name, cause)
+                    if k not in rows:
+                        rows[k] = [0, out.messages.get(cause, "")]
+                    rows[k][0] += int(n)
+        return pd.DataFrame([{"point": p, "analysis": a, "cause": c, "count": v[0], "first_message": v[1]}
+                             for (p, a, c), v in sorted(rows.items())],
+                            columns=["point", "analysis", "cause", "count", "first_message"])
+
+    def points(self, fit_trouble: str = "failure") -> pd.DataFrame:
+        """One row per grid point and analysis: the point's parameters, progress and power with MCSE.
+
+        Summaries use the stored chunks (a partial point is summarised over
+        what finished; ``complete`` says whether all planned replicates are in).
+        """
+        from ..summaries import summarize_records
+
+        out = []
+        for point, fp, seed, cs, reps, analyses, spec_text in self._point_rows():
+            spec = json.loads(spec_text)
+            recs = self.records(point)
+            params = _flatten(spec.get("process", {}), "")
+            for name in json.loads(analyses):
+                r = recs.get(name)
+                done = 0 if r is None else int(r.pvalue.size)
+                row = {"point": point, "analysis": name, "fingerprint": fp, "seed": seed, "chunk_size": cs,
+                       "reps": reps, "reps_done": done, "complete": done >= reps, **params,
+                       "alpha": spec.get("alpha")}
+                if done:
+                    te = spec.get("true_effect")
+                    s = summarize_records(r.pvalue, r.status, r.causes, float(spec.get("alpha", 0.05)),
+                                          fit_trouble, r.estimate, r.se, r.ci_low, r.ci_high,
+                                          te if isinstance(te, (int, float)) else None)
+                    row.update({k: s[k] for k in ("power", "mcse", "ci_low", "ci_high", "n_ok", "n_failed",
+                                                  "n_fit_trouble")})
+                    row["failures"] = "; ".join(f"{c} x{n}" for c, n in s["failures"].items())
+                    for k in ("mean_estimate", "empirical_se", "model_se"):
+                        if k in s:
+                            row[k] = s[k]
+                out.append(row)
+        return pd.DataFrame(out)
+
+    def export(self, path, table: str = "replicates", fmt: str | None = None) -> int:
+        """Write ``table`` ('replicates', 'points', 'chunks' or 'failures') to CSV or Parquet.
+
+        The format follows ``fmt`` or the file suffix (.csv, .parquet). The
+        replicates table is written one chunk at a time. Returns the rows written.
+        """
+        path = Path(path)
+        fmt = fmt or {".csv": "csv", ".parquet": "parquet", ".pq": "parquet"}.get(path.suffix.lower())
+        if fmt not in ("csv", "parquet"):
+            raise StoreError(f"`format` must be 'csv' or 'parquet' (or a .csv/.parquet file name); got "
+                             f"{fmt or path.suffix or path.name!r}.")
+        if table not in ("replicates", "points", "chunks", "failures"):
+            raise StoreError(f"`table` must be 'replicates', 'points', 'chunks' or 'failures'; got {table!r}.")
+        frames = self.iter_replicates() if table == "replicates" else iter([getattr(self, table)()])
+        return _write_frames(frames, path, fmt)
+
+
+def _write_frames(frames: Iterator[pd.DataFrame], path: Path, fmt: str) -> int:
+    n = 0
+    if fmt == "csv":
+        with open(path, "w", newline="") as fh:
+            for i, df in enumerate(frames):
+                df.to_csv(fh, index=False, header=i == 0)
+                n += len(df)
+        return n
+    try:
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+    except ImportError:
+        raise StoreError("Parquet export needs pyarrow: pip install 'simpower[parquet]'.") from None
+    writer = None
+    schema = None
+    try:
+        for df in frames:
+            tbl = pa.Table.from_pandas(df, preserve_index=False)
+            if writer is None:
+                schema = tbl.schema
+                writer = pq.ParquetWriter(str(path), schema)
+            elif tbl.schema != schema:
+                tbl = tbl.cast(schema)
+            writer.write_table(tbl)
+            n += len(df)
+    finally:
+        if writer is not None:
+            writer.close()
+    if writer is None:
+        pd.DataFrame().to_parquet(path)
+    return n
+
+
+def open_store(path, mode: str = "r", **kw) -> RunStore:
+    """Open a run store; read-only by default. See :class:`RunStore`."""
+    return RunStore(path, mode=mode, **kw)
