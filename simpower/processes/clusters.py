@@ -175,8 +175,9 @@ class ClusterTrial(Process):
         have total variance ``sd^2 + slope_sd^2``.
     missing : missingness, optional
         Applied after the complete outcomes are drawn; its ``mask`` gets
-        covariates ``arm``, ``cluster`` and ``present`` (padding rows, False,
-        are dropped afterwards).
+        covariates ``arm`` and ``cluster``. With variable sizes it is called
+        once per replicate on that replicate's rows (no padding), so a
+        calibrated mechanism sees only real participants.
 
     Notes
     -----
@@ -269,14 +270,24 @@ class ClusterTrial(Process):
         info = {"clusters_per_arm": self.clusters, "n_clusters": n_clusters, "randomise": self.randomise,
                 "equal_sizes": self.equal_sizes}
         if self.missing is not None:
-            cov = {k: np.broadcast_to(v, y.shape) for k, v in {**shared, **per_rep}.items() if k != "subject"}
-            cov.setdefault("present", np.ones(y.shape, bool))
-            miss = np.asarray(self.missing.mask(rng, y, cov), bool)
+            miss = self._missing_mask(rng, y, {"arm": arm, "cluster": cluster}, present)
             y[miss] = np.nan
             per_rep["observed"] = (~miss).astype(np.int8)
             info["missing"] = True
         per_rep["y"] = y
         return Batch(size, per_rep, shared, info)
+
+    def _missing_mask(self, rng, y, columns, present):
+        """The ``missing`` component's mask: one call for equal clusters, else one per replicate (no padding rows)."""
+        if present is None:
+            cov = {k: np.broadcast_to(v, y.shape) for k, v in columns.items()}
+            return np.asarray(self.missing.mask(rng, y, cov), bool)
+        miss = np.zeros(y.shape, bool)
+        for i in range(y.shape[0]):
+            rows = present[i]
+            cov = {k: (v[i] if v.ndim == 2 else v)[rows] for k, v in columns.items()}
+            miss[i, rows] = np.asarray(self.missing.mask(rng, y[i, rows], cov), bool).reshape(-1)
+        return miss
 
     # -- words -----------------------------------------------------------
     def true_effect(self):

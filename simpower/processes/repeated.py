@@ -96,8 +96,9 @@ class RepeatedMeasures(Process):
         dropout); 0 gives dropout completely at random.
     missing : missingness, optional
         A further (e.g. intermittent) missingness mechanism applied after
-        dropout; its ``mask`` gets covariates ``arm``, ``visit``, ``subject``
-        and ``baseline`` (when present).
+        dropout to the post-baseline visits (all visits without a baseline);
+        its ``mask`` gets covariates ``arm``, ``visit``, ``subject`` and
+        ``baseline`` (when present) of those rows.
 
     Notes
     -----
@@ -253,21 +254,25 @@ class RepeatedMeasures(Process):
         if self.baseline:
             per_rep["baseline"] = np.repeat(y[:, ::k], k, axis=1)
         if self.missing is not None:
-            cov = {name: np.broadcast_to(v, y.shape) for name, v in shared.items()}
-            if self.baseline:
-                cov["baseline"] = per_rep["baseline"]
-            miss = np.asarray(self.missing.mask(rng, y, cov), bool)
+            miss = self._missing_mask(rng, y, shared, per_rep.get("baseline"))
             observed = ~miss if observed is None else observed & ~miss
         info = {"n0": n0, "n1": n1, "visits": k}
         if observed is not None:
-            y[~observed] = np.nan
-            if self.baseline:
-                base_seen = np.repeat(observed[:, ::k], k, axis=1)
-                per_rep["baseline"][~base_seen] = np.nan
+            y[~observed] = np.nan  # visit 0 is always observed, so is the baseline column
             per_rep["observed"] = observed.astype(np.int8)
             info["missing"] = True
         per_rep["y"] = y
         return Batch(size, per_rep, shared, info)
+
+    def _missing_mask(self, rng, y, shared, baseline):
+        """The ``missing`` component's mask over the post-baseline rows (all rows without a baseline visit)."""
+        rows = shared["visit"] > 0 if self.baseline else np.ones(y.shape[1], bool)
+        cov = {name: np.broadcast_to(v[rows], (y.shape[0], int(rows.sum()))) for name, v in shared.items()}
+        if baseline is not None:
+            cov["baseline"] = baseline[:, rows]
+        miss = np.zeros(y.shape, bool)
+        miss[:, rows] = np.asarray(self.missing.mask(rng, y[:, rows], cov), bool).reshape(y.shape[0], -1)
+        return miss
 
     # -- words -----------------------------------------------------------
     def true_effect(self):
