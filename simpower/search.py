@@ -37,7 +37,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from ._validation import Int, Real
+from ._validation import Choice, Int, Real
 from .engine import normalize_seed, run_many
 from .errors import ParameterError, nearest
 from .sequential import as_memory_store, point_key
@@ -683,3 +683,27 @@ def detectable_effect(scenario, power: float = 0.8, *, parameter: str | None = N
                         scenario=scenario, chunk_size=chunk_size, settings=settings,
                         analytic=None if an is None else sign * an, analytic_estimate=None if an is None else sign * an,
                         sign=sign, **out)
+
+
+#: fields of the [search] block of a scenario file
+SEARCH_FIELDS = {
+    "find": Choice(("size", "effect")), "power": Real(0.0, 1.0, low_open=True, high_open=True), "parameter": None,
+    "low": Real(), "high": Real(), "step": Real(0.0, low_open=True), "scale": Choice(tuple(SCALES)),
+    "level": Real(0.5, 1.0, high_open=True), "rel_tol": Real(0.0, 1.0, low_open=True, high_open=True),
+    "max_reps": Int(low=1), "chunk_size": Int(low=1), "analysis": None, "pilot_points": Int(low=2),
+}
+
+
+def search(scenario, find: str = "size", **options) -> SearchResult:
+    """:func:`required_n` (``find='size'``) or :func:`detectable_effect` (``find='effect'``)."""
+    if find == "size":
+        step = options.get("step")
+        if step is not None and float(step).is_integer():
+            options["step"] = int(step)
+        return required_n(scenario, **options)
+    if find == "effect":
+        for key in ("step", "scale"):
+            if options.pop(key, None) is not None:
+                raise ParameterError(f"`{key}` applies to size searches only (find = 'size').")
+        return detectable_effect(scenario, **options)
+    raise ParameterError(f"`find` must be 'size' or 'effect'; got {find!r}.")

@@ -27,6 +27,7 @@ import numpy as np
 import pandas as pd
 
 from .engine import normalize_seed, run_many
+from ._validation import Bool, Int, Real
 from .errors import ParameterError
 from .sequential import check_target_mcse, point_key, run_many_to_mcse
 from .summaries import bradley_liberal
@@ -239,9 +240,25 @@ def as_grid(grid) -> Grid:
     raise ParameterError(f"`grid` must be a Grid, a mapping of parameter -> values, or a list of settings; got {grid!r}.")
 
 
+def check_names(scenario, names: Sequence[str]) -> None:
+    """Raise ParameterError naming the nearest valid parameter for a name the scenario does not have."""
+    import difflib
+
+    valid = list(scenario.get_params())
+    ok = set(valid) | {f"process.{k}" for k in scenario.process.get_params()}
+    for name in names:
+        head = name.partition(".")[0]
+        if name in ok or (head == "analysis" and name[9:] in scenario.analyses[scenario.primary].get_params()):
+            continue
+        hit = difflib.get_close_matches(name, valid, n=1, cutoff=0.0)
+        hint = f" Did you mean {hit[0]!r}?" if hit else ""
+        raise ParameterError(f"grid parameter `{name}` is not a parameter of this scenario.{hint}")
+
+
 def grid_scenarios(scenario, grid) -> tuple[list[dict], list]:
     """The grid's settings and the scenario at each (bad names raise with the nearest valid one)."""
     g = as_grid(grid)
+    check_names(scenario, g.names)
     settings = g.settings(scenario)
     return settings, [scenario.with_params(**s) for s in settings]
 
@@ -396,3 +413,82 @@ def null_check(scenario, grid=None, reps: int = 10_000, *, seed=None, n_jobs: in
     table.attrs.update({"kind": "null_check", "seed": entropy, "fingerprint": scenario.fingerprint(),
                         "grid": list(settings[0]), "chunk_size": results[0].chunk_size, "reps": reps})
     return table
+
+
+# -- the [sweep] and [null_check] blocks of a scenario file -------------------------
+def _values_from_toml(name, v):
+    if isinstance(v, dict):
+        return range_from_table(name, v)
+    if isinstance(v, list):
+        if not v:
+            raise ParameterError(f"the grid is empty: `{name}` has no values.")
+        return v
+    return [v]
+
+
+def grid_from_block(block: Mapping[str, Any]) -> Grid | None:
+    """The grid of a ``[sweep]`` block: ``[sweep.vary]`` (crossed) and ``[[sweep.together]]`` (zipped sets)."""
+    axes = Grid()
+    vary = block.get("vary")
+    if vary is not None:
+        if not isinstance(vary, dict):
+            raise ParameterError("[sweep].vary must be a table of parameter = values.")
+        axes = axes * Grid.cross(**{k: _values_from_toml(k, v) for k, v in vary.items()})
+    together = block.get("together")
+    if together is not None:
+        groups = together if isinstance(together, list) else [together]
+        for g in groups:
+            if not isinstance(g, dict) or not g:
+                raise ParameterError("each [[sweep.together]] must be a table of parameter = [values] (equal lengths).")
+            axes = axes * Grid.together(**{k: _values_from_toml(k, v) for k, v in g.items()})
+    return axes if axes.axes else None
+
+
+SWEEP_FIELDS = {"vary": None, "together": None, "reps": Int(low=1), "target_mcse": Real(0.0, 0.5, low_open=True,
+                high_open=True), "max_reps": Int(low=1), "min_reps": Int(low=1), "chunk_size": Int(low=1),
+                "x": None, "null_check": Bool()}
+NULL_CHECK_FIELDS = {"enabled": Bool(), "reps": Int(low=1), "at_grid": Bool()}
+
+
+def parse_axis(text: str) -> tuple[str, Any]:
+    """A command-line axis ``name=values``: ``40,60,80`` (a list), ``20:100:10`` (from:to:step),
+    ``20:100/5`` (5 evenly spaced values), ``10:1000//7`` (7 log-spaced values)."""
+    from .scenario_files import parse_assignment
+
+    name, sep, spec = text.partition("=")
+    name, spec = name.strip(), spec.strip()
+    if not sep or not name:
+        raise ParameterError(f"`{text}` must look like name=values (e.g. n=40,60,80 or n=20:100:10).")
+    if not spec:
+        raise ParameterError(f"the grid is empty: `{name}` has no values.")
+
+    def num(s):
+        v = parse_assignment(f"v={s}")[1]
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            raise ParameterError(f"`{name}`: range ends must be numbers; got {s!r}.")
+        return v
+
+    if ":" in spec and "," not in spec:
+        head, slash, count = spec.partition("/")
+        log = count.startswith("/")
+        parts = head.split(":")
+        try:
+            if slash:
+                if len(parts) != 2:
+                    raise ValueError
+                return name, Range(num(parts[0]), num(parts[1]), count=int(count.lstrip("/")),
+                                   scale="log" if log else "linear")
+            if len(parts) != 3:
+                raise ValueError
+            return name, Range(num(parts[0]), num(parts[1]), step=num(parts[2]))
+        except ValueError:
+            raise ParameterError(f"`{name}={spec}`: a range is from:to:step, from:to/count or from:to//count.") from None
+    return name, [parse_assignment(f"v={p.strip()}")[1] for p in spec.split(",") if p.strip()]
+
+
+def parse_together(text: str) -> Grid:
+    """A command-line zipped set ``a=1,2,3;b=4,5,6``."""
+    parts = [p for p in text.split(";") if p.strip()]
+    if not parts:
+        raise ParameterError("the grid is empty: `--together` needs name=values;name=values.")
+    return Grid.together(**dict(parse_axis(p) for p in parts))

@@ -1,0 +1,168 @@
+"""Assemble the planning report: assumptions, results, plots, type I check, failures, MC error, cautions, manifest."""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+
+from ..textout import CAUTION
+from . import plots
+from .document import Document
+from .manifest import manifest_rows
+
+SWEEP_SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power", "path")
+NULL_SHOWN = ("analysis", "alpha", "type1_error", "mcse", "ci_low", "ci_high", "reps", "failures", "meets_bradley",
+              "path")
+
+
+def _plain_params(scenario) -> pd.DataFrame:
+    rows = []
+    for k, v in scenario.get_params().items():
+        if hasattr(v, "spec"):
+            v = v.spec().get("type", "")
+        rows.append((k, v))
+    return pd.DataFrame(rows, columns=["parameter", "value"])
+
+
+def _paths(paths: dict[str, str]) -> list[str]:
+    return [f"`{a}`: {p} path" for a, p in paths.items()]
+
+
+def _failures(frames: list[tuple[str, pd.DataFrame]]) -> list[str]:
+    lines = []
+    for label, t in frames:
+        if t is None or "failures" not in t:
+            continue
+        total = int(t["failures"].sum())
+        reps = int(t["reps"].sum())
+        causes = "; ".join(sorted({c for c in t.get("failure_causes", pd.Series(dtype=str)) if c}))
+        lines.append(f"{label}: {total} failed replicates of {reps}" + (f" (causes: {causes})" if causes else ""))
+    return lines
+
+
+def _mc_error(frames: list[tuple[str, pd.DataFrame, str]]) -> list[str]:
+    lines = []
+    for label, t, col in frames:
+        if t is None or t.empty or "mcse" not in t:
+            continue
+        lines.append(f"{label}: {int(t['reps'].min())} to {int(t['reps'].max())} replicates per point; MCSE of "
+                     f"{col} at most {t['mcse'].max():.4f} (median {t['mcse'].median():.4f}).")
+    return lines
+
+
+def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, Any], sweep: pd.DataFrame | None = None,
+                      search=None, null: pd.DataFrame | None = None, run=None, x: str | None = None,
+                      target: float | None = None, notes: list[str] | None = None) -> Document:
+    """Build the report's :class:`Document`, writing its figures (PNG and SVG) into ``outdir``."""
+    out = Path(outdir)
+    doc = Document(title or scenario.name or "Power analysis by simulation")
+    if scenario.description:
+        doc.para(scenario.description)
+    doc.heading("Assumptions")
+    doc.para("The numbers below hold only under these assumptions about the data and the planned analysis:")
+    doc.bullets(scenario.describe())
+    doc.table(_plain_params(scenario), "Every parameter of the scenario (before any sweep or search)")
+    paths: dict[str, str] = {}
+
+    if search is not None:
+        doc.heading("Required " + ("sample size" if search.kind == "size" else "minimal detectable effect"))
+        doc.para(search.summary().replace("\n", " "))
+        if search.kind == "size":
+            try:
+                doc.para("At the answer: " + search.at_answer().process.describe() + ".")
+            except Exception:  # a user process may not describe itself
+                pass
+        doc.para(f"Method: a probit model of power in {search.fit.scale if search.fit else '?'}({search.parameter}) "
+                 f"fitted to all simulated replicates, the next replicates placed at the current estimate, stopped "
+                 f"when the {search.level:.0%} Monte Carlo (Fieller) interval was within "
+                 f"{search.settings.get('rel_tol', 0):.0%} of the estimate; chunk size {search.chunk_size}.")
+        png, svg = plots.save(plots.search_plot(search), out / "search")
+        doc.figure(png, svg, "Search: simulated power (Wilson intervals), fitted curve, target and answer")
+        shown = search.table[["value", "reps", "power", "mcse", "ci_low", "ci_high", "fitted_power", "in_fit"]]
+        doc.table(shown.rename(columns={"value": search.parameter}), "Values evaluated by the search")
+        paths.update({search.analysis: p for p in search.table["path"].unique()[:1]})
+
+    if sweep is not None:
+        grid = [c for c in sweep.attrs.get("grid", []) if c in sweep.columns]
+        doc.heading("Sweep over the assumptions")
+        doc.table(sweep[grid + [c for c in SWEEP_SHOWN if c in sweep.columns]],
+                  "Power at each grid point (Wilson 95% interval; closed form where it applies)")
+        xs = x or (grid[0] if grid else None)
+        numeric = xs is not None and pd.api.types.is_numeric_dtype(sweep[xs])
+        if numeric:
+            req = search.value if (search is not None and search.parameter == xs) else None
+            png, svg = plots.save(plots.power_curve(sweep, xs, target=target, required=req), out / "sweep_power")
+            doc.figure(png, svg, f"Power against {xs} with 95% Wilson bands")
+        others = [g for g in grid if g != xs and pd.api.types.is_numeric_dtype(sweep[g])]
+        if numeric and others:
+            png, svg = plots.save(plots.heatmap(sweep, xs, others[0], target=target), out / "sweep_heatmap")
+            doc.figure(png, svg, f"Power of the primary analysis over {xs} and {others[0]}")
+        for a, p in zip(sweep["analysis"], sweep["path"]):
+            paths.setdefault(a, p)
+
+    if run is not None:
+        doc.heading("Power at the planned design")
+        doc.table(run.summary()[["analysis", "power", "mcse", "ci_low", "ci_high", "reps", "n_failed",
+                                 "analytic_power", "path"]], "Simulated power at the scenario as given")
+        seq = run.extra.get("sequential")
+        if seq:
+            doc.para(f"Sequential stopping: the run went on until the MCSE of the power was at most "
+                     f"{seq['target_mcse']:g}; it took {seq['reps']} replicates (looks at {seq['looks']}); "
+                     f"target {'reached' if seq['reached'] else 'NOT reached within ' + str(seq['max_reps'])}.")
+        paths.update(run.paths)
+
+    if null is not None:
+        doc.heading("Type I error under the null")
+        a = float(null["alpha"].iloc[0])
+        grid = [c for c in null.attrs.get("grid", []) if c in null.columns]
+        doc.para(f"The same scenario with the effect set to its null value and everything else kept. Bradley's "
+                 f"(1978) liberal criterion asks for a rejection rate in [{0.5 * a:g}, {1.5 * a:g}] at alpha = {a:g}.")
+        doc.table(null[grid + [c for c in NULL_SHOWN if c in null.columns]], "Type I error check")
+        ok = bool(null["meets_bradley"].all())
+        doc.para("**Verdict:** " + ("every analysis meets Bradley's liberal criterion." if ok else
+                                    "at least one analysis does NOT meet Bradley's liberal criterion; its power "
+                                    "is not comparable with a test that holds its level."))
+
+    doc.heading("Failures")
+    fl = _failures([("search", search.table if search is not None else None), ("sweep", sweep),
+                    ("null check", null), ("planned design", run.summary().rename(columns={"n_failed": "failures"})
+                                           if run is not None else None)])
+    doc.bullets(fl or ["no replicate failed"])
+    doc.para("A failed replicate (an analysis error, a non-finite p-value, or fit trouble under the 'failure' "
+             "policy) is left out of the power's denominator; the tables give the counts.")
+
+    doc.heading("Monte Carlo error")
+    mc = _mc_error([("sweep", sweep, "power"), ("null check", null, "type I error"),
+                    ("search", search.table if search is not None else None, "power")])
+    if run is not None:
+        mc.append(f"planned design: {run.reps} replicates, MCSE {run.mcse:.4f}.")
+    doc.bullets(mc or ["-"])
+    doc.para("MCSE of a rejection rate p from R replicates: sqrt(p(1-p)/R) (Morris, White & Crowther 2019). "
+             "Intervals for rates are Wilson score intervals.")
+
+    doc.heading("Path that ran")
+    doc.bullets(_paths(paths) or ["-"])
+    doc.para("'batch' means the process and the analysis ran vectorised over whole chunks; 'per-replicate' means "
+             "one data set at a time. Both give the same numbers for the same seed.")
+
+    if notes:
+        doc.heading("Notes")
+        doc.bullets(notes)
+
+    doc.heading("Cautions")
+    doc.para(CAUTION)
+    doc.para("Simulated power is an estimate with Monte Carlo error; it answers the question asked under the "
+             "assumptions entered and no other.")
+
+    doc.heading("Reproducibility manifest")
+    doc.para("Run this command again (same scenario file, same versions) to reproduce every number exactly:")
+    doc.code(manifest["command"])
+    doc.table(manifest_rows(manifest), "Manifest (also in manifest.json)")
+    return doc
+
+
+def finite(x) -> bool:
+    return x is not None and isinstance(x, (int, float)) and math.isfinite(x)
