@@ -4,18 +4,21 @@ Layout understood: a long table with counts ``y`` (NaN = missing, dropped),
 ``arm`` in {0, 1} and optionally ``exposure`` (> 0; 1 when absent). Both
 models are ``log E[y] = b0 + b1 * arm + log(exposure)``; the estimate is
 ``b1``, the log rate ratio (treatment over control), with its model SE and a
-Wald CI, and the test is the Wald z-test of ``b1 = 0``.
+Wald CI, and the test is the Wald z-test of ``b1 = 0``. A replicate without
+any event has nothing to fit: its p-value is NaN (the engine counts it as
+``nonfinite_pvalue``).
 """
 
 from __future__ import annotations
 
+import math
 import warnings
 
 import numpy as np
 from statsmodels.tools.sm_exceptions import PerfectSeparationWarning
 
 from .._validation import Choice, Real
-from .base import ALTERNATIVE, CI_LEVEL, Analysis
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
 from .binary import _as_result, rowwise, wald
 
 
@@ -35,12 +38,16 @@ def count_columns(data):
     return y[ok], arm[ok].astype(float), expo[ok]
 
 
-def _warn_empty_arm(y, arm):
+def _warn_empty_arm(y, arm) -> bool:
+    """Warn when an arm has no events; True when there are no events at all (nothing to fit)."""
+    if not np.any(y > 0):
+        return True
     for a in (0, 1):
         if not np.any(y[arm == a] > 0):
             warnings.warn(PerfectSeparationWarning(
                 f"no events in arm {a}: the log rate ratio has no finite maximum likelihood estimate"))
-            return
+            break
+    return False
 
 
 def _design(arm):
@@ -76,7 +83,8 @@ class PoissonGLM(Analysis):
         import statsmodels.api as sm
 
         y, arm, expo = count_columns(data)
-        _warn_empty_arm(y, arm)
+        if _warn_empty_arm(y, arm):
+            return TestResult(pvalue=math.nan)
         model = sm.GLM(y, _design(arm), family=sm.families.Poisson(), offset=np.log(expo))
         fit = model.fit(method="newton", scale="X2" if self.scale == "pearson" else None)
         return _as_result(wald(float(fit.params[1]), float(fit.bse[1]), self.alternative, self.ci_level))
@@ -144,7 +152,8 @@ class NegBinGLM(Analysis):
         import statsmodels.api as sm
 
         y, arm, expo = count_columns(data)
-        _warn_empty_arm(y, arm)
+        if _warn_empty_arm(y, arm):
+            return TestResult(pvalue=math.nan)
         exog, offset = _design(arm), np.log(expo)
         if self.dispersion is None:
             fit = sm.NegativeBinomial(y, exog, loglike_method="nb2", offset=offset).fit(disp=0)
