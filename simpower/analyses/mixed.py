@@ -19,7 +19,9 @@ The one-dimensional criterion in the ICC ``gamma / (1 + gamma)`` is scanned
 on a grid and refined by bisection on its derivative, for all replicates at
 once; when the derivative at 0 is >= 0 the estimate is the boundary,
 ``sigma_b^2 = 0``. Standard errors then follow statsmodels: the inverse of
-the observed Hessian of the profiled REML log-likelihood in (beta, gamma).
+the observed Hessian of the profiled REML log-likelihood in (beta, gamma);
+at the boundary, where that Hessian need not be definite, the fixed-effect
+block alone (``sigma_e^2 (X'X)^-1``, the OLS standard error).
 The batch path also raises statsmodels' two fit-trouble flags (estimated
 cluster variance below 0.01, a Hessian that is not negative definite) as
 ``warning:ConvergenceWarning`` so both paths count the same replicates.
@@ -66,8 +68,9 @@ HESSIAN_MESSAGE = "The Hessian matrix at the estimated parameter values is not p
 BATCH_FORMULAS = ("y~C(arm)", "y~arm", "y~1+C(arm)", "y~1+arm")
 
 #: grid over the ICC (gamma / (1 + gamma)) scanned before refinement; dense near 0
-GRID = 0.999 * np.linspace(0.0, 1.0, 33) ** 2
-BISECTIONS = 48
+GRID = 0.999 * np.linspace(0.0, 1.0, 13) ** 2
+#: Illinois steps on the derivative after the grid scan
+ROOT_STEPS = 14
 
 
 class _Text(Anything):
@@ -245,28 +248,89 @@ def _profile(g, st: _Sums, derivative: bool = True):
 
 
 def _solve_gamma(st: _Sums):
-    """REML estimate of gamma per replicate: grid scan, then bisection on the derivative."""
+    """REML estimate of gamma per replicate.
+
+    The criterion and its derivative are evaluated on :data:`GRID` (in the
+    ICC scale ``rho = gamma / (1 + gamma)``); the grid minimum gives a
+    bracket with a sign change of the derivative, refined by the Illinois
+    variant of regula falsi (or golden-section search on the criterion for
+    the rare replicate whose bracket shows no sign change). A minimum at
+    rho = 0 with a derivative >= 0 there is the boundary estimate 0.
+    """
     R = st.m.shape[0]
     rho = np.broadcast_to(GRID, (R, GRID.size))
     with np.errstate(all="ignore"):
         f, _, _ = _profile(rho / (1.0 - rho), st, derivative=False)
     f = np.where(np.isfinite(f), f, np.inf)
     k = np.argmin(f, axis=1)
-    lo = GRID[np.maximum(k - 1, 0)]
-    hi = GRID[np.minimum(k + 1, GRID.size - 1)]
-    with np.errstate(all="ignore"):
-        _, d0, _ = _profile(np.zeros(R), st)
-    boundary = (k == 0) & (d0 >= 0)
-    lo = np.where(k == 0, 0.0, lo)
-    for _ in range(BISECTIONS):
-        mid = 0.5 * (lo + hi)
-        with np.errstate(all="ignore"):
-            _, d, _ = _profile(mid / (1.0 - mid), st)
-        up = d > 0
-        hi = np.where(up, mid, hi)
-        lo = np.where(up, lo, mid)
-    rho_hat = np.where(boundary, 0.0, 0.5 * (lo + hi))
+    dk = _deriv_rho(GRID[k], st)
+    boundary = (k == 0) & (dk >= 0)
+    left = (dk >= 0) & (k > 0)
+    k_last = GRID.size - 1
+    right = ~left & (k < k_last)
+    lo = np.where(left, GRID[np.maximum(k - 1, 0)], GRID[k])
+    hi = np.where(left, GRID[k], GRID[np.minimum(k + 1, k_last)])
+    dother = _deriv_rho(np.where(left, lo, hi), st)
+    dlo = np.where(left, dother, dk)
+    dhi = np.where(left, dk, dother)
+    dhi = np.where(~left & ~right, np.inf, dhi)  # minimum at the top of the grid: no bracket
+    signed = (dlo < 0) & (dhi > 0)
+    x = _illinois(st, lo, hi, dlo, dhi)
+    if not np.all(signed | boundary):
+        sel = ~(signed | boundary)
+        j = k[sel]
+        x[sel] = _golden(_subset(st, sel), GRID[np.maximum(j - 1, 0)], GRID[np.minimum(j + 1, GRID.size - 1)])
+    rho_hat = np.where(boundary, 0.0, x)
     return rho_hat / (1.0 - rho_hat)
+
+
+def _deriv_rho(r, st):
+    with np.errstate(all="ignore"):
+        return _profile(r / (1.0 - r), st)[1]
+
+
+def _illinois(st, lo, hi, dlo, dhi):
+    """Root of the criterion's derivative in [lo, hi] (rho scale), where dlo < 0 < dhi."""
+    lo, hi, dlo, dhi = (np.array(v, float) for v in (lo, hi, dlo, dhi))
+    side = np.zeros(lo.shape, np.int8)
+    for _ in range(ROOT_STEPS):
+        with np.errstate(all="ignore"):
+            x = hi - dhi * (hi - lo) / (dhi - dlo)
+        x = np.where(np.isfinite(x) & (x > lo) & (x < hi), x, 0.5 * (lo + hi))
+        dx = _deriv_rho(x, st)
+        up = dx > 0
+        down = ~up
+        hi = np.where(up, x, hi)
+        dhi = np.where(up, dx, dhi)
+        lo = np.where(down, x, lo)
+        dlo = np.where(down, dx, dlo)
+        # Illinois: halve the value kept at the end that stayed twice in a row
+        dlo = np.where(up & (side == 1), 0.5 * dlo, dlo)
+        dhi = np.where(down & (side == -1), 0.5 * dhi, dhi)
+        side = np.where(up, 1, -1).astype(np.int8)
+    return np.where(np.abs(dlo) < np.abs(dhi), lo, hi)
+
+
+def _golden(st, lo, hi, steps: int = 60):
+    """Minimiser of the criterion in [lo, hi] (rho scale) by golden-section search."""
+    inv = (math.sqrt(5.0) - 1.0) / 2.0
+    crit = lambda r: _profile(r / (1.0 - r), st, derivative=False)[0]  # noqa: E731
+    a, b = np.array(lo, float), np.array(hi, float)
+    with np.errstate(all="ignore"):
+        for _ in range(steps):
+            c = b - inv * (b - a)
+            e = a + inv * (b - a)
+            left = crit(c) < crit(e)
+            b = np.where(left, e, b)
+            a = np.where(left, a, c)
+        x = 0.5 * (a + b)
+        at_zero = (a == 0.0) & (crit(np.zeros_like(a)) <= crit(x))
+    return np.where(at_zero, 0.0, x)
+
+
+def _subset(st: _Sums, sel) -> _Sums:
+    return _Sums(*(getattr(st, k)[sel] for k in ("m", "a", "s", "sa", "yy", "shift", "n_obs", "n_groups",
+                                                "arm_within")))
 
 
 def _observed_cov(g, st: _Sums, fit):
@@ -302,12 +366,18 @@ def _observed_cov(g, st: _Sums, fit):
     tr_ld2 = np.einsum("rii->r", Ai @ A2) - np.einsum("rij,rji->r", AiA1, AiA1)
     H[:, 2, 2] = (0.5 * fac * ((c2 * e * e).sum(-1) / Q + qg**2 / Q**2)
                   + 0.5 * (m * m * h * h).sum(-1) - 0.5 * tr_ld2)
+    not_pd = np.any(np.diagonal(H, axis1=1, axis2=2) >= 0, axis=1)
+    # at the boundary gamma = 0 the variance ratio is held at its bound: fixed-effect block only
+    at_bound = g == 0
+    H[at_bound, :2, 2] = H[at_bound, 2, :2] = 0.0
+    H[at_bound, 2, 2] = -1.0
     with np.errstate(all="ignore"):
         ok = np.all(np.isfinite(H), axis=(1, 2))
-        H[~ok] = np.eye(3)
+        H[~ok] = -np.eye(3)
         cov = np.linalg.inv(-H)
         cov[~ok] = np.nan
-    not_pd = np.any(np.diagonal(H, axis1=1, axis2=2) >= 0, axis=1) & ok
+        cov[at_bound, 2, 2] = np.nan
+    not_pd |= ~(cov[:, 1, 1] > 0)
     return cov, not_pd
 
 
@@ -361,7 +431,8 @@ def fit_batch(batch):
         b0, b1, Q, det = fit[:4]
         scale = Q / st.fac
         cov, not_pd = _observed_cov(g, st, fit)
-    return {"b0": b0 + st.shift, "b1": b1, "se": np.sqrt(cov[:, 1, 1]), "gamma": g, "sigma_b2": g * scale,
+        se = np.sqrt(cov[:, 1, 1])
+    return {"b0": b0 + st.shift, "b1": b1, "se": se, "gamma": g, "sigma_b2": g * scale,
             "sigma_e2": scale, "sums": st, "not_pd": not_pd}
 
 

@@ -1,0 +1,306 @@
+"""The random-intercept mixed model: statsmodels per replicate, the batched REML path.
+
+External references used here:
+- statsmodels ``MixedLM`` (REML) fitted replicate by replicate: estimates,
+  standard errors, p-values, its own REML log-likelihood (``MixedLM.loglike``)
+  and its fit-trouble warnings;
+- statsmodels ``OLS``: at a zero between-cluster variance the REML fit is the
+  ordinary least squares fit with the REML (= OLS) residual variance;
+- scipy ``ttest_ind`` on cluster means: in a balanced cluster-randomised
+  trial with an interior REML estimate the mixed-model t statistic equals the
+  cluster-means t statistic (Donner & Klar 2000, ch. 6; common practice);
+- the between-within df (clusters - 2 for a between-cluster effect;
+  Li & Redden 2015, BMC Medical Research Methodology) and the exact df of the
+  balanced designs, which Satterthwaite's approximation reproduces (the
+  variance of the estimate is then one mean square; Satterthwaite 1946,
+  from memory).
+
+Data come from a small generator written here (independent of the cluster
+process) so the layouts the batch path must read -- shared columns, per
+replicate columns, padding with ``present``, missing outcomes -- are all
+exercised.
+"""
+
+import math
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.formula.api as smf
+from scipy import stats
+from statsmodels.regression.mixed_linear_model import MixedLMParams
+from statsmodels.tools.sm_exceptions import ConvergenceWarning
+
+import simpower as sp
+from simpower.analyses.mixed import MixedModel, fit_batch
+from simpower.processes.base import Batch
+
+
+# -- a small generator of cluster trials ---------------------------------------------
+def cluster_batch(rng, reps, k=10, m=20, icc=0.1, effect=0.3, cv=0.0, within=False, missing=0.0):
+    """``reps`` two-arm trials with ``k`` clusters per arm (ids 0..2k-1), sizes mean ``m``.
+
+    Equal sizes and cluster randomisation give shared ``arm``/``cluster``;
+    otherwise they are per replicate, padded and marked by ``present``.
+    ``within`` randomises individuals (coin flips) instead of clusters.
+    """
+    J = 2 * k
+    if cv == 0:
+        sizes = np.full((reps, J), m)
+    else:
+        sizes = np.maximum(2, np.round(rng.gamma(1 / cv**2, m * cv**2, (reps, J)))).astype(int)
+    u = rng.standard_normal((reps, J)) * math.sqrt(icc)
+    if cv == 0 and not within:
+        cluster = np.repeat(np.arange(J), m)
+        arm = (cluster >= k).astype(np.int8)
+        y = effect * arm + u[:, cluster] + rng.standard_normal((reps, cluster.size)) * math.sqrt(1 - icc)
+        per_rep, shared = {"y": y}, {"arm": arm, "cluster": cluster}
+    else:
+        N = int(sizes.sum(1).max())
+        cluster = np.full((reps, N), J - 1)
+        present = np.zeros((reps, N), bool)
+        for r in range(reps):
+            c = np.repeat(np.arange(J), sizes[r])
+            cluster[r, : c.size] = c
+            present[r, : c.size] = True
+        arm = rng.integers(0, 2, (reps, N)) if within else (cluster >= k).astype(int)
+        y = (effect * arm + np.take_along_axis(u, cluster, 1)
+             + rng.standard_normal((reps, N)) * math.sqrt(1 - icc))
+        per_rep, shared = {"y": y, "arm": arm, "cluster": cluster, "present": present}, {}
+    if missing:
+        y[rng.random(y.shape) < missing] = np.nan
+    return Batch(reps, per_rep, shared, {"missing": bool(missing)})
+
+
+def statsmodels_fits(batch, formula="y ~ C(arm)", **fit_kw):
+    """Per replicate: (estimate, se, p, warned, model, result) from statsmodels MixedLM."""
+    out = []
+    for i in range(batch.size):
+        d = pd.DataFrame(batch.replicate(i)).dropna(subset=["y"])
+        with warnings.catch_warnings(record=True) as w:
+            warnings.simplefilter("always")
+            model = smf.mixedlm(formula, d, groups=d["cluster"])
+            res = model.fit(reml=True, **fit_kw)
+        out.append((res.fe_params.iloc[1], res.bse_fe.iloc[1], res.pvalues.iloc[1], bool(w), model, res))
+    return out
+
+
+# -- agreement with statsmodels ---------------------------------------------------------
+CASES = {
+    "balanced": dict(reps=120, cv=0.0),
+    "unequal sizes": dict(reps=300, cv=0.6),
+    "individually randomised": dict(reps=100, cv=0.4, within=True),
+}
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("case", list(CASES))
+def test_batch_agrees_with_statsmodels(case):
+    kw = dict(CASES[case])
+    reps = kw.pop("reps")
+    batch = cluster_batch(np.random.default_rng(20240601), reps, **kw)
+    an = MixedModel()
+    assert an.supports_batch(batch)
+    out = an.batch(batch)
+    sm = statsmodels_fits(batch)
+    est, se, p = (np.array([f[j] for f in sm]) for j in range(3))
+    warned = np.array([f[3] for f in sm])
+    flagged = out["trouble"]["warning:ConvergenceWarning"]
+    clean = ~warned & ~flagged
+    assert clean.mean() > 0.8
+    # well-conditioned replicates: estimates, SEs and p-values within 1e-4 (the issue's tolerance)
+    assert np.max(np.abs(out["estimate"][clean] - est[clean])) < 1e-4
+    assert np.max(np.abs(out["se"][clean] - se[clean])) < 1e-4
+    assert np.max(np.abs(out["pvalue"][clean] - p[clean])) < 1e-4
+    # the same rejection decision on >= 99.5% of all replicates, fit trouble included
+    assert np.mean((out["pvalue"] <= 0.05) == (p <= 0.05)) >= 0.995
+    # both paths flag the boundary: every replicate the batch flags, statsmodels warned about
+    assert np.all(warned[flagged])
+
+
+def test_batch_is_the_exact_reml_optimum():
+    # With a tight gradient tolerance statsmodels lands on the same optimum to ~1e-9.
+    batch = cluster_batch(np.random.default_rng(3), 15, k=6, m=12, icc=0.2, cv=0.7)
+    out = MixedModel().batch(batch)
+    sm = statsmodels_fits(batch, method="bfgs", gtol=1e-10)
+    ok = ~np.array([f[3] for f in sm])
+    assert ok.sum() >= 12
+    assert np.allclose(out["estimate"][ok], [f[0] for f, o in zip(sm, ok) if o], atol=1e-7, rtol=0)
+    assert np.allclose(out["pvalue"][ok], [f[2] for f, o in zip(sm, ok) if o], atol=1e-7, rtol=0)
+
+
+def test_reml_loglik_at_batch_estimate_is_at_least_statsmodels():
+    # statsmodels' own REML criterion, evaluated at our estimate, is never below its fitted value.
+    batch = cluster_batch(np.random.default_rng(8), 25, k=5, m=10, icc=0.05, cv=0.5)
+    fit = fit_batch(batch)
+    for i, (_, _, _, _, model, res) in enumerate(statsmodels_fits(batch)):
+        params = MixedLMParams.from_components(fe_params=np.array([fit["b0"][i], fit["b1"][i]]),
+                                               cov_re=np.array([[fit["gamma"][i]]]))
+        assert model.loglike(params, profile_fe=False) >= res.llf - 1e-8
+
+
+# -- the boundary -------------------------------------------------------------------------
+def test_zero_cluster_variance_gives_the_boundary_and_the_ols_fit():
+    batch = cluster_batch(np.random.default_rng(5), 40, k=8, m=15, icc=0.0, cv=0.0)
+    fit = fit_batch(batch)
+    out = MixedModel().batch(batch)
+    at0 = fit["gamma"] == 0
+    # under ICC = 0 the REML estimate sits at the boundary in a large share of replicates
+    # (about half for 16 clusters; observed 0.53 in a 200-replicate run)
+    assert 0.2 < at0.mean() < 0.9
+    assert np.all(out["trouble"]["warning:ConvergenceWarning"][at0])
+    for i in np.flatnonzero(at0)[:8]:
+        d = pd.DataFrame(batch.replicate(i))
+        ols = smf.ols("y ~ C(arm)", d).fit()
+        assert math.isclose(fit["b1"][i], ols.params.iloc[1], rel_tol=0, abs_tol=1e-10)
+        assert math.isclose(fit["se"][i], ols.bse.iloc[1], rel_tol=1e-9)
+        assert math.isclose(fit["sigma_e2"][i], ols.scale, rel_tol=1e-9)
+    # statsmodels cannot reach the boundary (its sqrt parametrisation stalls near 0) and says so
+    d = pd.DataFrame(batch.replicate(int(np.flatnonzero(at0)[0])))
+    with pytest.warns(ConvergenceWarning):
+        MixedModel()(d)
+
+
+def test_per_replicate_path_lets_statsmodels_warnings_through():
+    batch = cluster_batch(np.random.default_rng(5), 40, k=8, m=15, icc=0.0)
+    at0 = np.flatnonzero(fit_batch(batch)["gamma"] == 0)
+    sc = sp.Scenario(lambda rng: batch.replicate(int(at0[rng.integers(at0.size)])), MixedModel())
+    res = sp.run(sc, reps=6, seed=1, n_jobs=1)
+    assert res.paths["mixed_model"] == "per-replicate"
+    assert "warning:ConvergenceWarning" in res.records["mixed_model"].causes
+
+
+# -- degrees of freedom ---------------------------------------------------------------
+def test_between_within_df():
+    bal = cluster_batch(np.random.default_rng(1), 30, k=7, m=9)
+    within = cluster_batch(np.random.default_rng(1), 30, k=7, m=9, cv=0.3, within=True)
+    # cluster randomised: clusters - 2 (Li & Redden 2015); within clusters: N - clusters - 1
+    for batch, expected in ((bal, lambda d: 14 - 2), (within, lambda d: len(d["y"]) - 14 - 1)):
+        out = MixedModel(df="between-within").batch(batch)
+        checked = 0
+        for i in range(batch.size):
+            d = batch.replicate(i)
+            with warnings.catch_warnings(record=True) as w:
+                warnings.simplefilter("always")
+                r = MixedModel(df="between-within")(d)
+            assert r.df == expected(d)
+            t = r.estimate / r.se
+            assert math.isclose(r.pvalue, 2 * stats.t.sf(abs(t), expected(d)), rel_tol=1e-12)
+            if not w:  # a clean statsmodels fit: the batch path agrees
+                assert math.isclose(r.pvalue, out["pvalue"][i], abs_tol=1e-4)
+                checked += 1
+            if checked == 3:
+                break
+        assert checked == 3
+
+
+def test_satterthwaite_reproduces_exact_df_in_balanced_designs():
+    an = MixedModel(df="satterthwaite")
+    for k, m in ((5, 8), (9, 4)):
+        batch = cluster_batch(np.random.default_rng(k), 40, k=k, m=m, icc=0.15)
+        interior = fit_batch(batch)["gamma"] > 0
+        out = an.batch(batch)
+        crit = (out["ci_high"] - out["ci_low"]) / (2 * out["se"])
+        assert np.allclose(crit[interior], stats.t.ppf(0.975, 2 * k - 2), rtol=1e-8)
+        r = an(batch.replicate(int(np.flatnonzero(interior)[0])))
+        assert math.isclose(r.df, 2 * k - 2, rel_tol=1e-4)
+
+
+def test_satterthwaite_batch_matches_per_replicate_unbalanced():
+    batch = cluster_batch(np.random.default_rng(4), 12, k=6, m=10, icc=0.2, cv=0.7)
+    an = MixedModel(df="satterthwaite")
+    out = an.batch(batch)
+    for i in range(batch.size):
+        with warnings.catch_warnings(record=True) as w:
+            warnings.simplefilter("always")
+            r = an(batch.replicate(i))
+        if w:
+            continue
+        assert math.isclose(r.pvalue, out["pvalue"][i], abs_tol=1e-4)
+        assert math.isclose(r.se, out["se"][i], rel_tol=1e-4)
+
+
+def test_balanced_mixed_model_equals_cluster_means_t_test():
+    batch = cluster_batch(np.random.default_rng(9), 200, k=6, m=10, icc=0.1)
+    out = MixedModel(df="between-within").batch(batch)
+    interior = fit_batch(batch)["gamma"] > 0
+    y, cl = batch.per_rep["y"], batch.shared["cluster"]
+    means = np.stack([y[:, cl == j].mean(1) for j in range(12)], 1)
+    ref = stats.ttest_ind(means[:, 6:], means[:, :6], axis=1)
+    assert interior.mean() > 0.7
+    assert np.allclose(out["pvalue"][interior], ref.pvalue[interior], rtol=1e-8, atol=1e-12)
+    assert np.allclose(out["estimate"], means[:, 6:].mean(1) - means[:, :6].mean(1), atol=1e-10)
+
+
+# -- layouts, paths, missing outcomes ----------------------------------------------
+def test_missing_outcomes_are_dropped_in_both_paths():
+    batch = cluster_batch(np.random.default_rng(2), 10, k=6, m=10, icc=0.1, missing=0.15)
+    an = MixedModel()
+    assert an.supports_batch(batch)
+    out = an.batch(batch)
+    for i, f in enumerate(statsmodels_fits(batch)):
+        if not f[3]:
+            assert math.isclose(f[0], out["estimate"][i], abs_tol=1e-4)
+            assert math.isclose(f[2], out["pvalue"][i], abs_tol=1e-4)
+
+
+def test_supports_batch_checks_the_layout():
+    batch = cluster_batch(np.random.default_rng(0), 4, k=3, m=5)
+    assert MixedModel().supports_batch(batch)
+    assert MixedModel(formula="y ~ arm").supports_batch(batch)
+    assert not MixedModel(formula="y ~ C(arm) + subject").supports_batch(batch)
+    assert not MixedModel(groups="subject").supports_batch(batch)
+    three_arms = Batch(4, dict(batch.per_rep), {**batch.shared, "arm": batch.shared["arm"] * 2})
+    assert not MixedModel().supports_batch(three_arms)
+    no_cluster = Batch(4, dict(batch.per_rep), {"arm": batch.shared["arm"]})
+    assert not MixedModel().supports_batch(no_cluster)
+
+
+def test_repeated_measures_per_replicate_with_subject_groups():
+    rng = np.random.default_rng(6)
+    n, visits = 30, 3
+    subject = np.repeat(np.arange(n), visits)
+    visit = np.tile(np.arange(visits), n)
+    arm = (subject >= n // 2).astype(int)
+    y = 0.4 * arm + 0.2 * visit + rng.normal(0, 0.7, n)[subject] + rng.normal(0, 1, n * visits)
+    data = {"y": y, "arm": arm, "subject": subject, "visit": visit}
+    an = MixedModel(formula="y ~ C(arm) + C(visit)", groups="subject", df="between-within")
+    r = an(data)
+    ref = smf.mixedlm("y ~ C(arm) + C(visit)", pd.DataFrame(data), groups=subject).fit(reml=True)
+    assert math.isclose(r.estimate, ref.fe_params["C(arm)[T.1]"], rel_tol=1e-12)
+    assert math.isclose(r.se, ref.bse_fe["C(arm)[T.1]"], rel_tol=1e-12)
+    assert r.df == n - 2  # arm is constant within subject: subjects - 2 (intercept, arm)
+    late = MixedModel(formula="y ~ C(arm) + C(visit)", groups="subject", term="C(visit)[T.2]", df="between-within")
+    assert late(data).df == n * visits - n - 2  # a within-subject column: N - subjects - 2 within columns
+
+
+def test_engine_takes_the_batch_path_for_the_cluster_process():
+    registry = pytest.importorskip("simpower.registry")
+    if "cluster_trial" not in registry.names("process"):
+        pytest.skip("cluster_trial process not available")
+    proc = registry.build("process", {"type": "cluster_trial", "clusters": 8, "cluster_size": 12, "icc": 0.05,
+                                      "cluster_size_cv": 0.5, "effect": 0.0})
+    sc = sp.Scenario(proc, analyses={"lmm": MixedModel(df="between-within")})
+    res = sp.run(sc, reps=3000, seed=11, n_jobs=1)
+    assert res.paths["lmm"] == "batch"
+    rec = res.records["lmm"]
+    # type I error of the between-within test under the null, all replicates counted as
+    # decisions: near alpha (Bradley's 1978 liberal criterion 0.5 alpha .. 1.5 alpha)
+    rate = np.mean(rec.pvalue <= 0.05)
+    assert 0.025 <= rate <= 0.075
+    assert "warning:ConvergenceWarning" in rec.causes
+
+
+# -- bad input ------------------------------------------------------------------------
+@pytest.mark.parametrize("kw, field", [({"df": "kenward"}, "df"), ({"formula": "y C(arm)"}, "formula"),
+                                       ({"groups": ""}, "groups"), ({"alternative": "both"}, "alternative")])
+def test_bad_parameters_name_the_field(kw, field):
+    with pytest.raises(sp.ParameterError, match=f"`{field}`"):
+        MixedModel(**kw)
+
+
+def test_unknown_term_names_the_nearest_coefficient():
+    batch = cluster_batch(np.random.default_rng(0), 1, k=4, m=6)
+    with pytest.raises(sp.ParameterError, match="C\\(arm\\)\\[T.1\\]"):
+        MixedModel(term="C(arm)[T.2]")(batch.replicate(0))
