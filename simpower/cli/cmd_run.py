@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from ..engine import run
-from .common import add_run_options, command_line, jobs_of, load_scenario, progress_of
+from ..engine import RunInterrupted, run
+from .common import add_run_options, command_line, engine_options, load_scenario, resume_hint
 
 DEFAULT_REPS = 2000
 
@@ -19,12 +19,18 @@ def register(sub) -> None:
 
 def main(args) -> int:
     sf = load_scenario(args)
-    res = run(sf.scenario, reps=sf.run.get("reps", DEFAULT_REPS), seed=sf.run.get("seed"),
-              n_jobs=jobs_of(sf, args), chunk_size=sf.run.get("chunk_size"), progress=progress_of(args),
-              fit_trouble=args.fit_trouble or sf.run.get("fit_trouble", "failure"),
-              max_failure_rate=sf.run.get("max_failure_rate", 0.5))
+    opts = engine_options(sf, args)
+    try:
+        res = run(sf.scenario, reps=sf.run.get("reps", DEFAULT_REPS), seed=sf.run.get("seed"),
+                  fit_trouble=args.fit_trouble or sf.run.get("fit_trouble", "failure"), **opts)
+    except RunInterrupted:
+        raise RunInterrupted(f"interrupted; {resume_hint(opts['store'])}.") from None
     res.extra["command"] = command_line()
+    if opts["store"]:
+        res.extra["store"] = opts["store"]
     print(res)
+    if opts["store"]:
+        print(f"\nRun store: {opts['store']} (simpower export {opts['store']} OUT.csv)")
     if args.json:
         res.to_json(args.json)
         print(f"\nJSON written to {args.json}")

@@ -19,6 +19,110 @@ def add_run_options(p: argparse.ArgumentParser) -> None:
                    help="change a scenario parameter, e.g. --set n=80 --set outcome.cv=1.5 (repeatable)")
     p.add_argument("--json", metavar="PATH", help="also write the result as JSON to PATH")
     p.add_argument("--quiet", "-q", action="store_true", help="no progress bar")
+    add_engine_options(p)
+
+
+#: where ``--store`` without a path puts the run store
+DEFAULT_STORE_DIR = "simpower-runs"
+#: fields of the scenario file's [store] and [execution] blocks
+STORE_FIELDS = ("path", "sync")
+EXECUTION_FIELDS = ("backend", "address", "timeout", "summaries_only")
+
+
+def add_engine_options(p: argparse.ArgumentParser) -> None:
+    """--store, --backend, --address, --max-failure-rate, --timeout, --summaries-only (part of add_run_options)."""
+    g = p.add_argument_group("run store and execution")
+    g.add_argument("--store", nargs="?", const=DEFAULT_STORE_DIR + "/", metavar="PATH",
+                   help="commit every finished chunk to this SQLite run store and resume from it when the same "
+                        "command runs again; a folder (or no PATH: ./simpower-runs/) gets a file named by the "
+                        "scenario's fingerprint")
+    g.add_argument("--backend", choices=("loky", "threading", "serial", "dask"),
+                   help="executor: loky worker processes (default), threads, this process, or a dask.distributed "
+                        "cluster")
+    g.add_argument("--address", metavar="ADDR",
+                   help="dask scheduler address, e.g. tcp://10.0.0.5:8786 (implies --backend dask)")
+    g.add_argument("--max-failure-rate", type=float, metavar="RATE",
+                   help="stop once more than this share of an analysis' replicates fail hard (exceptions, "
+                        "non-finite p-values, timeouts); in (0, 1], default 0.5")
+    g.add_argument("--timeout", type=float, metavar="SECONDS",
+                   help="per-replicate time limit of per-replicate analyses; a replicate past it counts as failure "
+                        "'timeout' (enforced in this process and loky workers, not on dask)")
+    g.add_argument("--summaries-only", action="store_true",
+                   help="keep only running summaries in memory, not per-replicate records (those stay in the "
+                        "store); automatic above 1,000,000 replicates")
+
+
+def _block(sf: ScenarioFile, name: str, fields: tuple[str, ...]) -> dict:
+    from ..errors import nearest
+
+    block = sf.blocks.get(name) or {}
+    if not isinstance(block, dict):
+        raise ParameterError(f"`[{name}]` must be a table with fields {', '.join(fields)}.")
+    for key in block:
+        if key not in fields:
+            raise ParameterError(f"`{name}.{key}` is not a field of [{name}].{nearest(key, fields)}")
+    return block
+
+
+def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | None:
+    """The run store path for this command (None without --store or a [store] block).
+
+    A folder (a path ending in '/' or an existing directory) gets the file
+    ``run-<fingerprint>.sqlite``; give the fingerprint of what the command
+    runs (a sweep: of the whole grid). The store is created if absent, and
+    the command line is recorded in it for ``simpower resume``.
+    """
+    from pathlib import Path
+
+    from ..engine.store import RunStore
+
+    block = _block(sf, "store", STORE_FIELDS) if sf is not None else {}
+    raw = getattr(args, "store", None) or block.get("path")
+    if not raw:
+        return None
+    raw = str(raw)
+    path = Path(raw)
+    if raw.endswith(("/", "\\")) or path.is_dir():
+        path = path / f"run-{fingerprint}.sqlite"
+    with RunStore(path, command=sys.argv[1:], sync=block.get("sync", "normal"), background=False):
+        pass
+    return str(path)
+
+
+def engine_options(sf: ScenarioFile, args, fingerprint: str | None = None) -> dict:
+    """Keyword arguments for ``engine.run`` / ``run_many`` from the file and the command line.
+
+    Gives n_jobs, chunk_size, progress, backend, address, max_failure_rate,
+    timeout, keep_records and store (a path or None; the fingerprint names
+    the file when --store is a folder; default: the scenario's).
+    """
+    ex = _block(sf, "execution", EXECUTION_FIELDS)
+    address = getattr(args, "address", None) or ex.get("address")
+    backend = getattr(args, "backend", None) or ex.get("backend") or ("dask" if address else None)
+    if address and backend != "dask":
+        raise ParameterError(f"`--address` is for the dask backend; got --backend {backend}.")
+    rate = getattr(args, "max_failure_rate", None)
+    timeout = getattr(args, "timeout", None)
+    timeout = timeout if timeout is not None else ex.get("timeout")
+    lean = getattr(args, "summaries_only", False) or bool(ex.get("summaries_only", False))
+    return {
+        "n_jobs": jobs_of(sf, args),
+        "chunk_size": sf.run.get("chunk_size"),
+        "progress": progress_of(args),
+        "backend": backend,
+        "address": address,
+        "max_failure_rate": rate if rate is not None else sf.run.get("max_failure_rate", 0.5),
+        "timeout": timeout,
+        "keep_records": False if lean else None,
+        "store": store_of(args, fingerprint or sf.scenario.fingerprint(), sf),
+    }
+
+
+def resume_hint(store: str | None) -> str:
+    """How to resume, for messages after an interruption."""
+    if not store:
+        return "nothing was kept: add --store to make a run resumable"
+    return f"finished chunks are in {store}; to resume, run the same command again or: simpower resume {store}"
 
 
 def load_scenario(args) -> ScenarioFile:

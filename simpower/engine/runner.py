@@ -289,6 +289,8 @@ def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_
     finally:
         gen.close()
         bar.close()
+        if store is not None and hasattr(store, "flush"):
+            store.flush()
     if unenforced:
         warnings.warn(f"the per-replicate time limit ({timeout:g} s) could not be enforced on this executor "
                       f"(it needs a process's main thread: serial or loky); it was ignored.", RuntimeWarning,

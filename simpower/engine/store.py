@@ -44,9 +44,12 @@ from __future__ import annotations
 import json
 import math
 import os
+import queue
 import sqlite3
 import struct
+import threading
 import time
+import weakref
 import zlib
 from contextlib import contextmanager
 from pathlib import Path
@@ -158,6 +161,101 @@ def _flatten(spec: dict, prefix: str = "") -> dict[str, Any]:
     return out
 
 
+def write_chunk(conn: sqlite3.Connection, out: ChunkOutput) -> None:
+    """One chunk in one transaction: arrays, causes, paths, then its ``chunks`` row."""
+    key = (int(out.point), int(out.chunk))
+    rows = []
+    for name, rec in out.records.items():
+        for f, arr in rec.items():
+            rows.append((*key, name, f, *encode_array(arr)))
+    conn.execute("BEGIN IMMEDIATE")
+    try:
+        for table in ("chunks", "arrays", "causes", "chunk_analyses"):
+            conn.execute(f"DELETE FROM {table} WHERE point=? AND chunk=?", key)
+        conn.executemany("INSERT INTO arrays VALUES (?, ?, ?, ?, ?, ?, ?, ?)", rows)
+        conn.executemany("INSERT INTO causes VALUES (?, ?, ?, ?, ?)",
+                         [(*key, j, cause, out.messages.get(cause, ""))
+                          for j, cause in enumerate(out.causes, start=1)])
+        conn.executemany("INSERT INTO chunk_analyses VALUES (?, ?, ?, ?, ?)",
+                         [(*key, name, out.paths.get(name, ""), json.dumps(out.hypotheses.get(name, [])))
+                          for name in out.records])
+        conn.execute("INSERT INTO chunks VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                     (*key, int(out.size), float(out.seconds), float(out.started_at), time.time(), out.worker,
+                      None if out.timeout_enforced is None else int(out.timeout_enforced)))
+    except BaseException:
+        conn.execute("ROLLBACK")
+        raise
+    conn.execute("COMMIT")
+
+
+def _connect(path: Path, sync: str) -> sqlite3.Connection:
+    conn = sqlite3.connect(str(path), isolation_level=None, timeout=60, check_same_thread=False)
+    conn.execute("PRAGMA journal_mode=WAL")
+    conn.execute(f"PRAGMA synchronous={sync.upper()}")
+    return conn
+
+
+class _Writer:
+    """A thread that commits chunks, so the run computes while SQLite writes.
+
+    The queue is bounded (back-pressure keeps memory bounded); :meth:`flush`
+    waits for the queue to drain and re-raises the first failure.
+    """
+
+    def __init__(self, path: Path, sync: str, depth: int = 32):
+        self.path = path
+        self.queue: queue.Queue = queue.Queue(maxsize=depth)
+        self.error: BaseException | None = None
+        self.conn = _connect(path, sync)
+        self.thread = threading.Thread(target=self._loop, name="simpower-store-writer", daemon=True)
+        self.thread.start()
+
+    def _loop(self):
+        while True:
+            out = self.queue.get()
+            try:
+                if out is None:
+                    return
+                if self.error is None:
+                    write_chunk(self.conn, out)
+            except BaseException as exc:  # kept and re-raised in the run's thread
+                self.error = exc
+            finally:
+                self.queue.task_done()
+
+    def _raise(self):
+        if self.error is not None:
+            exc, self.error = self.error, None
+            if isinstance(exc, sqlite3.DatabaseError):
+                raise StoreError(f"{self.path}: saving a chunk failed (SQLite: {exc}).") from None
+            raise exc
+
+    def put(self, out: ChunkOutput) -> None:
+        self._raise()
+        self.queue.put(out)
+
+    def flush(self) -> None:
+        self.queue.join()
+        self._raise()
+
+    def stop(self) -> None:
+        if self.conn is None:
+            return
+        if self.thread.is_alive():
+            self.queue.put(None)
+            self.thread.join()
+        self.conn.close()
+        self.conn = None
+
+
+def _shutdown(writer: _Writer) -> None:
+    """At exit or when the store is collected unclosed: commit what is queued."""
+    try:
+        writer.flush()
+    finally:
+        writer.stop()
+
+
 class RunStore:
     """A SQLite run store (see the module notes).
 
@@ -175,10 +273,13 @@ class RunStore:
         flushes every commit to the disk.
     check : bool
         Run SQLite's ``quick_check`` when opening (cost grows with the file).
+    background : bool
+        Commit chunks on a writer thread (the run goes on computing meanwhile);
+        :meth:`flush` and :meth:`close` wait for the commits.
     """
 
     def __init__(self, path, mode: str = "a", command: list[str] | None = None, sync: str = "normal",
-                 check: bool = False):
+                 check: bool = False, background: bool = True):
         if mode not in ("a", "r"):
             raise StoreError(f"`mode` must be 'a' or 'r'; got {mode!r}.")
         if sync not in ("normal", "full"):
@@ -194,18 +295,20 @@ class RunStore:
         elif mode == "a":
             self.path.parent.mkdir(parents=True, exist_ok=True)
         self._conn: sqlite3.Connection | None = None
+        self._writer: _Writer | None = None
         with self._guard("opening"):
             if mode == "r":
                 self._conn = sqlite3.connect(f"file:{self.path.resolve()}?mode=ro", uri=True)
             else:
-                self._conn = sqlite3.connect(str(self.path), isolation_level=None)
-                self._conn.execute("PRAGMA journal_mode=WAL")
-                self._conn.execute(f"PRAGMA synchronous={sync.upper()}")
+                self._conn = _connect(self.path, sync)
             if check:
                 row = self._conn.execute("PRAGMA quick_check").fetchone()
                 if row[0] != "ok":
                     raise StoreError(f"{self.path}: the store is corrupted (SQLite: {row[0]}).")
             self._init_schema(command)
+            if mode == "a" and background:
+                self._writer = _Writer(self.path, sync)
+                weakref.finalize(self, _shutdown, self._writer)
 
     # -- plumbing ----------------------------------------------------------------
     @contextmanager
@@ -261,11 +364,18 @@ class RunStore:
             c.execute("COMMIT")
 
     def close(self) -> None:
-        if self._conn is not None:
-            try:
-                self._conn.close()
-            finally:
-                self._conn = None
+        """Commit what is pending, stop the writer thread and close the file."""
+        try:
+            if self._writer is not None:
+                writer, self._writer = self._writer, None
+                try:
+                    writer.flush()
+                finally:
+                    writer.stop()
+        finally:
+            if self._conn is not None:
+                conn, self._conn = self._conn, None
+                conn.close()
 
     def __enter__(self):
         return self
@@ -306,6 +416,7 @@ class RunStore:
         """
         fp = scenario.fingerprint()
         spec = scenario.spec()
+        self.flush()
         with self._guard("checking the scenario"):
             row = self._conn.execute("SELECT fingerprint, seed, chunk_size, reps, scenario FROM points "
                                      "WHERE point=?", (int(point),)).fetchone()
@@ -333,26 +444,22 @@ class RunStore:
 
     # -- chunks ----------------------------------------------------------------------
     def save(self, out: ChunkOutput) -> None:
-        """Commit one finished chunk (replacing a stored chunk of the same index)."""
+        """Commit one finished chunk (replacing a stored chunk of the same index).
+
+        With ``background=True`` the commit happens on the store's writer
+        thread and :meth:`flush` waits for it; otherwise before returning.
+        """
         self._need_writable()
-        key = (int(out.point), int(out.chunk))
-        rows = []
-        for name, rec in out.records.items():
-            for f, arr in rec.items():
-                rows.append((*key, name, f, *encode_array(arr)))
-        with self._guard("saving a chunk"), self._transaction() as c:
-            for table in ("chunks", "arrays", "causes", "chunk_analyses"):
-                c.execute(f"DELETE FROM {table} WHERE point=? AND chunk=?", key)
-            c.executemany("INSERT INTO arrays VALUES (?, ?, ?, ?, ?, ?, ?, ?)", rows)
-            c.executemany("INSERT INTO causes VALUES (?, ?, ?, ?, ?)",
-                          [(*key, j, cause, out.messages.get(cause, ""))
-                           for j, cause in enumerate(out.causes, start=1)])
-            c.executemany("INSERT INTO chunk_analyses VALUES (?, ?, ?, ?, ?)",
-                          [(*key, name, out.paths.get(name, ""), json.dumps(out.hypotheses.get(name, [])))
-                           for name in out.records])
-            c.execute("INSERT INTO chunks VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-                      (*key, int(out.size), float(out.seconds), float(out.started_at), time.time(), out.worker,
-                       None if out.timeout_enforced is None else int(out.timeout_enforced)))
+        if self._writer is not None:
+            self._writer.put(out)
+        else:
+            with self._guard("saving a chunk"):
+                write_chunk(self._conn, out)
+
+    def flush(self) -> None:
+        """Wait until every saved chunk is committed; re-raise a failed commit as StoreError."""
+        if self._writer is not None:
+            self._writer.flush()
 
     def load(self, point: int, chunk: int, size: int) -> ChunkOutput | None:
         """The stored chunk, or None if absent or of another size."""
