@@ -338,9 +338,9 @@ def _round_up(x: float, chunk: int) -> int:
 
 
 def _check_common(scenario, target, level, rel_tol, max_reps, analysis):
-    target = Real(0.0, 1.0, low_open=True, high_open=True).clean("power", target)
-    if not (scenario.alpha < target < 1):
-        raise ParameterError(f"`power` must be in (alpha, 1) = ({scenario.alpha:g}, 1); got {target:g}.")
+    if isinstance(target, bool) or not isinstance(target, (int, float)) or not (scenario.alpha < target < 1):
+        raise ParameterError(f"`power` must be in (alpha, 1) = ({scenario.alpha:g}, 1); got {target!r}.")
+    target = float(target)
     level = Real(0.5, 1.0, high_open=True).clean("level", level)
     rel_tol = Real(0.0, 1.0, low_open=True, high_open=True).clean("rel_tol", rel_tol)
     max_reps = Int(low=1).clean("max_reps", max_reps)

@@ -1,0 +1,114 @@
+"""``simpower samplesize SCENARIO``: the smallest n (or number of clusters) reaching a target power.
+
+With ``--effect``, the minimal detectable effect at the scenario's size
+instead. Settings come from the file's ``[search]`` block; the options below
+override them:
+
+    simpower samplesize trial.toml --power 0.9 --range 20:400
+    simpower samplesize cluster.toml --parameter clusters --range 4:80
+    simpower samplesize trial.toml --effect --range 0:1.5 --set n=80
+
+The answer carries a Monte Carlo interval; a range in which the target is
+never reached is an error that reports the best power seen.
+"""
+
+from __future__ import annotations
+
+from ..errors import ParameterError
+from .common import add_run_options, jobs_of, load_scenario, progress_of
+
+
+def register(sub) -> None:
+    p = sub.add_parser("samplesize", help="required sample size (or clusters) for a target power, with a Monte "
+                                          "Carlo interval; or the minimal detectable effect (--effect)",
+                       description=__doc__, formatter_class=__import__("argparse").RawDescriptionHelpFormatter)
+    add_run_options(p)
+    p.add_argument("--power", type=float, help="target power (default: [search] power, else 0.8)")
+    p.add_argument("--effect", action="store_true", help="find the minimal detectable effect at the scenario's size")
+    p.add_argument("--parameter", help="the parameter to search over (default: the process's size or effect)")
+    p.add_argument("--range", metavar="LOW:HIGH", help="search range")
+    p.add_argument("--step", type=float, help="allowed sizes are multiples of STEP (e.g. 2)")
+    p.add_argument("--rel-tol", type=float, help="stop when the interval's half-width is within this share "
+                                                  "(default 0.02)")
+    p.add_argument("--max-reps", type=int, help="budget of replicates (default 200000)")
+    p.add_argument("--analysis", help="whose power must reach the target (default: the primary analysis)")
+    p.add_argument("--csv", metavar="PATH", help="write the evaluated values as CSV")
+    p.add_argument("--plot", metavar="STEM", help="write STEM.png and STEM.svg")
+    p.add_argument("--null-check", action="store_true", help="also the type I error under the null")
+    p.add_argument("--null-reps", type=int, help="replicates of the type I error check (default 10000)")
+    p.add_argument("--report", metavar="DIR", help="also write the Markdown + HTML report into DIR")
+    p.set_defaults(func=main)
+
+
+def _range(text: str):
+    lo, sep, hi = text.partition(":")
+    try:
+        if not sep:
+            raise ValueError
+        return float(lo), float(hi)
+    except ValueError:
+        raise ParameterError(f"`--range` must look like LOW:HIGH (e.g. 10:400); got {text!r}.") from None
+
+
+def run_search(sf, args, seed):
+    from ..search import SEARCH_FIELDS, search
+    from ..sequential import read_block
+
+    opts = read_block("search", sf.blocks.get("search"), SEARCH_FIELDS)
+    find = "effect" if getattr(args, "effect", False) else opts.pop("find", "size")
+    opts.pop("find", None)
+    for key, attr in (("power", "power"), ("parameter", "parameter"), ("step", "step"), ("rel_tol", "rel_tol"),
+                      ("max_reps", "max_reps"), ("analysis", "analysis")):
+        v = getattr(args, attr, None)
+        if v is not None:
+            opts[key] = v
+    if getattr(args, "range", None):
+        opts["low"], opts["high"] = _range(args.range)
+    if opts.get("chunk_size") is None and sf.run.get("chunk_size"):
+        opts["chunk_size"] = sf.run["chunk_size"]
+    return search(sf.scenario, find, seed=seed, n_jobs=jobs_of(sf, args), progress=progress_of(args),
+                  fit_trouble=sf.run.get("fit_trouble", "failure"),
+                  max_failure_rate=sf.run.get("max_failure_rate", 0.5), **opts)
+
+
+def main(args) -> int:
+    from ..textout import CAUTION
+    from .cmd_report import null_settings, run_null, seed_of, write_outputs
+
+    sf = load_scenario(args)
+    seed = seed_of(sf, args)
+    res = run_search(sf, args, seed)
+    print(res.summary())
+    if res.kind == "size":
+        try:
+            print(f"  at the answer: {res.at_answer().process.describe()}")
+        except Exception:  # a user process may not describe itself
+            pass
+    print(f"  seed: {seed}  chunk size: {res.chunk_size}")
+    null = None
+    ns = null_settings(sf, args, default_on=False) if args.null_check else None
+    if ns is not None:
+        null = run_null(sf, args, seed, ns)
+        print("\nType I error under the null (Bradley 1978 liberal criterion: 0.5 alpha to 1.5 alpha):")
+        print(null[["analysis", "type1_error", "mcse", "reps", "meets_bradley"]].to_string(
+            index=False, float_format=lambda v: f"{v:.4f}"))
+    if args.csv:
+        res.table.to_csv(args.csv, index=False)
+        print(f"CSV written to {args.csv}")
+    if args.json:
+        import json
+
+        with open(args.json, "w", encoding="utf-8") as fh:
+            json.dump(res.to_dict(), fh, indent=2, default=str)
+        print(f"JSON written to {args.json}")
+    if args.plot:
+        from ..report import plots
+
+        png, svg = plots.save(plots.search_plot(res), args.plot)
+        print(f"plots written to {png} and {svg}")
+    if args.report:
+        paths = write_outputs(sf, args, seed, args.report, search=res, null=null,
+                              settings={"search": res.settings, "set": list(args.set)})
+        print(f"report written to {paths.get('html') or paths.get('md')}")
+    print("\nCaution: " + CAUTION)
+    return 0 if res.converged else 1

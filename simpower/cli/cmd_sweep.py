@@ -1,0 +1,126 @@
+"""``simpower sweep SCENARIO``: power over a grid of assumptions, one tidy row per grid point and analysis.
+
+The grid comes from the file's ``[sweep]`` block, or from ``--vary`` (crossed)
+and ``--together`` (zipped sets) on the command line, which replace it:
+
+    simpower sweep trial.toml --vary n=40,60,80 --vary effect=0.2:0.5:0.1 --csv power.csv
+    simpower sweep trial.toml --vary n=10:400//8 --together "sd=8,10,12;mean0=50,55,60"
+
+Values: ``a,b,c`` (a list), ``from:to:step``, ``from:to/count`` (evenly
+spaced), ``from:to//count`` (log-spaced; rounded for integer parameters).
+"""
+
+from __future__ import annotations
+
+from ..errors import ParameterError
+from .common import add_run_options, jobs_of, load_scenario, progress_of
+
+DEFAULT_REPS = 2000
+SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power", "path")
+
+
+def register(sub) -> None:
+    p = sub.add_parser("sweep", help="power over a grid of parameters (lists, ranges, crossed or zipped); "
+                                     "CSV / Parquet table and plots", description=__doc__,
+                       formatter_class=__import__("argparse").RawDescriptionHelpFormatter)
+    add_run_options(p)
+    p.add_argument("--vary", action="append", default=[], metavar="NAME=VALUES",
+                   help="a parameter and its values, crossed with the others (repeatable)")
+    p.add_argument("--together", action="append", default=[], metavar="A=VALUES;B=VALUES",
+                   help="parameters whose values change together (equal lengths; repeatable)")
+    p.add_argument("--target-mcse", type=float, help="run each point until its power's MCSE is at most this")
+    p.add_argument("--max-reps", type=int, help="ceiling of replicates per point with --target-mcse")
+    p.add_argument("--csv", metavar="PATH", help="write the table as CSV")
+    p.add_argument("--parquet", metavar="PATH", help="write the table as Parquet")
+    p.add_argument("--plot", metavar="STEM", help="write STEM.png and STEM.svg (power against --x)")
+    p.add_argument("--x", metavar="NAME", help="parameter on the plot's x axis (default: the first swept)")
+    p.add_argument("--target", type=float, help="draw a target power line on the plot")
+    p.add_argument("--null-check", action="store_true", help="also the type I error under the null (at the file's "
+                                                             "scenario; at every point with [null_check] at_grid)")
+    p.add_argument("--null-reps", type=int, help="replicates of the type I error check (default 10000)")
+    p.add_argument("--report", metavar="DIR", help="also write the Markdown + HTML report into DIR")
+    p.set_defaults(func=main)
+
+
+def grid_of(sf, args, block):
+    from ..sweep import Grid, grid_from_block, parse_axis, parse_together
+
+    if args.vary or args.together:
+        g = Grid()
+        if args.vary:
+            g = g * Grid.cross(**dict(parse_axis(v) for v in args.vary))
+        for t in args.together:
+            g = g * parse_together(t)
+        return g
+    g = grid_from_block(block)
+    if g is None:
+        raise ParameterError("the grid is empty: give --vary NAME=VALUES, or a [sweep] block with [sweep.vary] "
+                             "or [[sweep.together]].")
+    return g
+
+
+def run_sweep(sf, args, seed, grid, block):
+    from ..sweep import sweep
+
+    target = getattr(args, "target_mcse", None) or block.get("target_mcse")
+    kw = {}
+    if target is not None:
+        kw = {"target_mcse": target, "max_reps": getattr(args, "max_reps", None) or block.get("max_reps", 100_000),
+              "min_reps": block.get("min_reps", 1000)}
+    reps = getattr(args, "reps", None) or block.get("reps") or sf.run.get("reps", DEFAULT_REPS)
+    return sweep(sf.scenario, grid, reps=reps, seed=seed, n_jobs=jobs_of(sf, args), progress=progress_of(args),
+                 chunk_size=block.get("chunk_size", sf.run.get("chunk_size")),
+                 fit_trouble=sf.run.get("fit_trouble", "failure"),
+                 max_failure_rate=sf.run.get("max_failure_rate", 0.5), **kw)
+
+
+def format_table(table) -> str:
+    grid = [c for c in table.attrs.get("grid", []) if c in table.columns]
+    cols = grid + [c for c in SHOWN if c in table.columns]
+    return table[cols].to_string(index=False, float_format=lambda v: f"{v:.4f}", na_rep="-")
+
+
+def main(args) -> int:
+    from ..sequential import read_block
+    from ..sweep import SWEEP_FIELDS
+    from ..textout import CAUTION
+    from .cmd_report import null_settings, run_null, seed_of, write_outputs
+
+    sf = load_scenario(args)
+    block = read_block("sweep", sf.blocks.get("sweep"), SWEEP_FIELDS)
+    grid = grid_of(sf, args, block)
+    seed = seed_of(sf, args)
+    table = run_sweep(sf, args, seed, grid, block)
+    print(format_table(table))
+    print(f"\nseed: {seed}  chunk size: {table.attrs['chunk_size']}  points: {len(table) // len(sf.scenario.analyses)}")
+    null = None
+    ns = null_settings(sf, args, default_on=False) if (args.null_check or block.get("null_check")) else None
+    if ns is not None:
+        null = run_null(sf, args, seed, ns, grid)
+        print("\nType I error under the null (Bradley 1978 liberal criterion: 0.5 alpha to 1.5 alpha):")
+        cols = [c for c in table.attrs.get("grid", []) if c in null.columns and ns["at_grid"]]
+        print(null[cols + ["analysis", "type1_error", "mcse", "reps", "meets_bradley"]].to_string(
+            index=False, float_format=lambda v: f"{v:.4f}"))
+    x = args.x or block.get("x") or table.attrs["grid"][0]
+    if x not in table.columns:
+        raise ParameterError(f"`--x` {x!r} is not a swept parameter; swept: {', '.join(table.attrs['grid'])}.")
+    if args.csv:
+        table.to_csv(args.csv, index=False)
+        print(f"CSV written to {args.csv}")
+    if args.parquet:
+        table.to_parquet(args.parquet, index=False)
+        print(f"Parquet written to {args.parquet}")
+    if args.json:
+        table.to_json(args.json, orient="records", indent=1)
+        print(f"JSON written to {args.json}")
+    if args.plot:
+        from ..report import plots
+
+        png, svg = plots.save(plots.power_curve(table, x, target=args.target), args.plot)
+        print(f"plots written to {png} and {svg}")
+    if args.report:
+        paths = write_outputs(sf, args, seed, args.report, sweep=table, null=null, x=x,
+                              settings={"sweep": {"grid": grid.describe()}, "set": list(args.set)})
+        print(f"report written to {paths.get('html') or paths.get('md')}")
+    print("\nCaution: " + CAUTION)
+    return 0
