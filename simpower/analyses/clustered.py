@@ -27,12 +27,23 @@ from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
 from .ttests import p_from_t, p_from_z
 
 
-def _t_fields(est, se, df, alternative, ci_level):
-    """p-value and CI of ``est / se`` against t(df) (arrays allowed)."""
-    t = est / se
+def _two_sided_ci(est, se, df, ci_level):
+    """Two-sided t interval at ``ci_level`` (whatever the test's alternative, as in the t-tests)."""
     crit = stats.t.ppf(0.5 + ci_level / 2, df)
-    return {"pvalue": p_from_t(t, df, alternative), "estimate": est, "se": se,
-            "ci_low": est - crit * se, "ci_high": est + crit * se}
+    return est - crit * se, est + crit * se
+
+
+def _pooled_se(x0, x1) -> float:
+    """SE of mean(x1) - mean(x0) with the pooled variance (defined with one value in an arm if df > 0)."""
+    ss = np.sum((x0 - x0.mean()) ** 2) + np.sum((x1 - x1.mean()) ** 2)
+    with np.errstate(all="ignore"):
+        return float(np.sqrt(ss / (x0.size + x1.size - 2) * (1 / x0.size + 1 / x1.size)))
+
+
+def _t_fields(est, se, df, alternative, ci_level):
+    """p-value of ``est / se`` against t(df) and the two-sided CI (arrays allowed)."""
+    lo, hi = _two_sided_ci(est, se, df, ci_level)
+    return {"pvalue": p_from_t(est / se, df, alternative), "estimate": est, "se": se, "ci_low": lo, "ci_high": hi}
 
 
 # -- cluster summaries ------------------------------------------------------------
@@ -79,6 +90,7 @@ class ClusterMeansT(Analysis):
     alternative : {"two-sided", "greater", "less"}
         H1 "greater": arm 1 above arm 0.
     ci_level : float in (0, 1)
+        Level of the two-sided confidence interval (two-sided whatever ``alternative``).
 
     Notes
     -----
@@ -102,20 +114,21 @@ class ClusterMeansT(Analysis):
         if self.weights == "equal":
             r = stats.ttest_ind(m1, m0, equal_var=True, alternative=self.alternative)
             df = m0.size + m1.size - 2
-            sp2 = ((m0.size - 1) * m0.var(ddof=1) + (m1.size - 1) * m1.var(ddof=1)) / df
-            se = math.sqrt(sp2 * (1 / m0.size + 1 / m1.size))
-            ci = r.confidence_interval(self.ci_level)
-            return TestResult(pvalue=float(r.pvalue), estimate=float(m1.mean() - m0.mean()), se=se,
-                              ci_low=float(ci.low), ci_high=float(ci.high), statistic=float(r.statistic),
-                              df=float(df))
+            se = _pooled_se(m0, m1)
+            est = float(m1.mean() - m0.mean())
+            lo, hi = _two_sided_ci(est, se, df, self.ci_level)
+            return TestResult(pvalue=float(r.pvalue), estimate=est, se=se, ci_low=lo, ci_high=hi,
+                              statistic=float(r.statistic), df=float(df))
         est, var = 0.0, 0.0
         for a, sign in ((0, -1.0), (1, 1.0)):
             mean_a, var_a = _size_weighted_arm(data, a)
             est += sign * mean_a
             var += var_a
         df = m0.size + m1.size - 2
-        out = _t_fields(est, math.sqrt(var), df, self.alternative, self.ci_level)
-        return TestResult(**{k: float(v) for k, v in out.items()}, statistic=est / math.sqrt(var), df=float(df))
+        with np.errstate(all="ignore"):
+            out = _t_fields(np.float64(est), np.sqrt(var), df, self.alternative, self.ci_level)
+        return TestResult(**{k: float(v) for k, v in out.items()}, statistic=float(est / np.sqrt(var)),
+                          df=float(df))
 
     # -- batch --------------------------------------------------------------------
     def supports_batch(self, batch):
@@ -212,7 +225,9 @@ def _size_weighted_arm(data, a):
     y = np.asarray(data["y"], float)
     sel = (np.asarray(data["arm"]) == a) & np.isfinite(y)
     groups = np.unique(np.asarray(data["cluster"])[sel], return_inverse=True)[1].ravel()
-    k = int(groups.max()) + 1
+    k = int(groups.max()) + 1 if groups.size else 0
+    if k < 2:  # no variance estimate from fewer than two clusters
+        return (float(y[sel].mean()) if k else math.nan), math.nan
     fit = sm.OLS(y[sel], np.ones(sel.sum())).fit(cov_type="cluster",
                                                  cov_kwds={"groups": groups, "use_correction": False})
     return float(fit.params[0]), k / (k - 1.0) * float(fit.bse[0]) ** 2
@@ -360,16 +375,14 @@ class FinalVisitT(Analysis):
         sel = (visit == visit.max()) & np.isfinite(y)
         y0, y1 = y[sel & (arm == 0)], y[sel & (arm == 1)]
         r = stats.ttest_ind(y1, y0, equal_var=not self.welch, alternative=self.alternative)
-        ci = r.confidence_interval(self.ci_level)
         if self.welch:
             se = math.sqrt(y0.var(ddof=1) / y0.size + y1.var(ddof=1) / y1.size)
         else:
-            df = y0.size + y1.size - 2
-            sp2 = ((y0.size - 1) * y0.var(ddof=1) + (y1.size - 1) * y1.var(ddof=1)) / df
-            se = math.sqrt(sp2 * (1 / y0.size + 1 / y1.size))
-        return TestResult(pvalue=float(r.pvalue), estimate=float(y1.mean() - y0.mean()), se=se,
-                          ci_low=float(ci.low), ci_high=float(ci.high), statistic=float(r.statistic),
-                          df=float(r.df))
+            se = _pooled_se(y0, y1)
+        est = float(y1.mean() - y0.mean())
+        lo, hi = _two_sided_ci(est, se, float(r.df), self.ci_level)
+        return TestResult(pvalue=float(r.pvalue), estimate=est, se=se, ci_low=float(lo), ci_high=float(hi),
+                          statistic=float(r.statistic), df=float(r.df))
 
     def supports_batch(self, batch):
         return ("visit" in batch.shared and "arm" in batch.shared and "present" not in batch.per_rep
