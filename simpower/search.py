@@ -377,6 +377,7 @@ def _search(scenario, *, parameter, kind, target, low, high, scale, step, setter
             max_reps, seed, n_jobs, chunk_size, store, progress, fit_trouble, analysis, max_failure_rate,
             pilot_points, pilot_reps):
     entropy = normalize_seed(seed)
+    pilot_points = Int(low=2).clean("pilot_points", pilot_points)
     ev = _Evaluations(scenario, parameter, analysis, entropy, n_jobs, chunk_size, store, progress, fit_trouble,
                       max_failure_rate, setter)
     fwd, inv = SCALES[scale]
