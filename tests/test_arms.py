@@ -20,7 +20,7 @@ from scipy import optimize, stats
 import simpower as sp
 from simpower.processes.arms import MultiArm, TwoArm, copula_correlation, latent_correlation
 from simpower.processes.missing import MAR, MCAR
-from simpower.processes.outcomes import Fleishman, Gamma, Lognormal, Normal, StudentT
+from simpower.processes.outcomes import Fleishman, Gamma, Lognormal, Normal, ScipyOutcome, StudentT
 from simpower.registry import build
 from simpower.scenario_files import loads
 
@@ -105,6 +105,8 @@ def test_sd_ratio_scales_treatment_deviations_not_the_mean(outcome, effect_type,
     (Lognormal(median=1.0, cv=0.6), 0.5),
     (Gamma(shape=2.0), -0.4),
     (Fleishman(skewness=1.0, excess_kurtosis=2.0), 0.7),
+    (StudentT(df=6.0), 0.5),
+    (ScipyOutcome(dist="poisson", args=[3.0]), 0.5),
 ])
 def test_realised_baseline_correlation_matches_rho_in_each_arm(outcome, rho):
     p = TwoArm(n=1000, outcome=outcome, effect=0.5, baseline_corr=rho)
@@ -148,6 +150,8 @@ def test_normal_baseline_needs_no_calibration():
 def test_unreachable_baseline_correlation_is_an_error_with_the_range():
     with pytest.raises(sp.ParameterError, match=r"^`baseline_corr` = -0.5 cannot be reached.*\(-0\.018, 1\.000\)"):
         TwoArm(n=10, outcome=Lognormal(median=1.0, sigma=2.0), baseline_corr=-0.5)
+    with pytest.raises(sp.ParameterError, match=r"^`baseline_corr` needs an outcome with a finite SD"):
+        TwoArm(n=10, outcome=StudentT(df=2.0), baseline_corr=0.5)
 
 
 # -- layout, batch vs per-replicate, engine ------------------------------------------------------

@@ -54,6 +54,12 @@ def copula_series(outcome) -> tuple[np.ndarray, float]:
     x, w = hermegauss(_NODES)
     w = w / w.sum()
     g = np.asarray(outcome.from_normal(x), dtype=float)
+    bad = ~np.isfinite(g)
+    if bad.any():  # quantiles that overflow far out in the tails, where the weights are negligible
+        if np.any(w[bad] > 1e-30):
+            return np.full(_TERMS, np.nan), math.nan
+        g, w = np.where(bad, 0.0, g), np.where(bad, 0.0, w)
+        w = w / w.sum()
     m = w @ g
     v = float(w @ (g - m) ** 2)
     h_prev, h = np.ones_like(x), x.copy()
@@ -85,9 +91,16 @@ def latent_correlation(outcome, rho: float, field: str = "baseline_corr") -> flo
     if not hasattr(outcome, "from_normal"):
         raise ParameterError(f"`{field}` needs an outcome with a quantile function (from_normal); "
                              f"{type(outcome).__name__} has none.")
+    try:
+        sd = float(outcome.sd)
+    except ParameterError as exc:
+        raise ParameterError(f"`{field}` needs an outcome with a finite SD: {exc}") from None
+    if not math.isfinite(sd):
+        raise ParameterError(f"`{field}` needs an outcome with a finite SD.")
     c, v = copula_series(outcome)
     if not (np.all(np.isfinite(c)) and math.isfinite(v) and v > 0):
-        raise ParameterError(f"`{field}`: the outcome's SD is not finite, so no correlation can be set.")
+        raise ParameterError(f"`{field}` cannot be set for this outcome: its quantiles or SD are not finite "
+                             "(a baseline correlation needs a finite SD).")
     k = np.arange(1, c.size + 1)
 
     def pearson(r):
