@@ -1,0 +1,365 @@
+"""Speed of simpower, measured side by side in one run: a table of ratios (and JSON).
+
+Usage::
+
+    python scripts/benchmark.py                 # the full run (a few minutes, idle machine)
+    python scripts/benchmark.py --quick         # small sizes: checks that every row runs
+    python scripts/benchmark.py --only a,b --json bench.json
+
+Rows (each a ratio of two rates measured here, in this run):
+
+a. two-arm t-test (NormalTwoArm(n=50, effect=0.5) + TTest, 50 per arm) through
+   ``simpower.run`` with one job, against (a1) a per-replicate loop drawing
+   fresh data and calling ``scipy.stats.ttest_ind`` and (a2) numpy's bare
+   cost of drawing the same normal numbers in the engine's chunk sizes.
+   Targets: >= 100 x the scipy loop, >= 0.5 x the bare draw rate.
+b. cluster trial, random-intercept mixed model (REML): the batch path through
+   ``simpower.run`` against statsmodels MixedLM fitted replicate by replicate
+   (fit time only), after checking on the same replicates that the answers
+   agree. Target >= 200 x.
+c. Mann-Whitney: the batch path through ``simpower.run`` against a loop of
+   ``scipy.stats.mannwhitneyu`` on freshly drawn data. Target >= 50 x.
+d. two jobs against one on a per-replicate scenario (a user analysis calling
+   scipy for each replicate). Target >= 1.7 x.
+e. peak memory (RSS) of a whole t-test run in a fresh subprocess for growing
+   reps. Target: flat in reps.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import platform
+import resource
+import subprocess
+import sys
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE.parent))
+
+import simpower as sp  # noqa: E402
+from simpower.engine.runner import BATCH_CHUNK  # noqa: E402
+
+SIZES = {
+    # row: (quick, full)
+    "a_reps": (20_000, 400_000),
+    "a_loop": (1_000, 10_000),
+    "b_reps": (4_000, 40_000),
+    "b_loop": (20, 200),
+    "c_reps": (10_000, 100_000),
+    "c_loop": (1_000, 10_000),
+    "d_seconds": (1.0, 6.0),
+    "e_reps": ((1_000, 10_000, 100_000), (10_000, 100_000, 1_000_000)),
+}
+
+
+def best_rate(fn, count, repeats):
+    """Highest rate (count / seconds) over ``repeats`` calls of ``fn``."""
+    best = 0.0
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        fn()
+        best = max(best, count / (time.perf_counter() - t0))
+    return best
+
+
+def chunks(reps, size=BATCH_CHUNK):
+    return [min(size, reps - k) for k in range(0, reps, size)]
+
+
+def row(key, name, ours, theirs, target, unit="x", note="", **extra):
+    ratio = ours / theirs if theirs else math.nan
+    return {"row": key, "measure": name, "ours_per_s": ours, "reference_per_s": theirs, "ratio": ratio,
+            "target": target, "meets": bool(ratio >= target) if target is not None else None, "unit": unit,
+            "note": note, **extra}
+
+
+# -- (a) t-test ------------------------------------------------------------------------
+def bench_ttest(quick, repeats):
+    from scipy import stats
+
+    reps, loop = (SIZES["a_reps"][0], SIZES["a_loop"][0]) if quick else (SIZES["a_reps"][1], SIZES["a_loop"][1])
+    sc = sp.Scenario(sp.NormalTwoArm(n=50, effect=0.5), sp.TTest())
+    res = sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False)
+    assert res.paths["t_test"] == "batch"
+    engine = best_rate(lambda: sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False), reps, repeats)
+
+    def scipy_loop():
+        rng = np.random.default_rng(2)
+        for _ in range(loop):
+            y0 = rng.standard_normal(50)
+            y1 = rng.standard_normal(50) + 0.5
+            stats.ttest_ind(y1, y0)
+
+    def bare_draw():
+        rng = np.random.default_rng(3)
+        for size in chunks(reps):
+            rng.standard_normal((size, 100))
+
+    loop_rate = best_rate(scipy_loop, loop, repeats)
+    draw_rate = best_rate(bare_draw, reps, repeats)
+    note = f"power {res.power:.4f} (MCSE {res.mcse:.4f}); {reps} reps, loop {loop}"
+    return [row("a1", "t-test: engine vs scipy loop", engine, loop_rate, 100.0, note=note),
+            row("a2", "t-test: engine vs numpy bare draw", engine, draw_rate, 0.5, note=note)]
+
+
+# -- (b) mixed model ---------------------------------------------------------------------
+def cluster_process():
+    """The cluster-trial process if the library has it, else None."""
+    from simpower import registry
+
+    if "cluster_trial" not in registry.names("process"):
+        return None
+    return registry.build("process", {"type": "cluster_trial", "clusters": 10, "cluster_size": 20,
+                                      "icc": 0.05, "effect": 0.3})
+
+
+def bench_mixed(quick, repeats):
+    import pandas as pd
+    import statsmodels.formula.api as smf
+
+    from simpower.analyses.mixed import MixedModel
+
+    reps, loop = (SIZES["b_reps"][0], SIZES["b_loop"][0]) if quick else (SIZES["b_reps"][1], SIZES["b_loop"][1])
+    proc = cluster_process()
+    if proc is None:
+        return [{"row": "b", "measure": "mixed model: batch vs statsmodels", "note": "not available "
+                 "(no cluster_trial process)", "ratio": None, "target": 200.0, "meets": None}]
+    an = MixedModel()
+    sc = sp.Scenario(proc, an)
+    res = sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False)
+    assert res.paths["mixed_model"] == "batch"
+    engine = best_rate(lambda: sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False), reps, repeats)
+
+    batch = proc.draw_batch(np.random.default_rng(4), loop)
+    ours = an.batch(batch)
+    frames = [pd.DataFrame(batch.replicate(i)) for i in range(loop)]
+    p_sm = np.empty(loop)
+    est_sm = np.empty(loop)
+    warned = np.zeros(loop, bool)
+    t0 = time.perf_counter()
+    for i, d in enumerate(frames):
+        with warnings.catch_warnings(record=True) as w:
+            warnings.simplefilter("always")
+            fit = smf.mixedlm("y ~ C(arm)", d, groups=d["cluster"]).fit(reml=True)
+        p_sm[i], est_sm[i], warned[i] = fit.pvalues.iloc[1], fit.fe_params.iloc[1], bool(w)
+    sm_rate = loop / (time.perf_counter() - t0)
+    clean = ~warned & ~ours["trouble"]["warning:ConvergenceWarning"]
+    dp = float(np.max(np.abs(ours["pvalue"][clean] - p_sm[clean]))) if clean.any() else math.nan
+    de = float(np.max(np.abs(ours["estimate"][clean] - est_sm[clean]))) if clean.any() else math.nan
+    agree = float(np.mean((ours["pvalue"] <= 0.05) == (p_sm <= 0.05)))
+    equal = bool(dp < 1e-4 and de < 1e-4 and agree >= 0.995)
+    note = (f"20 clusters of 20, ICC 0.05; on {loop} replicates: max |dp| {dp:.1e}, max |d estimate| "
+            f"{de:.1e} (clean fits: {int(clean.sum())}), same decision {agree:.1%}, statsmodels warned on "
+            f"{warned.mean():.1%}; {'answers agree' if equal else 'ANSWERS DIFFER'}")
+    out = row("b", "mixed model: batch vs statsmodels", engine, sm_rate, 200.0, note=note,
+              max_abs_dp=dp, decision_agreement=agree, answers_agree=equal)
+    out["meets"] = bool(out["meets"] and equal)
+    return [out]
+
+
+# -- (c) Mann-Whitney ----------------------------------------------------------------------
+def bench_mann_whitney(quick, repeats):
+    from scipy import stats
+
+    from simpower import registry
+
+    reps, loop = (SIZES["c_reps"][0], SIZES["c_loop"][0]) if quick else (SIZES["c_reps"][1], SIZES["c_loop"][1])
+    if "mann_whitney" not in registry.names("analysis"):
+        return [{"row": "c", "measure": "Mann-Whitney: batch vs scipy loop", "note": "not available "
+                 "(no mann_whitney analysis)", "ratio": None, "target": 50.0, "meets": None}]
+
+    def scipy_loop():
+        rng = np.random.default_rng(2)
+        for _ in range(loop):
+            y0 = rng.standard_normal(50)
+            y1 = rng.standard_normal(50) + 0.5
+            stats.mannwhitneyu(y1, y0, alternative="two-sided", method="asymptotic")
+
+    loop_rate = best_rate(scipy_loop, loop, repeats)
+    rows = []
+    for key, estimand, what in (("c1", "shift", "default: + Hodges-Lehmann shift and CI"),
+                                ("c2", "probability", "estimand='probability': U / (n0 n1) + SE")):
+        an = registry.build("analysis", {"type": "mann_whitney", "estimand": estimand})
+        sc = sp.Scenario(sp.NormalTwoArm(n=50, effect=0.5), an)
+        res = sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False)
+        name = f"Mann-Whitney ({estimand}): batch vs scipy loop"
+        if res.paths[sc.primary] != "batch":
+            rows.append({"row": key, "measure": name, "ratio": None, "target": 50.0, "meets": None,
+                         "note": "not available (the analysis ran per replicate)"})
+            continue
+        engine = best_rate(lambda: sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False), reps, repeats)
+        note = f"50 per arm, {what}; scipy computes U and p only; {reps} reps, loop {loop}"
+        rows.append(row(key, name, engine, loop_rate, 50.0, note=note))
+    return rows
+
+
+# -- (d) two jobs vs one ----------------------------------------------------------------------
+def bench_jobs(quick, repeats):
+    from simpower import registry
+
+    target_s = SIZES["d_seconds"][0] if quick else SIZES["d_seconds"][1]
+    an = registry.build("analysis", {"type": f"{HERE / 'bench_user.py'}:scipy_pair"})
+    sc = sp.Scenario(sp.NormalTwoArm(n=50, effect=0.3), an)
+    chunk = 250
+    pilot = 1000
+    t0 = time.perf_counter()
+    sp.run(sc, reps=pilot, seed=1, n_jobs=1, chunk_size=chunk, progress=False)
+    per_rep = (time.perf_counter() - t0) / pilot
+    reps = max(4 * chunk, int(math.ceil(target_s / per_rep / (2 * chunk))) * 2 * chunk)
+    sp.run(sc, reps=4 * chunk, seed=1, n_jobs=2, chunk_size=chunk, progress=False)  # start the worker pool
+    one = best_rate(lambda: sp.run(sc, reps=reps, seed=1, n_jobs=1, chunk_size=chunk, progress=False), reps, 1)
+    two = best_rate(lambda: sp.run(sc, reps=reps, seed=1, n_jobs=2, chunk_size=chunk, progress=False), reps, 1)
+    a = sp.run(sc, reps=2 * chunk, seed=5, n_jobs=1, chunk_size=chunk, progress=False).records
+    b = sp.run(sc, reps=2 * chunk, seed=5, n_jobs=2, chunk_size=chunk, progress=False).records
+    same = bool(np.array_equal(a[sc.primary].pvalue, b[sc.primary].pvalue))
+    note = (f"{reps} reps ({reps / one:.1f} s with one job), chunks of {chunk}, pool started before timing; "
+            f"same p-values with 1 and 2 jobs: {same}; cores: {os.cpu_count()}")
+    return [row("d", "two jobs vs one (per-replicate user analysis)", two, one, 1.7, note=note,
+                same_numbers=same)]
+
+
+# -- (e) memory ------------------------------------------------------------------------------
+CHILD = r"""
+import resource, sys
+sys.path.insert(0, {root!r})
+import simpower as sp
+
+
+def status(key):
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith(key + ":"):
+                return int(line.split()[1])  # KiB
+    return -1
+
+
+reps = int(sys.argv[1])
+sc = sp.Scenario(sp.NormalTwoArm(n=50, effect=0.5), sp.TTest())
+sp.run(sc, reps=100, seed=2, n_jobs=1, progress=False).power   # warm up (imports, caches)
+before = status("VmRSS")
+try:                                   # reset the high-water mark (Linux >= 4.0)
+    with open("/proc/self/clear_refs", "w") as fh:
+        fh.write("5")
+    reset = True
+except OSError:
+    reset = False
+res = sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False)
+_ = res.power, res.summaries
+peak = status("VmHWM") if reset else resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+print(before, peak, int(reset))
+"""
+
+
+def peak_rss_kib(reps: int) -> tuple[int, int, bool]:
+    """(RSS before the run, peak RSS during it, whether the peak was reset) in KiB, in a fresh process."""
+    code = CHILD.format(root=str(HERE.parent))
+    out = subprocess.run([sys.executable, "-c", code, str(reps)], capture_output=True, text=True, check=True)
+    before, peak, reset = out.stdout.split()[-3:]
+    return int(before), int(peak), reset == "1"
+
+
+def bench_memory(quick, repeats):
+    reps_list = SIZES["e_reps"][0] if quick else SIZES["e_reps"][1]
+    runs = {r: peak_rss_kib(r) for r in reps_list}
+    extra = {r: max(0, peak - before) for r, (before, peak, _) in runs.items()}   # KiB the run added
+    lo, hi = reps_list[0], reps_list[-1]
+    per_rep = (extra[hi] - extra[lo]) * 1024 / (hi - lo)
+    growth = runs[hi][1] / runs[lo][1]
+    reset = all(v[2] for v in runs.values())
+    note = (f"RSS added by the run (peak minus RSS before it), MiB: "
+            + ", ".join(f"{r:.0e} reps {extra[r] / 1024:.1f}" for r in reps_list)
+            + f"; process peak {runs[lo][1] / 1024:.0f} -> {runs[hi][1] / 1024:.0f} MiB; "
+            f"{per_rep:.0f} bytes per extra replicate (the per-replicate records alone: 5 float64 + 1 int16 "
+            "= 42 bytes per replicate per analysis, plus copies made while merging and summarising)"
+            + ("" if reset else "; peak not resettable here: ru_maxrss used"))
+    out = {"row": "e", "measure": "peak memory vs reps (t-test run)", "ratio": growth,
+           "target": 1.1, "unit": f"x process peak at {hi:.0e} / {lo:.0e} reps", "meets": bool(growth <= 1.1),
+           "note": note, "runs_kib": {str(k): v[:2] for k, v in runs.items()}, "bytes_per_rep": per_rep}
+    return [out]
+
+
+ROWS = {"a": bench_ttest, "b": bench_mixed, "c": bench_mann_whitney, "d": bench_jobs, "e": bench_memory}
+
+
+def machine():
+    import scipy
+    import statsmodels
+
+    try:
+        load = os.getloadavg()
+    except OSError:
+        load = (math.nan,) * 3
+    return {"python": platform.python_version(), "numpy": np.__version__, "scipy": scipy.__version__,
+            "statsmodels": statsmodels.__version__, "simpower": sp.__version__, "cpus": os.cpu_count(),
+            "platform": platform.platform(), "load_average_at_start": load}
+
+
+def fmt_rate(v):
+    if v is None or not isinstance(v, (int, float)) or not math.isfinite(v):
+        return "-"
+    return f"{v:,.0f}/s" if v >= 10 else f"{v:.2f}/s"
+
+
+def print_table(rows, stream=sys.stdout):
+    head = f"{'row':<4} {'measure':<46} {'ours':>13} {'reference':>13} {'ratio':>9} {'target':>8}  verdict"
+    print(head, file=stream)
+    print("-" * len(head), file=stream)
+    for r in rows:
+        ratio = r.get("ratio")
+        ratio_s = "-" if ratio is None or not math.isfinite(ratio) else f"{ratio:.3g}"
+        tgt = r.get("target")
+        if r["row"] == "e":
+            tgt_s, ours_s, ref_s = f"<= {tgt:g}", "", ""
+        else:
+            tgt_s = "-" if tgt is None else f">= {tgt:g}"
+            ours_s, ref_s = fmt_rate(r.get("ours_per_s")), fmt_rate(r.get("reference_per_s"))
+        meets = r.get("meets")
+        verdict = "not available" if meets is None and ratio is None else ("meets" if meets else "MISSES")
+        print(f"{r['row']:<4} {r['measure']:<46} {ours_s:>13} {ref_s:>13} {ratio_s:>9} {tgt_s:>8}  {verdict}",
+              file=stream)
+    print(file=stream)
+    for r in rows:
+        if r.get("note"):
+            print(f"  {r['row']}: {r['note']}", file=stream)
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--quick", action="store_true", help="small sizes (a smoke run, not a measurement)")
+    ap.add_argument("--only", default="a,b,c,d,e", help="comma-separated rows to run, from a,b,c,d,e")
+    ap.add_argument("--json", default=None, help="write the rows and machine facts to this JSON file")
+    ap.add_argument("--repeats", type=int, default=None, help="timing repeats per rate (best is kept)")
+    args = ap.parse_args(argv)
+    wanted = [s.strip() for s in args.only.split(",") if s.strip()]
+    bad = [w for w in wanted if w not in ROWS]
+    if bad:
+        ap.error(f"--only: unknown row {bad[0]!r}; valid: {', '.join(ROWS)}")
+    repeats = args.repeats or (1 if args.quick else 3)
+    info = machine()
+    if info["load_average_at_start"][0] > 0.5:
+        print(f"note: load average {info['load_average_at_start'][0]:.2f} at start: the machine is not idle, "
+              "the figures are indicative only", file=sys.stderr)
+    rows = []
+    t0 = time.perf_counter()
+    for key in wanted:
+        t1 = time.perf_counter()
+        rows.extend(ROWS[key](args.quick, repeats))
+        print(f"[{key}] done in {time.perf_counter() - t1:.1f} s", file=sys.stderr)
+    info["seconds"] = time.perf_counter() - t0
+    info["quick"] = args.quick
+    print_table(rows)
+    if args.json:
+        Path(args.json).write_text(json.dumps({"machine": info, "rows": rows}, indent=2, default=str))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

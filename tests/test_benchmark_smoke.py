@@ -1,0 +1,47 @@
+"""Smoke test of scripts/benchmark.py: the quick t-test and mixed-model rows run and report.
+
+No timing is asserted (speed is measured by the script itself, side by side).
+The mixed-model row checks that the batch REML answers equal statsmodels
+MixedLM's on the replicates it times (statsmodels as the reference).
+"""
+
+import importlib.util
+import json
+import math
+from pathlib import Path
+
+SCRIPT = Path(__file__).resolve().parents[1] / "scripts" / "benchmark.py"
+
+
+def _load():
+    spec = importlib.util.spec_from_file_location("simpower_benchmark_script", SCRIPT)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+def test_quick_benchmark_rows_a_and_b(tmp_path, capsys):
+    bench = _load()
+    out = tmp_path / "bench.json"
+    assert bench.main(["--quick", "--only", "a,b", "--repeats", "1", "--json", str(out)]) == 0
+    data = json.loads(out.read_text())
+    rows = {r["row"]: r for r in data["rows"]}
+    assert set(rows) == {"a1", "a2", "b"}
+    for key in ("a1", "a2"):
+        assert math.isfinite(rows[key]["ratio"]) and rows[key]["ratio"] > 0
+    if rows["b"]["ratio"] is not None:  # None only when no cluster process is installed
+        assert rows["b"]["answers_agree"] is True
+    assert data["machine"]["quick"] is True
+    printed = capsys.readouterr().out
+    assert "t-test: engine vs scipy loop" in printed
+
+
+def test_unknown_row_is_a_one_line_error(capsys):
+    bench = _load()
+    try:
+        bench.main(["--only", "z"])
+    except SystemExit as exc:
+        assert exc.code == 2
+    else:  # pragma: no cover
+        raise AssertionError("--only z should exit with status 2")
+    assert "unknown row 'z'" in capsys.readouterr().err
