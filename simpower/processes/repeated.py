@@ -17,7 +17,6 @@ deterministically with unscrambled Sobol points (no random numbers involved).
 
 from __future__ import annotations
 
-import math
 
 import numpy as np
 from scipy import optimize, special, stats
