@@ -179,7 +179,9 @@ def run_many_to_mcse(scenarios: Sequence, target_mcse: float = 0.005, *, max_rep
             res = results[i]
             if _reached(res, target_mcse, which) or reps[i] >= max_reps:
                 continue
-            want = min(max(_round_up(_needed(res, target_mcse, which), sizes[i]), reps[i] + sizes[i]), max_reps)
+            # at most 4 times the current count per look: an estimate from few replicates can overshoot
+            want = min(_round_up(_needed(res, target_mcse, which), sizes[i]), 4 * reps[i])
+            want = min(max(want, reps[i] + sizes[i]), max_reps)
             reps[i] = want
             nxt.append(i)
         todo = nxt
