@@ -92,7 +92,7 @@ def test_poisson_batch_equals_per_replicate(analysis):
     troubled = 0
     for proc in (CountTwoArm(n=25, rate0=1.5, rate_ratio=0.7, exposure_cv=0.4, ratio=1.6),
                  CountTwoArm(n=10, rate0=0.15, rate_ratio=0.5, dispersion=1.0)):
-        b = proc.draw_batch(np.random.default_rng(3), 300)
+        b = proc.draw_batch(np.random.default_rng(3), 200)
         assert analysis.supports_batch(b)
         out = analysis.batch(b)
         ref, warned = _per_rep(analysis, b)

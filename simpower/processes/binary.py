@@ -68,6 +68,16 @@ class BinaryTwoArm(Process):
     1 for an odds or risk ratio, 0 for a risk difference. :meth:`normal_case`
     is None (the t/z analytic case does not apply); :meth:`binary_case` gives
     the facts the two-proportion normal approximation needs.
+
+    Examples
+    --------
+    An odds ratio of 3 on a control risk of 0.2 is a treatment risk of 3/7:
+
+    >>> p = BinaryTwoArm(n=100, p0=0.2, odds_ratio=3.0)
+    >>> round(p.p1, 4), round(p.true_effect(), 4)
+    (0.4286, 0.2286)
+    >>> p.null().odds_ratio
+    1.0
     """
 
     name = "binary_two_arm"

@@ -60,6 +60,14 @@ class CountTwoArm(Process):
     (exposures, then gamma multipliers, then Poisson counts); with
     ``exposure_cv = 0`` no exposure is drawn and without ``dispersion`` no
     multiplier.
+
+    Examples
+    --------
+    With k = 2 a mean count of 4 has variance 4 + 16/2 = 12:
+
+    >>> p = CountTwoArm(n=50, rate0=2.0, exposure=2.0, dispersion=2.0, rate_ratio=0.5)
+    >>> float(p.variance(4.0)), round(p.true_effect(), 4)
+    (12.0, -0.6931)
     """
 
     name = "count_two_arm"

@@ -76,6 +76,16 @@ class SurvivalTwoArm(Process):
     uniform entry times and the standard exponential variates of the dropout
     times, whatever the settings, so changing the censoring keeps the event
     times (common random numbers across a sweep).
+
+    Examples
+    --------
+    An exponential control median of 12 is a hazard of log(2)/12; with 12
+    of accrual and 12 of follow-up about 64% of control participants are seen
+    to have the event:
+
+    >>> p = SurvivalTwoArm(n=300, median=12, hazard_ratio=0.75, accrual=12, follow_up=12)
+    >>> round(p.rate0, 5), round(p.event_probability(0), 3)
+    (0.05776, 0.639)
     """
 
     name = "survival_two_arm"
