@@ -266,3 +266,16 @@ def test_exact_and_corrected_tests_are_conservative_at_the_null():
     # the uncorrected test is closer to alpha than the corrected one
     assert abs(res.summaries["chi_square_2"]["power"] - 0.05) < mc
     assert res.summaries["chi_square_2"]["power"] > res.summaries["chi_square"]["power"]
+
+
+def test_fisher_grid_in_memory_blocks_gives_the_same_numbers(monkeypatch):
+    import simpower.analyses.binary as mod
+
+    b = BinaryTwoArm(n=30, p0=0.3, odds_ratio=2.0, ratio=1.3).draw_batch(np.random.default_rng(4), 100)
+    whole = FisherExact().batch(b)["pvalue"]
+    monkeypatch.setattr(mod, "_GRID_CELLS", 3 * 40)  # 3 replicates per block
+    np.testing.assert_array_equal(FisherExact().batch(b)["pvalue"], whole)
+    ref = [stats.fisher_exact([[r["y"][r["arm"] == 1].sum(), 39 - r["y"][r["arm"] == 1].sum()],
+                               [r["y"][r["arm"] == 0].sum(), 30 - r["y"][r["arm"] == 0].sum()]]).pvalue
+           for r in (b.replicate(i) for i in range(b.size))]
+    np.testing.assert_allclose(whole, ref, rtol=1e-10, atol=1e-13)

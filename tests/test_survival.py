@@ -229,3 +229,16 @@ def test_cox_ci_covers_the_log_hazard_ratio():
     assert s["n_ok"] == reps
     assert abs(s["coverage"] - 0.95) < 4 * math.sqrt(0.95 * 0.05 / reps)
     assert abs(s["bias"]) < 4 * s["bias_mcse"]
+
+
+def test_logrank_batch_in_memory_blocks_gives_the_same_numbers(monkeypatch):
+    import simpower.analyses.survival as mod
+
+    b = PROCS[1].draw_batch(np.random.default_rng(9), 120)
+    whole = LogRank().batch(b)
+    monkeypatch.setattr(mod, "_BLOCK_CELLS", 7 * b.per_rep["time"].shape[1])  # 7 replicates per block
+    blocked = LogRank().batch(b)
+    for f in whole:
+        np.testing.assert_array_equal(whole[f], blocked[f])
+    ref = [LogRank()(b.replicate(i)).pvalue for i in (0, 50, 119)]
+    np.testing.assert_allclose(blocked["pvalue"][[0, 50, 119]], ref, rtol=1e-8, atol=1e-12)

@@ -29,6 +29,10 @@ from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
 from .binary import _p_from_z, wald
 
 
+#: replicate-by-row cells handled at once by the batch log-rank path
+_BLOCK_CELLS = 1_000_000
+
+
 def survival_columns(data):
     """``time``, ``event`` (0/1 float) and ``arm`` (0/1 float) of one replicate."""
     time = np.asarray(data["time"], float)
@@ -148,7 +152,11 @@ class LogRank(Analysis):
         return arm is not None and arm.ndim == 1 and set(np.unique(arm).tolist()) == {0, 1}
 
     def batch(self, batch):
-        u, v = batch_logrank_terms(batch.per_rep["time"], batch.per_rep["event"], batch.shared["arm"])
+        time, event, arm = batch.per_rep["time"], batch.per_rep["event"], batch.shared["arm"]
+        u, v = np.empty(batch.size), np.empty(batch.size)
+        step = max(1, _BLOCK_CELLS // max(arm.size, 1))  # bounds the memory of the sort-and-count arrays
+        for s in range(0, batch.size, step):
+            u[s:s + step], v[s:s + step] = batch_logrank_terms(time[s:s + step], event[s:s + step], arm)
         out = self._out(u, v)
         out.pop("statistic")
         return out
