@@ -320,6 +320,8 @@ def test_multi_arm_with_two_arms_runs_t_test_batch():
 @pytest.mark.parametrize("kw,start", [
     ({"effects": [0.2, 0.5], "n": 10}, "`effects[0]` is the control arm and must be 0"),
     ({"effects": [0.5], "n": 10}, "`effects` must list at least 2 arms"),
+    ({"n": 10}, "`effects` is required for multi_arm: give a list of effects"),
+    ({"effects": [0, 0.5]}, "`n` is required for multi_arm"),
     ({"effects": [0, 0.5], "n": [10, 10], "allocation": [1, 1]}, "`allocation` and a list `n`"),
     ({"effects": [0, 0.5, 1], "n": [10, 10]}, "`n` must have one entry per arm (3)"),
     ({"effects": [0, 0.5], "n": 10, "sds": [1.0]}, "`sds` must have one entry per arm (2)"),

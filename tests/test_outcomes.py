@@ -228,6 +228,7 @@ def test_scipy_outcome_through_nested_parameter():
     ({"dist": "gamma", "args": ["2"]}, "args"),
     ({"dist": "norm", "kwds": {"loc": "x"}}, "kwds"),
     ({"dist": 3}, "dist"),
+    ({}, "dist"),
 ])
 def test_scipy_outcome_bad_input(kw, field):
     with pytest.raises(sp.ParameterError, match=f"`{field}"):

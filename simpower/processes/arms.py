@@ -33,7 +33,7 @@ from .._validation import Anything, Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
 from .base import Batch, Process
-from .outcomes import Normal
+from .outcomes import Described, Normal
 
 POSITIVE = Real(0.0, low_open=True)
 EFFECT_TYPE = Choice(("shift", "ratio", "d"))
@@ -130,7 +130,7 @@ def _effect_values(x, outcome, effect, effect_type, sd_factor):
     return y
 
 
-def _check_outcome_for(outcome, effect_type, needs_centre: bool, owner: str):
+def _check_outcome_for(outcome, effect_type, needs_centre: bool):
     """Cross-field checks between an outcome and the effect type / SD changes."""
     try:
         _outcome_rules(outcome, effect_type, needs_centre)
@@ -243,7 +243,7 @@ class TwoArm(Process):
             raise ParameterError(f"`ratio` gives a treatment arm of {self.n1} (< 2) with n = {self.n}; raise n or ratio.")
         if self.effect_type == "ratio" and not self.effect > 0:
             raise ParameterError(f"`effect` must be > 0 when `effect_type` = 'ratio'; got {self.effect:g}.")
-        _check_outcome_for(self.outcome, self.effect_type, self.sd_ratio != 1, self.name)
+        _check_outcome_for(self.outcome, self.effect_type, self.sd_ratio != 1)
         available = {"arm"} | ({"baseline"} if self.baseline_corr is not None else set())
         _check_missing(self.missing, available, self.name)
         latent = None if self.baseline_corr is None else latent_correlation(self.outcome, self.baseline_corr)
@@ -357,7 +357,9 @@ class MultiArm(Process):
 
     name = "multi_arm"
     effect_param = "effects"
-    params = {"effects": Anything(optional=False), "n": Anything(optional=False), "allocation": Anything(),
+    params = {"effects": Described(text="a list of effects, one per arm, control first (e.g. [0, 0.3, 0.5])"),
+              "n": Described(text="the control-arm size (an integer >= 2) or a list of arm sizes"),
+              "allocation": Anything(),
               "sds": Anything(), "outcome": Nested("outcome"), "effect_type": EFFECT_TYPE,
               "missing": Nested("missingness", optional=True)}
     defaults = {"allocation": None, "sds": None, "outcome": Normal(), "effect_type": "shift", "missing": None}
@@ -407,7 +409,7 @@ class MultiArm(Process):
             factors = tuple(s / base_sd for s in p["sds"])
         else:
             factors = (1.0,) * k
-        _check_outcome_for(outcome, p["effect_type"], any(f != 1 for f in factors), self.name)
+        _check_outcome_for(outcome, p["effect_type"], any(f != 1 for f in factors))
         _check_missing(p["missing"], {"arm"}, self.name)
         object.__setattr__(self, "_p", p)
         object.__setattr__(self, "_sizes", sizes)

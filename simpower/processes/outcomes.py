@@ -29,6 +29,7 @@ from __future__ import annotations
 import functools
 import math
 import numbers
+from dataclasses import dataclass
 
 import numpy as np
 from scipy import interpolate, optimize, special, stats
@@ -42,6 +43,17 @@ OPT_POSITIVE = Real(0.0, low_open=True, optional=True)
 OPT_REAL = Real(optional=True)
 #: quantiles at normal scores are tabulated on [-TABLE_EDGE, TABLE_EDGE] (see Distribution.from_normal)
 TABLE_EDGE, TABLE_NODES = 8.0, 2049
+
+
+@dataclass(frozen=True)
+class Described(Anything):
+    """A parameter checked by the component itself, with its own wording for messages."""
+
+    text: str = "any value"
+    optional: bool = False
+
+    def describe(self) -> str:
+        return self.text
 
 
 def _one_of(owner: str, values: dict, a: str, b: str, required: bool = True) -> str | None:
@@ -607,7 +619,8 @@ class ScipyOutcome(Distribution):
     """
 
     name = "scipy"
-    params = {"dist": Anything(optional=False), "args": Anything(), "kwds": Anything()}
+    params = {"dist": Described(text="a scipy.stats distribution name or a frozen distribution"),
+              "args": Anything(), "kwds": Anything()}
     defaults = {"args": None, "kwds": None}
 
     def _check(self):
