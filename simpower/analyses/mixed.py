@@ -448,7 +448,7 @@ class MixedModel(Analysis):
     Parameters
     ----------
     formula : str
-        Fixed-effects formula (patsy), default ``"y ~ C(arm)"``; e.g.
+        Fixed-effects formula (statsmodels formula syntax), default ``"y ~ C(arm)"``; e.g.
         ``"y ~ C(arm) * C(visit)"`` for repeated measures.
     groups : str
         Column holding the random-intercept groups: ``"cluster"`` (default)
