@@ -170,9 +170,9 @@ def _check_missing(missing, available, owner):
         return
     for col in getattr(missing, "requires", ()):
         if col not in available:
-            hint = " set `baseline_corr` to add a baseline column." if col == "baseline" else ""
+            hint = "; set `baseline_corr` to add a baseline column" if col == "baseline" else ""
             raise ParameterError(f"`missing.on` = {col!r} is not a column of {owner} (it has "
-                                 f"{', '.join(sorted(available))});{hint}")
+                                 f"{', '.join(sorted(available))}){hint}.")
 
 
 def _describe_effect(effect, effect_type, outcome):
