@@ -43,6 +43,13 @@ def _failures(frames: list[tuple[str, pd.DataFrame]]) -> list[str]:
     return lines
 
 
+def _run_failures(run) -> pd.DataFrame | None:
+    if run is None:
+        return None
+    s = run.summary()
+    return pd.DataFrame({"failures": s["n_failed"], "reps": s["reps"], "failure_causes": s["failures"]})
+
+
 def _mc_error(frames: list[tuple[str, pd.DataFrame, str]]) -> list[str]:
     lines = []
     for label, t, col in frames:
@@ -128,8 +135,7 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
 
     doc.heading("Failures")
     fl = _failures([("search", search.table if search is not None else None), ("sweep", sweep),
-                    ("null check", null), ("planned design", run.summary().rename(columns={"n_failed": "failures"})
-                                           if run is not None else None)])
+                    ("null check", null), ("planned design", _run_failures(run))])
     doc.bullets(fl or ["no replicate failed"])
     doc.para("A failed replicate (an analysis error, a non-finite p-value, or fit trouble under the 'failure' "
              "policy) is left out of the power's denominator; the tables give the counts.")

@@ -1,0 +1,84 @@
+"""The planning report: Markdown, self-contained HTML, figures (PNG and SVG), manifest."""
+
+import json
+import re
+
+import pytest
+
+import simpower as sp
+from simpower.report import make_report, reproduce_command
+from simpower.report import plots
+from simpower.search import required_n
+from simpower.sweep import null_check, sweep
+from simpower.textout import CAUTION
+
+SC = sp.Scenario(sp.NormalTwoArm(n=30, effect=0.6), analyses=[sp.TTest(), sp.WelchT()], name="Demo trial")
+
+
+@pytest.fixture(scope="module")
+def pieces():
+    table = sweep(SC, {"n": [10, 30, 50], "effect": [0.4, 0.6]}, reps=300, seed=1, n_jobs=1)
+    search = required_n(SC, 0.8, low=10, high=200, seed=1, n_jobs=1, rel_tol=0.05)
+    null = null_check(SC, reps=1000, seed=1, n_jobs=1)
+    return table, search, null
+
+
+def test_report_has_every_section(tmp_path, pieces):
+    table, search, null = pieces
+    paths = make_report(SC, tmp_path, seed=1, command="simpower report demo.toml --seed 1", sweep=table,
+                        search=search, null=null)
+    md = paths["md"].read_text()
+    for heading in ("Assumptions", "Required sample size", "Sweep over the assumptions", "Type I error under the null",
+                    "Failures", "Monte Carlo error", "Path that ran", "Cautions", "Reproducibility manifest"):
+        assert f"## {heading}" in md
+    assert CAUTION in md and "ICH E9" in md
+    assert "`t_test`: batch path" in md
+    assert "Bradley" in md and "every analysis meets" in md
+    assert "simpower report demo.toml --seed 1" in md
+    assert "two arms of 30 (control)" in md                       # the assumptions in words
+    for stem in ("search", "sweep_power", "sweep_heatmap"):
+        assert (tmp_path / f"{stem}.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+        assert (tmp_path / f"{stem}.svg").read_text().lstrip().startswith("<?xml")
+        assert f"({stem}.png)" in md
+
+
+def test_html_is_self_contained(tmp_path, pieces):
+    table, search, null = pieces
+    paths = make_report(SC, tmp_path, seed=1, sweep=table, search=search, null=null)
+    html = paths["html"].read_text()
+    srcs = re.findall(r'src="([^"]+)"', html)
+    assert srcs and all(s.startswith("data:image/png;base64,") for s in srcs)
+    assert "<link" not in html and "http://" not in html and "https://" not in html
+    assert CAUTION.split(".")[0] in html
+
+
+def test_manifest_contents(tmp_path, pieces):
+    table, search, null = pieces
+    paths = make_report(SC, tmp_path, seed=123, command="simpower sweep x.toml --seed 123", sweep=table)
+    man = json.loads(paths["manifest"].read_text())
+    assert man["seed"] == "123" and man["command"] == "simpower sweep x.toml --seed 123"
+    assert man["scenario_fingerprint"] == SC.fingerprint()
+    for k in ("simpower", "python", "numpy", "scipy", "pandas", "matplotlib"):
+        assert man["versions"][k]
+    assert man["platform"]["system"] and re.match(r"\d{4}-\d\d-\d\dT", man["date"])
+
+
+def test_figures_are_byte_identical_for_the_same_numbers(tmp_path, pieces):
+    table, search, _ = pieces
+    a = plots.save(plots.power_curve(table, "n", target=0.8), tmp_path / "a")
+    b = plots.save(plots.power_curve(table, "n", target=0.8), tmp_path / "b")
+    assert a[0].read_bytes() == b[0].read_bytes() and a[1].read_bytes() == b[1].read_bytes()
+
+
+def test_reproduce_command_pins_the_seed():
+    assert reproduce_command(["report", "f.toml", "--out", "d"], 42) == "simpower report f.toml --out d --seed 42"
+    assert reproduce_command(["sweep", "f.toml", "--seed", "7", "-q"], 7) == "simpower sweep f.toml -q --seed 7"
+    assert reproduce_command(["sweep", "a b.toml", "--seed=3"], 3) == "simpower sweep 'a b.toml' --seed 3"
+
+
+def test_sequential_run_is_reported(tmp_path):
+    from simpower.sequential import run_to_mcse
+
+    res = run_to_mcse(SC, 0.02, seed=2, n_jobs=1)
+    md = make_report(SC, tmp_path, seed=2, run=res)["md"].read_text()
+    assert "Sequential stopping" in md and f"it took {res.reps} replicates" in md
