@@ -60,7 +60,7 @@ def dask_client(address: Any = None, n_jobs: int | None = -1):
         return address, False
     if address:
         try:
-            return distributed.Client(address, timeout="20s"), True
+            return distributed.Client(address), True  # connect timeout: dask's distributed.comm.timeouts.connect
         except (OSError, TimeoutError) as exc:
             raise RunError(f"cannot reach the dask scheduler at {address!r} ({type(exc).__name__}: {exc}); "
                            f"check the address (tcp://host:8786) and that the scheduler runs.") from None
