@@ -61,8 +61,9 @@ DF_METHODS = ("wald", "between-within", "satterthwaite")
 
 #: statsmodels' threshold under which it warns that the estimate may be on the boundary
 BOUNDARY_VARIANCE = 0.01
-BOUNDARY_MESSAGE = "The MLE may be on the boundary of the parameter space."
-HESSIAN_MESSAGE = "The Hessian matrix at the estimated parameter values is not positive definite."
+#: message of the batch path's fit-trouble flag (the two conditions statsmodels warns about)
+TROUBLE_MESSAGE = ("batch REML: estimated cluster variance below 0.01 (statsmodels: 'The MLE may be on the "
+                   "boundary of the parameter space.') or a Hessian that is not negative definite")
 
 #: formulas the batch path understands (after removing spaces)
 BATCH_FORMULAS = ("y~C(arm)", "y~arm", "y~1+C(arm)", "y~1+arm")
@@ -381,7 +382,7 @@ def _observed_cov(g, st: _Sums, fit):
     return cov, not_pd
 
 
-def _ids(col, R):
+def _ids(col):
     """Integer codes 0..G-1 of cluster ids, shape (N,) or (R, N), and G."""
     col = np.asarray(col)
     if np.issubdtype(col.dtype, np.integer) and col.size and col.min() >= 0 and col.max() < 64 * col.shape[-1]:
@@ -398,7 +399,7 @@ def batch_sums(batch) -> _Sums:
     if "present" in batch.per_rep:
         ok &= np.asarray(batch.per_rep["present"], bool)
     arm = np.broadcast_to(np.asarray(batch["arm"]), (R, N)).astype(float)
-    ids, G = _ids(batch["cluster"], R)
+    ids, G = _ids(batch["cluster"])
     w = ok.astype(float)
     y0 = np.where(ok, y, 0.0)
     n_obs = w.sum(1)
@@ -579,5 +580,5 @@ class MixedModel(Analysis):
         out = self._result(est, se, df)
         boundary = fit["sigma_b2"] < BOUNDARY_VARIANCE
         out["trouble"] = {"warning:ConvergenceWarning": boundary | fit["not_pd"]}
-        out["trouble_messages"] = {"warning:ConvergenceWarning": BOUNDARY_MESSAGE}
+        out["trouble_messages"] = {"warning:ConvergenceWarning": TROUBLE_MESSAGE}
         return out
