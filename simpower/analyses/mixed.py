@@ -472,13 +472,15 @@ class MixedModel(Analysis):
     --------
     >>> import numpy as np
     >>> from simpower.analyses.mixed import MixedModel
-    >>> rng = np.random.default_rng(1)
+    >>> rng = np.random.default_rng(2)
     >>> cluster = np.repeat(np.arange(12), 10)
     >>> arm = (cluster >= 6).astype(int)
     >>> y = 0.8 * arm + rng.normal(0, 0.5, 12)[cluster] + rng.normal(0, 1, 120)
     >>> res = MixedModel(df="between-within")({"y": y, "arm": arm, "cluster": cluster})
     >>> res.df   # 12 clusters - 2
     10.0
+    >>> round(res.estimate, 3), round(res.pvalue, 3)
+    (0.799, 0.073)
     """
 
     name = "mixed_model"
