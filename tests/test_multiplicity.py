@@ -34,7 +34,7 @@ class ArmsEndpoints(Process):
 def test_adjust_matches_statsmodels(method):
     # reference: statsmodels.stats.multitest.multipletests, row by row (ties included)
     rng = np.random.default_rng(0)
-    p = rng.uniform(size=(300, 6)) ** 2
+    p = rng.uniform(size=(80, 6)) ** 2
     p[:20, 1] = p[:20, 0]
     ref = np.array([multipletests(row, method=METHODS[method])[1] for row in p])
     np.testing.assert_allclose(adjust(p, method), ref, rtol=1e-12, atol=1e-15)
@@ -136,6 +136,18 @@ def test_spec_round_trip_and_names():
     assert again == a
     r = again(ArmsEndpoints(n=6, arms=2).draw_batch(np.random.default_rng(0), 1).replicate(0))
     assert r.names == ("welch_t", "welch_t_2")
+
+
+def test_user_functions_as_components():
+    def mean_above_zero(data):
+        return stats.ttest_1samp(data["y"], 0.0).pvalue
+
+    a = Multiple(tests=[mean_above_zero], endpoints=["y", "y2"], method="bonferroni")
+    d = {"y": np.r_[np.zeros(3), np.ones(3)] + 0.1 * np.arange(6), "y2": np.arange(6.0) - 2.4}
+    r = a(d)
+    raw = [stats.ttest_1samp(d[c], 0.0).pvalue for c in ("y", "y2")]
+    np.testing.assert_allclose(r.pvalues, np.minimum(2 * np.array(raw), 1.0))
+    assert not a.supports_batch(ArmsEndpoints(n=3, arms=2).draw_batch(np.random.default_rng(0), 2))
 
 
 def test_bad_parameters_name_the_field():

@@ -7,7 +7,8 @@
 * ``comparisons``: the data as given, each arm against the control (arm 0), or
   all pairs of arms (each pair relabelled 0/1 for the component),
 
-adjusts their p-values with ``statsmodels.stats.multitest.multipletests``, and
+adjusts their p-values as ``statsmodels.stats.multitest.multipletests`` does
+(vectorised here, :func:`adjust`; equal to it in the tests), and
 returns the adjusted ``pvalues`` with their ``names``. The primary p-value is
 the smallest adjusted one, so the primary power is the power to reject at
 least one hypothesis (for FWER methods: disjunctive power); the run result
@@ -33,7 +34,7 @@ METHODS = {"holm": "holm", "bonferroni": "bonferroni", "hochberg": "simes-hochbe
 
 @dataclass(frozen=True)
 class AnalysisList(Anything):
-    """A non-empty list of analyses (objects or spec tables)."""
+    """A non-empty list of analyses (objects, spec tables, or functions data -> p-value)."""
 
     optional: bool = False
 
@@ -50,7 +51,11 @@ class AnalysisList(Anything):
 
                 item = build("analysis", item, where=f"{name}[{i}]")
             elif not isinstance(item, Analysis):
-                raise ParameterError(f"`{name}[{i}]` must be an analysis or a {{type = ...}} table; got {item!r}.")
+                if not callable(item):
+                    raise ParameterError(f"`{name}[{i}]` must be an analysis or a {{type = ...}} table; got {item!r}.")
+                from ..functions import as_analysis
+
+                item = as_analysis(item)
             if isinstance(item, Multiple):
                 raise ParameterError(f"`{name}[{i}]` is itself a `multiple` analysis; list its tests instead.")
             out.append(item)
@@ -85,7 +90,10 @@ def adjust(pvalues: np.ndarray, method: str) -> np.ndarray:
     """Adjusted p-values of each row of ``pvalues`` (R, m), vectorised.
 
     Same values as ``multipletests(row, method=METHODS[method])[1]`` (checked
-    in the tests); a row with a non-finite p-value gives a row of NaN.
+    in the tests); a row with a non-finite p-value gives a row of NaN. Both
+    paths use this function rather than calling multipletests per replicate:
+    statsmodels' Holm branch runs ``gc.collect()`` on every call (some 10-20 ms
+    each), which would dominate a simulation.
     """
     p = np.asarray(pvalues, float)
     r, m = p.shape
@@ -119,17 +127,6 @@ def adjust(pvalues: np.ndarray, method: str) -> np.ndarray:
         np.put_along_axis(out, order, np.minimum(adj, 1.0), axis=1)
     out[bad] = np.nan
     return out
-
-
-def _adjust_one(p: np.ndarray, method: str) -> np.ndarray:
-    """statsmodels' adjustment of one vector (the per-replicate reference)."""
-    if not np.all(np.isfinite(p)):
-        return np.full(p.shape, np.nan)
-    if method == "none":
-        return p.copy()
-    from statsmodels.stats.multitest import multipletests
-
-    return multipletests(p, method=METHODS[method])[1]
 
 
 def _arm_pairs(levels, comparisons):
@@ -169,7 +166,8 @@ class Multiple(Analysis):
     Parameters
     ----------
     tests : list of analyses
-        Component analyses (objects, or ``{type = "...", ...}`` tables).
+        Component analyses (objects, ``{type = "...", ...}`` tables, or
+        functions ``data -> p-value | result``).
     endpoints : list of str, optional
         Outcome columns to test; each is passed to the components as ``y``.
         Default: ``["y"]``.
@@ -231,7 +229,7 @@ class Multiple(Analysis):
     def __call__(self, data):
         plan = self._plan(self._levels(data.get("arm") if hasattr(data, "get") else data["arm"]))
         results = [as_test_result(test(_subset(data, endpoint, pair))) for _, test, endpoint, pair in plan]
-        adj = _adjust_one(np.array([r.pvalue for r in results], float), self.method)
+        adj = adjust(np.array([[r.pvalue for r in results]], float), self.method)[0]
         first = results[0]
         return TestResult(pvalue=float(np.min(adj)) if np.all(np.isfinite(adj)) else math.nan,
                           estimate=first.estimate, se=first.se, ci_low=first.ci_low, ci_high=first.ci_high,
