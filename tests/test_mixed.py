@@ -304,3 +304,18 @@ def test_unknown_term_names_the_nearest_coefficient():
     batch = cluster_batch(np.random.default_rng(0), 1, k=4, m=6)
     with pytest.raises(sp.ParameterError, match="C\\(arm\\)\\[T.1\\]"):
         MixedModel(term="C(arm)[T.2]")(batch.replicate(0))
+
+
+def test_a_degenerate_replicate_gives_nan_not_a_crash():
+    # all treatment-arm outcomes missing in replicate 1: no arm contrast there, NaN p-value;
+    # the other replicates are untouched
+    batch = cluster_batch(np.random.default_rng(7), 3, k=4, m=6, icc=0.1, missing=0.01)
+    y = batch.per_rep["y"]
+    y[1, batch.shared["arm"] == 1] = np.nan
+    for df in ("wald", "between-within", "satterthwaite"):
+        out = MixedModel(df=df).batch(batch)
+        assert np.isnan(out["pvalue"][1])
+        assert np.all(np.isfinite(out["pvalue"][[0, 2]]))
+    ref = statsmodels_fits(Batch(1, {"y": y[[0]]}, batch.shared))[0]
+    out = MixedModel().batch(batch)
+    assert math.isclose(out["pvalue"][0], ref[2], abs_tol=1e-4) or ref[3]

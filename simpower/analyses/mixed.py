@@ -108,6 +108,21 @@ def _p_and_crit(stat, df, alternative, ci_level):
     return p, dist.ppf(0.5 + ci_level / 2)
 
 
+def _inv(M):
+    """Inverse of a stack of square matrices; NaN for the singular ones (never raises)."""
+    try:
+        return np.linalg.inv(M)
+    except np.linalg.LinAlgError:
+        flat = M.reshape((-1,) + M.shape[-2:])
+        out = np.full(flat.shape, np.nan)
+        for i, x in enumerate(flat):
+            try:
+                out[i] = np.linalg.inv(x)
+            except np.linalg.LinAlgError:
+                pass
+        return out.reshape(M.shape)
+
+
 # ---------------------------------------------------------------------------
 # Satterthwaite df of a random-intercept model from per-group sums (any X)
 # ---------------------------------------------------------------------------
@@ -154,7 +169,7 @@ def satterthwaite(m, u, S, sb2, se2, k):
     T = {("b", "b"): ((m / lam) ** 2).sum(-1),
          ("b", "e"): (m / lam**2).sum(-1),
          ("e", "e"): (np.where(m > 0, (m - 1) / se2**2 + 1.0 / lam**2, 0.0)).sum(-1)}
-    Ai = np.linalg.inv(A)
+    Ai = _inv(A)
     M = {"b": Mb, "e": Me}
     Nm = {("b", "b"): Nbb, ("b", "e"): Nbe, ("e", "e"): Nee}
     AM = {a: Ai @ M[a] for a in M}
@@ -168,7 +183,7 @@ def satterthwaite(m, u, S, sb2, se2, k):
     var = Ai[..., k, k]
     grad = np.stack([(AM[a] @ Ai)[..., k, k] for a in "be"], axis=-1)
     with np.errstate(all="ignore"):
-        cov = np.linalg.inv(info)
+        cov = _inv(info)
         df = 2.0 * var**2 / np.einsum("...i,...ij,...j->...", grad, cov, grad)
     return var, df
 
@@ -375,7 +390,7 @@ def _observed_cov(g, st: _Sums, fit):
     with np.errstate(all="ignore"):
         ok = np.all(np.isfinite(H), axis=(1, 2))
         H[~ok] = -np.eye(3)
-        cov = np.linalg.inv(-H)
+        cov = _inv(-H)
         cov[~ok] = np.nan
         cov[at_bound, 2, 2] = np.nan
     not_pd |= ~(cov[:, 1, 1] > 0)
