@@ -132,7 +132,6 @@ def test_hodges_lehmann_interval_has_its_exact_coverage():
     assert abs(s["coverage"] - exact) < 4 * math.sqrt(exact * (1 - exact) / s["n_ci"])
 
 
-@pytest.mark.slow
 def test_mann_whitney_efficiency_under_normality_is_three_over_pi():
     # Hodges & Lehmann (1956, Ann Math Stat 27:324-335): under normality the Mann-Whitney test's
     # asymptotic efficiency relative to the t-test is 3/pi = 0.955. Find the t-test size n_t with the

@@ -90,7 +90,6 @@ def test_sign_flip_permutation_for_pairs_by_enumeration():
     assert PermutationTest(n_resamples=1000)({"y": d}).pvalue == pytest.approx(ref, abs=1e-12)
 
 
-@pytest.mark.slow
 def test_permutation_test_holds_alpha_on_skewed_data():
     # a Monte Carlo permutation p-value (k + 1)/(B + 1) has P(p <= alpha) <= alpha exactly when
     # alpha (B + 1) is an integer (Phipson & Smyth 2010, Stat Appl Genet Mol Biol 9:39): the type I
