@@ -9,18 +9,46 @@ __version__ = "0.1.0"
 
 from . import analytic
 from .analyses.base import Analysis, TestResult, as_test_result
+from .analyses.binary import ChiSquare, FisherExact, Logistic, TwoProportions
+from .analyses.clustered import GEE, ClusterMeansT, FinalVisitT
+from .analyses.counts import NegBinGLM, PoissonGLM
+from .analyses.survival import Cox, LogRank
 from .analyses.ttests import PairedT, TTest, WelchT, ZTest
 from .engine import RunInterrupted, run, run_many
 from .errors import ParameterError, RunError, ScenarioFileError, SimpowerError, StoreError, UnknownNameError
-from .processes.base import Batch, Process
+from .processes.arms import MultiArm, TwoArm
+from .processes.base import Batch, Missingness, Outcome, Process
+from .processes.binary import BinaryTwoArm
+from .processes.clusters import ClusterTrial
+from .processes.counts import CountTwoArm
+from .processes.missing import MAR, MCAR, MNAR
 from .processes.normal import NormalOneSample, NormalPaired, NormalTwoArm
+from .processes.outcomes import (ContaminatedNormal, Fleishman, Gamma, Lognormal, Normal, ScipyOutcome,
+                                 SkewNormal, StudentT)
+from .processes.repeated import RepeatedMeasures
+from .processes.survival import SurvivalTwoArm
 from .result import Records, RunResult
 from .scenario import Scenario
+from .scenario_files import load as load_scenario
 from .summaries import bradley_liberal, paired_difference, wilson_interval
 
 __all__ = [
-    "__version__", "analytic", "Analysis", "TestResult", "as_test_result", "PairedT", "TTest", "WelchT", "ZTest",
-    "RunInterrupted", "run", "run_many", "ParameterError", "RunError", "ScenarioFileError", "SimpowerError",
-    "StoreError", "UnknownNameError", "Batch", "Process", "NormalOneSample", "NormalPaired", "NormalTwoArm",
-    "Records", "RunResult", "Scenario", "bradley_liberal", "paired_difference", "wilson_interval",
+    "__version__", "analytic",
+    # scenario, running, results
+    "Scenario", "load_scenario", "run", "run_many", "RunResult", "Records", "RunInterrupted",
+    # contracts
+    "Process", "Analysis", "Outcome", "Missingness", "Batch", "TestResult", "as_test_result",
+    # processes
+    "NormalOneSample", "NormalPaired", "NormalTwoArm", "TwoArm", "MultiArm", "ClusterTrial", "RepeatedMeasures",
+    "BinaryTwoArm", "CountTwoArm", "SurvivalTwoArm",
+    # outcomes and missingness
+    "Normal", "Lognormal", "Gamma", "SkewNormal", "Fleishman", "StudentT", "ContaminatedNormal", "ScipyOutcome",
+    "MCAR", "MAR", "MNAR",
+    # analyses
+    "ZTest", "TTest", "WelchT", "PairedT", "ClusterMeansT", "GEE", "FinalVisitT", "TwoProportions", "ChiSquare",
+    "FisherExact", "Logistic", "PoissonGLM", "NegBinGLM", "LogRank", "Cox",
+    # summaries
+    "bradley_liberal", "paired_difference", "wilson_interval",
+    # errors
+    "SimpowerError", "ParameterError", "ScenarioFileError", "UnknownNameError", "RunError", "StoreError",
 ]

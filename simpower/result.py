@@ -86,12 +86,13 @@ class RunResult:
         self.chunk_seconds = chunk_seconds
         self.extra = dict(extra or {})
         self.analytic = scenario.analytic_power()
-        te = scenario.true_effect
         self.summaries = {
             name: summarize_records(r.pvalue, r.status, r.causes, scenario.alpha, fit_trouble,
-                                    r.estimate, r.se, r.ci_low, r.ci_high, te)
+                                    r.estimate, r.se, r.ci_low, r.ci_high, scenario.true_effect_for(name))
             for name, r in records.items()
         }
+        for name, s in self.summaries.items():
+            s["true_effect"] = scenario.true_effect_for(name)
         for name, s in self.summaries.items():
             s["path"] = paths.get(name, "")
             a = self.analytic.get(name)

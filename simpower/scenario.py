@@ -35,13 +35,16 @@ class Scenario:
         Parameters of a user process function.
     true_effect : float, optional
         The estimand, for bias and coverage, when the process cannot tell it.
+    true_effects : mapping of analysis name -> float, optional
+        The true value of what each analysis estimates, where it differs from
+        the process's estimand (e.g. a ratio of geometric means).
     name, description : str
         Shown in reports.
     """
 
     def __init__(self, process, analysis=None, *, analyses=None, alpha: float = 0.05,
                  params: Mapping[str, Any] | None = None, true_effect: float | None = None,
-                 name: str = "", description: str = ""):
+                 true_effects: Mapping[str, float] | None = None, name: str = "", description: str = ""):
         self.process = as_process(process, dict(params) if params else None)
         if analysis is not None and analyses is not None:
             raise ParameterError("give `analysis` or `analyses`, not both.")
@@ -65,6 +68,11 @@ class Scenario:
         self.analyses = {str(k): as_analysis(v) for k, v in items}
         self.alpha = ALPHA.clean("alpha", alpha)
         self._true_effect = None if true_effect is None else Real().clean("true_effect", true_effect)
+        self.true_effects = {}
+        for k, v in dict(true_effects or {}).items():
+            if k not in self.analyses:
+                raise ParameterError(f"`true_effects.{k}` names no analysis.{nearest(str(k), self.analyses)}")
+            self.true_effects[k] = Real().clean(f"true_effects.{k}", v)
         self.name = name
         self.description = description
 
@@ -81,6 +89,22 @@ class Scenario:
             return self.process.true_effect()
         except Exception:
             return None
+
+    def true_effect_for(self, analysis: str) -> float | None:
+        """The true value of what ``analysis`` estimates, or None when unknown.
+
+        A value from ``true_effects`` wins; otherwise the process's true effect,
+        but only when the analysis estimates the same quantity (its
+        ``estimand_label`` is None or equals the process's).
+        """
+        if analysis in self.true_effects:
+            return self.true_effects[analysis]
+        a = self.analyses[analysis]
+        a_label = getattr(a, "estimand_label", None)
+        p_label = getattr(self.process, "estimand_label", None)
+        if a_label is not None and p_label is not None and a_label != p_label:
+            return None
+        return self.true_effect
 
     def analytic_power(self) -> dict[str, float | None]:
         """Closed-form power of each analysis where the analytic core covers the case."""
@@ -138,6 +162,7 @@ class Scenario:
         new.analyses = {n: (a.replace(**an_changes[n]) if n in an_changes else a) for n, a in self.analyses.items()}
         new.alpha = ALPHA.clean("alpha", alpha)
         new._true_effect = true_effect
+        new.true_effects = dict(self.true_effects)
         new.name, new.description = self.name, self.description
         return new
 
@@ -156,6 +181,7 @@ class Scenario:
             "analyses": {n: a.spec() for n, a in self.analyses.items()},
             "alpha": self.alpha,
             "true_effect": to_plain(self._true_effect),
+            **({"true_effects": dict(self.true_effects)} if self.true_effects else {}),
         }
 
     def fingerprint(self) -> str:

@@ -44,7 +44,7 @@ RUN_FIELDS = {
     "fit_trouble": Choice(("failure", "nonrejection")),
     "max_failure_rate": Real(0.0, 1.0, low_open=True),
 }
-SCENARIO_FIELDS = ("name", "description", "alpha", "true_effect", "process", "params", "analysis", "analyses")
+SCENARIO_FIELDS = ("name", "description", "alpha", "true_effect", "true_effects", "process", "params", "analysis", "analyses")
 #: blocks read by other commands (sweep, required-n search, ...), validated by their readers
 EXTRA_BLOCKS = {"sweep", "search", "sequential", "null_check", "report", "store", "execution"}
 
@@ -129,7 +129,8 @@ def _build(raw, text, where, base_dir, overrides, path) -> ScenarioFile:
                 raise ScenarioFileError(f"{where}: [analyses.{label}] must be a table with `type = \"...\"`.")
             analyses[label] = build("analysis", spec, where=f"analyses.{label}", base_dir=base_dir)
     scenario = Scenario(process, analyses=analyses, alpha=raw.get("alpha", 0.05),
-                        true_effect=raw.get("true_effect"), name=str(raw.get("name", "")),
+                        true_effect=raw.get("true_effect"), true_effects=raw.get("true_effects"),
+                        name=str(raw.get("name", "")),
                         description=str(raw.get("description", "")))
     run = {}
     for key, con in RUN_FIELDS.items():

@@ -100,6 +100,9 @@ class Analysis(Component):
     kind = "analysis"
     #: one sentence stating the null hypothesis, shown in reports
     null_hypothesis: str = ""
+    #: what ``estimate`` estimates, e.g. "mean difference", "log hazard ratio"; None means
+    #: "the process's estimand" (bias and coverage are then computed against its true effect)
+    estimand_label: str | None = None
 
     def __call__(self, data) -> TestResult:  # pragma: no cover - abstract
         raise NotImplementedError

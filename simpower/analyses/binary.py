@@ -173,6 +173,7 @@ class TwoProportions(Analysis):
     """
 
     name = "two_proportions"
+    estimand_label = "risk difference"
     null_hypothesis = "the event risks in the two arms are equal (p1 = p0)"
     params = {"alternative": ALTERNATIVE, "continuity": Bool(), "ci_level": CI_LEVEL}
     defaults = {"alternative": "two-sided", "continuity": False, "ci_level": 0.95}
@@ -238,6 +239,7 @@ class ChiSquare(Analysis):
     """
 
     name = "chi_square"
+    estimand_label = "risk difference"
     null_hypothesis = "event risk is independent of arm (p1 = p0), two-sided"
     params = {"correction": Bool(), "ci_level": CI_LEVEL}
     defaults = {"correction": True, "ci_level": 0.95}
@@ -343,6 +345,7 @@ class FisherExact(Analysis):
     """
 
     name = "fisher_exact"
+    estimand_label = "log odds ratio"
     null_hypothesis = "the odds ratio (treatment vs control) is 1, conditional on the margins"
     params = {"alternative": ALTERNATIVE}
     defaults = {"alternative": "two-sided"}
@@ -383,6 +386,7 @@ class Logistic(Analysis):
     """
 
     name = "logistic"
+    estimand_label = "log odds ratio"
     null_hypothesis = "the log odds ratio of an event, treatment vs control, is 0"
     params = {"alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
     defaults = {"alternative": "two-sided", "ci_level": 0.95}

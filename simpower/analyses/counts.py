@@ -75,6 +75,7 @@ class PoissonGLM(Analysis):
     """
 
     name = "poisson_glm"
+    estimand_label = "log rate ratio"
     null_hypothesis = "the event rate ratio (treatment vs control) is 1"
     params = {"alternative": ALTERNATIVE, "ci_level": CI_LEVEL, "scale": Choice(("model", "pearson"))}
     defaults = {"alternative": "two-sided", "ci_level": 0.95, "scale": "model"}
@@ -144,6 +145,7 @@ class NegBinGLM(Analysis):
     """
 
     name = "negbin_glm"
+    estimand_label = "log rate ratio"
     null_hypothesis = "the event rate ratio (treatment vs control) is 1"
     params = {"alternative": ALTERNATIVE, "ci_level": CI_LEVEL, "dispersion": Real(0.0, low_open=True, optional=True)}
     defaults = {"alternative": "two-sided", "ci_level": 0.95, "dispersion": None}

@@ -120,6 +120,7 @@ class LogRank(Analysis):
     """
 
     name = "logrank"
+    estimand_label = "log hazard ratio"
     null_hypothesis = "the survival functions of the two arms are equal"
     params = {"alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
     defaults = {"alternative": "two-sided", "ci_level": 0.95}
@@ -183,6 +184,7 @@ class Cox(Analysis):
     """
 
     name = "cox"
+    estimand_label = "log hazard ratio"
     null_hypothesis = "the hazard ratio (treatment vs control) is 1"
     params = {"alternative": ALTERNATIVE, "ci_level": CI_LEVEL, "ties": Choice(("breslow", "efron"))}
     defaults = {"alternative": "two-sided", "ci_level": 0.95, "ties": "breslow"}

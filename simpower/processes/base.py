@@ -62,6 +62,9 @@ class Process(Component):
 
     #: name of the parameter that carries the effect (set to 0 for the null)
     effect_param: str | None = "effect"
+    #: what :meth:`true_effect` is, in words; analyses whose ``estimand_label`` differs get no
+    #: bias or coverage unless the scenario gives their true effect
+    estimand_label: str = "mean difference"
     #: name of the sample-size parameter the required-n search varies
     size_param: str | None = "n"
 

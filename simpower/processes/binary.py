@@ -130,6 +130,10 @@ class BinaryTwoArm(Process):
         return risk_from_effect(self.p0, odds_ratio=self._p["odds_ratio"], risk_ratio=self._p["risk_ratio"],
                                 risk_difference=self._p["risk_difference"])
 
+    @property
+    def estimand_label(self) -> str:
+        return self.estimand.replace("_", " ")
+
     def true_effect(self) -> float:
         p0, p1 = self.p0, self.p1
         if self.estimand == "log_odds_ratio":

@@ -95,6 +95,8 @@ class CountTwoArm(Process):
     def null_value(self) -> float:
         return 1.0
 
+    estimand_label = "log rate ratio"
+
     def true_effect(self) -> float:
         return math.log(self.rate_ratio)
 

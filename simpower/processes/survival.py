@@ -151,6 +151,8 @@ class SurvivalTwoArm(Process):
     def null_value(self) -> float:
         return 1.0
 
+    estimand_label = "log hazard ratio"
+
     def true_effect(self) -> float:
         return math.log(self.hazard_ratio)
 
