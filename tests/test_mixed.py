@@ -160,6 +160,18 @@ def test_zero_cluster_variance_gives_the_boundary_and_the_ols_fit():
     d = pd.DataFrame(batch.replicate(int(np.flatnonzero(at0)[0])))
     with pytest.warns(ConvergenceWarning):
         MixedModel()(d)
+    sm = statsmodels_fits(batch)
+    warned = np.array([f[3] for f in sm])
+    assert np.all(warned[at0])
+    # where statsmodels fitted cleanly (interior estimates) the answers agree as usual
+    clean = ~warned & ~out["trouble"]["warning:ConvergenceWarning"]
+    assert clean.sum() >= 5
+    assert np.max(np.abs(out["pvalue"][clean] - np.array([f[2] for f in sm])[clean])) < 1e-4
+    # and everywhere our REML criterion is at least as good as where statsmodels stopped
+    for i, (_, _, _, _, model, res) in enumerate(sm):
+        params = MixedLMParams.from_components(fe_params=np.array([fit["b0"][i], fit["b1"][i]]),
+                                               cov_re=np.array([[fit["gamma"][i]]]))
+        assert model.loglike(params, profile_fe=False) >= res.llf - 1e-8
 
 
 def test_per_replicate_path_lets_statsmodels_warnings_through():
