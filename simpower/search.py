@@ -203,8 +203,9 @@ class SearchResult:
         One row per evaluated value: reps, rejections, power, MCSE, Wilson
         interval, fitted power, whether it entered the final fit.
     rounds : pandas.DataFrame
-        The search's history: value placed, replicates added, estimate and
-        interval after the round.
+        The search's history: value placed, replicates added, and the
+        estimate and interval that led to the placement (the last row holds
+        the final estimate and interval).
     fit : ProbitFit or None
     analytic : float or None
         The answer by the analysis's closed form where it applies (smallest
