@@ -66,7 +66,7 @@ def rank_rows(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _order_stats(d: np.ndarray, ks) -> np.ndarray:
-    """Values of the 0-based order statistics ``ks`` of each row of ``d``."""
+    """The 0-based order statistics ``ks`` of each row of ``d``, as a dict k -> values (R,)."""
     ks = sorted(set(int(k) for k in ks))
     part = np.partition(d, ks, axis=1)
     return {k: part[:, k] for k in ks}
