@@ -5,7 +5,6 @@ asked for a target MCSE must stop with an MCSE at most the target, after about
 p(1-p)/target^2 replicates (rounded up to whole chunks).
 """
 
-import math
 
 import numpy as np
 import pytest

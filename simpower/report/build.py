@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import math
 from pathlib import Path
 from typing import Any
 
@@ -168,7 +167,3 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
     doc.code(manifest["command"])
     doc.table(manifest_rows(manifest), "Manifest (also in manifest.json)")
     return doc
-
-
-def finite(x) -> bool:
-    return x is not None and isinstance(x, (int, float)) and math.isfinite(x)
