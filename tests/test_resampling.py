@@ -19,6 +19,7 @@ class LogNormalTwoArm(Process):
 
     params = {"n": Int(low=2), "effect": Real(), "sigma": Real(0.0, low_open=True)}
     defaults = {"effect": 0.0, "sigma": 1.0}
+    estimand_label = "ratio of geometric means"
 
     def draw_batch(self, rng, size):
         z = rng.standard_normal((size, 2 * self.n)) * self.sigma

@@ -190,6 +190,11 @@ class Multiple(Analysis):
               "comparisons": Choice(("single", "each_vs_control", "all_pairs")), "method": Choice(tuple(METHODS))}
     defaults = {"endpoints": None, "comparisons": "single", "method": "holm"}
 
+    @property
+    def estimand_label(self) -> str | None:
+        """That of the first test (its estimate is reported)."""
+        return getattr(self.tests[0], "estimand_label", None)
+
     # -- plan ------------------------------------------------------------
     @property
     def _endpoints(self):

@@ -172,6 +172,10 @@ class MannWhitney(Analysis):
 
     Notes
     -----
+    Bias and coverage: the shift is compared with the process's true effect
+    (a mean difference, equal to the shift under a location-shift model; give
+    the scenario's ``true_effects`` otherwise); the probability index only
+    with ``true_effects``.
     Missing outcomes (NaN) are dropped. The batch path (contiguous arms, no
     missing values) ranks all replicates at once.
     """
@@ -182,6 +186,11 @@ class MannWhitney(Analysis):
               "ci_level": CI_LEVEL, "null_value": Real()}
     defaults = {"alternative": "two-sided", "continuity": True, "estimand": "shift", "ci_level": 0.95,
                 "null_value": 0.0}
+
+    @property
+    def estimand_label(self) -> str | None:
+        """None for the shift (the process's mean difference under a location shift), else the index."""
+        return "probability index" if self.estimand == "probability" else None
 
     def __call__(self, data):
         if "arm" not in data:

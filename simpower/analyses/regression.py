@@ -181,6 +181,12 @@ class OLS(Analysis):
                                  "name the coefficient to test.")
 
     @property
+    def estimand_label(self) -> str | None:
+        """None (the process's mean difference, adjusted) for an arm coefficient, else its name."""
+        term = self.coefficient
+        return None if term == "arm" or term.startswith("C(arm)[") else f"coefficient {term}"
+
+    @property
     def parsed(self) -> Formula:
         return parse_formula(self.formula)
 

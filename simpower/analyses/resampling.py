@@ -87,6 +87,10 @@ class PermutationTest(Analysis):
     defaults = {"statistic": "mean", "n_resamples": 1999, "seed": 0, "alternative": "two-sided",
                 "null_value": 0.0}
 
+    @property
+    def estimand_label(self) -> str | None:
+        return "median difference" if self.statistic == "median" else None
+
     def __call__(self, data):
         kind, values = _layout(data)
         loc = _LOCATION[self.statistic]
@@ -158,6 +162,10 @@ class BootstrapCI(Analysis):
               "null_value": Real()}
     defaults = {"statistic": "mean", "method": "bca", "n_resamples": 1999, "ci_level": 0.95, "seed": 0,
                 "alternative": "two-sided", "null_value": 0.0}
+
+    @property
+    def estimand_label(self) -> str | None:
+        return "median difference" if self.statistic == "median" else None
 
     def _statistic(self, kind):
         loc = _LOCATION[self.statistic]
@@ -241,6 +249,7 @@ class LogT(Analysis):
 
     name = "log_t"
     null_hypothesis = "the ratio of geometric means (or the geometric mean) equals null_ratio"
+    estimand_label = "ratio of geometric means"
     params = {"equal_var": Bool(), "alternative": ALTERNATIVE, "ci_level": CI_LEVEL, "null_ratio": POSITIVE}
     defaults = {"equal_var": False, "alternative": "two-sided", "ci_level": 0.95, "null_ratio": 1.0}
 
