@@ -75,6 +75,9 @@ def test_stored_run_equals_result_and_reads_back_as_pandas(stored):
         row = pts[pts.analysis == name].iloc[0]
         assert row["power"] == res.summaries[name]["power"] and row["reps_done"] == 1100 and row["complete"]
         assert row["n"] == 20 and row["effect"] == 0.5
+    t_row = pts[pts.analysis == "t"].iloc[0]
+    assert t_row["bias"] == pytest.approx(res.summaries["t"]["bias"], rel=1e-9)
+    assert t_row["coverage"] == res.summaries["t"]["coverage"]
     n_fail = int((res.records["picky"].failure == "error:ValueError").sum())
     assert n_fail > 0
     assert fails.set_index("cause").loc["error:ValueError", "count"] == n_fail

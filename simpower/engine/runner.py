@@ -240,7 +240,7 @@ def _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble):
         if keep:
             pt = _Point(sc, int(r), key, cs, RecordCollector(sc.analyses, int(r)), None)
         else:
-            pt = _Point(sc, int(r), key, cs, None, PointTally(sc.analyses, sc.alpha, fit_trouble, sc.true_effect),
+            pt = _Point(sc, int(r), key, cs, None, PointTally(sc, fit_trouble),
                         stream_book=CauseBook())
         points.append(pt)
     return points

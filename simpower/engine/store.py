@@ -151,6 +151,24 @@ def _spec_diff(old: Any, new: Any, prefix: str = "") -> list[str]:
     return []
 
 
+def _analyses_info(scenario) -> dict[str, dict[str, Any]]:
+    """Per analysis: the true value of its estimand (for bias and coverage read back from the store)."""
+    from .tally import true_effect_of
+
+    return {name: {"true_effect": true_effect_of(scenario, name)} for name in scenario.analyses}
+
+
+def _truths(analyses_text: str) -> dict[str, float | None]:
+    info = json.loads(analyses_text)
+    if isinstance(info, list):
+        return {name: None for name in info}
+    out = {}
+    for name, v in info.items():
+        te = v.get("true_effect") if isinstance(v, dict) else None
+        out[name] = float(te) if isinstance(te, (int, float)) and not isinstance(te, bool) else None
+    return out
+
+
 def _flatten(spec: dict, prefix: str = "") -> dict[str, Any]:
     out = {}
     for k, v in spec.items():
@@ -161,35 +179,55 @@ def _flatten(spec: dict, prefix: str = "") -> dict[str, Any]:
     return out
 
 
-def write_chunk(conn: sqlite3.Connection, out: ChunkOutput) -> None:
-    """One chunk in one transaction: arrays, causes, paths, then its ``chunks`` row."""
+def _insert_chunk(conn: sqlite3.Connection, out: ChunkOutput) -> None:
     key = (int(out.point), int(out.chunk))
     rows = []
     for name, rec in out.records.items():
         for f, arr in rec.items():
             rows.append((*key, name, f, *encode_array(arr)))
+    for table in ("chunks", "arrays", "causes", "chunk_analyses"):
+        conn.execute(f"DELETE FROM {table} WHERE point=? AND chunk=?", key)
+    conn.executemany("INSERT INTO arrays VALUES (?, ?, ?, ?, ?, ?, ?, ?)", rows)
+    conn.executemany("INSERT INTO causes VALUES (?, ?, ?, ?, ?)",
+                     [(*key, j, cause, out.messages.get(cause, "")) for j, cause in enumerate(out.causes, start=1)])
+    conn.executemany("INSERT INTO chunk_analyses VALUES (?, ?, ?, ?, ?)",
+                     [(*key, name, out.paths.get(name, ""), json.dumps(out.hypotheses.get(name, [])))
+                      for name in out.records])
+    conn.execute("INSERT INTO chunks VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                 (*key, int(out.size), float(out.seconds), float(out.started_at), time.time(), out.worker,
+                  None if out.timeout_enforced is None else int(out.timeout_enforced)))
+
+
+def write_chunks(conn: sqlite3.Connection, outs: list[ChunkOutput]) -> None:
+    """Whole chunks in one transaction: each chunk's arrays, causes, paths, then its ``chunks`` row.
+
+    A chunk is in the store exactly when its ``chunks`` row is; the
+    transaction makes that all-or-nothing.
+    """
     conn.execute("BEGIN IMMEDIATE")
     try:
-        for table in ("chunks", "arrays", "causes", "chunk_analyses"):
-            conn.execute(f"DELETE FROM {table} WHERE point=? AND chunk=?", key)
-        conn.executemany("INSERT INTO arrays VALUES (?, ?, ?, ?, ?, ?, ?, ?)", rows)
-        conn.executemany("INSERT INTO causes VALUES (?, ?, ?, ?, ?)",
-                         [(*key, j, cause, out.messages.get(cause, ""))
-                          for j, cause in enumerate(out.causes, start=1)])
-        conn.executemany("INSERT INTO chunk_analyses VALUES (?, ?, ?, ?, ?)",
-                         [(*key, name, out.paths.get(name, ""), json.dumps(out.hypotheses.get(name, [])))
-                          for name in out.records])
-        conn.execute("INSERT INTO chunks VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-                     (*key, int(out.size), float(out.seconds), float(out.started_at), time.time(), out.worker,
-                      None if out.timeout_enforced is None else int(out.timeout_enforced)))
+        for out in outs:
+            _insert_chunk(conn, out)
     except BaseException:
         conn.execute("ROLLBACK")
         raise
     conn.execute("COMMIT")
 
 
+def write_chunk(conn: sqlite3.Connection, out: ChunkOutput) -> None:
+    """One chunk in one transaction."""
+    write_chunks(conn, [out])
+
+
+#: page size of new stores (fewer overflow pages for the per-chunk arrays)
+PAGE_SIZE = 16384
+
+
 def _connect(path: Path, sync: str) -> sqlite3.Connection:
+    fresh = not path.exists() or path.stat().st_size == 0
     conn = sqlite3.connect(str(path), isolation_level=None, timeout=60, check_same_thread=False)
+    if fresh:
+        conn.execute(f"PRAGMA page_size={PAGE_SIZE}")
     conn.execute("PRAGMA journal_mode=WAL")
     conn.execute(f"PRAGMA synchronous={sync.upper()}")
     return conn
@@ -198,12 +236,15 @@ def _connect(path: Path, sync: str) -> sqlite3.Connection:
 class _Writer:
     """A thread that commits chunks, so the run computes while SQLite writes.
 
-    The queue is bounded (back-pressure keeps memory bounded); :meth:`flush`
-    waits for the queue to drain and re-raises the first failure.
+    Chunks that queued up while a commit ran are committed together (at most
+    ``group``, each one whole). The queue is bounded (back-pressure keeps
+    memory bounded); :meth:`flush` waits for it to drain and re-raises the
+    first failure.
     """
 
-    def __init__(self, path: Path, sync: str, depth: int = 32):
+    def __init__(self, path: Path, sync: str, depth: int = 32, group: int = 16):
         self.path = path
+        self.group = group
         self.queue: queue.Queue = queue.Queue(maxsize=depth)
         self.error: BaseException | None = None
         self.conn = _connect(path, sync)
@@ -212,16 +253,23 @@ class _Writer:
 
     def _loop(self):
         while True:
-            out = self.queue.get()
+            batch = [self.queue.get()]
+            while batch[-1] is not None and len(batch) < self.group:
+                try:
+                    batch.append(self.queue.get_nowait())
+                except queue.Empty:
+                    break
+            outs = [o for o in batch if o is not None]
             try:
-                if out is None:
-                    return
-                if self.error is None:
-                    write_chunk(self.conn, out)
+                if outs and self.error is None:
+                    write_chunks(self.conn, outs)  # chunks waiting together commit together
             except BaseException as exc:  # kept and re-raised in the run's thread
                 self.error = exc
             finally:
-                self.queue.task_done()
+                for _ in batch:
+                    self.queue.task_done()
+            if batch[-1] is None:
+                return
 
     def _raise(self):
         if self.error is not None:
@@ -440,7 +488,7 @@ class RunStore:
         with self._guard("recording the scenario"), self._transaction() as c:
             c.execute("INSERT OR REPLACE INTO points VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
                       (int(point), fp, str(int(seed)), int(chunk_size), int(reps),
-                       json.dumps(list(scenario.analyses)), json.dumps(spec, default=str), time.time()))
+                       json.dumps(_analyses_info(scenario)), json.dumps(spec, default=str), time.time()))
 
     # -- chunks ----------------------------------------------------------------------
     def save(self, out: ChunkOutput) -> None:
@@ -556,7 +604,7 @@ class RunStore:
         if not rows:
             raise StoreError(f"{self.path}: no grid point {point}.{self._points_hint()}")
         total = sum(size for _, _, size in self.done_chunks(point))
-        return assemble_records(json.loads(rows[0][5]), total, self.iter_chunks(point))
+        return assemble_records(list(_truths(rows[0][5])), total, self.iter_chunks(point))
 
     def iter_replicates(self, point: int | None = None, analysis: str | None = None) -> Iterator[pd.DataFrame]:
         """The per-replicate table, one stored chunk at a time (for exports of any size)."""
@@ -609,30 +657,31 @@ class RunStore:
         Summaries use the stored chunks (a partial point is summarised over
         what finished; ``complete`` says whether all planned replicates are in).
         """
-        from ..summaries import summarize_records
+        from .tally import AnalysisTally, summary_of, tally_analysis
 
         out = []
         for point, fp, seed, cs, reps, analyses, spec_text in self._point_rows():
             spec = json.loads(spec_text)
-            recs = self.records(point)
+            alpha = float(spec.get("alpha", 0.05))
+            truth = _truths(analyses)
+            tallies = {name: AnalysisTally() for name in truth}
+            for chunk in self.iter_chunks(point):  # one chunk in memory at a time
+                for name, rec in chunk.records.items():
+                    if name in tallies:
+                        tallies[name] = tallies[name].merge(
+                            tally_analysis(rec, chunk.causes, alpha, fit_trouble, truth[name]))
             params = _flatten(spec.get("process", {}), "")
-            for name in json.loads(analyses):
-                r = recs.get(name)
-                done = 0 if r is None else int(r.pvalue.size)
+            for name, t in tallies.items():
                 row = {"point": point, "analysis": name, "fingerprint": fp, "seed": seed, "chunk_size": cs,
-                       "reps": reps, "reps_done": done, "complete": done >= reps, **params,
-                       "alpha": spec.get("alpha")}
-                if done:
-                    te = spec.get("true_effect")
-                    s = summarize_records(r.pvalue, r.status, r.causes, float(spec.get("alpha", 0.05)),
-                                          fit_trouble, r.estimate, r.se, r.ci_low, r.ci_high,
-                                          te if isinstance(te, (int, float)) else None)
-                    row.update({k: s[k] for k in ("power", "mcse", "ci_low", "ci_high", "n_ok", "n_failed",
-                                                  "n_fit_trouble")})
-                    row["failures"] = "; ".join(f"{c} x{n}" for c, n in s["failures"].items())
-                    for k in ("mean_estimate", "empirical_se", "model_se"):
-                        if k in s:
-                            row[k] = s[k]
+                       "reps": reps, "reps_done": t.reps, "complete": t.reps >= reps, **params, "alpha": alpha}
+                if t.reps:
+                    sm = summary_of(t, fit_trouble, truth[name])
+                    row.update({k: sm[k] for k in ("power", "mcse", "ci_low", "ci_high", "n_ok", "n_failed",
+                                                   "n_fit_trouble")})
+                    row["failures"] = "; ".join(f"{c} x{n}" for c, n in sm["failures"].items())
+                    for k in ("mean_estimate", "empirical_se", "model_se", "bias", "coverage"):
+                        if k in sm:
+                            row[k] = sm[k]
                 out.append(row)
         return pd.DataFrame(out)
 

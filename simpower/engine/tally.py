@@ -194,16 +194,23 @@ def summary_of(t: AnalysisTally, fit_trouble: str, true_effect: float | None) ->
     return out
 
 
+def true_effect_of(scenario, name: str) -> float | None:
+    """The true value of what analysis ``name`` estimates (as the in-memory summaries use it)."""
+    per = getattr(scenario, "true_effect_for", None)
+    return per(name) if per is not None else scenario.true_effect
+
+
 class PointTally:
     """Chunk tallies of one grid point, folded in chunk order on demand."""
 
-    def __init__(self, analyses, alpha: float, fit_trouble: str, true_effect: float | None):
-        self.analyses = list(analyses)
-        self.alpha, self.fit_trouble, self.true_effect = alpha, fit_trouble, true_effect
+    def __init__(self, scenario, fit_trouble: str):
+        self.analyses = list(scenario.analyses)
+        self.alpha, self.fit_trouble = scenario.alpha, fit_trouble
+        self.truth = {name: true_effect_of(scenario, name) for name in self.analyses}
         self.chunks: dict[int, tuple[dict[str, AnalysisTally], dict]] = {}
 
     def add(self, out) -> None:
-        per = {name: tally_analysis(rec, out.causes, self.alpha, self.fit_trouble, self.true_effect)
+        per = {name: tally_analysis(rec, out.causes, self.alpha, self.fit_trouble, self.truth[name])
                for name, rec in out.records.items() if name in self.analyses}
         self.chunks[out.chunk] = (per, tally_pairs({n: out.records[n] for n in self.analyses
                                                     if n in out.records}, self.alpha))
@@ -253,27 +260,19 @@ class StreamedResult(RunResult):
     def __init__(self, scenario, reps, seed, chunk_size, tally: PointTally, causes, messages, paths, seconds,
                  fit_trouble="failure", n_jobs=None, backend=None, point=0, chunk_seconds=0.0, hypotheses=None,
                  store_path=None, extra=None):
-        self.scenario = scenario
-        self.reps = int(reps)
-        self.seed = int(seed)
-        self.chunk_size = int(chunk_size)
-        self.paths = paths
-        self.seconds = float(seconds)
-        self.fit_trouble = fit_trouble
-        self.n_jobs = n_jobs
-        self.backend = backend or "loky"
-        self.point = point
-        self.chunk_seconds = chunk_seconds
-        self.extra = dict(extra or {})
+        # the base class sets the common attributes (no records: no summaries computed there)
+        super().__init__(scenario, reps, seed, chunk_size, {}, paths, seconds, fit_trouble, n_jobs=n_jobs,
+                         backend=backend, point=point, chunk_seconds=chunk_seconds, extra=extra)
         self.store_path = store_path
         hypotheses = hypotheses or {}
         self.records = _MissingRecords(causes, messages, hypotheses, store_path)
         self._messages = messages
-        self.analytic = scenario.analytic_power()
         tallies, self._pairs = tally.folded()
         self.summaries = {}
         for name, t in tallies.items():
-            s = summary_of(t, fit_trouble, scenario.true_effect)
+            truth = tally.truth[name]
+            s = summary_of(t, fit_trouble, truth)
+            s["true_effect"] = truth
             s["path"] = paths.get(name, "")
             a = self.analytic.get(name)
             s["analytic_power"] = a
