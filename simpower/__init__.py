@@ -12,6 +12,12 @@ from .analyses.base import Analysis, TestResult, as_test_result
 from .analyses.binary import ChiSquare, FisherExact, Logistic, TwoProportions
 from .analyses.clustered import GEE, ClusterMeansT, FinalVisitT
 from .analyses.counts import NegBinGLM, PoissonGLM
+from .analyses.equivalence import TOST, NonInferiority
+from .analyses.mixed import MixedModel
+from .analyses.multiplicity import Multiple
+from .analyses.nonparametric import MannWhitney, WilcoxonSignedRank
+from .analyses.regression import OLS, Ancova
+from .analyses.resampling import BootstrapCI, LogT, PermutationTest
 from .analyses.survival import Cox, LogRank
 from .analyses.ttests import PairedT, TTest, WelchT, ZTest
 from .engine import RunInterrupted, run, run_many
@@ -46,7 +52,8 @@ __all__ = [
     "MCAR", "MAR", "MNAR",
     # analyses
     "ZTest", "TTest", "WelchT", "PairedT", "ClusterMeansT", "GEE", "FinalVisitT", "TwoProportions", "ChiSquare",
-    "FisherExact", "Logistic", "PoissonGLM", "NegBinGLM", "LogRank", "Cox",
+    "FisherExact", "Logistic", "PoissonGLM", "NegBinGLM", "LogRank", "Cox", "MannWhitney", "WilcoxonSignedRank",
+    "PermutationTest", "BootstrapCI", "LogT", "TOST", "NonInferiority", "Multiple", "OLS", "Ancova", "MixedModel",
     # summaries
     "bradley_liberal", "paired_difference", "wilson_interval",
     # errors
