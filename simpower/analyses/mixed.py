@@ -527,7 +527,9 @@ class MixedModel(Analysis):
         frame = pd.DataFrame({k: np.asarray(v) for k, v in dict(data).items()}) if not isinstance(data, pd.DataFrame) else data
         if self.groups not in frame:
             raise ValueError(f"mixed_model needs a {self.groups!r} column (the `groups` parameter)")
-        frame = frame[np.isfinite(frame["y"].to_numpy(float))]
+        outcome = self.formula.split("~")[0].strip()
+        if outcome in frame:
+            frame = frame[np.isfinite(frame[outcome].to_numpy(float))]
         model = smf.mixedlm(self.formula, frame, groups=frame[self.groups])
         fit = model.fit(reml=True)
         names = list(model.exog_names)
