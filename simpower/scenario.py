@@ -103,7 +103,12 @@ class Scenario:
         a_label = getattr(a, "estimand_label", None)
         p_label = getattr(self.process, "estimand_label", None)
         if a_label is not None and p_label is not None and a_label != p_label:
-            return None
+            try:
+                aliases = self.process.estimand_aliases()
+            except Exception:
+                aliases = set()
+            if a_label not in aliases:
+                return None
         return self.true_effect
 
     def analytic_power(self) -> dict[str, float | None]:

@@ -189,8 +189,8 @@ class MannWhitney(Analysis):
 
     @property
     def estimand_label(self) -> str | None:
-        """None for the shift (the process's mean difference under a location shift), else the index."""
-        return "probability index" if self.estimand == "probability" else None
+        """'location shift' (equal to the mean difference only under a pure shift model), or the index."""
+        return "probability index" if self.estimand == "probability" else "location shift"
 
     def __call__(self, data):
         if "arm" not in data:

@@ -283,6 +283,11 @@ class TwoArm(Process):
         _apply_missing(self.missing, rng, x, covariates, per_rep, info)
         return Batch(size, per_rep, {"arm": arm}, info)
 
+    def estimand_aliases(self):
+        """Under a pure shift (no ratio effect, equal spread) the mean difference is also the location shift."""
+        pure_shift = self.effect_type in ("shift", "d") and self.sd_ratio == 1 and self.missing is None
+        return {"location shift"} if pure_shift else set()
+
     def true_effect(self):
         if self.effect_type == "shift":
             return float(self.effect)

@@ -83,6 +83,11 @@ class Process(Component):
     def has_batch(self) -> bool:
         return type(self).draw_batch is not Process.draw_batch
 
+    def estimand_aliases(self) -> set[str]:
+        """Other names under which :meth:`true_effect` is also the true value (e.g. a
+        'location shift' when the arms differ by a pure shift)."""
+        return set()
+
     def true_effect(self) -> float | None:
         """The estimand the analyses estimate (for bias and coverage), if known."""
         v = self._p.get(self.effect_param) if self.effect_param else None

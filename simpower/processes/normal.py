@@ -115,6 +115,9 @@ class NormalTwoArm(Process):
         if self.n1 < 2:
             raise ParameterError(f"`ratio` gives a treatment arm of {self.n1} (< 2) with n = {self.n}; raise n or ratio.")
 
+    def estimand_aliases(self):
+        return {"location shift"} if self.sd_ratio == 1 else set()
+
     @property
     def n1(self) -> int:
         return int(round(self.ratio * self.n))
