@@ -200,8 +200,8 @@ def _check_args(reps, keys, n_scen, chunk_size, fit_trouble, max_failure_rate, t
         if isinstance(r, bool) or not isinstance(r, (int, np.integer)) or r < 1:
             raise ParameterError(f"`reps` must be an integer >= 1; got {r!r}.")
     keys = list(range(n_scen)) if keys is None else [int(k) for k in keys]
-    if len(keys) != n_scen or len(set(keys)) != n_scen or min(keys, default=0) < 0:
-        raise ParameterError(f"`keys` must be {n_scen} distinct integers >= 0; got {keys!r}.")
+    if len(keys) != n_scen or len(set(keys)) != n_scen or min(keys, default=0) < 0 or max(keys, default=0) >= 2**63:
+        raise ParameterError(f"`keys` must be {n_scen} distinct integers in [0, 2**63); got {keys!r}.")
     if chunk_size is not None and (isinstance(chunk_size, bool) or not isinstance(chunk_size, (int, np.integer))
                                    or chunk_size < 1):
         raise ParameterError(f"`chunk_size` must be an integer >= 1; got {chunk_size!r}.")
