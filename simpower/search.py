@@ -38,9 +38,9 @@ import pandas as pd
 from scipy import stats
 
 from ._validation import Choice, Int, Real
-from .engine import normalize_seed, run_many
+from .engine import run_many
 from .errors import ParameterError, nearest
-from .sequential import as_memory_store, point_key
+from .sequential import as_memory_store, point_key, seed_with_store
 from .summaries import wilson_interval
 
 #: replicates per chunk (and per pilot point) of a search
@@ -299,7 +299,8 @@ class _Evaluations:
     """Results so far per value; extends a value's run when asked for more replicates."""
 
     def __init__(self, scenario, parameter, analysis, seed, n_jobs, chunk_size, store, progress, fit_trouble,
-                 max_failure_rate, setter):
+                 max_failure_rate, setter, engine=None):
+        self.engine = dict(engine or {})
         self.scenario, self.parameter, self.analysis = scenario, parameter, analysis
         self.seed, self.n_jobs, self.chunk_size = seed, n_jobs, chunk_size
         self.store = as_memory_store(store)
@@ -319,7 +320,8 @@ class _Evaluations:
         scs = [self.scenario.with_params(**{self.parameter: self.setter(v)}) for v in todo]
         outs = run_many(scs, list(todo.values()), seed=self.seed, n_jobs=self.n_jobs, chunk_size=self.chunk_size,
                         store=self.store, progress=self.progress, fit_trouble=self.fit_trouble,
-                        keys=[point_key(s) for s in scs], max_failure_rate=self.max_failure_rate, desc="searching")
+                        keys=[point_key(s) for s in scs], max_failure_rate=self.max_failure_rate, desc="searching",
+                        **self.engine)
         for v, res in zip(todo, outs):
             s = res.summaries[self.analysis]
             if v not in self.stats:
@@ -376,11 +378,24 @@ def _not_reached(ev, parameter, target, lo, hi, best_note="") -> ParameterError:
 
 def _search(scenario, *, parameter, kind, target, low, high, scale, step, setter, level, rel_tol, abs_tol,
             max_reps, seed, n_jobs, chunk_size, store, progress, fit_trouble, analysis, max_failure_rate,
-            pilot_points, pilot_reps):
-    entropy = normalize_seed(seed)
+            pilot_points, pilot_reps, engine=None):
     pilot_points = Int(low=2).clean("pilot_points", pilot_points)
-    ev = _Evaluations(scenario, parameter, analysis, entropy, n_jobs, chunk_size, store, progress, fit_trouble,
-                      max_failure_rate, setter)
+    mem = as_memory_store(store)
+    try:
+        entropy = seed_with_store(seed, mem)
+        ev = _Evaluations(scenario, parameter, analysis, entropy, n_jobs, chunk_size, mem, progress, fit_trouble,
+                          max_failure_rate, setter, engine)
+        return _rounds(ev, parameter=parameter, kind=kind, target=target, low=low, high=high, scale=scale,
+                       step=step, level=level, rel_tol=rel_tol, abs_tol=abs_tol, max_reps=max_reps,
+                       chunk_size=chunk_size, pilot_points=pilot_points, pilot_reps=pilot_reps)
+    finally:
+        if mem is not store:
+            mem.close()
+
+
+def _rounds(ev, *, parameter, kind, target, low, high, scale, step, level, rel_tol, abs_tol, max_reps, chunk_size,
+            pilot_points, pilot_reps):
+    entropy = ev.seed
     fwd, inv = SCALES[scale]
     snap = _snapper(low, high, step)
     pilot = sorted({snap(float(v)) for v in inv(np.linspace(fwd(low), fwd(high), pilot_points))})
@@ -539,7 +554,7 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
                rel_tol: float = 0.02, max_reps: int = 200_000, seed=None, n_jobs: int | None = -1,
                chunk_size: int = SEARCH_CHUNK, store=None, progress: bool | None = None,
                fit_trouble: str = "failure", analysis: str | None = None, max_failure_rate: float = 0.5,
-               pilot_points: int = PILOT_POINTS) -> SearchResult:
+               pilot_points: int = PILOT_POINTS, engine=None) -> SearchResult:
     """The smallest sample size (or number of clusters) that reaches ``power``, with a Monte Carlo interval.
 
     Parameters
@@ -572,6 +587,9 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
         (default :data:`SEARCH_CHUNK`) and recorded, so the numbers reproduce.
     analysis : str, optional
         Whose power must reach the target (default the primary analysis).
+    engine : mapping, optional
+        Further keyword arguments for :func:`simpower.run_many` (``backend``,
+        ``address``, ``timeout``, ``keep_records``).
 
     Returns
     -------
@@ -609,7 +627,7 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
                   step=step, setter=setter, level=level, rel_tol=rel_tol,
                   abs_tol=0.5 * step if step else 0.0, max_reps=max_reps, seed=seed, n_jobs=n_jobs,
                   chunk_size=chunk_size, store=store, progress=progress, fit_trouble=fit_trouble, analysis=analysis,
-                  max_failure_rate=max_failure_rate, pilot_points=pilot_points, pilot_reps=chunk_size)
+                  max_failure_rate=max_failure_rate, pilot_points=pilot_points, pilot_reps=chunk_size, engine=engine)
     an, an_cont = analytic_size(scenario, analysis, parameter, target, low, high, step or 1) if integer else (None, None)
     settings = {"power": target, "parameter": parameter, "low": low, "high": high, "step": step, "scale": scale,
                 "level": level, "rel_tol": rel_tol, "max_reps": max_reps, "chunk_size": chunk_size,
@@ -631,7 +649,7 @@ def detectable_effect(scenario, power: float = 0.8, *, parameter: str | None = N
                       max_reps: int = 200_000, seed=None, n_jobs: int | None = -1, chunk_size: int = SEARCH_CHUNK,
                       store=None, progress: bool | None = None, fit_trouble: str = "failure",
                       analysis: str | None = None, max_failure_rate: float = 0.5,
-                      pilot_points: int = PILOT_POINTS) -> SearchResult:
+                      pilot_points: int = PILOT_POINTS, engine=None) -> SearchResult:
     """The minimal detectable effect: the smallest effect reaching ``power`` at the scenario's size.
 
     The effect is searched on its magnitude in the direction of the
@@ -669,7 +687,7 @@ def detectable_effect(scenario, power: float = 0.8, *, parameter: str | None = N
                   step=None, setter=setter, level=level, rel_tol=rel_tol, abs_tol=0.0, max_reps=max_reps, seed=seed,
                   n_jobs=n_jobs, chunk_size=chunk_size, store=store, progress=progress, fit_trouble=fit_trouble,
                   analysis=analysis, max_failure_rate=max_failure_rate, pilot_points=pilot_points,
-                  pilot_reps=chunk_size)
+                  pilot_reps=chunk_size, engine=engine)
     if sign < 0:
         out["value"], out["estimate"] = -out["value"], -out["estimate"]
         lo, hi = out["interval"]

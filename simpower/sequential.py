@@ -64,17 +64,43 @@ def grow_chunk_size(scenario, chunk_size: int | None = None) -> int:
 class MemoryStore:
     """Finished chunks kept in memory, optionally in front of another store.
 
-    Meets the engine's ``ChunkStore`` protocol (``load`` / ``save``). With a
-    ``backing`` store (e.g. the SQLite run store) chunks found there are
-    reused and new chunks are saved there too, so an interrupted search or
-    sweep resumes where it stopped.
+    Meets the engine's store protocol (``load`` / ``save``, and ``bind`` /
+    ``flush`` passed on to the backing store). With a ``backing`` store (a
+    :class:`~simpower.engine.store.RunStore`, or a path, opened here and
+    closed by :meth:`close`) chunks found there are reused and new chunks are
+    saved there too, so an interrupted search or sweep resumes where it
+    stopped.
     """
 
     def __init__(self, backing=None):
+        self.owned = False
+        if isinstance(backing, (str, bytes)) or hasattr(backing, "__fspath__"):
+            from .engine.store import RunStore
+
+            backing, self.owned = RunStore(backing), True
         self.backing = backing
         self._chunks: dict[tuple[int, int, int], ChunkOutput] = {}
         self.hits = 0
         self.simulated = 0
+
+    @property
+    def seed(self) -> int | None:
+        """The backing store's seed (to resume a run started without one), else None."""
+        return getattr(self.backing, "seed", None) if self.backing is not None else None
+
+    def bind(self, point: int, scenario, seed: int, chunk_size: int, reps: int) -> None:
+        if self.backing is not None and hasattr(self.backing, "bind"):
+            self.backing.bind(point, scenario, seed, chunk_size, reps)
+
+    def flush(self) -> None:
+        if self.backing is not None and hasattr(self.backing, "flush"):
+            self.backing.flush()
+
+    def close(self) -> None:
+        """Close the backing store if this object opened it."""
+        if self.owned and self.backing is not None:
+            self.backing.close()
+            self.owned = False
 
     def load(self, point: int, chunk: int, size: int) -> ChunkOutput | None:
         out = self._chunks.get((point, chunk, size))
@@ -94,8 +120,15 @@ class MemoryStore:
 
 
 def as_memory_store(store) -> MemoryStore:
-    """``store`` itself if it is a MemoryStore, else a MemoryStore in front of it."""
+    """``store`` itself if it is a MemoryStore, else a MemoryStore in front of it (a path is opened)."""
     return store if isinstance(store, MemoryStore) else MemoryStore(store)
+
+
+def seed_with_store(seed, mem: MemoryStore) -> int:
+    """The run's entropy: ``seed``, else the backing store's (resuming), else fresh."""
+    from .engine import normalize_seed
+
+    return normalize_seed(seed if seed is not None or mem.seed is None else int(mem.seed))
 
 
 def check_target_mcse(target_mcse) -> float:
@@ -136,7 +169,8 @@ def _reached(result, target_mcse: float, which: str) -> bool:
 def run_many_to_mcse(scenarios: Sequence, target_mcse: float = 0.005, *, max_reps: int = MAX_REPS,
                      min_reps: int = MIN_REPS, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
                      store=None, progress: bool | None = None, fit_trouble: str = "failure",
-                     which: str = "primary", keys: Sequence[int] | None = None, max_failure_rate: float = 0.5):
+                     which: str = "primary", keys: Sequence[int] | None = None, max_failure_rate: float = 0.5,
+                     engine=None):
     """Run each scenario until its power's MCSE reaches ``target_mcse`` (or ``max_reps``).
 
     All points still short of their target are extended together in one
@@ -144,8 +178,6 @@ def run_many_to_mcse(scenarios: Sequence, target_mcse: float = 0.005, *, max_rep
     ``extra["sequential"]`` says how many replicates it took, whether the
     target was reached, and the replicate counts of the looks.
     """
-    from .engine import normalize_seed
-
     target_mcse = check_target_mcse(target_mcse)
     max_reps = Int(low=1).clean("max_reps", max_reps)
     min_reps = Int(low=1).clean("min_reps", min_reps)
@@ -153,11 +185,20 @@ def run_many_to_mcse(scenarios: Sequence, target_mcse: float = 0.005, *, max_rep
         raise ParameterError(f"`min_reps` ({min_reps}) must not exceed `max_reps` ({max_reps}).")
     if which not in ("primary", "all"):
         raise ParameterError(f"`which` must be 'primary' or 'all'; got {which!r}.")
-    entropy = normalize_seed(seed)
     scenarios = list(scenarios)
     keys = [point_key(s) for s in scenarios] if keys is None else list(keys)
     sizes = [grow_chunk_size(s, chunk_size) for s in scenarios]
     mem = as_memory_store(store)
+    try:
+        return _grow(scenarios, target_mcse, max_reps, min_reps, seed_with_store(seed, mem), n_jobs, sizes, mem,
+                     progress, fit_trouble, which, keys, max_failure_rate, dict(engine or {}))
+    finally:
+        if mem is not store:
+            mem.close()
+
+
+def _grow(scenarios, target_mcse, max_reps, min_reps, entropy, n_jobs, sizes, mem, progress, fit_trouble, which,
+          keys, max_failure_rate, engine):
     reps = [min(_round_up(min_reps, cs), max_reps) for cs in sizes]
     results: list = [None] * len(scenarios)
     looks: list[list[int]] = [[] for _ in scenarios]
@@ -170,7 +211,7 @@ def run_many_to_mcse(scenarios: Sequence, target_mcse: float = 0.005, *, max_rep
             outs = run_many([scenarios[i] for i in idx], [reps[i] for i in idx], seed=entropy, n_jobs=n_jobs,
                             chunk_size=cs, progress=progress, fit_trouble=fit_trouble, store=mem,
                             keys=[keys[i] for i in idx], max_failure_rate=max_failure_rate,
-                            desc="extending")
+                            desc="extending", **engine)
             for i, res in zip(idx, outs):
                 results[i] = res
                 looks[i].append(reps[i])
@@ -197,7 +238,7 @@ def run_many_to_mcse(scenarios: Sequence, target_mcse: float = 0.005, *, max_rep
 def run_to_mcse(scenario, target_mcse: float = 0.005, *, max_reps: int = MAX_REPS, min_reps: int = MIN_REPS,
                 seed=None, n_jobs: int | None = -1, chunk_size: int | None = None, store=None,
                 progress: bool | None = None, fit_trouble: str = "failure", which: str = "primary",
-                max_failure_rate: float = 0.5):
+                max_failure_rate: float = 0.5, engine=None):
     """Simulate until the power's Monte Carlo SE is at most ``target_mcse``.
 
     Parameters
@@ -221,6 +262,9 @@ def run_to_mcse(scenario, target_mcse: float = 0.005, *, max_reps: int = MAX_REP
         Finished chunks are reused from and saved to it.
     which : {'primary', 'all'}
         Whose MCSE must reach the target: the primary analysis, or every one.
+    engine : mapping, optional
+        Further keyword arguments for :func:`simpower.run_many` (``backend``,
+        ``address``, ``timeout``, ``keep_records``).
 
     Returns
     -------
@@ -238,7 +282,8 @@ def run_to_mcse(scenario, target_mcse: float = 0.005, *, max_reps: int = MAX_REP
     """
     return run_many_to_mcse([scenario], target_mcse, max_reps=max_reps, min_reps=min_reps, seed=seed,
                             n_jobs=n_jobs, chunk_size=chunk_size, store=store, progress=progress,
-                            fit_trouble=fit_trouble, which=which, max_failure_rate=max_failure_rate)[0]
+                            fit_trouble=fit_trouble, which=which, max_failure_rate=max_failure_rate,
+                            engine=engine)[0]
 
 
 def read_block(block_name: str, block, fields: dict) -> dict:

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any, Iterable, Mapping, Sequence
 
@@ -29,7 +30,7 @@ import pandas as pd
 from .engine import normalize_seed, run_many
 from ._validation import Bool, Int, Real
 from .errors import ParameterError
-from .sequential import check_target_mcse, point_key, run_many_to_mcse
+from .sequential import as_memory_store, check_target_mcse, point_key, run_many_to_mcse, seed_with_store
 from .summaries import bradley_liberal
 
 #: columns of a sweep table after the grid parameters, in order
@@ -281,8 +282,22 @@ def _rows(settings, results, extra=None) -> list[dict]:
     return rows
 
 
+@contextmanager
+def _opened(store):
+    """A MemoryStore in front of ``store`` (a path is opened, and closed afterwards); None without a store."""
+    if store is None:
+        yield None
+        return
+    mem = as_memory_store(store)
+    try:
+        yield mem
+    finally:
+        if mem is not store:
+            mem.close()
+
+
 def _run_points(scenarios, reps, seed, n_jobs, chunk_size, store, progress, fit_trouble, target_mcse, max_reps,
-                min_reps, max_failure_rate):
+                min_reps, max_failure_rate, engine=None):
     """Run unique points once (content keys), in one pool; return results in the scenarios' order."""
     keys = [point_key(s) for s in scenarios]
     unique: dict[int, Any] = {}
@@ -292,11 +307,12 @@ def _run_points(scenarios, reps, seed, n_jobs, chunk_size, store, progress, fit_
     if target_mcse is not None:
         outs = run_many_to_mcse(list(unique.values()), target_mcse, max_reps=max_reps, min_reps=min_reps, seed=seed,
                                 n_jobs=n_jobs, chunk_size=chunk_size, store=store, progress=progress,
-                                fit_trouble=fit_trouble, keys=ukeys, max_failure_rate=max_failure_rate)
+                                fit_trouble=fit_trouble, keys=ukeys, max_failure_rate=max_failure_rate,
+                                engine=engine)
     else:
         outs = run_many(list(unique.values()), reps, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, store=store,
                         progress=progress, fit_trouble=fit_trouble, keys=ukeys, max_failure_rate=max_failure_rate,
-                        desc="sweeping")
+                        desc="sweeping", **dict(engine or {}))
     by_key = dict(zip(ukeys, outs))
     return [by_key[k] for k in keys]
 
@@ -304,7 +320,7 @@ def _run_points(scenarios, reps, seed, n_jobs, chunk_size, store, progress, fit_
 def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
           store=None, progress: bool | None = None, fit_trouble: str = "failure", target_mcse: float | None = None,
           max_reps: int = 100_000, min_reps: int = 1000, max_failure_rate: float = 0.5,
-          return_results: bool = False):
+          return_results: bool = False, engine=None):
     """Simulate ``scenario`` at every point of ``grid``; one row per grid point and analysis.
 
     Parameters
@@ -330,6 +346,9 @@ def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -
         stopping, between ``min_reps`` and ``max_reps``).
     return_results : bool
         Also return the list of RunResults (one per grid point).
+    engine : mapping, optional
+        Further keyword arguments for :func:`simpower.run_many` (``backend``,
+        ``address``, ``timeout``, ``keep_records``).
 
     Returns
     -------
@@ -345,12 +364,13 @@ def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -
     >>> list(t["n"]), bool(abs(t["power"][1] - t["analytic_power"][1]) < 4 * t["mcse"][1])
     ([20, 64], True)
     """
-    entropy = normalize_seed(seed)
     if target_mcse is not None:
         target_mcse = check_target_mcse(target_mcse)
     settings, scenarios = grid_scenarios(scenario, grid)
-    results = _run_points(scenarios, reps, entropy, n_jobs, chunk_size, store, progress, fit_trouble, target_mcse,
-                          max_reps, min_reps, max_failure_rate)
+    with _opened(store) as mem:
+        entropy = normalize_seed(seed) if mem is None else seed_with_store(seed, mem)
+        results = _run_points(scenarios, reps, entropy, n_jobs, chunk_size, mem, progress, fit_trouble, target_mcse,
+                              max_reps, min_reps, max_failure_rate, engine)
     extra = None
     if target_mcse is not None:
         extra = lambda res, name, s: {"mcse_reached": res.extra["sequential"]["reached"]}  # noqa: E731
@@ -365,7 +385,7 @@ def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -
 
 def null_check(scenario, grid=None, reps: int = 10_000, *, seed=None, n_jobs: int | None = -1,
                chunk_size: int | None = None, store=None, progress: bool | None = None, fit_trouble: str = "failure",
-               max_failure_rate: float = 0.5) -> pd.DataFrame:
+               max_failure_rate: float = 0.5, engine=None) -> pd.DataFrame:
     """Type I error of each analysis with the effect set to its null, everything else kept.
 
     With a ``grid``, at every grid point. Each row gives the rejection rate
@@ -392,14 +412,15 @@ def null_check(scenario, grid=None, reps: int = 10_000, *, seed=None, n_jobs: in
     >>> bool(t["meets_bradley"][0]), bool(abs(t["type1_error"][0] - 0.05) < 4 * t["mcse"][0])
     (True, True)
     """
-    entropy = normalize_seed(seed)
     if grid is None:
         settings, scenarios = [{}], [scenario]
     else:
         settings, scenarios = grid_scenarios(scenario, grid)
     nulls = [s.null() for s in scenarios]
-    results = _run_points(nulls, reps, entropy, n_jobs, chunk_size, store, progress, fit_trouble, None, None, None,
-                          max_failure_rate)
+    with _opened(store) as mem:
+        entropy = normalize_seed(seed) if mem is None else seed_with_store(seed, mem)
+        results = _run_points(nulls, reps, entropy, n_jobs, chunk_size, mem, progress, fit_trouble, None, None, None,
+                              max_failure_rate, engine)
 
     def extra(res, name, s):
         a = res.scenario.alpha

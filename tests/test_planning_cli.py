@@ -136,3 +136,13 @@ def test_report_without_search_or_sweep_runs_the_design(tmp_path, monkeypatch, c
     assert main(argv) == 0
     md = (tmp_path / "r" / "report.md").read_text()
     assert "Power at the planned design" in md and "Sequential stopping" in md
+
+
+def test_store_folder_makes_the_search_resumable(scen, tmp_path, capsys):
+    argv = ["samplesize", str(scen), "--jobs", "1", "-q", "--seed", "5", "--store", str(tmp_path / "runs") + "/"]
+    assert main(argv) == 0
+    first = capsys.readouterr().out
+    files = list((tmp_path / "runs").glob("run-*.sqlite"))
+    assert len(files) == 1
+    assert main(argv) == 0
+    assert capsys.readouterr().out.splitlines()[0] == first.splitlines()[0]

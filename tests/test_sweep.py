@@ -137,3 +137,12 @@ def test_bad_values_and_shapes():
         Range(1, 2)
     with pytest.raises(ParameterError, match="from:to:step"):
         parse_axis("n=1:2:3:4")
+
+
+def test_sqlite_run_store_resumes_with_its_seed(tmp_path):
+    path = tmp_path / "sweep.sqlite"
+    a = sweep(SC, {"n": [10, 20]}, reps=400, seed=6, n_jobs=1, store=path)
+    b = sweep(SC, {"n": [10, 20]}, reps=400, n_jobs=1, store=path)     # no seed given: the store's is used
+    assert b.attrs["seed"] == 6 and list(a["power"]) == list(b["power"])
+    with pytest.raises(sp.StoreError, match="seed 6"):
+        sweep(SC, {"n": [10]}, reps=400, seed=7, n_jobs=1, store=path)

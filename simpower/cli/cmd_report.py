@@ -15,7 +15,7 @@ import sys
 from pathlib import Path
 
 from ..errors import ParameterError
-from .common import add_run_options, jobs_of, load_scenario, progress_of
+from .common import add_run_options, load_scenario
 
 DEFAULT_REPS = 2000
 DEFAULT_NULL_REPS = 10_000
@@ -30,6 +30,21 @@ def register(sub) -> None:
     p.add_argument("--formats", help="comma-separated: md,html (default both)")
     p.add_argument("--null-reps", type=int, help="replicates of the type I error check (default 10000)")
     p.set_defaults(func=main)
+
+
+def engine_of(sf, args, kind: str) -> dict:
+    """Store, failure threshold, jobs, progress and the engine's extra options for a planning command.
+
+    A ``--store`` folder gets one file per scenario and command kind (sweeps, searches and null
+    checks use different chunk sizes, which one store file cannot mix).
+    """
+    from ..components import fingerprint
+    from .common import engine_options
+
+    eng = engine_options(sf, args, fingerprint([sf.scenario.fingerprint(), kind]))
+    extra = {k: eng[k] for k in ("backend", "address", "timeout", "keep_records") if eng.get(k) is not None}
+    return {"store": eng["store"], "max_failure_rate": eng["max_failure_rate"], "n_jobs": eng["n_jobs"],
+            "progress": eng["progress"], "engine": extra}
 
 
 def seed_of(sf, args) -> int:
@@ -57,9 +72,8 @@ def run_null(sf, args, seed, settings, grid=None):
     from ..sweep import null_check
 
     return null_check(sf.scenario, grid if settings["at_grid"] else None, reps=settings["reps"], seed=seed,
-                      n_jobs=jobs_of(sf, args), progress=progress_of(args),
                       chunk_size=sf.run.get("chunk_size"), fit_trouble=sf.run.get("fit_trouble", "failure"),
-                      max_failure_rate=sf.run.get("max_failure_rate", 0.5))
+                      **engine_of(sf, args, "null_check"))
 
 
 def base_run(sf, args, seed):
@@ -67,13 +81,16 @@ def base_run(sf, args, seed):
     from ..sequential import SEQUENTIAL_FIELDS, read_block, run_to_mcse
 
     block = read_block("sequential", sf.blocks.get("sequential"), SEQUENTIAL_FIELDS)
-    common = dict(seed=seed, n_jobs=jobs_of(sf, args), progress=progress_of(args),
-                  fit_trouble=sf.run.get("fit_trouble", "failure"), max_failure_rate=sf.run.get("max_failure_rate", 0.5))
+    eng = engine_of(sf, args, "run")
+    common = dict(seed=seed, n_jobs=eng["n_jobs"], progress=eng["progress"],
+                  fit_trouble=sf.run.get("fit_trouble", "failure"), max_failure_rate=eng["max_failure_rate"],
+                  store=eng["store"])
     if block.get("target_mcse") is not None:
         kw = {k: block[k] for k in ("min_reps", "max_reps", "which") if k in block}
         return run_to_mcse(sf.scenario, block["target_mcse"], chunk_size=block.get("chunk_size", sf.run.get("chunk_size")),
-                           **kw, **common)
-    return run(sf.scenario, reps=sf.run.get("reps", DEFAULT_REPS), chunk_size=sf.run.get("chunk_size"), **common)
+                           engine=eng["engine"], **kw, **common)
+    return run(sf.scenario, reps=sf.run.get("reps", DEFAULT_REPS), chunk_size=sf.run.get("chunk_size"),
+               **eng["engine"], **common)
 
 
 def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None, run=None, x=None, formats=None,

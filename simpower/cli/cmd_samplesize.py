@@ -15,7 +15,7 @@ never reached is an error that reports the best power seen.
 from __future__ import annotations
 
 from ..errors import ParameterError
-from .common import add_run_options, jobs_of, load_scenario, progress_of
+from .common import add_run_options, load_scenario
 
 
 def register(sub) -> None:
@@ -66,9 +66,10 @@ def run_search(sf, args, seed):
         opts["low"], opts["high"] = _range(args.range)
     if opts.get("chunk_size") is None and sf.run.get("chunk_size"):
         opts["chunk_size"] = sf.run["chunk_size"]
-    return search(sf.scenario, find, seed=seed, n_jobs=jobs_of(sf, args), progress=progress_of(args),
-                  fit_trouble=sf.run.get("fit_trouble", "failure"),
-                  max_failure_rate=sf.run.get("max_failure_rate", 0.5), **opts)
+    from .cmd_report import engine_of
+
+    return search(sf.scenario, find, seed=seed, fit_trouble=sf.run.get("fit_trouble", "failure"),
+                  **engine_of(sf, args, "search"), **opts)
 
 
 def main(args) -> int:

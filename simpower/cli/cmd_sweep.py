@@ -13,7 +13,7 @@ spaced), ``from:to//count`` (log-spaced; rounded for integer parameters).
 from __future__ import annotations
 
 from ..errors import ParameterError
-from .common import add_run_options, jobs_of, load_scenario, progress_of
+from .common import add_run_options, load_scenario
 
 DEFAULT_REPS = 2000
 SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power", "path")
@@ -68,10 +68,10 @@ def run_sweep(sf, args, seed, grid, block):
         kw = {"target_mcse": target, "max_reps": getattr(args, "max_reps", None) or block.get("max_reps", 100_000),
               "min_reps": block.get("min_reps", 1000)}
     reps = getattr(args, "reps", None) or block.get("reps") or sf.run.get("reps", DEFAULT_REPS)
-    return sweep(sf.scenario, grid, reps=reps, seed=seed, n_jobs=jobs_of(sf, args), progress=progress_of(args),
-                 chunk_size=block.get("chunk_size", sf.run.get("chunk_size")),
-                 fit_trouble=sf.run.get("fit_trouble", "failure"),
-                 max_failure_rate=sf.run.get("max_failure_rate", 0.5), **kw)
+    from .cmd_report import engine_of
+
+    return sweep(sf.scenario, grid, reps=reps, seed=seed, chunk_size=block.get("chunk_size", sf.run.get("chunk_size")),
+                 fit_trouble=sf.run.get("fit_trouble", "failure"), **engine_of(sf, args, "sweep"), **kw)
 
 
 def format_table(table) -> str:
