@@ -233,3 +233,28 @@ def test_probability_index_is_unbiased_and_labelled():
     res = sp.run(sp.Scenario(proc, a, true_effects={"mann_whitney": truth}), reps=reps, seed=2, n_jobs=1)
     s = res.summaries["mann_whitney"]
     assert abs(s["bias"]) < 4 * s["bias_mcse"]
+
+
+def test_rank_rows_mixed_tied_and_untied_rows_match_scipy():
+    # reference: scipy.stats.rankdata (average ranks) and the tie term sum(t^3 - t)
+    rng = np.random.default_rng(11)
+    y = rng.standard_normal((30, 25))
+    y[::3] = np.round(y[::3], 1)  # every third row has ties, the others none
+    ranks, tie = rank_rows(y)
+    assert np.allclose(ranks, stats.rankdata(y, axis=1))
+    expect = [sum(c**3 - c for c in np.unique(row, return_counts=True)[1]) for row in y]
+    assert np.allclose(tie, expect)
+
+
+def test_mann_whitney_pvalue_only_estimand():
+    from simpower.processes.normal import NormalTwoArm
+
+    batch = NormalTwoArm(n=15, effect=0.4).draw_batch(np.random.default_rng(2), 40)
+    an = MannWhitney(estimand="none")
+    out = an.batch(batch)
+    assert set(out) == {"pvalue"}
+    for i in range(40):
+        d = batch.replicate(i)
+        ref = stats.mannwhitneyu(d["y"][d["arm"] == 1], d["y"][d["arm"] == 0], method="asymptotic").pvalue
+        assert out["pvalue"][i] == pytest.approx(ref, rel=1e-10)
+        assert an(d).pvalue == pytest.approx(ref, rel=1e-12)
