@@ -129,8 +129,10 @@ class NormalTwoArm(Process):
     def draw_batch(self, rng, size):
         n0, n1 = self.n, self.n1
         y = rng.standard_normal((size, n0 + n1))
-        y[:, :n0] *= self.sd
-        y[:, n0:] *= self.sd1
+        if self.sd != 1:
+            y[:, :n0] *= self.sd
+        if self.sd1 != 1:
+            y[:, n0:] *= self.sd1
         if self.mean0:
             y[:, :n0] += self.mean0
         y[:, n0:] += self.mean0 + self.effect
