@@ -33,7 +33,11 @@ from .processes.outcomes import (ContaminatedNormal, Fleishman, Gamma, Lognormal
                                  SkewNormal, StudentT)
 from .processes.repeated import RepeatedMeasures
 from .processes.survival import SurvivalTwoArm
+from .report import make_report
 from .result import Records, RunResult
+from .search import SearchResult, detectable_effect, required_n
+from .sequential import MemoryStore, point_key, run_many_to_mcse, run_to_mcse
+from .sweep import Grid, Range, null_check, sweep
 from .scenario import Scenario
 from .scenario_files import load as load_scenario
 from .summaries import bradley_liberal, paired_difference, wilson_interval
@@ -42,6 +46,9 @@ __all__ = [
     "__version__", "analytic",
     # scenario, running, results
     "Scenario", "load_scenario", "run", "run_many", "RunResult", "Records", "RunInterrupted",
+    # planning
+    "sweep", "Grid", "Range", "null_check", "required_n", "detectable_effect", "SearchResult", "run_to_mcse",
+    "run_many_to_mcse", "MemoryStore", "point_key", "make_report",
     # contracts
     "Process", "Analysis", "Outcome", "Missingness", "Batch", "TestResult", "as_test_result",
     # processes
