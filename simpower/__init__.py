@@ -33,7 +33,6 @@ from .processes.outcomes import (ContaminatedNormal, Fleishman, Gamma, Lognormal
                                  SkewNormal, StudentT)
 from .processes.repeated import RepeatedMeasures
 from .processes.survival import SurvivalTwoArm
-from .report import make_report
 from .result import Records, RunResult
 from .search import SearchResult, detectable_effect, required_n
 from .sequential import MemoryStore, point_key, run_many_to_mcse, run_to_mcse
@@ -41,6 +40,17 @@ from .sweep import Grid, Range, null_check, sweep
 from .scenario import Scenario
 from .scenario_files import load as load_scenario
 from .summaries import bradley_liberal, paired_difference, wilson_interval
+
+
+
+def __getattr__(name):
+    # matplotlib is imported only when a report is made (keeps `import simpower` and workers light)
+    if name == "make_report":
+        from .report import make_report
+
+        return make_report
+    raise AttributeError(f"module 'simpower' has no attribute {name!r}")
+
 
 __all__ = [
     "__version__", "analytic",
