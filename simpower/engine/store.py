@@ -130,6 +130,9 @@ def check_file(path: Path) -> None:
         head = fh.read(100)
     if len(head) < 100 or head[:16] != SQLITE_MAGIC:
         raise StoreError(f"{path}: not a simpower run store (not a SQLite file).")
+    wal = Path(str(path) + "-wal")
+    if wal.exists() and wal.stat().st_size > 0:
+        return  # a WAL to replay (e.g. after kill -9 during a checkpoint): SQLite's recovery decides
     page = struct.unpack(">H", head[16:18])[0]
     page = 65536 if page == 1 else page
     pages = struct.unpack(">I", head[28:32])[0]
@@ -356,7 +359,7 @@ class RunStore:
             self._init_schema(command)
             if mode == "a" and background:
                 self._writer = _Writer(self.path, sync)
-                weakref.finalize(self, _shutdown, self._writer)
+                self._finalizer = weakref.finalize(self, _shutdown, self._writer)
 
     # -- plumbing ----------------------------------------------------------------
     @contextmanager
@@ -416,6 +419,7 @@ class RunStore:
         try:
             if self._writer is not None:
                 writer, self._writer = self._writer, None
+                self._finalizer.detach()
                 try:
                     writer.flush()
                 finally:
