@@ -8,7 +8,6 @@ and numpy.frombuffer, independently of simpower's reader.
 from __future__ import annotations
 
 import json
-import os
 import sqlite3
 import zlib
 
