@@ -84,7 +84,10 @@ def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | No
     path = Path(raw)
     if raw.endswith(("/", "\\")) or path.is_dir():
         path = path / f"run-{fingerprint}.sqlite"
-    with RunStore(path, command=sys.argv[1:], sync=block.get("sync", "normal"), background=False):
+    sync = block.get("sync")
+    if sync not in (None, "normal", "full"):
+        raise ParameterError(f"`store.sync` must be 'normal' or 'full'; got {sync!r}.")
+    with RunStore(path, command=sys.argv[1:], sync=sync, background=False):
         pass
     return str(path)
 

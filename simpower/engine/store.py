@@ -318,8 +318,9 @@ class RunStore:
         'a' reads and appends (a run); 'r' reads only (never writes, never creates).
     command : list of str, optional
         The command line that started the run, kept so ``simpower resume`` can rerun it.
-    sync : {'normal', 'full'}
-        SQLite ``synchronous`` setting: 'normal' survives a killed process (kill -9)
+    sync : {'normal', 'full'}, optional
+        SQLite ``synchronous`` setting, remembered in the store (None: the
+        stored choice, else 'normal'): 'normal' survives a killed process (kill -9)
         and stays valid after a power cut (losing the last commits); 'full'
         flushes every commit to the disk.
     check : bool
@@ -329,11 +330,11 @@ class RunStore:
         :meth:`flush` and :meth:`close` wait for the commits.
     """
 
-    def __init__(self, path, mode: str = "a", command: list[str] | None = None, sync: str = "normal",
+    def __init__(self, path, mode: str = "a", command: list[str] | None = None, sync: str | None = None,
                  check: bool = False, background: bool = True):
         if mode not in ("a", "r"):
             raise StoreError(f"`mode` must be 'a' or 'r'; got {mode!r}.")
-        if sync not in ("normal", "full"):
+        if sync not in (None, "normal", "full"):
             raise StoreError(f"`sync` must be 'normal' or 'full'; got {sync!r}.")
         self.path = Path(path)
         self.mode = mode
@@ -351,15 +352,28 @@ class RunStore:
             if mode == "r":
                 self._conn = sqlite3.connect(f"file:{self.path.resolve()}?mode=ro", uri=True)
             else:
-                self._conn = _connect(self.path, sync)
+                self._conn = _connect(self.path, sync or "normal")
             if check:
                 row = self._conn.execute("PRAGMA quick_check").fetchone()
                 if row[0] != "ok":
                     raise StoreError(f"{self.path}: the store is corrupted (SQLite: {row[0]}).")
             self._init_schema(command)
+            if mode == "a":
+                sync = self._settle_sync(sync)
             if mode == "a" and background:
                 self._writer = _Writer(self.path, sync)
                 self._finalizer = weakref.finalize(self, _shutdown, self._writer)
+
+    def _settle_sync(self, sync: str | None) -> str:
+        """The sync setting: the one given (then remembered) or the stored one."""
+        row = self._conn.execute("SELECT value FROM meta WHERE key='sync'").fetchone()
+        if sync is None:
+            sync = row[0] if row is not None and row[0] in ("normal", "full") else "normal"
+        elif row is None or row[0] != sync:
+            with self._transaction() as c:
+                c.execute("INSERT OR REPLACE INTO meta VALUES ('sync', ?)", (sync,))
+        self._conn.execute(f"PRAGMA synchronous={sync.upper()}")
+        return sync
 
     # -- plumbing ----------------------------------------------------------------
     @contextmanager
