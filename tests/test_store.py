@@ -237,3 +237,23 @@ def test_cli_store_export_and_mismatch(tmp_path, capsys):
     assert len(err.splitlines()) == 1 and "another scenario" in err and "process.n: 15 -> 16" in err
     assert main(["resume", str(store), "--status"]) == 0
     assert "900 of 900 replicates (complete)" in capsys.readouterr().out
+
+
+def test_scenario_file_store_and_execution_blocks(tmp_path, capsys):
+    from simpower.cli.main import main
+
+    body = ('seed = 3\nreps = 400\n[process]\ntype = "normal_two_arm"\nn = 15\n[analysis]\ntype = "t_test"\n'
+            '[store]\npath = "runs/"\nsync = "full"\n[execution]\nbackend = "serial"\n')
+    toml = tmp_path / "s.toml"
+    toml.write_text(body)
+    assert main(["run", str(toml), "-q"]) == 0
+    out = capsys.readouterr().out
+    files = list((tmp_path / "runs").glob("run-*.sqlite"))  # relative to the scenario file
+    assert len(files) == 1 and str(files[0].name) in out
+    with open_store(files[0]) as st:
+        assert st.meta()["sync"] == "full" and len(st.done_chunks()) == 1
+    files[0].unlink()
+    toml.write_text(body.replace("path =", "pathh ="))
+    assert main(["run", str(toml), "-q"]) == 2
+    err = capsys.readouterr().err
+    assert "`store.pathh` is not a field of [store]" in err and "path" in err

@@ -67,6 +67,8 @@ def _block(sf: ScenarioFile, name: str, fields: tuple[str, ...]) -> dict:
 def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | None:
     """The run store path for this command (None without --store or a [store] block).
 
+    ``--store`` is relative to the working folder, ``[store] path`` to the scenario file's.
+
     A folder (a path ending in '/' or an existing directory) gets the file
     ``run-<fingerprint>.sqlite``; give the fingerprint of what the command
     runs (a sweep: of the whole grid). The store is created if absent, and
@@ -77,11 +79,15 @@ def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | No
     from ..engine.store import RunStore
 
     block = _block(sf, "store", STORE_FIELDS) if sf is not None else {}
-    raw = getattr(args, "store", None) or block.get("path")
+    raw = getattr(args, "store", None)
+    path = Path(str(raw)) if raw else None
+    if not raw and block.get("path"):
+        raw = str(block["path"])
+        path = Path(raw)
+        if not path.is_absolute() and sf is not None and sf.path is not None:
+            path = sf.path.resolve().parent / path  # [store] path is relative to the scenario file
     if not raw:
         return None
-    raw = str(raw)
-    path = Path(raw)
     if raw.endswith(("/", "\\")) or path.is_dir():
         path = path / f"run-{fingerprint}.sqlite"
     sync = block.get("sync")
