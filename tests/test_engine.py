@@ -211,3 +211,38 @@ def test_run_chunk_is_pure_function_of_seed_point_chunk():
 def test_run_bad_input(bad, msg):
     with pytest.raises(sp.ParameterError, match=msg):
         sp.run(_two_arm(), **{"reps": 10, **bad})
+
+
+class _BrokenBatchT(sp.TTest):
+    """A t-test whose batch path raises: the engine must fall back, not crash."""
+
+    def batch(self, batch):
+        raise FloatingPointError("broken batch")
+
+
+def test_batch_path_that_raises_falls_back_to_per_replicate():
+    sc = sp.Scenario(sp.NormalTwoArm(n=10, effect=0.5), analyses={"ok": sp.TTest(), "broken": _BrokenBatchT()})
+    res = sp.run(sc, reps=300, seed=5, n_jobs=1)
+    assert res.paths["ok"] == "batch"
+    assert res.paths["broken"] == "per-replicate (batch path raised FloatingPointError)"
+    # same data, same test: the per-replicate answers equal the batch ones
+    assert np.allclose(res.records["broken"].pvalue, res.records["ok"].pvalue, rtol=1e-9)
+    assert res.summaries["broken"]["n_failed"] == 0
+
+
+def test_default_jobs_probe_gives_the_same_numbers_as_one_job():
+    # n_jobs left at its default (-1) runs a fast vectorised scenario's first chunk in this
+    # process and only starts workers if that pays; the numbers must not depend on it.
+    sc = _two_arm()
+    a = sp.run(sc, reps=5000, seed=21, chunk_size=1000)
+    b = sp.run(sc, reps=5000, seed=21, chunk_size=1000, n_jobs=1)
+    assert np.array_equal(a.pvalues, b.pvalues)
+
+
+def test_probe_starts_workers_when_tasks_are_slow():
+    import time
+
+    from simpower.engine.executor import execute
+
+    out = list(execute(time.sleep, [(0.4,)] * 6, n_jobs=-1, probe=True))
+    assert out == [None] * 6

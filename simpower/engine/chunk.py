@@ -13,7 +13,10 @@ Failure causes are strings: ``"error:<ExceptionType>"`` (the analysis raised),
 ``"nonfinite_pvalue"``, ``"warning:<WarningType>"`` (fit trouble: the analysis
 warned; its values are kept and the run's policy decides), ``"timeout"`` (a
 per-replicate call ran past the time limit). A failing replicate never stops
-the chunk; the first message of each cause is kept.
+the chunk; the first message of each cause is kept. A batch path that raises
+(a bug, or data it cannot handle) is not fatal either: that analysis is redone
+replicate by replicate for the chunk, so each failing replicate is counted by
+cause, and the path is reported as "per-replicate (batch path raised ...)".
 
 Time limit: with ``timeout`` set, every per-replicate *analysis* call is
 interrupted by ``SIGALRM`` (``signal.setitimer``) after ``timeout`` seconds
@@ -190,6 +193,16 @@ def _apply_batch(analysis, batch, rec, causes: _Causes, hyp: dict, name: str):
         rec["status"][bad] = causes.code("nonfinite_pvalue", "p-value was not finite (e.g. zero variance)")
 
 
+def _batch_ok(analysis, batch) -> bool:
+    """Whether the analysis's batch path applies to this batch (a layout check that raises means no)."""
+    if not analysis.has_batch:
+        return False
+    try:
+        return bool(analysis.supports_batch(batch))
+    except Exception:
+        return False
+
+
 def run_chunk(scenario, entropy: int, point: int, chunk: int, size: int,
               timeout: float | None = None) -> ChunkOutput:
     """Simulate and analyse ``size`` replicates of ``scenario``; never raises for a failing replicate.
@@ -220,13 +233,19 @@ def run_chunk(scenario, entropy: int, point: int, chunk: int, size: int,
             batch = process.draw_batch(rng, size)
             for name, analysis in analyses.items():
                 rec = records[name]
-                if analysis.has_batch and analysis.supports_batch(batch):
-                    paths[name] = "batch"
-                    _apply_batch(analysis, batch, rec, causes, hyp, name)
+                if _batch_ok(analysis, batch):
+                    try:
+                        _apply_batch(analysis, batch, rec, causes, hyp, name)
+                        paths[name] = "batch"
+                        continue
+                    except Exception as exc:  # a batch path that raises: redo this chunk replicate by replicate
+                        rec = records[name] = _empty(size)
+                        hyp.pop(name, None)
+                        paths[name] = f"per-replicate (batch path raised {type(exc).__name__})"
                 else:
                     paths[name] = "per-replicate"
-                    for i in range(size):
-                        _apply_one(analysis, batch.replicate(i), rec, i, causes, hyp, name, limit)
+                for i in range(size):
+                    _apply_one(analysis, batch.replicate(i), rec, i, causes, hyp, name, limit)
         else:
             paths = {name: "per-replicate" for name in analyses}
             for i in range(size):

@@ -16,6 +16,7 @@ numbers never depend on the executor (see :mod:`simpower.engine.chunk`).
 from __future__ import annotations
 
 import os
+import time
 from itertools import islice
 from typing import Any, Callable, Iterator
 
@@ -105,8 +106,12 @@ def _dask_results(fn: Callable, tasks: list[tuple], address, n_jobs) -> Iterator
                 cluster.close()
 
 
+#: estimated cost (seconds) of starting a local worker pool and importing simpower in it
+POOL_START_SECONDS = 1.0
+
+
 def execute(fn: Callable, tasks: list[tuple], n_jobs: int | None = -1, backend: str | None = None,
-            address: Any = None) -> Iterator:
+            address: Any = None, probe: bool = False) -> Iterator:
     """Yield ``fn(*task)`` for each task, in completion order.
 
     Parameters
@@ -121,6 +126,13 @@ def execute(fn: Callable, tasks: list[tuple], n_jobs: int | None = -1, backend: 
     address : str or dask.distributed.Client, optional
         The dask scheduler (``tcp://host:8786``) for ``backend='dask'``.
 
+    probe : bool
+        Run the first task in this process and start a worker pool for the
+        rest only if that is expected to save time (``POOL_START_SECONDS``
+        against the remaining work spread over the workers). The runner asks
+        for it for fast vectorised scenarios when ``n_jobs`` was left at its
+        default; it changes where tasks run, never their numbers.
+
     Close the generator (or let it finish) to stop the workers early.
     """
     backend = check_backend(backend)
@@ -134,6 +146,16 @@ def execute(fn: Callable, tasks: list[tuple], n_jobs: int | None = -1, backend: 
         for t in tasks:
             yield fn(*t)
         return
+    if probe:
+        t0 = time.perf_counter()
+        yield fn(*tasks[0])
+        first = time.perf_counter() - t0
+        tasks = tasks[1:]
+        rest = first * len(tasks)
+        if rest - (POOL_START_SECONDS + rest / min(jobs, len(tasks))) <= 0:
+            for t in tasks:
+                yield fn(*t)
+            return
     from joblib import Parallel, delayed
 
     par = Parallel(n_jobs=min(jobs, len(tasks)), backend=backend or "loky", return_as="generator_unordered")

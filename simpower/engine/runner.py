@@ -269,7 +269,9 @@ def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_
     total = sum(t[4] for t in tasks)
     t0 = time.perf_counter()
     bar = _progress(total + reused, progress, desc, initial=reused)
-    gen = execute(run_chunk, tasks, n_jobs=n_jobs, backend=backend, address=address)
+    fast = all(sc.process.has_batch and all(a.has_batch for a in sc.analyses.values()) for sc in scenarios)
+    probe = fast and backend is None and n_jobs in (None, -1)
+    gen = execute(run_chunk, tasks, n_jobs=n_jobs, backend=backend, address=address, probe=probe)
     unenforced = False
     try:
         for out in gen:
