@@ -239,10 +239,26 @@ def test_default_jobs_probe_gives_the_same_numbers_as_one_job():
     assert np.array_equal(a.pvalues, b.pvalues)
 
 
-def test_probe_starts_workers_when_tasks_are_slow():
+def test_probe_starts_workers_only_when_it_pays(monkeypatch):
     import time
 
-    from simpower.engine.executor import execute
+    import joblib
 
-    out = list(execute(time.sleep, [(0.4,)] * 6, n_jobs=-1, probe=True))
-    assert out == [None] * 6
+    from simpower.engine import executor
+
+    started = []
+    real = joblib.Parallel
+
+    class Counting(real):
+        def __init__(self, *a, **k):
+            started.append(k.get("n_jobs"))
+            super().__init__(*a, **k)
+
+    monkeypatch.setattr(joblib, "Parallel", Counting)
+    monkeypatch.setattr(executor, "effective_jobs", lambda n: 2)
+    # tiny tasks: 1 s of pool start-up cannot pay for itself
+    assert list(executor.execute(time.sleep, [(0.0,)] * 6, n_jobs=-1, probe=True)) == [None] * 6
+    assert started == []
+    # 0.6 s tasks: the remaining 2.4 s over 2 workers plus start-up (2.2 s) beats 2.4 s serially
+    assert list(executor.execute(time.sleep, [(0.6,)] * 5, n_jobs=-1, probe=True)) == [None] * 5
+    assert started == [2]
