@@ -148,6 +148,9 @@ def summarize_records(pvalue: np.ndarray, status: np.ndarray, causes: list[str],
     stay in the denominator as non-rejections. Other causes (exceptions,
     non-finite p-values) are always failures. Both figures are reported:
     ``power`` (failures left out) and ``power_failures_as_nonrejections``.
+    Estimate measures (bias, SEs, coverage) leave out every replicate with a
+    cause, fit trouble included, under either policy: a fit that warned
+    (e.g. a non-converged logistic fit at +-23) has no trustworthy estimate.
     """
     r = pvalue.size
     status = np.asarray(status)
@@ -189,6 +192,6 @@ def summarize_records(pvalue: np.ndarray, status: np.ndarray, causes: list[str],
         "fit_trouble_policy": fit_trouble,
     }
     if estimate is not None:
-        keep = used & ~is_warning if fit_trouble == "failure" else used
+        keep = used & ~is_warning  # estimates of fits that warned are unreliable under either policy
         out.update(estimate_summary(estimate[keep], se[keep], ci_low[keep], ci_high[keep], true_effect))
     return out

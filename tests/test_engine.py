@@ -152,7 +152,8 @@ def test_warnings_are_fit_trouble_with_policy():
     def warns(data):
         if data["y"][0] > 0:
             warnings.warn("did not converge", RuntimeWarning)
-        return 0.001
+            return {"pvalue": 0.001, "estimate": 100.0}  # a runaway estimate of a failed fit
+        return {"pvalue": 0.001, "estimate": 1.0}
 
     sc = sp.Scenario(draw, warns)
     fail = sp.run(sc, reps=1000, seed=4, n_jobs=1, fit_trouble="failure").summaries[sc.primary]
@@ -161,6 +162,9 @@ def test_warnings_are_fit_trouble_with_policy():
     assert 400 < k < 600 and fail["failures"] == {"warning:RuntimeWarning": k}
     assert fail["power"] == 1.0 and fail["n_ok"] == 1000 - k
     assert nonrej["n_ok"] == 1000 and nonrej["power"] == pytest.approx((1000 - k) / 1000)
+    # estimates of fits that warned are left out of the estimate measures under both policies
+    assert fail["mean_estimate"] == 1.0 and nonrej["mean_estimate"] == 1.0
+    assert fail["n_estimate"] == nonrej["n_estimate"] == 1000 - k
 
 
 def test_power_summary_formulas():

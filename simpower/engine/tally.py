@@ -115,7 +115,7 @@ def tally_analysis(rec: dict[str, np.ndarray], causes: list[str], alpha: float, 
     t.n_used = int(used.sum())
     t.n_fit_trouble = int(is_warning.sum())
     t.rejections = int(reject.sum())
-    keep = used & ~is_warning if fit_trouble == "failure" else used
+    keep = used & ~is_warning  # estimates of fits that warned are unreliable under either policy
     est = rec["estimate"][keep]
     t.est = Moments.of(est[np.isfinite(est)])
     se = rec["se"][keep]
