@@ -146,3 +146,21 @@ def test_mar_on_a_column_the_design_lacks():
         TwoArm(n=10, missing=MAR(rate=0.1))
     with pytest.raises(sp.ParameterError, match="`on` = 'visit'"):
         MAR(rate=0.1, on="visit").mask(np.random.default_rng(1), np.zeros((2, 5)), {"baseline": np.zeros((2, 5))})
+
+
+@pytest.mark.parametrize("make", [
+    lambda m: sp.BinaryTwoArm(n=20, p0=0.3, odds_ratio=2.0, missing=m),
+    lambda m: sp.ClusterTrial(clusters=4, cluster_size=5, icc=0.1, missing=m),
+])
+def test_mar_on_a_missing_column_is_refused_at_construction(make):
+    # the MAR mechanism depends on `baseline`, which these designs do not have
+    with pytest.raises(sp.ParameterError, match="`missing.on` = 'baseline' is not a column of"):
+        make(sp.MAR(rate=0.2))
+
+
+def test_mar_on_baseline_visit_is_accepted_for_repeated_measures():
+    p = sp.RepeatedMeasures(n=10, visits=3, rho=0.5, missing=sp.MAR(rate=0.2))
+    d = p(np.random.default_rng(0))
+    assert np.isnan(d["y"]).any()
+    with pytest.raises(sp.ParameterError, match="`missing.on` = 'baseline'"):
+        sp.RepeatedMeasures(n=10, visits=3, rho=0.5, baseline=False, missing=sp.MAR(rate=0.2))

@@ -26,6 +26,10 @@ from ..components import Component
 
 FIELDS = ("pvalue", "estimate", "se", "ci_low", "ci_high")
 
+#: warning categories that are not fit trouble (library housekeeping); any other warning an
+#: analysis raises is recorded per replicate as ``warning:<Type>``
+IGNORED_WARNINGS = (DeprecationWarning, PendingDeprecationWarning, FutureWarning, ImportWarning, ResourceWarning)
+
 ALTERNATIVE = Choice(("two-sided", "greater", "less"))
 
 

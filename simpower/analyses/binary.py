@@ -22,10 +22,7 @@ from statsmodels.tools.sm_exceptions import PerfectSeparationWarning
 
 from .. import analytic
 from .._validation import Bool
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
-
-#: warning types the engine does not count as fit trouble (mirrors simpower.engine.chunk)
-_IGNORED = (DeprecationWarning, PendingDeprecationWarning, FutureWarning, ImportWarning, ResourceWarning)
+from .base import ALTERNATIVE, CI_LEVEL, IGNORED_WARNINGS, Analysis, TestResult
 
 
 # -- 2x2 tables --------------------------------------------------------------
@@ -131,7 +128,7 @@ def rowwise(analysis, batch, rows) -> tuple[dict[str, np.ndarray], dict[str, np.
         if not math.isfinite(res.pvalue):
             continue
         for w in caught:
-            if not issubclass(w.category, _IGNORED):
+            if not issubclass(w.category, IGNORED_WARNINGS):
                 mark(f"warning:{w.category.__name__}", i, str(w.message))
                 break
     return fields, trouble, messages

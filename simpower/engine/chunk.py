@@ -43,9 +43,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..analyses.base import FIELDS, as_test_result
-
-IGNORED_WARNINGS = (DeprecationWarning, PendingDeprecationWarning, FutureWarning, ImportWarning, ResourceWarning)
+from ..analyses.base import FIELDS, IGNORED_WARNINGS, as_test_result
 TIMEOUT = "timeout"
 
 

@@ -32,7 +32,7 @@ from scipy import optimize
 from .._validation import Anything, Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
-from .base import Batch, Process
+from .base import Batch, Process, check_missing_columns
 from .outcomes import Described, Normal
 
 POSITIVE = Real(0.0, low_open=True)
@@ -166,13 +166,9 @@ def _apply_missing(missing, rng, y, covariates, per_rep, info):
 
 
 def _check_missing(missing, available, owner):
-    if missing is None:
-        return
-    for col in getattr(missing, "requires", ()):
-        if col not in available:
-            hint = "; set `baseline_corr` to add a baseline column" if col == "baseline" else ""
-            raise ParameterError(f"`missing.on` = {col!r} is not a column of {owner} (it has "
-                                 f"{', '.join(sorted(available))}){hint}.")
+    needs_baseline = "baseline" in getattr(missing, "requires", ()) and "baseline" not in available
+    hint = "; set `baseline_corr` to add a baseline column" if needs_baseline else ""
+    check_missing_columns(missing, available, owner, hint)
 
 
 def _describe_effect(effect, effect_type, outcome):

@@ -114,6 +114,22 @@ class Process(Component):
         return None
 
 
+def check_missing_columns(missing, available, owner: str, hint: str = "") -> None:
+    """Refuse, at construction, a missingness mechanism that needs a column the design lacks.
+
+    ``missing.requires`` names the covariates its mask depends on (e.g. MAR on
+    ``baseline``); ``available`` is what the process passes to ``mask``.
+    """
+    if missing is None:
+        return
+    from ..errors import ParameterError
+
+    for col in getattr(missing, "requires", ()):
+        if col not in available:
+            raise ParameterError(f"`missing.on` = {col!r} is not a column of {owner} (it has "
+                                 f"{', '.join(sorted(available))}){hint}.")
+
+
 class Missingness(Component):
     """Base class of missing-outcome mechanisms (MCAR, MAR, MNAR, ...), used as a nested component.
 

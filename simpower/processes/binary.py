@@ -21,7 +21,7 @@ import numpy as np
 from .._validation import Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
-from .base import Batch, Process
+from .base import Batch, Process, check_missing_columns
 
 POSITIVE = Real(0.0, low_open=True)
 EFFECTS = ("odds_ratio", "risk_ratio", "risk_difference")
@@ -96,6 +96,7 @@ class BinaryTwoArm(Process):
     size_param = "n"
 
     def _check(self):
+        check_missing_columns(self.missing, {"arm"}, self.name)
         given = [k for k in EFFECTS if self._p[k] is not None]
         if len(given) != 1:
             got = "none" if not given else " and ".join(f"`{k}`" for k in given)

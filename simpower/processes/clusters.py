@@ -32,7 +32,7 @@ import numpy as np
 from .._validation import Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
-from .base import Batch, Process
+from .base import Batch, Process, check_missing_columns
 
 POSITIVE = Real(0.0, low_open=True)
 
@@ -203,6 +203,7 @@ class ClusterTrial(Process):
                 "slope_sd": 0.0, "missing": None}
 
     def _check(self):
+        check_missing_columns(self.missing, {"arm", "cluster"}, self.name)
         if self.cluster_size_cv == 0 and not float(self.cluster_size).is_integer():
             raise ParameterError(
                 f"`cluster_size` must be a whole number when cluster_size_cv = 0 (equal clusters); "

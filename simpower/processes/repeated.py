@@ -24,7 +24,7 @@ from scipy import optimize, special, stats
 from .._validation import Bool, Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
-from .base import Batch, Process
+from .base import Batch, Process, check_missing_columns
 
 POSITIVE = Real(0.0, low_open=True)
 RATE = Real(0.0, 1.0, high_open=True, optional=True)
@@ -128,6 +128,8 @@ class RepeatedMeasures(Process):
                 "missing": None}
 
     def _check(self):
+        cols = {"arm", "subject", "visit"} | ({"baseline"} if self.baseline else set())
+        check_missing_columns(self.missing, cols, self.name)
         k = self.visits
         if self.correlation == "exchangeable" and self.rho <= -1.0 / (k - 1):
             raise ParameterError(
