@@ -156,7 +156,8 @@ class Component:
         """A data-only description (JSON/TOML-able) from which the registry rebuilds it."""
         out: dict[str, Any] = {"type": self.name or f"{type(self).__module__}:{type(self).__qualname__}"}
         for k, v in self._p.items():
-            out[k] = to_plain(v)
+            if v is not None:  # an unset optional parameter: TOML has no null, and rebuilding restores it
+                out[k] = to_plain(v)
         return out
 
     def fingerprint(self) -> str:
