@@ -36,7 +36,6 @@ import json
 import math
 import os
 import platform
-import resource
 import subprocess
 import sys
 import time

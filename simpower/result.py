@@ -94,17 +94,21 @@ class RunResult:
         for name, s in self.summaries.items():
             s["true_effect"] = scenario.true_effect_for(name)
         for name, s in self.summaries.items():
-            s["path"] = paths.get(name, "")
-            a = self.analytic.get(name)
-            s["analytic_power"] = a
-            if a is not None and s["n_ok"] > 0:
-                # distance in MCSE units, with the MCSE at the analytic value (finite at p = 0 or 1)
-                m = math.sqrt(max(a * (1 - a), 1e-12) / s["n_ok"])
-                s["distance_mcse"] = (s["power"] - a) / m
-                s["cross_check_flag"] = abs(s["distance_mcse"]) > CROSS_CHECK_FLAG
+            self._cross_check(name, s)
             r = records[name]
             if r.pvalues is not None:
                 s["per_hypothesis"] = self._hypotheses(r)
+
+    def _cross_check(self, name: str, s: dict[str, Any]) -> None:
+        """Add the path, the analytic power and the distance in MCSE units to summary ``s``."""
+        s["path"] = self.paths.get(name, "")
+        a = self.analytic.get(name)
+        s["analytic_power"] = a
+        if a is not None and s["n_ok"] > 0:
+            # distance in MCSE units, with the MCSE at the analytic value (finite at p = 0 or 1)
+            m = math.sqrt(max(a * (1 - a), 1e-12) / s["n_ok"])
+            s["distance_mcse"] = (s["power"] - a) / m
+            s["cross_check_flag"] = abs(s["distance_mcse"]) > CROSS_CHECK_FLAG
 
     def _hypotheses(self, r: Records) -> dict[str, Any]:
         ok = r.status == 0

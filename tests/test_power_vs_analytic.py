@@ -9,7 +9,6 @@ White & Crowther 2019). Tolerance: 4 MCSE.
 import math
 
 import numpy as np
-import pytest
 
 import simpower as sp
 from simpower.validation import run_battery

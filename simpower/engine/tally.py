@@ -273,13 +273,7 @@ class StreamedResult(RunResult):
             truth = tally.truth[name]
             s = summary_of(t, fit_trouble, truth)
             s["true_effect"] = truth
-            s["path"] = paths.get(name, "")
-            a = self.analytic.get(name)
-            s["analytic_power"] = a
-            if a is not None and s["n_ok"] > 0:
-                m = math.sqrt(max(a * (1 - a), 1e-12) / s["n_ok"])
-                s["distance_mcse"] = (s["power"] - a) / m
-                s["cross_check_flag"] = abs(s["distance_mcse"]) > 3.0
+            self._cross_check(name, s)
             if t.hyp_rej is not None:
                 s["per_hypothesis"] = self._hypotheses_of(t, hypotheses.get(name, []))
             self.summaries[name] = s
