@@ -25,10 +25,11 @@ def main(args) -> int:
                   fit_trouble=args.fit_trouble or sf.run.get("fit_trouble", "failure"), **opts)
     except RunInterrupted:
         raise RunInterrupted(f"interrupted; {resume_hint(opts['store'])}.") from None
-    res.extra["command"] = command_line()
+    res.extra["command"] = command_line(res.seed)
     if opts["store"]:
         res.extra["store"] = opts["store"]
     print(res)
+    print(f"\nTo reproduce these numbers exactly: {res.extra['command']}")
     if opts["store"]:
         print(f"\nRun store: {opts['store']} (simpower export {opts['store']} OUT.csv)")
     if args.json:

@@ -154,7 +154,11 @@ def progress_of(args) -> bool | None:
     return False if args.quiet else None
 
 
-def command_line() -> str:
+def command_line(seed: int | None = None) -> str:
+    """This command as typed; with ``seed``, pinned to that seed (added when no --seed was given)."""
     import shlex
 
-    return "simpower " + " ".join(shlex.quote(a) for a in sys.argv[1:])
+    argv = list(sys.argv[1:])
+    if seed is not None and not any(a == "--seed" or a.startswith("--seed=") for a in argv):
+        argv += ["--seed", str(seed)]
+    return "simpower " + " ".join(shlex.quote(a) for a in argv)
