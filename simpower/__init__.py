@@ -21,6 +21,7 @@ from .analyses.resampling import BootstrapCI, LogT, PermutationTest
 from .analyses.survival import Cox, LogRank
 from .analyses.ttests import PairedT, TTest, WelchT, ZTest
 from .engine import RunInterrupted, run, run_many
+from .engine.store import RunStore, open_store
 from .errors import ParameterError, RunError, ScenarioFileError, SimpowerError, StoreError, UnknownNameError
 from .processes.arms import MultiArm, TwoArm
 from .processes.base import Batch, Missingness, Outcome, Process
@@ -55,7 +56,7 @@ def __getattr__(name):
 __all__ = [
     "__version__", "analytic",
     # scenario, running, results
-    "Scenario", "load_scenario", "run", "run_many", "RunResult", "Records", "RunInterrupted",
+    "Scenario", "load_scenario", "run", "run_many", "RunResult", "Records", "RunInterrupted", "RunStore", "open_store",
     # planning
     "sweep", "Grid", "Range", "null_check", "required_n", "detectable_effect", "SearchResult", "run_to_mcse",
     "run_many_to_mcse", "MemoryStore", "point_key", "make_report",
