@@ -9,13 +9,13 @@ Monte Carlo tolerances are 4 MCSE, MCSE = sqrt(p(1-p)/R) for a rate (Morris, Whi
 """
 
 import math
-import warnings
 
 import numpy as np
 import pytest
 from scipy import stats
 
 import simpower as sp
+from _helpers import per_replicate as _per_rep
 from simpower.analyses.binary import ChiSquare, FisherExact, Logistic, TwoProportions, fisher_pvalues
 from simpower.engine.chunk import chunk_seed
 from simpower.errors import ParameterError
@@ -32,18 +32,6 @@ class _Hide(Missingness):
         return rng.random(np.shape(y)) < 0.2
 
 
-def _per_rep(analysis, batch):
-    """Per-replicate fields and the first counted warning of each replicate (as the engine records it)."""
-    out = {f: np.full(batch.size, np.nan) for f in ("pvalue", "estimate", "se", "ci_low", "ci_high")}
-    warned = np.zeros(batch.size, object)
-    for i in range(batch.size):
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always")
-            r = analysis(batch.replicate(i))
-        for f in out:
-            out[f][i] = getattr(r, f)
-        warned[i] = next((f"warning:{w.category.__name__}" for w in caught), "")
-    return out, warned
 
 
 # -- the process -------------------------------------------------------------------------------------

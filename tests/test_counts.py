@@ -7,13 +7,13 @@ practice), Bradley's (1978) liberal criterion for type I error. Monte Carlo tole
 """
 
 import math
-import warnings
 
 import numpy as np
 import pytest
 from scipy import stats
 
 import simpower as sp
+from _helpers import per_replicate as _per_rep
 from simpower.analyses.counts import NegBinGLM, PoissonGLM
 from simpower.errors import ParameterError
 from simpower.processes.counts import CountTwoArm
@@ -74,17 +74,6 @@ def test_negative_binomial_variance_is_mu_plus_mu2_over_k(k):
     assert abs(m.mean() - mu) < 4 * m.std(ddof=1) / math.sqrt(m.size)
 
 
-def _per_rep(analysis, batch):
-    out = {f: np.full(batch.size, np.nan) for f in ("pvalue", "estimate", "se", "ci_low", "ci_high")}
-    warned = np.zeros(batch.size, object)
-    for i in range(batch.size):
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always")
-            r = analysis(batch.replicate(i))
-        for f in out:
-            out[f][i] = getattr(r, f)
-        warned[i] = next((f"warning:{w.category.__name__}" for w in caught), "")
-    return out, warned
 
 
 @pytest.mark.parametrize("analysis", [PoissonGLM(), PoissonGLM(scale="pearson", alternative="less")])

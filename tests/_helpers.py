@@ -1,0 +1,25 @@
+"""Helpers shared by the test modules (imported as a plain module: pytest puts tests/ on sys.path)."""
+
+import warnings
+
+import numpy as np
+
+FIELDS = ("pvalue", "estimate", "se", "ci_low", "ci_high")
+
+
+def per_replicate(analysis, batch):
+    """Apply ``analysis`` replicate by replicate to ``batch``.
+
+    Returns the per-replicate fields and the first warning of each replicate
+    as the engine records it (``"warning:<Type>"``, or "").
+    """
+    out = {f: np.full(batch.size, np.nan) for f in FIELDS}
+    warned = np.zeros(batch.size, object)
+    for i in range(batch.size):
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            r = analysis(batch.replicate(i))
+        for f in out:
+            out[f][i] = getattr(r, f)
+        warned[i] = next((f"warning:{w.category.__name__}" for w in caught), "")
+    return out, warned
