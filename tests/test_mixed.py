@@ -142,13 +142,19 @@ def test_reml_loglik_at_batch_estimate_is_at_least_statsmodels():
 
 # -- the boundary -------------------------------------------------------------------------
 def test_zero_cluster_variance_gives_the_boundary_and_the_ols_fit():
-    batch = cluster_batch(np.random.default_rng(5), 40, k=8, m=15, icc=0.0, cv=0.0)
+    reps = 400
+    batch = cluster_batch(np.random.default_rng(5), reps, k=8, m=15, icc=0.0, cv=0.0)
     fit = fit_batch(batch)
     out = MixedModel().batch(batch)
     at0 = fit["gamma"] == 0
-    # under ICC = 0 the REML estimate sits at the boundary in a large share of replicates
-    # (about half for 16 clusters; observed 0.53 in a 200-replicate run)
-    assert 0.2 < at0.mean() < 0.9
+    # Balanced one-way layout: the REML estimate of the cluster variance is
+    # max(0, (MSB - MSW) / m), at the boundary exactly when MSB <= MSW, which under
+    # ICC = 0 has probability P(F(2k - 2, 2k(m - 1)) <= 1) (Searle, Casella & McCulloch
+    # 1992, Variance Components, ch. 3 and 6; from memory). Within 4 binomial SE.
+    from scipy import stats as _stats
+
+    p_boundary = _stats.f.cdf(1.0, 2 * 8 - 2, 2 * 8 * (15 - 1))
+    assert abs(at0.mean() - p_boundary) < 4 * np.sqrt(p_boundary * (1 - p_boundary) / reps)
     assert np.all(out["trouble"]["warning:ConvergenceWarning"][at0])
     for i in np.flatnonzero(at0)[:8]:
         d = pd.DataFrame(batch.replicate(i))

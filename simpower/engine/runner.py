@@ -92,8 +92,36 @@ def normalize_seed(seed: Any) -> int:
     raise ParameterError(f"`seed` must be an integer >= 0; got {seed!r}.")
 
 
+#: at most this many simulated values per per-replicate array of a batch chunk (32 MB of float64)
+MAX_CHUNK_VALUES = 4_000_000
+
+
 def default_chunk_size(scenario) -> int:
-    return BATCH_CHUNK if scenario.process.has_batch else LOOP_CHUNK
+    """The plan's chunk size: a function of the scenario only (never of ``n_jobs`` or the seed).
+
+    :data:`LOOP_CHUNK` when any analysis runs replicate by replicate (so slow fits
+    spread over the workers and the store, progress bar and failure threshold
+    update often); else :data:`BATCH_CHUNK`, capped so that one chunk holds at
+    most :data:`MAX_CHUNK_VALUES` values per array (large n: memory stays
+    bounded). The layout is read from one replicate drawn with a fixed
+    generator, which does not touch the run's random numbers.
+    """
+    process = scenario.process
+    if not process.has_batch or not all(a.has_batch for a in scenario.analyses.values()):
+        return LOOP_CHUNK
+    try:
+        one = process.draw_batch(np.random.default_rng(0), 1)
+    except Exception:
+        return BATCH_CHUNK
+    for a in scenario.analyses.values():
+        try:
+            ok = a.supports_batch(one)
+        except Exception:
+            ok = False
+        if not ok:
+            return LOOP_CHUNK
+    values = max((int(np.size(v)) for v in one.per_rep.values()), default=1)
+    return int(max(1, min(BATCH_CHUNK, MAX_CHUNK_VALUES // max(values, 1))))
 
 
 def plan_chunks(reps: int, chunk_size: int) -> list[tuple[int, int]]:

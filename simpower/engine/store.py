@@ -732,7 +732,7 @@ def _write_frames(frames: Iterator[pd.DataFrame], path: Path, fmt: str) -> int:
         import pyarrow as pa
         import pyarrow.parquet as pq
     except ImportError:
-        raise StoreError("Parquet export needs pyarrow: pip install 'simpower[parquet]'.") from None
+        raise StoreError("Parquet export needs pyarrow: pip install pyarrow.") from None
     writer = None
     schema = None
     try:
