@@ -29,7 +29,8 @@ def format_result(res) -> str:
                      f"  ({s['rejections']} of {s['n_ok']} usable replicates rejected)")
         if s.get("analytic_power") is not None:
             flag = "  <-- FLAG: more than 3 MCSE apart" if s.get("cross_check_flag") else ""
-            lines.append(f"  analytic power {_f(s['analytic_power'])}  distance {s['distance_mcse']:+.2f} MCSE{flag}")
+            kind = "analytic power" if s.get("analytic_exact", True) else "approximate closed-form power"
+            lines.append(f"  {kind} {_f(s['analytic_power'])}  distance {s['distance_mcse']:+.2f} MCSE{flag}")
         if s["n_failed"] or s["n_fit_trouble"]:
             fl = ", ".join(f"{c}: {n}" for c, n in s["failures"].items())
             lines.append(f"  failures {s['n_failed']} of {s['reps']} ({fl}); policy for fit trouble: "

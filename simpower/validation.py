@@ -10,6 +10,13 @@ the analytic value, sqrt(p(1-p)/R) (Morris, White & Crowther 2019).
 With about 300 grid points and a 4-MCSE tolerance, a correct engine fails a
 point with probability about 6e-5 each; the default seed is fixed, so the
 battery's outcome is reproducible.
+
+Welch's test has no exact closed form: its rows compare against the
+noncentral t with Satterthwaite's df, an approximation that is off by more
+than Monte Carlo error at small n with unequal SDs once the replicates are
+many. Those rows are shown with their distance and marked "approx"; they do
+not decide the verdict (the Welch batch path itself is checked against scipy
+replicate by replicate in the tests).
 """
 
 from __future__ import annotations
@@ -72,21 +79,35 @@ def run_battery(reps: int = 4000, seed: int = DEFAULT_SEED, n_jobs: int = -1, qu
     for row, res in zip(grid, results):
         s = res.summaries[res.primary]
         a = s["analytic_power"]
+        exact = bool(res.scenario.analyses[res.primary].analytic_exact)
         m = math.sqrt(max(a * (1 - a), 1e-12) / s["n_ok"]) if a is not None else math.nan
         dist = (s["power"] - a) / m if a is not None else math.nan
+        ok = bool(a is not None and abs(dist) <= tolerance)
         rows.append({**row, "reps": s["n_ok"], "simulated": s["power"], "mcse": s["mcse"], "analytic": a,
-                     "distance_mcse": dist, "pass": bool(a is not None and abs(dist) <= tolerance)})
+                     "distance_mcse": dist, "exact": exact, "pass": ok if exact else None})
     return pd.DataFrame(rows)
+
+
+def battery_passed(df: pd.DataFrame) -> bool:
+    """True when every row with an exact closed form passed."""
+    exact = df[df["exact"]]
+    return bool(len(exact) and exact["pass"].astype(bool).all())
 
 
 def format_battery(df: pd.DataFrame) -> str:
     cols = ["design", "test", "n", "effect", "alpha", "alternative", "simulated", "mcse", "analytic",
             "distance_mcse", "pass"]
     shown = df[cols].copy()
-    shown["pass"] = np.where(shown["pass"], "pass", "FAIL")
+    shown["pass"] = [("pass" if p else "FAIL") if e else "approx" for p, e in zip(df["pass"], df["exact"])]
     text = shown.to_string(index=False, float_format=lambda x: f"{x:.4f}")
-    n_fail = int((~df["pass"]).sum())
-    over3 = int((df["distance_mcse"].abs() > 3).sum())
-    text += (f"\n\n{len(df)} checks, {len(df) - n_fail} pass, {n_fail} fail (tolerance 4 MCSE); "
-             f"{over3} beyond 3 MCSE (about {len(df) * 0.0027:.1f} expected by chance).")
+    exact = df[df["exact"]]
+    n_fail = int((~exact["pass"].astype(bool)).sum())
+    over3 = int((exact["distance_mcse"].abs() > 3).sum())
+    approx = df[~df["exact"]]
+    text += (f"\n\n{len(exact)} checks against exact closed forms, {len(exact) - n_fail} pass, {n_fail} fail "
+             f"(tolerance 4 MCSE); {over3} beyond 3 MCSE (about {len(exact) * 0.0027:.1f} expected by chance).")
+    if len(approx):
+        worst = float(approx["distance_mcse"].abs().max())
+        text += (f"\n{len(approx)} rows against an approximate closed form (Welch, Satterthwaite df), not judged; "
+                 f"largest distance {worst:.2f} MCSE.")
     return text

@@ -59,4 +59,5 @@ def test_check_quick_passes(capsys):
     rc = main(["check", "--quick", "--reps", "1000", "--jobs", "1", "-q"])
     text = capsys.readouterr().out
     assert rc == 0, text
-    assert "64 checks, 64 pass, 0 fail" in text
+    assert "48 checks against exact closed forms, 48 pass, 0 fail" in text
+    assert "16 rows against an approximate closed form (Welch" in text

@@ -17,7 +17,9 @@ from simpower.validation import run_battery
 def test_full_battery_within_4_mcse():
     df = run_battery(reps=4000, n_jobs=1, progress=False)
     assert len(df) == 288
-    bad = df[~df["pass"]]
+    exact = df[df["exact"]]
+    assert len(exact) == 288 - 72  # the Welch rows compare with an approximation and are not judged
+    bad = exact[~exact["pass"].astype(bool)]
     assert bad.empty, bad.to_string()
     # the type I error rows: power at effect 0 equals alpha within 4 MCSE
     null = df[df["effect"] == 0]
@@ -68,3 +70,14 @@ def test_cross_check_flag_fires_beyond_3_mcse():
     s2 = sp.run(sp.Scenario(sp.NormalTwoArm(n=64, effect=0.5), sp.TTest()), reps=2000, seed=2,
                 n_jobs=1).summaries["t_test"]
     assert s2["cross_check_flag"] is (abs(s2["distance_mcse"]) > 3)
+
+
+def test_approximate_closed_forms_are_labelled_and_not_flagged():
+    # Welch's power by the noncentral t with Satterthwaite's df is an approximation (Welch 1947):
+    # at n = 6 with unequal SDs it sits several MCSE from the simulation once reps are many.
+    sc = sp.Scenario(sp.NormalTwoArm(n=6, effect=1.0, sd_ratio=2.0), analyses=[sp.WelchT(), sp.TTest()])
+    res = sp.run(sc, reps=40000, seed=6, n_jobs=1)
+    w = res.summaries["welch_t"]
+    assert w["analytic_exact"] is False and w["cross_check_flag"] is False
+    assert "approximate closed-form power" in str(res)
+    assert res.summaries["t_test"]["analytic_power"] is None  # Student t under unequal SDs: no closed form here

@@ -123,6 +123,11 @@ class Analysis(Component):
         """Whether :meth:`batch` can handle this particular batch (layout checks)."""
         return self.has_batch
 
+    #: whether :meth:`analytic_power` is exact (the cross-check flag then means something is wrong)
+    #: or an approximation (Welch's Satterthwaite df, normal approximations, Schoenfeld): then a
+    #: distance beyond 3 MCSE says how far the approximation is off, and is not flagged
+    analytic_exact: bool = True
+
     def analytic_power(self, process, alpha: float) -> float | None:
         """Closed-form power of this analysis for ``process``, where the analytic core covers it."""
         return None

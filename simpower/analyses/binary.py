@@ -170,6 +170,7 @@ class TwoProportions(Analysis):
     """
 
     name = "two_proportions"
+    analytic_exact = False  # the closed form is an approximation
     estimand_label = "risk difference"
     null_hypothesis = "the event risks in the two arms are equal (p1 = p0)"
     params = {"alternative": ALTERNATIVE, "continuity": Bool(), "ci_level": CI_LEVEL}

@@ -183,6 +183,10 @@ class NonInferiority(Analysis):
             return {"pvalue": p_from_t((est - value) / se, df, alt), "estimate": est, "se": se,
                     "ci_low": lo, "ci_high": hi}
 
+    @property
+    def analytic_exact(self) -> bool:
+        return bool(self.equal_var)  # the Welch variant's closed form is an approximation
+
     def analytic_power(self, process, alpha):
         """Power of the shifted one-sided t-test (pooled) or Welch test, normal outcomes."""
         nc = process.normal_case()

@@ -120,6 +120,7 @@ class LogRank(Analysis):
     """
 
     name = "logrank"
+    analytic_exact = False  # the closed form is an approximation
     estimand_label = "log hazard ratio"
     null_hypothesis = "the survival functions of the two arms are equal"
     params = {"alternative": ALTERNATIVE, "ci_level": CI_LEVEL}

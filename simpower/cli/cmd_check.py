@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ..validation import DEFAULT_SEED, format_battery, run_battery
+from ..validation import DEFAULT_SEED, battery_passed, format_battery, run_battery
 
 
 def register(sub) -> None:
@@ -27,4 +27,4 @@ def main(args) -> int:
     print(format_battery(df))
     if args.csv:
         df.to_csv(args.csv, index=False)
-    return 0 if bool(df["pass"].all()) else 1
+    return 0 if battery_passed(df) else 1
