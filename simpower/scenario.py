@@ -192,6 +192,16 @@ class Scenario:
     def fingerprint(self) -> str:
         return fingerprint(self.spec())
 
+    def point_key(self) -> int:
+        """The seed key of this scenario as a grid point: the first 48 bits of its fingerprint.
+
+        Runs, sweeps and searches all seed a scenario's chunks with
+        ``SeedSequence(seed, spawn_key=(point_key, chunk))``, so the same
+        parameters give the same numbers whichever command asked (with the
+        same seed and chunk size).
+        """
+        return int(self.fingerprint()[:12], 16)
+
     def describe(self) -> list[str]:
         lines = [f"Data: {self.process.describe()}."]
         for n, a in self.analyses.items():

@@ -51,7 +51,7 @@ def point_key(scenario) -> int:
     >>> point_key(sc) == point_key(sc.with_params(n=65))
     False
     """
-    return int(scenario.fingerprint()[:12], 16)
+    return scenario.point_key()
 
 
 def grow_chunk_size(scenario, chunk_size: int | None = None) -> int:

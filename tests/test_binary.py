@@ -203,7 +203,7 @@ def test_logistic_zero_cells_are_counted_as_fit_trouble_by_the_engine():
     proc = BinaryTwoArm(n=10, p0=0.08, risk_ratio=2.0)
     res = sp.run(sp.Scenario(proc, analyses=[Logistic(), FisherExact()]), reps=1000, seed=21, n_jobs=1)
     assert res.paths["logistic"] == "batch"
-    b = proc.draw_batch(np.random.default_rng(chunk_seed(res.seed, 0, 0)), 1000)  # the engine's own stream
+    b = proc.draw_batch(np.random.default_rng(chunk_seed(res.seed, res.point, 0)), 1000)  # the engine's own stream
     y, arm = b.per_rep["y"], b.shared["arm"]
     x0, x1 = y[:, arm == 0].sum(1), y[:, arm == 1].sum(1)
     zero = (np.minimum(x0, 10 - x0) == 0) | (np.minimum(x1, 10 - x1) == 0)

@@ -127,7 +127,7 @@ def test_failures_counted_by_cause_not_as_rejections():
     # Recompute the expected counts independently from the same random stream.
     rng_counts = {"error:ZeroDivisionError": 0, "nonfinite_pvalue": 0}
     for k, size in plan_chunks(2000, res.chunk_size):
-        rng = np.random.default_rng(chunk_seed(res.seed, 0, k))
+        rng = np.random.default_rng(chunk_seed(res.seed, res.point, k))
         for _ in range(size):
             y0 = rng.normal(size=5)[0]
             if y0 > 1.0:

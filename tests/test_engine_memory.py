@@ -68,7 +68,7 @@ def test_streamed_result_points_to_the_store(tmp_path):
     with pytest.raises(sp.RunError, match="lean.sqlite"):
         lean.records_frame()
     with sp.engine.open_store(path) as st:
-        rec = st.records(0)["t_test"]
+        rec = st.records(lean.point)["t_test"]
     full = sp.run(sc, reps=5000, seed=3, n_jobs=1)
     assert rec.pvalue.tobytes() == full.pvalues.tobytes()
     assert lean.power == full.power

@@ -121,7 +121,7 @@ def test_sigkill_part_way_then_resume_is_bit_identical(project):
     assert rerun.returncode == 0, err
     with open_store(store) as st:
         assert len(st.done_chunks()) == CHUNKS
-        records = st.records(0)
+        records = st.records()
         workers = st.chunks()["worker"].nunique()
     assert workers >= 2  # the killed child, then the resumed run's workers
     ref = _reference(project)
@@ -151,7 +151,7 @@ def test_ctrl_c_saves_finished_chunks_and_says_how_to_resume(project):
     finally:
         os.chdir(here)
     with open_store(store) as st:
-        _assert_identical(st.records(0), _reference(project))
+        _assert_identical(st.records(), _reference(project))
 
 
 def test_interrupt_in_python_keeps_chunks(project, monkeypatch):

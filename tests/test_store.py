@@ -197,10 +197,10 @@ def test_blob_checksum_and_foreign_dtypes_are_checked(tmp_path):
     con.close()
     with open_store(path) as st:
         with pytest.raises(StoreError, match="checksum"):
-            st.load(0, 3, 500)
+            st.load(st.point_keys()[0], 3, 500)
         with pytest.raises(StoreError, match="refused"):
-            st.load(0, 4, 500)
-        assert st.load(0, 2, 500) is not None
+            st.load(st.point_keys()[0], 4, 500)
+        assert st.load(st.point_keys()[0], 2, 500) is not None
 
 
 def test_not_a_store(tmp_path):

@@ -146,3 +146,14 @@ def test_sqlite_run_store_resumes_with_its_seed(tmp_path):
     assert b.attrs["seed"] == 6 and list(a["power"]) == list(b["power"])
     with pytest.raises(sp.StoreError, match="seed 6"):
         sweep(SC, {"n": [10]}, reps=400, seed=7, n_jobs=1, store=path)
+
+
+def test_a_sweep_point_reproduces_as_a_single_run():
+    # Every scenario is seeded by its content key: the sweep's point n = 30 is the run of n = 30
+    # (same seed, same chunk size), whichever command asked and wherever the point sits.
+    base = sp.Scenario(sp.NormalTwoArm(n=10, effect=0.5), sp.TTest())
+    res = sp.sweep(base, {"n": [20, 30]}, reps=600, seed=9, n_jobs=1, chunk_size=200, return_results=True)
+    table, results = res if isinstance(res, tuple) else (res, None)
+    single = sp.run(base.with_params(n=30), reps=600, seed=9, n_jobs=1, chunk_size=200)
+    row = table[table["n"] == 30].iloc[0]
+    assert row["power"] == single.power

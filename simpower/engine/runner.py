@@ -343,7 +343,7 @@ def _result(pt: _Point, entropy, seconds, fit_trouble, n_jobs, backend, store) -
 
 def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
         progress: bool | None = None, fit_trouble: str = "failure", backend: str | None = None,
-        address: Any = None, store: Any = None, max_failure_rate: float = 0.5, point: int = 0,
+        address: Any = None, store: Any = None, max_failure_rate: float = 0.5, point: int | None = None,
         timeout: float | None = None, keep_records: bool | None = None) -> RunResult:
     """Simulate ``reps`` replicates of ``scenario`` and summarise them.
 
@@ -376,8 +376,11 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
     max_failure_rate : float in (0, 1]
         Stop with an error once more than this share of an analysis'
         replicates fail hard (exceptions, non-finite p-values, timeouts).
-    point : int
-        The grid point key (seed spawn key) of this scenario.
+    point : int, optional
+        The grid point key (seed spawn key) of this scenario; by default its
+        content key (:meth:`Scenario.point_key`), the key sweeps and searches
+        give the same parameters, so a sweep's point reproduces as a single
+        run with the same seed and chunk size.
     timeout : float, optional
         Per-replicate time limit (seconds) of per-replicate analysis calls;
         a replicate past it counts as failure ``"timeout"``. Enforced on the
@@ -395,7 +398,19 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
     >>> abs(res.power - 0.80) < 4 * res.mcse   # Cohen (1988): n = 64 per arm gives 80% power
     True
     """
-    return run_many([scenario], reps, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, progress=progress,
-                    fit_trouble=fit_trouble, backend=backend, address=address, store=store,
-                    max_failure_rate=max_failure_rate, keys=[point], timeout=timeout,
-                    keep_records=keep_records)[0]
+    store, owned = _open_store(store)
+    try:
+        if point is None:
+            point = scenario.point_key()
+            held = store.point_keys() if hasattr(store, "point_keys") else []
+            if len(held) == 1 and held[0] != point:
+                # the store holds one other run: bind to it, so a changed scenario is refused
+                # (naming what changed) rather than stored beside the old one
+                point = held[0]
+        return run_many([scenario], reps, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, progress=progress,
+                        fit_trouble=fit_trouble, backend=backend, address=address, store=store,
+                        max_failure_rate=max_failure_rate, keys=[point], timeout=timeout,
+                        keep_records=keep_records)[0]
+    finally:
+        if owned:
+            store.close()

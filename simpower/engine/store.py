@@ -598,6 +598,11 @@ class RunStore:
         keys = [r[0] for r in self._conn.execute("SELECT point FROM points ORDER BY point")]
         return f" Points: {keys[:12]}." if keys else " The store holds no point."
 
+    def point_keys(self) -> list[int]:
+        """The keys of the grid points this store holds."""
+        with self._guard("reading points"):
+            return [int(r[0]) for r in self._conn.execute("SELECT point FROM points ORDER BY point")]
+
     def _point_rows(self) -> list[tuple]:
         with self._guard("reading points"):
             return self._conn.execute("SELECT point, fingerprint, seed, chunk_size, reps, analyses, scenario "
@@ -609,15 +614,22 @@ class RunStore:
             return pd.read_sql_query("SELECT point, chunk, size, seconds, started_at, finished_at, worker, "
                                      "timeout_enforced FROM chunks ORDER BY point, chunk", self._conn)
 
-    def records(self, point: int = 0):
+    def records(self, point: int | None = None):
         """Per-replicate records of a point, as ``{analysis: Records}``.
 
-        The stored chunks laid end to end in chunk order: for a finished point,
-        replicate i is record i; an unfinished one lacks the missing chunks
-        (``replicates()`` carries explicit replicate numbers).
+        ``point`` is the grid point's key (``RunResult.point``); it may be left
+        out when the store holds one point (a single run). The stored chunks
+        laid end to end in chunk order: for a finished point, replicate i is
+        record i; an unfinished one lacks the missing chunks (``replicates()``
+        carries explicit replicate numbers).
         """
         from .collect import assemble_records
 
+        if point is None:
+            keys = sorted({r[0] for r in self._point_rows()})
+            if len(keys) != 1:
+                raise StoreError(f"{self.path}: holds {len(keys)} grid points; give `point`.{self._points_hint()}")
+            point = keys[0]
         rows = [r for r in self._point_rows() if r[0] == int(point)]
         if not rows:
             raise StoreError(f"{self.path}: no grid point {point}.{self._points_hint()}")
