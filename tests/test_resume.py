@@ -131,7 +131,7 @@ def test_sigkill_part_way_then_resume_is_bit_identical(project):
     assert f"({ref.summaries['student']['rejections']} of 600 usable replicates rejected)" in out
 
 
-def test_ctrl_c_saves_finished_chunks_and_says_how_to_resume(project):
+def test_ctrl_c_saves_finished_chunks_and_says_how_to_resume(project, monkeypatch, capsys):
     store = project / "int.sqlite"
     proc = _cli(project, "int.sqlite", "--jobs", "1")
     _wait_for_chunks(proc, store, 4)
@@ -147,11 +147,17 @@ def test_ctrl_c_saves_finished_chunks_and_says_how_to_resume(project):
     here = os.getcwd()
     try:
         os.chdir(project)
+        monkeypatch.setattr(sys, "argv", ["simpower", "resume", "int.sqlite"])
         assert main(["resume", "int.sqlite"]) == 0
     finally:
         os.chdir(here)
     with open_store(store) as st:
         _assert_identical(st.records(), _reference(project))
+        recorded = st.command
+    # the reproduce line and the recorded command are the original run command, not "resume"
+    printed = capsys.readouterr().out
+    assert "To reproduce these numbers exactly: simpower run s.toml --store int.sqlite" in printed
+    assert recorded[:2] == ["run", "s.toml"]
 
 
 def test_interrupt_in_python_keeps_chunks(project, monkeypatch):

@@ -58,10 +58,14 @@ def main(args) -> int:
     print("resuming: simpower " + " ".join(command) + (f"  (in {cwd})" if cwd else ""), file=sys.stderr)
     from .main import main as cli_main
 
-    here = os.getcwd()
+    here, argv = os.getcwd(), sys.argv
     if cwd and os.path.isdir(cwd):
         os.chdir(cwd)
+    # the resumed command sees its own command line, so the command it records and prints to
+    # reproduce the numbers is the original one, not "resume STORE"
+    sys.argv = [argv[0] if argv else "simpower", *command]
     try:
         return cli_main(list(command))
     finally:
+        sys.argv = argv
         os.chdir(here)
