@@ -61,3 +61,24 @@ def test_check_quick_passes(capsys):
     assert rc == 0, text
     assert "48 checks against exact closed forms, 48 pass, 0 fail" in text
     assert "16 rows against an approximate closed form (Welch" in text
+
+
+def test_run_with_target_mcse_and_null_check(tmp_path, capsys):
+    # Sequential stopping reaches the MCSE asked for (Morris, White & Crowther 2019: R = p(1-p)/MCSE^2),
+    # and the null check reports the type I error against Bradley's (1978) liberal band.
+    out = tmp_path / "r.json"
+    rc = main(["run", str(SCEN), "--seed", "5", "--jobs", "1", "-q", "--target-mcse", "0.008",
+               "--null-check", "--null-reps", "2000", "--json", str(out)])
+    text = capsys.readouterr().out
+    assert rc == 0, text
+    d = json.loads(out.read_text())
+    s = d["analyses"]["student"]
+    assert s["mcse"] <= 0.008
+    assert "Sequential stopping: target MCSE 0.008 reached" in text
+    assert "Type I error under the null" in text and "Bradley's (1978) liberal criterion [0.025, 0.075]" in text
+
+
+def test_run_bad_target_mcse_is_one_line(capsys):
+    rc = main(["run", str(SCEN), "--target-mcse", "0.9", "-q"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "target_mcse" in err and err.count("\n") == 1
