@@ -184,9 +184,11 @@ class RunResult:
 
     def to_dict(self) -> dict[str, Any]:
         from . import __version__
+        from ._provenance import source_digest
 
         return _plain({
             "simpower_version": __version__,
+            "simpower_source_sha256": source_digest(),
             "scenario": self.scenario.spec(),
             "fingerprint": self.scenario.fingerprint(),
             "seed": str(self.seed),

@@ -82,3 +82,23 @@ def test_sequential_run_is_reported(tmp_path):
     res = run_to_mcse(SC, 0.02, seed=2, n_jobs=1)
     md = make_report(SC, tmp_path, seed=2, run=res)["md"].read_text()
     assert "Sequential stopping" in md and f"it took {res.reps} replicates" in md
+
+
+def test_manifest_and_results_pin_the_source_code(tmp_path):
+    # The version string does not pin the code between releases: the manifest, the JSON result
+    # and the run store record a digest of simpower's own source files.
+    import json as _json
+
+    import simpower as sp
+    from simpower._provenance import source_digest
+
+    digest = source_digest()
+    assert len(digest) == 16 and int(digest, 16) >= 0
+    res = sp.run(sp.Scenario(sp.NormalTwoArm(n=10, effect=0.5), sp.TTest()), reps=100, seed=1, n_jobs=1,
+                 store=tmp_path / "s.sqlite")
+    assert _json.loads(res.to_json())["simpower_source_sha256"] == digest
+    with sp.open_store(tmp_path / "s.sqlite") as st:
+        assert st.meta()["simpower_source_sha256"] == digest
+    from simpower.report.manifest import build_manifest
+
+    assert build_manifest(seed=1, scenario=res.scenario, command="x")["simpower_source_sha256"] == digest

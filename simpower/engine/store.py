@@ -397,10 +397,11 @@ class RunStore:
                     if stmt.strip():
                         c.execute(stmt)
                 from .. import __version__
+                from .._provenance import source_digest
 
                 c.executemany("INSERT INTO meta VALUES (?, ?)", [
                     ("format", FORMAT), ("version", VERSION), ("created_at", repr(time.time())),
-                    ("simpower_version", __version__)])
+                    ("simpower_version", __version__), ("simpower_source_sha256", source_digest())])
         else:
             missing = [t for t in TABLES if t not in tables]
             fmt = c.execute("SELECT value FROM meta WHERE key='format'").fetchone() if "meta" in tables else None

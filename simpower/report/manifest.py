@@ -18,6 +18,8 @@ import sys
 from pathlib import Path
 from typing import Any, Sequence
 
+from .._provenance import source_digest
+
 DEPENDENCIES = ("numpy", "scipy", "pandas", "joblib", "statsmodels", "matplotlib", "tqdm", "pyarrow", "dask")
 
 
@@ -66,6 +68,7 @@ def build_manifest(*, seed: int, scenario, command: str, scenario_file=None, set
     now = now or _dt.datetime.now(_dt.timezone.utc)
     return {
         "versions": versions(),
+        "simpower_source_sha256": source_digest(),
         "seed": str(seed),
         "scenario_fingerprint": scenario.fingerprint(),
         "scenario_file": None if scenario_file is None else str(scenario_file),
@@ -90,6 +93,8 @@ def manifest_rows(man: dict[str, Any]):
     p = man["platform"]
     rows += [("platform", f"{p['system']} {p['release']} {p['machine']} ({p['python_implementation']})")]
     rows += [(f"version: {k}", v or "not installed") for k, v in man["versions"].items()]
+    if man.get("simpower_source_sha256"):
+        rows.append(("simpower source digest", man["simpower_source_sha256"]))
     for k, v in man.get("settings", {}).items():
         rows.append((f"setting: {k}", json.dumps(v, default=str) if not isinstance(v, str) else v))
     return pd.DataFrame(rows, columns=["item", "value"])
