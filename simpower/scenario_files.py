@@ -96,7 +96,13 @@ def load(path: str | Path, overrides: dict[str, Any] | None = None) -> ScenarioF
     p = Path(path)
     if not p.is_file():
         raise ScenarioFileError(f"{path}: no such scenario file.")
-    return loads(p.read_text(encoding="utf-8"), p, overrides)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except UnicodeDecodeError as exc:
+        raise ScenarioFileError(f"{path}: not UTF-8 text (byte {exc.start}); save the scenario file as UTF-8.") from None
+    except OSError as exc:
+        raise ScenarioFileError(f"{path}: cannot read the scenario file ({exc.strerror}).") from None
+    return loads(text, p, overrides)
 
 
 def _build(raw, text, where, base_dir, overrides, path) -> ScenarioFile:

@@ -38,6 +38,9 @@ def format_result(res) -> str:
                          f"power {_f(s['power_failures_as_nonrejections'])}")
             msgs = res.records[name].messages
             for c, m in list(msgs.items())[:5]:
+                kind = c.partition(":")[2]
+                if kind and m.startswith(kind + ": "):  # the cause already names the type
+                    m = m[len(kind) + 2:]
                 lines.append(f"    first {c}: {m}")
         else:
             lines.append("  failures 0")

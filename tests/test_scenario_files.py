@@ -149,3 +149,10 @@ def _toml_lines(spec, prefix=""):
         yield f"{k} = {v!r}".replace("'", '"').replace("True", "true").replace("False", "false")
     for k, v in nested.items():
         yield from _toml_lines(v, f"{prefix}.{k}" if prefix else k)
+
+
+def test_a_file_that_is_not_utf8_names_the_file(tmp_path):
+    bad = tmp_path / "latin.toml"
+    bad.write_bytes("name = 'caf\u00e9'\n".encode("latin-1"))
+    with pytest.raises(ScenarioFileError, match=r"latin.toml: not UTF-8 text"):
+        load(bad)
