@@ -486,25 +486,36 @@ def parse_axis(text: str) -> tuple[str, Any]:
     def num(s):
         v = parse_assignment(f"v={s}")[1]
         if isinstance(v, bool) or not isinstance(v, (int, float)):
-            raise ParameterError(f"`{name}`: range ends must be numbers; got {s!r}.")
+            raise ParameterError(f"`{name}`: range ends and steps must be numbers; got {s!r}.")
         return v
 
     if ":" in spec and "," not in spec:
-        head, slash, count = spec.partition("/")
-        log = count.startswith("/")
-        parts = head.split(":")
-        try:
-            if slash:
-                if len(parts) != 2:
-                    raise ValueError
-                return name, Range(num(parts[0]), num(parts[1]), count=int(count.lstrip("/")),
-                                   scale="log" if log else "linear")
-            if len(parts) != 3:
-                raise ValueError
-            return name, Range(num(parts[0]), num(parts[1]), step=num(parts[2]))
-        except ValueError:
-            raise ParameterError(f"`{name}={spec}`: a range is from:to:step, from:to/count or from:to//count.") from None
+        return name, _range_spec(name, spec, num)
     return name, [parse_assignment(f"v={p.strip()}")[1] for p in spec.split(",") if p.strip()]
+
+
+def _range_spec(name: str, spec: str, num) -> Range:
+    """The :class:`Range` of a command-line ``from:to:step``, ``from:to/count`` or ``from:to//count``."""
+    forms = "a range is from:to:step, from:to/count or from:to//count"
+    head, slash, count = spec.partition("/")
+    log = count.startswith("/")
+    parts = head.split(":")
+    if len(parts) != (2 if slash else 3):
+        raise ParameterError(f"`{name}={spec}`: {forms}.")
+    start, stop = num(parts[0]), num(parts[1])
+    if stop < start:
+        tail = f"/{count}" if slash else f":{parts[2].strip()}"
+        raise ParameterError(f"`{name}={spec}`: the range is empty (it descends from {start:g} to {stop:g}); "
+                             f"from must not exceed to, e.g. {name}={parts[1].strip()}:{parts[0].strip()}{tail}.")
+    step = None if slash else num(parts[2])
+    try:
+        if slash:
+            return Range(start, stop, count=int(count.lstrip("/")), scale="log" if log else "linear")
+        return Range(start, stop, step=step)
+    except ParameterError as exc:   # e.g. step <= 0, count < 1, log range through 0
+        raise ParameterError(f"`{name}={spec}`: {exc}") from None
+    except ValueError:              # a count that is not an integer
+        raise ParameterError(f"`{name}={spec}`: {forms}; the count must be an integer.") from None
 
 
 def parse_together(text: str) -> Grid:

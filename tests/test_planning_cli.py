@@ -146,3 +146,134 @@ def test_store_folder_makes_the_search_resumable(scen, tmp_path, capsys):
     assert len(files) == 1
     assert main(argv) == 0
     assert capsys.readouterr().out.splitlines()[0] == first.splitlines()[0]
+
+
+# -- audit fixes: --effect over a size block, the plot axis, empty ranges, missing values -----------
+SCENARIOS = __import__("pathlib").Path(__file__).resolve().parents[1] / "scenarios"
+
+
+def welch_power(delta, n1, n2, sd1, sd2, alpha=0.05):
+    """Two-sided Welch t power from scipy.stats.nct with the Welch-Satterthwaite df (Welch 1947,
+    Biometrika 34:28-35; Satterthwaite 1946); computed here, independent of simpower.analytic."""
+    import math
+
+    from scipy import stats
+
+    v1, v2 = sd1**2 / n1, sd2**2 / n2
+    df = (v1 + v2) ** 2 / (v1**2 / (n1 - 1) + v2**2 / (n2 - 1))
+    crit, nc = stats.t.ppf(1 - alpha / 2, df), delta / math.sqrt(v1 + v2)
+    return stats.nct.sf(crit, df, nc) + stats.nct.cdf(-crit, df, nc)
+
+
+def _numbers(pattern, text):
+    import re
+
+    m = re.search(pattern, text)
+    assert m, f"{pattern!r} not in output:\n{text}"
+    return [float(g) for g in m.groups()]
+
+
+def test_sleep_app_detectable_effect_command_from_its_header(capsys):
+    # The command in scenarios/samplesize_sleep_app.toml's header, without --range: the file's
+    # [search] low/high (20..400, a size range) must not become the effect's range.
+    rc = main(["samplesize", str(SCENARIOS / "samplesize_sleep_app.toml"), "--effect", "--set", "n=80",
+               "--jobs", "1", "-q"])
+    out = capsys.readouterr().out
+    assert rc == 0, out
+    value, lo, hi = _numbers(r"minimal detectable `effect` for power 0\.9 \(welch_t\): ([\d.]+)\s+"
+                             r"\(95% Monte Carlo interval ([\d.]+) to ([\d.]+)", out)
+    (closed,) = _numbers(r"closed form: ([\d.]+)", out)
+    # reference: 80 vs round(2 * 80) = 160 per arm, SDs 30 and 1.3 * 30, power 0.9 (the file's [search] power)
+    from scipy.optimize import brentq
+
+    ref = brentq(lambda d: welch_power(d, 80, 160, 30.0, 39.0) - 0.9, 1.0, 30.0)
+    assert closed == pytest.approx(ref, abs=0.01)
+    # within 4 Monte Carlo standard errors: the interval is +-1.96 SE
+    assert abs(value - ref) <= 4 / 1.96 * (hi - lo) / 2
+
+
+def test_effect_flag_drops_the_size_blocks_range_but_keeps_a_command_line_one(scen, tmp_path, capsys):
+    base = ["samplesize", str(scen), "--effect", "--seed", "3", "--jobs", "1", "-q"]
+    assert main(base + ["--json", str(tmp_path / "a.json")]) == 0
+    s = json.loads((tmp_path / "a.json").read_text())["settings"]
+    # detectable_effect's defaults: 0 to 3 x the current effect (0.6), the process's effect parameter
+    assert (s["low"], s["high"], s["parameter"]) == (0.0, pytest.approx(1.8), "effect")
+    assert s["power"] == 0.8 and s["rel_tol"] == 0.05      # the block's other settings still apply
+    assert main(base + ["--range", "0.1:1.2", "--json", str(tmp_path / "b.json")]) == 0
+    s = json.loads((tmp_path / "b.json").read_text())["settings"]
+    assert (s["low"], s["high"]) == (0.1, 1.2)
+
+
+def test_a_block_written_for_the_effect_keeps_its_range(tmp_path, capsys):
+    p = tmp_path / "eff.toml"
+    p.write_text(TOML.replace("low = 10\nhigh = 150", 'find = "effect"\nlow = 0.1\nhigh = 1.4'))
+    assert main(["samplesize", str(p), "--effect", "--seed", "3", "--jobs", "1", "-q",
+                 "--json", str(tmp_path / "e.json")]) == 0
+    s = json.loads((tmp_path / "e.json").read_text())["settings"]
+    assert (s["low"], s["high"]) == (0.1, 1.4)
+
+
+def _with_x(tmp_path, x):
+    p = tmp_path / "x.toml"
+    p.write_text(TOML.replace("[sweep]\n", f"[sweep]\nx = {x}\n"))
+    return p
+
+
+@pytest.mark.parametrize("extra", [["--plot", "{d}/curve"], ["--report", "{d}/rep"]])
+def test_unswept_file_x_fails_before_running_and_names_the_block(tmp_path, capsys, extra):
+    p = _with_x(tmp_path, '"alpha"')
+    argv = ["sweep", str(p), "--seed", "1", "--jobs", "1", "-q", "--csv", str(tmp_path / "s.csv")]
+    rc = main(argv + [a.format(d=tmp_path) for a in extra])
+    cap = capsys.readouterr()
+    assert rc == 2
+    assert "`[sweep] x` 'alpha' is not a swept parameter; swept: n, effect." in cap.err and "--x" not in cap.err
+    assert "seed:" not in cap.out and not (tmp_path / "s.csv").exists()     # nothing ran, nothing written
+
+
+def test_unswept_x_does_not_matter_without_a_plot(tmp_path, capsys):
+    p = _with_x(tmp_path, '"alpha"')
+    assert main(["sweep", str(p), "--seed", "1", "--jobs", "1", "-q", "--csv", str(tmp_path / "s.csv")]) == 0
+    assert len(pd.read_csv(tmp_path / "s.csv")) == 2 * 2 * 2
+
+
+def test_bad_command_line_x_names_the_option(scen, tmp_path, capsys):
+    rc = main(["sweep", str(scen), "--seed", "1", "--jobs", "1", "-q", "--x", "efect", "--plot",
+               str(tmp_path / "c")])
+    cap = capsys.readouterr()
+    assert rc == 2 and "`--x` 'efect' is not a swept parameter; swept: n, effect." in cap.err
+    assert "seed:" not in cap.out
+
+
+def test_non_numeric_plot_axis_is_refused_before_running(scen, tmp_path, capsys):
+    rc = main(["sweep", str(scen), "--seed", "1", "--jobs", "1", "-q", "--vary", "student.alternative=two-sided,greater",
+               "--vary", "n=10,20", "--plot", str(tmp_path / "c")])
+    cap = capsys.readouterr()
+    assert rc == 2 and "'student.alternative' takes non-numeric values" in cap.err and "`--x` one of n" in cap.err
+    assert "seed:" not in cap.out and not (tmp_path / "c.png").exists()
+
+
+def test_command_line_grid_sets_aside_a_stale_file_x(tmp_path, capsys):
+    p = _with_x(tmp_path, '"effect"')          # swept by the file's grid, not by --vary
+    rc = main(["sweep", str(p), "--seed", "1", "--jobs", "1", "-q", "--vary", "n=10,20", "--plot",
+               str(tmp_path / "c")])
+    assert rc == 0 and (tmp_path / "c.png").exists()
+
+
+def test_descending_range_says_empty_and_shows_the_valid_form(scen, capsys):
+    rc = main(["sweep", str(scen), "--vary", "n=10:4:2", "--jobs", "1", "-q", "--seed", "1"])
+    err = capsys.readouterr().err
+    assert rc == 2 and err.count("\n") == 1
+    assert "range is empty" in err and "n=4:10:2" in err and "a range is from:to:step" not in err
+
+
+def test_missing_closed_form_prints_a_dash(tmp_path, capsys):
+    # the Mann-Whitney test has no closed form here (analytic_power None at every point)
+    p = tmp_path / "mw.toml"
+    p.write_text(TOML.replace('[analyses.student]\ntype = "t_test"\n\n[analyses.welch]\ntype = "welch_t"',
+                              '[analysis]\ntype = "mann_whitney"'))
+    assert main(["sweep", str(p), "--seed", "1", "--jobs", "1", "-q", "--vary", "n=10,20"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    head = lines[0].split()
+    col = head.index("analytic_power")
+    rows = [ln.split() for ln in lines[1:3]]
+    assert [r[col] for r in rows] == ["-", "-"] and "None" not in "\n".join(lines)

@@ -157,3 +157,14 @@ def test_a_sweep_point_reproduces_as_a_single_run():
     single = sp.run(base.with_params(n=30), reps=600, seed=9, n_jobs=1, chunk_size=200)
     row = table[table["n"] == 30].iloc[0]
     assert row["power"] == single.power
+
+
+def test_descending_command_line_range_is_reported_as_empty():
+    # an empty (descending) range is a wrong range, not a wrong format: say so and show the valid form
+    with pytest.raises(ParameterError, match=r"range is empty .*clusters=4:10:2\.$"):
+        parse_axis("clusters=10:4:2")
+    with pytest.raises(ParameterError, match=r"range is empty .*n=4:10/3\.$"):
+        parse_axis("n=10:4/3")
+    with pytest.raises(ParameterError, match=r"`n=10:40:0`: range `step` must be > 0"):
+        parse_axis("n=10:40:0")
+    assert parse_axis("n=5:5:1")[1].values(True) == [5]      # from == to is one value, not empty

@@ -8,6 +8,10 @@ override them:
     simpower samplesize cluster.toml --parameter clusters --range 4:80
     simpower samplesize trial.toml --effect --range 0:1.5 --set n=80
 
+When ``--effect`` switches a size search of the file to an effect search, the
+block's ``low``, ``high``, ``step``, ``scale`` and ``parameter`` (which describe
+the size) are dropped unless ``--range`` / ``--parameter`` are given.
+
 The answer carries a Monte Carlo interval; a range in which the target is
 never reached is an error that reports the best power seen.
 """
@@ -40,6 +44,10 @@ def register(sub) -> None:
     p.set_defaults(func=main)
 
 
+#: [search] settings that describe the file's own search target, dropped when --effect overrides it
+SIZE_ONLY = ("low", "high", "step", "scale", "parameter")
+
+
 def _range(text: str):
     lo, sep, hi = text.partition(":")
     try:
@@ -55,8 +63,13 @@ def run_search(sf, args, seed):
     from ..sequential import read_block
 
     opts = read_block("search", sf.blocks.get("search"), SEARCH_FIELDS)
-    find = "effect" if getattr(args, "effect", False) else opts.pop("find", "size")
-    opts.pop("find", None)
+    file_find = opts.pop("find", None) or "size"
+    find = "effect" if getattr(args, "effect", False) else file_find
+    if find != file_find:
+        # the file's range, step, scale and parameter describe its size search; the effect search
+        # takes its own defaults unless --range / --parameter say otherwise
+        for key in SIZE_ONLY:
+            opts.pop(key, None)
     for key, attr in (("power", "power"), ("parameter", "parameter"), ("step", "step"), ("rel_tol", "rel_tol"),
                       ("max_reps", "max_reps"), ("analysis", "analysis")):
         v = getattr(args, attr, None)

@@ -75,9 +75,48 @@ def run_sweep(sf, args, seed, grid, block):
 
 
 def format_table(table) -> str:
+    """The sweep table as terminal text; missing values (None or NaN) show as ``-``, as in the report."""
     grid = [c for c in table.attrs.get("grid", []) if c in table.columns]
     cols = grid + [c for c in SHOWN if c in table.columns]
-    return table[cols].to_string(index=False, float_format=lambda v: f"{v:.4f}", na_rep="-")
+    shown = table[cols].copy()
+    for c in shown.columns:
+        if shown[c].dtype == object:   # pandas' na_rep skips None in an all-None column
+            shown[c] = shown[c].where(shown[c].notna(), "-")
+    return shown.to_string(index=False, float_format=lambda v: f"{v:.4f}", na_rep="-")
+
+
+def plot_axis(sf, args, block, grid, plot: bool) -> str:
+    """The plot's x axis, checked before anything runs: a swept parameter (with numbers, for ``--plot``).
+
+    Taken from ``--x``, else ``[sweep] x``, else the first swept parameter; an
+    error names where the value came from. A grid given by ``--vary`` /
+    ``--together`` replaces the file's, so the file's ``x`` then counts only
+    if it is swept. The report leaves out the power curve of a non-numeric
+    axis, so only ``--plot`` needs numbers.
+    """
+    from ..sweep import check_names
+
+    check_names(sf.scenario, grid.names)
+    from_file = block.get("x")
+    if (args.vary or args.together) and from_file not in grid.names:
+        from_file = None
+    if args.x:
+        x, source = args.x, "`--x`"
+    elif from_file is not None:
+        x, source = from_file, "`[sweep] x`"
+    else:
+        x, source = grid.names[0], "the default x axis (the first swept parameter)"
+    if not isinstance(x, str) or x not in grid.names:
+        raise ParameterError(f"{source} {x!r} is not a swept parameter; swept: {', '.join(grid.names)}.")
+    if plot:
+        points = grid.settings(sf.scenario)
+        numeric = [n for n in grid.names
+                   if all(isinstance(p[n], (int, float)) and not isinstance(p[n], bool) for p in points)]
+        if x not in numeric:
+            hint = f"give `--x` one of {', '.join(numeric)}" if numeric else "no swept parameter is numeric"
+            raise ParameterError(f"{source} {x!r} takes non-numeric values; --plot needs a numeric x axis: "
+                                 f"{hint}.")
+    return x
 
 
 def main(args) -> int:
@@ -89,6 +128,7 @@ def main(args) -> int:
     sf = load_scenario(args)
     block = read_block("sweep", sf.blocks.get("sweep"), SWEEP_FIELDS)
     grid = grid_of(sf, args, block)
+    x = plot_axis(sf, args, block, grid, bool(args.plot)) if (args.plot or args.report) else None
     seed = seed_of(sf, args)
     table = run_sweep(sf, args, seed, grid, block)
     print(format_table(table))
@@ -101,9 +141,6 @@ def main(args) -> int:
         cols = [c for c in table.attrs.get("grid", []) if c in null.columns and ns["at_grid"]]
         print(null[cols + ["analysis", "type1_error", "mcse", "reps", "meets_bradley"]].to_string(
             index=False, float_format=lambda v: f"{v:.4f}"))
-    x = args.x or block.get("x") or table.attrs["grid"][0]
-    if x not in table.columns:
-        raise ParameterError(f"`--x` {x!r} is not a swept parameter; swept: {', '.join(table.attrs['grid'])}.")
     if args.csv:
         table.to_csv(args.csv, index=False)
         print(f"CSV written to {args.csv}")
