@@ -109,10 +109,16 @@ def test_cluster_means_refuses_individual_randomisation_on_both_paths():
     proc = ClusterTrial(clusters=4, cluster_size=4, icc=0.1, randomise="individual")
     with pytest.raises(ValueError, match="cluster randomisation"):
         ClusterMeansT()(proc(np.random.default_rng(0)))
-    res = sp.run(sp.Scenario(proc, ClusterMeansT()), reps=20, seed=1, n_jobs=1, max_failure_rate=1.0)
-    rec = res.records["cluster_means_t"]
-    assert res.paths["cluster_means_t"] == "batch"
-    assert rec.causes == ["error:ValueError"] and np.all(rec.status == 1)
+    sc = sp.Scenario(proc, ClusterMeansT())
+    # the batch path records the same error for every replicate of a chunk ...
+    from simpower.engine import run_chunk
+
+    out = run_chunk(sc, 1, 0, 0, 20)
+    assert out.paths["cluster_means_t"] == "batch"
+    assert out.causes == ["error:ValueError"] and np.all(out.records["cluster_means_t"]["status"] == 1)
+    # ... and a run refuses the mismatch up front, naming the analysis and the error
+    with pytest.raises(sp.ParameterError, match="analysis `cluster_means_t` cannot analyse.*cluster randomisation"):
+        sp.run(sc, reps=20, seed=1, n_jobs=1, max_failure_rate=1.0)
 
 
 # -- cluster designs: power -------------------------------------------------------------

@@ -267,3 +267,10 @@ def test_probe_starts_workers_only_when_it_pays(monkeypatch):
     # 0.6 s tasks: the remaining 2.4 s over 2 workers plus start-up (2.2 s) beats 2.4 s serially
     assert list(executor.execute(time.sleep, [(0.6,)] * 5, n_jobs=-1, probe=True)) == [None] * 5
     assert started == [2]
+
+
+def test_an_analysis_that_cannot_read_the_design_is_refused_before_running():
+    sc = sp.Scenario(sp.SurvivalTwoArm(n=20, median=12, hazard_ratio=0.7, accrual=12, follow_up=12), sp.TTest())
+    with pytest.raises(sp.ParameterError, match="analysis `t_test` cannot analyse the data of process "
+                                                "`survival_two_arm`: it raised KeyError"):
+        sp.run(sc, reps=100, seed=1, n_jobs=1)

@@ -274,8 +274,56 @@ def _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble):
     return points
 
 
+PREFLIGHT_REPLICATES = 3
+
+
+def preflight(scenario) -> None:
+    """Refuse at once an analysis that cannot analyse the process's data at all.
+
+    Draws :data:`PREFLIGHT_REPLICATES` replicates with a fixed generator (the
+    run's own random numbers are untouched) and applies each analysis. Only
+    when an analysis raises on every one of them -- a layout mismatch such as
+    a t-test on survival data, not an occasional failure -- is the run
+    refused, with one line naming the analysis and its first error. A process
+    that raises is left to the run, which counts it by cause.
+    """
+    rng = np.random.default_rng(0)
+    try:
+        if scenario.process.has_batch:
+            batch = scenario.process.draw_batch(rng, PREFLIGHT_REPLICATES)
+            data = [batch.replicate(i) for i in range(PREFLIGHT_REPLICATES)]
+        else:
+            data = [scenario.process(rng) for _ in range(PREFLIGHT_REPLICATES)]
+    except Exception:
+        return
+    for name, analysis in scenario.analyses.items():
+        errors = []
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            for d in data:
+                try:
+                    analysis(d)
+                except Exception as exc:
+                    errors.append(exc)
+                else:
+                    break
+        if len(errors) == len(data):
+            exc = errors[0]
+            raise ParameterError(
+                f"analysis `{name}` cannot analyse the data of process "
+                f"`{getattr(scenario.process, 'name', None) or getattr(scenario.process, 'label', 'process')}`: "
+                f"it raised {type(exc).__name__}: {exc} on every trial replicate; check that the analysis fits "
+                f"the design (columns {', '.join(sorted(map(str, data[0])))}).")
+
+
 def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend, address,
          store, max_failure_rate, desc, timeout, keep_records):
+    seen = set()
+    for sc in scenarios:  # one trial per kind of scenario (the grid points of a sweep share theirs)
+        kind = (type(sc.process).__name__, tuple((n, type(a).__name__) for n, a in sc.analyses.items()))
+        if kind not in seen:
+            seen.add(kind)
+            preflight(sc)
     sizes = [int(chunk_size or default_chunk_size(s)) for s in scenarios]
     points = _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble)
     by_key = {pt.key: pt for pt in points}
