@@ -102,3 +102,16 @@ def test_manifest_and_results_pin_the_source_code(tmp_path):
     from simpower.report.manifest import build_manifest
 
     assert build_manifest(seed=1, scenario=res.scenario, command="x")["simpower_source_sha256"] == digest
+
+
+def test_report_checks_the_plot_axis_before_running(tmp_path, capsys):
+    # an x axis that is not swept is refused before any simulation, naming `[sweep] x`
+    from simpower.cli.main import main
+
+    f = tmp_path / "s.toml"
+    f.write_text('reps = 200\nseed = 1\n[process]\ntype = "normal_two_arm"\nn = 10\neffect = 0.5\n'
+                 '[analysis]\ntype = "t_test"\n[sweep]\nx = "effect"\n[sweep.vary]\nn = [10, 20]\n')
+    rc = main(["report", str(f), "--out", str(tmp_path / "out"), "-q"])
+    captured = capsys.readouterr()
+    assert rc == 2 and "`[sweep] x` 'effect' is not a swept parameter" in captured.err
+    assert "sweep:" not in captured.out and not (tmp_path / "out" / "report.md").exists()

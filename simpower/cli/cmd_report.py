@@ -123,19 +123,24 @@ def main(args) -> int:
         outdir = sf.path.parent / outdir
     results: dict = {}
     settings: dict = {"set": list(args.set)}
+    grid = sblock = None
+    if "sweep" in sf.blocks:  # check the grid and the plot axis before anything runs
+        from types import SimpleNamespace
+
+        from .cmd_sweep import plot_axis
+
+        sblock = read_block("sweep", sf.blocks["sweep"], SWEEP_FIELDS)
+        grid = grid_from_block(sblock)
+        results["x"] = plot_axis(sf, SimpleNamespace(vary=None, together=None, x=None), sblock, grid, plot=False)
     if "search" in sf.blocks:
         results["search"] = run_search(sf, args, seed)
         settings["search"] = results["search"].settings
         print(results["search"].summary())
-    grid = None
     if "sweep" in sf.blocks:
-        sblock = read_block("sweep", sf.blocks["sweep"], SWEEP_FIELDS)
-        grid = grid_from_block(sblock)
         results["sweep"] = run_sweep(sf, args, seed, grid, sblock)
         settings["sweep"] = {"grid": grid.describe(), "reps": results["sweep"].attrs.get("reps"),
                              "target_mcse": results["sweep"].attrs.get("target_mcse"),
                              "chunk_size": results["sweep"].attrs.get("chunk_size")}
-        results["x"] = sblock.get("x")
         print(f"sweep: {len(results['sweep'])} rows")
     if "search" not in sf.blocks and "sweep" not in sf.blocks:
         results["run"] = base_run(sf, args, seed)
