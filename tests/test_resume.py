@@ -65,9 +65,17 @@ def project(tmp_path):
     return tmp_path
 
 
+def _default_sigint():
+    # A shell that starts a job in the background (as CI runners may) sets SIGINT to "ignore",
+    # and children inherit that: Python then installs no KeyboardInterrupt handler. The child
+    # stands for a planner's terminal session, so give it the default disposition back.
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def _cli(project, store, *extra):
     cmd = [sys.executable, "-m", "simpower.cli.main", "run", "s.toml", "--store", store, "-q", *extra]
-    return subprocess.Popen(cmd, cwd=project, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    return subprocess.Popen(cmd, cwd=project, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            preexec_fn=_default_sigint)
 
 
 def _stored_chunks(path: Path) -> int:
