@@ -257,3 +257,33 @@ def test_scenario_file_store_and_execution_blocks(tmp_path, capsys):
     assert main(["run", str(toml), "-q"]) == 2
     err = capsys.readouterr().err
     assert "`store.pathh` is not a field of [store]" in err and "path" in err
+
+
+def test_resuming_a_store_written_by_other_code_warns(tmp_path, monkeypatch):
+    # the digest of simpower's source is recorded; a resume with other code says so
+    path = tmp_path / "code.sqlite"
+    sp.run(scenario(), reps=500, seed=3, n_jobs=1, chunk_size=250, store=path)
+    import simpower._provenance as prov
+
+    monkeypatch.setattr(prov, "source_digest", lambda: "0123456789abcdef")
+    with pytest.warns(RuntimeWarning, match="written by simpower source .* this is 0123456789abcdef"):
+        sp.run(scenario(), reps=750, seed=3, n_jobs=1, chunk_size=250, store=path)
+
+
+def test_cli_shows_the_code_change_warning_in_one_line(tmp_path, capsys):
+    from simpower.cli.main import main
+
+    f = tmp_path / "s.toml"
+    f.write_text('seed = 4\nreps = 400\nchunk_size = 200\n[process]\ntype = "normal_two_arm"\nn = 10\n'
+                 'effect = 0.5\n[analysis]\ntype = "t_test"\n')
+    path = tmp_path / "cli.sqlite"
+    assert main(["run", str(f), "--store", str(path), "-q", "--jobs", "1"]) == 0
+    con = sqlite3.connect(path)
+    con.execute("UPDATE meta SET value='feedfacefeedface' WHERE key='simpower_source_sha256'")
+    con.commit()
+    con.close()
+    capsys.readouterr()
+    assert main(["run", str(f), "--store", str(path), "-q", "--jobs", "1", "--reps", "600"]) == 0
+    err = capsys.readouterr().err
+    lines = [ln for ln in err.splitlines() if "written by simpower source feedfacefeedface" in ln]
+    assert len(lines) == 1 and lines[0].startswith("simpower: warning: ")

@@ -36,7 +36,27 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _one_line_warning(message, category, filename, lineno, file=None, line=None):
+    """Warnings of simpower's own (e.g. resuming a store written by other code) as one line."""
+    import warnings
+
+    if category is RuntimeWarning and "simpower" in str(filename):
+        print(f"simpower: warning: {message}", file=file or sys.stderr)
+    else:
+        sys.stderr.write(warnings.formatwarning(message, category, filename, lineno, line))
+
+
 def main(argv: list[str] | None = None) -> int:
+    import warnings
+
+    previous, warnings.showwarning = warnings.showwarning, _one_line_warning
+    try:
+        return _main(argv)
+    finally:
+        warnings.showwarning = previous
+
+
+def _main(argv: list[str] | None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "func", None):

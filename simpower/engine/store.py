@@ -490,6 +490,7 @@ class RunStore:
         if row is not None:
             old_fp, old_seed, old_cs, old_reps, old_spec = row
             where = f"{self.path}: grid point {point}"
+            self._warn_code_change()
             if old_fp != fp:
                 changes = _spec_diff(json.loads(old_spec), json.loads(json.dumps(spec, default=str)))
                 what = "; ".join(changes[:4]) if changes else "the spec differs"
@@ -508,6 +509,21 @@ class RunStore:
             c.execute("INSERT OR REPLACE INTO points VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
                       (int(point), fp, str(int(seed)), int(chunk_size), int(reps),
                        json.dumps(_analyses_info(scenario)), json.dumps(spec, default=str), time.time()))
+
+    def _warn_code_change(self) -> None:
+        """Warn (once per store) when the stored chunks were computed by other simpower source code."""
+        if getattr(self, "_code_checked", False):
+            return
+        self._code_checked = True
+        from .._provenance import source_digest
+
+        old = self.meta().get("simpower_source_sha256")
+        if old and old != source_digest():
+            import warnings
+
+            warnings.warn(f"{self.path} was written by simpower source {old}, this is {source_digest()}: chunks "
+                          f"computed now may differ from an uninterrupted run with either code; to be sure, "
+                          f"start a new store.", RuntimeWarning, stacklevel=3)
 
     # -- chunks ----------------------------------------------------------------------
     def save(self, out: ChunkOutput) -> None:
