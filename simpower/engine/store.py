@@ -7,8 +7,9 @@ valid store whose finished chunks a rerun reuses. With the default
 ``sync="normal"`` a power cut may lose the last few commits (never corrupt the
 file); ``sync="full"`` makes every commit reach the disk before the run goes on.
 
-Nothing is pickled: arrays are raw little-endian bytes with ``dtype``,
-``shape`` and a CRC-32 beside them, the scenario is its JSON spec, and only
+Nothing is pickled: each chunk's arrays of one analysis are raw
+little-endian bytes laid end to end, with their layout (field, dtype, shape)
+and a CRC-32 beside them, the scenario is its JSON spec, and only
 numeric dtypes from a short list are ever decoded -- a store received from
 someone else is safe to open.
 
@@ -21,9 +22,10 @@ a resumed run equals an uninterrupted one bit for bit.
 Tables: ``meta(key, value)``; ``points(point, fingerprint, seed, chunk_size,
 reps, analyses, scenario, updated_at)``; ``chunks(point, chunk, size, seconds,
 started_at, finished_at, worker, timeout_enforced)``; ``arrays(point, chunk,
-analysis, field, dtype, shape, crc32, data)``; ``causes(point, chunk, code,
-cause, message)``; ``chunk_analyses(point, chunk, analysis, path,
-hypotheses)``.
+analysis, path, hypotheses, layout, crc32, data)``; ``causes(point, chunk,
+code, cause, message)``. (Format version 1 kept one ``arrays`` row per field
+and a ``chunk_analyses`` table; one row per chunk and analysis costs fewer
+pages per commit.)
 
 Examples
 --------
@@ -62,7 +64,7 @@ from ..errors import StoreError
 from .chunk import ChunkOutput
 
 FORMAT = "simpower-run-store"
-VERSION = "1"
+VERSION = "2"
 #: the only dtypes ever decoded from a store
 DTYPES = {"<f8": np.dtype("<f8"), "<i2": np.dtype("<i2"), "<i4": np.dtype("<i4"), "<i8": np.dtype("<i8"),
           "|b1": np.dtype("|b1")}
@@ -78,46 +80,62 @@ CREATE TABLE IF NOT EXISTS chunks (
     point INTEGER NOT NULL, chunk INTEGER NOT NULL, size INTEGER NOT NULL, seconds REAL NOT NULL,
     started_at REAL, finished_at REAL, worker TEXT, timeout_enforced INTEGER, PRIMARY KEY (point, chunk));
 CREATE TABLE IF NOT EXISTS arrays (
-    point INTEGER NOT NULL, chunk INTEGER NOT NULL, analysis TEXT NOT NULL, field TEXT NOT NULL,
-    dtype TEXT NOT NULL, shape TEXT NOT NULL, crc32 INTEGER NOT NULL, data BLOB NOT NULL,
-    PRIMARY KEY (point, chunk, analysis, field));
+    point INTEGER NOT NULL, chunk INTEGER NOT NULL, analysis TEXT NOT NULL, path TEXT, hypotheses TEXT,
+    layout TEXT NOT NULL, crc32 INTEGER NOT NULL, data BLOB NOT NULL, PRIMARY KEY (point, chunk, analysis));
 CREATE TABLE IF NOT EXISTS causes (
     point INTEGER NOT NULL, chunk INTEGER NOT NULL, code INTEGER NOT NULL, cause TEXT NOT NULL, message TEXT,
     PRIMARY KEY (point, chunk, code));
-CREATE TABLE IF NOT EXISTS chunk_analyses (
-    point INTEGER NOT NULL, chunk INTEGER NOT NULL, analysis TEXT NOT NULL, path TEXT, hypotheses TEXT,
-    PRIMARY KEY (point, chunk, analysis));
 """
-TABLES = ("meta", "points", "chunks", "arrays", "causes", "chunk_analyses")
+TABLES = ("meta", "points", "chunks", "arrays", "causes")
 
 
-# -- array codec -------------------------------------------------------------
-def encode_array(a: np.ndarray) -> tuple[str, str, int, bytes]:
-    """(dtype, shape, crc32, bytes) of a numeric array, little-endian."""
+# -- record codec ------------------------------------------------------------
+def _little(a: np.ndarray) -> np.ndarray:
     a = np.asarray(a)
     dt = a.dtype.newbyteorder("<") if a.dtype.byteorder not in ("|", "<") else a.dtype
-    code = dt.str
-    if code not in DTYPES:
+    if dt.str not in DTYPES:
         raise StoreError(f"cannot store an array of dtype {a.dtype} (allowed: {', '.join(DTYPES)}).")
-    data = np.ascontiguousarray(a, dtype=dt).tobytes()
-    return code, json.dumps(list(a.shape)), zlib.crc32(data), data
+    return np.ascontiguousarray(a, dtype=dt)
 
 
-def decode_array(dtype: str, shape: str, crc: int, data: bytes, where: str = "") -> np.ndarray:
-    """The array encoded by :func:`encode_array`; checks dtype, size and CRC."""
-    dt = DTYPES.get(dtype)
-    if dt is None:
-        raise StoreError(f"{where}: array of dtype {dtype!r} refused (a store holds only {', '.join(DTYPES)}).")
+def encode_record(rec: dict[str, np.ndarray]) -> tuple[str, int, memoryview]:
+    """(layout, crc32, bytes) of one analysis' arrays in a chunk, laid end to end.
+
+    ``layout`` is JSON ``[[field, dtype, shape], ...]`` in the order of the
+    bytes; every array is little-endian, of a dtype from :data:`DTYPES`. One
+    blob per chunk and analysis (not one per field) keeps a commit to a few
+    pages besides the data.
+    """
+    parts = [(f, _little(v)) for f, v in rec.items()]
+    layout = json.dumps([[f, v.dtype.str, list(v.shape)] for f, v in parts])
+    data = np.concatenate([v.reshape(-1).view(np.uint8) for _, v in parts]) if parts else np.empty(0, np.uint8)
+    view = memoryview(data)
+    return layout, zlib.crc32(view), view
+
+
+def decode_record(layout: str, crc: int, data: bytes, where: str = "") -> dict[str, np.ndarray]:
+    """The arrays encoded by :func:`encode_record`; checks dtypes, sizes and the CRC."""
     try:
-        dims = [int(d) for d in json.loads(shape)]
+        fields = [(str(f), str(dt), [int(d) for d in shape]) for f, dt, shape in json.loads(layout)]
     except (ValueError, TypeError):
-        raise StoreError(f"{where}: unreadable array shape {shape!r}; the store is corrupted.") from None
-    if len(data) != dt.itemsize * math.prod(dims):
-        raise StoreError(f"{where}: array holds {len(data)} bytes, expected {dt.itemsize * math.prod(dims)} "
-                         f"for shape {tuple(dims)}; the store is corrupted.")
+        raise StoreError(f"{where}: unreadable array layout {layout!r}; the store is corrupted.") from None
+    for f, dt, _ in fields:
+        if dt not in DTYPES:
+            raise StoreError(f"{where}: array {f!r} of dtype {dt!r} refused (a store holds only "
+                             f"{', '.join(DTYPES)}).")
+    want = sum(DTYPES[dt].itemsize * math.prod(dims) for _, dt, dims in fields)
+    if len(data) != want:
+        raise StoreError(f"{where}: arrays hold {len(data)} bytes, their layout says {want}; the store is corrupted.")
     if zlib.crc32(data) != int(crc):
         raise StoreError(f"{where}: array checksum mismatch; the store is corrupted.")
-    return np.frombuffer(data, dtype=dt).reshape(dims).astype(dt.newbyteorder("="), copy=True)
+    out, at = {}, 0
+    for f, dt, dims in fields:
+        d = DTYPES[dt]
+        size = d.itemsize * math.prod(dims)
+        out[f] = np.frombuffer(data, dtype=d, count=math.prod(dims), offset=at).reshape(dims).astype(
+            d.newbyteorder("="), copy=True)
+        at += size
+    return out
 
 
 # -- file checks ---------------------------------------------------------------
@@ -184,18 +202,14 @@ def _flatten(spec: dict, prefix: str = "") -> dict[str, Any]:
 
 def _insert_chunk(conn: sqlite3.Connection, out: ChunkOutput) -> None:
     key = (int(out.point), int(out.chunk))
-    rows = []
-    for name, rec in out.records.items():
-        for f, arr in rec.items():
-            rows.append((*key, name, f, *encode_array(arr)))
-    for table in ("chunks", "arrays", "causes", "chunk_analyses"):
+    rows = [(*key, name, out.paths.get(name, ""), json.dumps(out.hypotheses.get(name, [])), *encode_record(rec))
+            for name, rec in out.records.items()]
+    for table in ("chunks", "arrays", "causes"):
         conn.execute(f"DELETE FROM {table} WHERE point=? AND chunk=?", key)
     conn.executemany("INSERT INTO arrays VALUES (?, ?, ?, ?, ?, ?, ?, ?)", rows)
-    conn.executemany("INSERT INTO causes VALUES (?, ?, ?, ?, ?)",
-                     [(*key, j, cause, out.messages.get(cause, "")) for j, cause in enumerate(out.causes, start=1)])
-    conn.executemany("INSERT INTO chunk_analyses VALUES (?, ?, ?, ?, ?)",
-                     [(*key, name, out.paths.get(name, ""), json.dumps(out.hypotheses.get(name, [])))
-                      for name in out.records])
+    if out.causes:
+        conn.executemany("INSERT INTO causes VALUES (?, ?, ?, ?, ?)",
+                         [(*key, j, cause, out.messages.get(cause, "")) for j, cause in enumerate(out.causes, 1)])
     conn.execute("INSERT INTO chunks VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
                  (*key, int(out.size), float(out.seconds), float(out.started_at), time.time(), out.worker,
                   None if out.timeout_enforced is None else int(out.timeout_enforced)))
@@ -224,6 +238,11 @@ def write_chunk(conn: sqlite3.Connection, out: ChunkOutput) -> None:
 
 #: page size of new stores (fewer overflow pages for the per-chunk arrays)
 PAGE_SIZE = 16384
+#: checkpoint the WAL into the main file once it holds about this many bytes. Small, so the
+#: writer thread checkpoints while the run computes and closing the store has little left
+#: to copy (SQLite's default, 1000 pages, left up to 16 MB for the run's own thread at close:
+#: the store then cost about 10% of a t-test run instead of about 4%; scripts/bench_store.py).
+CHECKPOINT_BYTES = 1_600_000
 
 
 def _connect(path: Path, sync: str) -> sqlite3.Connection:
@@ -233,6 +252,8 @@ def _connect(path: Path, sync: str) -> sqlite3.Connection:
         conn.execute(f"PRAGMA page_size={PAGE_SIZE}")
     conn.execute("PRAGMA journal_mode=WAL")
     conn.execute(f"PRAGMA synchronous={sync.upper()}")
+    page = int(conn.execute("PRAGMA page_size").fetchone()[0])
+    conn.execute(f"PRAGMA wal_autocheckpoint={max(1, CHECKPOINT_BYTES // page)}")
     return conn
 
 
@@ -558,21 +579,22 @@ class RunStore:
         c = self._conn
         where = f"{self.path}: point {key[0]} chunk {key[1]}"
         records: dict[str, dict[str, np.ndarray]] = {}
-        for name, f, dt, shape, crc, data in c.execute(
-                "SELECT analysis, field, dtype, shape, crc32, data FROM arrays WHERE point=? AND chunk=?", key):
-            records.setdefault(name, {})[f] = decode_array(dt, shape, crc, data, where)
+        paths, hyp = {}, {}
+        for name, path, h, layout, crc, data in c.execute(
+                "SELECT analysis, path, hypotheses, layout, crc32, data FROM arrays WHERE point=? AND chunk=?", key):
+            records[name] = decode_record(layout, crc, data, where)
+            paths[name] = path or ""
+            try:
+                h = json.loads(h or "[]")
+            except ValueError:
+                raise StoreError(f"{where}: unreadable hypothesis labels; the store is corrupted.") from None
+            if h:
+                hyp[name] = h
         causes, messages = [], {}
         for code, cause, msg in c.execute("SELECT code, cause, message FROM causes WHERE point=? AND chunk=? "
                                           "ORDER BY code", key):
             causes.append(cause)
             messages[cause] = msg or ""
-        paths, hyp = {}, {}
-        for name, path, h in c.execute("SELECT analysis, path, hypotheses FROM chunk_analyses "
-                                       "WHERE point=? AND chunk=?", key):
-            paths[name] = path
-            h = json.loads(h or "[]")
-            if h:
-                hyp[name] = h
         size = int(row[0])
         for name, rec in records.items():
             bad = [f for f in (*RECORD_FIELDS, "status") if f not in rec or rec[f].shape[:1] != (size,)]
@@ -581,7 +603,7 @@ class RunStore:
                                  f"the store is corrupted.")
             if rec["status"].max(initial=0) > len(causes):
                 raise StoreError(f"{where}: failure codes without causes; the store is corrupted.")
-        if not records or set(records) != set(paths):
+        if not records:
             raise StoreError(f"{where}: records are missing; the store is corrupted.")
         te = row[4]
         return ChunkOutput(key[0], key[1], size, records, causes, messages, paths, hyp, float(row[1]),
