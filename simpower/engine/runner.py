@@ -50,12 +50,17 @@ from ..summaries import WARNING_PREFIX
 from .chunk import ChunkOutput, run_chunk
 from .collect import CauseBook, RecordCollector
 from .executor import check_backend, effective_jobs, execute
+from .spool import RecordSpool
 from .tally import PointTally, StreamedResult
 
 BATCH_CHUNK = 2000
 LOOP_CHUNK = 200
-#: above this many replicates per point, records are not kept in memory unless asked
+#: above this many replicates per point, records are not kept unless asked (summaries stream)
 KEEP_RECORDS_LIMIT = 1_000_000
+#: records of at most this many replicates x analyses per point are held in memory; larger
+#: points (up to KEEP_RECORDS_LIMIT replicates) spool them to disk (simpower.engine.spool)
+#: and summarise from streaming tallies, so memory stays flat in reps
+RECORDS_IN_MEMORY = 25_000
 #: replicates a point needs before the failure threshold is applied
 MIN_FOR_STOP = 100
 
@@ -146,15 +151,19 @@ class _Point:
     #: streaming mode only: the causes and hypothesis labels seen so far
     stream_book: CauseBook | None = None
     hyp: dict = field(default_factory=dict)
+    #: streaming mode, records spooled to disk
+    spool: RecordSpool | None = None
 
     def add(self, out: ChunkOutput) -> None:
         if self.collector is not None:
             self.collector.add(out, out.chunk * self.chunk_size)
         else:
-            self.stream_book.remap(out)
+            table = self.stream_book.remap(out)
             for name, h in out.hypotheses.items():
                 self.hyp.setdefault(name, h)
             self.tally.add(out)
+            if self.spool is not None:
+                self.spool.add(out, out.chunk * self.chunk_size, table)
         for name, rec in out.records.items():
             codes, n = np.unique(rec["status"][rec["status"] > 0], return_counts=True)
             per = self.counts.setdefault(name, {})
@@ -265,11 +274,12 @@ def _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble):
     points = []
     for sc, r, key, cs in zip(scenarios, reps_list, keys, sizes):
         keep = keep_records if keep_records is not None else r <= KEEP_RECORDS_LIMIT
-        if keep:
+        in_memory = keep_records is True or r * len(sc.analyses) <= RECORDS_IN_MEMORY
+        if keep and in_memory:
             pt = _Point(sc, int(r), key, cs, RecordCollector(sc.analyses, int(r)), None)
         else:
-            pt = _Point(sc, int(r), key, cs, None, PointTally(sc, fit_trouble),
-                        stream_book=CauseBook())
+            pt = _Point(sc, int(r), key, cs, None, PointTally(sc, fit_trouble), stream_book=CauseBook(),
+                        spool=RecordSpool(sc.analyses, int(r)) if keep else None)
         points.append(pt)
     return points
 
@@ -382,11 +392,12 @@ def _result(pt: _Point, entropy, seconds, fit_trouble, n_jobs, backend, store) -
     if pt.collector is not None:
         return RunResult(pt.scenario, pt.reps, entropy, pt.chunk_size, pt.collector.records(), pt.paths, seconds,
                          fit_trouble, n_jobs=jobs, backend=backend, point=pt.key, chunk_seconds=pt.chunk_seconds)
-    causes, messages, _ = pt.stream_book.canonical()
+    causes, messages, table = pt.stream_book.canonical()
+    records = pt.spool.records(causes, messages, table) if pt.spool is not None else None
     return StreamedResult(pt.scenario, pt.reps, entropy, pt.chunk_size, pt.tally, causes, messages, pt.paths,
                           seconds, fit_trouble, n_jobs=jobs, backend=backend, point=pt.key,
                           chunk_seconds=pt.chunk_seconds, hypotheses=pt.hyp,
-                          store_path=str(getattr(store, "path", "")) or None)
+                          store_path=str(getattr(store, "path", "")) or None, records=records)
 
 
 def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,

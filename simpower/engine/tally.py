@@ -254,18 +254,19 @@ class StreamedResult(RunResult):
     """A :class:`~simpower.result.RunResult` built from chunk tallies instead of per-replicate arrays.
 
     Summaries, comparisons and per-hypothesis powers are the same quantities;
-    ``records`` is unavailable (read them from the run store).
+    ``records`` is unavailable (read them from the run store) unless given
+    (records spooled to disk, :mod:`simpower.engine.spool`).
     """
 
     def __init__(self, scenario, reps, seed, chunk_size, tally: PointTally, causes, messages, paths, seconds,
                  fit_trouble="failure", n_jobs=None, backend=None, point=0, chunk_seconds=0.0, hypotheses=None,
-                 store_path=None, extra=None):
+                 store_path=None, extra=None, records=None):
         # the base class sets the common attributes (no records: no summaries computed there)
         super().__init__(scenario, reps, seed, chunk_size, {}, paths, seconds, fit_trouble, n_jobs=n_jobs,
                          backend=backend, point=point, chunk_seconds=chunk_seconds, extra=extra)
         self.store_path = store_path
         hypotheses = hypotheses or {}
-        self.records = _MissingRecords(causes, messages, hypotheses, store_path)
+        self.records = records if records is not None else _MissingRecords(causes, messages, hypotheses, store_path)
         self._messages = messages
         tallies, self._pairs = tally.folded()
         self.summaries = {}
@@ -310,9 +311,13 @@ class StreamedResult(RunResult):
         return [self.compare(names[0], other) for other in names[1:]]
 
     def records_frame(self, analysis=None):
+        if not isinstance(self.records, _MissingRecords):
+            return super().records_frame(analysis)
         self.records._fail()
 
     def to_dict(self):
+        if not isinstance(self.records, _MissingRecords):
+            return super().to_dict()
         saved = self.records
         self.records = {n: _Messages(self._messages) for n in self.summaries} if self._messages else {}
         try:
@@ -321,6 +326,8 @@ class StreamedResult(RunResult):
             self.records = saved
 
     def __str__(self) -> str:
+        if not isinstance(self.records, _MissingRecords):
+            return super().__str__()
         saved = self.records
         self.records = {n: _Messages(self._messages) for n in self.summaries}
         try:
