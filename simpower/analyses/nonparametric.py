@@ -3,8 +3,10 @@
 Both use the normal approximation with the tie correction, as
 ``scipy.stats.mannwhitneyu(method="asymptotic")`` and
 ``scipy.stats.wilcoxon(method="asymptotic")`` do; the per-replicate paths call
-scipy, and the batch paths rank every replicate of a chunk at once
-(:func:`rank_rows`) and agree with scipy to about 1e-10.
+scipy, and the batch paths sort every replicate of a chunk at once
+(:func:`rank_rows`) and agree with scipy to about 1e-10. The Mann-Whitney batch
+sorts the pooled arms once: the rank sum, the tie term and the placement values of
+the probability index all come from that one sort.
 
 Estimates are Hodges-Lehmann estimates (Hodges & Lehmann 1963, Ann Math Stat
 34:598-611): the median of the pairwise differences between arms (a location
@@ -15,11 +17,21 @@ large-sample approximation). The shift is the estimand of the built-in
 processes' ``true_effect`` under a location-shift model, so bias and coverage
 are meaningful there; the Mann-Whitney test can report the probability index
 P(Y1 > Y0) + P(Y1 = Y0)/2 instead.
+
+The order statistics come from one of two paths that give the same floats
+(:func:`order_statistic_backend`): with numba installed (``pip install
+"simpower[fast]"``), a compiled selection on the two sorted samples
+(:mod:`simpower.analyses._rank_kernels`, O((n0 + n1) log m) per replicate);
+otherwise, or with the environment variable ``SIMPOWER_NO_NUMBA=1`` (read at each
+call), the numpy reference path that forms all m differences and partitions them.
+Every order statistic is one of the differences, computed by the same floating-point
+operation on both paths, so a seed gives the same numbers with or without numba.
 """
 
 from __future__ import annotations
 
 import math
+import os
 
 import numpy as np
 from scipy import special, stats
@@ -28,11 +40,62 @@ from .._validation import Bool, Choice, Real
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
 from .ttests import PairedT, _batch_arms, _split_arms
 
-#: largest number of pairwise differences held in memory at once by the batch paths
+#: largest number of pairwise differences held in memory at once by the numpy path
 _BLOCK = 2_000_000
+
+#: environment variable: set to 1 (or true/yes), the Hodges-Lehmann estimates use the numpy path
+NO_NUMBA_ENV = "SIMPOWER_NO_NUMBA"
+
+
+def order_statistic_backend() -> str:
+    """Which path computes the Hodges-Lehmann order statistics now: 'numba' or 'numpy'.
+
+    'numba' when numba is importable and ``SIMPOWER_NO_NUMBA`` is unset (or 0,
+    false, no); read at each call, so a test or a session can switch paths. Both
+    paths return the same floats.
+    """
+    if os.environ.get(NO_NUMBA_ENV, "").strip().lower() not in ("", "0", "false", "no"):
+        return "numpy"
+    from . import _rank_kernels  # imports numba (if there) on first use only
+
+    return "numba" if _rank_kernels.HAVE_NUMBA else "numpy"
 
 
 # -- ranks for many replicates at once ------------------------------------------------
+def _sorted_rows(a: np.ndarray):
+    """Argsort, sorted values and group starts (``new[:, p]``: position p starts a tie group) of each row.
+
+    Any sort kind serves: the ranks and tie terms derived from it do not depend on
+    the order of tied values.
+    """
+    order = np.argsort(a, axis=1)
+    s = np.take_along_axis(a, order, axis=1)
+    new = np.ones(a.shape, bool)
+    new[:, 1:] = s[:, 1:] != s[:, :-1]
+    return order, s, new
+
+
+def _tie_groups(new: np.ndarray):
+    """First and last sorted position of the tie group of each sorted position."""
+    r, n = new.shape
+    idx = np.broadcast_to(np.arange(n), (r, n))
+    last = np.ones((r, n), bool)
+    last[:, :-1] = new[:, 1:]
+    start = np.maximum.accumulate(np.where(new, idx, 0), axis=1)
+    end = np.minimum.accumulate(np.where(last, idx, n - 1)[:, ::-1], axis=1)[:, ::-1]
+    return start, end
+
+
+def _tied_ranks(order, new):
+    """Average ranks and tie terms of rows with ties (``order``: argsort, ``new``: group starts)."""
+    start, end = _tie_groups(new)
+    ranks = np.empty(order.shape)
+    np.put_along_axis(ranks, order, (start + end) / 2.0 + 1.0, axis=1)
+    t = (end - start + 1).astype(float)
+    # each member of a tie group of size t adds t^2 - 1: t (t^2 - 1) per group
+    return ranks, np.sum(t * t - 1.0, axis=1)
+
+
 def rank_rows(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Average ranks along axis 1 and the tie term sum(t^3 - t) of each row.
 
@@ -49,60 +112,89 @@ def rank_rows(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """
     a = np.asarray(a, float)
     r, n = a.shape
-    order = np.argsort(a, axis=1, kind="stable")
-    s = np.take_along_axis(a, order, axis=1)
-    new = np.ones((r, n), bool)
-    new[:, 1:] = s[:, 1:] != s[:, :-1]
-    ranks = np.empty((r, n))
+    order, _, new = _sorted_rows(a)
     tied = ~new.all(axis=1)
-    if not tied.any():  # continuous data: ranks are the inverse permutation, no tie term
-        np.put_along_axis(ranks, order, np.broadcast_to(np.arange(1.0, n + 1.0), (r, n)), axis=1)
-        return ranks, np.zeros(r)
-    if not tied.all():  # rank tie-free rows the fast way, the others below
-        np.put_along_axis(ranks, order, np.broadcast_to(np.arange(1.0, n + 1.0), (r, n)),
-                          axis=1)
-        sub_ranks, sub_tie = _rank_rows_ties(order[tied], s[tied], new[tied])
-        ranks[tied] = sub_ranks
-        tie = np.zeros(r)
-        tie[tied] = sub_tie
+    tie = np.zeros(r)
+    if tied.all():
+        ranks, tie = _tied_ranks(order, new)
         return ranks, tie
-    return _rank_rows_ties(order, s, new)
+    ranks = np.empty((r, n))  # continuous data: ranks are the inverse permutation
+    np.put_along_axis(ranks, order, np.broadcast_to(np.arange(1.0, n + 1.0), (r, n)), axis=1)
+    if tied.any():
+        ranks[tied], tie[tied] = _tied_ranks(order[tied], new[tied])
+    return ranks, tie
 
 
-def _rank_rows_ties(order, s, new):
-    """Average ranks and tie terms of rows with ties (``order``/``s``: argsort and sorted values)."""
-    r, n = s.shape
-    idx = np.broadcast_to(np.arange(n), (r, n))
-    last = np.ones((r, n), bool)
-    last[:, :-1] = new[:, 1:]
-    start = np.maximum.accumulate(np.where(new, idx, 0), axis=1)
-    end = np.minimum.accumulate(np.where(last, idx, n - 1)[:, ::-1], axis=1)[:, ::-1]
-    ranks = np.empty((r, n))
-    np.put_along_axis(ranks, order, (start + end) / 2.0 + 1.0, axis=1)
-    t = (end - start + 1).astype(float)
-    # each member of a tie group of size t adds t^2 - 1: t (t^2 - 1) per group
-    return ranks, np.sum(t * t - 1.0, axis=1)
+class _PooledRanking:
+    """One sort of the pooled rows ``[x1 (n1 columns), y0 (n0 columns)]`` and what follows from it.
+
+    ``rank_sum1``: rank sum of the first n1 columns (arm 1); ``tie``: the tie term.
+    """
+
+    def __init__(self, pooled: np.ndarray, n1: int):
+        self.n1 = n1
+        self.order, _, self.new = _sorted_rows(pooled)
+        r, n = pooled.shape
+        self.tied = ~self.new.all(axis=1)
+        # tie-free rows: the rank of a value is its sorted position + 1 (sums of integers: exact)
+        self.rank_sum1 = (self.order < n1) @ np.arange(1.0, n + 1.0)
+        self.tie = np.zeros(r)
+        if self.tied.any():
+            ranks, self.tie[self.tied] = _tied_ranks(self.order[self.tied], self.new[self.tied])
+            self.rank_sum1[self.tied] = ranks[:, :n1].sum(axis=1)
+
+    def placements(self):
+        """Placement values (DeLong et al. 1988): for each arm-1 value the share of arm 0 below it,
+        for each arm-0 value the share of arm 1 above it (ties count half); (R, n1) and (R, n0),
+        each in sorted order.
+        """
+        order, n1 = self.order, self.n1
+        r, n = order.shape
+        n0 = n - n1
+        is0 = order >= n1
+        cum0 = np.cumsum(is0, axis=1)
+        # per sorted position: arm-0 values before its tie group and in it, the group's start and size
+        below0 = cum0 - is0
+        in0 = is0.astype(np.int64)
+        start = np.broadcast_to(np.arange(n), (r, n))
+        size = np.ones((r, n), np.int64)
+        if self.tied.any():
+            rows = self.tied
+            st, en = _tie_groups(self.new[rows])
+            c = cum0[rows]
+            before = np.where(st > 0, np.take_along_axis(c, np.maximum(st - 1, 0), axis=1), 0)
+            below0[rows] = before
+            in0[rows] = np.take_along_axis(c, en, axis=1) - before
+            start = start.copy()
+            start[rows] = st
+            size[rows] = en - st + 1
+        # twice the counts, integers: arm 0 below an arm-1 value, arm 1 below an arm-0 value
+        twice10 = (2 * below0 + in0)[~is0].reshape(r, n1)
+        twice01 = (2 * (start - below0) + (size - in0))[is0].reshape(r, n0)
+        return twice10 / (2.0 * n0), 1.0 - twice01 / (2.0 * n1)
 
 
-def _order_stats(d: np.ndarray, ks) -> np.ndarray:
+def _order_stats(d: np.ndarray, ks) -> dict:
     """The 0-based order statistics ``ks`` of each row of ``d``, as a dict k -> values (R,)."""
     ks = sorted(set(int(k) for k in ks))
     part = np.partition(d, ks, axis=1)
     return {k: part[:, k] for k in ks}
 
 
-def _hl_from_differences(d: np.ndarray, k_ci: int):
-    """Median and the (k, m + 1 - k) order-statistic interval (1-based k) of each row."""
-    m = d.shape[1]
-    mids = [(m - 1) // 2, m // 2]
-    ks = list(mids)
+def _hl_ranks(m: int, k_ci: int) -> list[int]:
+    """0-based ranks needed: the two middle ones and, when k >= 1, the interval's k-1 and m-k."""
+    ks = [(m - 1) // 2, m // 2]
     if k_ci >= 1:
         ks += [k_ci - 1, m - k_ci]
-    v = _order_stats(d, ks)
-    est = 0.5 * (v[mids[0]] + v[mids[1]])
+    return ks
+
+
+def _hl_from_order_stats(v: dict, m: int, k_ci: int, rows: int):
+    """Median and the (k, m + 1 - k) order-statistic interval (1-based k) from the order statistics ``v``."""
+    est = 0.5 * (v[(m - 1) // 2] + v[m // 2])
     if k_ci >= 1:
         return est, v[k_ci - 1], v[m - k_ci]
-    inf = np.full(d.shape[0], np.inf)
+    inf = np.full(rows, np.inf)
     return est, -inf, inf
 
 
@@ -118,6 +210,33 @@ def _blocks(rows: int, per_row: int):
         yield slice(lo, min(rows, lo + step))
 
 
+def _pairwise_order_stats(kind: str, arrays, ks, m: int) -> dict:
+    """Order statistics ``ks`` of the pairwise values of each row, by the current backend.
+
+    ``kind`` 'difference' (``arrays`` = (y0, y1): all y1_j - y0_i) or 'walsh'
+    (``arrays`` = (d,): (d_i + d_j) / 2, i <= j). Both backends return the same floats.
+    """
+    rows = arrays[0].shape[0]
+    if order_statistic_backend() == "numba":
+        from . import _rank_kernels
+
+        if kind == "difference":
+            return _rank_kernels.difference_order_stats(arrays[1], arrays[0], ks)
+        return _rank_kernels.walsh_order_stats(arrays[0], ks)
+    out = {k: np.empty(rows) for k in ks}
+    if kind == "walsh":
+        i, j = np.triu_indices(arrays[0].shape[1])
+    for b in _blocks(rows, m):
+        if kind == "difference":
+            y0, y1 = arrays
+            w = (y1[b, None, :] - y0[b, :, None]).reshape(-1, m)
+        else:
+            w = 0.5 * (arrays[0][b][:, i] + arrays[0][b][:, j])
+        for k, v in _order_stats(w, ks).items():
+            out[k][b] = v
+    return out
+
+
 def shift_estimate(y0: np.ndarray, y1: np.ndarray, ci_level: float):
     """Hodges-Lehmann shift (median of y1_j - y0_i) with its order-statistic CI, row by row.
 
@@ -130,11 +249,8 @@ def shift_estimate(y0: np.ndarray, y1: np.ndarray, ci_level: float):
     n1 = y1.shape[1]
     m = n0 * n1
     k = _ci_index(m, math.sqrt(m * (n0 + n1 + 1) / 12.0), ci_level)
-    est, lo, hi = (np.empty(r) for _ in range(3))
-    for b in _blocks(r, m):
-        d = (y1[b, None, :] - y0[b, :, None]).reshape(-1, m)
-        est[b], lo[b], hi[b] = _hl_from_differences(d, k)
-    return est, lo, hi
+    v = _pairwise_order_stats("difference", (y0, y1), _hl_ranks(m, k), m)
+    return _hl_from_order_stats(v, m, k, r)
 
 
 def pseudo_median(d: np.ndarray, ci_level: float):
@@ -145,14 +261,10 @@ def pseudo_median(d: np.ndarray, ci_level: float):
     M/2 - z sqrt(n (n + 1) (2n + 1) / 24) (Hollander & Wolfe 1999, eq. 3.26).
     """
     r, n = d.shape
-    i, j = np.triu_indices(n)
-    mm = i.size
+    mm = n * (n + 1) // 2
     k = _ci_index(mm, math.sqrt(n * (n + 1) * (2 * n + 1) / 24.0), ci_level)
-    est, lo, hi = (np.empty(r) for _ in range(3))
-    for b in _blocks(r, mm):
-        w = 0.5 * (d[b][:, i] + d[b][:, j])
-        est[b], lo[b], hi[b] = _hl_from_differences(w, k)
-    return est, lo, hi
+    v = _pairwise_order_stats("walsh", (d,), _hl_ranks(mm, k), mm)
+    return _hl_from_order_stats(v, mm, k, r)
 
 
 def _tail_p(z, alternative):
@@ -197,7 +309,9 @@ class MannWhitney(Analysis):
     the scenario's ``true_effects`` otherwise); the probability index only
     with ``true_effects``.
     Missing outcomes (NaN) are dropped. The batch path (contiguous arms, no
-    missing values) ranks all replicates at once.
+    missing values) sorts the pooled arms of all replicates at once; the
+    Hodges-Lehmann order statistics use the compiled kernel when numba is
+    installed (see the module notes).
     """
 
     name = "mann_whitney"
@@ -220,11 +334,12 @@ class MannWhitney(Analysis):
         x1 = y1 - self.null_value
         r = stats.mannwhitneyu(x1, y0, use_continuity=self.continuity, alternative=self.alternative,
                                method="asymptotic")
-        out = self._estimates(y0[None, :], x1[None, :], np.array([float(r.statistic)]), scipy_ranks=True)
+        out = self._estimates(y0[None, :], x1[None, :], np.array([float(r.statistic)]))
         return TestResult(pvalue=float(r.pvalue), statistic=float(r.statistic),
                           **{k: float(v[0]) for k, v in out.items()})
 
-    def _estimates(self, y0, x1, u1, scipy_ranks=False):
+    def _estimates(self, y0, x1, u1, pooled=None):
+        """Estimate, SE and CI; ``pooled`` (batch path): the :class:`_PooledRanking` of [x1, y0]."""
         n0, n1 = y0.shape[1], x1.shape[1]
         if self.estimand == "none":
             return {}
@@ -233,13 +348,12 @@ class MannWhitney(Analysis):
             est, lo, hi = est + self.null_value, lo + self.null_value, hi + self.null_value
             return {"estimate": est, "se": np.full(est.shape, np.nan), "ci_low": lo, "ci_high": hi}
         est = u1 / (n0 * n1)
-        if scipy_ranks:
-            rank = lambda a: (stats.rankdata(a, axis=1), None)  # noqa: E731
+        if pooled is None:  # per replicate: placements from scipy's ranks, the reference
+            both = stats.rankdata(np.concatenate([y0, x1], axis=1), axis=1)
+            v10 = (both[:, n0:] - stats.rankdata(x1, axis=1)) / n0       # share of arm 0 below each arm-1 value
+            v01 = 1.0 - (both[:, :n0] - stats.rankdata(y0, axis=1)) / n1  # share of arm 1 above each arm-0 value
         else:
-            rank = rank_rows
-        both = rank(np.concatenate([y0, x1], axis=1))[0]
-        v10 = (both[:, n0:] - rank(x1)[0]) / n0       # share of arm 0 below each arm-1 value
-        v01 = 1.0 - (both[:, :n0] - rank(y0)[0]) / n1  # share of arm 1 above each arm-0 value
+            v10, v01 = pooled.placements()
         with np.errstate(invalid="ignore", divide="ignore"):
             se = np.sqrt(v10.var(axis=1, ddof=1) / n1 + v01.var(axis=1, ddof=1) / n0)
         z = stats.norm.ppf(0.5 + self.ci_level / 2)
@@ -254,19 +368,19 @@ class MannWhitney(Analysis):
         x1 = y1 - self.null_value
         n0, n1 = y0.shape[1], x1.shape[1]
         n = n0 + n1
-        ranks, tie = rank_rows(np.concatenate([x1, y0], axis=1))
-        u1 = ranks[:, :n1].sum(axis=1) - n1 * (n1 + 1) / 2.0
+        pooled = _PooledRanking(np.concatenate([x1, y0], axis=1), n1)
+        u1 = pooled.rank_sum1 - n1 * (n1 + 1) / 2.0
         u0 = n0 * n1 - u1
         u = {"greater": u1, "less": u0}.get(self.alternative)
         if u is None:
             u = np.maximum(u1, u0)
-        s = np.sqrt(n0 * n1 / 12.0 * ((n + 1) - tie / (n * (n - 1))))
+        s = np.sqrt(n0 * n1 / 12.0 * ((n + 1) - pooled.tie / (n * (n - 1))))
         num = u - n0 * n1 / 2.0 - (0.5 if self.continuity else 0.0)
         with np.errstate(divide="ignore", invalid="ignore"):
             z = num / s
         p = special.ndtr(-z) * (2.0 if self.alternative == "two-sided" else 1.0)
         out = {"pvalue": np.clip(p, 0.0, 1.0)}
-        out.update(self._estimates(y0, x1, u1))
+        out.update(self._estimates(y0, x1, u1, pooled))
         return out
 
 

@@ -1,0 +1,506 @@
+"""Exact order statistics of pairwise sums of two sorted samples, without forming all of them.
+
+The Hodges-Lehmann estimates need a few order statistics of m pairwise values per
+replicate: the differences ``x_j - y_i`` of two samples (m = n_x n_y) or the Walsh
+averages ``(d_i + d_j) / 2``, i <= j, of one sample (m = n (n + 1) / 2). Forming
+all m values and partitioning them costs O(m) per replicate. Sorted, both samples
+give a matrix ``M[i, j] = scale * (u[i] + v[j])`` that increases along rows and
+columns, and the number of entries <= t is a staircase walk of O(n_u + n_v)
+steps. :func:`select_sorted_sums` selects order statistics of such a matrix by
+narrowing a bracket ``(lo, hi]`` of thresholds with per-row column bounds (the
+selection in a sorted matrix of Johnson & Mizoguchi 1978, SIAM J Comput
+7:147-153, as used for the Hodges-Lehmann estimate by Monahan 1984, ACM TOMS
+10:265-270, Algorithm 616), then enumerating the few candidates left inside the
+bracket. Its thresholds are guessed from a normal model of the pairwise values and
+refined by interpolating the staircase counts; the guesses only decide the speed:
+the result is exact whatever they are, and every returned value is an entry
+``scale * (u[i] + v[j])`` computed with the same floating-point operations as the
+full matrix, so it is bit-identical to ``np.partition`` of that matrix.
+
+Differences use ``u = -sort(y)[::-1]`` and ``v = sort(x)`` with ``scale = 1``
+(``x_j + (-y_i)`` is ``x_j - y_i`` exactly in IEEE arithmetic); Walsh averages use
+``u = v = sort(d)``, ``scale = 0.5`` and only the columns ``j >= i`` (triangular).
+
+The kernel is compiled with numba when numba is installed (the ``fast`` extra:
+``pip install "simpower[fast]"``); without it the same functions stay plain Python
+(slow, but importable and testable), and the analyses use their numpy reference
+path instead (:func:`simpower.analyses.nonparametric.order_statistic_backend`).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy import special
+
+try:  # optional: the compiled kernel
+    import numba
+except ImportError:  # pragma: no cover - exercised where numba is not installed
+    numba = None
+
+#: True when the kernel below is compiled (numba importable)
+HAVE_NUMBA = numba is not None
+
+#: a target's bracket is enumerated once it holds at most this many candidates per row and column
+_FLAT = 2
+#: rounds of staircase thresholds after which every open bracket is enumerated, however large
+_MAX_ROUNDS = 12
+#: counting passes over the enumerated candidates before the rest are sorted
+_FLAT_STEPS = 16
+#: candidates few enough to sort directly
+_FEW = 12
+#: entries of a row copied as one fixed-length block when enumerating
+_PAD = 4
+#: half-width of the first bracket around the normal model's guess, in ranks per sqrt(m)
+_FIRST_REACH = 1.0
+
+
+def _jit(fn):
+    """``numba.njit(cache=True)`` when numba is there, else the plain function."""
+    return numba.njit(cache=True)(fn) if HAVE_NUMBA else fn
+
+
+@_jit
+def _count_many(u, v, ts, owner, nq, lo_c, out, ii, jj):
+    """Row counts ``c_i(t) = #{j : u[i] + v[j] <= t}`` for the thresholds ``ts[:nq]``.
+
+    ``v`` ends with +inf (index n_v). Threshold q belongs to target ``owner[q]``,
+    whose bracket's lower counts ``lo_c[owner[q]]`` are row by row at most the
+    counts at ``ts[q]``. Each count climbs the staircase from the last row (the
+    counts grow from row to row); the walks run interleaved, so the latency of one
+    overlaps the others. Writes the counts to ``out[q]``.
+    """
+    nr = u.size
+    active = nq
+    for q in range(nq):
+        ii[q] = nr - 1
+        jj[q] = lo_c[owner[q], nr - 1]
+    while active > 0:
+        for q in range(nq):
+            i = ii[q]
+            if i >= 0:
+                j = jj[q]
+                le = u[i] + v[j] <= ts[q]
+                j += le
+                out[q, i] = j
+                i -= 1 - le
+                if i >= 0:
+                    low = lo_c[owner[q], i]
+                    if low > j:
+                        j = low
+                else:
+                    active -= 1
+                ii[q] = i
+                jj[q] = j
+
+
+@_jit
+def _valid_total(c, tri):
+    """Number of valid entries (columns j >= i when ``tri``) below the row counts ``c``."""
+    total = 0
+    if tri:
+        for i in range(c.size):
+            x = c[i] - i
+            total += x if x > 0 else 0
+    else:
+        for i in range(c.size):
+            total += c[i]
+    return total
+
+
+@_jit
+def _smallest_from(u, v, tri, c):
+    """Smallest valid entry in the columns ``j >= c[i]`` of any row (+inf if none)."""
+    best = np.inf
+    for i in range(u.size):
+        j = c[i]
+        if tri and j < i:
+            j = i
+        x = u[i] + v[j]   # v[n_v] = +inf
+        if x < best:
+            best = x
+    return best
+
+
+@_jit
+def _largest_before(u, v, tri, c):
+    """Largest valid entry in the columns ``j < c[i]`` of any row (-inf if none)."""
+    best = -np.inf
+    for i in range(u.size):
+        j = c[i] - 1
+        if j >= 0 and (j >= i or not tri):
+            x = u[i] + v[j]
+            if x > best:
+                best = x
+    return best
+
+
+@_jit
+def _enumerate(u, v, tri, lo, hi, buf):
+    """Copy the valid entries of the columns ``lo[i] <= j < hi[i]`` of every row to ``buf``.
+
+    ``v`` carries _PAD values of +inf past its end and ``buf`` _PAD spare slots, so a
+    row of at most _PAD entries is copied as a fixed-length block (no branch on its
+    length); the slots past the row's entries are overwritten by the next row.
+    """
+    p = 0
+    for i in range(u.size):
+        a = lo[i]
+        b = hi[i]
+        if tri:
+            a = a if a > i else i
+            b = b if b > i else i
+        ui = u[i]
+        w = b - a
+        if w <= _PAD:
+            for d in range(_PAD):
+                buf[p + d] = ui + v[a + d]
+        else:
+            for d in range(w):
+                buf[p + d] = ui + v[a + d]
+        p += w
+    return p
+
+
+@_jit
+def _insertion_sort(a, n):
+    for p in range(1, n):
+        x = a[p]
+        q = p - 1
+        while q >= 0 and a[q] > x:
+            a[q + 1] = a[q]
+            q -= 1
+        a[q + 1] = x
+
+
+@_jit
+def _select_flat(buf, c, r1, r2, a, b, ext):
+    """The r1-th and r2-th smallest (0-based, r1 <= r2 <= r1 + 1) of ``buf[:c]``, all in (a, b].
+
+    Narrows the value bracket (a, b] by counting passes over the candidates (no
+    data moved, so each pass is a plain loop), then sorts the few left. ``ext``
+    is a work array of at least _FEW + 1 values.
+    """
+    if not (a > -np.inf and b < np.inf):
+        a = np.inf
+        b = -np.inf
+        for i in range(c):
+            x = buf[i]
+            if x < a:
+                a = x
+            if x > b:
+                b = x
+        a = np.nextafter(a, -np.inf)
+    na = 0
+    nb = c
+    tau = 0.5 * (r1 + r2 + 1)
+    for step in range(_FLAT_STEPS):
+        width = nb - na
+        if width <= _FEW:
+            break
+        reach = 0.5 * math.sqrt(width) + 1.0
+        aim = tau + reach if nb - tau > tau - na else tau - reach
+        if aim < na + 0.5:
+            aim = na + 0.5
+        elif aim > nb - 0.5:
+            aim = nb - 0.5
+        t = a + (aim - na) * ((b - a) / width)
+        if not (t > a and t < b):   # rounding: the smallest candidate above a always makes progress
+            t = np.inf
+            for i in range(c):
+                x = buf[i]
+                if x > a and x < t:
+                    t = x
+            if t >= b:              # every candidate left has the value b
+                return b, b
+        cnt = 0
+        for i in range(c):
+            cnt += buf[i] <= t
+        if cnt <= r1:
+            a = t
+            na = cnt
+        elif cnt > r2:
+            b = t
+            nb = cnt
+        else:                       # cnt == r1 + 1 == r2: t splits the two
+            below = -np.inf
+            above = np.inf
+            for i in range(c):
+                x = buf[i]
+                if x <= t and x > below:
+                    below = x
+                if x > t and x < above:
+                    above = x
+            return below, above
+    k = nb - na
+    if k + 1 > ext.size:
+        ext = np.empty(k + 1)
+    q = 0
+    for i in range(c):
+        x = buf[i]
+        ext[q] = x
+        q += (x > a) & (x <= b)
+    if q <= 64:
+        _insertion_sort(ext, q)
+        return ext[r1 - na], ext[r2 - na]
+    srt = np.sort(ext[:q])
+    return srt[r1 - na], srt[r2 - na]
+
+
+@_jit
+def _location_spread(x, n):
+    """Interquartile mean and IQR / 1.349 (else range / 4) of the sorted ``x[:n]``."""
+    a = n // 4
+    b = n - a
+    s = 0.0
+    for i in range(a, b):
+        s += x[i]
+    spread = (x[(3 * (n - 1)) // 4] - x[(n - 1) // 4]) / 1.349
+    if not spread > 0.0:
+        spread = (x[n - 1] - x[0]) / 4.0
+    return s / (b - a), spread
+
+
+@_jit
+def _select_one(u, v, tri, k1s, k2s, zs, m, res1, res2, w_int, lo_c, hi_c, out, ts, t_lo, t_hi, slope, buf,
+                ext):
+    """Ranks ``k1s[p]`` and ``k2s[p]`` (k2 <= k1 + 1) of the valid sums ``u[i] + v[j]`` of one replicate.
+
+    Each target keeps a bracket (t_lo, t_hi] of thresholds with counts
+    n_lo <= k1 <= k2 < n_hi and the row counts at both ends. Every round gives each
+    open target two thresholds (first around the normal model's guess, then by
+    interpolating the counts a little either side of the target), counted in one
+    interleaved pass; a target whose bracket holds few candidates is finished by
+    enumerating them. ``v`` ends with +inf. The rest are work arrays.
+    """
+    n_targets = k1s.size
+    nr = u.size
+    nc = v.size - _PAD
+    owner = w_int[0]
+    ii = w_int[1]
+    jj = w_int[2]
+    n_lo = w_int[3]
+    n_hi = w_int[4]
+    state = w_int[5]   # 0 open, 1 found, 2 to enumerate
+    flat_max = _FLAT * (nr + nc)
+    cu, su = _location_spread(u, nr)
+    cv, sv = _location_spread(v, nc)
+    centre = cu + cv
+    spread = math.sqrt(su * su + sv * sv)
+    for p in range(n_targets):
+        t_lo[p] = -np.inf
+        t_hi[p] = np.inf
+        n_lo[p] = 0
+        n_hi[p] = m
+        for i in range(nr):
+            lo_c[p, i] = 0
+            hi_c[p, i] = nc
+        z = zs[p]
+        slope[p] = m * math.exp(-0.5 * z * z) / (math.sqrt(2.0 * math.pi) * spread) if spread > 0.0 else 0.0
+        state[p] = 0
+    for rnd in range(_MAX_ROUNDS + 1):
+        nq = 0
+        for p in range(n_targets):
+            if state[p] != 0:
+                continue
+            k1 = k1s[p]
+            k2 = k2s[p]
+            c = n_hi[p] - n_lo[p]
+            if c <= flat_max or rnd == _MAX_ROUNDS:
+                state[p] = 2
+                continue
+            tau = 0.5 * (k1 + k2 + 1)
+            t1 = np.nan
+            t2 = np.nan
+            if rnd == 0:
+                if slope[p] > 0.0:
+                    g = centre + zs[p] * spread
+                    d = _FIRST_REACH * math.sqrt(m) / slope[p]
+                    t1 = g - d
+                    t2 = g + d
+            elif t_lo[p] == -np.inf:   # both first thresholds were above the targets: step down
+                miss = n_hi[p] - tau
+                t1 = t_hi[p] - (3.0 * miss + 4.0) / slope[p]
+                t2 = t_hi[p] - (1.5 * miss + 2.0) / slope[p]
+                slope[p] *= 0.5
+            elif t_hi[p] == np.inf:    # both below: step up
+                miss = tau - n_lo[p]
+                t1 = t_lo[p] + (1.5 * miss + 2.0) / slope[p]
+                t2 = t_lo[p] + (3.0 * miss + 4.0) / slope[p]
+                slope[p] *= 0.5
+            else:                      # interpolate the counts, a little either side of the targets
+                reach = 0.5 * math.sqrt(c) + 1.0
+                aim1 = tau - reach
+                aim2 = tau + reach
+                if aim1 < n_lo[p] + 0.5:
+                    aim1 = n_lo[p] + 0.5
+                if aim2 > n_hi[p] - 0.5:
+                    aim2 = n_hi[p] - 0.5
+                w = (t_hi[p] - t_lo[p]) / c
+                t1 = t_lo[p] + (aim1 - n_lo[p]) * w
+                t2 = t_lo[p] + (aim2 - n_lo[p]) * w
+            if not (t1 > t_lo[p] and t1 < t_hi[p]):
+                t1 = np.nan
+            if not (t2 > t_lo[p] and t2 < t_hi[p] and t2 != t1):
+                t2 = np.nan
+            if rnd >= 2 or (t1 != t1 and t2 != t2):
+                # what the ends of the bracket tell (ties can stall the counts)
+                a = _smallest_from(u, v, tri, lo_c[p])
+                b = _largest_before(u, v, tri, hi_c[p])
+                if a == b:    # every candidate has one value
+                    res1[p] = a
+                    res2[p] = a
+                    state[p] = 1
+                    continue
+                r1 = a if k1 == n_lo[p] else (b if k1 == n_hi[p] - 1 else np.nan)
+                r2 = a if k2 == n_lo[p] else (b if k2 == n_hi[p] - 1 else np.nan)
+                if r1 == r1 and r2 == r2:
+                    res1[p] = r1
+                    res2[p] = r2
+                    state[p] = 1
+                    continue
+                if t1 != t1 and t2 != t2:
+                    t1 = a    # the smallest candidate: its count always narrows the bracket
+            if t1 == t1:
+                ts[nq] = t1
+                owner[nq] = p
+                nq += 1
+            if t2 == t2:
+                ts[nq] = t2
+                owner[nq] = p
+                nq += 1
+        if nq == 0:
+            break
+        _count_many(u, v, ts, owner, nq, lo_c, out, ii, jj)
+        for q in range(nq):
+            p = owner[q]
+            if state[p] != 0:
+                continue
+            t = ts[q]
+            n = _valid_total(out[q], tri)
+            if n <= k1s[p]:
+                if t > t_lo[p]:
+                    t_lo[p] = t
+                    n_lo[p] = n
+                    for i in range(nr):
+                        lo_c[p, i] = out[q, i]
+            elif n > k2s[p]:
+                if t < t_hi[p]:
+                    t_hi[p] = t
+                    n_hi[p] = n
+                    for i in range(nr):
+                        hi_c[p, i] = out[q, i]
+            else:             # n == k1 + 1 == k2: t falls between the two targets
+                res1[p] = _largest_before(u, v, tri, out[q])
+                res2[p] = _smallest_from(u, v, tri, out[q])
+                state[p] = 1
+    for p in range(n_targets):
+        if state[p] != 2:
+            continue
+        c = n_hi[p] - n_lo[p]
+        if c + _PAD > buf.size:
+            buf = np.empty(c + _PAD)
+        got = _enumerate(u, v, tri, lo_c[p], hi_c[p], buf)
+        res1[p], res2[p] = _select_flat(buf, got, k1s[p] - n_lo[p], k2s[p] - n_lo[p], t_lo[p], t_hi[p], ext)
+
+
+@_jit
+def _select_rows(u, v, scale, tri, k1s, k2s, zs, out1, out2):
+    """:func:`_select_one` for every row of ``u`` and ``v``; results times ``scale``."""
+    reps, nr = u.shape
+    nc = v.shape[1]
+    n_targets = k1s.size
+    m = 0
+    for i in range(nr):
+        m += (nc - i) if tri else nc
+    vpad = np.full(nc + _PAD, np.inf)
+    res1 = np.empty(n_targets)
+    res2 = np.empty(n_targets)
+    w_int = np.empty((6, 2 * n_targets), np.int64)
+    lo_c = np.empty((n_targets, nr), np.int64)
+    hi_c = np.empty((n_targets, nr), np.int64)
+    out = np.empty((2 * n_targets, nr), np.int64)
+    ts = np.empty(2 * n_targets)
+    t_lo = np.empty(n_targets)
+    t_hi = np.empty(n_targets)
+    slope = np.empty(n_targets)
+    buf = np.empty((_FLAT + 1) * (nr + nc) + _PAD)
+    ext = np.empty(_FEW + 1)
+    for r in range(reps):
+        vpad[:nc] = v[r]
+        _select_one(u[r], vpad, tri, k1s, k2s, zs, m, res1, res2, w_int, lo_c, hi_c, out, ts, t_lo, t_hi,
+                    slope, buf, ext)
+        for p in range(n_targets):
+            out1[r, p] = scale * res1[p]
+            out2[r, p] = scale * res2[p]
+
+
+def _target_pairs(ks, m):
+    """Group the 0-based ranks ``ks`` into pairs (k, k) or (k, k + 1) of neighbours."""
+    ks = sorted(set(int(k) for k in ks))
+    if ks and (ks[0] < 0 or ks[-1] >= m):
+        raise ValueError(f"order statistics must be in 0..{m - 1}; got {ks}")
+    pairs = []
+    i = 0
+    while i < len(ks):
+        if i + 1 < len(ks) and ks[i + 1] == ks[i] + 1:
+            pairs.append((ks[i], ks[i + 1]))
+            i += 2
+        else:
+            pairs.append((ks[i], ks[i]))
+            i += 1
+    return pairs
+
+
+def select_sorted_sums(u, v, ks, scale=1.0, triangular=False):
+    """Order statistics ``ks`` (0-based) of ``scale * (u[r, i] + v[r, j])`` for each row r.
+
+    Parameters
+    ----------
+    u : ndarray, shape (R, n_u)
+        Rows sorted ascending.
+    v : ndarray, shape (R, n_v)
+        Rows sorted ascending (``v is u`` and ``n_u == n_v`` when ``triangular``).
+    ks : iterable of int
+        Ranks in 0..m-1, m = n_u n_v (or n (n + 1) / 2 when ``triangular``).
+    scale : float
+        1 for sums (differences, with ``u`` negated), 0.5 for Walsh averages.
+    triangular : bool
+        Only the entries with column j >= row i (Walsh averages, i <= j).
+
+    Returns
+    -------
+    dict
+        rank -> ndarray (R,) of exact entries of the matrix.
+    """
+    u = np.ascontiguousarray(u, float)
+    v = np.ascontiguousarray(v, float)
+    reps, nu = u.shape
+    nv = v.shape[1]
+    m = nu * (nu + 1) // 2 if triangular else nu * nv
+    pairs = _target_pairs(ks, m)
+    k1s = np.array([p[0] for p in pairs], np.int64)
+    k2s = np.array([p[1] for p in pairs], np.int64)
+    zs = special.ndtri((0.5 * (k1s + k2s + 1)) / m) if m > 0 else np.zeros(len(pairs))
+    out1 = np.empty((reps, len(pairs)))
+    out2 = np.empty((reps, len(pairs)))
+    if reps and len(pairs):
+        _select_rows(u, v, float(scale), bool(triangular), k1s, k2s, np.asarray(zs, float), out1, out2)
+    res = {}
+    for q, (k1, k2) in enumerate(pairs):
+        res[k1] = out1[:, q]
+        res[k2] = out2[:, q]
+    return res
+
+
+def difference_order_stats(x, y, ks):
+    """Order statistics ``ks`` (0-based) of the n_x n_y differences ``x[r, j] - y[r, i]`` of each row."""
+    u = -np.sort(y, axis=1)[:, ::-1]
+    return select_sorted_sums(u, np.sort(x, axis=1), ks, 1.0, False)
+
+
+def walsh_order_stats(d, ks):
+    """Order statistics ``ks`` (0-based) of the Walsh averages ``(d[r, i] + d[r, j]) / 2``, i <= j."""
+    s = np.sort(d, axis=1)
+    return select_sorted_sums(s, s, ks, 0.5, True)
