@@ -25,8 +25,9 @@ d. two jobs against one on a per-replicate scenario (a user analysis calling
 e. peak memory (RSS) of a whole t-test run in a fresh subprocess for growing
    reps: the RSS the run adds (peak during the run minus RSS before it), and
    the bytes added per extra replicate (shown in the ratio column), for the
-   default run (e1) and, where the engine offers it, ``keep_records=False``
-   (e2). Target: flat in reps, taken as under 4 bytes per replicate.
+   default run (e1: records spooled to disk above 25,000 replicates) and
+   ``keep_records=False`` (e2). Target: flat in reps, taken as under 4 bytes
+   per replicate.
 """
 
 from __future__ import annotations
@@ -294,8 +295,8 @@ def bench_memory(quick, repeats):
                 + ", ".join(f"{r:.0e} reps {extra[r] / 1024:.1f}" for r in reps_list)
                 + f"; process peak {runs[lo][1] / 1024:.0f} -> {runs[hi][1] / 1024:.0f} MiB; "
                 f"{per_rep:.0f} bytes per extra replicate"
-                + (" (per-replicate records: 5 float64 + 1 int16 = 42 bytes per replicate per analysis, plus "
-                   "transient copies while merging and summarising)" if mode == "default" else
+                + (" (records in memory up to 25,000 replicates x analyses, then spooled to a temporary "
+                   "folder and summarised from per-chunk tallies)" if mode == "default" else
                    " (per-chunk tallies only)")
                 + ("" if reset else "; peak not resettable here: ru_maxrss used"))
         rows.append({"row": key, "measure": name, "ratio": per_rep, "target": FLAT_BYTES,

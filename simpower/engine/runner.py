@@ -28,8 +28,10 @@ message of each. Finished chunks stay in the store.
 
 Memory. ``keep_records=False`` keeps only per-chunk tallies
 (:mod:`simpower.engine.tally`) instead of per-replicate arrays; it is the
-default above :data:`KEEP_RECORDS_LIMIT` replicates per point, so memory is
-bounded by the chunk size, not the total.
+default above :data:`KEEP_RECORDS_LIMIT` replicates per point. Between
+:data:`RECORDS_IN_MEMORY` replicate-records and that limit, the default keeps
+the tallies and spools the records to disk (:mod:`simpower.engine.spool`).
+So memory is bounded by the chunk size, not the total.
 """
 
 from __future__ import annotations
@@ -445,9 +447,11 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
         a replicate past it counts as failure ``"timeout"``. Enforced on the
         serial path and in loky workers (POSIX), not on dask or threads.
     keep_records : bool, optional
-        Keep per-replicate arrays in memory (``result.records``). None: keep
-        up to 1,000,000 replicates, stream summaries above (records then stay
-        in the store only).
+        Keep per-replicate arrays in memory (``result.records``). None: in
+        memory up to 25,000 replicates x analyses, spooled to a temporary
+        folder (memory maps) up to 1,000,000 replicates, above that
+        summaries only (records then stay in the store only). False:
+        summaries only.
 
     Examples
     --------
