@@ -6,8 +6,9 @@ one int16 per replicate) still have to reach the disk. Configurations, run
 interleaved over several rounds (medians reported):
 
 * no store;
-* the run store as shipped: arrays as raw bytes with dtype/shape/CRC columns,
-  one transaction per chunk, committed on a writer thread;
+* the run store as shipped: one blob per chunk and analysis (the arrays' raw
+  bytes with their layout and a CRC), one transaction per chunk, committed on
+  a writer thread, the WAL checkpointed by that thread every ~1.6 MB;
 * the same, committed in the run's own thread (``background=False``);
 * an alternative layout, one SQLite row per replicate (a ChunkStore written
   here for the comparison).
