@@ -436,6 +436,41 @@ def _select_rows(u, v, scale, tri, k1s, k2s, zs, out1, out2):
             out2[r, p] = scale * res2[p]
 
 
+@_jit
+def _count_rows(u, v, ts, out):
+    """``out[r, q]`` = number of pairs (i, j) with ``u[r, i] + v[r, j] <= ts[q]``."""
+    reps, nr = u.shape
+    nc = v.shape[1]
+    nq = ts.size
+    vpad = np.full(nc + _PAD, np.inf)
+    lo = np.zeros((1, nr), np.int64)
+    owner = np.zeros(nq, np.int64)
+    counts = np.empty((nq, nr), np.int64)
+    ii = np.empty(nq, np.int64)
+    jj = np.empty(nq, np.int64)
+    for r in range(reps):
+        vpad[:nc] = v[r]
+        _count_many(u[r], vpad, ts, owner, nq, lo, counts, ii, jj)
+        for q in range(nq):
+            out[r, q] = _valid_total(counts[q], False)
+
+
+def count_sorted_sums(u, v, ts):
+    """Number of pairs (i, j) with ``u[r, i] + v[r, j] <= t`` for each row r and threshold t.
+
+    ``u`` (R, n_u) and ``v`` (R, n_v) with rows sorted ascending; ``ts`` floats.
+    Returns an int64 array (R, len(ts)). A staircase count, O(n_u + n_v) per row
+    and threshold.
+    """
+    u = np.ascontiguousarray(u, float)
+    v = np.ascontiguousarray(v, float)
+    ts = np.asarray(ts, float)
+    out = np.zeros((u.shape[0], ts.size), np.int64)
+    if u.shape[0] and ts.size and u.shape[1] and v.shape[1]:
+        _count_rows(u, v, ts, out)
+    return out
+
+
 def _target_pairs(ks, m):
     """Group the 0-based ranks ``ks`` into pairs (k, k) or (k, k + 1) of neighbours."""
     ks = sorted(set(int(k) for k in ks))
@@ -494,10 +529,15 @@ def select_sorted_sums(u, v, ks, scale=1.0, triangular=False):
     return res
 
 
+def sorted_difference_terms(x, y):
+    """``(u, v)`` with ``u[r, i] + v[r, j]`` running over the differences ``x[r, j] - y[r, i]``, rows sorted."""
+    return np.ascontiguousarray(-np.sort(y, axis=1)[:, ::-1]), np.sort(x, axis=1)
+
+
 def difference_order_stats(x, y, ks):
     """Order statistics ``ks`` (0-based) of the n_x n_y differences ``x[r, j] - y[r, i]`` of each row."""
-    u = -np.sort(y, axis=1)[:, ::-1]
-    return select_sorted_sums(u, np.sort(x, axis=1), ks, 1.0, False)
+    u, v = sorted_difference_terms(x, y)
+    return select_sorted_sums(u, v, ks, 1.0, False)
 
 
 def walsh_order_stats(d, ks):

@@ -143,34 +143,57 @@ class _PooledRanking:
             ranks, self.tie[self.tied] = _tied_ranks(self.order[self.tied], self.new[self.tied])
             self.rank_sum1[self.tied] = ranks[:, :n1].sum(axis=1)
 
-    def placements(self):
-        """Placement values (DeLong et al. 1988): for each arm-1 value the share of arm 0 below it,
-        for each arm-0 value the share of arm 1 above it (ties count half); (R, n1) and (R, n0),
-        each in sorted order.
+    def placement_variances(self):
+        """Sample variances (ddof 1) of the placement values (DeLong et al. 1988) of each row.
+
+        Arm 1's placements are the shares of arm 0 below each arm-1 value, arm 0's
+        the shares of arm 1 above each arm-0 value; ties count half. Returns two
+        arrays (R,). Rows without ties use sums of integer counts (exact); rows
+        with ties use the counts of their tie groups.
         """
-        order, n1 = self.order, self.n1
-        r, n = order.shape
+        r, n = self.order.shape
+        n1 = self.n1
         n0 = n - n1
+        var10, var01 = np.empty(r), np.empty(r)
+        free = ~self.tied
+        with np.errstate(invalid="ignore", divide="ignore"):
+            if free.any():
+                var10[free], var01[free] = self._untied_variances(self.order[free] if self.tied.any()
+                                                                  else self.order, n0, n1)
+            if self.tied.any():
+                v10, v01 = self._tied_placements(self.order[self.tied], self.new[self.tied], n0, n1)
+                var10[self.tied], var01[self.tied] = v10.var(axis=1, ddof=1), v01.var(axis=1, ddof=1)
+        return var10, var01
+
+    @staticmethod
+    def _untied_variances(order, n0, n1):
+        # at sorted position p: c0[p] arm-0 values at or before p; an arm-1 value there has c0[p]
+        # arm-0 values below it, an arm-0 value has p + 1 - c0[p] arm-1 values below it
+        n = n0 + n1
+        is0 = order >= n1
+        c0 = np.cumsum(is0, axis=1, dtype=np.int32).astype(float)
+        in1 = (~is0).astype(float)
+        in0 = is0.astype(float)
+        b1 = np.arange(1.0, n + 1.0) - c0
+        s1, s2 = np.einsum("ij,ij->i", in1, c0), np.einsum("ij,ij,ij->i", in1, c0, c0)
+        t1, t2 = np.einsum("ij,ij->i", in0, b1), np.einsum("ij,ij,ij->i", in0, b1, b1)
+        # integer sums, exact: n S2 - S1^2 = n (n - 1) times the sample variance of the counts
+        return (np.maximum(n1 * s2 - s1 * s1, 0.0) / (n1 * (n1 - 1.0)) / (n0 * n0),
+                np.maximum(n0 * t2 - t1 * t1, 0.0) / (n0 * (n0 - 1.0)) / (n1 * n1))
+
+    @staticmethod
+    def _tied_placements(order, new, n0, n1):
+        # per sorted position: arm-0 values before its tie group and in it, the group's start and size
         is0 = order >= n1
         cum0 = np.cumsum(is0, axis=1)
-        # per sorted position: arm-0 values before its tie group and in it, the group's start and size
-        below0 = cum0 - is0
-        in0 = is0.astype(np.int64)
-        start = np.broadcast_to(np.arange(n), (r, n))
-        size = np.ones((r, n), np.int64)
-        if self.tied.any():
-            rows = self.tied
-            st, en = _tie_groups(self.new[rows])
-            c = cum0[rows]
-            before = np.where(st > 0, np.take_along_axis(c, np.maximum(st - 1, 0), axis=1), 0)
-            below0[rows] = before
-            in0[rows] = np.take_along_axis(c, en, axis=1) - before
-            start = start.copy()
-            start[rows] = st
-            size[rows] = en - st + 1
+        st, en = _tie_groups(new)
+        before = np.where(st > 0, np.take_along_axis(cum0, np.maximum(st - 1, 0), axis=1), 0)
+        in0 = np.take_along_axis(cum0, en, axis=1) - before
+        size = en - st + 1
+        r = order.shape[0]
         # twice the counts, integers: arm 0 below an arm-1 value, arm 1 below an arm-0 value
-        twice10 = (2 * below0 + in0)[~is0].reshape(r, n1)
-        twice01 = (2 * (start - below0) + (size - in0))[is0].reshape(r, n0)
+        twice10 = (2 * before + in0)[~is0].reshape(r, n1)
+        twice01 = (2 * (st - before) + (size - in0))[is0].reshape(r, n0)
         return twice10 / (2.0 * n0), 1.0 - twice01 / (2.0 * n1)
 
 
@@ -251,6 +274,33 @@ def shift_estimate(y0: np.ndarray, y1: np.ndarray, ci_level: float):
     k = _ci_index(m, math.sqrt(m * (n0 + n1 + 1) / 12.0), ci_level)
     v = _pairwise_order_stats("difference", (y0, y1), _hl_ranks(m, k), m)
     return _hl_from_order_stats(v, m, k, r)
+
+
+def _shift_test_sorted(y0: np.ndarray, x1: np.ndarray, ci_level: float):
+    """U1, the tie term and the Hodges-Lehmann shift of each row from the two sorted arms (numba path).
+
+    The shift kernel sorts each arm anyway; U1 and the tie term then follow from
+    staircase counts, without the pooled sort. U1 = #(x1 > y0) + #(x1 = y0) / 2 from
+    the counts of differences <= 0 and < 0 (the largest float below 0 is the
+    smallest subnormal); both are integer counts, so U1 and the tie term are the
+    same floats as from the pooled ranks.
+    """
+    from . import _rank_kernels
+
+    r, n0 = y0.shape
+    n1 = x1.shape[1]
+    m = n0 * n1
+    u, v = _rank_kernels.sorted_difference_terms(x1, y0)
+    counts = _rank_kernels.count_sorted_sums(u, v, [0.0, -np.nextafter(0.0, 1.0)])
+    le, lt = counts[:, 0], counts[:, 1]
+    u1 = (m - le) + 0.5 * (le - lt)
+    tie = np.zeros(r)
+    tied = (le != lt) | np.any(v[:, 1:] == v[:, :-1], axis=1) | np.any(u[:, 1:] == u[:, :-1], axis=1)
+    if tied.any():
+        tie[tied] = rank_rows(np.concatenate([x1[tied], y0[tied]], axis=1))[1]
+    k = _ci_index(m, math.sqrt(m * (n0 + n1 + 1) / 12.0), ci_level)
+    est = _hl_from_order_stats(_rank_kernels.select_sorted_sums(u, v, _hl_ranks(m, k)), m, k, r)
+    return u1, tie, est
 
 
 def pseudo_median(d: np.ndarray, ci_level: float):
@@ -338,24 +388,28 @@ class MannWhitney(Analysis):
         return TestResult(pvalue=float(r.pvalue), statistic=float(r.statistic),
                           **{k: float(v[0]) for k, v in out.items()})
 
+    def _shift_fields(self, est, lo, hi):
+        nv = self.null_value
+        return {"estimate": est + nv, "se": np.full(est.shape, np.nan), "ci_low": lo + nv, "ci_high": hi + nv}
+
     def _estimates(self, y0, x1, u1, pooled=None):
         """Estimate, SE and CI; ``pooled`` (batch path): the :class:`_PooledRanking` of [x1, y0]."""
         n0, n1 = y0.shape[1], x1.shape[1]
         if self.estimand == "none":
             return {}
         if self.estimand == "shift":
-            est, lo, hi = shift_estimate(y0, x1, self.ci_level)
-            est, lo, hi = est + self.null_value, lo + self.null_value, hi + self.null_value
-            return {"estimate": est, "se": np.full(est.shape, np.nan), "ci_low": lo, "ci_high": hi}
+            return self._shift_fields(*shift_estimate(y0, x1, self.ci_level))
         est = u1 / (n0 * n1)
         if pooled is None:  # per replicate: placements from scipy's ranks, the reference
             both = stats.rankdata(np.concatenate([y0, x1], axis=1), axis=1)
             v10 = (both[:, n0:] - stats.rankdata(x1, axis=1)) / n0       # share of arm 0 below each arm-1 value
             v01 = 1.0 - (both[:, :n0] - stats.rankdata(y0, axis=1)) / n1  # share of arm 1 above each arm-0 value
+            with np.errstate(invalid="ignore", divide="ignore"):
+                var10, var01 = v10.var(axis=1, ddof=1), v01.var(axis=1, ddof=1)
         else:
-            v10, v01 = pooled.placements()
+            var10, var01 = pooled.placement_variances()
         with np.errstate(invalid="ignore", divide="ignore"):
-            se = np.sqrt(v10.var(axis=1, ddof=1) / n1 + v01.var(axis=1, ddof=1) / n0)
+            se = np.sqrt(var10 / n1 + var01 / n0)
         z = stats.norm.ppf(0.5 + self.ci_level / 2)
         return {"estimate": est, "se": se, "ci_low": np.clip(est - z * se, 0, 1),
                 "ci_high": np.clip(est + z * se, 0, 1)}
@@ -368,19 +422,26 @@ class MannWhitney(Analysis):
         x1 = y1 - self.null_value
         n0, n1 = y0.shape[1], x1.shape[1]
         n = n0 + n1
-        pooled = _PooledRanking(np.concatenate([x1, y0], axis=1), n1)
-        u1 = pooled.rank_sum1 - n1 * (n1 + 1) / 2.0
+        pooled = shift = None
+        if self.estimand == "shift" and order_statistic_backend() == "numba":
+            u1, tie, shift = _shift_test_sorted(y0, x1, self.ci_level)
+        else:
+            pooled = _PooledRanking(np.concatenate([x1, y0], axis=1), n1)
+            u1, tie = pooled.rank_sum1 - n1 * (n1 + 1) / 2.0, pooled.tie
         u0 = n0 * n1 - u1
         u = {"greater": u1, "less": u0}.get(self.alternative)
         if u is None:
             u = np.maximum(u1, u0)
-        s = np.sqrt(n0 * n1 / 12.0 * ((n + 1) - pooled.tie / (n * (n - 1))))
+        s = np.sqrt(n0 * n1 / 12.0 * ((n + 1) - tie / (n * (n - 1))))
         num = u - n0 * n1 / 2.0 - (0.5 if self.continuity else 0.0)
         with np.errstate(divide="ignore", invalid="ignore"):
             z = num / s
         p = special.ndtr(-z) * (2.0 if self.alternative == "two-sided" else 1.0)
         out = {"pvalue": np.clip(p, 0.0, 1.0)}
-        out.update(self._estimates(y0, x1, u1, pooled))
+        if shift is None:
+            out.update(self._estimates(y0, x1, u1, pooled))
+        else:
+            out.update(self._shift_fields(*shift))
         return out
 
 
