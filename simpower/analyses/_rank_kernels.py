@@ -175,6 +175,29 @@ def _insertion_sort(a, n):
 
 
 @_jit
+def _sift_down(a, start, end):
+    root = start
+    while 2 * root + 1 < end:
+        child = 2 * root + 1
+        if child + 1 < end and a[child] < a[child + 1]:
+            child += 1
+        if a[root] >= a[child]:
+            return
+        a[root], a[child] = a[child], a[root]
+        root = child
+
+
+@_jit
+def _heap_sort(a, n):
+    """Sort ``a[:n]`` in place (a small own sort: numba's np.sort would add a second to the compile)."""
+    for start in range(n // 2 - 1, -1, -1):
+        _sift_down(a, start, n)
+    for end in range(n - 1, 0, -1):
+        a[0], a[end] = a[end], a[0]
+        _sift_down(a, 0, end)
+
+
+@_jit
 def _select_flat(buf, c, r1, r2, a, b, ext):
     """The r1-th and r2-th smallest (0-based, r1 <= r2 <= r1 + 1) of ``buf[:c]``, all in (a, b].
 
@@ -243,9 +266,9 @@ def _select_flat(buf, c, r1, r2, a, b, ext):
         q += (x > a) & (x <= b)
     if q <= 64:
         _insertion_sort(ext, q)
-        return ext[r1 - na], ext[r2 - na]
-    srt = np.sort(ext[:q])
-    return srt[r1 - na], srt[r2 - na]
+    else:   # only when ties stall the counting: many equal candidates
+        _heap_sort(ext, q)
+    return ext[r1 - na], ext[r2 - na]
 
 
 @_jit
