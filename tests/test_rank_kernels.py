@@ -278,3 +278,34 @@ def test_numpy_path_keeps_the_block_size(monkeypatch):
     blocked = MannWhitney().batch(b)
     for f in whole:
         np.testing.assert_array_equal(blocked[f], whole[f])
+
+
+def test_every_fallback_of_the_kernel_gives_the_same_floats():
+    # the plain-Python kernel with its shortcuts switched off: no staircase rounds (enumerate at once)
+    # and no counting passes (sort every candidate: the heap sort for more than 64), then no
+    # enumeration limit; each variant must still give the definition's order statistics
+    plain = _plain_python_kernels()
+    rng = np.random.default_rng(21)
+    y, x = np.round(rng.normal(size=(2, 15)), 1), np.round(rng.normal(size=(2, 13)), 1) + 0.3
+    full = brute_differences(x, y)
+    ks = hl_ranks(15 * 13)
+    for changes in ({"_FLAT_STEPS": 0}, {"_MAX_ROUNDS": 0}, {"_MAX_ROUNDS": 0, "_FLAT_STEPS": 0}, {"_FLAT": 0}):
+        saved = {k: getattr(plain, k) for k in changes}
+        for k, v in changes.items():
+            setattr(plain, k, v)
+        try:
+            got = plain.difference_order_stats(x, y, ks)
+        finally:
+            for k, v in saved.items():
+                setattr(plain, k, v)
+        for k in ks:
+            np.testing.assert_array_equal(got[k], full[:, k], err_msg=f"{changes} rank {k}")
+
+
+def test_heap_sort_sorts():
+    rng = np.random.default_rng(2)
+    for n in (0, 1, 2, 65, 300):
+        a = np.round(rng.normal(size=n + 3), 1)
+        ref = np.sort(a[:n])
+        rk._heap_sort(a, n)
+        np.testing.assert_array_equal(a[:n], ref)

@@ -198,11 +198,29 @@ def _heap_sort(a, n):
 
 
 @_jit
+def _below_above(buf, c, t):
+    """Largest value < t and smallest value > t in ``buf[:c]`` (-inf / +inf if none)."""
+    below = -np.inf
+    above = np.inf
+    for i in range(c):
+        x = buf[i]
+        if x < t and x > below:
+            below = x
+        if x > t and x < above:
+            above = x
+    return below, above
+
+
+@_jit
 def _select_flat(buf, c, r1, r2, a, b, ext):
     """The r1-th and r2-th smallest (0-based, r1 <= r2 <= r1 + 1) of ``buf[:c]``, all in (a, b].
 
     Narrows the value bracket (a, b] by counting passes over the candidates (no
-    data moved, so each pass is a plain loop), then sorts the few left. ``ext``
+    data moved, so each pass is a plain loop): at thresholds interpolated from the
+    counts, and at the candidate nearest the interpolated value when a pass made no
+    progress (ties and near-ties, whose values the interpolation cannot separate).
+    Each pass counts the values < t and <= t, so a threshold equal to a tied value
+    settles every rank that value holds. The few values left are sorted. ``ext``
     is a work array of at least _FEW + 1 values.
     """
     if not (a > -np.inf and b < np.inf):
@@ -218,6 +236,7 @@ def _select_flat(buf, c, r1, r2, a, b, ext):
     na = 0
     nb = c
     tau = 0.5 * (r1 + r2 + 1)
+    stalled = False
     for step in range(_FLAT_STEPS):
         width = nb - na
         if width <= _FEW:
@@ -229,33 +248,42 @@ def _select_flat(buf, c, r1, r2, a, b, ext):
         elif aim > nb - 0.5:
             aim = nb - 0.5
         t = a + (aim - na) * ((b - a) / width)
-        if not (t > a and t < b):   # rounding: the smallest candidate above a always makes progress
-            t = np.inf
+        if stalled or not (t > a and t < b):   # the candidate nearest t (inside the bracket)
+            best = np.inf
+            near = b
             for i in range(c):
                 x = buf[i]
-                if x > a and x < t:
-                    t = x
-            if t >= b:              # every candidate left has the value b
-                return b, b
-        cnt = 0
+                if x > a and x <= b and abs(x - t) < best:
+                    best = abs(x - t)
+                    near = x
+            t = near
+        lt = 0
+        le = 0
         for i in range(c):
-            cnt += buf[i] <= t
-        if cnt <= r1:
-            a = t
-            na = cnt
-        elif cnt > r2:
-            b = t
-            nb = cnt
-        else:                       # cnt == r1 + 1 == r2: t splits the two
-            below = -np.inf
-            above = np.inf
-            for i in range(c):
-                x = buf[i]
-                if x <= t and x > below:
-                    below = x
-                if x > t and x < above:
-                    above = x
+            x = buf[i]
+            lt += x < t
+            le += x <= t
+        in1 = lt <= r1 and r1 < le    # rank r1 holds the value t
+        in2 = lt <= r2 and r2 < le
+        if in1 and in2:
+            return t, t
+        if in1:                       # r2 = r1 + 1 = le
+            return t, _below_above(buf, c, t)[1]
+        if in2:                       # r1 = r2 - 1 = lt - 1
+            return _below_above(buf, c, t)[0], t
+        if r1 < lt and r2 >= le:      # t (no candidate) splits the two
+            below, above = _below_above(buf, c, t)
             return below, above
+        stalled = True
+        if r2 < lt:
+            if lt < nb:
+                nb = lt
+                b = np.nextafter(t, -np.inf)
+                stalled = False
+        elif le > na:
+            na = le
+            a = t
+            stalled = False
     k = nb - na
     if k + 1 > ext.size:
         ext = np.empty(k + 1)
@@ -266,7 +294,7 @@ def _select_flat(buf, c, r1, r2, a, b, ext):
         q += (x > a) & (x <= b)
     if q <= 64:
         _insertion_sort(ext, q)
-    else:   # only when ties stall the counting: many equal candidates
+    else:   # only when the counting passes ran out
         _heap_sort(ext, q)
     return ext[r1 - na], ext[r2 - na]
 
@@ -306,6 +334,7 @@ def _select_one(u, v, tri, k1s, k2s, zs, m, res1, res2, w_int, lo_c, hi_c, out, 
     n_lo = w_int[3]
     n_hi = w_int[4]
     state = w_int[5]   # 0 open, 1 found, 2 to enumerate
+    stalled = w_int[6]  # 1 when the target's last round left its counts as they were
     flat_max = _FLAT * (nr + nc)
     cu, su = _location_spread(u, nr)
     cv, sv = _location_spread(v, nc)
@@ -322,6 +351,7 @@ def _select_one(u, v, tri, k1s, k2s, zs, m, res1, res2, w_int, lo_c, hi_c, out, 
         z = zs[p]
         slope[p] = m * math.exp(-0.5 * z * z) / (math.sqrt(2.0 * math.pi) * spread) if spread > 0.0 else 0.0
         state[p] = 0
+        stalled[p] = 0
     for rnd in range(_MAX_ROUNDS + 1):
         nq = 0
         for p in range(n_targets):
@@ -367,8 +397,9 @@ def _select_one(u, v, tri, k1s, k2s, zs, m, res1, res2, w_int, lo_c, hi_c, out, 
                 t1 = np.nan
             if not (t2 > t_lo[p] and t2 < t_hi[p] and t2 != t1):
                 t2 = np.nan
-            if rnd >= 2 or (t1 != t1 and t2 != t2):
-                # what the ends of the bracket tell (ties can stall the counts)
+            # a closed bracket whose counts stopped narrowing (ties, near-ties), or no threshold fits
+            stuck = stalled[p] == 1 and t_lo[p] > -np.inf and t_hi[p] < np.inf
+            if stuck or (t1 != t1 and t2 != t2):
                 a = _smallest_from(u, v, tri, lo_c[p])
                 b = _largest_before(u, v, tri, hi_c[p])
                 if a == b:    # every candidate has one value
@@ -376,15 +407,10 @@ def _select_one(u, v, tri, k1s, k2s, zs, m, res1, res2, w_int, lo_c, hi_c, out, 
                     res2[p] = a
                     state[p] = 1
                     continue
-                r1 = a if k1 == n_lo[p] else (b if k1 == n_hi[p] - 1 else np.nan)
-                r2 = a if k2 == n_lo[p] else (b if k2 == n_hi[p] - 1 else np.nan)
-                if r1 == r1 and r2 == r2:
-                    res1[p] = r1
-                    res2[p] = r2
-                    state[p] = 1
+                if stuck:
+                    state[p] = 2   # enumerate: the counting passes there test tied values directly
                     continue
-                if t1 != t1 and t2 != t2:
-                    t1 = a    # the smallest candidate: its count always narrows the bracket
+                t1 = a        # the smallest candidate: its count always narrows the bracket
             if t1 == t1:
                 ts[nq] = t1
                 owner[nq] = p
@@ -397,6 +423,8 @@ def _select_one(u, v, tri, k1s, k2s, zs, m, res1, res2, w_int, lo_c, hi_c, out, 
             break
         _count_many(u, v, ts, owner, nq, lo_c, out, ii, jj)
         for q in range(nq):
+            stalled[owner[q]] = 1
+        for q in range(nq):
             p = owner[q]
             if state[p] != 0:
                 continue
@@ -404,12 +432,16 @@ def _select_one(u, v, tri, k1s, k2s, zs, m, res1, res2, w_int, lo_c, hi_c, out, 
             n = _valid_total(out[q], tri)
             if n <= k1s[p]:
                 if t > t_lo[p]:
+                    if n > n_lo[p]:
+                        stalled[p] = 0
                     t_lo[p] = t
                     n_lo[p] = n
                     for i in range(nr):
                         lo_c[p, i] = out[q, i]
             elif n > k2s[p]:
                 if t < t_hi[p]:
+                    if n < n_hi[p]:
+                        stalled[p] = 0
                     t_hi[p] = t
                     n_hi[p] = n
                     for i in range(nr):
@@ -440,7 +472,7 @@ def _select_rows(u, v, scale, tri, k1s, k2s, zs, out1, out2):
     vpad = np.full(nc + _PAD, np.inf)
     res1 = np.empty(n_targets)
     res2 = np.empty(n_targets)
-    w_int = np.empty((6, 2 * n_targets), np.int64)
+    w_int = np.empty((7, 2 * n_targets), np.int64)
     lo_c = np.empty((n_targets, nr), np.int64)
     hi_c = np.empty((n_targets, nr), np.int64)
     out = np.empty((2 * n_targets, nr), np.int64)
