@@ -4,27 +4,37 @@ The Hodges-Lehmann estimates need a few order statistics of m pairwise values pe
 replicate: the differences ``x_j - y_i`` of two samples (m = n_x n_y) or the Walsh
 averages ``(d_i + d_j) / 2``, i <= j, of one sample (m = n (n + 1) / 2). Forming
 all m values and partitioning them costs O(m) per replicate. Sorted, both samples
-give a matrix ``M[i, j] = scale * (u[i] + v[j])`` that increases along rows and
-columns, and the number of entries <= t is a staircase walk of O(n_u + n_v)
-steps. :func:`select_sorted_sums` selects order statistics of such a matrix by
-narrowing a bracket ``(lo, hi]`` of thresholds with per-row column bounds (the
-selection in a sorted matrix of Johnson & Mizoguchi 1978, SIAM J Comput
-7:147-153, as used for the Hodges-Lehmann estimate by Monahan 1984, ACM TOMS
-10:265-270, Algorithm 616), then enumerating the few candidates left inside the
-bracket. Its thresholds are guessed from a normal model of the pairwise values and
-refined by interpolating the staircase counts; the guesses only decide the speed:
-the result is exact whatever they are, and every returned value is an entry
-``scale * (u[i] + v[j])`` computed with the same floating-point operations as the
-full matrix, so it is bit-identical to ``np.partition`` of that matrix.
+give a matrix ``M[i, j] = scale * (u[i] + v[j])`` that does not decrease along rows
+or columns, and the number of entries <= t is a staircase walk of O(n_u + n_v)
+steps. :func:`select_sorted_sums` keeps, for each wanted rank, a bracket
+``(lo, hi]`` of thresholds with the row counts at both ends (per-row column bounds,
+as in the selection in a sorted matrix of Johnson & Mizoguchi 1978, SIAM J Comput
+7:147-153, used for the Hodges-Lehmann estimate by Monahan 1984, ACM TOMS
+10:265-270, Algorithm 616 -- both from memory). Where those pick pivots among the
+candidate entries (at random, or medians of rows), this kernel guesses thresholds:
+first from a normal model of the pairwise values, then by interpolating the counts.
+All thresholds of a round are counted in one interleaved walk. Once a bracket
+holds a few candidates per row it enumerates them and finishes with counting
+passes over that short list (at candidate values when ties stall the
+interpolation, counting < and <= so that a tied value settles all the ranks it
+holds). Typical cost: two or three O(n_u + n_v) walks per order statistic; the
+guesses decide only the speed, never the answer.
 
-Differences use ``u = -sort(y)[::-1]`` and ``v = sort(x)`` with ``scale = 1``
-(``x_j + (-y_i)`` is ``x_j - y_i`` exactly in IEEE arithmetic); Walsh averages use
-``u = v = sort(d)``, ``scale = 0.5`` and only the columns ``j >= i`` (triangular).
+Every returned value is an entry ``scale * (u[i] + v[j])``, computed with the same
+floating-point operations as the full matrix, so it equals ``np.partition`` of that
+matrix exactly. Differences use ``u = -sort(y)[::-1]`` and ``v = sort(x)`` with
+``scale = 1`` (``x_j + (-y_i)`` is ``x_j - y_i`` exactly in IEEE arithmetic);
+Walsh averages use ``u = v = sort(d)``, ``scale = 0.5`` and only the columns
+``j >= i`` (triangular); the selection runs on the sums ``u[i] + v[j]`` and scales
+at the end (halving preserves order). Inputs must be finite (no NaN, no inf). Of
+two entries equal as numbers but not as bits (-0.0 and 0.0), either may be returned.
 
 The kernel is compiled with numba when numba is installed (the ``fast`` extra:
-``pip install "simpower[fast]"``); without it the same functions stay plain Python
-(slow, but importable and testable), and the analyses use their numpy reference
-path instead (:func:`simpower.analyses.nonparametric.order_statistic_backend`).
+``pip install "simpower[fast]"``), and numba caches the machine code beside this
+file (``cache=True``), so only the first process of an installation compiles
+(several seconds). Without numba the same functions stay plain Python (slow, but
+importable and testable), and the analyses use their numpy reference path instead
+(:func:`simpower.analyses.nonparametric.order_statistic_backend`).
 """
 
 from __future__ import annotations

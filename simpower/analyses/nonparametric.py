@@ -6,7 +6,9 @@ Both use the normal approximation with the tie correction, as
 scipy, and the batch paths sort every replicate of a chunk at once
 (:func:`rank_rows`) and agree with scipy to about 1e-10. The Mann-Whitney batch
 sorts the pooled arms once: the rank sum, the tie term and the placement values of
-the probability index all come from that one sort.
+the probability index all come from that one sort (with the numba kernel and the
+default shift estimand it sorts each arm instead, and takes U and the tie term from
+staircase counts of the two sorted arms; both are integer counts, the same floats).
 
 Estimates are Hodges-Lehmann estimates (Hodges & Lehmann 1963, Ann Math Stat
 34:598-611): the median of the pairwise differences between arms (a location
@@ -20,12 +22,13 @@ P(Y1 > Y0) + P(Y1 = Y0)/2 instead.
 
 The order statistics come from one of two paths that give the same floats
 (:func:`order_statistic_backend`): with numba installed (``pip install
-"simpower[fast]"``), a compiled selection on the two sorted samples
-(:mod:`simpower.analyses._rank_kernels`, O((n0 + n1) log m) per replicate);
-otherwise, or with the environment variable ``SIMPOWER_NO_NUMBA=1`` (read at each
-call), the numpy reference path that forms all m differences and partitions them.
-Every order statistic is one of the differences, computed by the same floating-point
-operation on both paths, so a seed gives the same numbers with or without numba.
+"simpower[fast]"``), a compiled selection on the sorted samples
+(:mod:`simpower.analyses._rank_kernels`, a few O(n0 + n1) staircase walks per
+order statistic); otherwise, or with the environment variable
+``SIMPOWER_NO_NUMBA=1`` (read at each call), the numpy reference path that forms
+all m differences (or Walsh averages) and partitions them. Every order statistic is
+one of those values, computed by the same floating-point operation on both paths,
+so a seed gives the same numbers with or without numba.
 """
 
 from __future__ import annotations
