@@ -207,7 +207,8 @@ def bench_mann_whitney(quick, repeats):
         engine = best_rate(lambda: sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False), reps, repeats)
         note = f"50 per arm, {what}; scipy computes U and p only; {reps} reps, loop {loop}"
         if estimand == "shift":
-            note += (f"; order statistics by the {backend} kernel, timed after a warm-up run of {t_first:.1f} s "
+            how = {"numba": "the numba kernel"}.get(backend, "numpy (all differences, partitioned)")
+            note += (f"; order statistics by {how}, timed after a warm-up run of {t_first:.1f} s "
                      f"(with any compile or cache load), best of {repeats}")
         rows.append(row(key, name, engine, loop_rate, 50.0, note=note))
     return rows
