@@ -51,10 +51,14 @@ def samples(kind, rng, reps, n):
         return 1e8 + rng.standard_normal((reps, n))
     if kind == "constant":  # every difference the same
         return np.full((reps, n), 2.5)
+    if kind == "tiny":      # a spread near the smallest normal floats: the model's slope is huge or nil
+        return rng.exponential(size=(reps, n)) * 1e-300
+    if kind == "zeros":     # half exact zeros, within and across samples
+        return np.where(rng.random((reps, n)) < 0.5, 0.0, rng.standard_normal((reps, n)))
     raise ValueError(kind)
 
 
-KINDS = ("normal", "rounded", "cauchy", "offset", "constant")
+KINDS = ("normal", "rounded", "cauchy", "offset", "constant", "tiny", "zeros")
 
 
 @pytest.mark.parametrize("kind", KINDS)

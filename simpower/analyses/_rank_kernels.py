@@ -349,7 +349,7 @@ def _select_one(u, v, tri, k1s, k2s, zs, m, res1, res2, w_int, lo_c, hi_c, out, 
     cu, su = _location_spread(u, nr)
     cv, sv = _location_spread(v, nc)
     centre = cu + cv
-    spread = math.sqrt(su * su + sv * sv)
+    spread = math.hypot(su, sv)
     for p in range(n_targets):
         t_lo[p] = -np.inf
         t_hi[p] = np.inf
@@ -382,16 +382,18 @@ def _select_one(u, v, tri, k1s, k2s, zs, m, res1, res2, w_int, lo_c, hi_c, out, 
                     d = _FIRST_REACH * math.sqrt(m) / slope[p]
                     t1 = g - d
                     t2 = g + d
-            elif t_lo[p] == -np.inf:   # both first thresholds were above the targets: step down
+            elif slope[p] > 0.0 and t_lo[p] == -np.inf:   # both first thresholds above the targets: step down
                 miss = n_hi[p] - tau
                 t1 = t_hi[p] - (3.0 * miss + 4.0) / slope[p]
                 t2 = t_hi[p] - (1.5 * miss + 2.0) / slope[p]
                 slope[p] *= 0.5
-            elif t_hi[p] == np.inf:    # both below: step up
+            elif slope[p] > 0.0 and t_hi[p] == np.inf:    # both below: step up
                 miss = tau - n_lo[p]
                 t1 = t_lo[p] + (1.5 * miss + 2.0) / slope[p]
                 t2 = t_lo[p] + (3.0 * miss + 4.0) / slope[p]
                 slope[p] *= 0.5
+            elif t_lo[p] == -np.inf or t_hi[p] == np.inf:
+                pass                   # no model slope (no spread): the smallest candidate below
             else:                      # interpolate the counts, a little either side of the targets
                 reach = 0.5 * math.sqrt(c) + 1.0
                 aim1 = tau - reach
