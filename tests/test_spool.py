@@ -105,7 +105,7 @@ def test_spool_folder_is_removed_with_the_result():
     sc = sp.Scenario(sp.NormalTwoArm(n=8, effect=0.5), sp.TTest())
     res = sp.run(sc, reps=runner.RECORDS_IN_MEMORY + 1, seed=2, n_jobs=1, progress=False)
     folder = res.records["t_test"]._spool_folder.path
-    assert os.path.isdir(folder) and len(os.listdir(folder)) == len(FIELDS)
+    assert os.path.isdir(folder) and os.listdir(folder) == ["records"]
     del res
     gc.collect()
     assert not os.path.exists(folder)
@@ -139,3 +139,19 @@ def test_default_memory_does_not_grow_with_reps_above_the_in_memory_limit():
     # in memory the records alone would take 42 bytes per replicate: 16.8 MB at 400,000
     assert p_large < 1.2 * p_small + 500_000, (p_small, p_large)
     assert p_large < large * 42 / 4
+
+
+def test_spool_file_is_closed_once_the_point_is_complete():
+    sc = sp.Scenario(sp.NormalTwoArm(n=8, effect=0.2), sp.TTest())
+    spool, book = RecordSpool(sc.analyses, 200), CauseBook()
+    before = len(os.listdir("/proc/self/fd")) if os.path.isdir("/proc/self/fd") else None
+    first = run_chunk(sc, 3, 1, 0, 100)
+    spool.add(first, 0, book.remap(first))
+    assert len(spool._fds) == 1  # open while the point runs
+    second = run_chunk(sc, 3, 1, 1, 100)
+    spool.add(second, 100, book.remap(second))
+    assert not spool._fds  # a sweep of many points holds open only the running points' files
+    if before is not None:
+        assert len(os.listdir("/proc/self/fd")) == before
+    causes, messages, table = book.canonical()
+    assert spool.records(causes, messages, table)["t_test"].pvalue.size == 200

@@ -5,8 +5,9 @@ A run that keeps its records (the default up to
 holds about 42 bytes per replicate and analysis, plus the copies made while
 summarising. Above a small size (:data:`~simpower.engine.runner.RECORDS_IN_MEMORY`)
 the runner instead *spools* them: each chunk's arrays are written with
-``os.pwrite`` at their replicate offset into one raw file per field, in a
-private temporary folder, and the summaries come from the streaming tallies
+``os.pwrite`` at their replicate offset into one raw file per grid point
+(every field of every analysis at its own offset), in a private temporary
+folder, and the summaries come from the streaming tallies
 of :mod:`simpower.engine.tally`. Written pages live in the operating system's
 file cache, not in the process, so the process's memory stays flat in reps.
 The result's ``records`` are then read-only ``numpy.memmap`` arrays over those
@@ -60,36 +61,38 @@ class _Folder:
 class RecordSpool:
     """Records of one grid point written to disk chunk by chunk, as raw little-endian arrays.
 
+    One file per point holds every field of every analysis, each a
+    contiguous array at its own offset. The file is opened at the first
+    chunk and closed once every replicate is written, so a sweep of many
+    points holds open only the files of the points still running.
+
     Parameters
     ----------
     analyses : iterable of str
     reps : int
-        Replicates of the point (the files' length).
+        Replicates of the point.
     parent : str, optional
         Where the private folder is made (default: the system's temporary folder).
     """
 
     def __init__(self, analyses, reps: int, parent=None):
         self.reps = int(reps)
+        self.analyses = list(analyses)
         self.folder = _Folder(parent)
+        self.path = os.path.join(self.folder.path, "records")
         self.book = CauseBook()
         self.hypotheses: dict[str, list[str]] = {}
-        self._fds: dict[tuple[str, str], int] = {}
-        self._paths: dict[tuple[str, str], str] = {}
         self._pvalues: dict[str, np.ndarray] = {}
-        self.analyses = list(analyses)
-        for i, name in enumerate(self.analyses):
+        self._offsets: dict[tuple[str, str], int] = {}
+        at = 0
+        for name in self.analyses:
             for f, dt in _DTYPES.items():
-                path = os.path.join(self.folder.path, f"{i}.{f}")
-                fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_TRUNC, 0o600)
-                self._fds[(name, f)] = fd
-                self._paths[(name, f)] = path
-                try:
-                    os.ftruncate(fd, self.reps * dt.itemsize)  # sparse: unwritten replicates read as 0
-                except OSError as exc:
-                    self.close()
-                    raise self._error(exc) from None
+                self._offsets[(name, f)] = at
+                at += self.reps * dt.itemsize
+        self._size = at
+        self._fds: dict[str, int] = {}
         self._written: list[tuple[int, int]] = []
+        self._done = 0
         self._finalizer = weakref.finalize(self, _close_all, self._fds)
 
     def _error(self, exc: OSError) -> RunError:
@@ -97,12 +100,24 @@ class RecordSpool:
                         f"({exc.strerror or exc}); free some disk space or set TMPDIR to another folder, "
                         f"or pass keep_records=False (summaries only).")
 
+    def _fd(self) -> int:
+        fd = self._fds.get("file")
+        if fd is None:
+            try:
+                fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o600)
+                if os.fstat(fd).st_size < self._size:
+                    os.ftruncate(fd, self._size)  # sparse: replicates not yet written read as 0
+            except OSError as exc:
+                raise self._error(exc) from None
+            self._fds["file"] = fd
+        return fd
+
     def add(self, out: ChunkOutput, start: int, table: np.ndarray) -> None:
         """Write chunk ``out`` at replicates ``[start, start + out.size)``; ``table`` maps its codes to the book's."""
         stop = start + out.size
-        self._written.append((start, stop))
+        fd = self._fd()
         for name, rec in out.records.items():
-            if (name, "status") not in self._fds:
+            if (name, "status") not in self._offsets:
                 continue
             for f, v in rec.items():
                 if f == "pvalues":
@@ -111,14 +126,17 @@ class RecordSpool:
                 dt = _DTYPES.get(f)
                 if dt is None:
                     continue
-                data = table[v] if f == "status" else v
-                buf = np.ascontiguousarray(data, dtype=dt)
+                buf = np.ascontiguousarray(table[v] if f == "status" else v, dtype=dt)
                 try:
-                    os.pwrite(self._fds[(name, f)], memoryview(buf).cast("B"), start * dt.itemsize)
+                    os.pwrite(fd, memoryview(buf).cast("B"), self._offsets[(name, f)] + start * dt.itemsize)
                 except OSError as exc:
                     raise self._error(exc) from None
         for name, h in out.hypotheses.items():
             self.hypotheses.setdefault(name, h)
+        self._written.append((start, stop))
+        self._done += out.size
+        if self._done >= self.reps:
+            self.close()  # complete: nothing more to write until the records are built
 
     def _add_pvalues(self, name, v, start, stop):
         width = v.shape[1]
@@ -149,16 +167,20 @@ class RecordSpool:
         :class:`~simpower.engine.collect.RecordCollector`.
         """
         missing = self._gaps()
-        for name in self.analyses:
-            for f in FIELDS:
-                for lo, hi in missing:
-                    nan = np.full(hi - lo, np.nan, _DTYPES[f])
-                    os.pwrite(self._fds[(name, f)], memoryview(nan).cast("B"), lo * 8)
-            if not np.array_equal(table, np.arange(table.size)):
-                self._renumber(self._fds[(name, "status")], table)
-        for fd in self._fds.values():
-            os.close(fd)
-        self._fds.clear()
+        renumber = not np.array_equal(table, np.arange(table.size))
+        if (missing or renumber) and self.reps:
+            fd = self._fd()
+            try:
+                for name in self.analyses:
+                    for f in FIELDS:
+                        for lo, hi in missing:
+                            nan = np.full(hi - lo, np.nan, _DTYPES[f])
+                            os.pwrite(fd, memoryview(nan).cast("B"), self._offsets[(name, f)] + lo * 8)
+                    if renumber:
+                        self._renumber(fd, self._offsets[(name, "status")], table)
+            except OSError as exc:
+                raise self._error(exc) from None
+        self.close()
         out = {}
         for name in self.analyses:
             cols = {f: self._map(name, f) for f in _DTYPES}
@@ -173,17 +195,19 @@ class RecordSpool:
         dt = _DTYPES[f]
         if self.reps == 0:
             return np.empty(0, dt)
-        return np.memmap(self._paths[(name, f)], dtype=dt, mode="r", shape=(self.reps,))
+        return np.memmap(self.path, dtype=dt, mode="r", offset=self._offsets[(name, f)], shape=(self.reps,))
 
-    def _renumber(self, fd: int, table: np.ndarray) -> None:
+    def _renumber(self, fd: int, base: int, table: np.ndarray) -> None:
         item = _DTYPES["status"].itemsize
         for lo in range(0, self.reps, _RENUMBER_STEP):
             n = min(_RENUMBER_STEP, self.reps - lo)
-            codes = np.frombuffer(os.pread(fd, n * item, lo * item), dtype="<i2")
+            codes = np.frombuffer(os.pread(fd, n * item, base + lo * item), dtype="<i2")
             if codes.any():
-                os.pwrite(fd, memoryview(np.ascontiguousarray(table[codes], dtype="<i2")).cast("B"), lo * item)
+                os.pwrite(fd, memoryview(np.ascontiguousarray(table[codes], dtype="<i2")).cast("B"),
+                          base + lo * item)
 
     def close(self) -> None:
+        """Close the file (reopened if more is written)."""
         _close_all(self._fds)
 
 
