@@ -29,8 +29,8 @@ Walsh averages use ``u = v = sort(d)``, ``scale = 0.5`` and only the columns
 at the end (halving preserves order). Inputs must be finite (no NaN, no inf). Of
 two entries equal as numbers but not as bits (-0.0 and 0.0), either may be returned.
 
-The kernel is compiled with numba when numba is installed (the ``fast`` extra:
-``pip install "simpower[fast]"``), and numba caches the machine code beside this
+The kernel is compiled with numba (a dependency of simpower; the code still runs
+where numba cannot be imported), and numba caches the machine code beside this
 file (``cache=True``), so only the first process of an installation compiles
 (several seconds). Without numba the same functions stay plain Python (slow, but
 importable and testable), and the analyses use their numpy reference path instead

@@ -21,11 +21,12 @@ are meaningful there; the Mann-Whitney test can report the probability index
 P(Y1 > Y0) + P(Y1 = Y0)/2 instead.
 
 The order statistics come from one of two paths that give the same floats
-(:func:`order_statistic_backend`): with numba installed (``pip install
-"simpower[fast]"``), a compiled selection on the sorted samples
+(:func:`order_statistic_backend`): with numba (a dependency of simpower), a
+compiled selection on the sorted samples
 (:mod:`simpower.analyses._rank_kernels`, a few O(n0 + n1) staircase walks per
 order statistic); otherwise, or with the environment variable
-``SIMPOWER_NO_NUMBA=1`` (read at each call), the numpy reference path that forms
+``SIMPOWER_NO_NUMBA=1`` (read at each call), or where numba cannot be imported,
+the numpy reference path that forms
 all m differences (or Walsh averages) and partitions them. Every order statistic is
 one of those values, computed by the same floating-point operation on both paths,
 so a seed gives the same numbers with or without numba.
