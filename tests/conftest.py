@@ -2,7 +2,6 @@
 
 import os
 
-import matplotlib
-
-matplotlib.use("Agg")
+# matplotlib reads the backend from the environment when it is first imported (by the report
+# tests only); setting it here keeps the other tests free of matplotlib
 os.environ.setdefault("MPLBACKEND", "Agg")

@@ -9,6 +9,14 @@ import pytest
 
 from simpower.cli.main import main
 
+try:
+    import matplotlib  # noqa: F401
+    HAVE_MPL = True
+except ImportError:
+    HAVE_MPL = False
+#: the tests that draw figures (matplotlib is a dependency of simpower; an environment may lack it)
+needs_mpl = pytest.mark.skipif(not HAVE_MPL, reason="figures need matplotlib")
+
 TOML = """
 name = "CLI planning test"
 alpha = 0.05
@@ -49,6 +57,7 @@ def scen(tmp_path):
     return p
 
 
+@needs_mpl
 def test_sweep_writes_csv_parquet_and_plots(scen, tmp_path, capsys):
     rc = main(["sweep", str(scen), "--seed", "1", "--jobs", "1", "-q", "--csv", str(tmp_path / "s.csv"),
                "--parquet", str(tmp_path / "s.parquet"), "--plot", str(tmp_path / "curve")])
@@ -110,6 +119,7 @@ def _tables(d):
             for name in ("sweep", "search", "null_check")}
 
 
+@needs_mpl
 def test_report_manifest_command_reproduces_the_numbers(scen, tmp_path, monkeypatch, capsys):
     out = tmp_path / "rep"
     argv = ["report", str(scen), "--out", str(out), "--jobs", "1", "-q"]   # no seed: fresh entropy, recorded
@@ -128,6 +138,7 @@ def test_report_manifest_command_reproduces_the_numbers(scen, tmp_path, monkeypa
     assert json.loads((out / "manifest.json").read_text())["seed"] == man["seed"]
 
 
+@needs_mpl
 def test_report_without_search_or_sweep_runs_the_design(tmp_path, monkeypatch, capsys):
     p = tmp_path / "plain.toml"
     p.write_text(TOML.split("[sweep]")[0] + "\n[sequential]\ntarget_mcse = 0.02\n\n[null_check]\nreps = 400\n")
@@ -252,6 +263,7 @@ def test_non_numeric_plot_axis_is_refused_before_running(scen, tmp_path, capsys)
     assert "seed:" not in cap.out and not (tmp_path / "c.png").exists()
 
 
+@needs_mpl
 def test_command_line_grid_sets_aside_a_stale_file_x(tmp_path, capsys):
     p = _with_x(tmp_path, '"effect"')          # swept by the file's grid, not by --vary
     rc = main(["sweep", str(p), "--seed", "1", "--jobs", "1", "-q", "--vary", "n=10,20", "--plot",
@@ -277,3 +289,21 @@ def test_missing_closed_form_prints_a_dash(tmp_path, capsys):
     col = head.index("analytic_power")
     rows = [ln.split() for ln in lines[1:3]]
     assert [r[col] for r in rows] == ["-", "-"] and "None" not in "\n".join(lines)
+
+
+def test_report_without_matplotlib_is_one_line_naming_the_fix(tmp_path):
+    import os
+    import subprocess
+
+    fake = tmp_path / "blocked" / "matplotlib"
+    fake.mkdir(parents=True)
+    (fake / "__init__.py").write_text("raise ModuleNotFoundError(\"No module named 'matplotlib'\", name='matplotlib')\n")
+    scen = tmp_path / "s.toml"
+    scen.write_text('[process]\ntype = "normal_two_arm"\nn = 20\neffect = 0.5\n\n[analysis]\ntype = "t_test"\n')
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(tmp_path / "blocked"), *sys.path]))
+    out = subprocess.run([sys.executable, "-m", "simpower.cli.main", "report", str(scen), "--out",
+                          str(tmp_path / "r"), "--reps", "200", "--jobs", "1"], capture_output=True, text=True,
+                         env=env, cwd=tmp_path)
+    assert out.returncode != 0
+    err = out.stderr.strip().splitlines()
+    assert len(err) == 1 and "pip install matplotlib" in err[0] and "Traceback" not in out.stderr

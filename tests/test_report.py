@@ -5,12 +5,14 @@ import re
 
 import pytest
 
-import simpower as sp
-from simpower.report import make_report, reproduce_command
-from simpower.report import plots
-from simpower.search import required_n
-from simpower.sweep import null_check, sweep
-from simpower.textout import CAUTION
+pytest.importorskip("matplotlib", reason="the report's figures need matplotlib (a dependency of simpower)")
+
+import simpower as sp  # noqa: E402
+from simpower.report import make_report, reproduce_command  # noqa: E402
+from simpower.report import plots  # noqa: E402
+from simpower.search import required_n  # noqa: E402
+from simpower.sweep import null_check, sweep  # noqa: E402
+from simpower.textout import CAUTION  # noqa: E402
 
 SC = sp.Scenario(sp.NormalTwoArm(n=30, effect=0.6), analyses=[sp.TTest(), sp.WelchT()], name="Demo trial")
 

@@ -9,11 +9,18 @@ from __future__ import annotations
 
 from pathlib import Path
 
-import matplotlib
 import numpy as np
 import pandas as pd
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.figure import Figure
+
+from ..errors import SimpowerError
+
+try:
+    import matplotlib
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+except ImportError as exc:  # a declared dependency, but an environment may lack it
+    raise SimpowerError(f"reports and plots need matplotlib, which cannot be imported here ({exc}); "
+                        f"install it with `pip install matplotlib` (simpower's own install brings it).") from None
 
 COLORS = ("#1f5fa8", "#c4441c", "#2a8a3e", "#7a3fa0", "#b88a00", "#4d4d4d")
 
