@@ -18,7 +18,7 @@ from .. import analytic
 from .._validation import Bool, Real
 from ..errors import ParameterError
 from .base import CI_LEVEL, Analysis, TestResult
-from .ttests import TTest, _batch_arms, _mean_var, _split_arms, p_from_t
+from .ttests import TTest, _batch_arms, _mean_var, _split_arms, p_from_t, two_sample_se_df
 
 POSITIVE = Real(0.0, low_open=True)
 
@@ -31,15 +31,8 @@ def _t_parts(data, equal_var):
         return (y,), float(y.mean()), float(y.std(ddof=1) / math.sqrt(y.size)), y.size - 1.0
     y0, y1 = _split_arms(data)
     n0, n1 = y0.size, y1.size
-    v0, v1 = y0.var(ddof=1), y1.var(ddof=1)
-    if equal_var:
-        df = n0 + n1 - 2.0
-        se = math.sqrt(((n0 - 1) * v0 + (n1 - 1) * v1) / df * (1 / n0 + 1 / n1))
-    else:
-        a0, a1 = v0 / n0, v1 / n1
-        se = math.sqrt(a0 + a1)
-        df = (a0 + a1) ** 2 / (a0**2 / (n0 - 1) + a1**2 / (n1 - 1))
-    return (y0, y1), float(y1.mean() - y0.mean()), se, float(df)
+    se, df = two_sample_se_df(n0, n1, y0.var(ddof=1), y1.var(ddof=1), equal_var)
+    return (y0, y1), float(y1.mean() - y0.mean()), float(se), float(df)
 
 
 def _scipy_p(samples, value, equal_var, alternative):
@@ -60,11 +53,7 @@ def _batch_parts(batch, equal_var):
         n0, n1 = y0.shape[1], y1.shape[1]
         m0, v0 = _mean_var(y0)
         m1, v1 = _mean_var(y1)
-        if equal_var:
-            df = n0 + n1 - 2.0
-            return m1 - m0, np.sqrt(((n0 - 1) * v0 + (n1 - 1) * v1) / df * (1 / n0 + 1 / n1)), df
-        a0, a1 = v0 / n0, v1 / n1
-        return m1 - m0, np.sqrt(a0 + a1), (a0 + a1) ** 2 / (a0**2 / (n0 - 1) + a1**2 / (n1 - 1))
+        return (m1 - m0, *two_sample_se_df(n0, n1, v0, v1, equal_var))
 
 
 def _ci(est, se, df, level):

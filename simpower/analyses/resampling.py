@@ -26,7 +26,7 @@ from scipy import special, stats
 
 from .._validation import Bool, Choice, Int, Real
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
-from .ttests import PairedT, _batch_arms, _mean_var, _split_arms, p_from_t
+from .ttests import PairedT, _batch_arms, _mean_var, _split_arms, p_from_t, two_sample_se_df
 
 POSITIVE = Real(0.0, low_open=True)
 SEED = Int(low=0)
@@ -314,13 +314,7 @@ class LogT(Analysis):
                 m0, v0 = _mean_var(l0)
                 m1, v1 = _mean_var(l1)
                 est = m1 - m0
-                if self.equal_var:
-                    df = n0 + n1 - 2
-                    se_log = np.sqrt(((n0 - 1) * v0 + (n1 - 1) * v1) / df * (1 / n0 + 1 / n1))
-                else:
-                    a0, a1 = v0 / n0, v1 / n1
-                    se_log = np.sqrt(a0 + a1)
-                    df = (a0 + a1) ** 2 / (a0**2 / (n0 - 1) + a1**2 / (n1 - 1))
+                se_log, df = two_sample_se_df(n0, n1, v0, v1, self.equal_var)
             t = (est - math.log(self.null_ratio)) / se_log
             crit = stats.t.ppf(0.5 + self.ci_level / 2, df)
             ratio = np.exp(est)

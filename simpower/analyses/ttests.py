@@ -71,6 +71,19 @@ def _mean_var(y):
     return m, v
 
 
+def two_sample_se_df(n0, n1, v0, v1, equal_var: bool):
+    """SE of the difference in arm means and its df, from arm sizes and variances (scalars or arrays).
+
+    ``equal_var``: the pooled variance and n0 + n1 - 2 df (Student); otherwise
+    the Welch-Satterthwaite df (Welch 1947; Satterthwaite 1946).
+    """
+    if equal_var:
+        df = n0 + n1 - 2.0
+        return np.sqrt(((n0 - 1) * v0 + (n1 - 1) * v1) / df * (1 / n0 + 1 / n1)), df
+    a0, a1 = v0 / n0, v1 / n1
+    return np.sqrt(a0 + a1), (a0 + a1) ** 2 / (a0**2 / (n0 - 1) + a1**2 / (n1 - 1))
+
+
 def _ci(est, se, crit):
     return est - crit * se, est + crit * se
 
@@ -137,9 +150,8 @@ class TTest(_TBase):
             n0, n1 = y0.shape[1], y1.shape[1]
             m0, v0 = _mean_var(y0)
             m1, v1 = _mean_var(y1)
-            df = n0 + n1 - 2
-            sp2 = ((n0 - 1) * v0 + (n1 - 1) * v1) / df
-            return self._result(m1 - m0, np.sqrt(sp2 * (1 / n0 + 1 / n1)), df)
+            se, df = two_sample_se_df(n0, n1, v0, v1, equal_var=True)
+            return self._result(m1 - m0, se, df)
 
     def analytic_power(self, process, alpha):
         nc = process.normal_case()
@@ -179,10 +191,8 @@ class WelchT(_TBase):
         with np.errstate(all="ignore"):
             m0, v0 = _mean_var(y0)
             m1, v1 = _mean_var(y1)
-            a0, a1 = v0 / n0, v1 / n1
-            se2 = a0 + a1
-            df = se2**2 / (a0**2 / (n0 - 1) + a1**2 / (n1 - 1))
-            return self._result(m1 - m0, np.sqrt(se2), df)
+            se, df = two_sample_se_df(n0, n1, v0, v1, equal_var=False)
+            return self._result(m1 - m0, se, df)
 
     def analytic_power(self, process, alpha):
         nc = process.normal_case()
