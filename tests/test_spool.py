@@ -155,3 +155,19 @@ def test_spool_file_is_closed_once_the_point_is_complete():
         assert len(os.listdir("/proc/self/fd")) == before
     causes, messages, table = book.canonical()
     assert spool.records(causes, messages, table)["t_test"].pvalue.size == 200
+
+
+def test_spooled_several_hypothesis_pvalues_and_labels_equal_the_in_memory_ones():
+    from simpower.analyses.multiplicity import Multiple
+    from simpower.registry import build
+
+    arms = build("process", {"type": "multi_arm", "effects": [0, 0.3, 0.5], "n": 6})
+    sc = sp.Scenario(arms, Multiple(tests=[sp.TTest()], comparisons="each_vs_control"))
+    reps = runner.RECORDS_IN_MEMORY + 500
+    spooled = sp.run(sc, reps=reps, seed=8, n_jobs=1, progress=False)
+    kept = sp.run(sc, reps=reps, seed=8, n_jobs=1, progress=False, keep_records=True)
+    s, k = spooled.records["multiple"], kept.records["multiple"]
+    assert isinstance(s.pvalue, np.memmap)
+    _same(s, k)
+    assert s.pvalues.tobytes() == k.pvalues.tobytes() and s.hypotheses == k.hypotheses == ["1-0", "2-0"]
+    assert spooled.summaries["multiple"]["per_hypothesis"] == kept.summaries["multiple"]["per_hypothesis"]

@@ -52,6 +52,23 @@ class CauseBook:
         return order, {c: self.messages[c] for c in order}, table
 
 
+def place_pvalues(arr: np.ndarray | None, v: np.ndarray, start: int, reps: int) -> np.ndarray:
+    """Put a chunk's several-hypothesis p-values ``v`` (size, k) at ``start`` of a (reps, width) array.
+
+    The array is made (NaN) when ``arr`` is None and widened when ``v`` has more
+    hypotheses than seen so far; returns the array to keep.
+    """
+    width = v.shape[1]
+    if arr is None:
+        arr = np.full((reps, width), np.nan)
+    elif arr.shape[1] < width:
+        wider = np.full((reps, width), np.nan)
+        wider[:, : arr.shape[1]] = arr
+        arr = wider
+    arr[start:start + v.shape[0], :width] = v
+    return arr
+
+
 class RecordCollector:
     """Per-replicate arrays of one grid point, filled chunk by chunk."""
 
@@ -74,14 +91,7 @@ class RecordCollector:
                 if f == "status":
                     arr["status"][start:stop] = table[v]
                 elif f == "pvalues":
-                    width = v.shape[1]
-                    if "pvalues" not in arr:
-                        arr["pvalues"] = np.full((self.reps, width), np.nan)
-                    elif arr["pvalues"].shape[1] < width:
-                        wider = np.full((self.reps, width), np.nan)
-                        wider[:, : arr["pvalues"].shape[1]] = arr["pvalues"]
-                        arr["pvalues"] = wider
-                    arr["pvalues"][start:stop, :width] = v
+                    arr["pvalues"] = place_pvalues(arr.get("pvalues"), v, start, self.reps)
                 elif f in arr:
                     arr[f][start:stop] = v
         for name, h in out.hypotheses.items():

@@ -395,7 +395,7 @@ def _result(pt: _Point, entropy, seconds, fit_trouble, n_jobs, backend, store) -
         return RunResult(pt.scenario, pt.reps, entropy, pt.chunk_size, pt.collector.records(), pt.paths, seconds,
                          fit_trouble, n_jobs=jobs, backend=backend, point=pt.key, chunk_seconds=pt.chunk_seconds)
     causes, messages, table = pt.stream_book.canonical()
-    records = pt.spool.records(causes, messages, table) if pt.spool is not None else None
+    records = pt.spool.records(causes, messages, table, pt.hyp) if pt.spool is not None else None
     return StreamedResult(pt.scenario, pt.reps, entropy, pt.chunk_size, pt.tally, causes, messages, pt.paths,
                           seconds, fit_trouble, n_jobs=jobs, backend=backend, point=pt.key,
                           chunk_seconds=pt.chunk_seconds, hypotheses=pt.hyp,

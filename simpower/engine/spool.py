@@ -37,7 +37,7 @@ from ..analyses.base import FIELDS
 from ..errors import RunError
 from ..result import Records
 from .chunk import ChunkOutput
-from .collect import CauseBook
+from .collect import place_pvalues
 
 #: fields written to disk, their dtypes
 _DTYPES = {**{f: np.dtype("<f8") for f in FIELDS}, "status": np.dtype("<i2")}
@@ -80,8 +80,6 @@ class RecordSpool:
         self.analyses = list(analyses)
         self.folder = _Folder(parent)
         self.path = os.path.join(self.folder.path, "records")
-        self.book = CauseBook()
-        self.hypotheses: dict[str, list[str]] = {}
         self._pvalues: dict[str, np.ndarray] = {}
         self._offsets: dict[tuple[str, str], int] = {}
         at = 0
@@ -121,7 +119,7 @@ class RecordSpool:
                 continue
             for f, v in rec.items():
                 if f == "pvalues":
-                    self._add_pvalues(name, v, start, stop)
+                    self._pvalues[name] = place_pvalues(self._pvalues.get(name), v, start, self.reps)
                     continue
                 dt = _DTYPES.get(f)
                 if dt is None:
@@ -131,23 +129,10 @@ class RecordSpool:
                     os.pwrite(fd, memoryview(buf).cast("B"), self._offsets[(name, f)] + start * dt.itemsize)
                 except OSError as exc:
                     raise self._error(exc) from None
-        for name, h in out.hypotheses.items():
-            self.hypotheses.setdefault(name, h)
         self._written.append((start, stop))
         self._done += out.size
         if self._done >= self.reps:
             self.close()  # complete: nothing more to write until the records are built
-
-    def _add_pvalues(self, name, v, start, stop):
-        width = v.shape[1]
-        arr = self._pvalues.get(name)
-        if arr is None:
-            arr = self._pvalues[name] = np.full((self.reps, width), np.nan)
-        elif arr.shape[1] < width:
-            wider = np.full((self.reps, width), np.nan)
-            wider[:, : arr.shape[1]] = arr
-            arr = self._pvalues[name] = wider
-        arr[start:stop, :width] = v
 
     def _gaps(self) -> list[tuple[int, int]]:
         """Replicate ranges no chunk wrote (an unfinished point)."""
@@ -160,8 +145,10 @@ class RecordSpool:
             gaps.append((at, self.reps))
         return gaps
 
-    def records(self, causes, messages, table: np.ndarray) -> dict[str, Records]:
+    def records(self, causes, messages, table: np.ndarray, hypotheses=None) -> dict[str, Records]:
         """The records as read-only memory maps, causes renumbered by ``table`` (book code -> canonical).
+
+        ``hypotheses``: the labels of each analysis' several p-values, if any.
 
         Replicates that never ran have NaN fields and status 0, as in
         :class:`~simpower.engine.collect.RecordCollector`.
@@ -186,7 +173,7 @@ class RecordSpool:
             cols = {f: self._map(name, f) for f in _DTYPES}
             r = Records(cols["pvalue"], cols["estimate"], cols["se"], cols["ci_low"], cols["ci_high"],
                         cols["status"], list(causes), dict(messages), self._pvalues.get(name),
-                        self.hypotheses.get(name, []))
+                        (hypotheses or {}).get(name, []))
             r._spool_folder = self.folder  # the folder lives as long as the records
             out[name] = r
         return out
