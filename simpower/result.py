@@ -10,7 +10,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .summaries import paired_difference, summarize_records
+from .errors import RunError
+from .summaries import PointStats, finalise, paired_from_counts
 
 #: distance (in MCSE units) above which simulated and analytic power are flagged
 CROSS_CHECK_FLAG = 3.0
@@ -50,6 +51,23 @@ class Records:
         return df
 
 
+class MissingRecords(dict):
+    """Stands for ``result.records`` when per-replicate records were not kept in memory."""
+
+    def __init__(self, store_path=None):
+        super().__init__()
+        self._store_path = store_path
+
+    def _fail(self, *a, **k):
+        where = (f" They are in the run store {self._store_path}: simpower.engine.open_store(path).records(point)."
+                 if self._store_path else " Give a store to keep them on disk, or keep_records=True.")
+        raise RunError("per-replicate records were not kept in memory (keep_records=False)." + where)
+
+    __getitem__ = _fail
+    values = _fail
+    items = _fail
+
+
 class RunResult:
     """What a run produced.
 
@@ -61,9 +79,14 @@ class RunResult:
         The ``SeedSequence`` entropy the run used; pass it back as ``seed`` to
         reproduce the numbers exactly.
     records : dict of name -> Records
+        Per-replicate records, held in memory or read from a spool file on
+        disk; with ``keep_records=False`` an accessor that says where they are.
     paths : dict of name -> 'batch' or 'per-replicate'
-    summaries : dict of name -> dict
-        Power, MCSE, Wilson interval, failures and estimate measures.
+    summaries : dict of name -> :class:`~simpower.summaries.AnalysisSummary`
+        Power, MCSE, Wilson interval, failures and estimate measures, from the
+        chunk statistics folded in chunk order (the same figures whether the
+        records were kept, spooled or streamed).
+    messages : dict of name -> dict of cause -> first message
     analytic : dict of name -> float or None
         Closed-form power where the analytic core covers the scenario.
     seconds : float
@@ -71,7 +94,8 @@ class RunResult:
     """
 
     def __init__(self, scenario, reps, seed, chunk_size, records, paths, seconds, fit_trouble="failure",
-                 n_jobs=None, backend=None, point=0, chunk_seconds=0.0, extra=None):
+                 n_jobs=None, backend=None, point=0, chunk_seconds=0.0, extra=None, stats: PointStats | None = None,
+                 messages: dict[str, str] | None = None, hypotheses: dict[str, list[str]] | None = None):
         self.scenario = scenario
         self.reps = int(reps)
         self.seed = int(seed)
@@ -86,18 +110,22 @@ class RunResult:
         self.chunk_seconds = chunk_seconds
         self.extra = dict(extra or {})
         self.analytic = scenario.analytic_power()
-        self.summaries = {
-            name: summarize_records(r.pvalue, r.status, r.causes, scenario.alpha, fit_trouble,
-                                    r.estimate, r.se, r.ci_low, r.ci_high, scenario.true_effect_for(name))
-            for name, r in records.items()
-        }
-        for name, s in self.summaries.items():
-            s["true_effect"] = scenario.true_effect_for(name)
-        for name, s in self.summaries.items():
+        kept = not isinstance(records, MissingRecords)
+        if stats is None:
+            stats = PointStats.from_records(scenario, records, chunk_size)
+        if messages is None:
+            messages = next(iter(records.values())).messages if kept and records else {}
+        if hypotheses is None:
+            hypotheses = {n: r.hypotheses for n, r in records.items()} if kept else {}
+        folded, self._pairs = stats.folded()
+        self.summaries = {}
+        for name, t in folded.items():
+            truth = stats.truth[name]
+            s = finalise(t, fit_trouble, truth, hypotheses.get(name))
+            s["true_effect"] = truth
             self._cross_check(name, s)
-            r = records[name]
-            if r.pvalues is not None:
-                s["per_hypothesis"] = self._hypotheses(r)
+            self.summaries[name] = s
+        self.messages = {name: dict(messages) for name in self.summaries}
 
     def _cross_check(self, name: str, s: dict[str, Any]) -> None:
         """Add the path, the analytic power and the distance in MCSE units to summary ``s``."""
@@ -112,20 +140,6 @@ class RunResult:
             s["distance_mcse"] = (s["power"] - a) / m
             # only an exact closed form can disagree by mistake; an approximation's distance is information
             s["cross_check_flag"] = exact and abs(s["distance_mcse"]) > CROSS_CHECK_FLAG
-
-    def _hypotheses(self, r: Records) -> dict[str, Any]:
-        ok = r.status == 0
-        rej = (r.pvalues[ok] <= self.scenario.alpha)
-        n = max(int(ok.sum()), 1)
-        out = {}
-        for j in range(rej.shape[1]):
-            p = float(rej[:, j].mean())
-            label = r.hypotheses[j] if j < len(r.hypotheses) else str(j)
-            out[label] = {"power": p, "mcse": math.sqrt(p * (1 - p) / n)}
-        for label, hit in (("any", rej.any(axis=1)), ("all", rej.all(axis=1))):
-            p = float(hit.mean())
-            out[label] = {"power": p, "mcse": math.sqrt(p * (1 - p) / n)}
-        return out
 
     # -- headline numbers ------------------------------------------------
     @property
@@ -147,16 +161,7 @@ class RunResult:
     # -- views -----------------------------------------------------------
     def summary(self) -> pd.DataFrame:
         """Tidy table: one row per analysis."""
-        rows = []
-        for name, s in self.summaries.items():
-            row = {"analysis": name}
-            for k, v in s.items():
-                if k == "failures":
-                    row["failures"] = "; ".join(f"{c} x{n}" for c, n in v.items())
-                elif k != "per_hypothesis":
-                    row[k] = v
-            rows.append(row)
-        return pd.DataFrame(rows)
+        return pd.DataFrame([{"analysis": name, **s.row()} for name, s in self.summaries.items()])
 
     def records_frame(self, analysis: str | None = None) -> pd.DataFrame:
         """Per-replicate records; all analyses stacked when ``analysis`` is None."""
@@ -170,16 +175,19 @@ class RunResult:
         return pd.concat(parts, ignore_index=True)
 
     def compare(self, a: str, b: str) -> dict[str, float]:
-        """Paired difference in power of analyses ``a`` and ``b`` on the same replicates."""
-        ra, rb = self.records[a], self.records[b]
-        both = (ra.status == 0) & (rb.status == 0)
-        alpha = self.scenario.alpha
-        out = paired_difference(ra.pvalue[both] <= alpha, rb.pvalue[both] <= alpha)
+        """Paired difference in power of analyses ``a`` and ``b`` on the replicates clean in both."""
+        if (a, b) in self._pairs:
+            only_a, only_b, n = self._pairs[(a, b)]
+        elif (b, a) in self._pairs:
+            only_b, only_a, n = self._pairs[(b, a)]
+        else:
+            raise KeyError(f"no analyses {a!r} and {b!r} in this result")
+        out = paired_from_counts(only_a, only_b, n)
         out.update({"a": a, "b": b})
         return out
 
     def comparisons(self) -> list[dict[str, float]]:
-        names = list(self.records)
+        names = list(self.summaries)
         return [self.compare(names[0], other) for other in names[1:]]
 
     def to_dict(self) -> dict[str, Any]:
@@ -202,7 +210,7 @@ class RunResult:
             "fit_trouble_policy": self.fit_trouble,
             "analyses": self.summaries,
             "comparisons": self.comparisons(),
-            "failure_messages": {n: r.messages for n, r in self.records.items() if r.messages},
+            "failure_messages": {n: m for n, m in self.messages.items() if m},
             **self.extra,
         })
 

@@ -36,7 +36,7 @@ def format_result(res) -> str:
             lines.append(f"  failures {s['n_failed']} of {s['reps']} ({fl}); policy for fit trouble: "
                          f"{s['fit_trouble_policy']}; counting failures as non-rejections: "
                          f"power {_f(s['power_failures_as_nonrejections'])}")
-            msgs = res.records[name].messages
+            msgs = res.messages.get(name, {})
             for c, m in list(msgs.items())[:5]:
                 kind = c.partition(":")[2]
                 if kind and m.startswith(kind + ": "):  # the cause already names the type

@@ -27,7 +27,7 @@ with a :class:`~simpower.errors.RunError` naming the causes and the first
 message of each. Finished chunks stay in the store.
 
 Memory. ``keep_records=False`` keeps only per-chunk tallies
-(:mod:`simpower.engine.tally`) instead of per-replicate arrays; it is the
+(:mod:`simpower.summaries`) instead of per-replicate arrays; it is the
 default above :data:`KEEP_RECORDS_LIMIT` replicates per point. Between
 :data:`RECORDS_IN_MEMORY` replicate-records and that limit, the default keeps
 the tallies and spools the records to disk (:mod:`simpower.engine.spool`).
@@ -47,13 +47,12 @@ from typing import Any, Protocol, Sequence
 import numpy as np
 
 from ..errors import ParameterError, RunError
-from ..result import RunResult
-from ..summaries import WARNING_PREFIX
+from ..result import MissingRecords, RunResult
+from ..summaries import WARNING_PREFIX, PointStats
 from .chunk import ChunkOutput, run_chunk
 from .collect import CauseBook, RecordCollector
 from .executor import check_backend, effective_jobs, execute
 from .spool import RecordSpool
-from .tally import PointTally, StreamedResult
 
 BATCH_CHUNK = 2000
 LOOP_CHUNK = 200
@@ -144,7 +143,7 @@ class _Point:
     key: int
     chunk_size: int
     collector: RecordCollector | None
-    tally: PointTally | None
+    stats: PointStats
     paths: dict = field(default_factory=dict)
     chunk_seconds: float = 0.0
     done: int = 0
@@ -157,23 +156,22 @@ class _Point:
     spool: RecordSpool | None = None
 
     def add(self, out: ChunkOutput) -> None:
+        self.stats.add(out)
         if self.collector is not None:
             self.collector.add(out, out.chunk * self.chunk_size)
         else:
             table = self.stream_book.remap(out)
             for name, h in out.hypotheses.items():
                 self.hyp.setdefault(name, h)
-            self.tally.add(out)
             if self.spool is not None:
                 self.spool.add(out, out.chunk * self.chunk_size, table)
-        for name, rec in out.records.items():
-            codes, n = np.unique(rec["status"][rec["status"] > 0], return_counts=True)
+        # failure counts come from the chunk's statistics (the one place they are counted)
+        for name, t in self.stats.chunks[out.chunk][0].items():
             per = self.counts.setdefault(name, {})
-            for code, k in zip(codes, n):
-                cause = out.causes[int(code) - 1]
-                per[cause] = per.get(cause, 0) + int(k)
-                if not cause.startswith(WARNING_PREFIX):
-                    self.hard[name] = self.hard.get(name, 0) + int(k)
+            for cause, k in t.counts.items():
+                per[cause] = per.get(cause, 0) + k
+            if t.n_hard:
+                self.hard[name] = self.hard.get(name, 0) + t.n_hard
         for name, p in out.paths.items():
             self.paths.setdefault(name, p)
         self.chunk_seconds += out.seconds
@@ -278,9 +276,9 @@ def _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble):
         keep = keep_records if keep_records is not None else r <= KEEP_RECORDS_LIMIT
         in_memory = keep_records is True or r * len(sc.analyses) <= RECORDS_IN_MEMORY
         if keep and in_memory:
-            pt = _Point(sc, int(r), key, cs, RecordCollector(sc.analyses, int(r)), None)
+            pt = _Point(sc, int(r), key, cs, RecordCollector(sc.analyses, int(r)), PointStats(sc))
         else:
-            pt = _Point(sc, int(r), key, cs, None, PointTally(sc, fit_trouble), stream_book=CauseBook(),
+            pt = _Point(sc, int(r), key, cs, None, PointStats(sc), stream_book=CauseBook(),
                         spool=RecordSpool(sc.analyses, int(r)) if keep else None)
         points.append(pt)
     return points
@@ -391,15 +389,17 @@ def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_
 
 def _result(pt: _Point, entropy, seconds, fit_trouble, n_jobs, backend, store) -> RunResult:
     jobs = effective_jobs(n_jobs) if backend != "dask" else None
+    common = dict(n_jobs=jobs, backend=backend, point=pt.key, chunk_seconds=pt.chunk_seconds, stats=pt.stats)
     if pt.collector is not None:
         return RunResult(pt.scenario, pt.reps, entropy, pt.chunk_size, pt.collector.records(), pt.paths, seconds,
-                         fit_trouble, n_jobs=jobs, backend=backend, point=pt.key, chunk_seconds=pt.chunk_seconds)
+                         fit_trouble, **common)
     causes, messages, table = pt.stream_book.canonical()
-    records = pt.spool.records(causes, messages, table, pt.hyp) if pt.spool is not None else None
-    return StreamedResult(pt.scenario, pt.reps, entropy, pt.chunk_size, pt.tally, causes, messages, pt.paths,
-                          seconds, fit_trouble, n_jobs=jobs, backend=backend, point=pt.key,
-                          chunk_seconds=pt.chunk_seconds, hypotheses=pt.hyp,
-                          store_path=str(getattr(store, "path", "")) or None, records=records)
+    if pt.spool is not None:
+        records = pt.spool.records(causes, messages, table, pt.hyp)
+    else:
+        records = MissingRecords(str(getattr(store, "path", "")) or None)
+    return RunResult(pt.scenario, pt.reps, entropy, pt.chunk_size, records, pt.paths, seconds, fit_trouble,
+                     messages=messages, hypotheses=pt.hyp, **common)
 
 
 def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,

@@ -8,7 +8,7 @@ the runner instead *spools* them: each chunk's arrays are written with
 ``os.pwrite`` at their replicate offset into one raw file per grid point
 (every field of every analysis at its own offset), in a private temporary
 folder, and the summaries come from the streaming tallies
-of :mod:`simpower.engine.tally`. Written pages live in the operating system's
+of :mod:`simpower.summaries`. Written pages live in the operating system's
 file cache, not in the process, so the process's memory stays flat in reps.
 The result's ``records`` are then read-only ``numpy.memmap`` arrays over those
 files, read from disk only when used; the folder is removed when the result

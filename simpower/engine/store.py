@@ -174,7 +174,7 @@ def _spec_diff(old: Any, new: Any, prefix: str = "") -> list[str]:
 
 def _analyses_info(scenario) -> dict[str, dict[str, Any]]:
     """Per analysis: the true value of its estimand (for bias and coverage read back from the store)."""
-    from .tally import true_effect_of
+    from ..summaries import true_effect_of
 
     return {name: {"true_effect": true_effect_of(scenario, name)} for name in scenario.analyses}
 
@@ -742,25 +742,24 @@ class RunStore:
         Summaries use the stored chunks (a partial point is summarised over
         what finished; ``complete`` says whether all planned replicates are in).
         """
-        from .tally import AnalysisTally, summary_of, tally_analysis
+        from ..summaries import AnalysisStats, finalise
 
         out = []
         for point, fp, seed, cs, reps, analyses, spec_text in self._point_rows():
             spec = json.loads(spec_text)
             alpha = float(spec.get("alpha", 0.05))
             truth = _truths(analyses)
-            tallies = {name: AnalysisTally() for name in truth}
-            for chunk in self.iter_chunks(point):  # one chunk in memory at a time
+            tallies = {name: AnalysisStats() for name in truth}
+            for chunk in self.iter_chunks(point):  # one chunk in memory at a time, in chunk order
                 for name, rec in chunk.records.items():
                     if name in tallies:
-                        tallies[name] = tallies[name].merge(
-                            tally_analysis(rec, chunk.causes, alpha, fit_trouble, truth[name]))
+                        tallies[name] = tallies[name].merge(AnalysisStats.of(rec, chunk.causes, alpha, truth[name]))
             params = _flatten(spec.get("process", {}), "")
             for name, t in tallies.items():
                 row = {"point": point, "analysis": name, "fingerprint": fp, "seed": seed, "chunk_size": cs,
                        "reps": reps, "reps_done": t.reps, "complete": t.reps >= reps, **params, "alpha": alpha}
                 if t.reps:
-                    sm = summary_of(t, fit_trouble, truth[name])
+                    sm = finalise(t, fit_trouble, truth[name])
                     row.update({k: sm[k] for k in ("power", "mcse", "ci_low", "ci_high", "n_ok", "n_failed",
                                                    "n_fit_trouble")})
                     row["failures"] = "; ".join(f"{c} x{n}" for c, n in sm["failures"].items())
