@@ -281,6 +281,15 @@ def test_layering_arrows(part):
     assert not bad, f"{part} imports a part above it:\n" + "\n".join(bad)
 
 
+def test_commands_do_not_import_each_other():
+    # steps shared by several commands live in cli/common.py and cli/planning.py
+    graph = import_graph(deferred=True)
+    commands = [m for m in graph if m.startswith("simpower.cli.cmd_")]
+    assert len(commands) >= 5
+    bad = [f"{m} imports {d}" for m in sorted(commands) for d in sorted(graph[m]) if d in commands]
+    assert not bad, "\n".join(bad)
+
+
 def test_registry_and_version_are_leaves():
     # everything registers into the registry and reads the version: they import nothing of simpower's
     # but the errors
