@@ -5,7 +5,7 @@ thousands of times, and read power, type I error, bias and coverage with their
 Monte Carlo error.
 """
 
-__version__ = "0.1.0"
+from ._version import __version__
 
 from . import analytic
 from .analyses.base import Analysis, TestResult, as_test_result

@@ -26,7 +26,8 @@ from typing import Any, ClassVar
 import numpy as np
 
 from ._validation import Anything, Constraint, check_params
-from .errors import ParameterError
+from .errors import ParameterError, nearest
+from .registry import build, register
 
 REQUIRED = object()
 
@@ -54,13 +55,9 @@ class Nested(Anything):
                 raise ParameterError(f"`{name}` must be a {self.kind}; got a {value.kind} ({value!r}).")
             return value
         if isinstance(value, dict):
-            from .registry import build
-
             return build(self.kind, value, where=name)
         # frozen scipy distributions are accepted where an outcome is expected
         if self.kind == "outcome" and hasattr(value, "rvs") and hasattr(value, "dist"):
-            from .registry import build
-
             return build("outcome", {"type": "scipy", "dist": value}, where=name)
         raise ParameterError(f"`{name}` must be {self.describe()}; got {value!r}.")
 
@@ -76,8 +73,6 @@ class Component:
     def __init_subclass__(cls, **kw):
         super().__init_subclass__(**kw)
         if cls.__dict__.get("name"):
-            from .registry import register
-
             register(cls)
 
     def __init__(self, **kwargs: Any):
@@ -135,8 +130,6 @@ class Component:
                 direct[key] = value
         new = dict(self._p)
         new.update(direct)
-        from .errors import nearest
-
         for head, sub in nested.items():
             child = new.get(head)
             if not isinstance(child, Component):

@@ -15,8 +15,10 @@ from pathlib import Path
 from typing import Any, Callable
 
 from .analyses.base import Analysis, as_test_result
+from .components import to_plain
 from .errors import ParameterError, nearest
 from .processes.base import Process
+from .registry import register_wrapper, resolve_reference
 
 
 def _source_hash(fn: Callable) -> str:
@@ -66,8 +68,6 @@ class _FunctionMixin:
         return type(self)(self._fn, {**self._p, **changes}, ref=self._ref, base_dir=self._base_dir)
 
     def spec(self):
-        from .components import to_plain
-
         out = {"type": self.label, **{k: to_plain(v) for k, v in self._p.items()}}
         out["_source"] = _source_hash(self._fn)
         return out
@@ -91,8 +91,6 @@ class _FunctionMixin:
         object.__setattr__(self, "_base_dir", state["_base_dir"])
         fn = state.get("_fn")
         if fn is None:
-            from .registry import resolve_reference
-
             fn = resolve_reference(state["_ref"], state["_base_dir"])
         object.__setattr__(self, "_fn", fn)
 
@@ -140,13 +138,9 @@ class FunctionAnalysis(_FunctionMixin, Analysis):
         return as_test_result(self._fn(data, **self._p))
 
 
-def wrap_callable(kind: str, fn: Callable, params: dict[str, Any] | None = None, ref: str | None = None,
-                  base_dir: str | Path | None = None):
-    if kind == "process":
-        return FunctionProcess(fn, params, ref=ref, base_dir=base_dir)
-    if kind == "analysis":
-        return FunctionAnalysis(fn, params, ref=ref, base_dir=base_dir)
-    raise ParameterError(f"a user function cannot serve as a {kind}; give a built-in {kind} name.")
+# `registry.build` wraps a `module:function` reference with these (the registry imports no component)
+register_wrapper("process", FunctionProcess)
+register_wrapper("analysis", FunctionAnalysis)
 
 
 def as_process(obj, params: dict[str, Any] | None = None) -> Process:

@@ -5,6 +5,10 @@ Built-in modules register their classes by setting a class attribute ``name``
 ``simpower.processes`` and ``simpower.analyses`` are imported on first lookup, so
 a new module needs no edit here.  Nothing is ever evaluated from a string:
 references are resolved by import only.
+
+This module imports no other part of simpower but the errors: components
+register themselves here, and so do the classes that wrap a user function as a
+process or an analysis (``simpower.functions``, :func:`register_wrapper`).
 """
 
 from __future__ import annotations
@@ -19,8 +23,12 @@ from typing import Any, Callable
 from .errors import ParameterError, UnknownNameError, nearest
 
 _REGISTRY: dict[str, dict[str, type]] = {}
+#: kind -> the class that wraps a user function as a component of that kind
+_WRAPPERS: dict[str, type] = {}
 _LOADED = False
 BUILTIN_PACKAGES = ("simpower.processes", "simpower.analyses")
+#: modules that register the wrappers of user functions
+BUILTIN_MODULES = ("simpower.functions",)
 
 
 def register(cls: type) -> None:
@@ -31,11 +39,28 @@ def register(cls: type) -> None:
     table[cls.name] = cls
 
 
+def register_wrapper(kind: str, cls: type) -> None:
+    """Register ``cls(fn, params, ref=..., base_dir=...)`` as the wrapper of user functions of ``kind``."""
+    _WRAPPERS[kind] = cls
+
+
+def wrap_callable(kind: str, fn: Callable, params: dict[str, Any] | None = None, ref: str | None = None,
+                  base_dir: str | Path | None = None):
+    """A user function as a component of ``kind`` (a process or an analysis)."""
+    load_builtins()
+    cls = _WRAPPERS.get(kind)
+    if cls is None:
+        raise ParameterError(f"a user function cannot serve as a {kind}; give a built-in {kind} name.")
+    return cls(fn, params, ref=ref, base_dir=base_dir)
+
+
 def load_builtins() -> None:
     global _LOADED
     if _LOADED:
         return
     _LOADED = True
+    for mod_name in BUILTIN_MODULES:
+        importlib.import_module(mod_name)
     for pkg_name in BUILTIN_PACKAGES:
         pkg = importlib.import_module(pkg_name)
         for mod in pkgutil.iter_modules(pkg.__path__):
@@ -111,8 +136,6 @@ def build(kind: str, spec: dict[str, Any], where: str = "", base_dir: str | Path
     if type_name is None:
         raise ParameterError(f"{label} is missing: name a {kind}. Valid: {', '.join(names(kind))}.")
     if is_reference(type_name):
-        from .functions import wrap_callable
-
         fn = resolve_reference(type_name, base_dir)
         return wrap_callable(kind, fn, params=spec, ref=type_name, base_dir=base_dir)
     try:

@@ -191,7 +191,7 @@ class RunResult:
         return [self.compare(names[0], other) for other in names[1:]]
 
     def to_dict(self) -> dict[str, Any]:
-        from . import __version__
+        from ._version import __version__
         from ._provenance import source_digest
 
         return _plain({

@@ -18,7 +18,6 @@ import warnings
 
 import numpy as np
 from scipy import special, stats
-from statsmodels.tools.sm_exceptions import PerfectSeparationWarning
 
 from .. import analytic
 from .._validation import Bool
@@ -394,6 +393,7 @@ class Logistic(Analysis):
 
     def __call__(self, data):
         import statsmodels.api as sm
+        from statsmodels.tools.sm_exceptions import PerfectSeparationWarning
 
         x0, n0, x1, n1 = two_by_two(data)
         if min(x0, n0 - x0, x1, n1 - x1) == 0:

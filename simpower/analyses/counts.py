@@ -15,7 +15,6 @@ import math
 import warnings
 
 import numpy as np
-from statsmodels.tools.sm_exceptions import PerfectSeparationWarning
 
 from .._validation import Choice, Real
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
@@ -44,6 +43,8 @@ def _warn_empty_arm(y, arm) -> bool:
         return True
     for a in (0, 1):
         if not np.any(y[arm == a] > 0):
+            from statsmodels.tools.sm_exceptions import PerfectSeparationWarning  # heavy: imported on use
+
             warnings.warn(PerfectSeparationWarning(
                 f"no events in arm {a}: the log rate ratio has no finite maximum likelihood estimate"))
             break

@@ -25,6 +25,7 @@ import numpy as np
 
 from .._validation import Anything, Choice
 from ..errors import ParameterError
+from ..registry import build, wrap_callable
 from .base import Analysis, TestResult, as_test_result
 
 #: our method names -> statsmodels' names
@@ -47,15 +48,11 @@ class AnalysisList(Anything):
         out = []
         for i, item in enumerate(value):
             if isinstance(item, dict):
-                from ..registry import build
-
                 item = build("analysis", item, where=f"{name}[{i}]")
             elif not isinstance(item, Analysis):
                 if not callable(item):
                     raise ParameterError(f"`{name}[{i}]` must be an analysis or a {{type = ...}} table; got {item!r}.")
-                from ..functions import as_analysis
-
-                item = as_analysis(item)
+                item = wrap_callable("analysis", item)
             if isinstance(item, Multiple):
                 raise ParameterError(f"`{name}[{i}]` is itself a `multiple` analysis; list its tests instead.")
             out.append(item)

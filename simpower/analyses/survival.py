@@ -21,7 +21,6 @@ import warnings
 
 import numpy as np
 from scipy import special
-from statsmodels.tools.sm_exceptions import PerfectSeparationWarning
 
 from .. import analytic
 from .._validation import Choice
@@ -192,6 +191,7 @@ class Cox(Analysis):
 
     def __call__(self, data):
         from statsmodels.duration.hazard_regression import PHReg
+        from statsmodels.tools.sm_exceptions import PerfectSeparationWarning
 
         time, event, arm = survival_columns(data)
         for a in (0, 1):

@@ -11,15 +11,13 @@ number exactly.
 
 from __future__ import annotations
 
-import sys
 from pathlib import Path
 
-from ..errors import ParameterError
 from .common import add_run_options, load_scenario
+from .planning import (REPORT_FIELDS, engine_of, null_settings, plot_axis, run_null, run_search,
+                       run_sweep, seed_of, write_outputs)
 
 DEFAULT_REPS = 2000
-DEFAULT_NULL_REPS = 10_000
-REPORT_FIELDS = ("title", "out", "formats")
 
 
 def register(sub) -> None:
@@ -30,50 +28,6 @@ def register(sub) -> None:
     p.add_argument("--formats", help="comma-separated: md,html (default both)")
     p.add_argument("--null-reps", type=int, help="replicates of the type I error check (default 10000)")
     p.set_defaults(func=main)
-
-
-def engine_of(sf, args, kind: str) -> dict:
-    """Store, failure threshold, jobs, progress and the engine's extra options for a planning command.
-
-    A ``--store`` folder gets one file per scenario and command kind (sweeps, searches and null
-    checks use different chunk sizes, which one store file cannot mix).
-    """
-    from ..components import fingerprint
-    from .common import engine_options
-
-    eng = engine_options(sf, args, fingerprint([sf.scenario.fingerprint(), kind]))
-    extra = {k: eng[k] for k in ("backend", "address", "timeout", "keep_records") if eng.get(k) is not None}
-    return {"store": eng["store"], "max_failure_rate": eng["max_failure_rate"], "n_jobs": eng["n_jobs"],
-            "progress": eng["progress"], "engine": extra}
-
-
-def seed_of(sf, args) -> int:
-    """The seed to use: the command line's, the file's, else fresh entropy (printed, and kept in the manifest)."""
-    from ..engine import normalize_seed
-
-    return normalize_seed(sf.run.get("seed"))
-
-
-def null_settings(sf, args, default_on: bool) -> dict | None:
-    from ..sequential import read_block
-    from ..sweep import NULL_CHECK_FIELDS
-
-    block = read_block("null_check", sf.blocks.get("null_check"), NULL_CHECK_FIELDS)
-    on = getattr(args, "null_check", False) or block.get("enabled", default_on)
-    if not on:
-        return None
-    reps = getattr(args, "null_reps", None) or block.get("reps", DEFAULT_NULL_REPS)
-    if reps < 1:
-        raise ParameterError(f"`--null-reps` must be an integer >= 1; got {reps}.")
-    return {"reps": reps, "at_grid": block.get("at_grid", False)}
-
-
-def run_null(sf, args, seed, settings, grid=None):
-    from ..sweep import null_check
-
-    return null_check(sf.scenario, grid if settings["at_grid"] else None, reps=settings["reps"], seed=seed,
-                      chunk_size=sf.run.get("chunk_size"), fit_trouble=sf.run.get("fit_trouble", "failure"),
-                      **engine_of(sf, args, "null_check"))
 
 
 def base_run(sf, args, seed):
@@ -93,27 +47,9 @@ def base_run(sf, args, seed):
                **eng["engine"], **common)
 
 
-def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None, run=None, x=None, formats=None,
-                  settings=None) -> dict:
-    from ..report import make_report
-    from ..report.manifest import reproduce_command
-
-    from ..sequential import read_block
-
-    block = read_block("report", sf.blocks.get("report"), {k: None for k in REPORT_FIELDS})
-    fm = formats or block.get("formats") or ("md", "html")
-    if isinstance(fm, str):
-        fm = [f.strip() for f in fm.split(",") if f.strip()]
-    return make_report(sf.scenario, outdir, seed=seed, command=reproduce_command(sys.argv[1:], seed), sweep=sweep,
-                       search=search, null=null, run=run, title=str(block.get("title", "")), x=x,
-                       scenario_file=sf.path, settings=settings, formats=tuple(fm))
-
-
 def main(args) -> int:
     from ..sequential import read_block
     from ..sweep import SWEEP_FIELDS, grid_from_block
-    from .cmd_samplesize import run_search
-    from .cmd_sweep import run_sweep
 
     sf = load_scenario(args)
     seed = seed_of(sf, args)
@@ -126,8 +62,6 @@ def main(args) -> int:
     grid = sblock = None
     if "sweep" in sf.blocks:  # check the grid and the plot axis before anything runs
         from types import SimpleNamespace
-
-        from .cmd_sweep import plot_axis
 
         sblock = read_block("sweep", sf.blocks["sweep"], SWEEP_FIELDS)
         grid = grid_from_block(sblock)

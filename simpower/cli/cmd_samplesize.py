@@ -18,8 +18,8 @@ never reached is an error that reports the best power seen.
 
 from __future__ import annotations
 
-from ..errors import ParameterError
 from .common import add_run_options, load_scenario
+from .planning import null_settings, run_null, run_search, seed_of, write_outputs
 
 
 def register(sub) -> None:
@@ -44,50 +44,8 @@ def register(sub) -> None:
     p.set_defaults(func=main)
 
 
-#: [search] settings that describe the file's own search target, dropped when --effect overrides it
-SIZE_ONLY = ("low", "high", "step", "scale", "parameter")
-
-
-def _range(text: str):
-    lo, sep, hi = text.partition(":")
-    try:
-        if not sep:
-            raise ValueError
-        return float(lo), float(hi)
-    except ValueError:
-        raise ParameterError(f"`--range` must look like LOW:HIGH (e.g. 10:400); got {text!r}.") from None
-
-
-def run_search(sf, args, seed):
-    from ..search import SEARCH_FIELDS, search
-    from ..sequential import read_block
-
-    opts = read_block("search", sf.blocks.get("search"), SEARCH_FIELDS)
-    file_find = opts.pop("find", None) or "size"
-    find = "effect" if getattr(args, "effect", False) else file_find
-    if find != file_find:
-        # the file's range, step, scale and parameter describe its size search; the effect search
-        # takes its own defaults unless --range / --parameter say otherwise
-        for key in SIZE_ONLY:
-            opts.pop(key, None)
-    for key, attr in (("power", "power"), ("parameter", "parameter"), ("step", "step"), ("rel_tol", "rel_tol"),
-                      ("max_reps", "max_reps"), ("analysis", "analysis")):
-        v = getattr(args, attr, None)
-        if v is not None:
-            opts[key] = v
-    if getattr(args, "range", None):
-        opts["low"], opts["high"] = _range(args.range)
-    if opts.get("chunk_size") is None and sf.run.get("chunk_size"):
-        opts["chunk_size"] = sf.run["chunk_size"]
-    from .cmd_report import engine_of
-
-    return search(sf.scenario, find, seed=seed, fit_trouble=sf.run.get("fit_trouble", "failure"),
-                  **engine_of(sf, args, "search"), **opts)
-
-
 def main(args) -> int:
     from ..textout import CAUTION
-    from .cmd_report import null_settings, run_null, seed_of, write_outputs
 
     sf = load_scenario(args)
     seed = seed_of(sf, args)

@@ -14,8 +14,8 @@ from __future__ import annotations
 
 from ..errors import ParameterError
 from .common import add_run_options, load_scenario
+from .planning import null_settings, plot_axis, run_null, run_sweep, seed_of, write_outputs
 
-DEFAULT_REPS = 2000
 SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power", "path")
 
 
@@ -59,21 +59,6 @@ def grid_of(sf, args, block):
     return g
 
 
-def run_sweep(sf, args, seed, grid, block):
-    from ..sweep import sweep
-
-    target = getattr(args, "target_mcse", None) or block.get("target_mcse")
-    kw = {}
-    if target is not None:
-        kw = {"target_mcse": target, "max_reps": getattr(args, "max_reps", None) or block.get("max_reps", 100_000),
-              "min_reps": block.get("min_reps", 1000)}
-    reps = getattr(args, "reps", None) or block.get("reps") or sf.run.get("reps", DEFAULT_REPS)
-    from .cmd_report import engine_of
-
-    return sweep(sf.scenario, grid, reps=reps, seed=seed, chunk_size=block.get("chunk_size", sf.run.get("chunk_size")),
-                 fit_trouble=sf.run.get("fit_trouble", "failure"), **engine_of(sf, args, "sweep"), **kw)
-
-
 def format_table(table) -> str:
     """The sweep table as terminal text; missing values (None or NaN) show as ``-``, as in the report."""
     grid = [c for c in table.attrs.get("grid", []) if c in table.columns]
@@ -85,45 +70,10 @@ def format_table(table) -> str:
     return shown.to_string(index=False, float_format=lambda v: f"{v:.4f}", na_rep="-")
 
 
-def plot_axis(sf, args, block, grid, plot: bool) -> str:
-    """The plot's x axis, checked before anything runs: a swept parameter (with numbers, for ``--plot``).
-
-    Taken from ``--x``, else ``[sweep] x``, else the first swept parameter; an
-    error names where the value came from. A grid given by ``--vary`` /
-    ``--together`` replaces the file's, so the file's ``x`` then counts only
-    if it is swept. The report leaves out the power curve of a non-numeric
-    axis, so only ``--plot`` needs numbers.
-    """
-    from ..sweep import check_names
-
-    check_names(sf.scenario, grid.names)
-    from_file = block.get("x")
-    if (args.vary or args.together) and from_file not in grid.names:
-        from_file = None
-    if args.x:
-        x, source = args.x, "`--x`"
-    elif from_file is not None:
-        x, source = from_file, "`[sweep] x`"
-    else:
-        x, source = grid.names[0], "the default x axis (the first swept parameter)"
-    if not isinstance(x, str) or x not in grid.names:
-        raise ParameterError(f"{source} {x!r} is not a swept parameter; swept: {', '.join(grid.names)}.")
-    if plot:
-        points = grid.settings(sf.scenario)
-        numeric = [n for n in grid.names
-                   if all(isinstance(p[n], (int, float)) and not isinstance(p[n], bool) for p in points)]
-        if x not in numeric:
-            hint = f"give `--x` one of {', '.join(numeric)}" if numeric else "no swept parameter is numeric"
-            raise ParameterError(f"{source} {x!r} takes non-numeric values; --plot needs a numeric x axis: "
-                                 f"{hint}.")
-    return x
-
-
 def main(args) -> int:
     from ..sequential import read_block
     from ..sweep import SWEEP_FIELDS
     from ..textout import CAUTION
-    from .cmd_report import null_settings, run_null, seed_of, write_outputs
 
     sf = load_scenario(args)
     block = read_block("sweep", sf.blocks.get("sweep"), SWEEP_FIELDS)

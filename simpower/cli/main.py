@@ -12,7 +12,7 @@ import importlib
 import pkgutil
 import sys
 
-from .. import __version__
+from .._version import __version__
 from ..errors import SimpowerError
 
 EXIT_BAD_INPUT = 2

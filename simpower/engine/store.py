@@ -433,7 +433,7 @@ class RunStore:
                 for stmt in SCHEMA.strip().split(";"):
                     if stmt.strip():
                         c.execute(stmt)
-                from .. import __version__
+                from .._version import __version__
                 from .._provenance import source_digest
 
                 c.executemany("INSERT INTO meta VALUES (?, ?)", [

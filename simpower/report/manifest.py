@@ -25,7 +25,7 @@ DEPENDENCIES = ("numpy", "scipy", "pandas", "joblib", "statsmodels", "matplotlib
 
 def versions() -> dict[str, str | None]:
     """simpower, Python and dependency versions (None where a package is not installed)."""
-    from .. import __version__
+    from .._version import __version__
 
     out: dict[str, str | None] = {"simpower": __version__, "python": platform.python_version()}
     for name in DEPENDENCIES:

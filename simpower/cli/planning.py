@@ -1,0 +1,161 @@
+"""Steps shared by the planning commands (``sweep``, ``samplesize`` and ``report``).
+
+The engine settings of a planning run, its seed, the sweep, the search, the type I
+error check and the report. They live here, not in one of the commands, so that no
+command imports another: ``report`` runs what ``sweep`` and ``samplesize`` run.
+"""
+
+from __future__ import annotations
+
+import sys
+
+from ..errors import ParameterError
+from .common import engine_options
+
+#: replicates per grid point of a sweep when neither the command line nor the file says
+DEFAULT_REPS = 2000
+DEFAULT_NULL_REPS = 10_000
+REPORT_FIELDS = ("title", "out", "formats")
+#: [search] settings that describe the file's own search target, dropped when --effect overrides it
+SIZE_ONLY = ("low", "high", "step", "scale", "parameter")
+
+
+def engine_of(sf, args, kind: str) -> dict:
+    """Store, failure threshold, jobs, progress and the engine's extra options for a planning command.
+
+    A ``--store`` folder gets one file per scenario and command kind (sweeps, searches and null
+    checks use different chunk sizes, which one store file cannot mix).
+    """
+    from ..components import fingerprint
+
+    eng = engine_options(sf, args, fingerprint([sf.scenario.fingerprint(), kind]))
+    extra = {k: eng[k] for k in ("backend", "address", "timeout", "keep_records") if eng.get(k) is not None}
+    return {"store": eng["store"], "max_failure_rate": eng["max_failure_rate"], "n_jobs": eng["n_jobs"],
+            "progress": eng["progress"], "engine": extra}
+
+
+def seed_of(sf, args) -> int:
+    """The seed to use: the command line's, the file's, else fresh entropy (printed, and kept in the manifest)."""
+    from ..engine import normalize_seed
+
+    return normalize_seed(sf.run.get("seed"))
+
+
+def null_settings(sf, args, default_on: bool) -> dict | None:
+    from ..sequential import read_block
+    from ..sweep import NULL_CHECK_FIELDS
+
+    block = read_block("null_check", sf.blocks.get("null_check"), NULL_CHECK_FIELDS)
+    on = getattr(args, "null_check", False) or block.get("enabled", default_on)
+    if not on:
+        return None
+    reps = getattr(args, "null_reps", None) or block.get("reps", DEFAULT_NULL_REPS)
+    if reps < 1:
+        raise ParameterError(f"`--null-reps` must be an integer >= 1; got {reps}.")
+    return {"reps": reps, "at_grid": block.get("at_grid", False)}
+
+
+def run_null(sf, args, seed, settings, grid=None):
+    from ..sweep import null_check
+
+    return null_check(sf.scenario, grid if settings["at_grid"] else None, reps=settings["reps"], seed=seed,
+                      chunk_size=sf.run.get("chunk_size"), fit_trouble=sf.run.get("fit_trouble", "failure"),
+                      **engine_of(sf, args, "null_check"))
+
+
+def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None, run=None, x=None, formats=None,
+                  settings=None) -> dict:
+    from ..report import make_report
+    from ..report.manifest import reproduce_command
+
+    from ..sequential import read_block
+
+    block = read_block("report", sf.blocks.get("report"), {k: None for k in REPORT_FIELDS})
+    fm = formats or block.get("formats") or ("md", "html")
+    if isinstance(fm, str):
+        fm = [f.strip() for f in fm.split(",") if f.strip()]
+    return make_report(sf.scenario, outdir, seed=seed, command=reproduce_command(sys.argv[1:], seed), sweep=sweep,
+                       search=search, null=null, run=run, title=str(block.get("title", "")), x=x,
+                       scenario_file=sf.path, settings=settings, formats=tuple(fm))
+
+
+def run_sweep(sf, args, seed, grid, block):
+    from ..sweep import sweep
+
+    target = getattr(args, "target_mcse", None) or block.get("target_mcse")
+    kw = {}
+    if target is not None:
+        kw = {"target_mcse": target, "max_reps": getattr(args, "max_reps", None) or block.get("max_reps", 100_000),
+              "min_reps": block.get("min_reps", 1000)}
+    reps = getattr(args, "reps", None) or block.get("reps") or sf.run.get("reps", DEFAULT_REPS)
+    return sweep(sf.scenario, grid, reps=reps, seed=seed, chunk_size=block.get("chunk_size", sf.run.get("chunk_size")),
+                 fit_trouble=sf.run.get("fit_trouble", "failure"), **engine_of(sf, args, "sweep"), **kw)
+
+
+def plot_axis(sf, args, block, grid, plot: bool) -> str:
+    """The plot's x axis, checked before anything runs: a swept parameter (with numbers, for ``--plot``).
+
+    Taken from ``--x``, else ``[sweep] x``, else the first swept parameter; an
+    error names where the value came from. A grid given by ``--vary`` /
+    ``--together`` replaces the file's, so the file's ``x`` then counts only
+    if it is swept. The report leaves out the power curve of a non-numeric
+    axis, so only ``--plot`` needs numbers.
+    """
+    from ..sweep import check_names
+
+    check_names(sf.scenario, grid.names)
+    from_file = block.get("x")
+    if (args.vary or args.together) and from_file not in grid.names:
+        from_file = None
+    if args.x:
+        x, source = args.x, "`--x`"
+    elif from_file is not None:
+        x, source = from_file, "`[sweep] x`"
+    else:
+        x, source = grid.names[0], "the default x axis (the first swept parameter)"
+    if not isinstance(x, str) or x not in grid.names:
+        raise ParameterError(f"{source} {x!r} is not a swept parameter; swept: {', '.join(grid.names)}.")
+    if plot:
+        points = grid.settings(sf.scenario)
+        numeric = [n for n in grid.names
+                   if all(isinstance(p[n], (int, float)) and not isinstance(p[n], bool) for p in points)]
+        if x not in numeric:
+            hint = f"give `--x` one of {', '.join(numeric)}" if numeric else "no swept parameter is numeric"
+            raise ParameterError(f"{source} {x!r} takes non-numeric values; --plot needs a numeric x axis: "
+                                 f"{hint}.")
+    return x
+
+
+def _range(text: str):
+    lo, sep, hi = text.partition(":")
+    try:
+        if not sep:
+            raise ValueError
+        return float(lo), float(hi)
+    except ValueError:
+        raise ParameterError(f"`--range` must look like LOW:HIGH (e.g. 10:400); got {text!r}.") from None
+
+
+def run_search(sf, args, seed):
+    from ..search import SEARCH_FIELDS, search
+    from ..sequential import read_block
+
+    opts = read_block("search", sf.blocks.get("search"), SEARCH_FIELDS)
+    file_find = opts.pop("find", None) or "size"
+    find = "effect" if getattr(args, "effect", False) else file_find
+    if find != file_find:
+        # the file's range, step, scale and parameter describe its size search; the effect search
+        # takes its own defaults unless --range / --parameter say otherwise
+        for key in SIZE_ONLY:
+            opts.pop(key, None)
+    for key, attr in (("power", "power"), ("parameter", "parameter"), ("step", "step"), ("rel_tol", "rel_tol"),
+                      ("max_reps", "max_reps"), ("analysis", "analysis")):
+        v = getattr(args, attr, None)
+        if v is not None:
+            opts[key] = v
+    if getattr(args, "range", None):
+        opts["low"], opts["high"] = _range(args.range)
+    if opts.get("chunk_size") is None and sf.run.get("chunk_size"):
+        opts["chunk_size"] = sf.run["chunk_size"]
+    return search(sf.scenario, find, seed=seed, fit_trouble=sf.run.get("fit_trouble", "failure"),
+                  **engine_of(sf, args, "search"), **opts)
