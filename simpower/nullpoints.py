@@ -61,8 +61,9 @@ def _true_effect_at(process, param: str, value: float) -> float:
 
 
 def _solve(process, param: str, target: float) -> float | None:
-    """The effect whose true effect is ``target`` (secant steps from the null; exact in one
-    step when the true effect is affine in the effect, as for shift, d and ratio effects)."""
+    """The effect whose true effect is ``target``: secant steps from the null, the first one as if
+    the effect were on the estimand's scale (exact at once for a shift, in one more step for any
+    effect the true effect is affine in, such as Cohen's d or a ratio of means)."""
     tol = _TOL * max(1.0, abs(target))
     e0 = _scalar(process.null_value())
     f0 = _true_effect_at(process, param, e0) - target
@@ -70,19 +71,20 @@ def _solve(process, param: str, target: float) -> float | None:
         return None
     if abs(f0) <= tol:
         return e0
-    h = 1e-3 * max(1.0, abs(e0))
-    e1 = e0 + h
+    e1 = e0 - f0
     f1 = _true_effect_at(process, param, e1) - target
-    if not math.isfinite(f1):
-        e1 = e0 - h
+    for h in (1e-3, -1e-3):
+        if math.isfinite(f1):
+            break
+        e1 = e0 + h * max(1.0, abs(e0))
         f1 = _true_effect_at(process, param, e1) - target
     for _ in range(_MAX_STEPS):
+        if abs(f1) <= tol:
+            return e1
         if not math.isfinite(f1) or f1 == f0:
             return None
         e0, f0, e1 = e1, f1, e1 - f1 * (e1 - e0) / (f1 - f0)
         f1 = _true_effect_at(process, param, e1) - target
-        if abs(f1) <= tol:
-            return e1
     return None
 
 

@@ -87,7 +87,7 @@ def run_search(sf, args, seed):
 
 def main(args) -> int:
     from ..textout import CAUTION
-    from .cmd_report import null_settings, run_null, seed_of, write_outputs
+    from .cmd_report import null_lines, null_settings, run_null, seed_of, write_outputs
 
     sf = load_scenario(args)
     seed = seed_of(sf, args)
@@ -103,9 +103,7 @@ def main(args) -> int:
     ns = null_settings(sf, args, default_on=False) if args.null_check else None
     if ns is not None:
         null = run_null(sf, args, seed, ns)
-        print("\nType I error under the null (Bradley 1978 liberal criterion: 0.5 alpha to 1.5 alpha):")
-        print(null[["analysis", "type1_error", "mcse", "reps", "meets_bradley"]].to_string(
-            index=False, float_format=lambda v: f"{v:.4f}"))
+        print("\n" + "\n".join(null_lines(null)))
     if args.csv:
         res.table.to_csv(args.csv, index=False)
         print(f"CSV written to {args.csv}")

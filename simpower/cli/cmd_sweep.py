@@ -123,7 +123,7 @@ def main(args) -> int:
     from ..sequential import read_block
     from ..sweep import SWEEP_FIELDS
     from ..textout import CAUTION
-    from .cmd_report import null_settings, run_null, seed_of, write_outputs
+    from .cmd_report import null_lines, null_settings, run_null, seed_of, write_outputs
 
     sf = load_scenario(args)
     block = read_block("sweep", sf.blocks.get("sweep"), SWEEP_FIELDS)
@@ -137,10 +137,8 @@ def main(args) -> int:
     ns = null_settings(sf, args, default_on=False) if (args.null_check or block.get("null_check")) else None
     if ns is not None:
         null = run_null(sf, args, seed, ns, grid)
-        print("\nType I error under the null (Bradley 1978 liberal criterion: 0.5 alpha to 1.5 alpha):")
         cols = [c for c in table.attrs.get("grid", []) if c in null.columns and ns["at_grid"]]
-        print(null[cols + ["analysis", "type1_error", "mcse", "reps", "meets_bradley"]].to_string(
-            index=False, float_format=lambda v: f"{v:.4f}"))
+        print("\n" + "\n".join(null_lines(null, cols)))
     if args.csv:
         table.to_csv(args.csv, index=False)
         print(f"CSV written to {args.csv}")
