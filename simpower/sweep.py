@@ -8,8 +8,9 @@ count of log-spaced values).
 
 :func:`sweep` runs every point with one pool of workers (parallel across grid
 points and replicates) and returns a pandas DataFrame; :func:`null_check` runs
-the same points with the effect set to its null and judges the type I error
-by Bradley's (1978) liberal criterion.
+the same points with the effect on the boundary of each analysis's H0 (no
+effect, or an equivalence / non-inferiority margin: :mod:`simpower.nullpoints`)
+and judges the type I error by Bradley's (1978) liberal criterion.
 
 Every point is seeded by its content key (:func:`simpower.sequential.point_key`),
 so a point's numbers depend on its parameters and the seed only, not on
