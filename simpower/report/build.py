@@ -141,7 +141,8 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
         if "null_at" in null and null["null_at"].str.contains("equivalence margin").any():
             doc.para("On an equivalence margin the TOST's exact size is at most alpha, and below it when the "
                      "standard error is large against the equivalence range (Schuirmann 1987); a rate below alpha "
-                     "there is a property of the test, and 'analytic_type1' gives the value expected for normal data.")
+                     "there is a property of the test; where the closed form applies (normal outcomes), "
+                     "'analytic_type1' gives the value to expect.")
 
     doc.heading("Failures")
     fl = _failures([("search", search.table if search is not None else None), ("sweep", sweep),
