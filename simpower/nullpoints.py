@@ -171,6 +171,6 @@ def _sub_scenario(scenario, names: list[str], param: str, value: float):
     true_effect = getattr(scenario, "_true_effect", None)
     if true_effect is not None:  # the user's true effect described the old effect; the boundary is the new one
         true_effect = moved.process.true_effect()
+    kept = {k: v for k, v in scenario.true_effects.items() if k in names}
     return Scenario(moved.process, analyses={n: scenario.analyses[n] for n in names}, alpha=scenario.alpha,
-                    true_effect=true_effect, true_effects={k: v for k, v in scenario.true_effects.items() if k in names},
-                    name=scenario.name, description=scenario.description)
+                    true_effect=true_effect, true_effects=kept, name=scenario.name, description=scenario.description)
