@@ -8,8 +8,9 @@ count of log-spaced values).
 
 :func:`sweep` runs every point with one pool of workers (parallel across grid
 points and replicates) and returns a pandas DataFrame; :func:`null_check` runs
-the same points with the effect set to its null and judges the type I error
-by Bradley's (1978) liberal criterion.
+the same points with the effect on the boundary of each analysis's H0 (no
+effect, or an equivalence / non-inferiority margin: :mod:`simpower.nullpoints`)
+and judges the type I error by Bradley's (1978) liberal criterion.
 
 Every point is seeded by its content key (:func:`simpower.sequential.point_key`),
 so a point's numbers depend on its parameters and the seed only, not on
@@ -264,18 +265,23 @@ def grid_scenarios(scenario, grid) -> tuple[list[dict], list]:
     return settings, [scenario.with_params(**s) for s in settings]
 
 
+def _row(point, res, name, s) -> dict:
+    row = dict(point)
+    row.update({
+        "analysis": name, "power": s["power"], "mcse": s["mcse"], "ci_low": s["ci_low"],
+        "ci_high": s["ci_high"], "reps": s["reps"], "n_ok": s["n_ok"], "failures": s["n_failed"],
+        "failure_causes": "; ".join(f"{c} x{k}" for c, k in s["failures"].items()),
+        "analytic_power": s.get("analytic_power"), "distance_mcse": s.get("distance_mcse"),
+        "path": s.get("path", ""), "seconds": res.chunk_seconds,
+    })
+    return row
+
+
 def _rows(settings, results, extra=None) -> list[dict]:
     rows = []
     for point, res in zip(settings, results):
         for name, s in res.summaries.items():
-            row = dict(point)
-            row.update({
-                "analysis": name, "power": s["power"], "mcse": s["mcse"], "ci_low": s["ci_low"],
-                "ci_high": s["ci_high"], "reps": s["reps"], "n_ok": s["n_ok"], "failures": s["n_failed"],
-                "failure_causes": "; ".join(f"{c} x{k}" for c, k in s["failures"].items()),
-                "analytic_power": s.get("analytic_power"), "distance_mcse": s.get("distance_mcse"),
-                "path": s.get("path", ""), "seconds": res.chunk_seconds,
-            })
+            row = _row(point, res, name, s)
             if extra:
                 row.update(extra(res, name, s))
             rows.append(row)
@@ -386,23 +392,35 @@ def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -
 def null_check(scenario, grid=None, reps: int = 10_000, *, seed=None, n_jobs: int | None = -1,
                chunk_size: int | None = None, store=None, progress: bool | None = None, fit_trouble: str = "failure",
                max_failure_rate: float = 0.5, engine=None) -> pd.DataFrame:
-    """Type I error of each analysis with the effect set to its null, everything else kept.
+    """Type I error of each analysis with the effect on the boundary of its H0, everything else kept.
 
-    With a ``grid``, at every grid point. Each row gives the rejection rate
-    under the null, its MCSE and Wilson interval, and whether it meets
-    Bradley's (1978) liberal criterion 0.5 alpha <= rate <= 1.5 alpha
-    (Bradley, Br J Math Stat Psychol 31:144-152). With R replicates the MCSE
-    at the nominal level is sqrt(alpha(1-alpha)/R): 0.0022 for alpha = 0.05
-    and R = 10000.
+    A test of "no effect" is run at the process's null (effect 0, or ratio
+    1); a test whose H0 lies elsewhere at its boundary
+    (:meth:`Analysis.null_boundary`): the TOST at its upper equivalence
+    margin, a non-inferiority test at its margin, a t-test of H0: difference =
+    ``null_mean`` at ``null_mean``. The effect parameter is converted to the
+    process's scale (e.g. a margin in outcome units to Cohen's d); one scenario
+    runs per distinct boundary (:func:`simpower.nullpoints.null_points`).
+
+    With a ``grid``, at every grid point. Each row gives where the effect was
+    put (``null_at``), the rejection rate there, its MCSE and Wilson interval,
+    the closed-form rate where the analytic core covers the case, and whether
+    the rate meets Bradley's (1978) liberal criterion 0.5 alpha <= rate <= 1.5
+    alpha (Bradley, Br J Math Stat Psychol 31:144-152). With R replicates the
+    MCSE at the nominal level is sqrt(alpha(1-alpha)/R): 0.0022 for alpha =
+    0.05 and R = 10000. (On an equivalence margin the TOST's exact size is
+    below alpha when the standard error is large against the range; the
+    ``analytic_type1`` column then says what to expect.)
 
     Returns
     -------
     pandas.DataFrame
-        Grid parameter columns (if any), ``analysis``, ``alpha``,
+        Grid parameter columns (if any), ``analysis``, ``null_at``,
+        ``null_effect`` (the process's effect parameter there), ``alpha``,
         ``type1_error``, ``mcse``, ``ci_low``, ``ci_high``, ``reps``, ``n_ok``,
-        ``failures``, ``failure_causes``, ``bradley_low``, ``bradley_high``,
-        ``meets_bradley``, ``distance_mcse`` (from alpha, at the MCSE of alpha),
-        ``path``, ``seconds``.
+        ``failures``, ``failure_causes``, ``analytic_type1``, ``bradley_low``,
+        ``bradley_high``, ``meets_bradley``, ``distance_mcse`` (from alpha, at
+        the MCSE of alpha), ``path``, ``seconds``.
 
     Examples
     --------
@@ -411,29 +429,50 @@ def null_check(scenario, grid=None, reps: int = 10_000, *, seed=None, n_jobs: in
     >>> t = null_check(sc, reps=4000, seed=2, n_jobs=1)
     >>> bool(t["meets_bradley"][0]), bool(abs(t["type1_error"][0] - 0.05) < 4 * t["mcse"][0])
     (True, True)
+    >>> t["null_at"][0]
+    'no effect: effect = 0'
     """
+    from .nullpoints import null_points
+
     if grid is None:
         settings, scenarios = [{}], [scenario]
     else:
         settings, scenarios = grid_scenarios(scenario, grid)
-    nulls = [s.null() for s in scenarios]
+    points = [null_points(s) for s in scenarios]
     with _opened(store) as mem:
         entropy = normalize_seed(seed) if mem is None else seed_with_store(seed, mem)
-        results = _run_points(nulls, reps, entropy, n_jobs, chunk_size, mem, progress, fit_trouble, None, None, None,
-                              max_failure_rate, engine)
-
-    def extra(res, name, s):
-        a = res.scenario.alpha
-        m = math.sqrt(a * (1 - a) / s["n_ok"]) if s["n_ok"] else math.nan
-        return {"alpha": a, "bradley_low": 0.5 * a, "bradley_high": 1.5 * a,
-                "meets_bradley": bool(s["n_ok"] and bradley_liberal(s["power"], a)),
-                "distance_mcse": (s["power"] - a) / m if s["n_ok"] else math.nan}
-
-    table = pd.DataFrame(_rows(settings, results, extra)).rename(columns={"power": "type1_error"})
-    table = table.drop(columns=["analytic_power"])
+        results = _run_points([p.scenario for pts in points for p in pts], reps, entropy, n_jobs, chunk_size, mem,
+                              progress, fit_trouble, None, None, None, max_failure_rate, engine)
+    done = iter(results)
+    rows = []
+    for setting, s, pts in zip(settings, scenarios, points):
+        source = {}
+        for p in pts:
+            res = next(done)
+            source.update({name: (p, res) for name in p.analyses})
+        for name in s.analyses:
+            p, res = source[name]
+            rows.append(_null_row(setting, p, res, name, res.summaries[name]))
+    table = pd.DataFrame(rows)
     table.attrs.update({"kind": "null_check", "seed": entropy, "fingerprint": scenario.fingerprint(),
                         "grid": list(settings[0]), "chunk_size": results[0].chunk_size, "reps": reps})
     return table
+
+
+def _null_row(setting, point, res, name, s) -> dict:
+    """A row of the null check table: where the effect was put, the rate, Bradley's verdict."""
+    a = res.scenario.alpha
+    row = _row(setting, res, name, s)
+    m = math.sqrt(a * (1 - a) / s["n_ok"]) if s["n_ok"] else math.nan
+    out = dict(setting)
+    out.update({"analysis": name, "null_at": point.null_at, "null_effect": point.effect, "alpha": a,
+                "type1_error": s["power"]})
+    out.update({k: row[k] for k in ("mcse", "ci_low", "ci_high", "reps", "n_ok", "failures", "failure_causes")})
+    out.update({"analytic_type1": s.get("analytic_power"), "bradley_low": 0.5 * a, "bradley_high": 1.5 * a,
+                "meets_bradley": bool(s["n_ok"] and bradley_liberal(s["power"], a)),
+                "distance_mcse": (s["power"] - a) / m if s["n_ok"] else math.nan,
+                "path": row["path"], "seconds": row["seconds"]})
+    return out
 
 
 # -- the [sweep] and [null_check] blocks of a scenario file -------------------------

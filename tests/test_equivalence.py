@@ -86,8 +86,76 @@ def test_tost_power_matches_exact_formula(effect):
     exact = tost_power_exact(effect, n, -margin, margin)
     assert res.paths["tost"] == "batch"
     assert abs(res.power - exact) < 4 * math.sqrt(exact * (1 - exact) / reps)
+    assert res.summaries["tost"]["analytic_power"] == pytest.approx(exact, rel=1e-7)
     if effect == margin:
         assert exact <= 0.05
+
+
+@pytest.mark.parametrize("effect,n,low,high,sd", [(0.0, 30, -0.5, 0.5, 1.0), (0.5, 30, -0.5, 0.5, 1.0),
+                                                  (0.2, 8, -0.6, 0.9, 1.3), (-0.3, 150, -0.3, 0.2, 0.8),
+                                                  (15.0, 90, -15.0, 15.0, 40.0)])
+def test_analytic_tost_power_equals_the_integral_over_the_variance(effect, n, low, high, sd):
+    # analytic.tost_power (quadrature over log V) against the plain integral over V of Phillips (1990),
+    # two implementations of the same exact probability
+    got = sp.analytic.tost_power(effect, n, low=low, high=high, sd=sd, design="two-sample")
+    assert got == pytest.approx(tost_power_exact(effect, n, low, high, sd=sd), rel=1e-7, abs=1e-12)
+
+
+@pytest.mark.parametrize("design,ratio", [("one-sample", 1.0), ("two-sample", 2.0)])
+def test_analytic_tost_with_an_unreachable_margin_is_the_one_sided_t_test(design, ratio):
+    # With low far below, only H0: theta >= high can bind: the TOST is the one-sided t-test (Schuirmann
+    # 1987), whose power is the noncentral t cdf P(T' < -t_{1-alpha, df}), nc = (effect - high) / tau
+    # (scipy.stats.nct)
+    n, high, sd, effect = 12, 0.4, 1.5, -0.2
+    g, df = (1.0, n - 1) if design == "one-sample" else (1 + 1 / ratio, n + ratio * n - 2)
+    tau = sd * math.sqrt(g / n)
+    ref = stats.nct.cdf(-stats.t.ppf(0.95, df), df, (effect - high) / tau)
+    got = sp.analytic.tost_power(effect, n, low=-1e6, high=high, sd=sd, design=design, ratio=ratio)
+    assert got == pytest.approx(ref, rel=1e-7)
+
+
+def test_analytic_tost_power_matches_direct_draws_of_the_two_statistics():
+    # Schuirmann's (1987) definition drawn directly with numpy: d_hat ~ N(effect, tau^2) and
+    # se_hat = tau sqrt(chi2_df / df) independent; reject iff (d_hat - low)/se_hat > c and
+    # (d_hat - high)/se_hat < -c. 400,000 draws, tolerance 4 MCSE.
+    rng = np.random.default_rng(77)
+    n, low, high, draws = 10, -0.8, 0.8, 400_000
+    df, tau = 2 * n - 2, math.sqrt(2 / n)
+    c = stats.t.ppf(0.95, df)
+    z, v = rng.standard_normal(draws), rng.chisquare(df, draws)
+    for effect in (0.0, 0.3, high):
+        d, se = effect + tau * z, tau * np.sqrt(v / df)
+        sim = np.mean(((d - low) / se > c) & ((d - high) / se < -c))
+        exact = sp.analytic.tost_power(effect, n, low=low, high=high, design="two-sample")
+        assert abs(sim - exact) < 4 * math.sqrt(exact * (1 - exact) / draws)
+
+
+def test_welch_tost_closed_form_against_simulation():
+    # welch_tost_power is an approximation (Satterthwaite df from the population SDs); with 40 and 60 per
+    # arm and SDs 1 and 2 it is within 4 MCSE of the simulated Welch TOST, at the margin and inside
+    reps = 4000
+    for effect in (0.6, 0.1):
+        proc = sp.NormalTwoArm(n=40, ratio=1.5, effect=effect, sd_ratio=2.0)
+        res = sp.run(sp.Scenario(proc, TOST(margin=0.6)), reps=reps, seed=5, n_jobs=1)
+        approx = sp.analytic.welch_tost_power(effect, 40, low=-0.6, high=0.6, sd0=1.0, sd1=2.0, ratio=1.5)
+        assert res.summaries["tost"]["analytic_power"] == pytest.approx(approx, rel=1e-9)
+        assert abs(res.power - approx) < 4 * math.sqrt(approx * (1 - approx) / reps)
+
+
+def test_analytic_tost_bad_input_names_the_field():
+    with pytest.raises(ParameterError, match="`low` must be < `high`"):
+        sp.analytic.tost_power(0.0, 20, low=0.5, high=0.5)
+    with pytest.raises(ParameterError, match="`n`"):
+        sp.analytic.tost_power(0.0, 1, low=-0.5, high=0.5)
+    with pytest.raises(ParameterError, match="`sd1`"):
+        sp.analytic.welch_tost_power(0.0, 20, low=-0.5, high=0.5, sd1=0.0)
+
+
+def test_null_boundaries_are_the_margins():
+    assert TOST(margin=0.5).null_boundary().value == 0.5
+    assert TOST(low=-0.2, high=0.7).null_boundary().value == 0.7
+    assert NonInferiority(margin=0.3).null_boundary().value == -0.3
+    assert NonInferiority(margin=0.3, higher_is_better=False).null_boundary().value == 0.3
 
 
 def test_tost_power_formula_against_normal_approximation():

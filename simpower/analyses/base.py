@@ -54,6 +54,20 @@ class TestResult:
         return (self.ci_low, self.ci_high)
 
 
+@dataclass(frozen=True)
+class NullBoundary:
+    """Where an analysis's H0 meets its H1: the estimand's value there, and what that value is.
+
+    The type I error check (:func:`simpower.sweep.null_check`) sets the
+    process's effect so that its true effect equals ``value`` (in the units of
+    what the analysis estimates), and shows ``label`` beside the rate.
+    """
+
+    value: float
+    #: what the value is, in words: "upper equivalence margin", "`null_mean`", ...
+    label: str
+
+
 def _num(x: Any) -> float:
     if x is None:
         return math.nan
@@ -130,6 +144,27 @@ class Analysis(Component):
 
     def analytic_power(self, process, alpha: float) -> float | None:
         """Closed-form power of this analysis for ``process``, where the analytic core covers it."""
+        return None
+
+    #: parameters that hold the estimand's value under a point H0 (t-tests' ``null_mean``, the rank,
+    #: permutation, bootstrap and regression analyses' ``null_value``) with the value meaning "no effect"
+    NULL_PARAMS = (("null_mean", 0.0), ("null_value", 0.0), ("null_ratio", 1.0))
+
+    def null_boundary(self) -> NullBoundary | None:
+        """The estimand's value on the boundary of H0, where the type I error is checked.
+
+        None means H0 is "no effect": the check then uses the process's own
+        null (:meth:`Process.null`: effect 0, or ratio 1). The default reads
+        :data:`NULL_PARAMS` (a test of H0: mean difference = 0.3 is checked at
+        0.3); analyses with a composite H0 (equivalence, non-inferiority)
+        override it with their margin.
+        """
+        declared = getattr(self, "params", {}) or {}
+        for name, none in self.NULL_PARAMS:
+            if name in declared:
+                v = getattr(self, name, None)
+                if v is not None and float(v) != none:
+                    return NullBoundary(float(v), f"`{name}`")
         return None
 
 

@@ -17,7 +17,7 @@ from scipy import stats
 from .. import analytic
 from .._validation import Bool, Real
 from ..errors import ParameterError
-from .base import CI_LEVEL, Analysis, TestResult
+from .base import CI_LEVEL, Analysis, NullBoundary, TestResult
 from .ttests import TTest, _batch_arms, _mean_var, _split_arms, p_from_t, two_sample_se_df
 
 POSITIVE = Real(0.0, low_open=True)
@@ -71,6 +71,13 @@ class TOST(Analysis):
     inside (low, high); the reported CI has level ``ci_level`` (default 0.90,
     the interval matching alpha = 0.05).
 
+    The type I error check puts the effect on the upper margin, theta = high
+    (:meth:`null_boundary`); for outcomes symmetric about their mean the rate
+    at the lower margin is the same. The closed form (:meth:`analytic_power`)
+    is :func:`simpower.analytic.tost_power` (exact for the pooled test and
+    normal data) or :func:`simpower.analytic.welch_tost_power` (Welch's; an
+    approximation).
+
     Parameters
     ----------
     margin : float > 0, optional
@@ -103,6 +110,31 @@ class TOST(Analysis):
         if self.margin is not None:
             return -self.margin, self.margin
         return self.low, self.high
+
+    def null_boundary(self) -> NullBoundary:
+        """The upper end of the equivalence range (the lower one is its mirror image)."""
+        return NullBoundary(float(self.bounds[1]), "upper equivalence margin")
+
+    @property
+    def analytic_exact(self) -> bool:
+        return bool(self.equal_var)  # the Welch variant's closed form is an approximation
+
+    def analytic_power(self, process, alpha):
+        """Power of the TOST for normal outcomes: exact (pooled, one sample) or Welch-Satterthwaite."""
+        nc = process.normal_case()
+        if nc is None or nc["design"] not in ("one-sample", "two-sample"):
+            return None
+        low, high = self.bounds
+        if nc["design"] == "one-sample":
+            return analytic.tost_power(nc["effect"], nc["n"], low=low, high=high, sd=nc["sd"], alpha=alpha,
+                                       design="one-sample")
+        if self.equal_var:
+            if nc.get("sd") is None:
+                return None
+            return analytic.tost_power(nc["effect"], nc["n"], low=low, high=high, sd=nc["sd"], alpha=alpha,
+                                       design="two-sample", ratio=nc["ratio"])
+        return analytic.welch_tost_power(nc["effect"], nc["n"], low=low, high=high, sd0=nc["sd0"], sd1=nc["sd1"],
+                                         ratio=nc["ratio"], alpha=alpha)
 
     def __call__(self, data):
         low, high = self.bounds
@@ -153,6 +185,10 @@ class NonInferiority(Analysis):
     @property
     def _null(self) -> tuple[float, str]:
         return (-self.margin, "greater") if self.higher_is_better else (self.margin, "less")
+
+    def null_boundary(self) -> NullBoundary:
+        """theta = -margin (``higher_is_better``) or +margin, where the test's size is alpha."""
+        return NullBoundary(float(self._null[0]), "non-inferiority margin")
 
     def __call__(self, data):
         value, alt = self._null

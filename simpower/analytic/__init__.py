@@ -14,6 +14,7 @@ See ``docs/analytic.md`` for formulas and sources.
 
 from .ancova import ancova_effect, ancova_n, ancova_power
 from .design import ceil_n, clusters_per_arm, design_effect, inflate_for_dropout
+from .equivalence import tost_power, welch_tost_power
 from .normal import z_critical, z_effect, z_n, z_power
 from .proportions import prop2_effect, prop2_n, prop2_power
 from .survival import schoenfeld_events, schoenfeld_power
@@ -25,7 +26,7 @@ __all__ = [
     "ceil_n", "clusters_per_arm", "design_effect", "inflate_for_dropout",
     "prop2_effect", "prop2_n", "prop2_power",
     "schoenfeld_events", "schoenfeld_power",
-    "t_effect", "t_n", "t_power",
-    "welch_df", "welch_effect", "welch_n", "welch_power",
+    "t_effect", "t_n", "t_power", "tost_power",
+    "welch_df", "welch_effect", "welch_n", "welch_power", "welch_tost_power",
     "z_critical", "z_effect", "z_n", "z_power",
 ]

@@ -57,6 +57,11 @@ def main(args) -> int:
     outdir = Path(args.out or block.get("out", "report"))
     if sf.path is not None and not Path(outdir).is_absolute() and not args.out and "out" in block:
         outdir = sf.path.parent / outdir
+    ns = null_settings(sf, args, default_on=True)
+    if ns is not None:  # a boundary that cannot be placed is refused before anything runs
+        from ..nullpoints import null_points
+
+        null_points(sf.scenario)
     results: dict = {}
     settings: dict = {"set": list(args.set)}
     grid = sblock = None
@@ -80,7 +85,6 @@ def main(args) -> int:
         results["run"] = base_run(sf, args, seed)
         settings["run"] = {"reps": results["run"].reps, "chunk_size": results["run"].chunk_size}
         print(results["run"])
-    ns = null_settings(sf, args, default_on=True)
     if ns is not None:
         results["null"] = run_null(sf, args, seed, ns, grid)
         settings["null_check"] = ns

@@ -20,8 +20,9 @@ def register(sub) -> None:
                         "overrides [sequential] target_mcse")
     p.add_argument("--max-reps", type=int, help="with --target-mcse: never more replicates than this")
     p.add_argument("--null-check", action="store_true",
-                   help="also run the scenario under the null (effect set to its null value) and report the "
-                        "type I error with Bradley's (1978) liberal criterion; also [null_check] enabled = true")
+                   help="also run the scenario on the boundary of each analysis's H0 (no effect; an equivalence "
+                        "or non-inferiority margin) and report the type I error with Bradley's (1978) liberal "
+                        "criterion; also [null_check] enabled = true")
     p.add_argument("--null-reps", type=int, help="replicates of the null check (default 10000)")
     p.set_defaults(func=main)
 
@@ -54,9 +55,12 @@ def _simulate(sf, args, opts, fit_trouble):
                        max_failure_rate=opts["max_failure_rate"], engine=engine, **kw)
 
 
-def _null_check(sf, args, opts, fit_trouble, seed) -> str | None:
+def _null_reps(sf, args) -> int | None:
+    """Replicates of the type I check, or None when it is off; its boundaries are checked now, before
+    anything runs, so a boundary that cannot be placed costs no simulation."""
+    from ..nullpoints import null_points
     from ..sequential import read_block
-    from ..sweep import NULL_CHECK_FIELDS, null_check
+    from ..sweep import NULL_CHECK_FIELDS
 
     block = read_block("null_check", sf.blocks.get("null_check"), NULL_CHECK_FIELDS)
     if not (args.null_check or block.get("enabled", False)):
@@ -64,26 +68,31 @@ def _null_check(sf, args, opts, fit_trouble, seed) -> str | None:
     reps = args.null_reps if args.null_reps is not None else block.get("reps", 10_000)
     if reps < 1:
         raise ParameterError(f"`--null-reps` must be an integer >= 1; got {reps}.")
+    null_points(sf.scenario)
+    return reps
+
+
+def _null_check(sf, reps, opts, fit_trouble, seed) -> str | None:
+    from ..sweep import null_check
+    from .planning import null_lines
+
+    if reps is None:
+        return None
     engine = {k: opts[k] for k in ("backend", "address", "timeout", "keep_records")}
     table = null_check(sf.scenario, reps=reps, seed=seed, n_jobs=opts["n_jobs"], chunk_size=opts["chunk_size"],
                        progress=opts["progress"], fit_trouble=fit_trouble,
                        max_failure_rate=opts["max_failure_rate"], engine=engine)
-    lines = [f"Type I error under the null (effect set to its null value, everything else kept; {reps} replicates):"]
-    for _, r in table.iterrows():
-        verdict = "meets" if r["meets_bradley"] else "FAILS"
-        lines.append(f"  [{r['analysis']}] {r['type1_error']:.4f} (MCSE {r['mcse']:.4f}; 95% interval "
-                     f"[{r['ci_low']:.4f}, {r['ci_high']:.4f}]); {verdict} Bradley's (1978) liberal criterion "
-                     f"[{r['bradley_low']:.4g}, {r['bradley_high']:.4g}]")
-    return "\n".join(lines)
+    return "\n".join(null_lines(table))
 
 
 def main(args) -> int:
     sf = load_scenario(args)
     opts = engine_options(sf, args)
     fit_trouble = args.fit_trouble or sf.run.get("fit_trouble", "failure")
+    null_reps = _null_reps(sf, args)
     try:
         res = _simulate(sf, args, opts, fit_trouble)
-        null_text = _null_check(sf, args, opts, fit_trouble, res.seed)
+        null_text = _null_check(sf, null_reps, opts, fit_trouble, res.seed)
     except RunInterrupted:
         raise RunInterrupted(f"interrupted; {resume_hint(opts['store'])}.") from None
     res.extra["command"] = command_line(res.seed)

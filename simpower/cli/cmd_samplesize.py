@@ -19,7 +19,7 @@ never reached is an error that reports the best power seen.
 from __future__ import annotations
 
 from .common import add_run_options, load_scenario
-from .planning import null_settings, run_null, run_search, seed_of, write_outputs
+from .planning import null_lines, null_settings, run_null, run_search, seed_of, write_outputs
 
 
 def register(sub) -> None:
@@ -61,9 +61,7 @@ def main(args) -> int:
     ns = null_settings(sf, args, default_on=False) if args.null_check else None
     if ns is not None:
         null = run_null(sf, args, seed, ns)
-        print("\nType I error under the null (Bradley 1978 liberal criterion: 0.5 alpha to 1.5 alpha):")
-        print(null[["analysis", "type1_error", "mcse", "reps", "meets_bradley"]].to_string(
-            index=False, float_format=lambda v: f"{v:.4f}"))
+        print("\n" + "\n".join(null_lines(null)))
     if args.csv:
         res.table.to_csv(args.csv, index=False)
         print(f"CSV written to {args.csv}")

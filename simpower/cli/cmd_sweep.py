@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from ..errors import ParameterError
 from .common import add_run_options, load_scenario
-from .planning import null_settings, plot_axis, run_null, run_sweep, seed_of, write_outputs
+from .planning import null_lines, null_settings, plot_axis, run_null, run_sweep, seed_of, write_outputs
 
 SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power", "path")
 
@@ -87,10 +87,8 @@ def main(args) -> int:
     ns = null_settings(sf, args, default_on=False) if (args.null_check or block.get("null_check")) else None
     if ns is not None:
         null = run_null(sf, args, seed, ns, grid)
-        print("\nType I error under the null (Bradley 1978 liberal criterion: 0.5 alpha to 1.5 alpha):")
         cols = [c for c in table.attrs.get("grid", []) if c in null.columns and ns["at_grid"]]
-        print(null[cols + ["analysis", "type1_error", "mcse", "reps", "meets_bradley"]].to_string(
-            index=False, float_format=lambda v: f"{v:.4f}"))
+        print("\n" + "\n".join(null_lines(null, cols)))
     if args.csv:
         table.to_csv(args.csv, index=False)
         print(f"CSV written to {args.csv}")

@@ -55,6 +55,22 @@ def null_settings(sf, args, default_on: bool) -> dict | None:
     return {"reps": reps, "at_grid": block.get("at_grid", False)}
 
 
+def null_lines(table, grid_cols=()) -> list[str]:
+    """The type I check in words: per row, where the effect was put, the rate, the closed form, Bradley's verdict."""
+    lines = [f"Type I error under the null, with the effect on the boundary of each analysis's H0 and everything "
+             f"else kept ({int(table['reps'].max())} replicates):"]
+    for _, r in table.iterrows():
+        point = ", ".join(f"{c} = {r[c]}" for c in grid_cols)
+        exact = r.get("analytic_type1")
+        closed = f"; closed form {exact:.4f}" if exact is not None and exact == exact else ""
+        verdict = "meets" if r["meets_bradley"] else "FAILS"
+        lines.append(f"  [{r['analysis']}]{' (' + point + ')' if point else ''} at {r['null_at']}: "
+                     f"{r['type1_error']:.4f} (MCSE {r['mcse']:.4f}; 95% interval [{r['ci_low']:.4f}, "
+                     f"{r['ci_high']:.4f}]{closed}); {verdict} Bradley's (1978) liberal criterion "
+                     f"[{r['bradley_low']:.4g}, {r['bradley_high']:.4g}]")
+    return lines
+
+
 def run_null(sf, args, seed, settings, grid=None):
     from ..sweep import null_check
 

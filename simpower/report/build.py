@@ -13,8 +13,8 @@ from .document import Document
 from .manifest import manifest_rows
 
 SWEEP_SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power", "path")
-NULL_SHOWN = ("analysis", "alpha", "type1_error", "mcse", "ci_low", "ci_high", "reps", "failures", "meets_bradley",
-              "path")
+NULL_SHOWN = ("analysis", "null_at", "alpha", "type1_error", "mcse", "ci_low", "ci_high", "reps", "failures",
+              "analytic_type1", "meets_bradley", "path")
 
 
 def _plain_params(scenario) -> pd.DataFrame:
@@ -124,13 +124,25 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
         doc.heading("Type I error under the null")
         a = float(null["alpha"].iloc[0])
         grid = [c for c in null.attrs.get("grid", []) if c in null.columns]
-        doc.para(f"The same scenario with the effect set to its null value and everything else kept. Bradley's "
-                 f"(1978) liberal criterion asks for a rejection rate in [{0.5 * a:g}, {1.5 * a:g}] at alpha = {a:g}.")
-        doc.table(null[grid + [c for c in NULL_SHOWN if c in null.columns]], "Type I error check")
+        doc.para(f"The same scenario with the effect on the boundary of each analysis's null hypothesis and everything "
+                 f"else kept: no effect for a test of no difference, the margin for an equivalence (upper margin) or "
+                 f"non-inferiority test, the stated null value otherwise; the column 'null_at' says where and which "
+                 f"value of the process's effect that is. Bradley's (1978) liberal criterion asks for a rejection "
+                 f"rate in [{0.5 * a:g}, {1.5 * a:g}] at alpha = {a:g}; 'analytic_type1' is the closed-form rate "
+                 f"where the analytic core covers the case (normal outcomes).")
+        shown = null[grid + [c for c in NULL_SHOWN if c in null.columns]]
+        if "analytic_type1" in shown and shown["analytic_type1"].isna().all():
+            shown = shown.drop(columns=["analytic_type1"])
+        doc.table(shown, "Type I error check")
         ok = bool(null["meets_bradley"].all())
         doc.para("**Verdict:** " + ("every analysis meets Bradley's liberal criterion." if ok else
                                     "at least one analysis does NOT meet Bradley's liberal criterion; its power "
                                     "is not comparable with a test that holds its level."))
+        if "null_at" in null and null["null_at"].str.contains("equivalence margin").any():
+            doc.para("On an equivalence margin the TOST's exact size is at most alpha, and below it when the "
+                     "standard error is large against the equivalence range (Schuirmann 1987); a rate below alpha "
+                     "there is a property of the test; where the closed form applies (normal outcomes), "
+                     "'analytic_type1' gives the value to expect.")
 
     doc.heading("Failures")
     fl = _failures([("search", search.table if search is not None else None), ("sweep", sweep),
