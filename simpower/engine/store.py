@@ -13,6 +13,12 @@ and a CRC-32 beside them, the scenario is its JSON spec, and only
 numeric dtypes from a short list are ever decoded -- a store received from
 someone else is safe to open.
 
+A chunk whose rows cannot be decoded (CRC, layout, sizes) is recomputed by the
+next run with a warning naming it (:meth:`RunStore.load`); a damaged plan of a
+grid point refuses the store. One process writes a store at a time (an
+``flock`` on ``STORE.lock``), and a failure to open or write names its real
+cause (:mod:`simpower.engine.storefile`).
+
 Each grid point records its own scenario fingerprint, the seed entropy and the
 chunk size; :meth:`RunStore.bind` refuses a point whose scenario, seed or chunk
 size changed, naming what changed. Because a chunk's numbers depend only on
@@ -273,9 +279,16 @@ def write_chunks(conn: sqlite3.Connection, outs: list[ChunkOutput]) -> None:
         for out in outs:
             _insert_chunk(conn, out)
     except BaseException:
-        conn.execute("ROLLBACK")
+        _rollback(conn)
         raise
     conn.execute("COMMIT")
+
+
+def _rollback(conn: sqlite3.Connection) -> None:
+    """Roll back if a transaction is still open: SQLite ends it itself on some errors (SQLITE_FULL,
+    SQLITE_IOERR), and a second ROLLBACK would then hide the real error."""
+    if conn.in_transaction:
+        conn.execute("ROLLBACK")
 
 
 def write_chunk(conn: sqlite3.Connection, out: ChunkOutput) -> None:
@@ -550,7 +563,7 @@ class RunStore:
         try:
             yield c
         except BaseException:
-            c.execute("ROLLBACK")
+            _rollback(c)
             raise
         else:
             c.execute("COMMIT")
