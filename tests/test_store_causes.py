@@ -117,9 +117,9 @@ def _as_unprivileged(fn):
     return out
 
 
-def _open_message(path, mode):
+def _open_message(path, mode, command=None):
     try:
-        with RunStore(path, mode=mode) as st:
+        with RunStore(path, mode=mode, command=command) as st:
             return ["ok", len(st.replicates())]
     except StoreError as exc:
         return ["error", str(exc)]
@@ -147,6 +147,12 @@ def test_read_only_folder_and_unreadable_file_are_named_with_their_fix():
             assert kind == "error" and msg.startswith(f"{path}: permission denied on {path}"), msg
             assert f"chmod u+{'rw' if mode == 'a' else 'r'} {path}" in msg
             _no_afresh(msg)
+        # a read-only file in a writable folder: SQLite opens it read-only and refuses the first write
+        os.chmod(folder, 0o777)
+        os.chmod(path, 0o444)
+        kind, msg = _as_unprivileged(lambda: _open_message(path, "a", command=["run"]))
+        assert kind == "error" and msg.startswith(f"{path}: permission denied on {path}"), msg
+        _no_afresh(msg)
     finally:
         os.chmod(folder, 0o755)
         shutil.rmtree(folder)

@@ -485,8 +485,6 @@ class RunStore:
                 self._lock = WriterLock(self.path)
                 self._lock.acquire()  # one writer at a time; also shows whether the folder takes new files
                 self._finalizer = weakref.finalize(self, self._lock.release)
-                if self.path.exists():
-                    os.close(os.open(self.path, os.O_RDWR))  # the OS's own word on write access
             if mode == "r":
                 self._conn = _connect_read_only(self.path)
             else:
