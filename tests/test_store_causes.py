@@ -16,9 +16,11 @@ same seed.
 
 from __future__ import annotations
 
+import calendar
 import errno
 import json
 import os
+import re
 import shutil
 import socket
 import sqlite3
@@ -342,15 +344,20 @@ def test_a_second_process_is_told_who_writes_the_store(tmp_path, capsys):
     path = tmp_path / "run.sqlite"
     env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(Path(sp.__file__).parents[1]),
                                                         os.environ.get("PYTHONPATH", "")])}
+    before = int(time.time())
     child = subprocess.Popen([sys.executable, "-c", HOLDER, str(path)], stdin=subprocess.PIPE,
                              stdout=subprocess.PIPE, text=True, env=env)
     try:
         assert child.stdout.readline().strip() == "ready"
-        since = time.strftime("%Y-%m-%d", time.gmtime())
+        after = time.time()
         with pytest.raises(StoreBusy) as e:
             sp.run(scenario(), reps=100, seed=1, n_jobs=1, store=path)
         msg = str(e.value)
-        assert f"another run is writing this store (process {child.pid} on {socket.gethostname()} since {since}" in msg
+        m = re.search(rf"another run is writing this store \(process {child.pid} on {re.escape(socket.gethostname())} "
+                      r"since (\d{4}-\d\d-\d\d \d\d:\d\d:\d\d) UTC\)", msg)
+        assert m, msg
+        since = calendar.timegm(time.strptime(m.group(1), "%Y-%m-%d %H:%M:%S"))
+        assert before <= since <= after  # the holder's start, to the second
         assert "\n" not in msg
         _no_afresh(msg)
         from simpower.cli.main import main

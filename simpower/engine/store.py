@@ -720,7 +720,7 @@ class RunStore:
                 return None
             return self._read_chunk(key, row)
 
-    def chunk_name(self, point: int, chunk: int) -> str:
+    def _chunk_name(self, point: int, chunk: int) -> str:
         """'STORE: chunk K (replicates a-b) of grid point P (n=20, effect=0.5)', for messages.
 
         The parameters shown are those that differ between the store's grid
@@ -734,7 +734,7 @@ class RunStore:
             if int(point) in rows:
                 cs, spec = rows[int(point)]
                 first = int(chunk) * cs
-                flat = {k: v for k, v in _flatten(spec.get("process", {})).items()}
+                flat = _flatten(spec.get("process", {}))
                 others = [_flatten(s.get("process", {})) for p, (_, s) in rows.items() if p != int(point)]
                 shown = [k for k in flat if not others or any(o.get(k) != flat[k] for o in others)]
                 label = " (" + ", ".join(f"{k}={flat[k]!r}" for k in shown[:6]) + ")" if shown else ""
@@ -749,8 +749,14 @@ class RunStore:
         return f"{self.path}: chunk {chunk}{reps} of grid point {point}{label}"
 
     def _read_chunk(self, key, row) -> ChunkOutput:
+        try:
+            return self._decode_chunk(key, row)
+        except ChunkDamaged as exc:  # named (a few queries) only when it happens
+            raise ChunkDamaged(self._chunk_name(*key), exc.reason) from None
+
+    def _decode_chunk(self, key, row) -> ChunkOutput:
         c = self._conn
-        where = self.chunk_name(*key)
+        where = f"{self.path}: chunk {key[1]} of grid point {key[0]}"
         records: dict[str, dict[str, np.ndarray]] = {}
         paths, hyp = {}, {}
         for name, path, h, layout, crc, data in c.execute(

@@ -180,7 +180,7 @@ def _mount_type(path: Path) -> str | None:
             mounts = [line.split()[1:3] for line in fh if len(line.split()) >= 3]
     except OSError:
         return None
-    p = str(path.resolve() if path.exists() else path.absolute())
+    p = os.path.realpath(path)
     best = None
     for point, kind in mounts:
         point = point.replace("\\040", " ")
@@ -210,7 +210,12 @@ def probe(path: Path, write: bool) -> OSError | str | None:
     folder = path.absolute().parent
     try:
         if st is not None:
-            os.close(os.open(path, os.O_RDWR if write else os.O_RDONLY))
+            # access(2), not open(2): closing a descriptor of the store would drop the POSIX locks SQLite
+            # holds on it in this process
+            if not os.access(path, os.R_OK | (os.W_OK if write else 0)):
+                read_only = write and bool(os.statvfs(path).f_flag & getattr(os, "ST_RDONLY", 1))
+                code = errno.EROFS if read_only else errno.EACCES
+                return OSError(code, os.strerror(code), str(path))
         else:
             os.stat(folder)
         if write:  # SQLite writes STORE-wal and STORE-shm beside the store
@@ -222,6 +227,21 @@ def probe(path: Path, write: bool) -> OSError | str | None:
     return None
 
 
+def _is_dir(p: Path) -> bool:
+    try:
+        return stat.S_ISDIR(os.stat(p).st_mode)
+    except OSError:
+        return False
+
+
+def _exists(p: Path) -> bool:
+    try:
+        os.stat(p)
+    except OSError:
+        return False
+    return True
+
+
 def _os_cause(exc: OSError, path: Path, write: bool) -> tuple[str, str]:
     """(cause, fix) for an OSError met on the store ``path``."""
     target = Path(exc.filename) if getattr(exc, "filename", None) else path
@@ -229,8 +249,8 @@ def _os_cause(exc: OSError, path: Path, write: bool) -> tuple[str, str]:
     code = exc.errno
     if code in (errno.EACCES, errno.EPERM):
         need, bits = ("read and write", "rw") if write else ("read", "r")
-        if target.is_dir() or target == folder or not target.exists():
-            place = target if target.is_dir() else folder
+        if _is_dir(target) or target == folder or not _exists(target):
+            place = target if _is_dir(target) else folder
             return (f"permission denied on the folder {place}",
                     f"give your user {need} access to it (chmod u+{bits}x {place}) or use a store in a folder "
                     f"of your own")
@@ -244,15 +264,15 @@ def _os_cause(exc: OSError, path: Path, write: bool) -> tuple[str, str]:
                 "free some space there (or give a store on another disk) and run the same command again: the chunks "
                 "already committed are kept")
     if code in (errno.ENOTDIR, errno.EEXIST):
-        blocker = next((p for p in reversed(path.absolute().parents) if p.exists() and not p.is_dir()), None)
-        return (f"{blocker or 'a part of the path'} is a file, not a folder",
-                "give a store path inside a folder")
+        blocker = next((p for p in reversed(path.absolute().parents) if _exists(p) and not _is_dir(p)), None)
+        if blocker is not None or code == errno.ENOTDIR:
+            return (f"{blocker or 'a part of the path'} is a file, not a folder", "give a store path inside a folder")
     if code == errno.ENOENT:
-        kind = _mount_type(folder) if folder.is_dir() else None
+        kind = _mount_type(folder) if _is_dir(folder) else None
         if kind in VIRTUAL_FS:
             return (f"{folder} is on a virtual file system ({kind}) that holds no ordinary files",
                     "give a store path on a disk")
-        if not folder.is_dir():
+        if not _is_dir(folder):
             return f"the folder {folder} does not exist", "create it or give another store path"
     if code == errno.EISDIR:
         return f"{target} is a folder", "give a file name for the run store"
@@ -267,7 +287,13 @@ def explain(exc: BaseException, path: Path, doing: str, write: bool = True) -> s
     Only damage that SQLite itself reports invites starting afresh.
     """
     path = Path(path)
+    try:
+        return _explain(exc, path, doing, write)
+    except Exception:  # the diagnosis itself failed: say what is known
+        return f"{path}: {exc} (while {doing}); check the path, its permissions and its disk."
 
+
+def _explain(exc: BaseException, path: Path, doing: str, write: bool) -> str:
     def line(cause: str, fix: str) -> str:
         return f"{path}: {cause} (while {doing}); {fix}."
 
