@@ -31,7 +31,6 @@ import textwrap
 import time
 from pathlib import Path
 
-import numpy as np
 import pytest
 
 import simpower as sp
@@ -175,7 +174,8 @@ def test_read_only_file_system_and_full_disk_at_open(tmp_path, monkeypatch):
     monkeypatch.setattr(os, "open", refusing(errno.EROFS))
     with pytest.raises(StoreError) as e:
         sp.run(scenario(), reps=50, seed=1, n_jobs=1, store=path)
-    assert str(e.value).startswith(f"{path}: {tmp_path} is on a read-only file system") and "writable disk" in str(e.value)
+    msg = str(e.value)
+    assert msg.startswith(f"{path}: {tmp_path} is on a read-only file system") and "writable disk" in msg
     _no_afresh(str(e.value))
     monkeypatch.setattr(os, "open", refusing(errno.ENOSPC))
     with pytest.raises(StoreError) as e:
