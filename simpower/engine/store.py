@@ -13,6 +13,12 @@ and a CRC-32 beside them, the scenario is its JSON spec, and only
 numeric dtypes from a short list are ever decoded -- a store received from
 someone else is safe to open.
 
+A chunk whose rows cannot be decoded (CRC, layout, sizes) is recomputed by the
+next run with a warning naming it (:meth:`RunStore.load`); a damaged plan of a
+grid point refuses the store. One process writes a store at a time (an
+``flock`` on ``STORE.lock``), and a failure to open or write names its real
+cause (:mod:`simpower.engine.storefile`).
+
 Each grid point records its own scenario fingerprint, the seed entropy and the
 chunk size; :meth:`RunStore.bind` refuses a point whose scenario, seed or chunk
 size changed, naming what changed. Because a chunk's numbers depend only on
@@ -51,6 +57,7 @@ import sqlite3
 import struct
 import threading
 import time
+import urllib.parse
 import weakref
 import zlib
 from contextlib import contextmanager
@@ -62,6 +69,7 @@ import pandas as pd
 
 from ..errors import StoreError
 from .chunk import ChunkOutput
+from .storefile import CANTOPEN, READONLY, WriterLock, explain, sqlite_code
 
 FORMAT = "simpower-run-store"
 VERSION = "2"
@@ -89,6 +97,18 @@ CREATE TABLE IF NOT EXISTS causes (
 TABLES = ("meta", "points", "chunks", "arrays", "causes")
 
 
+class ChunkDamaged(StoreError):
+    """One chunk's rows cannot be decoded (checksum, layout, sizes); nothing says the rest is unsound.
+
+    A store opened to write recomputes such a chunk (:meth:`RunStore.load`).
+    """
+
+    def __init__(self, where: str, reason: str):
+        self.where, self.reason = where, reason
+        super().__init__(f"{where} is damaged ({reason}); run the same command again (or simpower resume) to "
+                         f"recompute it: a chunk's numbers depend only on the seed, its grid point and its index.")
+
+
 # -- record codec ------------------------------------------------------------
 def _little(a: np.ndarray) -> np.ndarray:
     a = np.asarray(a)
@@ -114,20 +134,23 @@ def encode_record(rec: dict[str, np.ndarray]) -> tuple[str, int, memoryview]:
 
 
 def decode_record(layout: str, crc: int, data: bytes, where: str = "") -> dict[str, np.ndarray]:
-    """The arrays encoded by :func:`encode_record`; checks dtypes, sizes and the CRC."""
+    """The arrays encoded by :func:`encode_record`; checks dtypes, sizes and the CRC.
+
+    Raises :class:`ChunkDamaged` (``where`` names the chunk) when they do not hold.
+    """
     try:
         fields = [(str(f), str(dt), [int(d) for d in shape]) for f, dt, shape in json.loads(layout)]
     except (ValueError, TypeError):
-        raise StoreError(f"{where}: unreadable array layout {layout!r}; the store is corrupted.") from None
+        raise ChunkDamaged(where, f"unreadable array layout {str(layout)[:60]!r}") from None
     for f, dt, _ in fields:
         if dt not in DTYPES:
-            raise StoreError(f"{where}: array {f!r} of dtype {dt!r} refused (a store holds only "
-                             f"{', '.join(DTYPES)}).")
+            raise ChunkDamaged(where, f"array {f!r} of dtype {dt!r} refused: a store holds only {', '.join(DTYPES)}")
     want = sum(DTYPES[dt].itemsize * math.prod(dims) for _, dt, dims in fields)
-    if len(data) != want:
-        raise StoreError(f"{where}: arrays hold {len(data)} bytes, their layout says {want}; the store is corrupted.")
-    if zlib.crc32(data) != int(crc):
-        raise StoreError(f"{where}: array checksum mismatch; the store is corrupted.")
+    if not isinstance(data, (bytes, bytearray, memoryview)) or len(data) != want:
+        got = len(data) if isinstance(data, (bytes, bytearray, memoryview)) else 0
+        raise ChunkDamaged(where, f"arrays hold {got} bytes, their layout says {want}")
+    if not isinstance(crc, int) or zlib.crc32(data) != crc:
+        raise ChunkDamaged(where, "array checksum mismatch")
     out, at = {}, 0
     for f, dt, dims in fields:
         d = DTYPES[dt]
@@ -170,6 +193,36 @@ def _spec_diff(old: Any, new: Any, prefix: str = "") -> list[str]:
     if old != new:
         return [f"{prefix[:-1] or 'scenario'}: {old!r} -> {new!r}"]
     return []
+
+
+def _check_plan(where: str, row: tuple) -> None:
+    """Refuse a grid point whose stored plan (fingerprint, seed, chunk size, reps, scenario) is unreadable.
+
+    Its chunks cannot be checked against the run without it, so unlike a
+    damaged chunk this refuses the store.
+    """
+    fp, seed, cs, reps, spec = row
+    bad = [name for name, ok in (("fingerprint", isinstance(fp, str) and fp.strip() != ""),
+                                 ("seed", _is_int(seed)), ("chunk_size", _is_int(cs)), ("reps", _is_int(reps)),
+                                 ("scenario", _is_json_object(spec))) if not ok]
+    if bad:
+        raise StoreError(f"{where}: its stored plan is damaged (unreadable {', '.join(bad)} in table points), so "
+                         f"its chunks cannot be checked against this run; restore the store from a copy, or move "
+                         f"it away and start afresh.")
+
+
+def _is_int(v: Any) -> bool:
+    try:
+        return not isinstance(v, (float, bytes)) and int(v) >= 0
+    except (TypeError, ValueError):
+        return False
+
+
+def _is_json_object(text: Any) -> bool:
+    try:
+        return isinstance(json.loads(text), dict)
+    except (TypeError, ValueError):
+        return False
 
 
 def _analyses_info(scenario) -> dict[str, dict[str, Any]]:
@@ -226,9 +279,16 @@ def write_chunks(conn: sqlite3.Connection, outs: list[ChunkOutput]) -> None:
         for out in outs:
             _insert_chunk(conn, out)
     except BaseException:
-        conn.execute("ROLLBACK")
+        _rollback(conn)
         raise
     conn.execute("COMMIT")
+
+
+def _rollback(conn: sqlite3.Connection) -> None:
+    """Roll back if a transaction is still open: SQLite ends it itself on some errors (SQLITE_FULL,
+    SQLITE_IOERR), and a second ROLLBACK would then hide the real error."""
+    if conn.in_transaction:
+        conn.execute("ROLLBACK")
 
 
 def write_chunk(conn: sqlite3.Connection, out: ChunkOutput) -> None:
@@ -255,6 +315,26 @@ def _connect(path: Path, sync: str) -> sqlite3.Connection:
     page = int(conn.execute("PRAGMA page_size").fetchone()[0])
     conn.execute(f"PRAGMA wal_autocheckpoint={max(1, CHECKPOINT_BYTES // page)}")
     return conn
+
+
+def _connect_read_only(path: Path) -> sqlite3.Connection:
+    """A read-only connection; in a folder SQLite may not write in, one that reads the file as it is.
+
+    Reading a WAL-mode store makes SQLite create ``STORE-shm`` beside it; in
+    a read-only folder (a shared drive, a copy on a read-only disk) that
+    fails. With no ``STORE-wal`` there, no run can be writing the store, so it
+    is opened ``immutable`` instead (SQLite then takes no locks).
+    """
+    uri = "file:" + urllib.parse.quote(str(path.resolve()))
+    conn = sqlite3.connect(uri + "?mode=ro", uri=True)
+    try:
+        conn.execute("SELECT count(*) FROM sqlite_master").fetchone()
+        return conn
+    except sqlite3.OperationalError as exc:
+        if sqlite_code(exc) not in (READONLY, CANTOPEN) or Path(str(path) + "-wal").exists():
+            raise
+        conn.close()
+    return sqlite3.connect(uri + "?mode=ro&immutable=1", uri=True)
 
 
 #: a finished chunk waits at most this long (seconds) on the writer thread for others to share
@@ -309,8 +389,8 @@ class _Writer:
     def _raise(self):
         if self.error is not None:
             exc, self.error = self.error, None
-            if isinstance(exc, sqlite3.DatabaseError):
-                raise StoreError(f"{self.path}: saving a chunk failed (SQLite: {exc}).") from None
+            if isinstance(exc, (sqlite3.Error, OSError)):
+                raise StoreError(explain(exc, self.path, "saving a chunk")) from None
             raise exc
 
     def put(self, out: ChunkOutput) -> None:
@@ -336,12 +416,16 @@ class _Writer:
         self.conn = None
 
 
-def _shutdown(writer: _Writer) -> None:
-    """At exit or when the store is collected unclosed: commit what is queued."""
+def _shutdown(writer: _Writer, lock: WriterLock | None = None) -> None:
+    """At exit or when the store is collected unclosed: commit what is queued, then let go of the lock."""
     try:
         writer.flush()
     finally:
-        writer.stop()
+        try:
+            writer.stop()
+        finally:
+            if lock is not None:
+                lock.release()
 
 
 class RunStore:
@@ -375,19 +459,34 @@ class RunStore:
             raise StoreError(f"`sync` must be 'normal' or 'full'; got {sync!r}.")
         self.path = Path(path)
         self.mode = mode
-        if mode == "r" and not self.path.is_file():
-            raise StoreError(f"{self.path}: no such run store.")
-        if self.path.is_dir():
-            raise StoreError(f"{self.path}: is a folder; give a file name for the run store.")
-        if self.path.exists():
-            check_file(self.path)
-        elif mode == "a":
-            self.path.parent.mkdir(parents=True, exist_ok=True)
         self._conn: sqlite3.Connection | None = None
         self._writer: _Writer | None = None
+        self._lock: WriterLock | None = None
+        try:
+            self._open(command, sync, check, background)
+        except BaseException:
+            self.close()
+            raise
+
+    def _open(self, command, sync, check, background) -> None:
+        mode = self.mode
         with self._guard("opening"):
+            if self.path.is_dir():
+                raise StoreError(f"{self.path}: is a folder; give a file name for the run store.")
+            if mode == "r" and not self.path.exists():
+                raise StoreError(f"{self.path}: no such run store.")
+            if self.path.exists() and not self.path.is_file():
+                raise StoreError(f"{self.path}: is not a regular file (a device, pipe or socket); give the path "
+                                 f"of an ordinary file for the run store.")
+            if self.path.exists():
+                check_file(self.path)
+            if mode == "a":
+                self.path.parent.mkdir(parents=True, exist_ok=True)
+                self._lock = WriterLock(self.path)
+                self._lock.acquire()  # one writer at a time; also shows whether the folder takes new files
+                self._finalizer = weakref.finalize(self, self._lock.release)
             if mode == "r":
-                self._conn = sqlite3.connect(f"file:{self.path.resolve()}?mode=ro", uri=True)
+                self._conn = _connect_read_only(self.path)
             else:
                 self._conn = _connect(self.path, sync or "normal")
             if check:
@@ -399,7 +498,8 @@ class RunStore:
                 sync = self._settle_sync(sync)
             if mode == "a" and background:
                 self._writer = _Writer(self.path, sync)
-                self._finalizer = weakref.finalize(self, _shutdown, self._writer)
+                self._finalizer.detach()
+                self._finalizer = weakref.finalize(self, _shutdown, self._writer, self._lock)
 
     def _settle_sync(self, sync: str | None) -> str:
         """The sync setting: the one given (then remembered) or the stored one."""
@@ -415,13 +515,13 @@ class RunStore:
     # -- plumbing ----------------------------------------------------------------
     @contextmanager
     def _guard(self, doing: str):
+        """SQLite and OS failures as one line naming their true cause (see :func:`.storefile.explain`)."""
         try:
             yield
         except StoreError:
             raise
-        except sqlite3.DatabaseError as exc:
-            raise StoreError(f"{self.path}: the store is unreadable or corrupted while {doing} (SQLite: {exc}). "
-                             f"Restore it from a copy or move it away and start afresh.") from None
+        except (sqlite3.Error, OSError) as exc:
+            raise StoreError(explain(exc, self.path, doing, write=self.mode == "a")) from None
 
     def _init_schema(self, command):
         c = self._conn
@@ -461,25 +561,32 @@ class RunStore:
         try:
             yield c
         except BaseException:
-            c.execute("ROLLBACK")
+            _rollback(c)
             raise
         else:
             c.execute("COMMIT")
 
     def close(self) -> None:
-        """Commit what is pending, stop the writer thread and close the file."""
+        """Commit what is pending, stop the writer thread, close the file and let go of the writer lock."""
+        finalizer = getattr(self, "_finalizer", None)
+        if finalizer is not None:
+            finalizer.detach()
         try:
             if self._writer is not None:
                 writer, self._writer = self._writer, None
-                self._finalizer.detach()
                 try:
                     writer.flush()
                 finally:
                     writer.stop()
         finally:
-            if self._conn is not None:
-                conn, self._conn = self._conn, None
-                conn.close()
+            try:
+                if self._conn is not None:
+                    conn, self._conn = self._conn, None
+                    conn.close()
+            finally:
+                if self._lock is not None:
+                    lock, self._lock = self._lock, None
+                    lock.release()
 
     def __enter__(self):
         return self
@@ -527,6 +634,7 @@ class RunStore:
         if row is not None:
             old_fp, old_seed, old_cs, old_reps, old_spec = row
             where = f"{self.path}: grid point {point}"
+            _check_plan(where, row)
             self._warn_code_change()
             if old_fp != fp:
                 changes = _spec_diff(json.loads(old_spec), json.loads(json.dumps(spec, default=str)))
@@ -582,18 +690,73 @@ class RunStore:
             self._writer.flush()
 
     def load(self, point: int, chunk: int, size: int) -> ChunkOutput | None:
-        """The stored chunk, or None if absent or of another size."""
+        """The stored chunk, or None if absent or of another size.
+
+        A damaged chunk (checksum mismatch, undecodable arrays, causes or
+        sizes: see :class:`ChunkDamaged`) is, in a store opened to write,
+        named in a warning and returned as None, so the run recomputes it --
+        its numbers depend only on the seed, its grid point and its index, so
+        the result is the undamaged one -- and the new chunk replaces it.
+        Opened read-only, it raises :class:`ChunkDamaged`.
+        """
+        try:
+            return self._load(point, chunk, size)
+        except ChunkDamaged as exc:
+            if self.mode != "a":
+                raise
+            import warnings
+
+            warnings.warn(f"{exc.where} is damaged ({exc.reason}); recomputing it (its numbers depend only on "
+                          f"the seed, its grid point and its index, so the result is unchanged).", RuntimeWarning,
+                          stacklevel=2)
+            return None
+
+    def _load(self, point: int, chunk: int, size: int) -> ChunkOutput | None:
         key = (int(point), int(chunk))
         with self._guard("reading a chunk"):
             row = self._conn.execute("SELECT size, seconds, started_at, worker, timeout_enforced FROM chunks "
                                      "WHERE point=? AND chunk=?", key).fetchone()
-            if row is None or int(row[0]) != int(size):
+            if row is None or row[0] != int(size):
                 return None
             return self._read_chunk(key, row)
 
+    def _chunk_name(self, point: int, chunk: int) -> str:
+        """'STORE: chunk K (replicates a-b) of grid point P (n=20, effect=0.5)', for messages.
+
+        The parameters shown are those that differ between the store's grid
+        points (all of the process's when it holds one point), at most six.
+        """
+        label = ""
+        first = None
+        try:
+            rows = {int(p): (int(cs), json.loads(spec)) for p, cs, spec in
+                    self._conn.execute("SELECT point, chunk_size, scenario FROM points")}
+            if int(point) in rows:
+                cs, spec = rows[int(point)]
+                first = int(chunk) * cs
+                flat = _flatten(spec.get("process", {}))
+                others = [_flatten(s.get("process", {})) for p, (_, s) in rows.items() if p != int(point)]
+                shown = [k for k in flat if not others or any(o.get(k) != flat[k] for o in others)]
+                label = " (" + ", ".join(f"{k}={flat[k]!r}" for k in shown[:6]) + ")" if shown else ""
+        except (sqlite3.Error, ValueError, TypeError, AttributeError):
+            pass  # the name is for a message: go without the parameters
+        reps = ""
+        if first is not None:
+            row = self._conn.execute("SELECT size FROM chunks WHERE point=? AND chunk=?",
+                                     (int(point), int(chunk))).fetchone()
+            if row is not None and isinstance(row[0], int):
+                reps = f" (replicates {first}-{first + row[0] - 1})"
+        return f"{self.path}: chunk {chunk}{reps} of grid point {point}{label}"
+
     def _read_chunk(self, key, row) -> ChunkOutput:
+        try:
+            return self._decode_chunk(key, row)
+        except ChunkDamaged as exc:  # named (a few queries) only when it happens
+            raise ChunkDamaged(self._chunk_name(*key), exc.reason) from None
+
+    def _decode_chunk(self, key, row) -> ChunkOutput:
         c = self._conn
-        where = f"{self.path}: point {key[0]} chunk {key[1]}"
+        where = f"{self.path}: chunk {key[1]} of grid point {key[0]}"
         records: dict[str, dict[str, np.ndarray]] = {}
         paths, hyp = {}, {}
         for name, path, h, layout, crc, data in c.execute(
@@ -603,7 +766,7 @@ class RunStore:
             try:
                 h = json.loads(h or "[]")
             except ValueError:
-                raise StoreError(f"{where}: unreadable hypothesis labels; the store is corrupted.") from None
+                raise ChunkDamaged(where, f"unreadable hypothesis labels of analysis {name!r}") from None
             if h:
                 hyp[name] = h
         causes, messages = [], {}
@@ -615,16 +778,18 @@ class RunStore:
         for name, rec in records.items():
             bad = [f for f in (*RECORD_FIELDS, "status") if f not in rec or rec[f].shape[:1] != (size,)]
             if bad:
-                raise StoreError(f"{where}: analysis {name!r} lacks or has mis-sized fields {bad}; "
-                                 f"the store is corrupted.")
+                raise ChunkDamaged(where, f"analysis {name!r} lacks or has mis-sized fields {bad}")
             if rec["status"].max(initial=0) > len(causes):
-                raise StoreError(f"{where}: failure codes without causes; the store is corrupted.")
+                raise ChunkDamaged(where, "failure codes without causes")
         if not records:
-            raise StoreError(f"{where}: records are missing; the store is corrupted.")
+            raise ChunkDamaged(where, "its records are missing")
         te = row[4]
-        return ChunkOutput(key[0], key[1], size, records, causes, messages, paths, hyp, float(row[1]),
-                           started_at=float(row[2] or 0.0), worker=row[3] or "",
-                           timeout_enforced=None if te is None else bool(te))
+        try:
+            return ChunkOutput(key[0], key[1], size, records, causes, messages, paths, hyp, float(row[1]),
+                               started_at=float(row[2] or 0.0), worker=str(row[3] or ""),
+                               timeout_enforced=None if te is None else bool(te))
+        except (TypeError, ValueError):
+            raise ChunkDamaged(where, "unreadable timing columns") from None
 
     def done_chunks(self, point: int | None = None) -> list[tuple[int, int, int]]:
         """(point, chunk, size) of the stored chunks."""
@@ -636,7 +801,7 @@ class RunStore:
     def iter_chunks(self, point: int | None = None) -> Iterator[ChunkOutput]:
         """Stored chunks in (point, chunk) order, one at a time (bounded memory)."""
         for p, k, size in self.done_chunks(point):
-            out = self.load(p, k, size)
+            out = self._load(p, k, size)  # a damaged chunk raises here, whatever the mode
             if out is not None:
                 yield out
 
