@@ -21,6 +21,8 @@ from .errors import ParameterError, UnknownNameError, nearest
 _REGISTRY: dict[str, dict[str, type]] = {}
 _LOADED = False
 BUILTIN_PACKAGES = ("simpower.processes", "simpower.analyses")
+#: prefix of the private module names under which ``path/file.py`` references are loaded
+USER_MODULE_PREFIX = "simpower_user_"
 
 
 def register(cls: type) -> None:
@@ -77,7 +79,7 @@ def resolve_reference(ref: str, base_dir: str | Path | None = None) -> Callable[
         path = path.resolve()
         if not path.is_file():
             raise ParameterError(f"reference {ref!r}: file {str(path)!r} not found.")
-        mod_name = "simpower_user_" + "".join(c if c.isalnum() else "_" for c in str(path))
+        mod_name = USER_MODULE_PREFIX + "".join(c if c.isalnum() else "_" for c in str(path))
         module = sys.modules.get(mod_name)
         if module is None:
             spec = importlib.util.spec_from_file_location(mod_name, path)
@@ -111,14 +113,28 @@ def build(kind: str, spec: dict[str, Any], where: str = "", base_dir: str | Path
     if type_name is None:
         raise ParameterError(f"{label} is missing: name a {kind}. Valid: {', '.join(names(kind))}.")
     if is_reference(type_name):
+        from .components import Component
+
+        spec.pop("_source", None)  # a record of the code a spec() came from, not a parameter
+        obj = resolve_reference(type_name, base_dir)
+        if isinstance(obj, type) and issubclass(obj, Component):
+            if obj.kind != kind:
+                raise ParameterError(f"{label} = {type_name!r} is a {obj.kind} class; give a {kind} here.")
+            component = _construct(obj, spec, where)
+            component._set_reference(type_name, base_dir)
+            return component
         from .functions import wrap_callable
 
-        fn = resolve_reference(type_name, base_dir)
-        return wrap_callable(kind, fn, params=spec, ref=type_name, base_dir=base_dir)
+        return wrap_callable(kind, obj, params=spec, ref=type_name, base_dir=base_dir)
     try:
         cls = lookup(kind, type_name)
     except UnknownNameError as exc:
         raise UnknownNameError(f"{label}: {exc}") from None
+    return _construct(cls, spec, where)
+
+
+def _construct(cls: type, spec: dict[str, Any], where: str):
+    """``cls(**spec)``, with a parameter error's field prefixed by ``where`` (e.g. `process.n`)."""
     try:
         return cls(**spec)
     except ParameterError as exc:
@@ -126,3 +142,12 @@ def build(kind: str, spec: dict[str, Any], where: str = "", base_dir: str | Path
             msg = str(exc)
             raise ParameterError("`" + where + "." + msg[1:] if msg.startswith("`") else f"{where}: {msg}") from None
         raise
+
+
+def rebuild(obj):
+    """Build a new object from ``obj.spec()`` (relative references resolved as when ``obj`` was built)."""
+    base_dir = getattr(obj, "_base_dir", None)
+    ref = getattr(obj, "__dict__", {}).get("_Component__ref")
+    if ref is not None:
+        base_dir = ref[1]
+    return build(obj.kind, obj.spec(), base_dir=base_dir)
