@@ -115,7 +115,7 @@ class Component:
         hidden = (self.__dict__.keys() & self.params.keys()) - set(self.shadows)
         if hidden:
             key = sorted(hidden)[0]
-            raise DefinitionError(f"{type(self).__qualname__} set an instance attribute `{key}`, which hides the "
+            raise DefinitionError(f"{type(self).__name__} set an instance attribute `{key}`, which hides the "
                                   f"parameter `{key}`; store derived values under another name.")
 
     # -- contract -------------------------------------------------------
@@ -261,7 +261,7 @@ def _check_names(cls: type) -> None:
     """Refuse a class whose declared parameter would be hidden by (or hide) an attribute."""
     for key in RESERVED:
         if key in cls.__dict__:
-            raise DefinitionError(f"{cls.__qualname__} defines `{key}`, a name Component keeps for its parameter "
+            raise DefinitionError(f"{cls.__name__} defines `{key}`, a name Component keeps for its parameter "
                                   "store; rename it.")
     params = cls.__dict__.get("params", cls.params)
     shadows = set(cls.shadows)
@@ -273,8 +273,8 @@ def _check_names(cls: type) -> None:
             continue
         owner = next(k for k in cls.__mro__ if key in k.__dict__)
         what = "method" if inspect.isfunction(attr) else type(attr).__name__
-        raise DefinitionError(f"{cls.__qualname__}: parameter `{key}` has the name of the {what} "
-                              f"{owner.__qualname__}.{key}, which would hide it; rename the parameter (or list it "
+        raise DefinitionError(f"{cls.__name__}: parameter `{key}` has the name of the {what} "
+                              f"{owner.__name__}.{key}, which would hide it; rename the parameter (or list it "
                               f"in `shadows` if that attribute deliberately stands for it).")
 
 
