@@ -13,8 +13,9 @@ all checks pass. The checks (see DEVELOPERS.md, "Contracts"):
 
 process
     * ``spec()`` is data only (JSON, no null for TOML) and rebuilds an equal
-      object with the same fingerprint; the object pickles; ``repr`` is one
-      line naming the class; ``describe()`` is a sentence.
+      object with the same fingerprint; the object pickles (with cloudpickle,
+      as the engine ships it to workers); ``repr`` is one line naming the
+      class; ``describe()`` is a sentence.
     * Seeds are honoured: the same generator seed gives the same data, a
       different seed different data, and numpy's and Python's global random
       states are left alone.
@@ -53,7 +54,6 @@ from __future__ import annotations
 
 import json
 import math
-import pickle
 import random
 import warnings
 from typing import Any
@@ -150,9 +150,25 @@ def _check_value(obj, rep: _Report) -> None:
             rep.check(type(again) is type(obj), f"spec() rebuilds a {type(again).__name__}, not a {type(obj).__name__}")
             rep.check(again.fingerprint() == obj.fingerprint(),
                       f"spec() does not round-trip: {spec!r} rebuilds as {again.spec()!r}")
-    clone = rep.guard("pickling", lambda: pickle.loads(pickle.dumps(obj)))
+    # the engine ships objects to worker processes with cloudpickle (loky, dask)
+    pickler = _cloudpickle()
+    clone = rep.guard("pickling", lambda: pickler.loads(pickler.dumps(obj)))
     if clone is not None:
-        rep.check(clone.spec() == spec, f"a pickled copy has another spec: {clone.spec()!r}")
+        # `_source` records the code's text, which a function pickled by value may not carry
+        plain = {k: v for k, v in spec.items() if k != "_source"}
+        rep.check({k: v for k, v in clone.spec().items() if k != "_source"} == plain,
+                  f"a pickled copy has another spec: {clone.spec()!r}")
+
+
+def _cloudpickle():
+    try:
+        import cloudpickle  # what joblib's loky and dask use
+    except ImportError:  # pragma: no cover - older joblib vendored it
+        try:
+            from joblib.externals import cloudpickle
+        except ImportError:
+            import pickle as cloudpickle
+    return cloudpickle
 
 
 class _GlobalRandom:
@@ -329,22 +345,38 @@ def _check_batch(proc, rep: _Report, size: int, seed: int, one: dict | None) -> 
 # -- analyses ------------------------------------------------------------------------------------
 
 class _Outcome(tuple):
-    """(result or None, exception or None, whether the call warned of fit trouble)."""
+    """(result or None, exception or None, whether the call warned of fit trouble, output problem or "")."""
 
     res = property(lambda self: self[0])
     exc = property(lambda self: self[1])
     warned = property(lambda self: self[2])
+    bad_output = property(lambda self: self[3])
+
+
+def _raw(analysis, data):
+    """What the analysis returns, before :func:`as_test_result` (a user function's own return value)."""
+    from .functions import FunctionAnalysis
+
+    if isinstance(analysis, FunctionAnalysis):
+        return analysis._fn(data, **analysis.get_params())
+    return analysis(data)
 
 
 def _result(analysis, data) -> _Outcome:
+    bad = ""
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            res, exc = as_test_result(analysis(data)), None
+            raw = _raw(analysis, data)
         except Exception as e:
             res, exc = None, e
+        else:
+            try:
+                res, exc = as_test_result(raw), None
+            except Exception as e:  # the engine counts it, but the output breaks the contract
+                res, exc, bad = None, e, f"{type(e).__name__}: {e}"
     warned = any(not issubclass(w.category, IGNORED_WARNINGS) for w in caught)
-    return _Outcome((res, exc, warned))
+    return _Outcome((res, exc, warned, bad))
 
 
 def _check_output(res: TestResult, rep: _Report, where: str) -> None:
@@ -425,6 +457,7 @@ def check_analysis(analysis, process=None, *, size: int = 6, seed: int = 2026120
         rep.check(not g.touched, f"replicate {i}: the analysis used numpy's or Python's global random state")
         results.append(outcome)
         res = outcome.res
+        rep.check(not outcome.bad_output, f"replicate {i}: the output is not a result ({outcome.bad_output})")
         if res is not None:
             _check_output(res, rep, f"replicate {i}")
             again = _result(an, d).res
@@ -484,12 +517,12 @@ def _check_batch_path(an, batch, results, rep: _Report, rtol, atol, where: str) 
     for mask in (out.get("trouble") or {}).values():
         trouble |= np.asarray(mask, bool)
     compared = 0
-    for i, (res, exc, warned) in enumerate(results):
+    for i, (res, exc, warned, _) in enumerate(results):
         if warned or trouble[i]:
             continue  # fit trouble on either path: the engine records it, values are not compared
         compared += 1
         if res is None or not math.isfinite(res.pvalue):
-            p = cols["pvalue"][i]
+            p = float(cols["pvalue"][i])
             rep.check(not math.isfinite(p) or trouble[i],
                       f"{where}replicate {i}: the per-replicate path "
                       f"{'raised ' + type(exc).__name__ if exc is not None else 'gave p = nan'} but batch() gives "
@@ -501,7 +534,7 @@ def _check_batch_path(an, batch, results, rep: _Report, rtol, atol, where: str) 
                 rep.check(not math.isfinite(mine), f"{where}batch() gives no `{f}` but the per-replicate path "
                                                    f"does ({mine!r} on replicate {i})")
                 continue
-            theirs = cols[f][i]
+            theirs = float(cols[f][i])
             if math.isnan(mine) and math.isnan(theirs):
                 continue
             if not (np.isclose(theirs, mine, rtol=rtol, atol=atol) or theirs == mine):
@@ -539,7 +572,10 @@ def _check_missing(an, proc, batch, data, rep: _Report, rtol, atol) -> int | Non
         rows = np.array(sorted({0, m // 2, m - 1})) if m >= 6 else np.array([0])
         nd = _with_missing(t, rows)
         blanked.append(nd)
-        res = _result(an, nd).res
+        outcome = _result(an, nd)
+        res = outcome.res
+        rep.check(not outcome.bad_output, f"replicate {i} with missing outcomes: the output is not a result "
+                                          f"({outcome.bad_output})")
         if res is not None:
             _check_output(res, rep, f"replicate {i} with missing outcomes")
     if batch is None or not an.has_batch:

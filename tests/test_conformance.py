@@ -131,3 +131,159 @@ def test_analysis_conformance(an, proc, kw):
     assert info["failed"] < info["replicates"]
     if analysis.has_batch:  # the pairing reaches the batch path, so it was compared, not skipped
         assert info["batch_compared"], info
+
+
+# -- the kit itself: each broken component is caught, with a message naming the broken promise ----
+
+class _Arms(sp.Process):
+    """A well-behaved two-arm process for the checks below (n per arm, shift `effect`)."""
+
+    params = {"n": Int(low=2), "effect": Real()}
+    defaults = {"effect": 0.0}
+
+    def draw_batch(self, rng, size):
+        y = rng.standard_normal((size, 2 * self.n))
+        y[:, self.n:] += self.effect
+        return sp.Batch(size, {"y": y}, {"arm": np.repeat([0, 1], self.n)})
+
+
+@pytest.fixture
+def arms_cls(monkeypatch):
+    table = registry._REGISTRY.setdefault("process", {})
+    monkeypatch.setitem(table, "kit_arms", _Arms)
+    monkeypatch.setattr(_Arms, "name", "kit_arms")
+    return _Arms
+
+
+def test_the_kit_passes_a_well_behaved_user_process_and_function(arms_cls):
+    check_process(arms_cls(n=5, effect=0.3))
+
+    def drawn(rng, n=5):
+        return {"y": rng.standard_normal(2 * n), "arm": np.repeat([0, 1], n)}
+
+    check_process(drawn)
+    check_analysis(lambda d: 0.5, arms_cls(n=5))
+
+
+def test_the_kit_catches_an_unrebuildable_spec():
+    class Local(_Arms):  # neither registered nor importable by name
+        pass
+
+    with pytest.raises(AssertionError, match=r"rebuilding from spec\(\) raised"):
+        check_process(Local(n=5))
+
+
+def test_the_kit_catches_global_random_state(arms_cls, monkeypatch):
+    def draw_batch(self, rng, size):
+        y = np.random.standard_normal((size, 2 * self.n))
+        return sp.Batch(size, {"y": y}, {"arm": np.repeat([0, 1], self.n)})
+
+    monkeypatch.setattr(arms_cls, "draw_batch", draw_batch)
+    with pytest.raises(AssertionError, match="global random state") as info:
+        check_process(arms_cls(n=5))
+    assert "the same seed gave different data" in str(info.value)
+
+
+def test_the_kit_catches_a_seed_that_is_ignored(arms_cls, monkeypatch):
+    def draw_batch(self, rng, size):
+        y = np.random.default_rng(1).standard_normal((size, 2 * self.n))
+        return sp.Batch(size, {"y": y}, {"arm": np.repeat([0, 1], self.n)})
+
+    monkeypatch.setattr(arms_cls, "draw_batch", draw_batch)
+    with pytest.raises(AssertionError, match="a different seed gave the same data"):
+        check_process(arms_cls(n=5))
+
+
+def test_the_kit_catches_batch_and_per_replicate_layouts_that_differ(arms_cls, monkeypatch):
+    def call(self, rng):
+        y = rng.standard_normal(2 * self.n)
+        return {"y": y, "arm": np.repeat([0, 1], self.n), "visit": np.zeros(2 * self.n, int)}
+
+    monkeypatch.setattr(arms_cls, "__call__", call)
+    with pytest.raises(AssertionError, match=r"replicate\(0\) has columns \['arm', 'y'\], a per-replicate draw "
+                                             r"\['arm', 'visit', 'y'\]"):
+        check_process(arms_cls(n=5))
+
+
+def test_the_kit_catches_undeclared_missing_outcomes(arms_cls, monkeypatch):
+    def draw_batch(self, rng, size):
+        y = rng.standard_normal((size, 2 * self.n))
+        y[:, 0] = np.nan
+        return sp.Batch(size, {"y": y}, {"arm": np.repeat([0, 1], self.n)})
+
+    monkeypatch.setattr(arms_cls, "draw_batch", draw_batch)
+    with pytest.raises(AssertionError, match=r"NaN outcomes but the batch does not say info\['missing'\]"):
+        check_process(arms_cls(n=5))
+
+
+def _diff(data):
+    y, arm = np.asarray(data["y"], float), np.asarray(data["arm"])
+    return np.nanmean(y[arm == 1]) - np.nanmean(y[arm == 0])
+
+
+class _Shifted(sp.Analysis):
+    """A deliberately crude analysis: p = 1 / (1 + |difference|); batch path optional below."""
+
+    def __call__(self, data):
+        d = _diff(data)
+        return {"pvalue": 1 / (1 + abs(d)), "estimate": d}
+
+    def batch(self, batch):
+        y, arm = batch["y"], batch["arm"]
+        d = np.nanmean(y[:, arm == 1], axis=1) - np.nanmean(y[:, arm == 0], axis=1)
+        return {"pvalue": 1 / (1 + abs(d)), "estimate": d}
+
+
+def test_the_kit_passes_a_batch_path_that_agrees_and_catches_one_that_does_not(arms_cls, monkeypatch):
+    proc = arms_cls(n=5, effect=0.5)
+    table = registry._REGISTRY.setdefault("analysis", {})
+    monkeypatch.setitem(table, "kit_shifted", _Shifted)
+    monkeypatch.setattr(_Shifted, "name", "kit_shifted")
+    info = check_analysis(_Shifted(), proc)
+    assert info["batch_compared"] == 6
+    monkeypatch.setattr(_Shifted, "batch", lambda self, b: {"pvalue": np.full(b.size, 0.5)})
+    with pytest.raises(AssertionError) as e:
+        check_analysis(_Shifted(), proc)
+    msg = str(e.value)
+    assert "replicate 0: `pvalue` is 0.5 on the batch path" in msg
+    assert "batch() gives no `estimate` but the per-replicate path does" in msg
+
+
+def test_the_kit_catches_a_finite_batch_pvalue_where_the_replicate_fails(arms_cls, monkeypatch):
+    table = registry._REGISTRY.setdefault("analysis", {})
+    monkeypatch.setitem(table, "kit_shifted", _Shifted)
+    monkeypatch.setattr(_Shifted, "name", "kit_shifted")
+    monkeypatch.setattr(_Shifted, "__call__", lambda self, d: (_ for _ in ()).throw(ValueError("no")) if
+                        np.asarray(d["y"])[0] > 0 else {"pvalue": 1 / (1 + abs(_diff(d))), "estimate": _diff(d)})
+    with pytest.raises(AssertionError, match=r"the per-replicate path raised ValueError but batch\(\) gives p = "):
+        check_analysis(_Shifted(), arms_cls(n=5, effect=0.5))
+
+
+def test_the_kit_catches_pvalues_outside_the_unit_interval_and_wrong_shapes():
+    with pytest.raises(AssertionError, match=r"p-value 1\.5 is outside \[0, 1\]"):
+        check_analysis(lambda d: 1.5)
+
+    def shaped(data):  # an array p-value when the first outcome is missing
+        y = np.asarray(data["y"], float)
+        return {"pvalue": np.full(y.size, 0.5)} if np.isnan(y[0]) else 0.5
+
+    with pytest.raises(AssertionError, match=r"replicate 0 with missing outcomes: the output is not a result "
+                                             r"\(TypeError: the analysis returned `pvalue` of shape \(24,\)"):
+        check_analysis(shaped)
+    # the engine counts such a replicate as a failure with that message (not as a silent NaN)
+    res = sp.run(sp.Scenario(sp.TwoArm(n=12, missing=sp.MCAR(rate=0.3)), analyses={"shaped": shaped}), reps=20,
+                 seed=1, n_jobs=1, max_failure_rate=1.0)
+    fails = res.summaries["shaped"]["failures"]
+    assert set(fails) == {"error:TypeError"} and fails["error:TypeError"] > 0
+
+
+def test_the_kit_catches_nondeterminism_and_an_ignored_seed():
+    with pytest.raises(AssertionError, match="replicate 0: the analysis used numpy's or Python's global random"):
+        check_analysis(lambda d: float(np.random.uniform()))
+    rng = random.Random(0)
+    with pytest.raises(AssertionError, match="the same data gave another result"):
+        check_analysis(lambda d: rng.random())
+    # an analysis with a `seed` parameter whose resamples do not depend on it
+    with pytest.raises(AssertionError, match=r"a different `seed` gave the same results"):
+        check_analysis(sp.PermutationTest(n_resamples=99).replace(seed=0).__class__(n_resamples=99),
+                       sp.NormalTwoArm(n=4, effect=50.0))
