@@ -7,7 +7,8 @@ Run it on your own components (and simpower runs it on every registered one)::
     check_process(MyProcess(n=20, effect=0.3))
     check_analysis(MyAnalysis(), MyProcess(n=20, effect=0.3))
 
-Each function raises ``AssertionError`` listing every violation it found, one
+:func:`check_component` does the value checks for any other component
+(outcomes, missingness mechanisms). Each function raises ``AssertionError`` listing every violation it found, one
 per line, each naming the object and the broken promise; it returns None when
 all checks pass. The checks (see DEVELOPERS.md, "Contracts"):
 
@@ -63,7 +64,7 @@ import numpy as np
 from .analyses.base import FIELDS, IGNORED_WARNINGS, TestResult, as_test_result
 from .functions import as_analysis, as_process
 
-__all__ = ["check_process", "check_analysis", "default_process"]
+__all__ = ["check_process", "check_analysis", "check_component", "default_process"]
 
 #: columns every built-in process and analysis shares (DEVELOPERS.md, "A data-generating process")
 KNOWN_COLUMNS = frozenset({"y", "arm", "pair", "cluster", "subject", "visit", "baseline", "time", "event",
@@ -209,6 +210,47 @@ def _as_table(data) -> dict[str, np.ndarray] | None:
     if isinstance(data, dict):
         return {str(k): np.asarray(v) for k, v in data.items()}
     return None
+
+
+def check_component(obj, *, size: int = 50, seed: int = 20261202) -> None:
+    """The value checks (spec round trip, pickle, repr, describe) for any component, plus, for an
+    outcome, seeds honoured by ``sample`` and finite ``mean``/``sd``, and for a missingness
+    mechanism, a boolean ``mask`` shaped like the outcomes and seeds honoured.
+    """
+    from .processes.base import Missingness, Outcome
+
+    rep = _Report(obj)
+    _check_value(obj, rep)
+
+    def draws(fn):
+        out = []
+        for s in (seed, seed, seed + 1):
+            with _GlobalRandom() as g:
+                out.append(np.asarray(fn(np.random.default_rng(s))))
+            rep.check(not g.touched, "drawing used numpy's or Python's global random state")
+        return out
+
+    if isinstance(obj, Outcome):
+        for attr in ("mean", "sd"):
+            v = rep.guard(attr, getattr, obj, attr)
+            rep.check(v is None or (isinstance(v, float) and math.isfinite(v)), f"`{attr}` = {v!r} is not a "
+                                                                                "finite number")
+        got = rep.guard("sample(rng, size)", draws, lambda rng: obj.sample(rng, (2, size)))
+        if got is not None:
+            a, b, c = got
+            rep.check(a.shape == (2, size), f"sample(rng, (2, {size})) has shape {a.shape}")
+            rep.check(np.array_equal(a, b), "sample: the same seed gave different values")
+            rep.check(not np.array_equal(a, c), "sample: a different seed gave the same values")
+    if isinstance(obj, Missingness):
+        y = np.random.default_rng(seed).standard_normal((2, size))
+        cov = {"baseline": y + 0.5, "arm": np.tile(np.repeat([0, 1], size // 2 + 1)[:size], (2, 1))}
+        got = rep.guard("mask(rng, y, covariates)", draws, lambda rng: obj.mask(rng, y, cov))
+        if got is not None:
+            a, b, c = got
+            rep.check(a.shape == y.shape and a.dtype == bool, f"mask is {a.dtype} {a.shape}, not bool {y.shape}")
+            rep.check(np.array_equal(a, b), "mask: the same seed gave different masks")
+            rep.check(not np.array_equal(a, c), "mask: a different seed gave the same mask")
+    rep.done()
 
 
 # -- processes -----------------------------------------------------------------------------------

@@ -28,7 +28,7 @@ import simpower as sp
 from simpower import registry
 from simpower.constraints import Int, Real
 from simpower.registry import build
-from simpower.testing import check_analysis, check_process
+from simpower.testing import check_analysis, check_component, check_process
 
 # -- one small configuration per registered process (more where a variant has its own code path) --
 PROCESSES = {
@@ -92,6 +92,21 @@ PAIRS = [
     ({"type": "wilcoxon_signed_rank"}, PAIRED),
     ({"type": "z_test"}, TWO_ARM),
 ]
+#: the nested kinds: one configuration per registered outcome distribution and missingness mechanism
+NESTED = {
+    ("outcome", "contaminated_normal"): {"contamination": 0.1, "scale_factor": 3.0},
+    ("outcome", "fleishman"): {"skewness": 1.0, "excess_kurtosis": 2.0},
+    ("outcome", "gamma"): {"mean": 2.0, "cv": 0.5},
+    ("outcome", "lognormal"): {"median": 1.0, "cv": 0.5},
+    ("outcome", "normal"): {"mean": 1.0, "sd": 2.0},
+    ("outcome", "scipy"): {"dist": "gamma", "args": [2.0], "kwds": {"scale": 3.0}},
+    ("outcome", "skew_normal"): {"skewness": 0.5},
+    ("outcome", "student_t"): {"df": 5.0},
+    ("missingness", "mar"): {"rate": 0.2},
+    ("missingness", "mcar"): {"rate": 0.2},
+    ("missingness", "mnar"): {"rate": 0.2},
+}
+
 #: analyses with no compatible built-in process: name -> reason (none today)
 NO_PROCESS: dict[str, str] = {}
 #: known violations found by the kit, marked xfail(strict=True): id -> reason
@@ -116,11 +131,18 @@ def test_every_registered_component_is_covered():
     paired = {p[0]["type"] for p in PAIRS}
     assert paired.isdisjoint(NO_PROCESS)
     assert paired | set(NO_PROCESS) == set(registry.names("analysis"))
+    for kind in ("outcome", "missingness"):
+        assert {name for k, name in NESTED if k == kind} == set(registry.names(kind))
 
 
 @pytest.mark.parametrize("key", [pytest.param(k, id=k, marks=_marks(k)) for k in PROCESSES])
 def test_process_conformance(key):
     check_process(build("process", {"type": _pid(key), **PROCESSES[key]}))
+
+
+@pytest.mark.parametrize("kind,name", [pytest.param(*k, id=f"{k[0]}:{k[1]}") for k in NESTED])
+def test_nested_component_conformance(kind, name):
+    check_component(build(kind, {"type": name, **NESTED[kind, name]}))
 
 
 @pytest.mark.parametrize("an,proc,kw", [pytest.param(*p, *({},) * (3 - len(p)), id=_aid(*p), marks=_marks(_aid(*p)))
