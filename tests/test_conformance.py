@@ -76,6 +76,8 @@ PAIRS = [
     # statsmodels' default optimiser stops within about 1e-4 of the REML optimum the batch path finds
     # (tests/test_mixed.py checks both against statsmodels at that tolerance and at 1e-7 with gtol 1e-10)
     ({"type": "mixed_model"}, CLUSTERS, {"atol": 1e-4, "rtol": 0.0}),
+    # the same with other data: replicates whose REML estimate is on the boundary (see KNOWN)
+    ({"type": "mixed_model"}, CLUSTERS, {"atol": 1e-4, "rtol": 0.0, "seed": 2, "size": 8}),
     ({"type": "multiple", "tests": [{"type": "t_test"}], "comparisons": "each_vs_control"},
      ("multi_arm", {"effects": [0.0, 0.3, 0.6], "n": 8})),
     ({"type": "negbin_glm"}, COUNTS),
@@ -110,16 +112,24 @@ NESTED = {
 #: analyses with no compatible built-in process: name -> reason (none today)
 NO_PROCESS: dict[str, str] = {}
 #: known violations found by the kit, marked xfail(strict=True): id -> reason
-KNOWN: dict[str, str] = {}
+KNOWN: dict[str, str] = {
+    "mixed_model@cluster_trial/seed=2": (
+        "mixed_model, unequal cluster sizes (here: missing outcomes) with the REML estimate on the boundary "
+        "(cluster variance 0): the batch path reports the OLS standard error (fixed-effect block alone, as "
+        "simpower/analyses/mixed.py documents) while statsmodels' per-replicate fit inverts the full Hessian "
+        "including the variance parameter; SE 0.30131 vs 0.30239, p 0.01473 vs 0.01509 on replicate 0 "
+        "(statsmodels agrees with itself to 1e-8 across nm, powell and bfgs gtol=1e-10)"),
+}
 
 
 def _pid(key: str) -> str:
     return key.split("/")[0]
 
 
-def _aid(an: dict, proc: tuple, *_) -> str:
+def _aid(an: dict, proc: tuple, kw: dict | None = None) -> str:
     extra = ",".join(f"{k}={v}" for k, v in an.items() if k not in ("type", "tests", "n_resamples"))
-    return f"{an['type']}[{extra}]@{proc[0]}" if extra else f"{an['type']}@{proc[0]}"
+    seed = f"/seed={kw['seed']}" if kw and "seed" in kw else ""
+    return (f"{an['type']}[{extra}]@{proc[0]}" if extra else f"{an['type']}@{proc[0]}") + seed
 
 
 def _marks(ident: str):

@@ -255,3 +255,15 @@ def test_a_failing_analysis_is_named_as_the_part_to_fix():
     msg = str(info.value)
     assert "the analysis `fussy` failed" in msg and "error:KeyError" in msg and "Fix the analysis" in msg
     assert "Fix the process" not in msg
+
+
+def test_a_clashing_class_in_a_user_file_is_one_line_naming_it(tmp_path):
+    (tmp_path / "clash.py").write_text(
+        "from simpower import Process\nfrom simpower.constraints import Int\n"
+        "class Clash(Process):\n    params = {'n': Int(low=2), 'replace': Int()}\n")
+    path = tmp_path / "s.toml"
+    path.write_text('[process]\ntype = "clash.py:Clash"\nn = 4\n[analysis]\ntype = "t_test"\n')
+    with pytest.raises(sp.ScenarioFileError) as info:
+        sp.load_scenario(path)
+    msg = str(info.value)
+    assert "\n" not in msg and "importing clash.py raised DefinitionError: Clash: parameter `replace`" in msg
