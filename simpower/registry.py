@@ -146,8 +146,10 @@ def _construct(cls: type, spec: dict[str, Any], where: str):
 
 def rebuild(obj):
     """Build a new object from ``obj.spec()`` (relative references resolved as when ``obj`` was built)."""
+    from .components import _REF
+
     base_dir = getattr(obj, "_base_dir", None)
-    ref = getattr(obj, "__dict__", {}).get("_Component__ref")
+    ref = getattr(obj, "__dict__", {}).get(_REF)
     if ref is not None:
         base_dir = ref[1]
     return build(obj.kind, obj.spec(), base_dir=base_dir)
