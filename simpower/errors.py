@@ -19,6 +19,10 @@ class ParameterError(SimpowerError, ValueError):
     """A parameter is missing, of the wrong type, or outside its valid range."""
 
 
+class DefinitionError(SimpowerError, TypeError):
+    """A component class breaks the contract when it is defined (e.g. a parameter named like a method)."""
+
+
 class ScenarioFileError(SimpowerError, ValueError):
     """A scenario file cannot be read: TOML syntax, unknown block or field."""
 

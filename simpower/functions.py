@@ -34,7 +34,7 @@ class _FunctionMixin:
         object.__setattr__(self, "_fn", fn)
         object.__setattr__(self, "_ref", ref)
         object.__setattr__(self, "_base_dir", None if base_dir is None else str(base_dir))
-        object.__setattr__(self, "_p", dict(params or {}))
+        self._set_params(params or {})
         self._check_signature()
 
     def _check_signature(self):
@@ -77,16 +77,16 @@ class _FunctionMixin:
         return f"user {self.kind} {self.label}" + (f" ({ps})" if ps else "")
 
     def __repr__(self):
-        return f"{type(self).__name__}({self.label!r}, {self._p!r})"
+        return f"{type(self).__name__}({self.label!r}, {dict(self._p)!r})"
 
     def __getstate__(self):
-        state = {"_p": self._p, "_ref": self._ref, "_base_dir": self._base_dir}
+        state = {"_p": dict(self._p), "_ref": self._ref, "_base_dir": self._base_dir}
         if self._ref is None:
             state["_fn"] = self._fn
         return state
 
     def __setstate__(self, state):
-        object.__setattr__(self, "_p", state["_p"])
+        self._set_params(state["_p"])
         object.__setattr__(self, "_ref", state["_ref"])
         object.__setattr__(self, "_base_dir", state["_base_dir"])
         fn = state.get("_fn")

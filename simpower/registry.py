@@ -26,9 +26,19 @@ _REGISTRY: dict[str, dict[str, type]] = {}
 #: kind -> the class that wraps a user function as a component of that kind
 _WRAPPERS: dict[str, type] = {}
 _LOADED = False
+#: the component base class, set by :mod:`simpower.components` when it loads (the registry
+#: imports nothing of simpower's but the errors, so it cannot import that class itself)
+_COMPONENT_BASE: list[type] = []
 BUILTIN_PACKAGES = ("simpower.processes", "simpower.analyses")
 #: modules that register the wrappers of user functions
 BUILTIN_MODULES = ("simpower.functions",)
+#: prefix of the private module names under which ``path/file.py`` references are loaded
+USER_MODULE_PREFIX = "simpower_user_"
+
+
+def set_component_base(cls: type) -> None:
+    """Record the component base class (called once by :mod:`simpower.components`)."""
+    _COMPONENT_BASE[:] = [cls]
 
 
 def register(cls: type) -> None:
@@ -102,7 +112,7 @@ def resolve_reference(ref: str, base_dir: str | Path | None = None) -> Callable[
         path = path.resolve()
         if not path.is_file():
             raise ParameterError(f"reference {ref!r}: file {str(path)!r} not found.")
-        mod_name = "simpower_user_" + "".join(c if c.isalnum() else "_" for c in str(path))
+        mod_name = USER_MODULE_PREFIX + "".join(c if c.isalnum() else "_" for c in str(path))
         module = sys.modules.get(mod_name)
         if module is None:
             spec = importlib.util.spec_from_file_location(mod_name, path)
@@ -136,12 +146,25 @@ def build(kind: str, spec: dict[str, Any], where: str = "", base_dir: str | Path
     if type_name is None:
         raise ParameterError(f"{label} is missing: name a {kind}. Valid: {', '.join(names(kind))}.")
     if is_reference(type_name):
-        fn = resolve_reference(type_name, base_dir)
-        return wrap_callable(kind, fn, params=spec, ref=type_name, base_dir=base_dir)
+        obj = resolve_reference(type_name, base_dir)
+        spec.pop("_source", None)  # a record of the code a spec() came from, not a parameter
+        base = _COMPONENT_BASE[0] if _COMPONENT_BASE else None
+        if base is not None and isinstance(obj, type) and issubclass(obj, base):
+            if obj.kind != kind:
+                raise ParameterError(f"{label} = {type_name!r} is a {obj.kind} class; give a {kind} here.")
+            component = _construct(obj, spec, where)
+            component._set_reference(type_name, base_dir)
+            return component
+        return wrap_callable(kind, obj, params=spec, ref=type_name, base_dir=base_dir)
     try:
         cls = lookup(kind, type_name)
     except UnknownNameError as exc:
         raise UnknownNameError(f"{label}: {exc}") from None
+    return _construct(cls, spec, where)
+
+
+def _construct(cls: type, spec: dict[str, Any], where: str):
+    """``cls(**spec)``, with a parameter error's field prefixed by ``where`` (e.g. `process.n`)."""
     try:
         return cls(**spec)
     except ParameterError as exc:
@@ -149,3 +172,12 @@ def build(kind: str, spec: dict[str, Any], where: str = "", base_dir: str | Path
             msg = str(exc)
             raise ParameterError("`" + where + "." + msg[1:] if msg.startswith("`") else f"{where}: {msg}") from None
         raise
+
+
+def rebuild(obj):
+    """Build a new object from ``obj.spec()`` (relative references resolved as when ``obj`` was built)."""
+    base_dir = getattr(obj, "_base_dir", None)
+    ref = getattr(obj, "__dict__", {}).get("_Component__ref")  # components._REF
+    if ref is not None:
+        base_dir = ref[1]
+    return build(obj.kind, obj.spec(), base_dir=base_dir)

@@ -68,9 +68,11 @@ class NullBoundary:
     label: str
 
 
-def _num(x: Any) -> float:
+def _num(x: Any, field: str = "") -> float:
     if x is None:
         return math.nan
+    if field and np.ndim(x) > 0 and np.size(x) != 1:
+        raise TypeError(f"the analysis returned `{field}` of shape {np.shape(x)}; return one number per data set")
     try:
         return float(x)
     except (TypeError, ValueError):
@@ -82,7 +84,8 @@ def as_test_result(obj: Any) -> TestResult:
 
     Accepts a number (the p-value), a mapping, or an object with attributes
     (``pvalue`` or ``p_value``; scipy result objects qualify).  Raises
-    ``TypeError`` when no p-value can be found.
+    ``TypeError`` when no p-value can be found, or when a field holds several
+    numbers (an array where one number belongs).
     """
     if isinstance(obj, TestResult):
         return obj
@@ -100,11 +103,11 @@ def as_test_result(obj: Any) -> TestResult:
     lo, hi = (ci if ci is not None else (get("ci_low", None), get("ci_high", None)))
     pvals = get("pvalues", None)
     return TestResult(
-        pvalue=_num(p),
-        estimate=_num(get("estimate", None)),
-        se=_num(get("se", None)),
-        ci_low=_num(lo),
-        ci_high=_num(hi),
+        pvalue=_num(p, "pvalue"),
+        estimate=_num(get("estimate", None), "estimate"),
+        se=_num(get("se", None), "se"),
+        ci_low=_num(lo, "ci_low"),
+        ci_high=_num(hi, "ci_high"),
         statistic=_num(get("statistic", None)),
         df=_num(get("df", None)),
         pvalues=None if pvals is None else np.asarray(pvals, dtype=float),

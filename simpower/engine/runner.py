@@ -191,12 +191,36 @@ def _check_failures(pt: _Point, limit: float, store) -> None:
         return
     book = pt.book
     causes = {c: n for c, n in pt.counts.get(name, {}).items() if not c.startswith(WARNING_PREFIX)}
+    # a process that fails to draw the data fails every analysis of that replicate ("process:<Type>")
+    drawn = {c: n for c, n in causes.items() if c.startswith(PROCESS_PREFIX)}
+    if sum(drawn.values()) > limit * pt.done:
+        part, count, causes = f"the process `{part_label(pt.scenario.process)}`", sum(drawn.values()), drawn
+        failed, fix = "failed to draw the data", "Fix the process"
+    else:
+        part, count, failed = f"the analysis `{name}`", worst, "failed"
+        fix = f"Fix the analysis (and the process `{part_label(pt.scenario.process)}`)" if drawn else \
+            "Fix the analysis"
     shown = ", ".join(f"{c} x{n}" for c, n in sorted(causes.items(), key=lambda kv: -kv[1]))
     first = "; ".join(f"first {c}: {book.messages.get(c, '')}" for c in list(causes)[:3])
     kept = f" Finished chunks are kept in {getattr(store, 'path', 'the store')}." if store is not None else ""
-    raise RunError(f"stopped: {worst} of {pt.done} replicates of analysis `{name}` failed at grid point {pt.key} "
-                   f"({worst / pt.done:.1%} > max_failure_rate {limit:g}): {shown} ({first}). Fix the analysis "
+    raise RunError(f"stopped: {part} {failed} on {count} of {pt.done} replicates at grid point {pt.key} "
+                   f"({count / pt.done:.1%} > max_failure_rate {limit:g}): {shown} ({first}). {fix} "
                    f"or raise `max_failure_rate` (--max-failure-rate).{kept}")
+
+
+#: cause prefix of a replicate whose data could not be drawn (see :mod:`simpower.engine.chunk`)
+PROCESS_PREFIX = "process:"
+
+
+def part_label(component) -> str:
+    """How messages name a process or an analysis: its registry name, its reference, or its class."""
+    name = getattr(component, "name", None) or getattr(component, "label", None)
+    if name:
+        return str(name)
+    try:
+        return str(component.spec()["type"])
+    except Exception:
+        return type(component).__name__
 
 
 def _progress(total: int, enabled: bool | None, desc: str, initial: int = 0):
@@ -320,8 +344,7 @@ def preflight(scenario) -> None:
         if len(errors) == len(data):
             exc = errors[0]
             raise ParameterError(
-                f"analysis `{name}` cannot analyse the data of process "
-                f"`{getattr(scenario.process, 'name', None) or getattr(scenario.process, 'label', 'process')}`: "
+                f"analysis `{name}` cannot analyse the data of process `{part_label(scenario.process)}`: "
                 f"it raised {type(exc).__name__}: {exc} on every trial replicate; check that the analysis fits "
                 f"the design (columns {', '.join(sorted(map(str, data[0])))}).")
 

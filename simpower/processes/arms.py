@@ -412,7 +412,7 @@ class MultiArm(Process):
             factors = (1.0,) * k
         _check_outcome_for(outcome, p["effect_type"], any(f != 1 for f in factors))
         _check_missing(p["missing"], {"arm"}, self.name)
-        object.__setattr__(self, "_p", p)
+        self._set_params(p)
         object.__setattr__(self, "_sizes", sizes)
         object.__setattr__(self, "_factors", factors)
 

@@ -165,6 +165,7 @@ class Normal(Distribution):
     name = "normal"
     params = {"mean": Real(), "sd": POSITIVE}
     defaults = {"mean": 0.0, "sd": 1.0}
+    shadows = ("mean", "sd")
 
     mean = property(lambda self: self._p["mean"])
     sd = property(lambda self: self._p["sd"])
@@ -199,6 +200,7 @@ class Lognormal(Distribution):
     name = "lognormal"
     params = {"median": OPT_POSITIVE, "mean": OPT_POSITIVE, "cv": OPT_POSITIVE, "sigma": OPT_POSITIVE}
     defaults = {"median": None, "mean": None, "cv": None, "sigma": None}
+    shadows = ("mean",)  # the population mean, also when `median` was given
     lower_bound = 0.0
 
     def _check(self):
@@ -261,6 +263,7 @@ class Gamma(Distribution):
     name = "gamma"
     params = {"shape": OPT_POSITIVE, "scale": OPT_POSITIVE, "mean": OPT_POSITIVE, "cv": OPT_POSITIVE}
     defaults = {"shape": None, "scale": None, "mean": None, "cv": None}
+    shadows = ("mean",)  # the population mean, also when `shape` and `scale` were given
     lower_bound = 0.0
 
     def _check(self):
@@ -326,6 +329,7 @@ class SkewNormal(Distribution):
     params = {"location": OPT_REAL, "scale": OPT_POSITIVE, "shape": OPT_REAL,
               "mean": OPT_REAL, "sd": OPT_POSITIVE, "skewness": OPT_REAL}
     defaults = {k: None for k in params}
+    shadows = ("mean", "sd", "skewness")  # the population moments, however the distribution was given
 
     def _check(self):
         p = self._p
@@ -456,6 +460,7 @@ class Fleishman(Distribution):
     name = "fleishman"
     params = {"mean": Real(), "sd": POSITIVE, "skewness": Real(), "excess_kurtosis": Real()}
     defaults = {"mean": 0.0, "sd": 1.0, "skewness": 0.0, "excess_kurtosis": 0.0}
+    shadows = ("mean", "sd", "skewness", "excess_kurtosis")
 
     def _check(self):
         g1, g2 = self._p["skewness"], self._p["excess_kurtosis"]
@@ -656,7 +661,7 @@ class ScipyOutcome(Distribution):
         if not ok:
             raise ParameterError(f"`args` = {args} with `kwds` = {kwds} are outside the valid range of "
                                  f"scipy.stats.{name} (shape parameters and scale must be valid).")
-        object.__setattr__(self, "_p", {"dist": name, "args": args, "kwds": kwds})
+        self._set_params({"dist": name, "args": args, "kwds": kwds})
         object.__setattr__(self, "_frozen", frozen)
 
     def frozen(self):
