@@ -249,7 +249,11 @@ def binom_exact_n(p, p0, power, *, alpha=0.05, alternative="two-sided", robust=F
 
     The search is exact: it starts at the first n where the randomised most
     powerful test (Neyman-Pearson), which bounds the exact test's power, reaches
-    the target, and steps up one n at a time from there.
+    the target, and steps up one n at a time from there. Each step costs O(n),
+    and a two-sided search steps through about a fifth of the answer, so answers
+    of a few hundred take a fraction of a second and answers near 6500 (p = 0.52
+    against 0.5) about 15 s on one core; at such sizes a normal approximation
+    serves as well.
 
     Parameters
     ----------
