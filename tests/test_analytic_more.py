@@ -515,3 +515,30 @@ def test_bad_input_gives_one_line_parameter_error(call, message):
         call()
     text = str(info.value)
     assert message in text and "\n" not in text
+
+
+# --------------------------------------------------------------------------- properties
+@pytest.mark.parametrize("alternative", ALTERNATIVES)
+def test_power_at_the_null_is_alpha_and_rises_with_n(alternative):
+    # Common practice: a test's power at the null is its size (alpha for these normal-theory
+    # tests), and power grows with the sample size.
+    alphas = np.array([0.01, 0.05, 0.2])
+    at_null = [
+        arcsine_power(0.3, 0.3, 50, alpha=alphas, alternative=alternative),
+        freedman_power(1.0, 80, alpha=alphas, alternative=alternative),
+        noether_power(0.5, 40, alpha=alphas, alternative=alternative),
+        corr_power(60, 0.25, r0=0.25, alpha=alphas, alternative=alternative),
+    ]
+    for nv in ("pooled", "control", "alternative"):
+        at_null.append(rate_ratio_power(1.5, 1.0, 90, dispersion=1.5, alpha=alphas, alternative=alternative,
+                                        null_variance=nv))
+    for got in at_null:
+        np.testing.assert_allclose(got, alphas, rtol=1e-12)
+    n = np.array([10.0, 40.0, 160.0, 640.0])
+    sign = -1 if alternative == "less" else 1
+    for curve in (arcsine_power(0.4, 0.4 + 0.1 * sign, n, alternative=alternative),
+                  freedman_power(np.exp(0.4 * sign), n, alternative=alternative),
+                  noether_power(0.5 + 0.08 * sign, n, alternative=alternative),
+                  corr_power(n, 0.15 * sign, alternative=alternative),
+                  rate_ratio_power(0.9, np.exp(0.3 * sign), n, dispersion=3.0, alternative=alternative)):
+        assert np.all(np.diff(curve) > 0) and curve[-1] > 0.9
