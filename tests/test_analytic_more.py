@@ -218,6 +218,8 @@ def test_binom_exact_n_is_the_first_crossing_at_large_n():
     assert n > 500
     below = binom_exact_power(np.arange(1, n), 0.56, 0.5)
     assert binom_exact_power(n, 0.56, 0.5) >= 0.8 and np.all(below < 0.8)
+    # a search bound that clips the doubling of the Neyman-Pearson bracket gives the same answer
+    assert [binom_exact_n(0.56, 0.5, 0.8, n_max=m) for m in (n, 600, 1000)] == [n, n, n]
 
 
 # --------------------------------------------------------------------------- 3. Freedman

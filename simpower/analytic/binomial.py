@@ -184,15 +184,14 @@ def binom_exact_power(n, p, p0, *, alpha=0.05, alternative="two-sided"):
 def _first_n(p, p0, target, alpha, alternative, n_max):
     """Smallest n <= n_max whose exact power reaches ``target``, and a power look-up."""
     mp = lambda m: _mp_power(m, p, p0, alpha)  # noqa: E731
-    hi = 1
+    lo, hi = 0, 1  # invariant: mp(lo) < target (or lo = 0), mp(hi) >= target once found
     while mp(hi) < target:
         if hi >= n_max:
             raise ParameterError(
                 f"`n_max` = {n_max} is too small: even the most powerful test needs more trials "
                 f"for power {target:g} at p = {p:g} against p0 = {p0:g}; raise n_max."
             )
-        hi = min(2 * hi, n_max)
-    lo = hi // 2  # mp(lo) < target or lo == 0
+        lo, hi = hi, min(2 * hi, n_max)
     while hi - lo > 1:
         mid = (lo + hi) // 2
         if mp(mid) >= target:
