@@ -312,8 +312,8 @@ def test_noether_n_gives_the_power_by_simulation(d, ratio, alternative):
 
 # --------------------------------------------------------------------------- 5. rate ratios
 def test_rate_ratio_poisson_reduces_to_the_classic_formula():
-    # Reference: the Wald test of a log rate ratio (common practice; cf. Signorini 1991, Biometrika
-    # 78:211, from memory): n = (z_a + z_b)^2 (1/mu0 + 1/(ratio mu1)) / log(RR)^2, mu = rate * exposure.
+    # Reference: the Wald test of a log rate ratio (common practice; cf. Signorini 1991, Biometrika,
+    # from memory): n = (z_a + z_b)^2 (1/mu0 + 1/(ratio mu1)) / log(RR)^2, mu = rate * exposure.
     for rate0, rr, expo, r in [(0.5, 0.6, 2.0, 1.0), (3.0, 1.3, 0.5, 2.0), (1.1, 0.8, 1.0, 0.5)]:
         alt = "less" if rr < 1 else "greater"
         mu0, mu1 = rate0 * expo, rate0 * rr * expo

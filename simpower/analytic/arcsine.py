@@ -16,7 +16,7 @@ standardised shift ``delta = h / sqrt(g / n)``:
 
 For equal arms the one-tail formula is Cohen's ``n = 2 * ((z* + z_power) / h)**2``
 per arm (his Table 6.4.1 rounds it: 392, 63 and 25 per arm for h = 0.2, 0.5 and
-0.8 at two-sided alpha 0.05 and power 0.8). Unlike :mod:`.proportions` the
+0.8 at two-sided alpha 0.05 and power 0.8; values from memory). Unlike :mod:`.proportions` the
 variance does not depend on the proportions, so power depends on ``p0`` and
 ``p1`` only through ``h``.
 """
