@@ -13,18 +13,30 @@ See ``docs/analytic.md`` for formulas and sources.
 """
 
 from .ancova import ancova_effect, ancova_n, ancova_power
+from .arcsine import arcsine_effect, arcsine_n, arcsine_power, cohen_h
+from .binomial import binom_exact_effect, binom_exact_n, binom_exact_power, binom_exact_region
+from .correlation import corr_effect, corr_n, corr_power
 from .design import ceil_n, clusters_per_arm, design_effect, inflate_for_dropout
 from .equivalence import tost_power, welch_tost_power
+from .freedman import freedman_events, freedman_power
+from .noether import noether_effect, noether_n, noether_power, superiority_normal
 from .normal import z_critical, z_effect, z_n, z_power
 from .proportions import prop2_effect, prop2_n, prop2_power
+from .rates import rate_ratio_effect, rate_ratio_n, rate_ratio_power
 from .survival import schoenfeld_events, schoenfeld_power
 from .ttest import t_effect, t_n, t_power
 from .welch import welch_df, welch_effect, welch_n, welch_power
 
 __all__ = [
     "ancova_effect", "ancova_n", "ancova_power",
+    "arcsine_effect", "arcsine_n", "arcsine_power", "cohen_h",
+    "binom_exact_effect", "binom_exact_n", "binom_exact_power", "binom_exact_region",
     "ceil_n", "clusters_per_arm", "design_effect", "inflate_for_dropout",
+    "corr_effect", "corr_n", "corr_power",
+    "freedman_events", "freedman_power",
+    "noether_effect", "noether_n", "noether_power", "superiority_normal",
     "prop2_effect", "prop2_n", "prop2_power",
+    "rate_ratio_effect", "rate_ratio_n", "rate_ratio_power",
     "schoenfeld_events", "schoenfeld_power",
     "t_effect", "t_n", "t_power", "tost_power",
     "welch_df", "welch_effect", "welch_n", "welch_power", "welch_tost_power",
