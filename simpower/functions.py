@@ -5,18 +5,71 @@ so it has parameters (for sweeps), a spec (for the fingerprint and reports), and
 pickles by *reference* when it came from ``module:function`` or
 ``path/file.py:function``, so worker processes re-import it rather than rely on
 pickling code.
+
+A reference names code, and resolving it runs that code, as any Python import
+does. Two settings of the current context govern references (both read by
+:func:`simpower.registry.resolve_reference`, the one place they are resolved):
+
+* :func:`reference_folder` -- the folder a relative ``path/file.py`` is taken
+  from: the scenario file's, set while a scenario file is loaded, so a
+  reference means the same file wherever it sits (``[process]``,
+  ``[analyses.x]``, inside ``multiple.tests``, in ``--set``) and whatever the
+  current folder;
+* :func:`no_user_code` -- refuse every reference, e.g. while rebuilding a run
+  from a run store, which is data and never names code to run.
 """
 
 from __future__ import annotations
 
 import hashlib
 import inspect
+from contextlib import contextmanager
+from contextvars import ContextVar
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Iterator
 
 from .analyses.base import Analysis, as_test_result
 from .errors import ParameterError, nearest
 from .processes.base import Process
+
+
+_FOLDER: ContextVar[str | None] = ContextVar("simpower_reference_folder", default=None)
+_NO_CODE: ContextVar[str | None] = ContextVar("simpower_no_user_code", default=None)
+
+
+@contextmanager
+def reference_folder(folder: str | Path | None) -> Iterator[None]:
+    """Resolve relative ``path/file.py:function`` references against ``folder`` inside the block."""
+    token = _FOLDER.set(None if folder is None else str(folder))
+    try:
+        yield
+    finally:
+        _FOLDER.reset(token)
+
+
+def current_reference_folder() -> str | None:
+    """The folder set by the innermost :func:`reference_folder` (None: the current folder)."""
+    return _FOLDER.get()
+
+
+@contextmanager
+def no_user_code(reason: str) -> Iterator[None]:
+    """Refuse every ``module:function`` / ``path/file.py:function`` reference inside the block.
+
+    ``reason`` ends the one-line error, e.g. how else to reach the same result.
+    """
+    token = _NO_CODE.set(reason)
+    try:
+        yield
+    finally:
+        _NO_CODE.reset(token)
+
+
+def check_code_allowed(ref: str) -> None:
+    """Raise ParameterError when references are refused here (see :func:`no_user_code`)."""
+    reason = _NO_CODE.get()
+    if reason is not None:
+        raise ParameterError(f"the scenario names user code {ref!r}, which is not run from here: {reason}")
 
 
 def _source_hash(fn: Callable) -> str:

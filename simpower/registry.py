@@ -63,10 +63,18 @@ def is_reference(text: str) -> bool:
 def resolve_reference(ref: str, base_dir: str | Path | None = None) -> Callable[..., Any]:
     """Import ``module:attr`` or ``path/to/file.py:attr`` and return the attribute.
 
-    A file path is taken relative to ``base_dir`` (the scenario file's folder).
-    The file's module is loaded under a private name derived from its absolute
-    path, so workers can load it again from the same reference.
+    A file path is taken relative to ``base_dir``, else to the folder of the
+    scenario file being loaded (:func:`simpower.functions.reference_folder`),
+    else to the current folder. The file's module is loaded under a private
+    name derived from its absolute path, so workers can load it again from the
+    same reference. Importing runs the module's code, as any import does;
+    inside :func:`simpower.functions.no_user_code` every reference is refused.
     """
+    from .functions import check_code_allowed, current_reference_folder
+
+    check_code_allowed(ref)
+    if base_dir is None:
+        base_dir = current_reference_folder()
     target, _, attr = ref.rpartition(":")
     if not target or not attr:
         raise ParameterError(f"reference {ref!r} must look like 'module:function' or 'path/file.py:function'.")
@@ -104,7 +112,15 @@ def resolve_reference(ref: str, base_dir: str | Path | None = None) -> Callable[
 
 
 def build(kind: str, spec: dict[str, Any], where: str = "", base_dir: str | Path | None = None):
-    """Build a component of ``kind`` from a spec mapping with a ``type`` key."""
+    """Build a component of ``kind`` from a spec mapping with a ``type`` key.
+
+    ``base_dir`` (default: the current :func:`~simpower.functions.reference_folder`)
+    resolves relative references, also those inside nested tables (``multiple.tests``).
+    """
+    from .functions import current_reference_folder, reference_folder
+
+    if base_dir is None:
+        base_dir = current_reference_folder()
     spec = dict(spec)
     type_name = spec.pop("type", None)
     label = f"`{where}.type`" if where else "`type`"
@@ -120,7 +136,8 @@ def build(kind: str, spec: dict[str, Any], where: str = "", base_dir: str | Path
     except UnknownNameError as exc:
         raise UnknownNameError(f"{label}: {exc}") from None
     try:
-        return cls(**spec)
+        with reference_folder(base_dir):
+            return cls(**spec)
     except ParameterError as exc:
         if where:
             msg = str(exc)

@@ -11,7 +11,6 @@ number exactly.
 
 from __future__ import annotations
 
-import sys
 from pathlib import Path
 
 from ..errors import ParameterError
@@ -104,7 +103,9 @@ def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None,
     fm = formats or block.get("formats") or ("md", "html")
     if isinstance(fm, str):
         fm = [f.strip() for f in fm.split(",") if f.strip()]
-    return make_report(sf.scenario, outdir, seed=seed, command=reproduce_command(sys.argv[1:], seed), sweep=sweep,
+    from .common import argv_of
+
+    return make_report(sf.scenario, outdir, seed=seed, command=reproduce_command(argv_of(args), seed), sweep=sweep,
                        search=search, null=null, run=run, title=str(block.get("title", "")), x=x,
                        scenario_file=sf.path, settings=settings, formats=tuple(fm))
 
@@ -118,9 +119,12 @@ def main(args) -> int:
     sf = load_scenario(args)
     seed = seed_of(sf, args)
     block = read_block("report", sf.blocks.get("report"), {k: None for k in REPORT_FIELDS})
-    outdir = Path(args.out or block.get("out", "report"))
-    if sf.path is not None and not Path(outdir).is_absolute() and not args.out and "out" in block:
-        outdir = sf.path.parent / outdir
+    if getattr(args, "resumed_from", None) is not None:
+        outdir = Path(args.out) if args.out else None  # resuming writes only where its own command line says
+    else:
+        outdir = Path(args.out or block.get("out", "report"))
+        if sf.path is not None and not Path(outdir).is_absolute() and not args.out and "out" in block:
+            outdir = sf.path.parent / outdir
     results: dict = {}
     settings: dict = {"set": list(args.set)}
     grid = sblock = None
@@ -150,10 +154,13 @@ def main(args) -> int:
     if ns is not None:
         results["null"] = run_null(sf, args, seed, ns, grid)
         settings["null_check"] = ns
+    print(f"seed: {seed}")
+    if outdir is None:
+        print("report not written: give --out DIR to write it")
+        return 0
     paths = write_outputs(sf, args, seed, outdir, sweep=results.get("sweep"), search=results.get("search"),
                           null=results.get("null"), run=results.get("run"), x=results.get("x"),
                           formats=args.formats, settings=settings)
-    print(f"seed: {seed}")
     for k, p in paths.items():
         print(f"wrote {k}: {p}")
     return 0

@@ -86,7 +86,7 @@ def main(args) -> int:
         null_text = _null_check(sf, args, opts, fit_trouble, res.seed)
     except RunInterrupted:
         raise RunInterrupted(f"interrupted; {resume_hint(opts['store'])}.") from None
-    res.extra["command"] = command_line(res.seed)
+    res.extra["command"] = command_line(res.seed, args)
     if opts["store"]:
         res.extra["store"] = opts["store"]
     print(res)
