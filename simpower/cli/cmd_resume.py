@@ -16,7 +16,6 @@ A store is data: a plan naming user code (``module:function``,
 from __future__ import annotations
 
 import shlex
-import sys
 from types import SimpleNamespace
 
 from ..errors import ParameterError, StoreError
@@ -109,7 +108,6 @@ def main(args) -> int:
     if plan is None:
         raise refusal
     ns = command_namespace(plan, args, stored_seed)
-    print("resuming: simpower " + shlex.join(ns.resumed_from.argv), file=sys.stderr)
     again = f"simpower {plan['command']} {plan['scenario_file'] or 'SCENARIO.toml'} --store {args.store}"
     with no_user_code(f"a store is data; continue this run with the original command ({again}), which "
                       f"imports the code as its scenario file does."):

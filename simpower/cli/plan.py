@@ -134,8 +134,22 @@ def validate(plan: Any, where: str) -> dict:
             bad(f"option {name!r} is not one a {command} records (allowed: {', '.join(sorted(allowed))})")
         if not _is(allowed[name], value):
             bad(f"option {name!r} must be {allowed[name]}; got {value!r}")
+    for text in options.get("set", []):
+        code = _user_code([_assigned(text)])
+        if code is not None:
+            bad(f"`set {text}` names user code {code!r}, and resume never runs code named by a store")
     return {"version": VERSION, "command": command, "scenario": scenario,
             "scenario_file": plan.get("scenario_file", ""), "options": dict(options)}
+
+
+def _assigned(text: str) -> Any:
+    from ..errors import ParameterError
+    from ..scenario_files import parse_assignment
+
+    try:
+        return parse_assignment(text)[1]
+    except ParameterError:
+        return None
 
 
 def _user_code(data: Any) -> str | None:
