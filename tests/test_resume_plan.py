@@ -243,3 +243,29 @@ def test_a_sweep_resumes_from_its_plan_to_the_uninterrupted_table(tmp_path, monk
     cols = ["n", "analysis", "power", "mcse", "reps", "failures"]
     pd.testing.assert_frame_equal(full[cols], resumed[cols])
     assert np.all(resumed["reps"] == 200)
+
+
+def test_a_resumed_report_writes_its_report_only_where_the_resume_command_line_says(tmp_path, monkeypatch, capsys):
+    proj = tmp_path / "p"
+    proj.mkdir()
+    (proj / "s.toml").write_text(SCENARIO + '[null_check]\nenabled = false\n[report]\nout = "rep"\n')
+    assert _cli(["report", "s.toml", "--store", "r.sqlite", "--reps", "200", "-q", "--jobs", "1"], proj,
+                monkeypatch) == 0
+    assert (proj / "rep" / "report.md").is_file()
+    with open_store(proj / "r.sqlite") as st:
+        assert "out" not in st.plan["scenario"]["report"]
+    _drop_chunks(proj / "r.sqlite", 1)
+    (tmp_path / "out").mkdir()
+    before = _files(tmp_path)
+    # without --out: the store is completed, no report is written (not even to the file's [report] out)
+    assert _cli(["resume", str(proj / "r.sqlite"), "-q", "--jobs", "1"], tmp_path / "out", monkeypatch) == 0
+    assert "report not written" in capsys.readouterr().out
+    assert {f.split(":")[0] for f in _files(tmp_path) ^ before} <= {"p/r.sqlite"}
+    assert _cli(["resume", str(proj / "r.sqlite"), "-q", "--jobs", "1", "--out", "again"], tmp_path / "out",
+                monkeypatch) == 0
+    # the same report (results, figures' data, settings) but for the command line, scenario file and date
+    def body(path):
+        skip = ("simpower report", "| command", "| scenario file", "| date")
+        return [ln for ln in path.read_text().splitlines() if not ln.startswith(skip)]
+
+    assert body(tmp_path / "out" / "again" / "report.md") == body(proj / "rep" / "report.md")
