@@ -26,10 +26,10 @@ Examples
 >>> f = parse_formula("y ~ C(arm) * baseline - 1")
 >>> f.columns, f.intercept
 (['y', 'arm', 'baseline'], False)
->>> parse_formula("y ~ I(__import__('os').getcwd())")
+>>> parse_formula("y ~ np.log(x)")  # doctest: +ELLIPSIS
 Traceback (most recent call last):
 ...
-simpower.errors.ParameterError: `formula`: 'I(' at position 4 is not accepted (a call other than C(...)); ...
+simpower.errors.ParameterError: `formula`: '.' at position 6 is not accepted; ...
 """
 
 from __future__ import annotations

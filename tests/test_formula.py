@@ -18,7 +18,6 @@ import pandas as pd
 import pytest
 import statsmodels.formula.api as smf
 
-import simpower as sp
 from simpower.errors import ParameterError
 from simpower.formula import parse_formula
 from simpower.registry import build, lookup, names

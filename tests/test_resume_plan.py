@@ -11,7 +11,6 @@ tree before and after, so "writes nothing else" is checked, not assumed.
 from __future__ import annotations
 
 import json
-import os
 import sqlite3
 import sys
 from pathlib import Path

@@ -287,7 +287,8 @@ class GEE(Analysis):
 
     name = "gee"
     null_hypothesis = "the coefficient of `term` (default: arm, at the final visit for repeated data) is 0"
-    params = {"formula": FormulaText(optional=True), "term": Anything(), "cov_struct": Choice(("exchangeable", "independence")),
+    params = {"formula": FormulaText(optional=True), "term": Anything(),
+              "cov_struct": Choice(("exchangeable", "independence")),
               "cov_type": Choice(("robust", "bias_reduced")), "distribution": Choice(("normal", "t")),
               "maxiter": Int(low=1), "alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
     defaults = {"formula": None, "term": "arm", "cov_struct": "exchangeable", "cov_type": "robust",

@@ -52,7 +52,8 @@ def _failures(frames: list[tuple[str, pd.DataFrame]]) -> list[str]:
         total = int(t["failures"].sum())
         reps = int(t["reps"].sum())
         causes = "; ".join(sorted({c for c in t.get("failure_causes", pd.Series(dtype=str)) if c}))
-        lines.append(literal(f"{label}: {total} failed replicates of {reps}" + (f" (causes: {causes})" if causes else "")))
+        text = f"{label}: {total} failed replicates of {reps}" + (f" (causes: {causes})" if causes else "")
+        lines.append(literal(text))
     return lines
 
 
