@@ -141,8 +141,10 @@ def _plan(store: Path) -> dict:
     # an output path smuggled into the settings
     (lambda p, evil: {**p, "options": {**p["options"], "json": str(evil)}}, "option 'json' is not one a run records"),
     # a store path or a report folder inside the scenario data
-    (lambda p, evil: {**p, "scenario": {**p["scenario"], "store": {"path": str(evil)}}}, "`store`"),
+    (lambda p, evil: {**p, "scenario": {**p["scenario"], "store": {"path": str(evil)}}}, "a `[store]` block"),
     (lambda p, evil: {**p, "scenario": {**p["scenario"], "report": {"out": str(evil.parent)}}}, "`report.out`"),
+    (lambda p, evil: {**p, "scenario": {**p["scenario"], "execution": {"address": "tcp://10.0.0.9:8786"}}},
+     "`execution.address`"),
     # a setting of the wrong kind, an unknown field, another version
     (lambda p, evil: {**p, "options": {"reps": "400; rm -rf /"}}, "option 'reps' must be int"),
     (lambda p, evil: {**p, "cwd": str(evil.parent)}, "unknown field 'cwd'"),
@@ -247,12 +249,14 @@ def test_a_sweep_resumes_from_its_plan_to_the_uninterrupted_table(tmp_path, monk
 def test_a_resumed_report_writes_its_report_only_where_the_resume_command_line_says(tmp_path, monkeypatch, capsys):
     proj = tmp_path / "p"
     proj.mkdir()
-    (proj / "s.toml").write_text(SCENARIO + '[null_check]\nenabled = false\n[report]\nout = "rep"\n')
+    (proj / "s.toml").write_text(SCENARIO + '[null_check]\nenabled = false\n[report]\nout = "rep"\ntitle = "T"\n'
+                                 '[execution]\nbackend = "serial"\n')
     assert _cli(["report", "s.toml", "--store", "r.sqlite", "--reps", "200", "-q", "--jobs", "1"], proj,
                 monkeypatch) == 0
     assert (proj / "rep" / "report.md").is_file()
     with open_store(proj / "r.sqlite") as st:
-        assert "out" not in st.plan["scenario"]["report"]
+        plan = st.plan["scenario"]
+    assert plan["report"] == {"title": "T"} and "execution" not in plan
     _drop_chunks(proj / "r.sqlite", 1)
     (tmp_path / "out").mkdir()
     before = _files(tmp_path)

@@ -9,9 +9,10 @@ command line or a folder to run it in. The plan is JSON::
      "options": {"reps": 4000, "seed": 7, "set": ["n=80"], ...}}
 
 Recorded: the scenario file's data without the fields that name places to
-write to or connect to (``[store]``, ``[report] out``, ``[execution] address``)
-and the command's options that shape the numbers (an allow-list per
-command). Never recorded: output paths (``--json``, ``--csv``, ``--out``...),
+write to or connect to or the executor (``[store]``; of ``[report]`` only
+``title`` and ``formats``, of ``[execution]`` only ``timeout`` and
+``summaries_only`` are kept) and the command's options that shape the
+numbers (an allow-list per command). Never recorded: output paths (``--json``, ``--csv``, ``--out``...),
 ``--store``, ``--jobs``, the working folder. :func:`validate` checks a plan
 read back from a store against the same allow-lists; ``simpower resume`` then
 rebuilds the run from it with user code refused
@@ -49,8 +50,10 @@ OUTPUTS: dict[str, tuple[str, ...]] = {
     "samplesize": ("csv", "json", "plot", "report"),
     "report": ("out", "formats"),
 }
-#: fields of the scenario data that name a place to write to or connect to: never recorded
-PLACES = {"store": None, "report": "out", "execution": "address"}
+#: the fields a plan keeps of the scenario's blocks that say where and how to run (the rest name
+#: places to write to or connect to -- ``[store]``, ``[report] out``, ``[execution] address`` -- or
+#: the executor, which never changes the numbers)
+BLOCK_FIELDS = {"store": (), "report": ("title", "formats"), "execution": ("timeout", "summaries_only")}
 
 
 def _is(kind: str, v: Any) -> bool:
@@ -67,11 +70,13 @@ def _is(kind: str, v: Any) -> bool:
 
 def _without_places(raw: dict) -> dict:
     data = json.loads(json.dumps(raw, default=str))  # a deep copy, as JSON data (TOML dates become text)
-    for block, key in PLACES.items():
-        if key is None:
-            data.pop(block, None)
-        elif isinstance(data.get(block), dict):
-            data[block].pop(key, None)
+    for block, keep in BLOCK_FIELDS.items():
+        if block in data:
+            kept = {k: v for k, v in data[block].items() if k in keep} if isinstance(data[block], dict) else {}
+            if kept:
+                data[block] = kept
+            else:
+                del data[block]
     return data
 
 
@@ -116,10 +121,17 @@ def validate(plan: Any, where: str) -> dict:
     scenario = plan.get("scenario")
     if not isinstance(scenario, dict):
         bad("the scenario is not a table")
-    for block, key in PLACES.items():
-        if block in scenario and (key is None or (isinstance(scenario[block], dict) and key in scenario[block])):
-            bad(f"the scenario names a place to write to or connect to (`{block}{'.' + key if key else ''}`), "
-                f"which a plan never records")
+    for block, keep in BLOCK_FIELDS.items():
+        if block not in scenario:
+            continue
+        if not keep:
+            bad(f"the scenario holds a `[{block}]` block, which a plan never records")
+        if not isinstance(scenario[block], dict):
+            bad(f"`{block}` is not a table")
+        extra = [k for k in scenario[block] if k not in keep]
+        if extra:
+            bad(f"the scenario holds `{block}.{extra[0]}`, which a plan never records (it keeps "
+                f"{', '.join(f'`{block}.{k}`' for k in keep)})")
     code = _user_code(scenario)
     if code is not None:
         bad(f"the scenario names user code {code!r}, and resume never runs code named by a store")
