@@ -247,6 +247,20 @@ def parse_formula(text, field: str = "formula") -> Formula:
     return _Parser(text.strip(), field).formula()
 
 
+def require_columns(text: str, columns, who: str) -> Formula:
+    """The parsed formula, or ValueError when a column it names is not among ``columns`` (the data's).
+
+    Called before a formula engine sees the text, so an unknown name is never looked up
+    anywhere but in the data.
+    """
+    f = parse_formula(text)
+    missing = [c for c in f.columns if c not in columns]
+    if missing:
+        raise ValueError(f"{who}: column {missing[0]!r} of the formula is not in the data "
+                         f"(columns: {sorted(map(str, columns))})")
+    return f
+
+
 @dataclass(frozen=True)
 class FormulaText(Anything):
     """Parameter constraint: a formula of the accepted grammar (None too when ``optional``).

@@ -136,3 +136,14 @@ def test_malformed_formulas_get_one_line_naming_the_field(text, message):
     with pytest.raises(ParameterError, match=message) as err:
         parse_formula(text, "analyses.m.formula")
     assert str(err.value).startswith("`analyses.m.formula`") and "\n" not in str(err.value)
+
+
+@pytest.mark.parametrize("analysis", ["gee", "mixed_model", "ols"])
+def test_a_name_that_is_not_a_column_is_refused_before_the_formula_engine(analysis):
+    # a formula engine would look an unknown name up in Python's namespaces (here: a module);
+    # the analysis names the missing column instead
+    an = lookup("analysis", analysis)(formula="y ~ arm + np", term="arm")
+    rng = np.random.default_rng(3)
+    data = {"y": rng.normal(size=24), "arm": np.repeat([0, 1], 12), "cluster": np.repeat(np.arange(6), 4)}
+    with pytest.raises(ValueError, match=f"{analysis}: column 'np' of the formula is not in the data"):
+        an(data)

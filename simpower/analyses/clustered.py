@@ -23,7 +23,7 @@ from scipy import stats
 
 from .._validation import Anything, Bool, Choice, Int
 from ..errors import ParameterError
-from ..formula import FormulaText
+from ..formula import FormulaText, require_columns
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
 from .ttests import p_from_t, p_from_z
 
@@ -318,6 +318,7 @@ class GEE(Analysis):
             model = sm.GEE(df["y"].astype(float), X, groups=df[group_col].to_numpy(), family=family,
                            cov_struct=self._structure())
         else:
+            require_columns(self.formula, df.columns, "gee")
             model = sm.GEE.from_formula(self.formula, groups=group_col, data=df, family=family,
                                         cov_struct=self._structure())
         res = model.fit(maxiter=self.maxiter, cov_type=self.cov_type)

@@ -61,7 +61,7 @@ from scipy import stats
 
 from .._validation import Anything, Choice
 from ..errors import ParameterError
-from ..formula import FormulaText, parse_formula
+from ..formula import FormulaText, require_columns
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
 
 DF_METHODS = ("wald", "between-within", "satterthwaite")
@@ -535,7 +535,7 @@ class MixedModel(Analysis):
         frame = pd.DataFrame({k: np.asarray(v) for k, v in dict(data).items()}) if not isinstance(data, pd.DataFrame) else data
         if self.groups not in frame:
             raise ValueError(f"mixed_model needs a {self.groups!r} column (the `groups` parameter)")
-        outcome = parse_formula(self.formula).outcome
+        outcome = require_columns(self.formula, frame.columns, "mixed_model").outcome
         if outcome in frame:
             frame = frame[np.isfinite(frame[outcome].to_numpy(float))]
         model = smf.mixedlm(self.formula, frame, groups=frame[self.groups])
