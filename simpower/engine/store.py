@@ -19,9 +19,10 @@ size changed, naming what changed. Because a chunk's numbers depend only on
 (seed, point key, chunk index, chunk size) (see :mod:`simpower.engine.chunk`),
 a resumed run equals an uninterrupted one bit for bit.
 
-Tables: ``meta(key, value)`` (format, version, provenance, the sync setting and,
-for a command-line run, the data-only plan ``simpower resume`` rebuilds the run from); ``points(point, fingerprint, seed, chunk_size,
-reps, analyses, scenario, updated_at)``; ``chunks(point, chunk, size, seconds,
+Tables: ``meta(key, value)`` (format, version, provenance, the sync setting
+and, for a command-line run, the data-only plan ``simpower resume`` rebuilds
+the run from); ``points(point, fingerprint, seed, chunk_size, reps, analyses,
+scenario, updated_at)``; ``chunks(point, chunk, size, seconds,
 started_at, finished_at, worker, timeout_enforced)``; ``arrays(point, chunk,
 analysis, path, hypotheses, layout, crc32, data)``; ``causes(point, chunk,
 code, cause, message)``. (Format version 1 kept one ``arrays`` row per field
