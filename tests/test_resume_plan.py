@@ -272,3 +272,14 @@ def test_a_resumed_report_writes_its_report_only_where_the_resume_command_line_s
         return [ln for ln in path.read_text().splitlines() if not ln.startswith(skip)]
 
     assert body(tmp_path / "out" / "again" / "report.md") == body(proj / "rep" / "report.md")
+
+
+def test_the_interruption_hint_offers_resume_only_without_user_code(tmp_path):
+    from simpower.cli.common import resume_hint
+    from simpower.scenario_files import loads
+
+    (tmp_path / "m.py").write_text("def p(data):\n    return 0.5\n")
+    plain = loads(SCENARIO, path=tmp_path / "s.toml")
+    coded = loads(SCENARIO.replace('type = "t_test"', 'type = "m.py:p"'), path=tmp_path / "s.toml")
+    assert resume_hint("r.sqlite", plain).endswith("run the same command again or: simpower resume r.sqlite")
+    assert resume_hint("r.sqlite", coded).endswith("run the same command again")

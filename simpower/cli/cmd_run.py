@@ -85,7 +85,7 @@ def main(args) -> int:
         res = _simulate(sf, args, opts, fit_trouble)
         null_text = _null_check(sf, args, opts, fit_trouble, res.seed)
     except RunInterrupted:
-        raise RunInterrupted(f"interrupted; {resume_hint(opts['store'])}.") from None
+        raise RunInterrupted(f"interrupted; {resume_hint(opts['store'], sf)}.") from None
     res.extra["command"] = command_line(res.seed, args)
     if opts["store"]:
         res.extra["store"] = opts["store"]

@@ -133,10 +133,14 @@ def engine_options(sf: ScenarioFile, args, fingerprint: str | None = None) -> di
     }
 
 
-def resume_hint(store: str | None) -> str:
-    """How to resume, for messages after an interruption."""
+def resume_hint(store: str | None, sf: ScenarioFile | None = None) -> str:
+    """How to resume, for messages after an interruption (``simpower resume`` only without user code)."""
     if not store:
         return "nothing was kept: add --store to make a run resumable"
+    from .plan import names_user_code
+
+    if sf is not None and names_user_code(sf.raw):
+        return f"finished chunks are in {store}; to resume, run the same command again"
     return f"finished chunks are in {store}; to resume, run the same command again or: simpower resume {store}"
 
 

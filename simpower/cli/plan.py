@@ -132,7 +132,7 @@ def validate(plan: Any, where: str) -> dict:
         if extra:
             bad(f"the scenario holds `{block}.{extra[0]}`, which a plan never records (it keeps "
                 f"{', '.join(f'`{block}.{k}`' for k in keep)})")
-    code = _user_code(scenario)
+    code = names_user_code(scenario)
     if code is not None:
         bad(f"the scenario names user code {code!r}, and resume never runs code named by a store")
     if not isinstance(plan.get("scenario_file", ""), str):
@@ -147,7 +147,7 @@ def validate(plan: Any, where: str) -> dict:
         if not _is(allowed[name], value):
             bad(f"option {name!r} must be {allowed[name]}; got {value!r}")
     for text in options.get("set", []):
-        code = _user_code([_assigned(text)])
+        code = names_user_code([_assigned(text)])
         if code is not None:
             bad(f"`set {text}` names user code {code!r}, and resume never runs code named by a store")
     return {"version": VERSION, "command": command, "scenario": scenario,
@@ -164,7 +164,7 @@ def _assigned(text: str) -> Any:
         return None
 
 
-def _user_code(data: Any) -> str | None:
+def names_user_code(data: Any) -> str | None:
     """The first ``type = "module:function"`` (or file) reference anywhere in ``data``, else None."""
     from ..registry import is_reference
 
@@ -177,7 +177,7 @@ def _user_code(data: Any) -> str | None:
     else:
         return None
     for v in items:
-        found = _user_code(v)
+        found = names_user_code(v)
         if found is not None:
             return found
     return None
