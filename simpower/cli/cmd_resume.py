@@ -108,7 +108,7 @@ def main(args) -> int:
     if plan is None:
         raise refusal
     ns = command_namespace(plan, args, stored_seed)
-    again = f"simpower {plan['command']} {plan['scenario_file'] or 'SCENARIO.toml'} --store {args.store}"
+    again = shlex.join(reproduce_argv({**plan, "options": {}}, args.store, prog=True))
     with no_user_code(f"a store is data; continue this run with the original command ({again}), which "
                       f"imports the code as its scenario file does."):
         return ns.func(ns)

@@ -23,6 +23,7 @@ own command line only.
 from __future__ import annotations
 
 import json
+import shlex
 from typing import Any
 
 from ..errors import StoreError
@@ -100,7 +101,7 @@ def validate(plan: Any, where: str) -> dict:
     def bad(what: str):
         again = "the original command"
         if isinstance(plan, dict) and plan.get("command") in COMMANDS and isinstance(plan.get("scenario_file"), str):
-            again += f" ({' '.join(reproduce_argv({**plan, 'options': {}}, where, prog=True))})"
+            again += f" ({shlex.join(reproduce_argv({**plan, 'options': {}}, where, prog=True))})"
         raise StoreError(f"{where}: the recorded plan is refused: {what}. A store is data: re-run {again} to "
                          f"continue it.")
 
