@@ -37,6 +37,7 @@ from __future__ import annotations
 import keyword
 import re
 from dataclasses import dataclass, field
+from functools import lru_cache
 
 from ._validation import Anything
 from .errors import ParameterError
@@ -244,7 +245,12 @@ def parse_formula(text, field: str = "formula") -> Formula:
     """Parse ``outcome ~ terms`` of the accepted grammar, or raise ParameterError naming ``field``."""
     if not isinstance(text, str) or "~" not in text:
         raise ParameterError(f"`{field}` must be a formula 'outcome ~ terms', {HINT}; got {text!r}.")
-    return _Parser(text.strip(), field).formula()
+    return _parse(text.strip(), field)
+
+
+@lru_cache(maxsize=256)
+def _parse(text: str, field: str) -> Formula:   # analyses parse per replicate: keep the result
+    return _Parser(text, field).formula()
 
 
 def require_columns(text: str, columns, who: str) -> Formula:
