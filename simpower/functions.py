@@ -5,6 +5,18 @@ so it has parameters (for sweeps), a spec (for the fingerprint and reports), and
 pickles by *reference* when it came from ``module:function`` or
 ``path/file.py:function``, so worker processes re-import it rather than rely on
 pickling code.
+
+A reference names code, and resolving it runs that code, as any Python import
+does. Two settings of the current context govern references (both read by
+:func:`simpower.registry.resolve_reference`, the one place they are resolved):
+
+* :func:`reference_folder` -- the folder a relative ``path/file.py`` is taken
+  from: the scenario file's, set while a scenario file is loaded, so a
+  reference means the same file wherever it sits (``[process]``,
+  ``[analyses.x]``, inside ``multiple.tests``, in ``--set``) and whatever the
+  current folder;
+* :func:`no_user_code` -- refuse every reference, e.g. while rebuilding a run
+  from a run store, which is data and never names code to run.
 """
 
 from __future__ import annotations
@@ -12,13 +24,14 @@ from __future__ import annotations
 import hashlib
 import inspect
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Iterator
 
 from .analyses.base import Analysis, as_test_result
 from .components import to_plain
 from .errors import ParameterError, nearest
 from .processes.base import Process
-from .registry import register_wrapper, resolve_reference
+from .registry import (check_code_allowed, current_reference_folder, no_user_code,  # noqa: F401 (public here)
+                       reference_folder, register_wrapper, resolve_reference)
 
 
 def _source_hash(fn: Callable) -> str:

@@ -17,8 +17,10 @@ import importlib
 import importlib.util
 import pkgutil
 import sys
+from contextlib import contextmanager
+from contextvars import ContextVar
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Iterator
 
 from .errors import ParameterError, UnknownNameError, nearest
 
@@ -34,6 +36,47 @@ BUILTIN_PACKAGES = ("simpower.processes", "simpower.analyses")
 BUILTIN_MODULES = ("simpower.functions",)
 #: prefix of the private module names under which ``path/file.py`` references are loaded
 USER_MODULE_PREFIX = "simpower_user_"
+
+
+# -- where references resolve, and whether user code may run here ------------------------
+_FOLDER: ContextVar[str | None] = ContextVar("simpower_reference_folder", default=None)
+_NO_CODE: ContextVar[str | None] = ContextVar("simpower_no_user_code", default=None)
+
+
+@contextmanager
+def reference_folder(folder: str | Path | None) -> Iterator[None]:
+    """Resolve relative ``path/file.py:function`` references against ``folder`` inside the block."""
+    token = _FOLDER.set(None if folder is None else str(folder))
+    try:
+        yield
+    finally:
+        _FOLDER.reset(token)
+
+
+def current_reference_folder() -> str | None:
+    """The folder set by the innermost :func:`reference_folder` (None: the current folder)."""
+    return _FOLDER.get()
+
+
+@contextmanager
+def no_user_code(reason: str) -> Iterator[None]:
+    """Refuse every ``module:function`` / ``path/file.py:function`` reference inside the block.
+
+    ``reason`` ends the one-line error, e.g. how else to reach the same result.
+    """
+    token = _NO_CODE.set(reason)
+    try:
+        yield
+    finally:
+        _NO_CODE.reset(token)
+
+
+def check_code_allowed(ref: str) -> None:
+    """Raise ParameterError when references are refused here (see :func:`no_user_code`)."""
+    reason = _NO_CODE.get()
+    if reason is not None:
+        raise ParameterError(f"the scenario names user code {ref!r}, which is not run from here: {reason}")
+
 
 
 def set_component_base(cls: type) -> None:
@@ -98,10 +141,16 @@ def is_reference(text: str) -> bool:
 def resolve_reference(ref: str, base_dir: str | Path | None = None) -> Callable[..., Any]:
     """Import ``module:attr`` or ``path/to/file.py:attr`` and return the attribute.
 
-    A file path is taken relative to ``base_dir`` (the scenario file's folder).
-    The file's module is loaded under a private name derived from its absolute
-    path, so workers can load it again from the same reference.
+    A file path is taken relative to ``base_dir``, else to the folder of the
+    scenario file being loaded (:func:`simpower.functions.reference_folder`),
+    else to the current folder. The file's module is loaded under a private
+    name derived from its absolute path, so workers can load it again from the
+    same reference. Importing runs the module's code, as any import does;
+    inside :func:`simpower.functions.no_user_code` every reference is refused.
     """
+    check_code_allowed(ref)
+    if base_dir is None:
+        base_dir = current_reference_folder()
     target, _, attr = ref.rpartition(":")
     if not target or not attr:
         raise ParameterError(f"reference {ref!r} must look like 'module:function' or 'path/file.py:function'.")
@@ -139,7 +188,13 @@ def resolve_reference(ref: str, base_dir: str | Path | None = None) -> Callable[
 
 
 def build(kind: str, spec: dict[str, Any], where: str = "", base_dir: str | Path | None = None):
-    """Build a component of ``kind`` from a spec mapping with a ``type`` key."""
+    """Build a component of ``kind`` from a spec mapping with a ``type`` key.
+
+    ``base_dir`` (default: the current :func:`~simpower.functions.reference_folder`)
+    resolves relative references, also those inside nested tables (``multiple.tests``).
+    """
+    if base_dir is None:
+        base_dir = current_reference_folder()
     spec = dict(spec)
     type_name = spec.pop("type", None)
     label = f"`{where}.type`" if where else "`type`"
@@ -152,7 +207,7 @@ def build(kind: str, spec: dict[str, Any], where: str = "", base_dir: str | Path
         if base is not None and isinstance(obj, type) and issubclass(obj, base):
             if obj.kind != kind:
                 raise ParameterError(f"{label} = {type_name!r} is a {obj.kind} class; give a {kind} here.")
-            component = _construct(obj, spec, where)
+            component = _construct(obj, spec, where, base_dir)
             component._set_reference(type_name, base_dir)
             return component
         return wrap_callable(kind, obj, params=spec, ref=type_name, base_dir=base_dir)
@@ -160,13 +215,15 @@ def build(kind: str, spec: dict[str, Any], where: str = "", base_dir: str | Path
         cls = lookup(kind, type_name)
     except UnknownNameError as exc:
         raise UnknownNameError(f"{label}: {exc}") from None
-    return _construct(cls, spec, where)
+    return _construct(cls, spec, where, base_dir)
 
 
-def _construct(cls: type, spec: dict[str, Any], where: str):
-    """``cls(**spec)``, with a parameter error's field prefixed by ``where`` (e.g. `process.n`)."""
+def _construct(cls: type, spec: dict[str, Any], where: str, base_dir=None):
+    """``cls(**spec)``, with a parameter error's field prefixed by ``where`` (e.g. `process.n`);
+    references in nested tables resolve against ``base_dir``."""
     try:
-        return cls(**spec)
+        with reference_folder(base_dir):
+            return cls(**spec)
     except ParameterError as exc:
         if where:
             msg = str(exc)

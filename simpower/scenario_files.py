@@ -17,7 +17,9 @@ and run settings::
     type = "t_test"
 
 User code is referenced as ``type = "module:function"`` or
-``type = "path/file.py:function"`` (relative to the file's folder). Blocks for
+``type = "path/file.py:function"`` (relative to the file's folder, wherever the
+reference sits, also inside ``multiple.tests``); loading such a file imports and
+so runs that code, like any Python import. Blocks for
 later steps (``[sweep]``, ``[search]``, ...) are kept as data for the commands
 that read them. See docs/scenario-files.md for every block and field.
 """
@@ -83,8 +85,26 @@ def loads(text: str, path: str | Path | None = None, overrides: dict[str, Any] |
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ScenarioFileError(f"{where}: TOML syntax error: {exc}") from None
+    from .functions import reference_folder
+
     try:
-        return _build(raw, text, where, base_dir, overrides or {}, path)
+        with reference_folder(base_dir):
+            return _build(raw, text, where, base_dir, overrides or {}, path)
+    except ScenarioFileError:
+        raise
+    except SimpowerError as exc:
+        raise ScenarioFileError(f"{where}: {exc}") from None
+
+
+def from_data(raw: Any, where: str, overrides: dict[str, Any] | None = None) -> ScenarioFile:
+    """Validate already-parsed scenario data (e.g. the plan recorded in a run store) as :func:`loads` does.
+
+    There is no file: ``path`` is None and nothing is relative to a folder.
+    """
+    if not isinstance(raw, dict):
+        raise ScenarioFileError(f"{where}: the scenario must be a table of fields; got {type(raw).__name__}.")
+    try:
+        return _build(raw, "", where, None, overrides or {}, None)
     except ScenarioFileError:
         raise
     except SimpowerError as exc:

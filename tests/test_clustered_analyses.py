@@ -221,9 +221,10 @@ def test_gee_bias_reduced_with_t_reference():
 
 
 def test_gee_fit_warnings_reach_the_engine():
-    # a rank-deficient mean model makes statsmodels warn; the engine must record it per replicate
+    # a rank-deficient mean model (arm twice: as a number and as a category) makes statsmodels
+    # warn; the engine must record it per replicate
     proc = ClusterTrial(clusters=4, cluster_size=5, icc=0.1, effect=0.5)
-    sc = sp.Scenario(proc, analyses={"bad": GEE(formula="y ~ arm + I(2 * arm)"), "good": GEE()})
+    sc = sp.Scenario(proc, analyses={"bad": GEE(formula="y ~ arm + C(arm)"), "good": GEE()})
     res = sp.run(sc, reps=6, seed=2, n_jobs=1)
     bad = res.records["bad"]
     assert all(c.startswith("warning:") for c in bad.causes) and np.all(bad.status > 0)

@@ -117,3 +117,78 @@ def test_report_checks_the_plot_axis_before_running(tmp_path, capsys):
     captured = capsys.readouterr()
     assert rc == 2 and "`[sweep] x` 'effect' is not a swept parameter" in captured.err
     assert "sweep:" not in captured.out and not (tmp_path / "out" / "report.md").exists()
+
+
+# -- user text is text -------------------------------------------------------------------------
+NASTY_NAME = "Trial <b>bold</b> *star* _under_ [link](http://example.org) & `tick` \\ | ~~x~~"
+NASTY_DESC = "# not a heading <script>alert(1)</script>\n- not a list\n1. not numbered"
+NASTY_LABEL = "t<i>1</i>*`"
+
+
+class _Elements(__import__("html.parser").parser.HTMLParser):
+    """(tag, text) of every element of an HTML text, and the set of tags (stdlib parser)."""
+
+    def __init__(self, text):
+        super().__init__()
+        self.stack, self.found, self.tags = [], [], set()
+        self.feed(text)
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.add(tag)
+        self.stack.append([tag, ""])
+
+    def handle_endtag(self, tag):
+        while self.stack:
+            t, text = self.stack.pop()
+            self.found.append((t, text))
+            if self.stack:
+                self.stack[-1][1] += text
+            if t == tag:
+                break
+
+    def handle_data(self, data):
+        if self.stack:
+            self.stack[-1][1] += data
+
+    def texts(self, tag):
+        return [t for g, t in self.found if g == tag]
+
+
+@pytest.fixture(scope="module")
+def nasty_report(tmp_path_factory):
+    sc = sp.Scenario(sp.NormalTwoArm(n=10, effect=0.5), analyses={NASTY_LABEL: sp.TTest()}, name=NASTY_NAME,
+                     description=NASTY_DESC)
+    res = sp.run(sc, reps=50, seed=1, n_jobs=1)
+    out = tmp_path_factory.mktemp("nasty")
+    return make_report(sc, out, seed=1, command="simpower run x.toml", run=res)
+
+
+def _check_rendered(html_text):
+    doc = _Elements(html_text)
+    assert not {"b", "i", "script", "ol"} & doc.tags            # no tag from user text, no numbered list
+    assert doc.texts("h1") == [NASTY_NAME]
+    assert " ".join(NASTY_DESC.splitlines()) in doc.texts("p")
+    assert any(NASTY_LABEL in c for c in doc.texts("code"))
+    assert not any("not a heading" in h for g in ("h1", "h2", "h3") for h in doc.texts(g))
+    assert not any(t.startswith("not a list") for t in doc.texts("li"))
+
+
+def test_user_text_is_text_in_the_html_report(nasty_report):
+    _check_rendered(nasty_report["html"].read_text())
+
+
+def test_user_text_is_text_in_the_markdown_report(nasty_report):
+    # rendered by a CommonMark implementation (markdown-it-py, CommonMark spec 0.31 section 2.4
+    # "Backslash escapes"): the name, description and label come out as the same text, no tags
+    markdown_it = pytest.importorskip("markdown_it")
+    md = nasty_report["md"].read_text()
+    _check_rendered(markdown_it.MarkdownIt("commonmark").render(md))
+
+
+def test_markdown_escapes_without_a_renderer(nasty_report):
+    # CommonMark (spec 0.31, section 2.4): a backslash before ASCII punctuation makes it literal, so
+    # every character that could open markup in user text is preceded by one
+    md = nasty_report["md"].read_text()
+    title = md.splitlines()[0]
+    assert title == r"# Trial \<b\>bold\</b\> \*star\* \_under\_ \[link\](http://example.org) \& \`tick\` \\ \| \~\~x\~\~"
+    assert r"\# not a heading \<script\>alert(1)\</script\> - not a list 1. not numbered" in md

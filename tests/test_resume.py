@@ -146,7 +146,9 @@ def test_ctrl_c_saves_finished_chunks_and_says_how_to_resume(project, monkeypatc
     proc.send_signal(signal.SIGINT)
     out, err = proc.communicate(timeout=30)
     assert proc.returncode == 130, err
-    assert "simpower resume int.sqlite" in err and len(err.strip().splitlines()) == 1
+    # the scenario names user code, which `simpower resume` does not run: the hint is the command itself
+    assert "to resume, run the same command again." in err and "simpower resume" not in err
+    assert len(err.strip().splitlines()) == 1
     with open_store(store) as st:
         kept = len(st.done_chunks())
     assert 4 <= kept < CHUNKS
@@ -155,17 +157,29 @@ def test_ctrl_c_saves_finished_chunks_and_says_how_to_resume(project, monkeypatc
     here = os.getcwd()
     try:
         os.chdir(project)
-        monkeypatch.setattr(sys, "argv", ["simpower", "resume", "int.sqlite"])
-        assert main(["resume", "int.sqlite"]) == 0
+        # the scenario names user code (helpers.py): a store is data, so `resume` refuses in one line
+        # and writes nothing; the original command continues the run instead
+        before = (store.stat().st_size, store.stat().st_mtime_ns)
+        assert main(["resume", "int.sqlite"]) == 2
+        err = capsys.readouterr().err.strip()
+        assert len(err.splitlines()) == 1 and "names user code 'helpers.py:" in err
+        assert "simpower run s.toml --store int.sqlite" in err
+        with open_store(store) as st:
+            assert len(st.done_chunks()) == kept
+        assert (store.stat().st_size, store.stat().st_mtime_ns) == before
+        monkeypatch.setattr(sys, "argv", ["simpower", "run", "s.toml", "--store", "int.sqlite", "-q", "--jobs", "1"])
+        assert main(["run", "s.toml", "--store", "int.sqlite", "-q", "--jobs", "1"]) == 0
     finally:
         os.chdir(here)
     with open_store(store) as st:
         _assert_identical(st.records(), _reference(project))
-        recorded = st.command
-    # the reproduce line and the recorded command are the original run command, not "resume"
+        plan = st.plan
     printed = capsys.readouterr().out
     assert "To reproduce these numbers exactly: simpower run s.toml --store int.sqlite" in printed
-    assert recorded[:2] == ["run", "s.toml"]
+    # the store keeps a data-only plan: no command line, no folder
+    assert plan["command"] == "run" and plan["scenario"]["process"]["type"] == "helpers.py:slow_two_arm"
+    with open_store(store) as st:
+        assert not {"command", "cwd"} & set(st.meta())
 
 
 def test_interrupt_in_python_keeps_chunks(project, monkeypatch):

@@ -156,3 +156,55 @@ def test_a_file_that_is_not_utf8_names_the_file(tmp_path):
     bad.write_bytes("name = 'caf\u00e9'\n".encode("latin-1"))
     with pytest.raises(ScenarioFileError, match=r"latin.toml: not UTF-8 text"):
         load(bad)
+
+
+def test_references_resolve_against_the_scenario_file_wherever_they_sit(tmp_path, monkeypatch):
+    # a reference inside multiple.tests (a nested table the analysis builds itself) and one given
+    # by --set both mean the file beside the scenario, whatever the current folder
+    import pickle
+    from types import SimpleNamespace
+
+    from scipy import stats
+
+    from simpower.cli.common import load_scenario
+
+    proj = tmp_path / "proj"
+    (proj / "code").mkdir(parents=True)
+    (proj / "code" / "tests_here.py").write_text(textwrap.dedent("""
+        from scipy import stats
+
+        def welch(data):
+            y, a = data["y"], data["arm"]
+            return stats.ttest_ind(y[a == 1], y[a == 0], equal_var=False).pvalue
+
+        def student(data):
+            y, a = data["y"], data["arm"]
+            return stats.ttest_ind(y[a == 1], y[a == 0]).pvalue
+    """))
+    (proj / "s.toml").write_text(textwrap.dedent("""
+        seed = 3
+        [process]
+        type = "normal_two_arm"
+        n = 12
+        effect = 0.5
+        [analysis]
+        type = "multiple"
+        method = "none"
+        tests = [{type = "code/tests_here.py:welch"}, {type = "t_test"}]
+    """))
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)            # nothing named code/ here
+    args = SimpleNamespace(scenario=str(proj / "s.toml"), reps=None, seed=None, jobs=None,
+                           set=['analysis.tests=[{type = "code/tests_here.py:student"}, {type = "t_test"}]'])
+    for changes in ([], args.set):
+        sf = load_scenario(SimpleNamespace(**{**vars(args), "set": changes}))
+        multiple = sf.scenario.analyses["multiple"]
+        user = multiple.tests[0]
+        assert user.label.startswith("code/tests_here.py:")
+        data = sf.scenario.process(np.random.default_rng(0))
+        y, a = np.asarray(data["y"]), np.asarray(data["arm"])
+        # the user test gives scipy's p-value (Welch 1947 / Student), and survives a trip to a worker
+        ref = stats.ttest_ind(y[a == 1], y[a == 0], equal_var=bool(changes)).pvalue
+        assert user(data).pvalue == pytest.approx(ref, rel=1e-12)
+        assert pickle.loads(pickle.dumps(user))(data).pvalue == pytest.approx(ref, rel=1e-12)

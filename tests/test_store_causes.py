@@ -118,9 +118,11 @@ def _as_unprivileged(fn):
     return out
 
 
-def _open_message(path, mode, command=None):
+def _open_message(path, mode, write=False):
     try:
-        with RunStore(path, mode=mode, command=command) as st:
+        with RunStore(path, mode=mode) as st:
+            if write:  # a first write: the data-only plan a command-line run records
+                st.record_plan({"command": "run"})
             return ["ok", len(st.replicates())]
     except StoreError as exc:
         return ["error", str(exc)]
@@ -151,7 +153,7 @@ def test_read_only_folder_and_unreadable_file_are_named_with_their_fix():
         # a read-only file in a writable folder: SQLite opens it read-only and refuses the first write
         os.chmod(folder, 0o777)
         os.chmod(path, 0o444)
-        kind, msg = _as_unprivileged(lambda: _open_message(path, "a", command=["run"]))
+        kind, msg = _as_unprivileged(lambda: _open_message(path, "a", write=True))
         assert kind == "error" and msg.startswith(f"{path}: permission denied on {path}"), msg
         _no_afresh(msg)
     finally:

@@ -23,6 +23,7 @@ from scipy import stats
 
 from .._validation import Anything, Bool, Choice, Int
 from ..errors import ParameterError
+from ..formula import FormulaText, require_columns
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
 from .ttests import p_from_t, p_from_z
 
@@ -254,7 +255,9 @@ class GEE(Analysis):
     Parameters
     ----------
     formula : str, optional
-        A patsy formula for the mean model, e.g. ``"y ~ arm + baseline"``.
+        The mean model, e.g. ``"y ~ arm + baseline"``, in the grammar of
+        :mod:`simpower.formula` (checked at construction: column names,
+        ``C(column)``, ``a:b``, ``a*b``; nothing that runs code).
         Default: ``y ~ arm`` for cluster data; for repeated data (a ``visit``
         column) visit as a factor crossed with arm, with the final visit as
         the reference level, so the ``arm`` coefficient is the treatment
@@ -284,15 +287,14 @@ class GEE(Analysis):
 
     name = "gee"
     null_hypothesis = "the coefficient of `term` (default: arm, at the final visit for repeated data) is 0"
-    params = {"formula": Anything(), "term": Anything(), "cov_struct": Choice(("exchangeable", "independence")),
+    params = {"formula": FormulaText(optional=True), "term": Anything(),
+              "cov_struct": Choice(("exchangeable", "independence")),
               "cov_type": Choice(("robust", "bias_reduced")), "distribution": Choice(("normal", "t")),
               "maxiter": Int(low=1), "alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
     defaults = {"formula": None, "term": "arm", "cov_struct": "exchangeable", "cov_type": "robust",
                 "distribution": "normal", "maxiter": 60, "alternative": "two-sided", "ci_level": 0.95}
 
     def _check(self):
-        if self.formula is not None and (not isinstance(self.formula, str) or "~" not in self.formula):
-            raise ParameterError(f"`formula` must be a formula string like 'y ~ arm'; got {self.formula!r}.")
         if not isinstance(self.term, str) or not self.term:
             raise ParameterError(f"`term` must be a coefficient name such as 'arm'; got {self.term!r}.")
 
@@ -316,6 +318,7 @@ class GEE(Analysis):
             model = sm.GEE(df["y"].astype(float), X, groups=df[group_col].to_numpy(), family=family,
                            cov_struct=self._structure())
         else:
+            require_columns(self.formula, df.columns, "gee")
             model = sm.GEE.from_formula(self.formula, groups=group_col, data=df, family=family,
                                         cov_struct=self._structure())
         res = model.fit(maxiter=self.maxiter, cov_type=self.cov_type)

@@ -61,6 +61,7 @@ from scipy import stats
 
 from .._validation import Anything, Choice
 from ..errors import ParameterError
+from ..formula import FormulaText, require_columns
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
 
 DF_METHODS = ("wald", "between-within", "satterthwaite")
@@ -469,8 +470,10 @@ class MixedModel(Analysis):
     Parameters
     ----------
     formula : str
-        Fixed-effects formula (statsmodels formula syntax), default ``"y ~ C(arm)"``; e.g.
-        ``"y ~ C(arm) * C(visit)"`` for repeated measures.
+        Fixed-effects formula of the grammar in :mod:`simpower.formula` (column
+        names, ``C(column)``, ``C(column, Treatment(k))``, ``a:b``, ``a*b``),
+        default ``"y ~ C(arm)"``; e.g. ``"y ~ C(arm) * C(visit)"`` for repeated
+        measures. Checked at construction: nothing else reaches statsmodels.
     groups : str
         Column holding the random-intercept groups: ``"cluster"`` (default)
         or ``"subject"`` for repeated measures.
@@ -505,7 +508,7 @@ class MixedModel(Analysis):
 
     name = "mixed_model"
     null_hypothesis = "the fixed-effect coefficient under test (the arm effect) is 0"
-    params = {"formula": _Text("a formula like 'y ~ C(arm)'", r"[^~]+~.+"),
+    params = {"formula": FormulaText(strip=True),
               "groups": _Text("a column name like 'cluster' or 'subject'", r"\w+"),
               "term": _Text("a coefficient name like 'C(arm)[T.1]'", optional=True),
               "df": Choice(DF_METHODS), "alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
@@ -532,7 +535,7 @@ class MixedModel(Analysis):
         frame = pd.DataFrame({k: np.asarray(v) for k, v in dict(data).items()}) if not isinstance(data, pd.DataFrame) else data
         if self.groups not in frame:
             raise ValueError(f"mixed_model needs a {self.groups!r} column (the `groups` parameter)")
-        outcome = self.formula.split("~")[0].strip()
+        outcome = require_columns(self.formula, frame.columns, "mixed_model").outcome
         if outcome in frame:
             frame = frame[np.isfinite(frame[outcome].to_numpy(float))]
         model = smf.mixedlm(self.formula, frame, groups=frame[self.groups])

@@ -1,12 +1,11 @@
 """Linear regression of the outcome on arm and covariates (OLS, ANCOVA).
 
 The per-replicate path fits ``statsmodels.formula.api.ols`` and reads one
-coefficient (``term``). Formulas are *checked against a small grammar* before
-statsmodels sees them, because a formula engine evaluates the text as Python:
-a formula is ``outcome ~ term + term ...`` where a term is a column name,
-``C(column)`` (treatment-coded categories), an interaction ``a:b`` or ``a*b``
-of those, ``1`` or ``0``, or ``- 1``; nothing else is accepted, so a scenario
-file cannot run code through it.
+coefficient (``term``). Formulas are checked at construction against the one
+grammar of :mod:`simpower.formula` before statsmodels sees them, because a
+formula engine evaluates the text as Python: column names, ``C(column)``,
+interactions ``a:b`` and ``a*b``, parentheses, ``0``/``1`` and ``- term``;
+nothing else is accepted, so a scenario file cannot run code through it.
 
 The batch path (main-effects formulas with an intercept, categorical columns
 shared by all replicates, no missing outcomes; ``cov_type`` 'nonrobust' or
@@ -16,7 +15,6 @@ numpy on stacked (R, p, p) matrices, and agrees with statsmodels to about 1e-10.
 
 from __future__ import annotations
 
-import re
 from dataclasses import dataclass
 
 import numpy as np
@@ -24,90 +22,11 @@ from scipy import stats
 
 from .._validation import Anything, Bool, Choice, Real
 from ..errors import ParameterError, nearest
+from ..formula import Formula, FormulaText, parse_formula  # noqa: F401  (parse_formula: public here too)
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
 from .ttests import p_from_t, p_from_z
 
-_NAME = r"[A-Za-z_][A-Za-z0-9_]*"
-_FACTOR = re.compile(rf"^(?:(?P<num>{_NAME})|C\(\s*(?P<cat>{_NAME})\s*\))$")
 COV_TYPES = ("nonrobust", "HC0", "HC1", "HC2", "HC3", "cluster")
-
-
-@dataclass(frozen=True)
-class Formula:
-    """A parsed formula of the accepted grammar."""
-
-    text: str
-    outcome: str
-    terms: tuple[tuple[tuple[str, str], ...], ...]  # each term: ((kind, column), ...), kind 'num' | 'cat'
-    intercept: bool
-
-    @property
-    def columns(self) -> list[str]:
-        cols = [self.outcome]
-        for term in self.terms:
-            for _, c in term:
-                if c not in cols:
-                    cols.append(c)
-        return cols
-
-    @property
-    def main_effects_only(self) -> bool:
-        return all(len(t) == 1 for t in self.terms)
-
-
-def parse_formula(text: str, field: str = "formula") -> Formula:
-    """Parse ``outcome ~ terms`` of the accepted grammar, or raise ParameterError naming ``field``."""
-    hint = ("e.g. \"y ~ C(arm) + baseline\"; terms are column names, C(column), a:b, a*b, 1, 0 or - 1")
-    if not isinstance(text, str) or text.count("~") != 1:
-        raise ParameterError(f"`{field}` must be a formula 'outcome ~ terms', {hint}; got {text!r}.")
-    lhs, rhs = (s.strip() for s in text.split("~"))
-    if not re.fullmatch(_NAME, lhs):
-        raise ParameterError(f"`{field}`: the outcome must be one column name; got {lhs!r}.")
-    intercept = True
-    terms: list[tuple[tuple[str, str], ...]] = []
-    rhs = re.sub(r"-\s*1\b", "+ __no_intercept__", rhs)
-    for piece in rhs.split("+"):
-        piece = piece.strip()
-        if piece in ("1",):
-            continue
-        if piece in ("0", "__no_intercept__"):
-            intercept = False
-            continue
-        star = "*" in piece
-        factors = []
-        for f in re.split(r"[:*]", piece):
-            m = _FACTOR.match(f.strip())
-            if m is None:
-                raise ParameterError(f"`{field}`: term {piece!r} is not accepted; {hint}.")
-            factors.append(("num", m["num"]) if m["num"] else ("cat", m["cat"]))
-        if star:  # a*b = a + b + a:b
-            for k in range(1, len(factors) + 1):
-                for combo in _combinations(factors, k):
-                    if combo not in terms:
-                        terms.append(combo)
-        elif tuple(factors) not in terms:
-            terms.append(tuple(factors))
-    if not terms:
-        raise ParameterError(f"`{field}` has no terms besides the intercept; {hint}.")
-    return Formula(text, lhs, tuple(terms), intercept)
-
-
-def _combinations(items, k):
-    from itertools import combinations
-
-    return [tuple(c) for c in combinations(items, k)]
-
-
-@dataclass(frozen=True)
-class FormulaText(Anything):
-    optional: bool = False
-
-    def describe(self) -> str:
-        return "a formula such as \"y ~ C(arm) + baseline\""
-
-    def clean(self, name, value):
-        parse_formula(value, name)
-        return value
 
 
 @dataclass(frozen=True)
@@ -233,7 +152,7 @@ class OLS(Analysis):
     # -- batch -------------------------------------------------------------------
     def supports_batch(self, batch):
         f = self.parsed
-        if self.cov_type == "cluster" or not f.intercept or not f.main_effects_only:
+        if self.cov_type == "cluster" or not f.intercept or not f.main_effects_only or f.references:
             return False
         if "present" in batch.per_rep or batch.info.get("missing"):
             return False

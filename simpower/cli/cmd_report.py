@@ -54,9 +54,12 @@ def main(args) -> int:
     sf = load_scenario(args)
     seed = seed_of(sf, args)
     block = read_block("report", sf.blocks.get("report"), {k: None for k in REPORT_FIELDS})
-    outdir = Path(args.out or block.get("out", "report"))
-    if sf.path is not None and not Path(outdir).is_absolute() and not args.out and "out" in block:
-        outdir = sf.path.parent / outdir
+    if getattr(args, "resumed_from", None) is not None:
+        outdir = Path(args.out) if args.out else None  # resuming writes only where its own command line says
+    else:
+        outdir = Path(args.out or block.get("out", "report"))
+        if sf.path is not None and not Path(outdir).is_absolute() and not args.out and "out" in block:
+            outdir = sf.path.parent / outdir
     ns = null_settings(sf, args, default_on=True)
     if ns is not None:  # a boundary that cannot be placed is refused before anything runs
         from ..nullpoints import null_points
@@ -88,10 +91,13 @@ def main(args) -> int:
     if ns is not None:
         results["null"] = run_null(sf, args, seed, ns, grid)
         settings["null_check"] = ns
+    print(f"seed: {seed}")
+    if outdir is None:
+        print("report not written: give --out DIR to write it")
+        return 0
     paths = write_outputs(sf, args, seed, outdir, sweep=results.get("sweep"), search=results.get("search"),
                           null=results.get("null"), run=results.get("run"), x=results.get("x"),
                           formats=args.formats, settings=settings)
-    print(f"seed: {seed}")
     for k, p in paths.items():
         print(f"wrote {k}: {p}")
     return 0

@@ -94,8 +94,8 @@ def main(args) -> int:
         res = _simulate(sf, args, opts, fit_trouble)
         null_text = _null_check(sf, null_reps, opts, fit_trouble, res.seed)
     except RunInterrupted:
-        raise RunInterrupted(f"interrupted; {resume_hint(opts['store'])}.") from None
-    res.extra["command"] = command_line(res.seed)
+        raise RunInterrupted(f"interrupted; {resume_hint(opts['store'], sf)}.") from None
+    res.extra["command"] = command_line(res.seed, args)
     if opts["store"]:
         res.extra["store"] = opts["store"]
     print(res)

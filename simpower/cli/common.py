@@ -72,7 +72,9 @@ def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | No
     A folder (a path ending in '/' or an existing directory) gets the file
     ``run-<fingerprint>.sqlite``; give the fingerprint of what the command
     runs (a sweep: of the whole grid). The store is created if absent, and
-    the command line is recorded in it for ``simpower resume``.
+    the command's data-only plan (:mod:`simpower.cli.plan`: the scenario and
+    the settings, never a command line, folder or output path) is recorded in
+    it for ``simpower resume``.
     """
     from pathlib import Path
 
@@ -93,8 +95,12 @@ def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | No
     sync = block.get("sync")
     if sync not in (None, "normal", "full"):
         raise ParameterError(f"`store.sync` must be 'normal' or 'full'; got {sync!r}.")
-    with RunStore(path, command=sys.argv[1:], sync=sync, background=False):
-        pass
+    from .plan import plan_of
+
+    plan = plan_of(args, sf) if sf is not None else None
+    with RunStore(path, sync=sync, background=False) as st:
+        if plan is not None:
+            st.record_plan(plan)
     return str(path)
 
 
@@ -127,20 +133,42 @@ def engine_options(sf: ScenarioFile, args, fingerprint: str | None = None) -> di
     }
 
 
-def resume_hint(store: str | None) -> str:
-    """How to resume, for messages after an interruption."""
+def resume_hint(store: str | None, sf: ScenarioFile | None = None) -> str:
+    """How to resume, for messages after an interruption (``simpower resume`` only without user code)."""
     if not store:
         return "nothing was kept: add --store to make a run resumable"
+    from .plan import names_user_code
+
+    if sf is not None and names_user_code(sf.raw):
+        return f"finished chunks are in {store}; to resume, run the same command again"
     return f"finished chunks are in {store}; to resume, run the same command again or: simpower resume {store}"
 
 
 def load_scenario(args) -> ScenarioFile:
-    """Load the scenario file and apply --reps/--seed/--jobs/--set."""
-    sf = load(args.scenario, overrides={"reps": args.reps, "seed": args.seed, "jobs": args.jobs})
+    """Load the scenario file (or, resuming, the plan's scenario data) and apply --reps/--seed/--jobs/--set.
+
+    References to user code in ``--set`` values resolve against the scenario file's folder, as in the file.
+    """
+    from ..functions import reference_folder
+    from ..scenario_files import from_data
+
+    overrides = {"reps": args.reps, "seed": args.seed, "jobs": args.jobs}
+    resumed = getattr(args, "resumed_from", None)
+    if resumed is not None:
+        sf = from_data(resumed.scenario, f"{resumed.store}: recorded plan", overrides)
+    else:
+        sf = load(args.scenario, overrides=overrides)
     changes = dict(parse_assignment(s) for s in args.set)
     if changes:
-        sf.scenario = sf.scenario.with_params(**changes)
+        with reference_folder(sf.path.resolve().parent if sf.path is not None else None):
+            sf.scenario = sf.scenario.with_params(**changes)
     return sf
+
+
+def argv_of(args=None) -> list[str]:
+    """This command's arguments as typed (without the program name); resuming, the plan's equivalent."""
+    resumed = getattr(args, "resumed_from", None) if args is not None else None
+    return list(resumed.argv) if resumed is not None else list(sys.argv[1:])
 
 
 def jobs_of(sf: ScenarioFile, args) -> int:
@@ -154,11 +182,11 @@ def progress_of(args) -> bool | None:
     return False if args.quiet else None
 
 
-def command_line(seed: int | None = None) -> str:
+def command_line(seed: int | None = None, args=None) -> str:
     """This command as typed; with ``seed``, pinned to that seed (added when no --seed was given)."""
     import shlex
 
-    argv = list(sys.argv[1:])
+    argv = argv_of(args)
     if seed is not None and not any(a == "--seed" or a.startswith("--seed=") for a in argv):
         argv += ["--seed", str(seed)]
     return "simpower " + " ".join(shlex.quote(a) for a in argv)

@@ -90,7 +90,9 @@ def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None,
     fm = formats or block.get("formats") or ("md", "html")
     if isinstance(fm, str):
         fm = [f.strip() for f in fm.split(",") if f.strip()]
-    return make_report(sf.scenario, outdir, seed=seed, command=reproduce_command(sys.argv[1:], seed), sweep=sweep,
+    from .common import argv_of
+
+    return make_report(sf.scenario, outdir, seed=seed, command=reproduce_command(argv_of(args), seed), sweep=sweep,
                        search=search, null=null, run=run, title=str(block.get("title", "")), x=x,
                        scenario_file=sf.path, settings=settings, formats=tuple(fm))
 

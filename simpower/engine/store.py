@@ -25,8 +25,10 @@ size changed, naming what changed. Because a chunk's numbers depend only on
 (seed, point key, chunk index, chunk size) (see :mod:`simpower.engine.chunk`),
 a resumed run equals an uninterrupted one bit for bit.
 
-Tables: ``meta(key, value)``; ``points(point, fingerprint, seed, chunk_size,
-reps, analyses, scenario, updated_at)``; ``chunks(point, chunk, size, seconds,
+Tables: ``meta(key, value)`` (format, version, provenance, the sync setting
+and, for a command-line run, the data-only plan ``simpower resume`` rebuilds
+the run from); ``points(point, fingerprint, seed, chunk_size, reps, analyses,
+scenario, updated_at)``; ``chunks(point, chunk, size, seconds,
 started_at, finished_at, worker, timeout_enforced)``; ``arrays(point, chunk,
 analysis, path, hypotheses, layout, crc32, data)``; ``causes(point, chunk,
 code, cause, message)``. (Format version 1 kept one ``arrays`` row per field
@@ -51,7 +53,6 @@ from __future__ import annotations
 
 import json
 import math
-import os
 import queue
 import sqlite3
 import struct
@@ -437,8 +438,6 @@ class RunStore:
         The store file; created when ``mode='a'`` and absent.
     mode : {'a', 'r'}
         'a' reads and appends (a run); 'r' reads only (never writes, never creates).
-    command : list of str, optional
-        The command line that started the run, kept so ``simpower resume`` can rerun it.
     sync : {'normal', 'full'}, optional
         SQLite ``synchronous`` setting, remembered in the store (None: the
         stored choice, else 'normal'): 'normal' survives a killed process (kill -9)
@@ -451,8 +450,8 @@ class RunStore:
         :meth:`flush` and :meth:`close` wait for the commits.
     """
 
-    def __init__(self, path, mode: str = "a", command: list[str] | None = None, sync: str | None = None,
-                 check: bool = False, background: bool = True):
+    def __init__(self, path, mode: str = "a", sync: str | None = None, check: bool = False,
+                 background: bool = True):
         if mode not in ("a", "r"):
             raise StoreError(f"`mode` must be 'a' or 'r'; got {mode!r}.")
         if sync not in (None, "normal", "full"):
@@ -463,12 +462,12 @@ class RunStore:
         self._writer: _Writer | None = None
         self._lock: WriterLock | None = None
         try:
-            self._open(command, sync, check, background)
+            self._open(sync, check, background)
         except BaseException:
             self.close()
             raise
 
-    def _open(self, command, sync, check, background) -> None:
+    def _open(self, sync, check, background) -> None:
         mode = self.mode
         with self._guard("opening"):
             if self.path.is_dir():
@@ -493,7 +492,7 @@ class RunStore:
                 row = self._conn.execute("PRAGMA quick_check").fetchone()
                 if row[0] != "ok":
                     raise StoreError(f"{self.path}: the store is corrupted (SQLite: {row[0]}).")
-            self._init_schema(command)
+            self._init_schema()
             if mode == "a":
                 sync = self._settle_sync(sync)
             if mode == "a" and background:
@@ -523,7 +522,7 @@ class RunStore:
         except (sqlite3.Error, OSError) as exc:
             raise StoreError(explain(exc, self.path, doing, write=self.mode == "a")) from None
 
-    def _init_schema(self, command):
+    def _init_schema(self):
         c = self._conn
         tables = {r[0] for r in c.execute("SELECT name FROM sqlite_master WHERE type='table'")}
         if not tables:
@@ -549,10 +548,6 @@ class RunStore:
             if ver is None or ver[0] != VERSION:
                 raise StoreError(f"{self.path}: run store format version {ver[0] if ver else '?'}; "
                                  f"this simpower reads version {VERSION}.")
-        if command is not None and self.mode == "a":
-            with self._transaction():
-                c.execute("INSERT OR REPLACE INTO meta VALUES ('command', ?)", (json.dumps(list(command)),))
-                c.execute("INSERT OR REPLACE INTO meta VALUES ('cwd', ?)", (os.getcwd(),))
 
     @contextmanager
     def _transaction(self):
@@ -614,10 +609,28 @@ class RunStore:
             row = self._conn.execute("SELECT seed FROM points ORDER BY point LIMIT 1").fetchone()
         return None if row is None else int(row[0])
 
+    def record_plan(self, plan: dict[str, Any]) -> None:
+        """Keep the command's plan (data only: command name, scenario data, settings) for ``simpower resume``.
+
+        The plan never holds a command line, a folder or an output path;
+        ``simpower resume`` validates it before rebuilding the run from it.
+        """
+        self._need_writable()
+        text = json.dumps(plan, sort_keys=True, default=str)
+        with self._guard("recording the plan"), self._transaction() as c:
+            c.execute("INSERT OR REPLACE INTO meta VALUES ('plan', ?)", (text,))
+
     @property
-    def command(self) -> list[str] | None:
-        m = self.meta()
-        return json.loads(m["command"]) if "command" in m else None
+    def plan(self) -> Any:
+        """The recorded plan as JSON data (not yet validated), or None if the store has none."""
+        text = self.meta().get("plan")
+        if text is None:
+            return None
+        try:
+            return json.loads(text)
+        except ValueError:
+            raise StoreError(f"{self.path}: the recorded plan is not valid JSON; re-run the original command "
+                             f"with --store to continue.") from None
 
     def bind(self, point: int, scenario, seed: int, chunk_size: int, reps: int) -> None:
         """Record grid point ``point`` or check that it matches what the store holds.

@@ -9,7 +9,7 @@ import pandas as pd
 
 from ..textout import CAUTION
 from . import plots
-from .document import Document
+from .document import Document, code, literal
 from .manifest import manifest_rows
 
 SWEEP_SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power", "path")
@@ -27,7 +27,21 @@ def _plain_params(scenario) -> pd.DataFrame:
 
 
 def _paths(paths: dict[str, str]) -> list[str]:
-    return [f"`{a}`: {p} path" for a, p in paths.items()]
+    return [f"{code(a)}: {literal(p)} path" for a, p in paths.items()]
+
+
+def _describe(scenario) -> list[str]:
+    """``scenario.describe()`` as inline markup: analysis labels as code, everything else as typed."""
+    lines = scenario.describe()
+    out = []
+    for i, line in enumerate(lines):
+        label = list(scenario.analyses)[i - 1] if 1 <= i <= len(scenario.analyses) else None
+        head = f"Analysis `{label}`: "
+        if label is not None and line.startswith(head):
+            out.append(f"Analysis {code(label)}: {literal(line[len(head):])}")
+        else:
+            out.append(literal(line))
+    return out
 
 
 def _failures(frames: list[tuple[str, pd.DataFrame]]) -> list[str]:
@@ -38,7 +52,8 @@ def _failures(frames: list[tuple[str, pd.DataFrame]]) -> list[str]:
         total = int(t["failures"].sum())
         reps = int(t["reps"].sum())
         causes = "; ".join(sorted({c for c in t.get("failure_causes", pd.Series(dtype=str)) if c}))
-        lines.append(f"{label}: {total} failed replicates of {reps}" + (f" (causes: {causes})" if causes else ""))
+        text = f"{label}: {total} failed replicates of {reps}" + (f" (causes: {causes})" if causes else "")
+        lines.append(literal(text))
     return lines
 
 
@@ -54,8 +69,8 @@ def _mc_error(frames: list[tuple[str, pd.DataFrame, str]]) -> list[str]:
     for label, t, col in frames:
         if t is None or t.empty or "mcse" not in t:
             continue
-        lines.append(f"{label}: {int(t['reps'].min())} to {int(t['reps'].max())} replicates per point; MCSE of "
-                     f"{col} at most {t['mcse'].max():.4f} (median {t['mcse'].median():.4f}).")
+        lines.append(literal(f"{label}: {int(t['reps'].min())} to {int(t['reps'].max())} replicates per point; "
+                             f"MCSE of {col} at most {t['mcse'].max():.4f} (median {t['mcse'].median():.4f})."))
     return lines
 
 
@@ -64,27 +79,28 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
                       target: float | None = None, notes: list[str] | None = None) -> Document:
     """Build the report's :class:`Document`, writing its figures (PNG and SVG) into ``outdir``."""
     out = Path(outdir)
-    doc = Document(title or scenario.name or "Power analysis by simulation")
+    doc = Document(literal(title or scenario.name or "Power analysis by simulation"))
     if scenario.description:
-        doc.para(scenario.description)
+        doc.para(literal(scenario.description))
     doc.heading("Assumptions")
     doc.para("The numbers below hold only under these assumptions about the data and the planned analysis:")
-    doc.bullets(scenario.describe())
+    doc.bullets(_describe(scenario))
     doc.table(_plain_params(scenario), "Every parameter of the scenario (before any sweep or search)")
     paths: dict[str, str] = {}
 
     if search is not None:
         doc.heading("Required " + ("sample size" if search.kind == "size" else "minimal detectable effect"))
-        doc.para(search.summary().replace("\n", " "))
+        doc.para(literal(search.summary()))
         if search.kind == "size":
             try:
-                doc.para("At the answer: " + search.at_answer().process.describe() + ".")
+                doc.para(literal("At the answer: " + search.at_answer().process.describe() + "."))
             except Exception:  # a user process may not describe itself
                 pass
-        doc.para(f"Method: a probit model of power in {search.fit.scale if search.fit else '?'}({search.parameter}) "
-                 f"fitted to all simulated replicates, the next replicates placed at the current estimate, stopped "
-                 f"when the {search.level:.0%} Monte Carlo (Fieller) interval was within "
-                 f"{search.settings.get('rel_tol', 0):.0%} of the estimate; chunk size {search.chunk_size}.")
+        doc.para(literal(f"Method: a probit model of power in {search.fit.scale if search.fit else '?'}"
+                         f"({search.parameter}) fitted to all simulated replicates, the next replicates placed at the "
+                         f"current estimate, stopped when the {search.level:.0%} Monte Carlo (Fieller) interval was "
+                         f"within {search.settings.get('rel_tol', 0):.0%} of the estimate; chunk size "
+                         f"{search.chunk_size}."))
         png, svg = plots.save(plots.search_plot(search), out / "search")
         doc.figure(png, svg, "Search: simulated power (Wilson intervals), fitted curve, target and answer")
         shown = search.table[["value", "reps", "power", "mcse", "ci_low", "ci_high", "fitted_power", "in_fit"]]
@@ -101,11 +117,11 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
         if numeric:
             req = search.value if (search is not None and search.parameter == xs) else None
             png, svg = plots.save(plots.power_curve(sweep, xs, target=target, required=req), out / "sweep_power")
-            doc.figure(png, svg, f"Power against {xs} with 95% Wilson bands")
+            doc.figure(png, svg, literal(f"Power against {xs} with 95% Wilson bands"))
         others = [g for g in grid if g != xs and pd.api.types.is_numeric_dtype(sweep[g])]
         if numeric and others:
             png, svg = plots.save(plots.heatmap(sweep, xs, others[0], target=target), out / "sweep_heatmap")
-            doc.figure(png, svg, f"Power of the primary analysis over {xs} and {others[0]}")
+            doc.figure(png, svg, literal(f"Power of the primary analysis over {xs} and {others[0]}"))
         for a, p in zip(sweep["analysis"], sweep["path"]):
             paths.setdefault(a, p)
 
@@ -167,7 +183,7 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
 
     if notes:
         doc.heading("Notes")
-        doc.bullets(notes)
+        doc.bullets([literal(n) for n in notes])
 
     doc.heading("Cautions")
     doc.para(CAUTION)

@@ -3,6 +3,13 @@
 Blocks are plain data: headings, paragraphs, bullet lists, tables
 (DataFrames), code, and figures (a PNG and an SVG file on disk), so the two
 renderers show the same content.
+
+Text of headings, paragraphs, bullets and captions (and the title) is a small
+inline markup: ```code```, ``**bold**``, and ``\\x`` for a literal ``x``.
+User text (scenario names, labels, descriptions, messages) enters it only
+through :func:`literal` or :func:`code`, so it shows as typed in both formats:
+a name with HTML tags or Markdown characters is text, never markup. Table
+cells and code blocks are data, escaped by each renderer.
 """
 
 from __future__ import annotations
@@ -12,6 +19,56 @@ from pathlib import Path
 from typing import Any
 
 import pandas as pd
+
+
+MARKUP = "\\`*"
+
+
+def literal(text: Any) -> str:
+    """User text as inline markup that shows exactly this text (on one line)."""
+    t = " ".join(str(text).splitlines())
+    return "".join("\\" + c if c in MARKUP else c for c in t)
+
+
+def code(text: Any) -> str:
+    """User text as a code span (e.g. an analysis label)."""
+    return "`" + literal(text) + "`"
+
+
+def spans(text: str) -> list[tuple[str, str]]:
+    """Parse inline markup into ``(kind, text)`` pieces: kind 'text', 'code', or 'bold' (a toggle, text '')."""
+    out: list[tuple[str, str]] = []
+    buf: list[str] = []
+    in_code = False
+    i = 0
+
+    def flush():
+        if buf:
+            out.append(("code" if in_code else "text", "".join(buf)))
+            buf.clear()
+
+    while i < len(text):
+        c = text[i]
+        if c == "\\" and i + 1 < len(text):
+            buf.append(text[i + 1])
+            i += 2
+            continue
+        if c == "`":
+            if in_code:
+                out.append(("code", "".join(buf)))
+                buf.clear()
+            else:
+                flush()
+            in_code = not in_code
+        elif not in_code and text.startswith("**", i):
+            flush()
+            out.append(("bold", ""))
+            i += 1
+        else:
+            buf.append(c)
+        i += 1
+    flush()
+    return out
 
 
 @dataclass

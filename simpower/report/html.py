@@ -9,7 +9,7 @@ from __future__ import annotations
 import base64
 import html
 
-from .document import Bullets, Code, Document, Figure, Heading, Paragraph, Table, fmt_cell
+from .document import Bullets, Code, Document, Figure, Heading, Paragraph, Table, fmt_cell, spans
 
 STYLE = """
 body { font-family: system-ui, sans-serif; max-width: 62rem; margin: 2rem auto; padding: 0 1rem; color: #222;
@@ -26,12 +26,24 @@ figcaption { font-style: italic; font-size: 0.9rem; }
 
 
 def _inline(text: str) -> str:
-    """Escape, then turn `code` spans and **bold** into tags."""
-    t = html.escape(str(text))
-    parts = t.split("`")
-    t = "".join(f"<code>{p}</code>" if i % 2 else p for i, p in enumerate(parts))
-    parts = t.split("**")
-    return "".join(f"<strong>{p}</strong>" if i % 2 else p for i, p in enumerate(parts))
+    """The document's inline markup as HTML: text escaped, `code` spans and **bold** as tags."""
+    out, bold = [], False
+    for kind, s in spans(str(text)):
+        if kind == "bold":
+            out.append("</strong>" if bold else "<strong>")
+            bold = not bold
+        elif kind == "code":
+            out.append(f"<code>{html.escape(s)}</code>")
+        else:
+            out.append(html.escape(s))
+    if bold:
+        out.append("</strong>")
+    return "".join(out)
+
+
+def _plain(text: str) -> str:
+    """The text of inline markup without its markup (for attributes and the window title)."""
+    return "".join(t for k, t in spans(str(text)) if k != "bold")
 
 
 def table_html(frame, caption: str = "") -> str:
@@ -57,8 +69,8 @@ def render(doc: Document) -> str:
             body.append(f"<pre><code>{html.escape(b.text)}</code></pre>")
         elif isinstance(b, Figure):
             data = base64.b64encode(b.png.read_bytes()).decode("ascii")
-            body.append(f'<figure><img alt="{html.escape(b.caption)}" src="data:image/png;base64,{data}">'
+            body.append(f'<figure><img alt="{html.escape(_plain(b.caption))}" src="data:image/png;base64,{data}">'
                         f"<figcaption>{_inline(b.caption)}</figcaption></figure>")
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
-            f"<title>{html.escape(doc.title)}</title><style>{STYLE}</style></head><body>\n"
+            f"<title>{html.escape(_plain(doc.title))}</title><style>{STYLE}</style></head><body>\n"
             + "\n".join(body) + "\n</body></html>\n")

@@ -1,0 +1,202 @@
+"""The data-only plan a command records in its run store, and its validation for ``simpower resume``.
+
+A run store is data, never a program: it records *what* to compute, not a
+command line or a folder to run it in. The plan is JSON::
+
+    {"version": 1, "command": "run" | "sweep" | "samplesize" | "report",
+     "scenario": {... the scenario file's fields as data ...},
+     "scenario_file": "trial.toml",          # shown in messages only, never opened
+     "options": {"reps": 4000, "seed": 7, "set": ["n=80"], ...}}
+
+Recorded: the scenario file's data without the fields that name places to
+write to or connect to or the executor (``[store]``; of ``[report]`` only
+``title`` and ``formats``, of ``[execution]`` only ``timeout`` and
+``summaries_only`` are kept) and the command's options that shape the
+numbers (an allow-list per command). Never recorded: output paths (``--json``, ``--csv``, ``--out``...),
+``--store``, ``--jobs``, the working folder. :func:`validate` checks a plan
+read back from a store against the same allow-lists; ``simpower resume`` then
+rebuilds the run from it with user code refused
+(:func:`simpower.functions.no_user_code`) and takes output options from its
+own command line only.
+"""
+
+from __future__ import annotations
+
+import json
+import shlex
+from typing import Any
+
+from ..errors import StoreError
+
+VERSION = 1
+COMMANDS = ("run", "sweep", "samplesize", "report")
+
+# kinds of option values
+INT, FLOAT, BOOL, TEXT, TEXTS = "int", "float", "bool", "text", "texts"
+_COMMON = {"reps": INT, "seed": INT, "set": TEXTS, "max_failure_rate": FLOAT, "timeout": FLOAT,
+           "summaries_only": BOOL}
+_NULL = {"null_check": BOOL, "null_reps": INT}
+#: per command, the options that shape what is computed (argparse names), and their kinds
+OPTIONS: dict[str, dict[str, str]] = {
+    "run": {**_COMMON, **_NULL, "fit_trouble": TEXT, "target_mcse": FLOAT, "max_reps": INT},
+    "sweep": {**_COMMON, **_NULL, "vary": TEXTS, "together": TEXTS, "target_mcse": FLOAT, "max_reps": INT},
+    "samplesize": {**_COMMON, **_NULL, "power": FLOAT, "effect": BOOL, "parameter": TEXT, "range": TEXT,
+                   "step": FLOAT, "rel_tol": FLOAT, "max_reps": INT, "analysis": TEXT},
+    "report": {**_COMMON, "null_reps": INT},
+}
+#: per command, the output options ``resume`` takes from its own command line
+OUTPUTS: dict[str, tuple[str, ...]] = {
+    "run": ("json",),
+    "sweep": ("csv", "parquet", "json", "plot", "x", "target", "report"),
+    "samplesize": ("csv", "json", "plot", "report"),
+    "report": ("out", "formats"),
+}
+#: the fields a plan keeps of the scenario's blocks that say where and how to run (the rest name
+#: places to write to or connect to -- ``[store]``, ``[report] out``, ``[execution] address`` -- or
+#: the executor, which never changes the numbers)
+BLOCK_FIELDS = {"store": (), "report": ("title", "formats"), "execution": ("timeout", "summaries_only")}
+
+
+def _is(kind: str, v: Any) -> bool:
+    if kind == INT:
+        return isinstance(v, int) and not isinstance(v, bool)
+    if kind == FLOAT:
+        return isinstance(v, (int, float)) and not isinstance(v, bool)
+    if kind == BOOL:
+        return isinstance(v, bool)
+    if kind == TEXT:
+        return isinstance(v, str)
+    return isinstance(v, list) and all(isinstance(x, str) for x in v)
+
+
+def _without_places(raw: dict) -> dict:
+    data = json.loads(json.dumps(raw, default=str))  # a deep copy, as JSON data (TOML dates become text)
+    for block, keep in BLOCK_FIELDS.items():
+        if block in data:
+            kept = {k: v for k, v in data[block].items() if k in keep} if isinstance(data[block], dict) else {}
+            if kept:
+                data[block] = kept
+            else:
+                del data[block]
+    return data
+
+
+def plan_of(args, sf) -> dict | None:
+    """The plan of this command line (None for a command that records none)."""
+    command = getattr(args, "command", None)
+    if command not in COMMANDS:
+        return None
+    options = {}
+    for name in OPTIONS[command]:
+        v = getattr(args, name, None)
+        if v is None or v is False or v == []:
+            continue
+        options[name] = list(v) if isinstance(v, (list, tuple)) else v
+    return {"version": VERSION, "command": command, "scenario": _without_places(sf.raw),
+            "scenario_file": str(getattr(args, "scenario", "") or ""), "options": options}
+
+
+def validate(plan: Any, where: str) -> dict:
+    """``plan`` checked against the allow-lists, or StoreError (one line) saying what is wrong."""
+    def bad(what: str):
+        again = "the original command"
+        if isinstance(plan, dict) and plan.get("command") in COMMANDS and isinstance(plan.get("scenario_file"), str):
+            again += f" ({shlex.join(reproduce_argv({**plan, 'options': {}}, where, prog=True))})"
+        raise StoreError(f"{where}: the recorded plan is refused: {what}. A store is data: re-run {again} to "
+                         f"continue it.")
+
+    if plan is None:
+        raise StoreError(f"{where}: the store holds no plan (written from Python, or by an older simpower that "
+                         f"recorded a command line): re-run the original command or run(...) call with this store "
+                         f"to continue it.")
+    if not isinstance(plan, dict):
+        bad("not a table")
+    extra = sorted(set(plan) - {"version", "command", "scenario", "scenario_file", "options"})
+    if extra:
+        bad(f"unknown field {extra[0]!r}")
+    if plan.get("version") != VERSION:
+        bad(f"plan version {plan.get('version')!r}, this simpower reads version {VERSION}")
+    command = plan.get("command")
+    if command not in COMMANDS:
+        bad(f"command {command!r} is not one of {', '.join(COMMANDS)}")
+    scenario = plan.get("scenario")
+    if not isinstance(scenario, dict):
+        bad("the scenario is not a table")
+    for block, keep in BLOCK_FIELDS.items():
+        if block not in scenario:
+            continue
+        if not keep:
+            bad(f"the scenario holds a `[{block}]` block, which a plan never records")
+        if not isinstance(scenario[block], dict):
+            bad(f"`{block}` is not a table")
+        extra = [k for k in scenario[block] if k not in keep]
+        if extra:
+            bad(f"the scenario holds `{block}.{extra[0]}`, which a plan never records (it keeps "
+                f"{', '.join(f'`{block}.{k}`' for k in keep)})")
+    code = names_user_code(scenario)
+    if code is not None:
+        bad(f"the scenario names user code {code!r}, and resume never runs code named by a store")
+    if not isinstance(plan.get("scenario_file", ""), str):
+        bad("`scenario_file` is not text")
+    options = plan.get("options", {})
+    if not isinstance(options, dict):
+        bad("`options` is not a table")
+    allowed = OPTIONS[command]
+    for name, value in options.items():
+        if name not in allowed:
+            bad(f"option {name!r} is not one a {command} records (allowed: {', '.join(sorted(allowed))})")
+        if not _is(allowed[name], value):
+            bad(f"option {name!r} must be {allowed[name]}; got {value!r}")
+    for text in options.get("set", []):
+        code = names_user_code([_assigned(text)])
+        if code is not None:
+            bad(f"`set {text}` names user code {code!r}, and resume never runs code named by a store")
+    return {"version": VERSION, "command": command, "scenario": scenario,
+            "scenario_file": plan.get("scenario_file", ""), "options": dict(options)}
+
+
+def _assigned(text: str) -> Any:
+    from ..errors import ParameterError
+    from ..scenario_files import parse_assignment
+
+    try:
+        return parse_assignment(text)[1]
+    except ParameterError:
+        return None
+
+
+def names_user_code(data: Any) -> str | None:
+    """The first ``type = "module:function"`` (or file) reference anywhere in ``data``, else None."""
+    from ..registry import is_reference
+
+    if isinstance(data, dict):
+        if is_reference(data.get("type")):
+            return data["type"]
+        items = data.values()
+    elif isinstance(data, list):
+        items = data
+    else:
+        return None
+    for v in items:
+        found = names_user_code(v)
+        if found is not None:
+            return found
+    return None
+
+
+def reproduce_argv(plan: dict, store: str, prog: bool = False) -> list[str]:
+    """A command line (without the program name unless ``prog``) computing what the plan says, into ``store``.
+
+    For messages and the manifest only: nothing runs it.
+    """
+    argv = (["simpower"] if prog else []) + [plan["command"], plan["scenario_file"] or "SCENARIO.toml"]
+    for name, value in plan["options"].items():
+        flag = "--" + name.replace("_", "-")
+        if value is True:
+            argv.append(flag)
+        elif isinstance(value, list):
+            for v in value:
+                argv += [flag, v]
+        else:
+            argv += [flag, str(value)]
+    return argv + ["--store", store]
