@@ -14,7 +14,7 @@ def add_run_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("scenario", help="scenario file (TOML)")
     p.add_argument("--reps", type=int, help="replicates (overrides the file's `reps`)")
     p.add_argument("--seed", type=int, help="seed, an integer >= 0 (overrides the file's `seed`)")
-    p.add_argument("--jobs", type=int, help="worker processes; -1 = all cores (default)")
+    p.add_argument("--jobs", type=int, help="worker processes: -1 = all cores (default), or a count >= 1")
     p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                    help="change a scenario parameter, e.g. --set n=80 --set outcome.cv=1.5 (repeatable)")
     p.add_argument("--json", metavar="PATH", help="also write the result as JSON to PATH")
@@ -144,10 +144,7 @@ def load_scenario(args) -> ScenarioFile:
 
 
 def jobs_of(sf: ScenarioFile, args) -> int:
-    j = sf.run.get("jobs", -1)
-    if j == 0:
-        raise ParameterError("`jobs` must be -1 (all cores) or >= 1; got 0.")
-    return j
+    return sf.run.get("jobs", -1)  # checked by the loader (-1 or >= 1)
 
 
 def progress_of(args) -> bool | None:

@@ -46,6 +46,7 @@ from typing import Any, Protocol, Sequence
 
 import numpy as np
 
+from .._validation import Jobs
 from ..errors import ParameterError, RunError
 from ..result import RunResult
 from ..summaries import WARNING_PREFIX
@@ -247,6 +248,36 @@ def _check_args(reps, keys, n_scen, chunk_size, fit_trouble, max_failure_rate, t
     return reps_list, keys
 
 
+def check_address(address: Any) -> Any:
+    """A dask scheduler address as given, once it looks like SCHEME://HOST:PORT (or HOST:PORT)."""
+    if address is None or not isinstance(address, str):
+        return address  # None, or a dask Client object
+    text = address.strip()
+    scheme, sep, rest = text.partition("://")
+    if not sep:
+        scheme, rest = "tcp", text
+    if scheme in ("tcp", "tls"):
+        host, colon, port = rest.rstrip("/").rpartition(":")
+        if not (colon and host.strip("[]") and port.isdigit() and 0 < int(port) < 65536):
+            raise ParameterError(f"`address` must look like tcp://HOST:PORT (e.g. tcp://10.0.0.5:8786), with the "
+                                 f"scheduler's port; got {address!r}.")
+    return text
+
+
+def check_execution(n_jobs: Any, backend: Any, address: Any) -> tuple[int | None, str | None, Any]:
+    """Validated ``(n_jobs, backend, address)``; an ``address`` implies ``backend='dask'``."""
+    n_jobs = Jobs().clean("n_jobs", n_jobs)
+    backend = check_backend(backend)
+    address = check_address(address)
+    if address is not None and address != "":
+        if backend is None:
+            backend = "dask"
+        elif backend != "dask":
+            raise ParameterError(f"`address` is a dask scheduler's; it cannot be used with backend={backend!r} "
+                                 f"(drop `address`, or use backend='dask').")
+    return n_jobs, backend, address or None
+
+
 def run_many(scenarios: Sequence, reps: int | Sequence[int], *, seed=None, n_jobs: int | None = -1,
              chunk_size: int | None = None, progress: bool | None = None, fit_trouble: str = "failure",
              backend: str | None = None, address: Any = None, store: Any = None,
@@ -260,7 +291,7 @@ def run_many(scenarios: Sequence, reps: int | Sequence[int], *, seed=None, n_job
     scenarios = list(scenarios)
     reps_list, keys = _check_args(reps, keys, len(scenarios), chunk_size, fit_trouble, max_failure_rate,
                                   timeout, keep_records)
-    backend = check_backend(backend)
+    n_jobs, backend, address = check_execution(n_jobs, backend, address)
     store, owned = _open_store(store)
     try:
         stored_seed = getattr(store, "seed", None) if store is not None else None
@@ -402,7 +433,26 @@ def _result(pt: _Point, entropy, seconds, fit_trouble, n_jobs, backend, store) -
                           store_path=str(getattr(store, "path", "")) or None, records=records)
 
 
-def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
+def _scenario_of(scenario, reps, seed):
+    """(Scenario, reps, seed): a scenario file path is loaded, its ``reps`` and ``seed`` filling the unset ones."""
+    if isinstance(scenario, (str, Path)):
+        from ..scenario_files import load  # a path is the one input the engine reads from a file
+
+        sf = load(scenario)
+        reps = sf.run.get("reps", DEFAULT_REPS) if reps is None else reps
+        seed = sf.run.get("seed") if seed is None else seed
+        return sf.scenario, reps, seed
+    if not (hasattr(scenario, "process") and hasattr(scenario, "analyses")):
+        raise ParameterError(f"`scenario` must be a Scenario or a scenario file path (or sp.load_scenario('x.toml').scenario)"
+                             f"; got {type(scenario).__name__}.")
+    return scenario, DEFAULT_REPS if reps is None else reps, seed
+
+
+#: replicates of ``run`` when neither the call nor the scenario file gives ``reps``
+DEFAULT_REPS = 1000
+
+
+def run(scenario, reps: int | None = None, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
         progress: bool | None = None, fit_trouble: str = "failure", backend: str | None = None,
         address: Any = None, store: Any = None, max_failure_rate: float = 0.5, point: int | None = None,
         timeout: float | None = None, keep_records: bool | None = None) -> RunResult:
@@ -410,13 +460,19 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
 
     Parameters
     ----------
-    scenario : Scenario
-    reps : int >= 1
+    scenario : Scenario, or str / Path of a scenario file
+        A path is loaded with :func:`simpower.load`; the file's ``reps`` and
+        ``seed`` are used unless given here (its other run settings, such as
+        ``jobs`` or ``[execution]``, are read by the command line only).
+    reps : int >= 1, optional
+        Default: the scenario file's ``reps``, else 1000.
     seed : int >= 0, SeedSequence or None
         None draws fresh entropy (or reuses the store's seed when resuming);
         the result records it (``result.seed``).
     n_jobs : int
-        Worker processes; -1 (default) uses all cores; 1 runs in this process.
+        Worker processes: -1 (default) uses all cores, a count >= 1 that many;
+        1 runs in this process. Other values (0, and joblib's -2, -3... for
+        "all but some") are refused.
     chunk_size : int, optional
         Replicates per task; defaults to the plan's choice for the scenario.
         Part of the reproducibility promise: the same seed and chunk size give
@@ -427,10 +483,13 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
         What replicates whose analysis warned (non-convergence, singular fit)
         count as; the result shows both figures either way.
     backend : {None, 'loky', 'serial', 'threading', 'dask'}
-        None is loky worker processes (or this process when ``n_jobs=1``).
+        None is loky worker processes (or this process when ``n_jobs=1``),
+        or dask when an ``address`` is given.
     address : str or dask.distributed.Client, optional
-        The dask scheduler (``"tcp://host:8786"``) for ``backend='dask'``; None
-        uses the current dask client or starts a local cluster.
+        The dask scheduler (``"tcp://host:8786"``). Giving one implies
+        ``backend='dask'``; with another explicit ``backend`` it is refused.
+        Without it, ``backend='dask'`` uses the current dask client or starts
+        a local cluster.
     store : str, Path or store object, optional
         A run store file: finished chunks are committed there as they arrive
         and reused when the same call runs again (resume).
@@ -461,6 +520,7 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
     >>> abs(res.power - 0.80) < 4 * res.mcse   # Cohen (1988): n = 64 per arm gives 80% power
     True
     """
+    scenario, reps, seed = _scenario_of(scenario, reps, seed)
     store, owned = _open_store(store)
     try:
         if point is None:
