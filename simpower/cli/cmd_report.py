@@ -15,7 +15,7 @@ import sys
 from pathlib import Path
 
 from ..errors import ParameterError
-from .common import add_run_options, load_scenario
+from .common import add_run_options, check_output_folder, load_scenario
 
 DEFAULT_REPS = 2000
 DEFAULT_NULL_REPS = 10_000
@@ -121,6 +121,7 @@ def main(args) -> int:
     outdir = Path(args.out or block.get("out", "report"))
     if sf.path is not None and not Path(outdir).is_absolute() and not args.out and "out" in block:
         outdir = sf.path.parent / outdir
+    check_output_folder("--out" if args.out else "report.out", outdir)
     results: dict = {}
     settings: dict = {"set": list(args.set)}
     grid = sblock = None

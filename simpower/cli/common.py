@@ -110,6 +110,10 @@ def engine_options(sf: ScenarioFile, args, fingerprint: str | None = None) -> di
     backend = getattr(args, "backend", None) or ex.get("backend") or ("dask" if address else None)
     if address and backend != "dask":
         raise ParameterError(f"`--address` is for the dask backend; got --backend {backend}.")
+    if address:
+        from ..engine.runner import check_address
+
+        check_address(address, "--address" if getattr(args, "address", None) else "execution.address")
     rate = getattr(args, "max_failure_rate", None)
     timeout = getattr(args, "timeout", None)
     timeout = timeout if timeout is not None else ex.get("timeout")
@@ -136,6 +140,10 @@ def resume_hint(store: str | None) -> str:
 
 def load_scenario(args) -> ScenarioFile:
     """Load the scenario file and apply --reps/--seed/--jobs/--set."""
+    if args.jobs is not None:
+        from .._validation import Jobs
+
+        Jobs(optional=False).clean("--jobs", args.jobs)
     sf = load(args.scenario, overrides={"reps": args.reps, "seed": args.seed, "jobs": args.jobs})
     changes = dict(parse_assignment(s) for s in args.set)
     if changes:
@@ -159,3 +167,59 @@ def command_line(seed: int | None = None) -> str:
     if seed is not None and not any(a == "--seed" or a.startswith("--seed=") for a in argv):
         argv += ["--seed", str(seed)]
     return "simpower " + " ".join(shlex.quote(a) for a in argv)
+
+
+#: output options by kind: files need an existing folder; stems and folders are created (with parents)
+OUTPUT_FILES = {"json": "--json", "csv": "--csv", "parquet": "--parquet"}
+OUTPUT_STEMS = {"plot": "--plot"}
+OUTPUT_FOLDERS = {"report": "--report"}
+
+
+def _first_existing(path):
+    p = path
+    while not p.exists() and p != p.parent:
+        p = p.parent
+    return p
+
+
+def check_output_file(option: str, value) -> None:
+    """Refuse, before anything runs, an output file that cannot be written: its folder is missing or a file,
+    or the path is a folder."""
+    from pathlib import Path
+
+    path = Path(str(value))
+    if path.is_dir():
+        raise ParameterError(f"`{option}` {value}: is a folder; give a file path (e.g. {path / 'result'}).")
+    folder = path.parent
+    if not folder.is_dir():
+        what = "is a file" if folder.exists() else "does not exist"
+        raise ParameterError(f"`{option}` {value}: the folder {folder} {what}; create the folder first or give "
+                             f"another path.")
+
+
+def check_output_folder(option: str, value, stem: bool = False) -> None:
+    """Refuse a folder output (or the folder of a file stem) that is, or sits under, an existing file."""
+    from pathlib import Path
+
+    path = Path(str(value))
+    folder = path.parent if stem else path
+    if stem and path.is_dir():
+        raise ParameterError(f"`{option}` {value}: is a folder; give a file name stem (e.g. {path / 'power'}).")
+    hit = _first_existing(folder)
+    if hit.exists() and not hit.is_dir():
+        where = "is a file" if hit == folder else f"lies under the file {hit}"
+        raise ParameterError(f"`{option}` {value}: {where}, not a folder; give a folder path.")
+
+
+def check_outputs(args) -> None:
+    """Check every output option of the command line before it runs (see :data:`OUTPUT_FILES`)."""
+    for attr, option in OUTPUT_FILES.items():
+        if getattr(args, attr, None):
+            check_output_file(option, getattr(args, attr))
+    for attr, option in OUTPUT_STEMS.items():
+        if getattr(args, attr, None):
+            check_output_folder(option, getattr(args, attr), stem=True)
+    for attr, option in OUTPUT_FOLDERS.items():
+        if getattr(args, attr, None):
+            check_output_folder(option, getattr(args, attr))
+

@@ -42,7 +42,7 @@ import time
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Protocol, Sequence
+from typing import Any, Mapping, Protocol, Sequence
 
 import numpy as np
 
@@ -156,6 +156,8 @@ class _Point:
     hyp: dict = field(default_factory=dict)
     #: streaming mode, records spooled to disk
     spool: RecordSpool | None = None
+    #: the point's parameters in words for messages ("n = 48, icc = 0.05"); "" for a single run
+    label: str = ""
 
     def add(self, out: ChunkOutput) -> None:
         if self.collector is not None:
@@ -196,10 +198,40 @@ def _check_failures(pt: _Point, limit: float, store) -> None:
     causes = {c: n for c, n in pt.counts.get(name, {}).items() if not c.startswith(WARNING_PREFIX)}
     shown = ", ".join(f"{c} x{n}" for c, n in sorted(causes.items(), key=lambda kv: -kv[1]))
     first = "; ".join(f"first {c}: {book.messages.get(c, '')}" for c in list(causes)[:3])
-    kept = f" Finished chunks are kept in {getattr(store, 'path', 'the store')}." if store is not None else ""
-    raise RunError(f"stopped: {worst} of {pt.done} replicates of analysis `{name}` failed at grid point {pt.key} "
+    place = _kept_in(store)
+    kept = f" Finished chunks are kept in {place}." if place else ""
+    at = f" at {pt.label}" if pt.label else ""
+    raise RunError(f"stopped: {worst} of {pt.done} replicates of analysis `{name}` failed{at} "
                    f"({worst / pt.done:.1%} > max_failure_rate {limit:g}): {shown} ({first}). Fix the analysis "
                    f"or raise `max_failure_rate` (--max-failure-rate).{kept}")
+
+
+def _kept_in(store) -> str | None:
+    """Where finished chunks outlive this call: a store's path ('the store' for one without), or None.
+
+    A :class:`~simpower.sequential.MemoryStore` keeps chunks only in memory;
+    it counts only through the store behind it (``backing``), if any.
+    """
+    if store is not None and hasattr(store, "backing"):
+        store = store.backing
+    if store is None:
+        return None
+    return str(getattr(store, "path", None) or "the store")
+
+
+def _fmt_value(v) -> str:
+    if isinstance(v, float):
+        return f"{v:g}"
+    return str(v)
+
+
+def point_labels(scenarios: Sequence) -> list[str]:
+    """Each scenario's parameters that differ between them, in words ("n = 48, icc = 0.05")."""
+    if len(scenarios) < 2:
+        return [""] * len(scenarios)
+    params = [sc.get_params() for sc in scenarios]
+    names = [k for k in params[0] if any(p.get(k) != params[0][k] for p in params[1:])]
+    return [", ".join(f"{k} = {_fmt_value(p.get(k))}" for k in names) for p in params]
 
 
 def _progress(total: int, enabled: bool | None, desc: str, initial: int = 0):
@@ -248,7 +280,7 @@ def _check_args(reps, keys, n_scen, chunk_size, fit_trouble, max_failure_rate, t
     return reps_list, keys
 
 
-def check_address(address: Any) -> Any:
+def check_address(address: Any, name: str = "address") -> Any:
     """A dask scheduler address as given, once it looks like SCHEME://HOST:PORT (or HOST:PORT)."""
     if address is None or not isinstance(address, str):
         return address  # None, or a dask Client object
@@ -259,7 +291,7 @@ def check_address(address: Any) -> Any:
     if scheme in ("tcp", "tls"):
         host, colon, port = rest.rstrip("/").rpartition(":")
         if not (colon and host.strip("[]") and port.isdigit() and 0 < int(port) < 65536):
-            raise ParameterError(f"`address` must look like tcp://HOST:PORT (e.g. tcp://10.0.0.5:8786), with the "
+            raise ParameterError(f"`{name}` must look like tcp://HOST:PORT (e.g. tcp://10.0.0.5:8786), with the "
                                  f"scheduler's port; got {address!r}.")
     return text
 
@@ -282,11 +314,14 @@ def run_many(scenarios: Sequence, reps: int | Sequence[int], *, seed=None, n_job
              chunk_size: int | None = None, progress: bool | None = None, fit_trouble: str = "failure",
              backend: str | None = None, address: Any = None, store: Any = None,
              max_failure_rate: float = 0.5, keys: Sequence[int] | None = None, desc: str = "simulating",
-             timeout: float | None = None, keep_records: bool | None = None) -> list[RunResult]:
+             timeout: float | None = None, keep_records: bool | None = None,
+             labels: Mapping[int, str] | None = None) -> list[RunResult]:
     """Run several scenarios (grid points) with one pool of workers.
 
-    Point ``i`` uses seed key ``keys[i]`` (default ``i``). See :func:`run` for
-    the other parameters; ``reps`` may give one count per scenario.
+    Point ``i`` uses seed key ``keys[i]`` (default ``i``). ``labels`` maps a
+    key to the point's parameters in words for messages (default: the
+    parameters in which the scenarios differ). See :func:`run` for the other
+    parameters; ``reps`` may give one count per scenario.
     """
     scenarios = list(scenarios)
     reps_list, keys = _check_args(reps, keys, len(scenarios), chunk_size, fit_trouble, max_failure_rate,
@@ -296,8 +331,10 @@ def run_many(scenarios: Sequence, reps: int | Sequence[int], *, seed=None, n_job
     try:
         stored_seed = getattr(store, "seed", None) if store is not None else None
         entropy = normalize_seed(stored_seed if seed is None and stored_seed is not None else seed)
+        if labels is None:
+            labels = dict(zip(keys, point_labels(scenarios)))
         return _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend,
-                    address, store, max_failure_rate, desc, timeout, keep_records)
+                    address, store, max_failure_rate, desc, timeout, keep_records, labels)
     finally:
         if owned:
             store.close()
@@ -360,7 +397,7 @@ def preflight(scenario) -> None:
 
 
 def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend, address,
-         store, max_failure_rate, desc, timeout, keep_records):
+         store, max_failure_rate, desc, timeout, keep_records, labels):
     seen = set()
     for sc in scenarios:  # one trial per kind of scenario (the grid points of a sweep share theirs)
         kind = (type(sc.process).__name__, tuple((n, type(a).__name__) for n, a in sc.analyses.items()))
@@ -369,6 +406,8 @@ def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_
             preflight(sc)
     sizes = [int(chunk_size or default_chunk_size(s)) for s in scenarios]
     points = _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble)
+    for pt in points:
+        pt.label = str(labels.get(pt.key, ""))
     by_key = {pt.key: pt for pt in points}
     tasks = []
     reused = 0
@@ -403,9 +442,11 @@ def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_
             _check_failures(pt, max_failure_rate, store)
     except KeyboardInterrupt:
         done = sum(pt.done for pt in points)
-        where = (f"; {done} of {sum(reps_list)} replicates are in {getattr(store, 'path', 'the store')}: "
-                 f"run the same call again (same store) to resume" if store is not None else
-                 "; nothing was kept: give a store (store=PATH, --store PATH) to make a run resumable")
+        place = _kept_in(store)
+        where = (f"; {done} of {sum(reps_list)} replicates are in {place}: "
+                 f"run the same call again (same store) to resume" if place else
+                 f"; nothing was saved ({done} of {sum(reps_list)} replicates were done): give a store "
+                 f"(store=PATH, --store PATH) to keep progress")
         raise RunInterrupted("interrupted" + where + ".") from None
     finally:
         gen.close()
