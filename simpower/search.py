@@ -651,9 +651,10 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
 TRIAL_REPLICATES = 20
 
 
-def _trial_failure_share(scenario) -> float:
+def _trial_failure_share(scenario, limit: float = 1.0) -> float:
     """The largest share, over the analyses, of hard failures (an exception or a non-finite p-value) on
-    :data:`TRIAL_REPLICATES` replicates drawn with a fixed generator; 1.0 if the process cannot draw them."""
+    :data:`TRIAL_REPLICATES` replicates drawn with a fixed generator; 1.0 if the process cannot draw them
+    or as soon as one analysis fails on more than ``limit`` of them."""
     import warnings
 
     rng = np.random.default_rng(0)
@@ -676,6 +677,8 @@ def _trial_failure_share(scenario) -> float:
                 except Exception:
                     ok = False
                 failed += not ok
+                if failed > limit * TRIAL_REPLICATES:
+                    return 1.0  # already too many: no need to fit the rest
             worst = max(worst, failed)
     return worst / TRIAL_REPLICATES
 
@@ -695,7 +698,7 @@ def runnable_low(scenario, parameter: str, start: float, current: float, integer
             sc = scenario.with_params(**{parameter: int(v) if integer else float(v)})
         except Exception:
             sc = None
-        if sc is not None and _trial_failure_share(sc) <= max_failure_rate / 2:
+        if sc is not None and _trial_failure_share(sc, max_failure_rate / 2) <= max_failure_rate / 2:
             return v
         v = math.ceil(2 * v) if integer else 2 * v
     return start
