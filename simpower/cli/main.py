@@ -56,7 +56,9 @@ def main(argv: list[str] | None = None) -> int:
 
     previous, warnings.showwarning = warnings.showwarning, _one_line_warning
     try:
-        return _main(argv)
+        code = _main(argv)
+        sys.stdout.flush()  # a closed reader shows here, inside the handler, not at interpreter exit
+        return code
     except BrokenPipeError:
         return _quiet_broken_pipe()
     finally:

@@ -357,7 +357,7 @@ def _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble):
 PREFLIGHT_REPLICATES = 3
 
 
-def preflight(scenario) -> None:
+def preflight(scenario, label: str = "") -> None:
     """Refuse at once an analysis that cannot analyse the process's data at all.
 
     Draws :data:`PREFLIGHT_REPLICATES` replicates with a fixed generator (the
@@ -392,18 +392,19 @@ def preflight(scenario) -> None:
             raise ParameterError(
                 f"analysis `{name}` cannot analyse the data of process "
                 f"`{getattr(scenario.process, 'name', None) or getattr(scenario.process, 'label', 'process')}`: "
-                f"it raised {type(exc).__name__}: {exc} on every trial replicate; check that the analysis fits "
-                f"the design (columns {', '.join(sorted(map(str, data[0])))}).")
+                f"it raised {type(exc).__name__}: {exc} on every trial replicate{f' at {label}' if label else ''}; "
+                f"check that the analysis fits the design (columns {', '.join(sorted(map(str, data[0])))})"
+                f"{' and the size is large enough for it' if label else ''}.")
 
 
 def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend, address,
          store, max_failure_rate, desc, timeout, keep_records, labels):
     seen = set()
-    for sc in scenarios:  # one trial per kind of scenario (the grid points of a sweep share theirs)
+    for sc, key in zip(scenarios, keys):  # one trial per kind of scenario (the grid points of a sweep share theirs)
         kind = (type(sc.process).__name__, tuple((n, type(a).__name__) for n, a in sc.analyses.items()))
         if kind not in seen:
             seen.add(kind)
-            preflight(sc)
+            preflight(sc, str(labels.get(key, "")))
     sizes = [int(chunk_size or default_chunk_size(s)) for s in scenarios]
     points = _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble)
     for pt in points:
