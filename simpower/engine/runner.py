@@ -394,7 +394,7 @@ def preflight(scenario, label: str = "") -> None:
                 f"`{getattr(scenario.process, 'name', None) or getattr(scenario.process, 'label', 'process')}`: "
                 f"it raised {type(exc).__name__}: {exc} on every trial replicate{f' at {label}' if label else ''}; "
                 f"check that the analysis fits the design (columns {', '.join(sorted(map(str, data[0])))})"
-                f"{' and the size is large enough for it' if label else ''}.")
+                f"{' and data of that shape' if label else ''}.")
 
 
 def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend, address,
