@@ -332,3 +332,23 @@ def test_every_bundled_scenario_searches_its_sample_size_with_the_defaults(path,
     res = json.loads(out.read_text())
     s = res["settings"]
     assert s["low"] <= res["value"] <= s["high"] + (s.get("step") or 0)
+
+
+def test_an_interrupted_samplesize_without_store_says_nothing_was_saved(tmp_path, capsys):
+    # Ctrl-C during the search, simulated by a user analysis that raises KeyboardInterrupt after 300 replicates
+    (tmp_path / "stopper.py").write_text(
+        "from scipy import stats\n"
+        "CALLS = [0]\n"
+        "def welch(data):\n"
+        "    CALLS[0] += 1\n"
+        "    if CALLS[0] > 300:\n"
+        "        raise KeyboardInterrupt\n"
+        "    y, a = data['y'], data['arm']\n"
+        "    return stats.ttest_ind(y[a == 1], y[a == 0], equal_var=False)\n")
+    p = tmp_path / "s.toml"
+    p.write_text("[process]\ntype = 'normal_two_arm'\nn = 30\neffect = 0.6\n[analysis]\ntype = 'stopper.py:welch'\n")
+    rc = main(["samplesize", str(p), "--jobs", "1", "-q", "--seed", "1", "--range", "10:150"])
+    err = capsys.readouterr().err.strip()
+    assert rc == 130
+    assert err.startswith("simpower: error: interrupted; nothing was saved") and "--store" in err
+    assert "are in the store" not in err and len(err.splitlines()) == 1
