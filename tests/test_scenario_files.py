@@ -62,7 +62,8 @@ def test_overrides_from_command_line():
     (GOOD.replace("reps = 500", "reps = -3"), r"`reps` must be an integer >= 1"),
     ("alpha = 0.05\n[analysis]\ntype='t_test'", r"\[process\] table is required"),
     # messages say what is true: the field, the rule once ("a finite number", not "a number a finite number")
-    (GOOD.replace("seed = 42", "seed = 42\ntrue_effect = 'big'"), r"`true_effect` must be a finite number; got 'big'\.$"),
+    (GOOD.replace("seed = 42", "seed = 42\ntrue_effect = 'big'"),
+     r"`true_effect` must be a finite number; got 'big'\.$"),
     (GOOD.replace("seed = 42", "seed = 42\njobs = -7"), r"`jobs` must be -1 \(all cores\) or an integer >= 1; got -7"),
     (GOOD.replace("seed = 42", "seed = 42\njobs = 0"), r"`jobs` must be -1 \(all cores\) or an integer >= 1; got 0"),
 ])

@@ -485,8 +485,8 @@ def _scenario_of(scenario, reps, seed):
         seed = sf.run.get("seed") if seed is None else seed
         return sf.scenario, reps, seed
     if not (hasattr(scenario, "process") and hasattr(scenario, "analyses")):
-        raise ParameterError(f"`scenario` must be a Scenario or a scenario file path (or sp.load_scenario('x.toml').scenario)"
-                             f"; got {type(scenario).__name__}.")
+        raise ParameterError(f"`scenario` must be a Scenario or a scenario file path (or "
+                             f"sp.load_scenario('x.toml').scenario); got {type(scenario).__name__}.")
     return scenario, DEFAULT_REPS if reps is None else reps, seed
 
 
@@ -503,7 +503,7 @@ def run(scenario, reps: int | None = None, *, seed=None, n_jobs: int | None = -1
     Parameters
     ----------
     scenario : Scenario, or str / Path of a scenario file
-        A path is loaded with :func:`simpower.load`; the file's ``reps`` and
+        A path is loaded with :func:`simpower.load_scenario`; the file's ``reps`` and
         ``seed`` are used unless given here (its other run settings, such as
         ``jobs`` or ``[execution]``, are read by the command line only).
     reps : int >= 1, optional
