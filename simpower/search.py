@@ -692,13 +692,15 @@ def runnable_low(scenario, parameter: str, start: float, current: float, integer
     A default search range that starts where the analyses cannot fit (a negative binomial model on two
     patients per arm) would stop the search with a failure instead of treating the size as too small.
     """
+    ok_rate = isinstance(max_failure_rate, (int, float)) and 0 < max_failure_rate <= 1
+    limit = (max_failure_rate if ok_rate else 0.5) / 2  # an invalid rate is refused by the run itself
     v = start
     while v <= current:
         try:
             sc = scenario.with_params(**{parameter: int(v) if integer else float(v)})
         except Exception:
             sc = None
-        if sc is not None and _trial_failure_share(sc, max_failure_rate / 2) <= max_failure_rate / 2:
+        if sc is not None and _trial_failure_share(sc, limit) <= limit:
             return v
         v = math.ceil(2 * v) if integer else 2 * v
     return start
