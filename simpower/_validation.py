@@ -47,11 +47,16 @@ class Real:
             return f"{'<' if self.high_open else '<='} {_fmt(self.high)}"
         return "a finite number"
 
+    def describe_number(self) -> str:
+        """The constraint as a noun phrase: "a number >= 0", "a number in (0, 1)", "a finite number"."""
+        rule = self.describe()
+        return rule if rule.startswith("a ") else f"a number {rule}"
+
     def clean(self, name: str, value: Any) -> Any:
         if value is None and self.optional:
             return None
         if isinstance(value, bool) or not isinstance(value, numbers.Real):
-            raise ParameterError(f"`{name}` must be a number {self.describe()}; got {value!r}.")
+            raise ParameterError(f"`{name}` must be {self.describe_number()}; got {value!r}.")
         v = float(value)
         bad = not math.isfinite(v)
         if self.low is not None:
@@ -90,6 +95,31 @@ class Int:
         if (self.low is not None and v < self.low) or (self.high is not None and v > self.high):
             raise ParameterError(f"`{name}` must be {self.describe()}; got {v}.")
         return v
+
+
+@dataclass(frozen=True)
+class Jobs:
+    """A worker count: -1 (all cores) or an integer >= 1.
+
+    joblib also reads -2, -3... as "all cores but 1, 2...", and 0 as nothing
+    sensible; simpower refuses both, so a typo never silently picks a count.
+    ``None`` (optional) means all cores, like -1.
+    """
+
+    optional: bool = True
+
+    def describe(self) -> str:
+        return "-1 (all cores) or an integer >= 1"
+
+    def clean(self, name: str, value: Any) -> Any:
+        if value is None and self.optional:
+            return None
+        ok = isinstance(value, numbers.Integral) and not isinstance(value, bool)
+        if not ok and isinstance(value, float) and value.is_integer():
+            value, ok = int(value), True
+        if not ok or not (int(value) == -1 or int(value) >= 1):
+            raise ParameterError(f"`{name}` must be {self.describe()}; got {value!r}.")
+        return int(value)
 
 
 @dataclass(frozen=True)
@@ -143,7 +173,7 @@ class Anything:
         return value
 
 
-Constraint = Real | Int | Choice | Bool | Anything
+Constraint = Real | Int | Jobs | Choice | Bool | Anything
 
 
 def check_params(constraints: dict[str, Constraint], values: dict[str, Any], owner: str = "") -> dict[str, Any]:

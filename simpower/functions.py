@@ -111,6 +111,10 @@ class _FunctionMixin:
 class FunctionProcess(_FunctionMixin, Process):
     """A user function ``f(rng, **params) -> data`` as a process."""
 
+    #: unknown: a user function does not say what its effect measures (a scenario's
+    #: ``true_effect`` / ``true_effects`` tell, see Scenario.true_effect_for)
+    estimand_label = None
+
     def __init__(self, fn: Callable, params: dict[str, Any] | None = None, ref: str | None = None,
                  base_dir: str | Path | None = None, effect_param: str | None = None,
                  size_param: str | None = None):

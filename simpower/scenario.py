@@ -34,7 +34,13 @@ class Scenario:
     params : dict, optional
         Parameters of a user process function.
     true_effect : float, optional
-        The estimand, for bias and coverage, when the process cannot tell it.
+        The true value of the process's estimand, for bias and coverage, when
+        the process cannot tell it (a user process). It applies only to the
+        analyses that estimate that quantity (an ``estimand_label`` of None
+        or the process's own, see :meth:`true_effect_for`); for a user process,
+        whose estimand is unknown, only when the analyses (outside
+        ``true_effects``) all estimate the same thing. Refused when it would
+        apply to no analysis, or is ambiguous: give ``true_effects`` then.
     true_effects : mapping of analysis name -> float, optional
         The true value of what each analysis estimates, where it differs from
         the process's estimand (e.g. a ratio of geometric means).
@@ -73,6 +79,8 @@ class Scenario:
             if k not in self.analyses:
                 raise ParameterError(f"`true_effects.{k}` names no analysis.{nearest(str(k), self.analyses)}")
             self.true_effects[k] = Real().clean(f"true_effects.{k}", v)
+        if self._true_effect is not None:
+            self._true_effect_targets()  # refuses a true_effect that fits no analysis, or is ambiguous
         self.name = name
         self.description = description
 
@@ -99,17 +107,63 @@ class Scenario:
         """
         if analysis in self.true_effects:
             return self.true_effects[analysis]
-        a = self.analyses[analysis]
-        a_label = getattr(a, "estimand_label", None)
-        p_label = getattr(self.process, "estimand_label", None)
-        if a_label is not None and p_label is not None and a_label != p_label:
+        if self._true_effect is not None:
             try:
-                aliases = self.process.estimand_aliases()
-            except Exception:
-                aliases = set()
-            if a_label not in aliases:
+                targets = self._true_effect_targets()
+            except ParameterError:
                 return None
+            return self._true_effect if analysis in targets else None
+        if not self._estimates_process_estimand(analysis):
+            return None
         return self.true_effect
+
+    def _estimand_of(self, analysis: str) -> str | None:
+        return getattr(self.analyses[analysis], "estimand_label", None)
+
+    def _estimates_process_estimand(self, analysis: str) -> bool:
+        """Whether ``analysis`` estimates the process's estimand: its label is None (by convention the
+        process's), or the process's label or one of its aliases. A process without a label (a user
+        function: its estimand is unknown) matches only unlabelled analyses."""
+        a_label = self._estimand_of(analysis)
+        if a_label is None:
+            return True
+        p_label = getattr(self.process, "estimand_label", None)
+        if p_label is None:
+            return False
+        if a_label == p_label:
+            return True
+        try:
+            return a_label in self.process.estimand_aliases()
+        except Exception:
+            return False
+
+    def _true_effect_targets(self) -> list[str]:
+        """The analyses a top-level ``true_effect`` applies to; ParameterError if none, or if ambiguous."""
+        open_ = [n for n in self.analyses if n not in self.true_effects]
+        p_label = getattr(self.process, "estimand_label", None)
+
+        def what(n):
+            return f"{n}: {self._estimand_of(n) or 'not stated'}"
+
+        example = f"(e.g. true_effects = {{ {open_[0] if open_ else self.primary} = ... }})"
+        if not open_:
+            raise ParameterError("`true_effect` applies to no analysis: [true_effects] gives every analysis its own "
+                                 "true value; drop `true_effect`.")
+        if p_label is None:
+            labels = {self._estimand_of(n) for n in open_}
+            if len(labels) > 1:
+                raise ParameterError(
+                    f"`true_effect` is ambiguous: the process does not say what its effect is, and the analyses "
+                    f"estimate different things ({'; '.join(map(what, open_))}); give each analysis its true "
+                    f"value in [true_effects] instead {example}.")
+            return open_
+        targets = [n for n in open_ if self._estimates_process_estimand(n)]
+        if not targets:
+            raise ParameterError(
+                f"`true_effect` applies to no analysis: it is the process's {p_label}, and the analyses estimate "
+                f"something else ({'; '.join(map(what, open_))}); give their true values in [true_effects] "
+                f"instead {example}.")
+        return targets
 
     def analytic_power(self) -> dict[str, float | None]:
         """Closed-form power of each analysis where the analytic core covers the case."""
@@ -166,9 +220,11 @@ class Scenario:
         new.process = self.process.replace(**proc_changes) if proc_changes else self.process
         new.analyses = {n: (a.replace(**an_changes[n]) if n in an_changes else a) for n, a in self.analyses.items()}
         new.alpha = ALPHA.clean("alpha", alpha)
-        new._true_effect = true_effect
+        new._true_effect = None if true_effect is None else Real().clean("true_effect", true_effect)
         new.true_effects = dict(self.true_effects)
         new.name, new.description = self.name, self.description
+        if new._true_effect is not None and (an_changes or true_effect is not self._true_effect):
+            new._true_effect_targets()  # an analysis' estimand may have changed with its parameters
         return new
 
     def null(self) -> "Scenario":

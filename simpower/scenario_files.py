@@ -32,7 +32,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from ._validation import Choice, Int, Real
+from ._validation import Choice, Int, Jobs, Real
 from .errors import ParameterError, ScenarioFileError, SimpowerError, nearest
 from .registry import build
 from .scenario import Scenario
@@ -41,7 +41,7 @@ from .scenario import Scenario
 RUN_FIELDS = {
     "reps": Int(low=1),
     "seed": Int(low=0),
-    "jobs": Int(),
+    "jobs": Jobs(optional=False),
     "chunk_size": Int(low=1),
     "fit_trouble": Choice(("failure", "nonrejection")),
     "max_failure_rate": Real(0.0, 1.0, low_open=True),

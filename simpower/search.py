@@ -318,9 +318,11 @@ class _Evaluations:
         if not todo:
             return
         scs = [self.scenario.with_params(**{self.parameter: self.setter(v)}) for v in todo]
+        keys = [point_key(s) for s in scs]
+        labels = {k: f"{self.parameter} = {self.setter(v):g}" for k, v in zip(keys, todo)}
         outs = run_many(scs, list(todo.values()), seed=self.seed, n_jobs=self.n_jobs, chunk_size=self.chunk_size,
                         store=self.store, progress=self.progress, fit_trouble=self.fit_trouble,
-                        keys=[point_key(s) for s in scs], max_failure_rate=self.max_failure_rate, desc="searching",
+                        keys=keys, max_failure_rate=self.max_failure_rate, desc="searching", labels=labels,
                         **self.engine)
         for v, res in zip(todo, outs):
             s = res.summaries[self.analysis]
@@ -615,7 +617,13 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
         step = 1 if integer else None
     elif not (isinstance(step, (int, float)) and step > 0):
         raise ParameterError(f"`step` must be > 0; got {step!r}.")
-    low = _default_low(scenario, parameter) if low is None else low
+    moved = ""
+    if low is None:
+        start = _default_low(scenario, parameter)
+        low = runnable_low(scenario, parameter, start, current, integer, max_failure_rate)
+        if low != start:
+            moved = (f"the range starts at {parameter} = {low:g}, the smallest size (doubling from {start:g}) at "
+                     f"which every analysis ran on trial replicates; give `low` (--range) to start elsewhere")
     high = 16 * max(current, low) if high is None else high
     low = Real(0.0, low_open=True).clean("low", low)
     high = Real(0.0, low_open=True).clean("high", high)
@@ -628,6 +636,8 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
                   abs_tol=0.5 * step if step else 0.0, max_reps=max_reps, seed=seed, n_jobs=n_jobs,
                   chunk_size=chunk_size, store=store, progress=progress, fit_trouble=fit_trouble, analysis=analysis,
                   max_failure_rate=max_failure_rate, pilot_points=pilot_points, pilot_reps=chunk_size, engine=engine)
+    if moved:
+        out["note"] = "; ".join(filter(None, (moved, out["note"])))
     an, an_cont = analytic_size(scenario, analysis, parameter, target, low, high, step or 1) if integer else (None, None)
     settings = {"power": target, "parameter": parameter, "low": low, "high": high, "step": step, "scale": scale,
                 "level": level, "rel_tol": rel_tol, "max_reps": max_reps, "chunk_size": chunk_size,
@@ -635,6 +645,65 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
     return SearchResult(parameter=parameter, kind="size", target=target, level=level, analysis=analysis,
                         scenario=scenario, chunk_size=chunk_size, settings=settings, analytic=an,
                         analytic_estimate=an_cont, **out)
+
+
+#: replicates each analysis is tried on at a candidate lowest size (fixed generator, not the run's)
+TRIAL_REPLICATES = 20
+
+
+def _trial_failure_share(scenario, limit: float = 1.0) -> float:
+    """The largest share, over the analyses, of hard failures (an exception or a non-finite p-value) on
+    :data:`TRIAL_REPLICATES` replicates drawn with a fixed generator; 1.0 if the process cannot draw them
+    or as soon as one analysis fails on more than ``limit`` of them."""
+    import warnings
+
+    rng = np.random.default_rng(0)
+    try:
+        if scenario.process.has_batch:
+            batch = scenario.process.draw_batch(rng, TRIAL_REPLICATES)
+            data = [batch.replicate(i) for i in range(TRIAL_REPLICATES)]
+        else:
+            data = [scenario.process(rng) for _ in range(TRIAL_REPLICATES)]
+    except Exception:
+        return 1.0
+    worst = 0
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # fit trouble is not a hard failure
+        for analysis in scenario.analyses.values():
+            failed = 0
+            for d in data:
+                try:
+                    ok = math.isfinite(float(getattr(analysis(d), "pvalue", math.nan)))
+                except Exception:
+                    ok = False
+                failed += not ok
+                if failed > limit * TRIAL_REPLICATES:
+                    return 1.0  # already too many: no need to fit the rest
+            worst = max(worst, failed)
+    return worst / TRIAL_REPLICATES
+
+
+def runnable_low(scenario, parameter: str, start: float, current: float, integer: bool,
+                 max_failure_rate: float = 0.5) -> float:
+    """The smallest size, doubling from ``start`` up to the scenario's ``current`` one, at which every analysis
+    runs: at most half of ``max_failure_rate`` of its trial replicates fail hard (see
+    :func:`_trial_failure_share`). ``start`` when none up to ``current`` does (the run then reports why).
+
+    A default search range that starts where the analyses cannot fit (a negative binomial model on two
+    patients per arm) would stop the search with a failure instead of treating the size as too small.
+    """
+    ok_rate = isinstance(max_failure_rate, (int, float)) and 0 < max_failure_rate <= 1
+    limit = (max_failure_rate if ok_rate else 0.5) / 2  # an invalid rate is refused by the run itself
+    v = start
+    while v <= current:
+        try:
+            sc = scenario.with_params(**{parameter: int(v) if integer else float(v)})
+        except Exception:
+            sc = None
+        if sc is not None and _trial_failure_share(sc, limit) <= limit:
+            return v
+        v = math.ceil(2 * v) if integer else 2 * v
+    return start
 
 
 def _default_low(scenario, parameter) -> float:

@@ -29,6 +29,7 @@ import numpy as np
 import pandas as pd
 
 from .engine import normalize_seed, run_many
+from .engine.runner import point_labels
 from ._validation import Bool, Int, Real
 from .errors import ParameterError
 from .sequential import as_memory_store, check_target_mcse, point_key, run_many_to_mcse, seed_with_store
@@ -310,6 +311,8 @@ def _run_points(scenarios, reps, seed, n_jobs, chunk_size, store, progress, fit_
     for k, s in zip(keys, scenarios):
         unique.setdefault(k, s)
     ukeys = list(unique)
+    # messages name a point by its parameters ("n = 48, icc = 0.05"), not by its seed key
+    engine = {**dict(engine or {}), "labels": dict(zip(keys, point_labels(scenarios)))}
     if target_mcse is not None:
         outs = run_many_to_mcse(list(unique.values()), target_mcse, max_reps=max_reps, min_reps=min_reps, seed=seed,
                                 n_jobs=n_jobs, chunk_size=chunk_size, store=store, progress=progress,
@@ -318,7 +321,7 @@ def _run_points(scenarios, reps, seed, n_jobs, chunk_size, store, progress, fit_
     else:
         outs = run_many(list(unique.values()), reps, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, store=store,
                         progress=progress, fit_trouble=fit_trouble, keys=ukeys, max_failure_rate=max_failure_rate,
-                        desc="sweeping", **dict(engine or {}))
+                        desc="sweeping", **engine)
     by_key = dict(zip(ukeys, outs))
     return [by_key[k] for k in keys]
 

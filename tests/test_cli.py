@@ -82,3 +82,63 @@ def test_run_bad_target_mcse_is_one_line(capsys):
     rc = main(["run", str(SCEN), "--target-mcse", "0.9", "-q"])
     err = capsys.readouterr().err
     assert rc == 2 and "target_mcse" in err and err.count("\n") == 1
+
+
+# -- messages say what is true (one line naming the field and the fix; no traceback) ----------------
+@pytest.mark.parametrize("extra, pattern", [
+    (["--json", "{tmp}/no_such_folder/r.json"], r"`--json` .*no_such_folder/r.json: the folder .*no_such_folder "
+                                                 r"does not exist; create the folder first"),
+    (["--json", "{tmp}"], r"`--json` .*: is a folder; give a file path"),
+    (["--address", "tcp://scheduler-host"], r"`--address` must look like tcp://HOST:PORT .*got 'tcp://scheduler-host'"),
+    (["--jobs", "0"], r"`--jobs` must be -1 \(all cores\) or an integer >= 1; got 0"),
+    (["--jobs", "-7"], r"`--jobs` must be -1 \(all cores\) or an integer >= 1; got -7"),
+])
+def test_bad_outputs_and_execution_options_are_named_before_the_run(extra, pattern, tmp_path, capsys):
+    import re
+
+    argv = ["run", str(SCEN), "--reps", "50", "-q"] + [a.format(tmp=tmp_path) for a in extra]
+    assert main(argv) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "Traceback" not in err and "Error:" not in err
+    assert re.search(pattern, err), err
+
+
+def test_report_out_onto_a_file_is_named(tmp_path, capsys):
+    target = tmp_path / "taken.txt"
+    target.write_text("not a folder")
+    assert main(["report", str(SCEN), "--reps", "50", "--jobs", "1", "-q", "--out", str(target)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert f"`--out` {target}: is a file, not a folder; give a folder path" in err
+    assert "FileExistsError" not in err and target.read_text() == "not a folder"
+
+
+def test_jobs_out_of_range_in_the_file_names_the_field(tmp_path, capsys):
+    p = tmp_path / "j.toml"
+    p.write_text(SCEN.read_text().replace("seed =", "jobs = -7\nseed =", 1))
+    assert main(["run", str(p), "--reps", "50", "-q"]) == 2
+    assert "`jobs` must be -1 (all cores) or an integer >= 1; got -7" in capsys.readouterr().err
+
+
+def test_output_cut_short_by_the_reader_ends_quietly(tmp_path):
+    # `simpower run ... | head -0`: the reader is gone before anything is written. Exit code 141 = 128 +
+    # SIGPIPE, what POSIX shells report for a writer stopped by a closed pipe (common practice).
+    proc = subprocess.Popen([sys.executable, "-m", "simpower.cli.main", "run", str(SCEN), "--reps", "50",
+                             "--jobs", "1", "-q"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, cwd=ROOT)
+    proc.stdout.close()
+    err = proc.stderr.read().decode()
+    proc.stderr.close()
+    assert proc.wait(timeout=120) == 141
+    assert "Traceback" not in err and "BrokenPipe" not in err and err.strip() == ""
+
+
+def test_an_unexpected_os_error_names_path_and_reason(tmp_path, capsys, monkeypatch):
+    from simpower.cli import cmd_run
+
+    def boom(args):
+        raise PermissionError(13, "Permission denied", str(tmp_path / "locked.json"))
+
+    monkeypatch.setattr(cmd_run, "main", boom)  # the parser is built per call and binds the patched command
+    assert main(["run", str(SCEN)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err == f"simpower: error: {tmp_path / 'locked.json'}: Permission denied; check the path and its folder " \
+                  f"(run with --debug for the traceback)"

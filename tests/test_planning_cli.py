@@ -307,3 +307,48 @@ def test_report_without_matplotlib_is_one_line_naming_the_fix(tmp_path):
     assert out.returncode != 0
     err = out.stderr.strip().splitlines()
     assert len(err) == 1 and "pip install matplotlib" in err[0] and "Traceback" not in out.stderr
+
+
+# -- every bundled scenario's sample-size search runs with its defaults ----------------------------
+BUNDLED = sorted((__import__("pathlib").Path(__file__).resolve().parents[1] / "scenarios").glob("*.toml"))
+#: per-replicate model fits (a mixed model, a negative binomial GLM): seconds even with few replicates;
+#: the value is the replicates per chunk (and per pilot point) the test uses
+SLOW_BUNDLED = {"repeated_mar_dropout.toml": 4, "overdispersed_counts.toml": 10}
+
+
+@pytest.mark.parametrize("path", [pytest.param(p, id=p.stem, marks=[pytest.mark.slow] if p.name in SLOW_BUNDLED
+                                               else []) for p in BUNDLED])
+def test_every_bundled_scenario_searches_its_sample_size_with_the_defaults(path, tmp_path, capsys):
+    # the file's own range ([search] or the default one), few replicates per chunk and a small budget: the
+    # search must not stop with an error (exit 2); it may end unconverged (exit 1) at this budget
+    copy = tmp_path / path.name
+    chunk = SLOW_BUNDLED.get(path.name, 10)
+    copy.write_text(f"chunk_size = {chunk}\n" + path.read_text(encoding="utf-8"), encoding="utf-8")
+    out = tmp_path / "r.json"
+    rc = main(["samplesize", str(copy), "--jobs", "1", "-q", "--seed", "11", "--max-reps", str(6 * chunk),
+               "--json", str(out)])
+    err = capsys.readouterr().err
+    assert rc in (0, 1), err
+    res = json.loads(out.read_text())
+    s = res["settings"]
+    assert s["low"] <= res["value"] <= s["high"] + (s.get("step") or 0)
+
+
+def test_an_interrupted_samplesize_without_store_says_nothing_was_saved(tmp_path, capsys):
+    # Ctrl-C during the search, simulated by a user analysis that raises KeyboardInterrupt after 300 replicates
+    (tmp_path / "stopper.py").write_text(
+        "from scipy import stats\n"
+        "CALLS = [0]\n"
+        "def welch(data):\n"
+        "    CALLS[0] += 1\n"
+        "    if CALLS[0] > 300:\n"
+        "        raise KeyboardInterrupt\n"
+        "    y, a = data['y'], data['arm']\n"
+        "    return stats.ttest_ind(y[a == 1], y[a == 0], equal_var=False)\n")
+    p = tmp_path / "s.toml"
+    p.write_text("[process]\ntype = 'normal_two_arm'\nn = 30\neffect = 0.6\n[analysis]\ntype = 'stopper.py:welch'\n")
+    rc = main(["samplesize", str(p), "--jobs", "1", "-q", "--seed", "1", "--range", "10:150"])
+    err = capsys.readouterr().err.strip()
+    assert rc == 130
+    assert err.startswith("simpower: error: interrupted; nothing was saved") and "--store" in err
+    assert "are in the store" not in err and len(err.splitlines()) == 1

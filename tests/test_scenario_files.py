@@ -61,6 +61,11 @@ def test_overrides_from_command_line():
     (GOOD.replace("n = 20", "n = 20\nsd = -1"), r"`process.sd` must be > 0; got -1"),
     (GOOD.replace("reps = 500", "reps = -3"), r"`reps` must be an integer >= 1"),
     ("alpha = 0.05\n[analysis]\ntype='t_test'", r"\[process\] table is required"),
+    # messages say what is true: the field, the rule once ("a finite number", not "a number a finite number")
+    (GOOD.replace("seed = 42", "seed = 42\ntrue_effect = 'big'"),
+     r"`true_effect` must be a finite number; got 'big'\.$"),
+    (GOOD.replace("seed = 42", "seed = 42\njobs = -7"), r"`jobs` must be -1 \(all cores\) or an integer >= 1; got -7"),
+    (GOOD.replace("seed = 42", "seed = 42\njobs = 0"), r"`jobs` must be -1 \(all cores\) or an integer >= 1; got 0"),
 ])
 def test_bad_files_give_one_line_errors(text, pattern):
     with pytest.raises(ScenarioFileError, match=pattern) as info:
@@ -208,3 +213,74 @@ def test_references_resolve_against_the_scenario_file_wherever_they_sit(tmp_path
         ref = stats.ttest_ind(y[a == 1], y[a == 0], equal_var=bool(changes)).pvalue
         assert user(data).pvalue == pytest.approx(ref, rel=1e-12)
         assert pickle.loads(pickle.dumps(user))(data).pvalue == pytest.approx(ref, rel=1e-12)
+
+
+# -- a top-level true_effect applies only where the analysis estimates the process's estimand --------------
+COUNTS = """
+[process]
+type = "count_two_arm"
+n = 30
+rate0 = 1.0
+rate_ratio = 0.7
+
+[analyses.poisson]
+type = "poisson_glm"
+
+[analyses.rank]
+type = "mann_whitney"
+estimand = "probability"
+"""
+
+
+def test_top_level_true_effect_applies_only_to_matching_analyses():
+    sf = loads("true_effect = -0.3\n" + COUNTS)
+    assert sf.scenario.true_effect_for("poisson") == -0.3  # a log rate ratio, the process's estimand
+    assert sf.scenario.true_effect_for("rank") is None  # a probability index: not the same quantity
+    res = sp.run(sf.scenario, reps=200, seed=1, n_jobs=1)
+    assert res.summaries["poisson"]["true_effect"] == -0.3 and "bias" in res.summaries["poisson"]
+    assert "bias" not in res.summaries["rank"] and "coverage" not in res.summaries["rank"]
+
+
+def test_top_level_true_effect_that_fits_no_analysis_is_refused():
+    text = "true_effect = 0.64\n" + COUNTS.replace('[analyses.poisson]\ntype = "poisson_glm"\n', "")
+    with pytest.raises(ScenarioFileError) as info:
+        loads(text, path="plan.toml")
+    msg = str(info.value)
+    assert "\n" not in msg and msg.startswith("plan.toml: `true_effect` applies to no analysis")
+    assert "log rate ratio" in msg and "rank: probability index" in msg and "[true_effects]" in msg
+
+
+def _user_process(rng, n=10, effect=0.5):
+    arm = np.repeat([0, 1], n)
+    return {"y": rng.normal(size=2 * n) + effect * arm, "arm": arm}
+
+
+def test_top_level_true_effect_with_a_user_process_must_be_unambiguous():
+    # a user process does not say what its effect is: one shared estimand is fine...
+    sc = sp.Scenario(_user_process, analyses=[sp.TTest(), sp.WelchT()], true_effect=0.5)
+    assert sc.true_effect_for("t_test") == sc.true_effect_for("welch_t") == 0.5
+    # ...analyses estimating different things are not
+    with pytest.raises(sp.ParameterError, match=r"^`true_effect` is ambiguous: .*t_test: not stated; "
+                                                r"mann_whitney: probability index.*\[true_effects\]"):
+        sp.Scenario(_user_process, analyses=[sp.TTest(), sp.MannWhitney(estimand="probability")], true_effect=0.5)
+    # per-analysis values settle it
+    ok = sp.Scenario(_user_process, analyses=[sp.TTest(), sp.MannWhitney(estimand="probability")],
+                     true_effect=0.5, true_effects={"mann_whitney": 0.64})
+    assert ok.true_effect_for("t_test") == 0.5 and ok.true_effect_for("mann_whitney") == 0.64
+    # a change of parameters that makes it ambiguous is refused too
+    plain = sp.Scenario(_user_process, analyses=[sp.TTest(), sp.MannWhitney(estimand="none")], true_effect=0.5)
+    assert plain.true_effect_for("mann_whitney") == 0.5
+    with pytest.raises(sp.ParameterError, match="ambiguous"):
+        plain.with_params(**{"mann_whitney.estimand": "probability"})
+
+
+def test_run_accepts_a_scenario_file_path(tmp_path):
+    p = tmp_path / "demo.toml"
+    p.write_text(GOOD)
+    from_path = sp.run(str(p), reps=200, n_jobs=1)
+    from_object = sp.run(load(p).scenario, reps=200, seed=42, n_jobs=1)
+    assert from_path.seed == 42  # the file's seed
+    assert from_path.summaries["student"]["power"] == from_object.summaries["student"]["power"]
+    assert sp.run(p, n_jobs=1).reps == 500  # the file's reps when none is given
+    with pytest.raises(sp.ParameterError, match=r"`scenario` must be a Scenario or a scenario file path"):
+        sp.run({"process": "normal_two_arm"}, reps=10)

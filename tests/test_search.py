@@ -13,7 +13,7 @@ from scipy import optimize, stats
 
 import simpower as sp
 from simpower.errors import ParameterError
-from simpower.search import detectable_effect, fit_probit, required_n
+from simpower.search import detectable_effect, fit_probit, required_n, runnable_low
 from simpower.sequential import MemoryStore
 
 
@@ -170,3 +170,77 @@ def test_required_events_against_schoenfeld():
     events = 2 * res.estimate
     assert res.at_answer().process.expected_events() == pytest.approx(2 * res.value)
     assert abs(events - d_ref) <= 4 * 2 * se_of(res)
+
+
+# -- messages name what is true -----------------------------------------------------------------
+def _welch(data):
+    y, arm = np.asarray(data["y"]), np.asarray(data["arm"])
+    return stats.ttest_ind(y[arm == 1], y[arm == 0], equal_var=False)
+
+
+def _needs_8_per_arm(data):
+    """A per-replicate analysis that cannot fit fewer than 8 observations per arm (like a model with many terms)."""
+    y, arm = np.asarray(data["y"]), np.asarray(data["arm"])
+    if (arm == 0).sum() < 8:
+        raise np.linalg.LinAlgError("singular design: fewer than 8 observations per arm")
+    return _welch(data)
+
+
+def _mostly_fails_below_8(data):
+    """Fails on most replicates with fewer than 8 per arm: when the control mean is above -0.6 (88% at n = 4;
+    the engine's fixed trial replicates include one below, so the analysis is not refused as unfit)."""
+    y, arm = np.asarray(data["y"]), np.asarray(data["arm"])
+    if (arm == 0).sum() < 8 and y[arm == 0].mean() > -0.6:
+        raise np.linalg.LinAlgError("singular design")
+    return _welch(data)
+
+
+def test_a_point_that_stops_the_search_is_named_by_its_parameter_values():
+    sc = sp.Scenario(sp.NormalTwoArm(n=40, effect=0.5), analyses={"fit": _mostly_fails_below_8})
+    with pytest.raises(sp.RunError) as info:
+        required_n(sc, 0.8, low=4, high=120, seed=1, n_jobs=1)
+    msg = str(info.value)
+    assert "replicates at n = 4 (" in msg and "error:LinAlgError" in msg
+    assert "grid point" not in msg and not any(len(w) >= 10 and w.isdigit() for w in msg.split())
+    assert "in the store" not in msg  # an in-memory search keeps nothing after it stops
+
+
+def test_the_default_range_starts_where_every_analysis_runs():
+    # doubling from the smallest valid n (2): 2 and 4 fail on every trial replicate, 8 runs
+    sc = sp.Scenario(sp.NormalTwoArm(n=40, effect=0.5), analyses={"fit": _needs_8_per_arm, "welch": _welch})
+    assert runnable_low(sc, "n", 2, 40, True) == 8
+    res = required_n(sc, 0.8, seed=3, n_jobs=1, max_reps=2000, rel_tol=0.2)
+    assert res.settings["low"] == 8 and "starts at n = 8" in res.note
+    assert (res.table["value"] >= 8).all() and res.table["failures"].sum() == 0
+    # an analysis that runs everywhere keeps the default start
+    plain = sp.Scenario(sp.NormalTwoArm(n=40, effect=0.5), analyses={"welch": _welch})
+    assert runnable_low(plain, "n", 2, 40, True) == 2
+
+
+class _StopAfter:
+    """A per-replicate Welch test that raises KeyboardInterrupt (as Ctrl-C would) after ``calls`` replicates."""
+
+    def __init__(self, calls):
+        self.left = calls
+
+    def __call__(self, data):
+        self.left -= 1
+        if self.left < 0:
+            raise KeyboardInterrupt
+        return _welch(data)
+
+
+def test_an_interrupted_search_without_a_store_says_nothing_was_saved():
+    sc = sp.Scenario(sp.NormalTwoArm(n=40, effect=0.5), analyses={"w": _StopAfter(450)})
+    with pytest.raises(sp.RunInterrupted) as info:
+        required_n(sc, 0.8, low=10, high=120, seed=1, n_jobs=1)
+    msg = str(info.value)
+    assert "nothing was saved" in msg and "store" in msg and "are in the store" not in msg
+
+
+def test_an_interrupted_search_with_a_store_names_it(tmp_path):
+    path = tmp_path / "s.sqlite"
+    sc = sp.Scenario(sp.NormalTwoArm(n=40, effect=0.5), analyses={"w": _StopAfter(450)})
+    with pytest.raises(sp.RunInterrupted) as info:
+        required_n(sc, 0.8, low=10, high=120, seed=1, n_jobs=1, store=str(path))
+    assert f"are in {path}" in str(info.value) and "nothing was saved" not in str(info.value)

@@ -26,7 +26,10 @@ def main(args) -> int:
     import pandas as pd
 
     from ..engine.store import open_store
+    from .common import check_output_file
 
+    if args.out is not None:
+        check_output_file("OUT", args.out)
     with open_store(args.store) as st:
         if args.out is None:
             table = args.table or "points"

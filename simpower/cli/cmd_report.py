@@ -13,7 +13,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from .common import add_run_options, load_scenario
+from .common import add_run_options, check_output_folder, load_scenario
 from .planning import (REPORT_FIELDS, engine_of, null_settings, plot_axis, run_null, run_search,
                        run_sweep, seed_of, write_outputs)
 
@@ -60,6 +60,7 @@ def main(args) -> int:
         outdir = Path(args.out or block.get("out", "report"))
         if sf.path is not None and not Path(outdir).is_absolute() and not args.out and "out" in block:
             outdir = sf.path.parent / outdir
+        check_output_folder("--out" if args.out else "report.out", outdir)
     ns = null_settings(sf, args, default_on=True)
     if ns is not None:  # a boundary that cannot be placed is refused before anything runs
         from ..nullpoints import null_points

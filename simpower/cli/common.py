@@ -14,7 +14,7 @@ def add_run_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("scenario", help="scenario file (TOML)")
     p.add_argument("--reps", type=int, help="replicates (overrides the file's `reps`)")
     p.add_argument("--seed", type=int, help="seed, an integer >= 0 (overrides the file's `seed`)")
-    p.add_argument("--jobs", type=int, help="worker processes; -1 = all cores (default)")
+    p.add_argument("--jobs", type=int, help="worker processes: -1 = all cores (default), or a count >= 1")
     p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                    help="change a scenario parameter, e.g. --set n=80 --set outcome.cv=1.5 (repeatable)")
     p.add_argument("--json", metavar="PATH", help="also write the result as JSON to PATH")
@@ -116,6 +116,10 @@ def engine_options(sf: ScenarioFile, args, fingerprint: str | None = None) -> di
     backend = getattr(args, "backend", None) or ex.get("backend") or ("dask" if address else None)
     if address and backend != "dask":
         raise ParameterError(f"`--address` is for the dask backend; got --backend {backend}.")
+    if address:
+        from ..engine.runner import check_address
+
+        check_address(address, "--address" if getattr(args, "address", None) else "execution.address")
     rate = getattr(args, "max_failure_rate", None)
     timeout = getattr(args, "timeout", None)
     timeout = timeout if timeout is not None else ex.get("timeout")
@@ -152,6 +156,10 @@ def load_scenario(args) -> ScenarioFile:
     from ..functions import reference_folder
     from ..scenario_files import from_data
 
+    if args.jobs is not None:
+        from .._validation import Jobs
+
+        Jobs(optional=False).clean("--jobs", args.jobs)
     overrides = {"reps": args.reps, "seed": args.seed, "jobs": args.jobs}
     resumed = getattr(args, "resumed_from", None)
     if resumed is not None:
@@ -172,10 +180,7 @@ def argv_of(args=None) -> list[str]:
 
 
 def jobs_of(sf: ScenarioFile, args) -> int:
-    j = sf.run.get("jobs", -1)
-    if j == 0:
-        raise ParameterError("`jobs` must be -1 (all cores) or >= 1; got 0.")
-    return j
+    return sf.run.get("jobs", -1)  # checked by the loader (-1 or >= 1)
 
 
 def progress_of(args) -> bool | None:
@@ -190,3 +195,59 @@ def command_line(seed: int | None = None, args=None) -> str:
     if seed is not None and not any(a == "--seed" or a.startswith("--seed=") for a in argv):
         argv += ["--seed", str(seed)]
     return "simpower " + " ".join(shlex.quote(a) for a in argv)
+
+
+#: output options by kind: files need an existing folder; stems and folders are created (with parents)
+OUTPUT_FILES = {"json": "--json", "csv": "--csv", "parquet": "--parquet"}
+OUTPUT_STEMS = {"plot": "--plot"}
+OUTPUT_FOLDERS = {"report": "--report"}
+
+
+def _first_existing(path):
+    p = path
+    while not p.exists() and p != p.parent:
+        p = p.parent
+    return p
+
+
+def check_output_file(option: str, value) -> None:
+    """Refuse, before anything runs, an output file that cannot be written: its folder is missing or a file,
+    or the path is a folder."""
+    from pathlib import Path
+
+    path = Path(str(value))
+    if path.is_dir():
+        raise ParameterError(f"`{option}` {value}: is a folder; give a file path (e.g. {path / 'result'}).")
+    folder = path.parent
+    if not folder.is_dir():
+        what = "is a file" if folder.exists() else "does not exist"
+        raise ParameterError(f"`{option}` {value}: the folder {folder} {what}; create the folder first or give "
+                             f"another path.")
+
+
+def check_output_folder(option: str, value, stem: bool = False) -> None:
+    """Refuse a folder output (or the folder of a file stem) that is, or sits under, an existing file."""
+    from pathlib import Path
+
+    path = Path(str(value))
+    folder = path.parent if stem else path
+    if stem and path.is_dir():
+        raise ParameterError(f"`{option}` {value}: is a folder; give a file name stem (e.g. {path / 'power'}).")
+    hit = _first_existing(folder)
+    if hit.exists() and not hit.is_dir():
+        where = "is a file" if hit == folder else f"lies under the file {hit}"
+        raise ParameterError(f"`{option}` {value}: {where}, not a folder; give a folder path.")
+
+
+def check_outputs(args) -> None:
+    """Check every output option of the command line before it runs (see :data:`OUTPUT_FILES`)."""
+    for attr, option in OUTPUT_FILES.items():
+        if getattr(args, attr, None):
+            check_output_file(option, getattr(args, attr))
+    for attr, option in OUTPUT_STEMS.items():
+        if getattr(args, attr, None):
+            check_output_folder(option, getattr(args, attr), stem=True)
+    for attr, option in OUTPUT_FOLDERS.items():
+        if getattr(args, attr, None):
+            check_output_folder(option, getattr(args, attr))
+

@@ -1,5 +1,8 @@
 """Entry point: finds the command modules and turns errors into one line and exit code 2.
 
+Output paths (--json, --csv, --report, --out...) are checked before a command runs. Output cut
+short by the reader (``simpower ... | head``) ends quietly with exit code 141 (128 + SIGPIPE).
+
 Each ``simpower/cli/cmd_<name>.py`` defines ``register(subparsers)`` adding
 its sub-command with ``set_defaults(func=...)``; ``func(args)`` returns the exit
 code. Adding a command means adding a module; nothing here changes.
@@ -17,6 +20,8 @@ from ..errors import SimpowerError
 
 EXIT_BAD_INPUT = 2
 EXIT_INTERRUPTED = 130
+#: output closed early (``simpower ... | head``): 128 + SIGPIPE, what a shell reports for a killed writer
+EXIT_BROKEN_PIPE = 141
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -51,9 +56,29 @@ def main(argv: list[str] | None = None) -> int:
 
     previous, warnings.showwarning = warnings.showwarning, _one_line_warning
     try:
-        return _main(argv)
+        code = _main(argv)
+        sys.stdout.flush()  # a closed reader shows here, inside the handler, not at interpreter exit
+        return code
+    except BrokenPipeError:
+        return _quiet_broken_pipe()
     finally:
         warnings.showwarning = previous
+
+
+def _quiet_broken_pipe() -> int:
+    """The reader of our output went away (``| head``): stop quietly, without a traceback.
+
+    stdout is pointed at /dev/null so that Python's final flush of the
+    unwritable buffer raises nothing either.
+    """
+    import os
+
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError):  # no real stdout (captured in tests)
+        pass
+    return EXIT_BROKEN_PIPE
 
 
 def _main(argv: list[str] | None) -> int:
@@ -63,7 +88,12 @@ def _main(argv: list[str] | None) -> int:
         parser.print_help(sys.stderr)
         return EXIT_BAD_INPUT
     try:
+        from .common import check_outputs
+
+        check_outputs(args)  # an unwritable output is refused before anything runs
         return int(args.func(args) or 0)
+    except BrokenPipeError:
+        raise
     except KeyboardInterrupt:
         print("simpower: interrupted.", file=sys.stderr)
         return EXIT_INTERRUPTED
@@ -72,7 +102,14 @@ def _main(argv: list[str] | None) -> int:
 
         print(f"simpower: error: {exc}", file=sys.stderr)
         return EXIT_INTERRUPTED if isinstance(exc, RunInterrupted) else EXIT_BAD_INPUT
-    except (ValueError, TypeError, KeyError, OSError) as exc:
+    except OSError as exc:
+        if args.debug:
+            raise
+        what = f"{exc.filename}: {exc.strerror}" if exc.filename and exc.strerror else f"{type(exc).__name__}: {exc}"
+        print(f"simpower: error: {what}; check the path and its folder (run with --debug for the traceback)",
+              file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except (ValueError, TypeError, KeyError) as exc:
         if args.debug:
             raise
         print(f"simpower: error: {type(exc).__name__}: {exc} (run with --debug for the traceback)", file=sys.stderr)

@@ -42,10 +42,11 @@ import time
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Protocol, Sequence
+from typing import Any, Mapping, Protocol, Sequence
 
 import numpy as np
 
+from .._validation import Jobs
 from ..errors import ParameterError, RunError
 from ..result import MissingRecords, RunResult
 from ..summaries import WARNING_PREFIX, PointStats
@@ -154,6 +155,8 @@ class _Point:
     hyp: dict = field(default_factory=dict)
     #: streaming mode, records spooled to disk
     spool: RecordSpool | None = None
+    #: the point's parameters in words for messages ("n = 48, icc = 0.05"); "" for a single run
+    label: str = ""
 
     def add(self, out: ChunkOutput) -> None:
         self.stats.add(out)
@@ -202,8 +205,10 @@ def _check_failures(pt: _Point, limit: float, store) -> None:
             "Fix the analysis"
     shown = ", ".join(f"{c} x{n}" for c, n in sorted(causes.items(), key=lambda kv: -kv[1]))
     first = "; ".join(f"first {c}: {book.messages.get(c, '')}" for c in list(causes)[:3])
-    kept = f" Finished chunks are kept in {getattr(store, 'path', 'the store')}." if store is not None else ""
-    raise RunError(f"stopped: {part} {failed} on {count} of {pt.done} replicates at grid point {pt.key} "
+    place = _kept_in(store)
+    kept = f" Finished chunks are kept in {place}." if place else ""
+    at = f" at {pt.label}" if pt.label else ""
+    raise RunError(f"stopped: {part} {failed} on {count} of {pt.done} replicates{at} "
                    f"({count / pt.done:.1%} > max_failure_rate {limit:g}): {shown} ({first}). {fix} "
                    f"or raise `max_failure_rate` (--max-failure-rate).{kept}")
 
@@ -221,6 +226,34 @@ def part_label(component) -> str:
         return str(component.spec()["type"])
     except Exception:
         return type(component).__name__
+
+
+def _kept_in(store) -> str | None:
+    """Where finished chunks outlive this call: a store's path ('the store' for one without), or None.
+
+    A :class:`~simpower.sequential.MemoryStore` keeps chunks only in memory;
+    it counts only through the store behind it (``backing``), if any.
+    """
+    if store is not None and hasattr(store, "backing"):
+        store = store.backing
+    if store is None:
+        return None
+    return str(getattr(store, "path", None) or "the store")
+
+
+def _fmt_value(v) -> str:
+    if isinstance(v, float):
+        return f"{v:g}"
+    return str(v)
+
+
+def point_labels(scenarios: Sequence) -> list[str]:
+    """Each scenario's parameters that differ between them, in words ("n = 48, icc = 0.05")."""
+    if len(scenarios) < 2:
+        return [""] * len(scenarios)
+    params = [sc.get_params() for sc in scenarios]
+    names = [k for k in params[0] if any(p.get(k) != params[0][k] for p in params[1:])]
+    return [", ".join(f"{k} = {_fmt_value(p.get(k))}" for k in names) for p in params]
 
 
 def _progress(total: int, enabled: bool | None, desc: str, initial: int = 0):
@@ -269,26 +302,61 @@ def _check_args(reps, keys, n_scen, chunk_size, fit_trouble, max_failure_rate, t
     return reps_list, keys
 
 
+def check_address(address: Any, name: str = "address") -> Any:
+    """A dask scheduler address as given, once it looks like SCHEME://HOST:PORT (or HOST:PORT)."""
+    if address is None or not isinstance(address, str):
+        return address  # None, or a dask Client object
+    text = address.strip()
+    scheme, sep, rest = text.partition("://")
+    if not sep:
+        scheme, rest = "tcp", text
+    if scheme in ("tcp", "tls"):
+        host, colon, port = rest.rstrip("/").rpartition(":")
+        if not (colon and host.strip("[]") and port.isdigit() and 0 < int(port) < 65536):
+            raise ParameterError(f"`{name}` must look like tcp://HOST:PORT (e.g. tcp://10.0.0.5:8786), with the "
+                                 f"scheduler's port; got {address!r}.")
+    return text
+
+
+def check_execution(n_jobs: Any, backend: Any, address: Any) -> tuple[int | None, str | None, Any]:
+    """Validated ``(n_jobs, backend, address)``; an ``address`` implies ``backend='dask'``."""
+    n_jobs = Jobs().clean("n_jobs", n_jobs)
+    backend = check_backend(backend)
+    address = check_address(address)
+    if address is not None and address != "":
+        if backend is None:
+            backend = "dask"
+        elif backend != "dask":
+            raise ParameterError(f"`address` is a dask scheduler's; it cannot be used with backend={backend!r} "
+                                 f"(drop `address`, or use backend='dask').")
+    return n_jobs, backend, address or None
+
+
 def run_many(scenarios: Sequence, reps: int | Sequence[int], *, seed=None, n_jobs: int | None = -1,
              chunk_size: int | None = None, progress: bool | None = None, fit_trouble: str = "failure",
              backend: str | None = None, address: Any = None, store: Any = None,
              max_failure_rate: float = 0.5, keys: Sequence[int] | None = None, desc: str = "simulating",
-             timeout: float | None = None, keep_records: bool | None = None) -> list[RunResult]:
+             timeout: float | None = None, keep_records: bool | None = None,
+             labels: Mapping[int, str] | None = None) -> list[RunResult]:
     """Run several scenarios (grid points) with one pool of workers.
 
-    Point ``i`` uses seed key ``keys[i]`` (default ``i``). See :func:`run` for
-    the other parameters; ``reps`` may give one count per scenario.
+    Point ``i`` uses seed key ``keys[i]`` (default ``i``). ``labels`` maps a
+    key to the point's parameters in words for messages (default: the
+    parameters in which the scenarios differ). See :func:`run` for the other
+    parameters; ``reps`` may give one count per scenario.
     """
     scenarios = list(scenarios)
     reps_list, keys = _check_args(reps, keys, len(scenarios), chunk_size, fit_trouble, max_failure_rate,
                                   timeout, keep_records)
-    backend = check_backend(backend)
+    n_jobs, backend, address = check_execution(n_jobs, backend, address)
     store, owned = _open_store(store)
     try:
         stored_seed = getattr(store, "seed", None) if store is not None else None
         entropy = normalize_seed(stored_seed if seed is None and stored_seed is not None else seed)
+        if labels is None:
+            labels = dict(zip(keys, point_labels(scenarios)))
         return _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend,
-                    address, store, max_failure_rate, desc, timeout, keep_records)
+                    address, store, max_failure_rate, desc, timeout, keep_records, labels)
     finally:
         if owned:
             store.close()
@@ -311,7 +379,7 @@ def _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble):
 PREFLIGHT_REPLICATES = 3
 
 
-def preflight(scenario) -> None:
+def preflight(scenario, label: str = "") -> None:
     """Refuse at once an analysis that cannot analyse the process's data at all.
 
     Draws :data:`PREFLIGHT_REPLICATES` replicates with a fixed generator (the
@@ -345,20 +413,23 @@ def preflight(scenario) -> None:
             exc = errors[0]
             raise ParameterError(
                 f"analysis `{name}` cannot analyse the data of process `{part_label(scenario.process)}`: "
-                f"it raised {type(exc).__name__}: {exc} on every trial replicate; check that the analysis fits "
-                f"the design (columns {', '.join(sorted(map(str, data[0])))}).")
+                f"it raised {type(exc).__name__}: {exc} on every trial replicate{f' at {label}' if label else ''}; "
+                f"check that the analysis fits the design (columns {', '.join(sorted(map(str, data[0])))})"
+                f"{' and data of that shape' if label else ''}.")
 
 
 def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend, address,
-         store, max_failure_rate, desc, timeout, keep_records):
+         store, max_failure_rate, desc, timeout, keep_records, labels):
     seen = set()
-    for sc in scenarios:  # one trial per kind of scenario (the grid points of a sweep share theirs)
+    for sc, key in zip(scenarios, keys):  # one trial per kind of scenario (the grid points of a sweep share theirs)
         kind = (type(sc.process).__name__, tuple((n, type(a).__name__) for n, a in sc.analyses.items()))
         if kind not in seen:
             seen.add(kind)
-            preflight(sc)
+            preflight(sc, str(labels.get(key, "")))
     sizes = [int(chunk_size or default_chunk_size(s)) for s in scenarios]
     points = _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble)
+    for pt in points:
+        pt.label = str(labels.get(pt.key, ""))
     by_key = {pt.key: pt for pt in points}
     tasks = []
     reused = 0
@@ -393,9 +464,11 @@ def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_
             _check_failures(pt, max_failure_rate, store)
     except KeyboardInterrupt:
         done = sum(pt.done for pt in points)
-        where = (f"; {done} of {sum(reps_list)} replicates are in {getattr(store, 'path', 'the store')}: "
-                 f"run the same call again (same store) to resume" if store is not None else
-                 "; nothing was kept: give a store (store=PATH, --store PATH) to make a run resumable")
+        place = _kept_in(store)
+        where = (f"; {done} of {sum(reps_list)} replicates are in {place}: "
+                 f"run the same call again (same store) to resume" if place else
+                 f"; nothing was saved ({done} of {sum(reps_list)} replicates were done): give a store "
+                 f"(store=PATH, --store PATH) to keep progress")
         raise RunInterrupted("interrupted" + where + ".") from None
     finally:
         gen.close()
@@ -425,7 +498,26 @@ def _result(pt: _Point, entropy, seconds, fit_trouble, n_jobs, backend, store) -
                      messages=messages, hypotheses=pt.hyp, **common)
 
 
-def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
+def _scenario_of(scenario, reps, seed):
+    """(Scenario, reps, seed): a scenario file path is loaded, its ``reps`` and ``seed`` filling the unset ones."""
+    if isinstance(scenario, (str, Path)):
+        from ..scenario_files import load  # a path is the one input the engine reads from a file
+
+        sf = load(scenario)
+        reps = sf.run.get("reps", DEFAULT_REPS) if reps is None else reps
+        seed = sf.run.get("seed") if seed is None else seed
+        return sf.scenario, reps, seed
+    if not (hasattr(scenario, "process") and hasattr(scenario, "analyses")):
+        raise ParameterError(f"`scenario` must be a Scenario or a scenario file path (or "
+                             f"sp.load_scenario('x.toml').scenario); got {type(scenario).__name__}.")
+    return scenario, DEFAULT_REPS if reps is None else reps, seed
+
+
+#: replicates of ``run`` when neither the call nor the scenario file gives ``reps``
+DEFAULT_REPS = 1000
+
+
+def run(scenario, reps: int | None = None, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
         progress: bool | None = None, fit_trouble: str = "failure", backend: str | None = None,
         address: Any = None, store: Any = None, max_failure_rate: float = 0.5, point: int | None = None,
         timeout: float | None = None, keep_records: bool | None = None) -> RunResult:
@@ -433,13 +525,19 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
 
     Parameters
     ----------
-    scenario : Scenario
-    reps : int >= 1
+    scenario : Scenario, or str / Path of a scenario file
+        A path is loaded with :func:`simpower.load_scenario`; the file's ``reps`` and
+        ``seed`` are used unless given here (its other run settings, such as
+        ``jobs`` or ``[execution]``, are read by the command line only).
+    reps : int >= 1, optional
+        Default: the scenario file's ``reps``, else 1000.
     seed : int >= 0, SeedSequence or None
         None draws fresh entropy (or reuses the store's seed when resuming);
         the result records it (``result.seed``).
     n_jobs : int
-        Worker processes; -1 (default) uses all cores; 1 runs in this process.
+        Worker processes: -1 (default) uses all cores, a count >= 1 that many;
+        1 runs in this process. Other values (0, and joblib's -2, -3... for
+        "all but some") are refused.
     chunk_size : int, optional
         Replicates per task; defaults to the plan's choice for the scenario.
         Part of the reproducibility promise: the same seed and chunk size give
@@ -450,10 +548,13 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
         What replicates whose analysis warned (non-convergence, singular fit)
         count as; the result shows both figures either way.
     backend : {None, 'loky', 'serial', 'threading', 'dask'}
-        None is loky worker processes (or this process when ``n_jobs=1``).
+        None is loky worker processes (or this process when ``n_jobs=1``),
+        or dask when an ``address`` is given.
     address : str or dask.distributed.Client, optional
-        The dask scheduler (``"tcp://host:8786"``) for ``backend='dask'``; None
-        uses the current dask client or starts a local cluster.
+        The dask scheduler (``"tcp://host:8786"``). Giving one implies
+        ``backend='dask'``; with another explicit ``backend`` it is refused.
+        Without it, ``backend='dask'`` uses the current dask client or starts
+        a local cluster.
     store : str, Path or store object, optional
         A run store file: finished chunks are committed there as they arrive
         and reused when the same call runs again (resume).
@@ -484,6 +585,7 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
     >>> abs(res.power - 0.80) < 4 * res.mcse   # Cohen (1988): n = 64 per arm gives 80% power
     True
     """
+    scenario, reps, seed = _scenario_of(scenario, reps, seed)
     store, owned = _open_store(store)
     try:
         if point is None:
