@@ -334,29 +334,41 @@ def true_effect_of(scenario, name: str) -> float | None:
 
 
 class PointStats:
-    """Chunk statistics of one grid point, folded in chunk order on demand.
+    """Chunk statistics of one grid point, folded in chunk order.
 
-    ``add`` takes chunks in any order (parallel workers, a resumed store);
-    the fold is always in chunk order, so a point's summaries are the same to
-    the last bit for any number of jobs, executor or interruption history,
-    and whether its records are held in memory, spooled or only in a store.
+    ``add`` takes chunks in any order (parallel workers, a resumed store).
+    Chunks that arrive in order are folded at once (the prefix); only chunks
+    that finished ahead of an earlier one wait, so memory does not grow with
+    the number of chunks. The fold is always in chunk order, so a point's
+    summaries are the same to the last bit for any number of jobs, executor
+    or interruption history, and whether its records are held in memory,
+    spooled or only in a store.
     """
 
     def __init__(self, scenario):
         self.analyses = list(scenario.analyses)
         self.alpha = scenario.alpha
         self.truth = {name: true_effect_of(scenario, name) for name in self.analyses}
-        self.chunks: dict[int, tuple[dict[str, AnalysisStats], dict]] = {}
+        #: chunks waiting for an earlier one, by chunk index
+        self.waiting: dict[int, tuple[dict[str, AnalysisStats], dict]] = {}
+        self._prefix: tuple[dict[str, AnalysisStats], dict] = ({n: AnalysisStats() for n in self.analyses}, {})
+        self._next = 0
 
-    def add_records(self, chunk: int, records: dict[str, dict[str, np.ndarray]], causes: list[str]) -> None:
-        """Add chunk ``chunk``'s records (per analysis: pvalue, estimate, se, ci_low, ci_high, status)."""
+    def add_records(self, chunk: int, records: dict[str, dict[str, np.ndarray]],
+                    causes: list[str]) -> dict[str, AnalysisStats]:
+        """Add chunk ``chunk``'s records (per analysis: pvalue, estimate, se, ci_low, ci_high, status);
+        returns the chunk's statistics per analysis."""
         per = {name: AnalysisStats.of(rec, causes, self.alpha, self.truth[name])
                for name, rec in records.items() if name in self.truth}
-        self.chunks[chunk] = (per, pair_counts({n: records[n] for n in self.analyses if n in records}, self.alpha))
+        self.waiting[chunk] = (per, pair_counts({n: records[n] for n in self.analyses if n in records}, self.alpha))
+        while self._next in self.waiting:
+            self._prefix = self._fold(self._prefix, self.waiting.pop(self._next))
+            self._next += 1
+        return per
 
-    def add(self, out) -> None:
+    def add(self, out) -> dict[str, AnalysisStats]:
         """Add a finished chunk (a :class:`simpower.engine.chunk.ChunkOutput`)."""
-        self.add_records(out.chunk, out.records, out.causes)
+        return self.add_records(out.chunk, out.records, out.causes)
 
     @classmethod
     def from_records(cls, scenario, records, chunk_size: int) -> "PointStats":
@@ -375,18 +387,24 @@ class PointStats:
             st.add_records(k, part, list(next(iter(records.values())).causes))
         return st
 
-    def folded(self) -> tuple[dict[str, AnalysisStats], dict[tuple[str, str], list[int]]]:
-        stats = {name: AnalysisStats() for name in self.analyses}
-        pairs: dict[tuple[str, str], list[int]] = {}
-        for k in sorted(self.chunks):
-            per, pr = self.chunks[k]
-            for name, t in per.items():
-                stats[name] = stats[name].merge(t)
-            for key, v in pr.items():
-                acc = pairs.setdefault(key, [0, 0, 0])
-                for j in range(3):
-                    acc[j] += v[j]
+    @staticmethod
+    def _fold(acc, chunk):
+        stats, pairs = dict(acc[0]), {k: list(v) for k, v in acc[1].items()}
+        per, pr = chunk
+        for name, t in per.items():
+            stats[name] = stats[name].merge(t)
+        for key, v in pr.items():
+            got = pairs.setdefault(key, [0, 0, 0])
+            for j in range(3):
+                got[j] += v[j]
         return stats, pairs
+
+    def folded(self) -> tuple[dict[str, AnalysisStats], dict[tuple[str, str], list[int]]]:
+        """All chunks so far, folded in chunk order (chunks after a gap follow in their order)."""
+        acc = self._prefix
+        for k in sorted(self.waiting):
+            acc = self._fold(acc, self.waiting[k])
+        return acc
 
 
 # ---------------------------------------------------------------------------

@@ -159,7 +159,7 @@ class _Point:
     label: str = ""
 
     def add(self, out: ChunkOutput) -> None:
-        self.stats.add(out)
+        chunk_stats = self.stats.add(out)
         if self.collector is not None:
             self.collector.add(out, out.chunk * self.chunk_size)
         else:
@@ -169,7 +169,7 @@ class _Point:
             if self.spool is not None:
                 self.spool.add(out, out.chunk * self.chunk_size, table)
         # failure counts come from the chunk's statistics (the one place they are counted)
-        for name, t in self.stats.chunks[out.chunk][0].items():
+        for name, t in chunk_stats.items():
             per = self.counts.setdefault(name, {})
             for cause, k in t.counts.items():
                 per[cause] = per.get(cause, 0) + k
