@@ -34,9 +34,10 @@ from pathlib import Path
 import pytest
 
 import simpower as sp
-from simpower.engine import store as store_mod
+from simpower.engine.store import runstore as store_mod
+from simpower.engine.store import writer as store_writer
 from simpower.engine.store import RunStore, open_store
-from simpower.engine.storefile import StoreBusy, explain
+from simpower.engine.store.files import StoreBusy, explain
 from simpower.errors import StoreError
 
 FIELDS = ("pvalue", "estimate", "se", "ci_low", "ci_high", "status")
@@ -222,7 +223,8 @@ def test_disk_full_while_saving_keeps_the_committed_chunks(tmp_path, monkeypatch
             conn.execute(f"PRAGMA max_page_count={pages + 80}")  # ~1.3 MB: 16-chunk commits fit, not 40
         return conn
 
-    monkeypatch.setattr(store_mod, "_connect", capped)
+    monkeypatch.setattr(store_mod, "_connect", capped)  # the run's connection, then the writer thread's
+    monkeypatch.setattr(store_writer, "_connect", capped)
     with pytest.raises(StoreError) as e:
         sp.run(scenario(), reps=40000, seed=9, n_jobs=1, chunk_size=1000, store=path)
     msg = str(e.value)
@@ -230,6 +232,7 @@ def test_disk_full_while_saving_keeps_the_committed_chunks(tmp_path, monkeypatch
     assert "chunks already committed are kept" in msg
     _no_afresh(msg)
     monkeypatch.setattr(store_mod, "_connect", real)
+    monkeypatch.setattr(store_writer, "_connect", real)
     with open_store(path) as st:
         kept = len(st.done_chunks())
     assert 0 < kept < 40

@@ -1,66 +1,14 @@
-"""The run store: a SQLite file holding every finished chunk, as data only.
+"""The run store object: open, bind grid points, save and load chunks, read back and export.
 
-One file per run or sweep. Each finished chunk is written in one transaction
-(its ``chunks`` row, the per-replicate arrays and the failure causes commit
-together or not at all), in WAL mode, so a ``kill -9`` at any moment leaves a
-valid store whose finished chunks a rerun reuses. With the default
-``sync="normal"`` a power cut may lose the last few commits (never corrupt the
-file); ``sync="full"`` makes every commit reach the disk before the run goes on.
-
-Nothing is pickled: each chunk's arrays of one analysis are raw
-little-endian bytes laid end to end, with their layout (field, dtype, shape)
-and a CRC-32 beside them, the scenario is its JSON spec, and only
-numeric dtypes from a short list are ever decoded -- a store received from
-someone else is safe to open.
-
-A chunk whose rows cannot be decoded (CRC, layout, sizes) is recomputed by the
-next run with a warning naming it (:meth:`RunStore.load`); a damaged plan of a
-grid point refuses the store. One process writes a store at a time (an
-``flock`` on ``STORE.lock``), and a failure to open or write names its real
-cause (:mod:`simpower.engine.storefile`).
-
-Each grid point records its own scenario fingerprint, the seed entropy and the
-chunk size; :meth:`RunStore.bind` refuses a point whose scenario, seed or chunk
-size changed, naming what changed. Because a chunk's numbers depend only on
-(seed, point key, chunk index, chunk size) (see :mod:`simpower.engine.chunk`),
-a resumed run equals an uninterrupted one bit for bit.
-
-Tables: ``meta(key, value)`` (format, version, provenance, the sync setting
-and, for a command-line run, the data-only plan ``simpower resume`` rebuilds
-the run from); ``points(point, fingerprint, seed, chunk_size, reps, analyses,
-scenario, updated_at)``; ``chunks(point, chunk, size, seconds,
-started_at, finished_at, worker, timeout_enforced)``; ``arrays(point, chunk,
-analysis, path, hypotheses, layout, crc32, data)``; ``causes(point, chunk,
-code, cause, message)``. (Format version 1 kept one ``arrays`` row per field
-and a ``chunk_analyses`` table; one row per chunk and analysis costs fewer
-pages per commit.)
-
-Examples
---------
->>> import simpower as sp, tempfile, os
->>> from simpower.engine.store import open_store
->>> path = os.path.join(tempfile.mkdtemp(), "run.sqlite")
->>> sc = sp.Scenario(sp.NormalTwoArm(n=20, effect=0.5), sp.TTest())
->>> res = sp.run(sc, reps=500, seed=3, n_jobs=1, store=path)
->>> with open_store(path) as st:
-...     reps = st.replicates()
-...     pts = st.points()
->>> len(reps), int(pts.loc[0, "reps_done"])
-(500, 500)
+See :mod:`simpower.engine.store` for the format and its promises.
 """
 
 from __future__ import annotations
 
 import json
-import math
-import queue
 import sqlite3
-import struct
-import threading
 import time
-import urllib.parse
 import weakref
-import zlib
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any, Iterator
@@ -68,365 +16,14 @@ from typing import Any, Iterator
 import numpy as np
 import pandas as pd
 
-from ..errors import StoreError
-from .chunk import ChunkOutput
-from .storefile import CANTOPEN, READONLY, WriterLock, explain, sqlite_code
-
-FORMAT = "simpower-run-store"
-VERSION = "2"
-#: the only dtypes ever decoded from a store
-DTYPES = {"<f8": np.dtype("<f8"), "<i2": np.dtype("<i2"), "<i4": np.dtype("<i4"), "<i8": np.dtype("<i8"),
-          "|b1": np.dtype("|b1")}
-SQLITE_MAGIC = b"SQLite format 3\x00"
-RECORD_FIELDS = ("pvalue", "estimate", "se", "ci_low", "ci_high")
-
-SCHEMA = """
-CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
-CREATE TABLE IF NOT EXISTS points (
-    point INTEGER PRIMARY KEY, fingerprint TEXT NOT NULL, seed TEXT NOT NULL, chunk_size INTEGER NOT NULL,
-    reps INTEGER NOT NULL, analyses TEXT NOT NULL, scenario TEXT NOT NULL, updated_at REAL);
-CREATE TABLE IF NOT EXISTS chunks (
-    point INTEGER NOT NULL, chunk INTEGER NOT NULL, size INTEGER NOT NULL, seconds REAL NOT NULL,
-    started_at REAL, finished_at REAL, worker TEXT, timeout_enforced INTEGER, PRIMARY KEY (point, chunk));
-CREATE TABLE IF NOT EXISTS arrays (
-    point INTEGER NOT NULL, chunk INTEGER NOT NULL, analysis TEXT NOT NULL, path TEXT, hypotheses TEXT,
-    layout TEXT NOT NULL, crc32 INTEGER NOT NULL, data BLOB NOT NULL, PRIMARY KEY (point, chunk, analysis));
-CREATE TABLE IF NOT EXISTS causes (
-    point INTEGER NOT NULL, chunk INTEGER NOT NULL, code INTEGER NOT NULL, cause TEXT NOT NULL, message TEXT,
-    PRIMARY KEY (point, chunk, code));
-"""
-TABLES = ("meta", "points", "chunks", "arrays", "causes")
-
-
-class ChunkDamaged(StoreError):
-    """One chunk's rows cannot be decoded (checksum, layout, sizes); nothing says the rest is unsound.
-
-    A store opened to write recomputes such a chunk (:meth:`RunStore.load`).
-    """
-
-    def __init__(self, where: str, reason: str):
-        self.where, self.reason = where, reason
-        super().__init__(f"{where} is damaged ({reason}); run the same command again (or simpower resume) to "
-                         f"recompute it: a chunk's numbers depend only on the seed, its grid point and its index.")
-
-
-# -- record codec ------------------------------------------------------------
-def _little(a: np.ndarray) -> np.ndarray:
-    a = np.asarray(a)
-    dt = a.dtype.newbyteorder("<") if a.dtype.byteorder not in ("|", "<") else a.dtype
-    if dt.str not in DTYPES:
-        raise StoreError(f"cannot store an array of dtype {a.dtype} (allowed: {', '.join(DTYPES)}).")
-    return np.ascontiguousarray(a, dtype=dt)
-
-
-def encode_record(rec: dict[str, np.ndarray]) -> tuple[str, int, memoryview]:
-    """(layout, crc32, bytes) of one analysis' arrays in a chunk, laid end to end.
-
-    ``layout`` is JSON ``[[field, dtype, shape], ...]`` in the order of the
-    bytes; every array is little-endian, of a dtype from :data:`DTYPES`. One
-    blob per chunk and analysis (not one per field) keeps a commit to a few
-    pages besides the data.
-    """
-    parts = [(f, _little(v)) for f, v in rec.items()]
-    layout = json.dumps([[f, v.dtype.str, list(v.shape)] for f, v in parts])
-    data = np.concatenate([v.reshape(-1).view(np.uint8) for _, v in parts]) if parts else np.empty(0, np.uint8)
-    view = memoryview(data)
-    return layout, zlib.crc32(view), view
-
-
-def decode_record(layout: str, crc: int, data: bytes, where: str = "") -> dict[str, np.ndarray]:
-    """The arrays encoded by :func:`encode_record`; checks dtypes, sizes and the CRC.
-
-    Raises :class:`ChunkDamaged` (``where`` names the chunk) when they do not hold.
-    """
-    try:
-        fields = [(str(f), str(dt), [int(d) for d in shape]) for f, dt, shape in json.loads(layout)]
-    except (ValueError, TypeError):
-        raise ChunkDamaged(where, f"unreadable array layout {str(layout)[:60]!r}") from None
-    for f, dt, _ in fields:
-        if dt not in DTYPES:
-            raise ChunkDamaged(where, f"array {f!r} of dtype {dt!r} refused: a store holds only {', '.join(DTYPES)}")
-    want = sum(DTYPES[dt].itemsize * math.prod(dims) for _, dt, dims in fields)
-    if not isinstance(data, (bytes, bytearray, memoryview)) or len(data) != want:
-        got = len(data) if isinstance(data, (bytes, bytearray, memoryview)) else 0
-        raise ChunkDamaged(where, f"arrays hold {got} bytes, their layout says {want}")
-    if not isinstance(crc, int) or zlib.crc32(data) != crc:
-        raise ChunkDamaged(where, "array checksum mismatch")
-    out, at = {}, 0
-    for f, dt, dims in fields:
-        d = DTYPES[dt]
-        size = d.itemsize * math.prod(dims)
-        out[f] = np.frombuffer(data, dtype=d, count=math.prod(dims), offset=at).reshape(dims).astype(
-            d.newbyteorder("="), copy=True)
-        at += size
-    return out
-
-
-# -- file checks ---------------------------------------------------------------
-def check_file(path: Path) -> None:
-    """Refuse files that are not SQLite or whose main file is shorter than its header says."""
-    size = path.stat().st_size
-    if size == 0:
-        return  # SQLite creates the file lazily; an empty file is a fresh store
-    with open(path, "rb") as fh:
-        head = fh.read(100)
-    if len(head) < 100 or head[:16] != SQLITE_MAGIC:
-        raise StoreError(f"{path}: not a simpower run store (not a SQLite file).")
-    wal = Path(str(path) + "-wal")
-    if wal.exists() and wal.stat().st_size > 0:
-        return  # a WAL to replay (e.g. after kill -9 during a checkpoint): SQLite's recovery decides
-    page = struct.unpack(">H", head[16:18])[0]
-    page = 65536 if page == 1 else page
-    pages = struct.unpack(">I", head[28:32])[0]
-    valid = head[24:28] == head[92:96]
-    if valid and pages and size < page * pages:
-        raise StoreError(f"{path}: the store is truncated ({size} bytes; its header says {page * pages}). "
-                         f"Restore it from a copy or move it away and start afresh.")
-
-
-def _spec_diff(old: Any, new: Any, prefix: str = "") -> list[str]:
-    """Dotted names whose values differ between two specs, with old -> new."""
-    if isinstance(old, dict) and isinstance(new, dict):
-        out = []
-        for k in sorted(set(old) | set(new), key=str):
-            out += _spec_diff(old.get(k, "<absent>"), new.get(k, "<absent>"), f"{prefix}{k}.")
-        return out
-    if old != new:
-        return [f"{prefix[:-1] or 'scenario'}: {old!r} -> {new!r}"]
-    return []
-
-
-def _check_plan(where: str, row: tuple) -> None:
-    """Refuse a grid point whose stored plan (fingerprint, seed, chunk size, reps, scenario) is unreadable.
-
-    Its chunks cannot be checked against the run without it, so unlike a
-    damaged chunk this refuses the store.
-    """
-    fp, seed, cs, reps, spec = row
-    bad = [name for name, ok in (("fingerprint", isinstance(fp, str) and fp.strip() != ""),
-                                 ("seed", _is_int(seed)), ("chunk_size", _is_int(cs)), ("reps", _is_int(reps)),
-                                 ("scenario", _is_json_object(spec))) if not ok]
-    if bad:
-        raise StoreError(f"{where}: its stored plan is damaged (unreadable {', '.join(bad)} in table points), so "
-                         f"its chunks cannot be checked against this run; restore the store from a copy, or move "
-                         f"it away and start afresh.")
-
-
-def _is_int(v: Any) -> bool:
-    try:
-        return not isinstance(v, (float, bytes)) and int(v) >= 0
-    except (TypeError, ValueError):
-        return False
-
-
-def _is_json_object(text: Any) -> bool:
-    try:
-        return isinstance(json.loads(text), dict)
-    except (TypeError, ValueError):
-        return False
-
-
-def _analyses_info(scenario) -> dict[str, dict[str, Any]]:
-    """Per analysis: the true value of its estimand (for bias and coverage read back from the store)."""
-    from ..summaries import true_effect_of
-
-    return {name: {"true_effect": true_effect_of(scenario, name)} for name in scenario.analyses}
-
-
-def _truths(analyses_text: str) -> dict[str, float | None]:
-    info = json.loads(analyses_text)
-    if isinstance(info, list):
-        return {name: None for name in info}
-    out = {}
-    for name, v in info.items():
-        te = v.get("true_effect") if isinstance(v, dict) else None
-        out[name] = float(te) if isinstance(te, (int, float)) and not isinstance(te, bool) else None
-    return out
-
-
-def _flatten(spec: dict, prefix: str = "") -> dict[str, Any]:
-    out = {}
-    for k, v in spec.items():
-        if isinstance(v, dict):
-            out.update(_flatten(v, f"{prefix}{k}."))
-        elif k != "type" and not k.startswith("_") and (v is None or isinstance(v, (int, float, str, bool))):
-            out[f"{prefix}{k}"] = v
-    return out
-
-
-def _insert_chunk(conn: sqlite3.Connection, out: ChunkOutput) -> None:
-    key = (int(out.point), int(out.chunk))
-    rows = [(*key, name, out.paths.get(name, ""), json.dumps(out.hypotheses.get(name, [])), *encode_record(rec))
-            for name, rec in out.records.items()]
-    for table in ("chunks", "arrays", "causes"):
-        conn.execute(f"DELETE FROM {table} WHERE point=? AND chunk=?", key)
-    conn.executemany("INSERT INTO arrays VALUES (?, ?, ?, ?, ?, ?, ?, ?)", rows)
-    if out.causes:
-        conn.executemany("INSERT INTO causes VALUES (?, ?, ?, ?, ?)",
-                         [(*key, j, cause, out.messages.get(cause, "")) for j, cause in enumerate(out.causes, 1)])
-    conn.execute("INSERT INTO chunks VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-                 (*key, int(out.size), float(out.seconds), float(out.started_at), time.time(), out.worker,
-                  None if out.timeout_enforced is None else int(out.timeout_enforced)))
-
-
-def write_chunks(conn: sqlite3.Connection, outs: list[ChunkOutput]) -> None:
-    """Whole chunks in one transaction: each chunk's arrays, causes, paths, then its ``chunks`` row.
-
-    A chunk is in the store exactly when its ``chunks`` row is; the
-    transaction makes that all-or-nothing.
-    """
-    conn.execute("BEGIN IMMEDIATE")
-    try:
-        for out in outs:
-            _insert_chunk(conn, out)
-    except BaseException:
-        _rollback(conn)
-        raise
-    conn.execute("COMMIT")
-
-
-def _rollback(conn: sqlite3.Connection) -> None:
-    """Roll back if a transaction is still open: SQLite ends it itself on some errors (SQLITE_FULL,
-    SQLITE_IOERR), and a second ROLLBACK would then hide the real error."""
-    if conn.in_transaction:
-        conn.execute("ROLLBACK")
-
-
-def write_chunk(conn: sqlite3.Connection, out: ChunkOutput) -> None:
-    """One chunk in one transaction."""
-    write_chunks(conn, [out])
-
-
-#: page size of new stores (fewer overflow pages for the per-chunk arrays)
-PAGE_SIZE = 16384
-#: checkpoint the WAL into the main file once it holds about this many bytes. Small, so the
-#: writer thread checkpoints while the run computes and closing the store has little left
-#: to copy (SQLite's default, 1000 pages, left up to 16 MB for the run's own thread at close:
-#: the store then cost about 10% of a t-test run instead of about 4%; scripts/bench_store.py).
-CHECKPOINT_BYTES = 1_600_000
-
-
-def _connect(path: Path, sync: str) -> sqlite3.Connection:
-    fresh = not path.exists() or path.stat().st_size == 0
-    conn = sqlite3.connect(str(path), isolation_level=None, timeout=60, check_same_thread=False)
-    if fresh:
-        conn.execute(f"PRAGMA page_size={PAGE_SIZE}")
-    conn.execute("PRAGMA journal_mode=WAL")
-    conn.execute(f"PRAGMA synchronous={sync.upper()}")
-    page = int(conn.execute("PRAGMA page_size").fetchone()[0])
-    conn.execute(f"PRAGMA wal_autocheckpoint={max(1, CHECKPOINT_BYTES // page)}")
-    return conn
-
-
-def _connect_read_only(path: Path) -> sqlite3.Connection:
-    """A read-only connection; in a folder SQLite may not write in, one that reads the file as it is.
-
-    Reading a WAL-mode store makes SQLite create ``STORE-shm`` beside it; in
-    a read-only folder (a shared drive, a copy on a read-only disk) that
-    fails. With no ``STORE-wal`` there, no run can be writing the store, so it
-    is opened ``immutable`` instead (SQLite then takes no locks).
-    """
-    uri = "file:" + urllib.parse.quote(str(path.resolve()))
-    conn = sqlite3.connect(uri + "?mode=ro", uri=True)
-    try:
-        conn.execute("SELECT count(*) FROM sqlite_master").fetchone()
-        return conn
-    except sqlite3.OperationalError as exc:
-        if sqlite_code(exc) not in (READONLY, CANTOPEN) or Path(str(path) + "-wal").exists():
-            raise
-        conn.close()
-    return sqlite3.connect(uri + "?mode=ro&immutable=1", uri=True)
-
-
-#: a finished chunk waits at most this long (seconds) on the writer thread for others to share
-#: its commit: fast runs then commit about a dozen chunks per transaction instead of one
-#: (fewer pages written per chunk), while a run killed loses at most this much work
-COMMIT_DELAY = 0.05
-
-
-class _Writer:
-    """A thread that commits chunks, so the run computes while SQLite writes.
-
-    The first chunk of a commit waits up to :data:`COMMIT_DELAY` for others;
-    those that arrived meanwhile are committed with it (at most ``group``,
-    each one whole). :meth:`flush` cuts the wait short. The queue is bounded
-    (back-pressure keeps memory bounded); :meth:`flush` waits for it to drain
-    and re-raises the first failure.
-    """
-
-    def __init__(self, path: Path, sync: str, depth: int = 32, group: int = 16, delay: float = COMMIT_DELAY):
-        self.path = path
-        self.group = group
-        self.delay = delay
-        self.queue: queue.Queue = queue.Queue(maxsize=depth)
-        self.error: BaseException | None = None
-        self.hurry = threading.Event()
-        self.conn = _connect(path, sync)
-        self.thread = threading.Thread(target=self._loop, name="simpower-store-writer", daemon=True)
-        self.thread.start()
-
-    def _loop(self):
-        while True:
-            batch = [self.queue.get()]
-            if batch[-1] is not None and self.delay > 0:
-                self.hurry.wait(self.delay)  # returns at once while a flush waits
-            while batch[-1] is not None and len(batch) < self.group:
-                try:
-                    batch.append(self.queue.get_nowait())
-                except queue.Empty:
-                    break
-            outs = [o for o in batch if o is not None]
-            try:
-                if outs and self.error is None:
-                    write_chunks(self.conn, outs)  # chunks waiting together commit together
-            except BaseException as exc:  # kept and re-raised in the run's thread
-                self.error = exc
-            finally:
-                for _ in batch:
-                    self.queue.task_done()
-            if batch[-1] is None:
-                return
-
-    def _raise(self):
-        if self.error is not None:
-            exc, self.error = self.error, None
-            if isinstance(exc, (sqlite3.Error, OSError)):
-                raise StoreError(explain(exc, self.path, "saving a chunk")) from None
-            raise exc
-
-    def put(self, out: ChunkOutput) -> None:
-        self._raise()
-        self.queue.put(out)
-
-    def flush(self) -> None:
-        self.hurry.set()
-        try:
-            self.queue.join()
-        finally:
-            self.hurry.clear()
-        self._raise()
-
-    def stop(self) -> None:
-        if self.conn is None:
-            return
-        if self.thread.is_alive():
-            self.hurry.set()
-            self.queue.put(None)
-            self.thread.join()
-        self.conn.close()
-        self.conn = None
-
-
-def _shutdown(writer: _Writer, lock: WriterLock | None = None) -> None:
-    """At exit or when the store is collected unclosed: commit what is queued, then let go of the lock."""
-    try:
-        writer.flush()
-    finally:
-        try:
-            writer.stop()
-        finally:
-            if lock is not None:
-                lock.release()
+from ...errors import StoreError
+from ..chunk import ChunkOutput
+from .codec import RECORD_FIELDS, ChunkDamaged, decode_record
+from .export import write_frames
+from .files import WriterLock, check_file, explain
+from .schema import (FORMAT, SCHEMA, TABLES, VERSION, _analyses_info, _check_plan, _flatten, _spec_diff,
+                     _truths)
+from .writer import _connect, _connect_read_only, _rollback, _shutdown, _Writer, write_chunk
 
 
 class RunStore:
@@ -532,8 +129,8 @@ class RunStore:
                 for stmt in SCHEMA.strip().split(";"):
                     if stmt.strip():
                         c.execute(stmt)
-                from .._version import __version__
-                from .._provenance import source_digest
+                from ..._version import __version__
+                from ..._provenance import source_digest
 
                 c.executemany("INSERT INTO meta VALUES (?, ?)", [
                     ("format", FORMAT), ("version", VERSION), ("created_at", repr(time.time())),
@@ -673,7 +270,7 @@ class RunStore:
         if getattr(self, "_code_checked", False):
             return
         self._code_checked = True
-        from .._provenance import source_digest
+        from ..._provenance import source_digest
 
         old = self.meta().get("simpower_source_sha256")
         if old and old != source_digest():
@@ -856,7 +453,7 @@ class RunStore:
         record i; an unfinished one lacks the missing chunks (``replicates()``
         carries explicit replicate numbers).
         """
-        from .collect import assemble_records
+        from ..collect import assemble_records
 
         if point is None:
             keys = sorted({r[0] for r in self._point_rows()})
@@ -920,7 +517,7 @@ class RunStore:
         Summaries use the stored chunks (a partial point is summarised over
         what finished; ``complete`` says whether all planned replicates are in).
         """
-        from ..summaries import AnalysisStats, finalise
+        from ...summaries import AnalysisStats, finalise
 
         out = []
         for point, fp, seed, cs, reps, analyses, spec_text in self._point_rows():
@@ -961,40 +558,7 @@ class RunStore:
         if table not in ("replicates", "points", "chunks", "failures"):
             raise StoreError(f"`table` must be 'replicates', 'points', 'chunks' or 'failures'; got {table!r}.")
         frames = self.iter_replicates() if table == "replicates" else iter([getattr(self, table)()])
-        return _write_frames(frames, path, fmt)
-
-
-def _write_frames(frames: Iterator[pd.DataFrame], path: Path, fmt: str) -> int:
-    n = 0
-    if fmt == "csv":
-        with open(path, "w", newline="") as fh:
-            for i, df in enumerate(frames):
-                df.to_csv(fh, index=False, header=i == 0)
-                n += len(df)
-        return n
-    try:
-        import pyarrow as pa
-        import pyarrow.parquet as pq
-    except ImportError:
-        raise StoreError("Parquet export needs pyarrow: pip install pyarrow.") from None
-    writer = None
-    schema = None
-    try:
-        for df in frames:
-            tbl = pa.Table.from_pandas(df, preserve_index=False)
-            if writer is None:
-                schema = tbl.schema
-                writer = pq.ParquetWriter(str(path), schema)
-            elif tbl.schema != schema:
-                tbl = tbl.cast(schema)
-            writer.write_table(tbl)
-            n += len(df)
-    finally:
-        if writer is not None:
-            writer.close()
-    if writer is None:
-        pd.DataFrame().to_parquet(path)
-    return n
+        return write_frames(frames, path, fmt)
 
 
 def open_store(path, mode: str = "r", **kw) -> RunStore:

@@ -1,6 +1,6 @@
 """The run store's file on disk: one writer at a time, and the true cause of a failure.
 
-Two jobs the SQLite layer does not do for the run store (:mod:`simpower.engine.store`):
+Two jobs the SQLite layer does not do for the run store (:mod:`simpower.engine.store`); also :func:`check_file`, the cheap check that a file is a whole SQLite file:
 
 * :class:`WriterLock` -- an exclusive ``flock`` on a sidecar file ``STORE.lock``
   that holds the writer's pid, host and start time. A second process that
@@ -36,11 +36,12 @@ import json
 import os
 import socket
 import stat
+import struct
 import tempfile
 import time
 from pathlib import Path
 
-from ..errors import StoreError
+from ...errors import StoreError
 
 try:  # POSIX
     import fcntl
@@ -321,3 +322,27 @@ def _explain(exc: BaseException, path: Path, doing: str, write: bool) -> str:
             return line(f"SQLite may not write the store (SQLite: {exc})",
                         "check the permissions of the store, its -wal and -shm files and its folder")
     return line(f"SQLite failed: {exc}", "check the path, its permissions and its disk")
+
+
+SQLITE_MAGIC = b"SQLite format 3\x00"
+
+
+def check_file(path: Path) -> None:
+    """Refuse files that are not SQLite or whose main file is shorter than its header says."""
+    size = path.stat().st_size
+    if size == 0:
+        return  # SQLite creates the file lazily; an empty file is a fresh store
+    with open(path, "rb") as fh:
+        head = fh.read(100)
+    if len(head) < 100 or head[:16] != SQLITE_MAGIC:
+        raise StoreError(f"{path}: not a simpower run store (not a SQLite file).")
+    wal = Path(str(path) + "-wal")
+    if wal.exists() and wal.stat().st_size > 0:
+        return  # a WAL to replay (e.g. after kill -9 during a checkpoint): SQLite's recovery decides
+    page = struct.unpack(">H", head[16:18])[0]
+    page = 65536 if page == 1 else page
+    pages = struct.unpack(">I", head[28:32])[0]
+    valid = head[24:28] == head[92:96]
+    if valid and pages and size < page * pages:
+        raise StoreError(f"{path}: the store is truncated ({size} bytes; its header says {page * pages}). "
+                         f"Restore it from a copy or move it away and start afresh.")
