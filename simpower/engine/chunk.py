@@ -13,7 +13,8 @@ Failure causes are strings: ``"error:<ExceptionType>"`` (the analysis raised),
 ``"nonfinite_pvalue"`` (NaN or infinite), ``"invalid_pvalue"`` (finite but outside
 [0, 1] by more than :data:`PVALUE_SLACK`), ``"crash"`` (the analysis killed
 its process: a segfault, ``os._exit``; see :mod:`simpower.engine.guard`),
-``"process:crash"`` (drawing the data killed it), ``"warning:<WarningType>"`` (fit trouble: the analysis
+``"process:crash"`` (drawing the data killed it: that replicate and the later
+ones of its chunk, whose random numbers would follow it), ``"warning:<WarningType>"`` (fit trouble: the analysis
 warned; its values are kept and the run's policy decides), ``"timeout"`` (a
 per-replicate call ran past the time limit). A failing replicate never stops
 the chunk; the first message of each cause is kept. A batch path that raises
@@ -303,11 +304,13 @@ def run_chunk(scenario, entropy: int, point: int, chunk: int, size: int,
         else:
             paths = {name: "per-replicate" for name in analyses}
             for i in range(size):
-                if (i, None) in crashed:  # drawing this replicate killed the process; later draws go on
+                if (i, None) in crashed:
+                    # drawing this replicate killed the process: how many numbers it took from the chunk's
+                    # stream is unknown, so it and the later replicates of the chunk cannot be drawn
                     code = causes.code(PROCESS_CRASH, crashed[(i, None)])
                     for rec in records.values():
-                        rec["status"][i] = code
-                    continue
+                        rec["status"][i:] = code
+                    break
                 if mark is not None:
                     mark(i, None)
                 try:

@@ -156,7 +156,7 @@ def _loky_results(fn: Callable, tasks: Iterator[tuple], jobs: int, fallback) -> 
     from .guard import worker_init
 
     executor = get_reusable_executor(max_workers=jobs, timeout=IDLE_WORKER_SECONDS, initializer=worker_init,
-                                     env=_worker_env(jobs))
+                                     initargs=(os.getpid(),), env=_worker_env(jobs))
     running: dict = {}
     try:
         for t in islice(tasks, 2 * jobs):

@@ -148,14 +148,10 @@ def _die_with_parent() -> None:
         pass
 
 
-def _forked_child(job, w: int, close: list[int]) -> None:
-    """Run one job in a forked child; never returns."""
-    code = 0
+def _run_job(job, w: int) -> int:
+    """Run one job in a worker, writing its markers and outcome to ``w``; the exit code if it must end."""
     try:
-        for fd in close:
-            os.close(fd)
-        _die_with_parent()
-        kind, fn, args, kwargs = job
+        kind, fn, args, kwargs = pickle.loads(job)
         if kind == "chunk":
             def mark(i, name, _w=w):
                 _write_all(_w, _frame(b"M", pickle.dumps((i, name))))
@@ -163,7 +159,7 @@ def _forked_child(job, w: int, close: list[int]) -> None:
         res = fn(*args, **kwargs)
         _write_all(w, _frame(b"O", pickle.dumps(res, protocol=pickle.HIGHEST_PROTOCOL)))
     except (SystemExit, KeyboardInterrupt) as exc:  # user code left the process: like a crash
-        code = exc.code if isinstance(exc, SystemExit) and isinstance(exc.code, int) and exc.code else 1
+        return exc.code if isinstance(exc, SystemExit) and isinstance(exc.code, int) and exc.code else 1
     except BaseException as exc:
         _write_all(w, _frame(b"E", _pack_error(exc)))
     finally:
@@ -172,6 +168,24 @@ def _forked_child(job, w: int, close: list[int]) -> None:
                 stream.flush()
             except Exception:
                 pass
+    return 0
+
+
+def _worker(jobs_r: int, w: int, close: list[int]) -> None:
+    """A forked worker: run the jobs it is sent, one at a time, until its pipe closes; never returns."""
+    code = 0
+    try:
+        for fd in close:
+            os.close(fd)
+        _die_with_parent()
+        while True:
+            frame = _read_frame(jobs_r)
+            if frame is None:
+                break
+            code = _run_job(frame[1], w)
+            if code:
+                break
+    finally:
         os._exit(code)
 
 
@@ -185,17 +199,23 @@ def _how(status: int) -> str:
     return f"exit status {os.WEXITSTATUS(status)}"
 
 
-class _Child:
-    def __init__(self, pid: int, rid: int):
-        self.pid, self.rid = pid, rid
+class _Worker:
+    def __init__(self, pid: int, jobs_w: int, res_r: int):
+        self.pid, self.jobs_w, self.res_r = pid, jobs_w, res_r
         self.buf = bytearray()
+        self.rid: int | None = None
         self.last = None
-        self.result: bytes | None = None
-        self.error: bytes | None = None
 
 
 def _zygote(req: int, resp: int, parent: int) -> None:
-    """The helper's loop: fork a child per request, relay its outcome. Exits when the parent is gone."""
+    """The helper's loop: hand each request to an idle forked worker (forking one if none), relay outcomes.
+
+    A worker that dies is reported as a crash of its request, with the last
+    call it marked; the next request gets a new worker. Exits (killing its
+    workers) when the parent is gone.
+    """
+    import gc
+
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's business; it closes our pipe
     from . import chunk  # noqa: F401  (imported once here, shared by every fork)
 
@@ -204,16 +224,53 @@ def _zygote(req: int, resp: int, parent: int) -> None:
     sel = selectors.DefaultSelector()
     sel.register(req, selectors.EVENT_READ, None)
     inbox, outbox = bytearray(), bytearray()
-    children: dict[int, _Child] = {}
+    workers: dict[int, _Worker] = {}  # by result pipe
     writing = False
 
     def quit_():
-        for c in children.values():
+        for wk in workers.values():
             try:
-                os.kill(c.pid, signal.SIGKILL)
+                os.kill(wk.pid, signal.SIGKILL)
             except OSError:
                 pass
         os._exit(0)
+
+    def fork_worker() -> _Worker:
+        jr, jw = os.pipe()
+        rr, rw = os.pipe()
+        gc.collect()
+        gc.freeze()  # objects made so far stay untouched by the child's collector: fewer copied pages
+        pid = os.fork()
+        if pid == 0:
+            _worker(jr, rw, [req, resp, jw, rr, *(fd for wk in workers.values() for fd in (wk.jobs_w, wk.res_r))])
+        os.close(jr)
+        os.close(rw)
+        os.set_blocking(rr, False)
+        wk = workers[rr] = _Worker(pid, jw, rr)
+        sel.register(rr, selectors.EVENT_READ, rr)
+        return wk
+
+    def dispatch(rid: int, blob: bytes):
+        try:
+            pickle.loads(blob)  # imports the user's modules here once, so later forks share them
+        except BaseException as exc:
+            return outbox.extend(_frame(b"D", pickle.dumps((rid, "error", _pack_error(exc)))))
+        wk = next((wk for wk in workers.values() if wk.rid is None), None) or fork_worker()
+        wk.rid, wk.last = rid, None
+        try:
+            _write_all(wk.jobs_w, _frame(b"J", blob))
+        except BrokenPipeError:  # the worker is gone; its end of file reports the request
+            pass
+
+    def finish(wk: _Worker):
+        sel.unregister(wk.res_r)
+        os.close(wk.res_r)
+        os.close(wk.jobs_w)
+        del workers[wk.res_r]
+        _, status = os.waitpid(wk.pid, 0)
+        if wk.rid is not None:
+            key = None if wk.last is None else pickle.loads(wk.last)
+            outbox.extend(_frame(b"D", pickle.dumps((wk.rid, "crash", (key, _how(status))))))
 
     while True:
         if outbox and not writing:
@@ -242,49 +299,24 @@ def _zygote(req: int, resp: int, parent: int) -> None:
                 if not data:
                     quit_()
                 inbox += data
-                for kind, payload in _frames(inbox):
-                    rid, blob = pickle.loads(payload)
-                    try:
-                        job = pickle.loads(blob)
-                    except BaseException as exc:
-                        outbox += _frame(b"D", pickle.dumps((rid, "error", _pack_error(exc))))
-                        continue
-                    r, w = os.pipe()
-                    pid = os.fork()
-                    if pid == 0:
-                        _forked_child(job, w, [req, resp, r, *children])
-                    os.close(w)
-                    os.set_blocking(r, False)
-                    children[r] = _Child(pid, rid)
-                    sel.register(r, selectors.EVENT_READ, r)
+                for _, payload in _frames(inbox):
+                    dispatch(*pickle.loads(payload))
             else:
-                fd = key.data
-                c = children[fd]
+                wk = workers[key.data]
                 try:
-                    data = os.read(fd, 1 << 20)
+                    data = os.read(wk.res_r, 1 << 20)
                 except BlockingIOError:
                     continue
-                if data:
-                    c.buf += data
-                    for kind, payload in _frames(c.buf):
-                        if kind == b"M":
-                            c.last = payload
-                        elif kind == b"O":
-                            c.result = payload
-                        else:
-                            c.error = payload
+                if not data:
+                    finish(wk)
                     continue
-                sel.unregister(fd)
-                os.close(fd)
-                del children[fd]
-                _, status = os.waitpid(c.pid, 0)
-                if c.result is not None:
-                    out = (c.rid, "ok", c.result)
-                elif c.error is not None:
-                    out = (c.rid, "error", c.error)
-                else:
-                    out = (c.rid, "crash", (None if c.last is None else pickle.loads(c.last), _how(status)))
-                outbox += _frame(b"D", pickle.dumps(out))
+                wk.buf += data
+                for kind, payload in _frames(wk.buf):
+                    if kind == b"M":
+                        wk.last = payload
+                    else:
+                        outbox.extend(_frame(b"D", pickle.dumps((wk.rid, "ok" if kind == b"O" else "error", payload))))
+                        wk.rid, wk.last = None, None
 
 
 # ---------------------------------------------------------------- the parent side
@@ -400,8 +432,10 @@ def crash_message(task: tuple, key: tuple, how: str) -> str:
     i, name = key
     where = f"chunk {chunk} of grid point {point}"
     if name is None:
-        what = "drawing the chunk's data" if i < 0 else f"drawing replicate {i} of {where}"
-        return f"{what} killed the process ({how})" + (f" in {where}" if i < 0 else "")
+        if i < 0:
+            return f"drawing the data of {where} killed the process ({how})"
+        return (f"drawing replicate {i} of {where} killed the process ({how}); the later replicates of the chunk, "
+                f"whose random numbers follow it, are counted with it")
     if i < 0:
         return f"the batch path of analysis `{name}` killed its process ({how}) in {where}; redone replicate by replicate"
     return f"analysis `{name}` killed its process ({how}) on replicate {i} of {where}"
@@ -468,17 +502,20 @@ def run_isolated(fn, tasks: Iterable[tuple], jobs: int = 1, max_failure_rate: fl
 _devnull = None
 
 
-def worker_init() -> None:
-    """Initializer of simpower's loky workers: exit when the parent dies; no fault dump on a crash.
+def worker_init(parent: int) -> None:
+    """Initializer of simpower's loky workers: exit when ``parent`` dies; no fault dump on a crash.
 
+    ``parent`` is the main process's PID, given when the pool is made: a worker
+    still importing when the main process died finds itself adopted at once.
     A crash is reported by the run (failure cause ``crash``), so loky's
     faulthandler dump of the dying worker is sent to /dev/null.
     """
     global _devnull
+    if os.getppid() != parent:
+        os._exit(1)
     if "PYTHONFAULTHANDLER" not in os.environ and not faulthandler.is_enabled():
         _devnull = open(os.devnull, "w")
         faulthandler.enable(file=_devnull)
-    parent = os.getppid()
 
     def watch():
         while True:
