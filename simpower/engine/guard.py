@@ -8,13 +8,14 @@ from a *helper*: a fresh interpreter started once per Python session, which
 imports simpower (and, by unpickling the scenario, the user's modules) and then
 only forks -- it never runs user code itself, so it never crashes.
 
-Each forked child runs one chunk with ``run_chunk(..., mark=...)``: before each
-call that may kill it (drawing data, an analysis on a replicate, a batch call)
-it writes the call's key ``(replicate, analysis)`` to its pipe. When the child
-dies before sending its records, the last key it wrote names the call that
-killed it; the chunk is redone in a new child with that call skipped and
-recorded as failure ``crash`` (``process:crash`` for a draw), until a child
-finishes. The chunk's random numbers are drawn exactly as on the normal path
+The helper hands each chunk to an idle forked worker (forking one when none
+is idle; workers are reused from chunk to chunk, like loky's), which runs it
+with ``run_chunk(..., mark=...)``: before each call that may kill it (drawing
+data, an analysis on a replicate, a batch call) it writes the call's key
+``(replicate, analysis)`` to its pipe. When a worker dies before sending the
+chunk's records, the last key it wrote names the call that killed it; the
+chunk is redone in another worker with that call skipped and recorded as
+failure ``crash`` (``process:crash`` for a draw), until one finishes. The chunk's random numbers are drawn exactly as on the normal path
 (the redo starts from the chunk's seed; calls before the crashed ones run
 again), so the records, cause codes included, are the same for any number of
 jobs, and equal to those of a run whose crashing calls had raised instead.
@@ -340,6 +341,7 @@ class Guard:
         self._ids = itertools.count()
         self.lock = threading.Lock()
         self.closed = False
+        self.owner = os.getpid()  # a forked copy of this process must not share our pipes
 
     def submit(self, kind: str, fn, args: tuple, kwargs: dict | None = None) -> int:
         try:
@@ -402,7 +404,7 @@ def acquire() -> tuple[Guard, bool]:
     """(guard, shared): the session's helper (started on first use), or a private one if it is busy."""
     global _shared
     with _shared_lock:
-        if _shared is None or _shared.closed or _shared.proc.poll() is not None:
+        if _shared is None or _shared.closed or _shared.owner != os.getpid() or _shared.proc.poll() is not None:
             _shared = Guard()
         g = _shared
     if g.lock.acquire(blocking=False):
@@ -422,7 +424,7 @@ def release(g: Guard, shared: bool, clean: bool) -> None:
 
 @atexit.register
 def _close_shared() -> None:
-    if _shared is not None:
+    if _shared is not None and _shared.owner == os.getpid():
         _shared.close()
 
 
