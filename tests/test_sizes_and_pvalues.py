@@ -151,3 +151,22 @@ def test_cli_refuses_huge_sizes_in_one_line(tmp_path):
     out = _cli(tmp_path, base.format(n=10**11), "--reps", "100", "--jobs", "1")
     assert out.returncode != 0 and "Traceback" not in out.stderr
     assert out.stderr.strip().count("\n") == 0 and "`n` = 100000000000 is too large" in out.stderr
+
+
+def test_streaming_tallies_fold_in_chunk_order_without_keeping_every_chunk():
+    from simpower.engine.chunk import run_chunk
+    from simpower.engine.tally import PointTally
+
+    sc = sp.Scenario(sp.NormalTwoArm(n=6, effect=0.3), sp.TTest())
+    outs = [run_chunk(sc, 5, 1, k, 50) for k in range(8)]
+    in_order, reversed_ = PointTally(sc, "failure"), PointTally(sc, "failure")
+    for out in outs:
+        in_order.add(out)
+        assert not in_order.chunks  # folded at once: memory does not grow with the number of chunks
+    for out in reversed(outs):
+        reversed_.add(out)
+    a, b = in_order.folded()[0]["t_test"], reversed_.folded()[0]["t_test"]
+    assert (a.est.n, a.est.mean, a.est.m2, a.rejections) == (b.est.n, b.est.mean, b.est.m2, b.rejections)
+    est = np.concatenate([o.records["t_test"]["estimate"] for o in outs])
+    # numpy's two-pass sample variance of all estimates (Chan, Golub & LeVeque 1983: the pairwise update agrees)
+    assert abs(a.est.var() - np.var(est, ddof=1)) <= 1e-12 * np.var(est, ddof=1)

@@ -4,9 +4,11 @@ With ``keep_records=False`` the runner keeps, per chunk and analysis, only
 what the summaries need: failure counts by cause, rejections among usable
 replicates, and (count, mean, sum of squared deviations) of the estimates and
 of the squared model SEs, plus coverage counts and the discordant pairs of
-each two analyses. Memory then grows with the number of chunks (a few hundred
-bytes each), not with the replicates; the per-replicate records stay in the
-run store when one is given.
+each two analyses. Chunks are folded as soon as every earlier chunk is in,
+so memory holds only the chunks that finished ahead of an earlier one (a few
+hundred bytes each), not one tally per chunk of the run, and does not grow
+with the replicates; the per-replicate records stay in the run store when one
+is given.
 
 Chunk tallies are folded in chunk order with the pairwise update of Chan,
 Golub & LeVeque (1983, "Algorithms for computing the sample variance", The
@@ -201,32 +203,49 @@ def true_effect_of(scenario, name: str) -> float | None:
 
 
 class PointTally:
-    """Chunk tallies of one grid point, folded in chunk order on demand."""
+    """Chunk tallies of one grid point, folded in chunk order.
+
+    Chunks that arrive in order are folded at once (the prefix); only chunks
+    that arrive ahead of a missing one wait in ``chunks``. So memory does not
+    grow with the number of chunks, and the folding order -- hence every bit
+    of the result -- is chunk order whatever the arrival order.
+    """
 
     def __init__(self, scenario, fit_trouble: str):
         self.analyses = list(scenario.analyses)
         self.alpha, self.fit_trouble = scenario.alpha, fit_trouble
         self.truth = {name: true_effect_of(scenario, name) for name in self.analyses}
+        #: chunks waiting for an earlier one, by chunk index
         self.chunks: dict[int, tuple[dict[str, AnalysisTally], dict]] = {}
+        self._prefix = ({name: AnalysisTally() for name in self.analyses}, {})
+        self._next = 0
 
     def add(self, out) -> None:
         per = {name: tally_analysis(rec, out.causes, self.alpha, self.fit_trouble, self.truth[name])
                for name, rec in out.records.items() if name in self.analyses}
         self.chunks[out.chunk] = (per, tally_pairs({n: out.records[n] for n in self.analyses
                                                     if n in out.records}, self.alpha))
+        while self._next in self.chunks:
+            self._prefix = self._fold(self._prefix, self.chunks.pop(self._next))
+            self._next += 1
+
+    @staticmethod
+    def _fold(acc, chunk):
+        tallies, pairs = dict(acc[0]), {k: list(v) for k, v in acc[1].items()}
+        per, pr = chunk
+        for name, t in per.items():
+            tallies[name] = tallies[name].merge(t)
+        for key, v in pr.items():
+            got = pairs.setdefault(key, [0, 0, 0])
+            for j in range(3):
+                got[j] += v[j]
+        return tallies, pairs
 
     def folded(self) -> tuple[dict[str, AnalysisTally], dict[tuple[str, str], list[int]]]:
-        tallies = {name: AnalysisTally() for name in self.analyses}
-        pairs: dict[tuple[str, str], list[int]] = {}
+        acc = self._prefix
         for k in sorted(self.chunks):
-            per, pr = self.chunks[k]
-            for name, t in per.items():
-                tallies[name] = tallies[name].merge(t)
-            for key, v in pr.items():
-                acc = pairs.setdefault(key, [0, 0, 0])
-                for j in range(3):
-                    acc[j] += v[j]
-        return tallies, pairs
+            acc = self._fold(acc, self.chunks[k])
+        return acc
 
 
 class _MissingRecords(dict):
