@@ -218,3 +218,17 @@ def test_workers_exit_when_the_main_process_is_killed(tmp_path, backend):
             break
         time.sleep(0.1)
     assert not left, f"processes left behind: {left}"
+
+
+@pytest.mark.slow
+def test_a_task_that_kills_dask_workers_is_redone_by_the_helper(crash_runs):
+    distributed = pytest.importorskip("distributed")
+    import dask
+
+    # no retries on other workers: the first crash gives KilledWorker (dask's default retries 3 times)
+    with dask.config.set({"distributed.scheduler.allowed-failures": 0}):
+        with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                      dashboard_address=None) as cluster:
+            res = sp.run(_scenario(segv=segv_high, exit=exit_low), reps=1200, seed=11, chunk_size=150, point=7,
+                         backend="dask", address=cluster.scheduler_address)
+    _same(res, crash_runs[1])
