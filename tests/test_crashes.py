@@ -126,7 +126,7 @@ def test_a_dying_loky_worker_hands_its_chunks_to_the_helper(crash_runs):
     _same(res, crash_runs[1])
 
 
-def test_a_batch_process_draw_that_crashes_is_a_process_crash():
+def test_a_draw_that_crashes_is_a_process_crash():
     def shaky(rng, n=4):
         y = rng.standard_normal(2 * n)
         if y[0] > Z99:
@@ -135,7 +135,9 @@ def test_a_batch_process_draw_that_crashes_is_a_process_crash():
 
     # the same stream drawn here: the first crashing draw of each chunk ends that chunk's replicates
     # (the later ones would follow its random numbers)
-    res = sp.run(sp.Scenario(shaky, analyses={"d": _diff}), reps=600, seed=4, n_jobs=2, chunk_size=100)
+    # (a crashing draw costs the rest of its chunk: no failure threshold, which chunks finish first varies)
+    res = sp.run(sp.Scenario(shaky, analyses={"d": _diff}), reps=600, seed=4, n_jobs=2, chunk_size=100,
+                 max_failure_rate=1)
     expected = np.zeros(600, bool)
     for k in range(6):
         rng = np.random.default_rng(sp.engine.chunk_seed(4, res.point, k))
@@ -232,3 +234,17 @@ def test_a_task_that_kills_dask_workers_is_redone_by_the_helper(crash_runs):
             res = sp.run(_scenario(segv=segv_high, exit=exit_low), reps=1200, seed=11, chunk_size=150, point=7,
                          backend="dask", address=cluster.scheduler_address)
     _same(res, crash_runs[1])
+
+
+def test_a_scenario_that_cannot_be_sent_runs_here_with_a_warning():
+    import threading
+
+    lock = threading.Lock()  # cannot be pickled: the analysis cannot go to a worker process
+
+    def locked(data):
+        with lock:
+            return first_obs(data)
+
+    with pytest.warns(RuntimeWarning, match="cannot be sent to a worker process"):
+        res = sp.run(_scenario(locked=locked), reps=200, seed=3, n_jobs=1, point=7)
+    assert res.records["locked"].estimate.tobytes() == res.records["first"].estimate.tobytes()

@@ -84,6 +84,23 @@ def has_user_code(scenario) -> bool:
     return not is_builtin(scenario.process) or not all(is_builtin(a) for a in scenario.analyses.values())
 
 
+def _cloudpickle():
+    try:
+        import cloudpickle  # joblib >= 1.6 depends on it
+    except ImportError:  # older joblib ships its own copy
+        from joblib.externals import cloudpickle
+    return cloudpickle
+
+
+def unsendable(scenario) -> str | None:
+    """Why the scenario cannot be sent to a worker process (its pickling error), or None."""
+    try:
+        _cloudpickle().dumps(scenario)
+    except Exception as exc:
+        return f"{type(exc).__name__}: {exc}"
+    return None
+
+
 # ---------------------------------------------------------------- framing
 
 def _frame(kind: bytes, payload: bytes) -> bytes:
@@ -344,13 +361,8 @@ class Guard:
         self.owner = os.getpid()  # a forked copy of this process must not share our pipes
 
     def submit(self, kind: str, fn, args: tuple, kwargs: dict | None = None) -> int:
-        try:
-            import cloudpickle  # joblib >= 1.6 depends on it
-        except ImportError:  # older joblib ships its own copy
-            from joblib.externals import cloudpickle
-
         rid = next(self._ids)
-        blob = cloudpickle.dumps((kind, fn, tuple(args), dict(kwargs or {})))
+        blob = _cloudpickle().dumps((kind, fn, tuple(args), dict(kwargs or {})))
         try:
             _write_all(self.req, _frame(b"R", pickle.dumps((rid, blob))))
         except BrokenPipeError:

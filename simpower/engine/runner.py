@@ -503,10 +503,36 @@ def _tasks(points, plans, done, entropy, timeout) -> Iterator[tuple]:
                 yield (pt.scenario, entropy, pt.key, k, plan[k][1], *extra)
 
 
+def _isolation(scenarios, backend, jobs) -> tuple[bool, str | None]:
+    """(whether crashes are isolated, the backend chunks run on); see :mod:`simpower.engine.guard`."""
+    isolating = guard.available() and backend not in ("serial", "threading")
+    if isolating and backend is None and jobs == 1 and any(guard.has_user_code(sc) for sc in scenarios):
+        why = next((w for w in map(guard.unsendable, scenarios) if w), None)
+        if why is not None:
+            warnings.warn(f"the scenario cannot be sent to a worker process ({why}); it runs in this process, "
+                          f"where a replicate that crashes (a segfault) ends the run.", RuntimeWarning, stacklevel=4)
+            return False, "serial"
+    return isolating, backend
+
+
+def _chunk_results(tasks, n_tasks, scenarios, isolating, run_backend, n_jobs, address, max_failure_rate):
+    """The executor's generator of chunk outputs (see :func:`run_many` for where chunks run)."""
+    if not n_tasks:
+        return iter(())
+    fallback = partial(guard.run_isolated, run_chunk, jobs=min(effective_jobs(n_jobs), n_tasks),
+                       max_failure_rate=max_failure_rate) if isolating else None
+    if isolating and run_backend is None and any(guard.has_user_code(sc) for sc in scenarios):
+        return fallback(tasks)  # user code: every chunk in a forked worker of the helper
+    fast = all(sc.process.has_batch and all(a.has_batch for a in sc.analyses.values()) for sc in scenarios)
+    probe = fast and run_backend is None and n_jobs in (None, -1)
+    return execute(run_chunk, tasks, n_jobs=n_jobs, backend=run_backend, address=address, probe=probe,
+                   n_tasks=n_tasks, fallback=fallback)
+
+
 def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend, address,
          store, max_failure_rate, desc, timeout, keep_records):
     jobs = effective_jobs(n_jobs)
-    isolating = guard.available() and backend not in ("serial", "threading")
+    isolating, run_backend = _isolation(scenarios, backend, jobs)
     for sc, r in zip(scenarios, reps_list):
         check_memory(sc, int(r), chunk_size, jobs if backend != "dask" else 1, keep_records)
     seen = set()
@@ -535,17 +561,7 @@ def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_
     tasks = _tasks(points, plans, done, entropy, timeout)
     t0 = time.perf_counter()
     bar = _progress(total + reused, progress, desc, initial=reused)
-    fast = all(sc.process.has_batch and all(a.has_batch for a in sc.analyses.values()) for sc in scenarios)
-    probe = fast and backend is None and n_jobs in (None, -1)
-    fallback = partial(guard.run_isolated, run_chunk, jobs=min(jobs, max(n_tasks, 1)),
-                       max_failure_rate=max_failure_rate) if isolating else None
-    if not n_tasks:
-        gen = iter(())
-    elif isolating and backend is None and any(guard.has_user_code(sc) for sc in scenarios):
-        gen = fallback(tasks)  # user code: every chunk in a forked child of the helper
-    else:
-        gen = execute(run_chunk, tasks, n_jobs=n_jobs, backend=backend, address=address, probe=probe,
-                      n_tasks=n_tasks, fallback=fallback)
+    gen = _chunk_results(tasks, n_tasks, scenarios, isolating, run_backend, n_jobs, address, max_failure_rate)
     unenforced = False
     try:
         for out in gen:
