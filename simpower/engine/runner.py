@@ -20,13 +20,13 @@ same call resumes.
 
 Failure policy. A failing replicate never stops a chunk. After each chunk the
 runner checks, per grid point and analysis, the share of replicates with a
-*hard* failure (an exception, a non-finite p-value, a timeout, a failed draw;
-fit-trouble warnings are not counted): once at least ``min(reps, 100)``
+*hard* failure (an exception, a non-finite or invalid p-value, a timeout, a
+crash, a failed draw; fit-trouble warnings are not counted): once at least ``min(reps, 100)``
 replicates are in and that share exceeds ``max_failure_rate``, the run stops
 with a :class:`~simpower.errors.RunError` naming the causes and the first
 message of each. Finished chunks stay in the store.
 
-Memory. ``keep_records=False`` keeps only per-chunk tallies
+Memory. ``keep_records=False`` keeps only streaming tallies
 (:mod:`simpower.engine.tally`) instead of per-replicate arrays; it is the
 default above :data:`KEEP_RECORDS_LIMIT` replicates per point. Between
 :data:`RECORDS_IN_MEMORY` replicate-records and that limit, the default keeps
@@ -619,7 +619,9 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
         None draws fresh entropy (or reuses the store's seed when resuming);
         the result records it (``result.seed``).
     n_jobs : int
-        Worker processes; -1 (default) uses all cores; 1 runs in this process.
+        Worker processes; -1 (default) uses all cores; 1 runs built-in
+        scenarios in this process and scenarios with user code in one worker
+        of the crash-isolating helper (:mod:`simpower.engine.guard`).
     chunk_size : int, optional
         Replicates per task; defaults to the plan's choice for the scenario.
         Part of the reproducibility promise: the same seed and chunk size give
@@ -630,7 +632,11 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
         What replicates whose analysis warned (non-convergence, singular fit)
         count as; the result shows both figures either way.
     backend : {None, 'loky', 'serial', 'threading', 'dask'}
-        None is loky worker processes (or this process when ``n_jobs=1``).
+        None is loky worker processes (or this process when ``n_jobs=1``) for
+        built-in scenarios, and workers forked from the crash-isolating helper
+        for scenarios with user code, so that a replicate that kills its
+        process (a segfault) counts as failure ``crash`` and the run goes on.
+        'serial' and 'threading' run in this process (a crash ends the run).
     address : str or dask.distributed.Client, optional
         The dask scheduler (``"tcp://host:8786"``) for ``backend='dask'``; None
         uses the current dask client or starts a local cluster.
@@ -639,7 +645,8 @@ def run(scenario, reps: int = 1000, *, seed=None, n_jobs: int | None = -1, chunk
         and reused when the same call runs again (resume).
     max_failure_rate : float in (0, 1]
         Stop with an error once more than this share of an analysis'
-        replicates fail hard (exceptions, non-finite p-values, timeouts).
+        replicates fail hard (exceptions, non-finite or invalid p-values,
+        timeouts, crashes).
     point : int, optional
         The grid point key (seed spawn key) of this scenario; by default its
         content key (:meth:`Scenario.point_key`), the key sweeps and searches
