@@ -248,3 +248,20 @@ def test_a_scenario_that_cannot_be_sent_runs_here_with_a_warning():
     with pytest.warns(RuntimeWarning, match="cannot be sent to a worker process"):
         res = sp.run(_scenario(locked=locked), reps=200, seed=3, n_jobs=1, point=7)
     assert res.records["locked"].estimate.tobytes() == res.records["first"].estimate.tobytes()
+
+
+def test_workers_follow_the_import_path_and_directory_of_the_main_process(tmp_path, monkeypatch):
+    sp.run(_scenario(), reps=20, seed=1, n_jobs=1, point=7)  # the helper is running from here on
+    (tmp_path / "late_module.py").write_text(textwrap.dedent("""
+        import numpy as np
+        def reads_here(data):
+            with open("offset.txt") as f:
+                return {"pvalue": 0.5, "estimate": float(np.asarray(data["y"])[0]) + float(f.read())}
+    """))
+    (tmp_path / "offset.txt").write_text("10")
+    monkeypatch.syspath_prepend(str(tmp_path))
+    monkeypatch.chdir(tmp_path)
+    import late_module
+
+    res = sp.run(_scenario(late=late_module.reads_here), reps=100, seed=1, n_jobs=1, point=7)
+    assert np.array_equal(res.records["late"].estimate, res.records["first"].estimate + 10)

@@ -166,10 +166,23 @@ def _die_with_parent() -> None:
         pass
 
 
+def _take_place(where: tuple[list[str], str]) -> None:
+    """Take the parent's import path (entries added since the helper started) and working directory."""
+    path, cwd = where
+    sys.path.extend(p for p in path if p not in sys.path)
+    try:
+        if os.getcwd() != cwd:
+            os.chdir(cwd)
+    except OSError:
+        pass
+
+
 def _run_job(job, w: int) -> int:
     """Run one job in a worker, writing its markers and outcome to ``w``; the exit code if it must end."""
     try:
-        kind, fn, args, kwargs = pickle.loads(job)
+        where, blob = pickle.loads(job)
+        _take_place(where)
+        kind, fn, args, kwargs = pickle.loads(blob)
         if kind == "chunk":
             def mark(i, name, _w=w):
                 _write_all(_w, _frame(b"M", pickle.dumps((i, name))))
@@ -268,15 +281,16 @@ def _zygote(req: int, resp: int, parent: int) -> None:
         sel.register(rr, selectors.EVENT_READ, rr)
         return wk
 
-    def dispatch(rid: int, blob: bytes):
+    def dispatch(rid: int, where, blob: bytes):
         try:
+            _take_place(where)
             pickle.loads(blob)  # imports the user's modules here once, so later forks share them
         except BaseException as exc:
             return outbox.extend(_frame(b"D", pickle.dumps((rid, "error", _pack_error(exc)))))
         wk = next((wk for wk in workers.values() if wk.rid is None), None) or fork_worker()
         wk.rid, wk.last = rid, None
         try:
-            _write_all(wk.jobs_w, _frame(b"J", blob))
+            _write_all(wk.jobs_w, _frame(b"J", pickle.dumps((where, blob))))
         except BrokenPipeError:  # the worker is gone; its end of file reports the request
             pass
 
@@ -364,7 +378,8 @@ class Guard:
         rid = next(self._ids)
         blob = _cloudpickle().dumps((kind, fn, tuple(args), dict(kwargs or {})))
         try:
-            _write_all(self.req, _frame(b"R", pickle.dumps((rid, blob))))
+            where = ([p for p in sys.path if p], os.getcwd())
+            _write_all(self.req, _frame(b"R", pickle.dumps((rid, where, blob))))
         except BrokenPipeError:
             raise RunError("the crash-isolation helper process ended unexpectedly; run again.") from None
         return rid
