@@ -27,7 +27,7 @@ import pytest
 import simpower as sp
 from simpower.engine import guard
 
-pytestmark = pytest.mark.skipif(not guard.available(), reason="crash isolation needs os.fork")
+pytestmark = pytest.mark.skipif(not guard.available(), reason="crash isolation runs on Linux")
 
 # standard normal quantile z_0.99 (Abramowitz & Stegun 1964, Table 26.5; scipy.stats.norm.ppf agrees)
 Z99 = 2.3263478740408408

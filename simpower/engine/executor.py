@@ -89,7 +89,7 @@ def dask_client(address: Any = None, n_jobs: int | None = -1):
 def _lost(task: tuple, why: str) -> RunError:
     where = f"chunk {task[3]} of grid point {task[2]}" if len(task) >= 5 else "a task"
     return RunError(f"a worker process died ({why}) while running {where}, and crashes cannot be isolated here "
-                    f"(it needs os.fork); find the replicate with backend='serial' or fix the analysis.")
+                    f"(it needs Linux); find the replicate with backend='serial' or fix the analysis.")
 
 
 def _dask_results(fn: Callable, tasks: Iterable[tuple], address, n_jobs, fallback) -> Iterator:

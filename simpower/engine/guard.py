@@ -31,7 +31,8 @@ Where it is used (see :func:`simpower.engine.runner.run_many`):
 * ``backend='serial'`` and ``'threading'`` run in this process: a crash there
   still ends the run.
 
-It needs ``os.fork`` (Linux, macOS); elsewhere a crash ends the run as before.
+It runs on Linux (it forks; on macOS forking a process whose system libraries
+may have started threads is unsafe); elsewhere a crash ends the run as before.
 
 Orphans: the helper exits when this process dies (end of file on its request
 pipe, and a check of its parent every second), its children are killed with
@@ -66,8 +67,9 @@ PARENT_POLL = 1.0
 
 
 def available() -> bool:
-    """Whether crash isolation can run here (it forks)."""
-    return hasattr(os, "fork") and os.name == "posix"
+    """Whether crash isolation can run here: Linux (it forks; on macOS forking after system libraries
+    have started threads is unsafe, and Windows has no fork)."""
+    return hasattr(os, "fork") and sys.platform.startswith("linux")
 
 
 def is_builtin(obj) -> bool:
