@@ -247,19 +247,16 @@ def test_default_jobs_probe_gives_the_same_numbers_as_one_job():
 def test_probe_starts_workers_only_when_it_pays(monkeypatch):
     import time
 
-    import joblib
-
     from simpower.engine import executor
 
     started = []
-    real = joblib.Parallel
+    real = executor._loky_results
 
-    class Counting(real):
-        def __init__(self, *a, **k):
-            started.append(k.get("n_jobs"))
-            super().__init__(*a, **k)
+    def counting(fn, tasks, jobs, fallback):
+        started.append(jobs)
+        return real(fn, tasks, jobs, fallback)
 
-    monkeypatch.setattr(joblib, "Parallel", Counting)
+    monkeypatch.setattr(executor, "_loky_results", counting)
     monkeypatch.setattr(executor, "effective_jobs", lambda n: 2)
     # tiny tasks: 1 s of pool start-up cannot pay for itself
     assert list(executor.execute(time.sleep, [(0.0,)] * 6, n_jobs=-1, probe=True)) == [None] * 6

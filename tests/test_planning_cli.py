@@ -346,7 +346,9 @@ def test_an_interrupted_samplesize_without_store_says_nothing_was_saved(tmp_path
         "    y, a = data['y'], data['arm']\n"
         "    return stats.ttest_ind(y[a == 1], y[a == 0], equal_var=False)\n")
     p = tmp_path / "s.toml"
-    p.write_text("[process]\ntype = 'normal_two_arm'\nn = 30\neffect = 0.6\n[analysis]\ntype = 'stopper.py:welch'\n")
+    # in this process (serial): the analysis counts its calls (a forked worker would count its own)
+    p.write_text("[process]\ntype = 'normal_two_arm'\nn = 30\neffect = 0.6\n[analysis]\ntype = 'stopper.py:welch'\n"
+                 "[execution]\nbackend = 'serial'\n")
     rc = main(["samplesize", str(p), "--jobs", "1", "-q", "--seed", "1", "--range", "10:150"])
     err = capsys.readouterr().err.strip()
     assert rc == 130

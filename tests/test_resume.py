@@ -200,8 +200,8 @@ def test_interrupt_in_python_keeps_chunks(project, monkeypatch):
         return real(*args)
 
     monkeypatch.setattr(runner, "run_chunk", flaky)
-    with pytest.raises(RunInterrupted, match="run the same call again"):
-        sp.run(sc, reps=600, seed=77, n_jobs=1, chunk_size=12, store=store)
+    with pytest.raises(RunInterrupted, match="run the same call again"):  # serial: chunks run in this process
+        sp.run(sc, reps=600, seed=77, n_jobs=1, chunk_size=12, store=store, backend="serial")
     with open_store(store) as st:
         assert len(st.done_chunks()) == 8
     monkeypatch.setattr(runner, "run_chunk", real)

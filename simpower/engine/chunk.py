@@ -10,13 +10,25 @@ chunks finish, and a chunk recomputed after a crash equals the lost one.
 
 Failure causes are strings: ``"error:<ExceptionType>"`` (the analysis raised),
 ``"process:<ExceptionType>"`` (drawing the data raised),
-``"nonfinite_pvalue"``, ``"warning:<WarningType>"`` (fit trouble: the analysis
+``"nonfinite_pvalue"`` (NaN or infinite), ``"invalid_pvalue"`` (finite but outside
+[0, 1] by more than :data:`PVALUE_SLACK`), ``"crash"`` (the analysis killed
+its process: a segfault, ``os._exit``; see :mod:`simpower.engine.guard`),
+``"process:crash"`` (drawing the data killed it: that replicate and the later
+ones of its chunk, whose random numbers would follow it), ``"warning:<WarningType>"`` (fit trouble: the analysis
 warned; its values are kept and the run's policy decides), ``"timeout"`` (a
 per-replicate call ran past the time limit). A failing replicate never stops
 the chunk; the first message of each cause is kept. A batch path that raises
 (a bug, or data it cannot handle) is not fatal either: that analysis is redone
 replicate by replicate for the chunk, so each failing replicate is counted by
 cause, and the path is reported as "per-replicate (batch path raised ...)".
+
+Crashes. ``run_chunk(..., mark=f)`` calls ``f(i, name)`` before each call that
+runs code which may kill the process (``i`` the replicate, -1 for a whole-batch
+call; ``name`` the analysis, None for drawing the data), and ``crashed`` maps
+such keys to a message: those calls are skipped and recorded as ``crash`` (or
+``process:crash``). A chunk redone with the keys of the calls that killed
+earlier attempts therefore gives the same records, cause codes included, as a
+run where those calls had simply failed, whichever process ran it.
 
 Time limit: with ``timeout`` set, every per-replicate *analysis* call is
 interrupted by ``SIGALRM`` (``signal.setitimer``) after ``timeout`` seconds
@@ -45,6 +57,10 @@ import numpy as np
 
 from ..analyses.base import FIELDS, IGNORED_WARNINGS, as_test_result
 TIMEOUT = "timeout"
+CRASH = "crash"
+PROCESS_CRASH = "process:crash"
+#: a p-value outside [-PVALUE_SLACK, 1 + PVALUE_SLACK] is impossible, not rounding: failure "invalid_pvalue"
+PVALUE_SLACK = 1e-9
 
 
 def chunk_seed(entropy: int, point: int, chunk: int) -> np.random.SeedSequence:
@@ -150,8 +166,20 @@ def _fill(rec, i, res):
         pv[i, : res.pvalues.size] = res.pvalues
 
 
-def _apply_one(analysis, data, rec, i, causes: _Causes, hyp: dict, name: str, limit: _Limiter):
+def _invalid(p) -> np.ndarray:
+    """Finite p-values outside [0, 1] beyond rounding (``PVALUE_SLACK``)."""
+    p = np.asarray(p, float)
+    return np.isfinite(p) & ((p < -PVALUE_SLACK) | (p > 1 + PVALUE_SLACK))
+
+
+def _apply_one(analysis, data, rec, i, causes: _Causes, hyp: dict, name: str, limit: _Limiter,
+               crashed=None, mark=None):
     """Run one analysis on one data set, recording values or the failure cause."""
+    if crashed and (i, name) in crashed:
+        rec["status"][i] = causes.code(CRASH, crashed[(i, name)])
+        return
+    if mark is not None:
+        mark(i, name)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
@@ -167,6 +195,10 @@ def _apply_one(analysis, data, rec, i, causes: _Causes, hyp: dict, name: str, li
         hyp[name] = list(res.names)
     if not np.isfinite(res.pvalue):
         rec["status"][i] = causes.code("nonfinite_pvalue", f"p-value was {res.pvalue}")
+        return
+    if _invalid(res.pvalue) or (res.pvalues is not None and _invalid(res.pvalues).any()):
+        bad = res.pvalue if _invalid(res.pvalue) else res.pvalues[_invalid(res.pvalues)][0]
+        rec["status"][i] = causes.code("invalid_pvalue", f"p-value was {bad}, outside [0, 1]")
         return
     for w in caught:
         if not issubclass(w.category, IGNORED_WARNINGS):
@@ -189,6 +221,14 @@ def _apply_batch(analysis, batch, rec, causes: _Causes, hyp: dict, name: str):
     bad = ~np.isfinite(rec["pvalue"]) & (rec["status"] == 0)
     if bad.any():
         rec["status"][bad] = causes.code("nonfinite_pvalue", "p-value was not finite (e.g. zero variance)")
+    bad = _invalid(rec["pvalue"])
+    if "pvalues" in rec:
+        bad |= _invalid(rec["pvalues"]).reshape(bad.size, -1).any(axis=1)
+    bad &= rec["status"] == 0
+    if bad.any():
+        j = int(np.argmax(bad))
+        shown = rec["pvalue"][j] if _invalid(rec["pvalue"][j]) else rec["pvalues"][j][_invalid(rec["pvalues"][j])][0]
+        rec["status"][bad] = causes.code("invalid_pvalue", f"p-value was {shown}, outside [0, 1]")
 
 
 def _batch_ok(analysis, batch) -> bool:
@@ -202,7 +242,7 @@ def _batch_ok(analysis, batch) -> bool:
 
 
 def run_chunk(scenario, entropy: int, point: int, chunk: int, size: int,
-              timeout: float | None = None) -> ChunkOutput:
+              timeout: float | None = None, *, crashed: dict | None = None, mark=None) -> ChunkOutput:
     """Simulate and analyse ``size`` replicates of ``scenario``; never raises for a failing replicate.
 
     Parameters
@@ -216,6 +256,11 @@ def run_chunk(scenario, entropy: int, point: int, chunk: int, size: int,
         Replicates in this chunk (fixed by the plan).
     timeout : float, optional
         Time limit in seconds for each per-replicate analysis call (see the module notes).
+    crashed : dict, optional
+        ``(replicate, analysis name or None) -> message`` of calls that killed
+        an earlier attempt at this chunk: skipped and recorded as crashes.
+    mark : callable, optional
+        ``mark(replicate, name)`` is called before each such call (see the module notes).
     """
     started = time.time()
     t0 = time.perf_counter()
@@ -226,13 +271,25 @@ def run_chunk(scenario, entropy: int, point: int, chunk: int, size: int,
     records = {name: _empty(size) for name in analyses}
     paths: dict[str, str] = {}
     hyp: dict[str, list[str]] = {}
+    crashed = crashed or {}
     with _Limiter(timeout) as limit:
-        if process.has_batch:
+        if process.has_batch and (-1, None) in crashed:  # drawing the whole chunk killed the process
+            code = causes.code(PROCESS_CRASH, crashed[(-1, None)])
+            for rec in records.values():
+                rec["status"][:] = code
+            paths = {name: "none (drawing the data crashed)" for name in analyses}
+        elif process.has_batch:
+            if mark is not None:
+                mark(-1, None)
             batch = process.draw_batch(rng, size)
             for name, analysis in analyses.items():
                 rec = records[name]
-                if _batch_ok(analysis, batch):
+                if (-1, name) in crashed:  # the batch path killed the process: redo replicate by replicate
+                    paths[name] = "per-replicate (batch path crashed)"
+                elif _batch_ok(analysis, batch):
                     try:
+                        if mark is not None:
+                            mark(-1, name)
                         _apply_batch(analysis, batch, rec, causes, hyp, name)
                         paths[name] = "batch"
                         continue
@@ -243,10 +300,19 @@ def run_chunk(scenario, entropy: int, point: int, chunk: int, size: int,
                 else:
                     paths[name] = "per-replicate"
                 for i in range(size):
-                    _apply_one(analysis, batch.replicate(i), rec, i, causes, hyp, name, limit)
+                    _apply_one(analysis, batch.replicate(i), rec, i, causes, hyp, name, limit, crashed, mark)
         else:
             paths = {name: "per-replicate" for name in analyses}
             for i in range(size):
+                if (i, None) in crashed:
+                    # drawing this replicate killed the process: how many numbers it took from the chunk's
+                    # stream is unknown, so it and the later replicates of the chunk cannot be drawn
+                    code = causes.code(PROCESS_CRASH, crashed[(i, None)])
+                    for rec in records.values():
+                        rec["status"][i:] = code
+                    break
+                if mark is not None:
+                    mark(i, None)
                 try:
                     data = process(rng)
                 except Exception as exc:
@@ -255,7 +321,7 @@ def run_chunk(scenario, entropy: int, point: int, chunk: int, size: int,
                         rec["status"][i] = code
                     continue
                 for name, analysis in analyses.items():
-                    _apply_one(analysis, data, records[name], i, causes, hyp, name, limit)
+                    _apply_one(analysis, data, records[name], i, causes, hyp, name, limit, crashed, mark)
     return ChunkOutput(point, chunk, size, records, causes.causes, causes.messages, paths, hyp,
                        time.perf_counter() - t0, started_at=started, worker=f"{socket.gethostname()}:{os.getpid()}",
                        timeout_enforced=None if not timeout else limit.enforced)

@@ -11,14 +11,24 @@ gives an error that says what to install.
 
 Results come back in completion order; the runner puts them in place, so the
 numbers never depend on the executor (see :mod:`simpower.engine.chunk`).
+
+Tasks may be a lazy iterable (the runner never lists every chunk). Local
+processes come from loky's reusable executor with a bounded window of tasks in
+flight, so when a worker dies (a segfault, ``os._exit``: loky's
+``TerminatedWorkerError``) the runner knows which chunks were lost: they and
+the rest of the run go to ``fallback`` (the crash-isolating helper of
+:mod:`simpower.engine.guard`), which finds the replicate that killed its
+process and records it as a crash. A dask task that killed its workers
+(``KilledWorker``) is redone the same way. Loky workers exit when the main
+process dies (:func:`simpower.engine.guard.worker_init`).
 """
 
 from __future__ import annotations
 
 import os
 import time
-from itertools import islice
-from typing import Any, Callable, Iterator
+from itertools import chain, islice
+from typing import Any, Callable, Iterable, Iterator
 
 from ..errors import ParameterError, RunError
 
@@ -76,29 +86,43 @@ def dask_client(address: Any = None, n_jobs: int | None = -1):
     return client, True
 
 
-def _dask_results(fn: Callable, tasks: list[tuple], address, n_jobs) -> Iterator:
+def _lost(task: tuple, why: str) -> RunError:
+    where = f"chunk {task[3]} of grid point {task[2]}" if len(task) >= 5 else "a task"
+    return RunError(f"a worker process died ({why}) while running {where}, and crashes cannot be isolated here "
+                    f"(it needs Linux); find the replicate with backend='serial' or fix the analysis.")
+
+
+def _dask_results(fn: Callable, tasks: Iterable[tuple], address, n_jobs, fallback) -> Iterator:
     distributed = _import_distributed()
     client, owned = dask_client(address, n_jobs)
-    pending = []
+    pending = {}
     try:
         threads = sum(client.nthreads().values()) or 1
         window = max(2, 2 * threads)
         it = iter(tasks)
-        pending = [client.submit(fn, *t, pure=False) for t in islice(it, window)]
-        done = distributed.as_completed(pending)
+        pending = {client.submit(fn, *t, pure=False): t for t in islice(it, window)}
+        done = distributed.as_completed(list(pending))
         for fut in done:
-            res = fut.result()
-            pending.remove(fut)
+            task = pending.pop(fut)
+            try:
+                res = fut.result()
+            except distributed.KilledWorker as exc:  # the task killed every worker that ran it
+                if fallback is None:
+                    raise _lost(task, f"dask KilledWorker: {exc}") from None
+                res = None
             fut.release()
             nxt = next(it, None)
             if nxt is not None:
                 new = client.submit(fn, *nxt, pure=False)
-                pending.append(new)
+                pending[new] = nxt
                 done.add(new)
-            yield res
+            if res is None:
+                yield from fallback([task])
+            else:
+                yield res
     finally:
         if pending:
-            client.cancel(pending)
+            client.cancel(list(pending))
         if owned:
             cluster = getattr(client, "_simpower_cluster", None)
             client.close()
@@ -108,59 +132,126 @@ def _dask_results(fn: Callable, tasks: list[tuple], address, n_jobs) -> Iterator
 
 #: estimated cost (seconds) of starting a local worker pool and importing simpower in it
 POOL_START_SECONDS = 1.0
+#: seconds an idle loky worker waits for work before it exits (joblib's default)
+IDLE_WORKER_SECONDS = 300
 
 
-def execute(fn: Callable, tasks: list[tuple], n_jobs: int | None = -1, backend: str | None = None,
-            address: Any = None, probe: bool = False) -> Iterator:
+def _worker_env(jobs: int) -> dict:
+    """Thread limits of the workers' numerical libraries, as joblib's loky backend sets them."""
+    try:
+        from joblib._parallel_backends import LokyBackend
+
+        return LokyBackend()._prepare_worker_env(n_jobs=jobs)
+    except Exception:  # a joblib without this helper: the libraries' own defaults
+        return {}
+
+
+def _loky_results(fn: Callable, tasks: Iterator[tuple], jobs: int, fallback) -> Iterator:
+    """Run tasks on loky workers, at most ``2 * jobs`` in flight; hand lost ones to ``fallback``."""
+    from concurrent.futures import FIRST_COMPLETED, wait
+
+    from joblib.externals.loky import get_reusable_executor
+    from joblib.externals.loky.process_executor import BrokenProcessPool
+
+    from .guard import worker_init
+
+    executor = get_reusable_executor(max_workers=jobs, timeout=IDLE_WORKER_SECONDS, initializer=worker_init,
+                                     initargs=(os.getpid(),), env=_worker_env(jobs))
+    running: dict = {}
+    try:
+        for t in islice(tasks, 2 * jobs):
+            running[executor.submit(fn, *t)] = t
+        while running:
+            done, _ = wait(list(running), return_when=FIRST_COMPLETED)
+            lost = []
+            for fut in done:
+                t = running.pop(fut)
+                try:
+                    res = fut.result()
+                except BrokenProcessPool as exc:  # a worker died: every chunk in flight is lost
+                    lost.append((t, str(exc).splitlines()[-1] if str(exc) else type(exc).__name__))
+                    continue
+                yield res
+            if lost:
+                lost += [(running.pop(f), "") for f in list(running)]
+                if fallback is None:
+                    raise _lost(lost[0][0], lost[0][1] or "worker terminated")
+                executor.shutdown(wait=False, kill_workers=True)
+                # the lost chunks and the rest of the run go to the crash-isolating helper
+                yield from fallback(chain((t for t, _ in lost), tasks))
+                return
+            for t in islice(tasks, len(done)):
+                running[executor.submit(fn, *t)] = t
+    finally:
+        for fut in running:
+            fut.cancel()
+
+
+def execute(fn: Callable, tasks: Iterable[tuple], n_jobs: int | None = -1, backend: str | None = None,
+            address: Any = None, probe: bool = False, n_tasks: int | None = None,
+            fallback: Callable[[Iterable[tuple]], Iterator] | None = None) -> Iterator:
     """Yield ``fn(*task)`` for each task, in completion order.
 
     Parameters
     ----------
     fn : callable
         A module-level function (picklable).
-    tasks : list of tuples
-        Positional arguments of each call.
+    tasks : iterable of tuples
+        Positional arguments of each call (may be lazy).
     n_jobs : int
         Workers; -1 means all cores. 1 runs serially in this process (unless ``backend='dask'``).
     backend : None, 'loky', 'threading', 'serial' or 'dask'
     address : str or dask.distributed.Client, optional
         The dask scheduler (``tcp://host:8786``) for ``backend='dask'``.
-
     probe : bool
         Run the first task in this process and start a worker pool for the
         rest only if that is expected to save time (``POOL_START_SECONDS``
         against the remaining work spread over the workers). The runner asks
         for it for fast vectorised scenarios when ``n_jobs`` was left at its
         default; it changes where tasks run, never their numbers.
+    n_tasks : int, optional
+        How many tasks there are (when ``tasks`` is lazy); None counts a list.
+    fallback : callable, optional
+        ``fallback(tasks) -> results`` for tasks lost with a worker process
+        (loky, dask); None raises a RunError then.
 
     Close the generator (or let it finish) to stop the workers early.
     """
     backend = check_backend(backend)
-    if not tasks:
+    if n_tasks is None:
+        tasks = list(tasks)
+        n_tasks = len(tasks)
+    if not n_tasks:
         return
+    it = iter(tasks)
     if backend == "dask":
-        yield from _dask_results(fn, tasks, address, n_jobs)
+        yield from _dask_results(fn, it, address, n_jobs, fallback)
         return
     jobs = effective_jobs(n_jobs)
-    if backend == "serial" or jobs == 1 or len(tasks) == 1:
-        for t in tasks:
+    if backend == "serial" or jobs == 1 or n_tasks == 1:
+        for t in it:
             yield fn(*t)
         return
     if probe:
         t0 = time.perf_counter()
-        yield fn(*tasks[0])
+        yield fn(*next(it))
         first = time.perf_counter() - t0
-        tasks = tasks[1:]
-        rest = first * len(tasks)
-        if rest - (POOL_START_SECONDS + rest / min(jobs, len(tasks))) <= 0:
-            for t in tasks:
+        n_tasks -= 1
+        if not n_tasks:
+            return
+        rest = first * n_tasks
+        if rest - (POOL_START_SECONDS + rest / min(jobs, n_tasks)) <= 0:
+            for t in it:
                 yield fn(*t)
             return
-    from joblib import Parallel, delayed
+    if backend == "threading":
+        from joblib import Parallel, delayed
 
-    par = Parallel(n_jobs=min(jobs, len(tasks)), backend=backend or "loky", return_as="generator_unordered")
-    gen = par(delayed(fn)(*t) for t in tasks)
-    try:
-        yield from gen
-    finally:
-        gen.close()
+        par = Parallel(n_jobs=min(jobs, n_tasks), backend="threading", return_as="generator_unordered")
+        gen = par(delayed(fn)(*t) for t in it)
+        try:
+            yield from gen
+        finally:
+            gen.close()
+        return
+    yield from _loky_results(fn, it, min(jobs, n_tasks), fallback)

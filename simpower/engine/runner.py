@@ -20,8 +20,8 @@ same call resumes.
 
 Failure policy. A failing replicate never stops a chunk. After each chunk the
 runner checks, per grid point and analysis, the share of replicates with a
-*hard* failure (an exception, a non-finite p-value, a timeout, a failed draw;
-fit-trouble warnings are not counted): once at least ``min(reps, 100)``
+*hard* failure (an exception, a non-finite or invalid p-value, a timeout, a
+crash, a failed draw; fit-trouble warnings are not counted): once at least ``min(reps, 100)``
 replicates are in and that share exceeds ``max_failure_rate``, the run stops
 with a :class:`~simpower.errors.RunError` naming the causes and the first
 message of each. Finished chunks stay in the store.
@@ -32,6 +32,19 @@ default above :data:`KEEP_RECORDS_LIMIT` replicates per point. Between
 :data:`RECORDS_IN_MEMORY` replicate-records and that limit, the default keeps
 the tallies and spools the records to disk (:mod:`simpower.engine.spool`).
 So memory is bounded by the chunk size, not the total.
+
+Sizes are checked before memory is used. ``reps`` is at most :data:`MAX_REPS`
+per grid point; chunks are planned lazily (no list of every chunk); and
+before drawing anything the runner estimates the memory one replicate and
+one chunk of a built-in process need (values per replicate, extrapolated from
+two small draws in the process's size parameter, times 8 bytes, times
+:data:`MEMORY_FACTOR` for the analyses' working copies) and refuses, in one
+line naming the field, what exceeds the memory available
+(``/proc/meminfo`` MemAvailable, or the cgroup limit if lower).
+
+Crashes. A replicate that kills its process (a segfault in a user analysis)
+is counted as failure ``crash`` and the run goes on; see
+:mod:`simpower.engine.guard` for where chunks run to make that possible.
 """
 
 from __future__ import annotations
@@ -40,9 +53,11 @@ import math
 import sys
 import time
 import warnings
+from collections.abc import Sequence as _SequenceABC
 from dataclasses import dataclass, field
+from functools import partial
 from pathlib import Path
-from typing import Any, Mapping, Protocol, Sequence
+from typing import Any, Iterator, Mapping, Protocol, Sequence
 
 import numpy as np
 
@@ -52,6 +67,7 @@ from ..result import MissingRecords, RunResult
 from ..summaries import WARNING_PREFIX, PointStats
 from .chunk import ChunkOutput, run_chunk
 from .collect import CauseBook, RecordCollector
+from . import guard
 from .executor import check_backend, effective_jobs, execute
 from .spool import RecordSpool
 
@@ -65,6 +81,15 @@ KEEP_RECORDS_LIMIT = 1_000_000
 RECORDS_IN_MEMORY = 25_000
 #: replicates a point needs before the failure threshold is applied
 MIN_FOR_STOP = 100
+#: most replicates per grid point: a run store holds about 42 bytes per replicate and analysis
+#: (42 GB at this cap), and one run of them takes hours even on the fastest vectorised path
+MAX_REPS = 10**9
+#: the memory estimate of a chunk counts its data this many times (the data plus the analyses' copies)
+MEMORY_FACTOR = 4
+#: bytes of one replicate's record of one analysis held in memory (six float64 fields + int16 status)
+RECORD_BYTES = 6 * 8 + 2
+#: below this size (the process's size parameter) no memory estimate is made
+SIZE_CHECK_FROM = 10_000
 
 
 class ChunkStore(Protocol):
@@ -131,10 +156,120 @@ def default_chunk_size(scenario) -> int:
     return int(max(1, min(BATCH_CHUNK, MAX_CHUNK_VALUES // max(values, 1))))
 
 
-def plan_chunks(reps: int, chunk_size: int) -> list[tuple[int, int]]:
-    """(chunk index, size) pairs covering ``reps`` replicates."""
-    n = math.ceil(reps / chunk_size)
-    return [(k, min(chunk_size, reps - k * chunk_size)) for k in range(n)]
+class ChunkPlan(_SequenceABC):
+    """The chunks of one grid point as a lazy sequence of (chunk index, size) pairs."""
+
+    def __init__(self, reps: int, chunk_size: int):
+        self.reps, self.chunk_size = int(reps), int(chunk_size)
+
+    def __len__(self) -> int:
+        return -(-self.reps // self.chunk_size)
+
+    def __getitem__(self, k):
+        if isinstance(k, slice):
+            return [self[i] for i in range(*k.indices(len(self)))]
+        n = len(self)
+        if k < 0:
+            k += n
+        if not 0 <= k < n:
+            raise IndexError(k)
+        return (k, min(self.chunk_size, self.reps - k * self.chunk_size))
+
+    def __eq__(self, other) -> bool:
+        if isinstance(other, (ChunkPlan, list, tuple)):
+            return len(self) == len(other) and all(a == tuple(b) for a, b in zip(self, other))
+        return NotImplemented
+
+    def __repr__(self) -> str:
+        return f"ChunkPlan(reps={self.reps}, chunk_size={self.chunk_size})"
+
+
+def plan_chunks(reps: int, chunk_size: int) -> ChunkPlan:
+    """(chunk index, size) pairs covering ``reps`` replicates (a lazy sequence: nothing is listed)."""
+    return ChunkPlan(reps, chunk_size)
+
+
+def available_memory() -> int | None:
+    """Bytes of memory available now: MemAvailable of /proc/meminfo, or the cgroup's room if smaller."""
+    avail = None
+    try:
+        with open("/proc/meminfo") as f:
+            for line in f:
+                if line.startswith("MemAvailable:"):
+                    avail = int(line.split()[1]) * 1024
+                    break
+    except (OSError, ValueError, IndexError):
+        pass
+    try:
+        with open("/sys/fs/cgroup/memory.max") as f:
+            limit = f.read().strip()
+        if limit != "max":
+            with open("/sys/fs/cgroup/memory.current") as f:
+                room = int(limit) - int(f.read().strip())
+            avail = room if avail is None else min(avail, room)
+    except (OSError, ValueError):
+        pass
+    return avail
+
+
+def _gib(nbytes: float) -> str:
+    return f"{nbytes / 2**30:.3g} GiB"
+
+
+def _values_of_one(process) -> int:
+    one = process.draw_batch(np.random.default_rng(0), 1)
+    return sum(int(np.size(v)) for v in one.per_rep.values()) + sum(int(np.size(v)) for v in one.shared.values())
+
+
+def values_per_replicate(process) -> tuple[str, Any, float] | None:
+    """(size field, its value, values in one replicate) of a large built-in batch process, else None.
+
+    The count is extrapolated linearly from two small draws in the size
+    parameter (exact for layouts whose rows grow linearly with it), so nothing
+    of the real size is drawn.
+    """
+    field_ = getattr(process, "size_param", None)
+    if not process.has_batch or not guard.is_builtin(process) or not field_:
+        return None
+    try:
+        n = process.get_params(deep=False)[field_]
+    except (KeyError, AttributeError):
+        return None
+    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n <= SIZE_CHECK_FROM:
+        return None
+    for lo, hi in ((2, 4), (4, 8), (10, 20), (50, 100)):
+        try:
+            a, b = _values_of_one(process.replace(**{field_: lo})), _values_of_one(process.replace(**{field_: hi}))
+        except Exception:  # a size the process refuses: try larger ones
+            continue
+        return field_, n, a + (b - a) / (hi - lo) * (int(n) - lo)
+    return None
+
+
+def check_memory(scenario, reps: int, chunk_size: int | None, jobs: int, keep_records: bool | None) -> None:
+    """Refuse, in one line naming the field, a scenario whose chunk or records cannot fit in memory."""
+    avail = available_memory()
+    if avail is None:
+        return
+    if keep_records is True:
+        need = reps * len(scenario.analyses) * RECORD_BYTES
+        if need > avail:
+            raise ParameterError(f"`reps` = {reps} with `keep_records=True` needs about {_gib(need)} of memory for "
+                                 f"the records; {_gib(avail)} is available. Leave `keep_records` unset (records "
+                                 f"are then spooled to disk or kept in the store) or lower `reps`.")
+    est = values_per_replicate(scenario.process)
+    if est is None:
+        return
+    field_, n, values = est
+    one = values * 8 * MEMORY_FACTOR
+    if one > avail:
+        raise ParameterError(f"`{field_}` = {n} is too large: one replicate holds about {values:.3g} values "
+                             f"({_gib(values * 8)}; about {_gib(one)} with the analyses' working copies) and "
+                             f"{_gib(avail)} of memory is available; lower `{field_}`.")
+    if chunk_size is not None and one * chunk_size * jobs > avail:
+        raise ParameterError(f"`chunk_size` = {chunk_size} is too large for `{field_}` = {n}: {jobs} chunk(s) at a "
+                             f"time need about {_gib(one * chunk_size * jobs)} and {_gib(avail)} of memory is "
+                             f"available; lower `chunk_size` (or `n_jobs`), or leave it to the plan.")
 
 
 @dataclass
@@ -293,6 +428,9 @@ def _check_args(reps, keys, n_scen, chunk_size, fit_trouble, max_failure_rate, t
     for r in reps_list:
         if isinstance(r, bool) or not isinstance(r, (int, np.integer)) or r < 1:
             raise ParameterError(f"`reps` must be an integer >= 1; got {r!r}.")
+        if r > MAX_REPS:
+            raise ParameterError(f"`reps` must be at most {MAX_REPS:_} (10**9) per grid point; got {r}. Split the "
+                                 f"study, or aim at a Monte Carlo SE (target_mcse) instead.")
     keys = list(range(n_scen)) if keys is None else [int(k) for k in keys]
     if len(keys) != n_scen or len(set(keys)) != n_scen or min(keys, default=0) < 0 or max(keys, default=0) >= 2**63:
         raise ParameterError(f"`keys` must be {n_scen} distinct integers in [0, 2**63); got {keys!r}.")
@@ -418,40 +556,104 @@ def preflight(scenario, label: str = "") -> None:
                 f"{' and data of that shape' if label else ''}.")
 
 
+def _preflight_isolated(sc, label: str = "") -> None:
+    """:func:`preflight` in a forked child of the crash-isolating helper (a crash there is left to the run)."""
+    g, shared = guard.acquire()
+    clean = False
+    try:
+        g.call(preflight, sc, label)
+        clean = True
+    finally:
+        guard.release(g, shared, clean)
+
+
+def _load_stored(pt: _Point, store, plan: ChunkPlan) -> set[int]:
+    """Add the point's stored chunks; return their indices."""
+    done: set[int] = set()
+    if store is None:
+        return done
+    if hasattr(store, "done_chunks"):
+        candidates = ((k, size) for _, k, size in store.done_chunks(pt.key) if k < len(plan) and plan[k][1] == size)
+    else:
+        candidates = iter(plan)
+    for k, size in candidates:
+        cached = store.load(pt.key, k, size)
+        if cached is not None:
+            pt.add(cached)
+            done.add(k)
+    return done
+
+
+def _tasks(points, plans, done, entropy, timeout) -> Iterator[tuple]:
+    """The chunks still to run, lazily, point by point in chunk order."""
+    extra = (timeout,) if timeout else ()
+    for pt, plan, skip in zip(points, plans, done):
+        for k in range(len(plan)):
+            if k not in skip:
+                yield (pt.scenario, entropy, pt.key, k, plan[k][1], *extra)
+
+
+def _isolation(scenarios, backend, jobs) -> tuple[bool, str | None]:
+    """(whether crashes are isolated, the backend chunks run on); see :mod:`simpower.engine.guard`."""
+    isolating = guard.available() and backend not in ("serial", "threading")
+    if isolating and backend is None and jobs == 1 and any(guard.has_user_code(sc) for sc in scenarios):
+        why = next((w for w in map(guard.unsendable, scenarios) if w), None)
+        if why is not None:
+            warnings.warn(f"the scenario cannot be sent to a worker process ({why}); it runs in this process, "
+                          f"where a replicate that crashes (a segfault) ends the run.", RuntimeWarning, stacklevel=4)
+            return False, "serial"
+    return isolating, backend
+
+
+def _chunk_results(tasks, n_tasks, scenarios, isolating, run_backend, n_jobs, address, max_failure_rate):
+    """The executor's generator of chunk outputs (see :func:`run_many` for where chunks run)."""
+    if not n_tasks:
+        return iter(())
+    fallback = partial(guard.run_isolated, run_chunk, jobs=min(effective_jobs(n_jobs), n_tasks),
+                       max_failure_rate=max_failure_rate) if isolating else None
+    if isolating and run_backend is None and any(guard.has_user_code(sc) for sc in scenarios):
+        return fallback(tasks)  # user code: every chunk in a forked worker of the helper
+    fast = all(sc.process.has_batch and all(a.has_batch for a in sc.analyses.values()) for sc in scenarios)
+    probe = fast and run_backend is None and n_jobs in (None, -1)
+    return execute(run_chunk, tasks, n_jobs=n_jobs, backend=run_backend, address=address, probe=probe,
+                   n_tasks=n_tasks, fallback=fallback)
+
+
 def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend, address,
          store, max_failure_rate, desc, timeout, keep_records, labels):
+    jobs = effective_jobs(n_jobs)
+    isolating, run_backend = _isolation(scenarios, backend, jobs)
+    for sc, r in zip(scenarios, reps_list):
+        check_memory(sc, int(r), chunk_size, jobs if backend != "dask" else 1, keep_records)
     seen = set()
     for sc, key in zip(scenarios, keys):  # one trial per kind of scenario (the grid points of a sweep share theirs)
         kind = (type(sc.process).__name__, tuple((n, type(a).__name__) for n, a in sc.analyses.items()))
         if kind not in seen:
             seen.add(kind)
-            preflight(sc, str(labels.get(key, "")))
+            if isolating and guard.has_user_code(sc):
+                _preflight_isolated(sc, str(labels.get(key, "")))
+            else:
+                preflight(sc, str(labels.get(key, "")))
     sizes = [int(chunk_size or default_chunk_size(s)) for s in scenarios]
     points = _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble)
     for pt in points:
         pt.label = str(labels.get(pt.key, ""))
     by_key = {pt.key: pt for pt in points}
-    tasks = []
-    reused = 0
-    for pt in points:
+    plans = [plan_chunks(pt.reps, pt.chunk_size) for pt in points]
+    done = []
+    for pt, plan in zip(points, plans):
         if store is not None and hasattr(store, "bind"):
             store.bind(pt.key, pt.scenario, entropy, pt.chunk_size, pt.reps)
-        for k, size in plan_chunks(pt.reps, pt.chunk_size):
-            cached = store.load(pt.key, k, size) if store is not None else None
-            if cached is not None:
-                pt.add(cached)
-                reused += size
-            else:
-                extra = (timeout,) if timeout else ()
-                tasks.append((pt.scenario, entropy, pt.key, k, size, *extra))
+        done.append(_load_stored(pt, store, plan))
+    reused = sum(pt.done for pt in points)
     for pt in points:
         _check_failures(pt, max_failure_rate, store)
-    total = sum(t[4] for t in tasks)
+    n_tasks = sum(len(plan) - len(d) for plan, d in zip(plans, done))
+    total = sum(reps_list) - reused
+    tasks = _tasks(points, plans, done, entropy, timeout)
     t0 = time.perf_counter()
     bar = _progress(total + reused, progress, desc, initial=reused)
-    fast = all(sc.process.has_batch and all(a.has_batch for a in sc.analyses.values()) for sc in scenarios)
-    probe = fast and backend is None and n_jobs in (None, -1)
-    gen = execute(run_chunk, tasks, n_jobs=n_jobs, backend=backend, address=address, probe=probe)
+    gen = _chunk_results(tasks, n_tasks, scenarios, isolating, run_backend, n_jobs, address, max_failure_rate)
     unenforced = False
     try:
         for out in gen:
@@ -471,7 +673,8 @@ def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_
                  f"(store=PATH, --store PATH) to keep progress")
         raise RunInterrupted("interrupted" + where + ".") from None
     finally:
-        gen.close()
+        if hasattr(gen, "close"):
+            gen.close()
         bar.close()
         if store is not None and hasattr(store, "flush"):
             store.flush()
@@ -536,8 +739,9 @@ def run(scenario, reps: int | None = None, *, seed=None, n_jobs: int | None = -1
         the result records it (``result.seed``).
     n_jobs : int
         Worker processes: -1 (default) uses all cores, a count >= 1 that many;
-        1 runs in this process. Other values (0, and joblib's -2, -3... for
-        "all but some") are refused.
+        1 runs built-in scenarios in this process and scenarios with user code in
+        one worker of the crash-isolating helper (:mod:`simpower.engine.guard`).
+        Other values (0, and joblib's -2, -3... for "all but some") are refused.
     chunk_size : int, optional
         Replicates per task; defaults to the plan's choice for the scenario.
         Part of the reproducibility promise: the same seed and chunk size give
@@ -548,8 +752,11 @@ def run(scenario, reps: int | None = None, *, seed=None, n_jobs: int | None = -1
         What replicates whose analysis warned (non-convergence, singular fit)
         count as; the result shows both figures either way.
     backend : {None, 'loky', 'serial', 'threading', 'dask'}
-        None is loky worker processes (or this process when ``n_jobs=1``),
-        or dask when an ``address`` is given.
+        None is loky worker processes (or this process when ``n_jobs=1``) for
+        built-in scenarios, and workers forked from the crash-isolating helper
+        for scenarios with user code (or dask when an ``address`` is given), so that a replicate that kills its
+        process (a segfault) counts as failure ``crash`` and the run goes on.
+        'serial' and 'threading' run in this process (a crash ends the run).
     address : str or dask.distributed.Client, optional
         The dask scheduler (``"tcp://host:8786"``). Giving one implies
         ``backend='dask'``; with another explicit ``backend`` it is refused.
@@ -560,7 +767,8 @@ def run(scenario, reps: int | None = None, *, seed=None, n_jobs: int | None = -1
         and reused when the same call runs again (resume).
     max_failure_rate : float in (0, 1]
         Stop with an error once more than this share of an analysis'
-        replicates fail hard (exceptions, non-finite p-values, timeouts).
+        replicates fail hard (exceptions, non-finite or invalid p-values,
+        timeouts, crashes).
     point : int, optional
         The grid point key (seed spawn key) of this scenario; by default its
         content key (:meth:`Scenario.point_key`), the key sweeps and searches
