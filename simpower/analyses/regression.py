@@ -24,8 +24,8 @@ from scipy import stats
 
 from .._validation import Anything, Bool, Choice, Real
 from ..errors import ParameterError, nearest
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
-from .ttests import p_from_t, p_from_z
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from .numeric import p_from_t, p_from_z
 
 _NAME = r"[A-Za-z_][A-Za-z0-9_]*"
 _FACTOR = re.compile(rf"^(?:(?P<num>{_NAME})|C\(\s*(?P<cat>{_NAME})\s*\))$")
@@ -304,7 +304,7 @@ class OLS(Analysis):
                     var = var * n / df
             out = self._inference(beta[:, k], np.sqrt(var), df)
         out.pop("statistic")
-        return out
+        return BatchResult(**out)
 
 
 class Ancova(OLS):
