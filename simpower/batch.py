@@ -7,6 +7,7 @@ a *layout*, a typed view computed from it on first use and cached on the batch:
 ============== ========================= ===========================================
 kind           class                     needs
 ============== ========================= ===========================================
+table          :class:`TableLayout`      ``y`` (any design: the generic long table)
 one_sample     :class:`OneSampleLayout`  ``y``, no ``arm``
 two_arm        :class:`TwoArmLayout`     ``y`` and ``arm`` with labels in {0, 1}
 paired         :class:`PairedLayout`     two arms in two equal contiguous blocks, the
@@ -37,7 +38,7 @@ from typing import Any
 
 import numpy as np
 
-LAYOUTS = ("one_sample", "two_arm", "paired", "clustered", "longitudinal", "survival")
+LAYOUTS = ("table", "one_sample", "two_arm", "paired", "clustered", "longitudinal", "survival")
 
 
 @dataclass
@@ -150,6 +151,13 @@ class Layout:
 
 def _labels(arm) -> tuple:
     return tuple(np.unique(arm).tolist())
+
+
+@dataclass(frozen=True, eq=False)
+class TableLayout(Layout):
+    """Any batch with outcomes ``y``: the generic long table (other columns through :meth:`column`)."""
+
+    kind = "table"
 
 
 @dataclass(frozen=True, eq=False)
@@ -320,6 +328,12 @@ def _base(batch: Batch, y) -> dict:
     return {"y": y, "present": batch.present, "missing": batch.missing, "batch": batch}
 
 
+def _table(batch):
+    if "y" not in batch.per_rep:
+        return None
+    return TableLayout(**_base(batch, batch.per_rep["y"]))
+
+
 def _one_sample(batch):
     if "y" not in batch.per_rep or "arm" in batch:
         return None
@@ -380,5 +394,5 @@ def _survival(batch):
                           labels=labels)
 
 
-_BUILDERS = {"one_sample": _one_sample, "two_arm": _two_arm, "paired": _paired, "clustered": _clustered,
+_BUILDERS = {"table": _table, "one_sample": _one_sample, "two_arm": _two_arm, "paired": _paired, "clustered": _clustered,
              "longitudinal": _longitudinal, "survival": _survival}

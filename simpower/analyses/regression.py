@@ -231,6 +231,8 @@ class OLS(Analysis):
                 "statistic": t}
 
     # -- batch -------------------------------------------------------------------
+    layouts = ("table",)  # any complete table with the formula's columns (checked below)
+
     def supports_batch(self, batch):
         f = self.parsed
         if self.cov_type == "cluster" or not f.intercept or not f.main_effects_only:
