@@ -237,7 +237,7 @@ class OLS(Analysis):
         f = self.parsed
         if self.cov_type == "cluster" or not f.intercept or not f.main_effects_only:
             return False
-        if "present" in batch.per_rep or batch.info.get("missing"):
+        if batch.present is not None or batch.missing:
             return False
         for term in f.terms:
             kind, col = term[0]
