@@ -4,18 +4,14 @@ Processes build a :class:`Batch`: ``per_rep`` arrays with a leading replicate
 axis, ``shared`` design columns, scalars in ``info``. Analyses read it through
 a *layout*, a typed view computed from it on first use and cached on the batch:
 
-============== ========================= ===========================================
-kind           class                     needs
-============== ========================= ===========================================
-table          :class:`TableLayout`      ``y`` (any design: the generic long table)
-one_sample     :class:`OneSampleLayout`  ``y``, no ``arm``
-two_arm        :class:`TwoArmLayout`     ``y`` and ``arm`` with labels in {0, 1}
-paired         :class:`PairedLayout`     two arms in two equal contiguous blocks, the
-                                         same ``pair`` ids in both, no padding
-clustered      :class:`ClusteredLayout`  ``y``, ``arm``, ``cluster``
-longitudinal   :class:`LongitudinalLayout` ``y``, ``arm``, ``visit`` (``subject``)
-survival       :class:`SurvivalLayout`   ``time``, ``event``, ``arm`` labels in {0, 1}
-============== ========================= ===========================================
+* ``table`` (:class:`TableLayout`): ``y`` per replicate -- the generic long table;
+* ``one_sample`` (:class:`OneSampleLayout`): ``y``, no ``arm``;
+* ``two_arm`` (:class:`TwoArmLayout`): ``y`` and ``arm`` with labels in {0, 1};
+* ``paired`` (:class:`PairedLayout`): two arms in two equal contiguous blocks with the same
+  ``pair`` ids in both, no padding;
+* ``clustered`` (:class:`ClusteredLayout`): ``y``, ``arm``, ``cluster``;
+* ``longitudinal`` (:class:`LongitudinalLayout`): ``y``, ``arm``, ``visit`` (and ``subject``);
+* ``survival`` (:class:`SurvivalLayout`): ``time``, ``event``, ``arm`` with labels in {0, 1}.
 
 A batch may have several layouts at once (paired data are also two-arm data,
 a cluster trial's table is also a two-arm table). Every layout carries the
@@ -149,8 +145,12 @@ class Layout:
         return self.batch[name] if name in self.batch else None
 
 
-def _labels(arm) -> tuple:
-    return tuple(np.unique(arm).tolist())
+def _labels(arm) -> tuple | None:
+    """The arm labels that occur, (0,), (1,) or (0, 1); None when another label occurs."""
+    is0, is1 = arm == 0, arm == 1
+    if not np.all(is0 | is1):
+        return None
+    return tuple(label for label, hit in ((0, is0), (1, is1)) if hit.any())
 
 
 @dataclass(frozen=True, eq=False)
@@ -352,7 +352,7 @@ def _two_arm(batch):
         return None
     arm = batch["arm"]
     labels = _labels(arm)
-    if not set(labels) <= {0, 1}:
+    if labels is None:
         return None
     split = _split(arm, labels) if "arm" in batch.shared and "arm" not in batch.per_rep else None
     return TwoArmLayout(**_base(batch, batch.per_rep["y"]), arm=arm, labels=labels, split=split)
@@ -388,7 +388,7 @@ def _survival(batch):
         return None
     arm = batch["arm"]
     labels = _labels(arm)
-    if not set(labels) <= {0, 1}:
+    if labels is None:
         return None
     return SurvivalLayout(**_base(batch, batch.per_rep["time"]), event=batch.per_rep["event"], arm=arm,
                           labels=labels)

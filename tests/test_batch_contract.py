@@ -275,7 +275,7 @@ def test_batch_path_equals_per_replicate_path(spec, process, takes_batch):
     if analysis.layouts:  # what it accepts has a layout it declares
         assert any(batch.layout(k) is not None for k in analysis.layouts)
         if type(analysis).supports_batch is Analysis.supports_batch:
-            assert analysis.batch_layout(batch).kind in analysis.layouts
+            assert analysis.find_layout(batch).kind in analysis.layouts
     res = analysis.batch(batch)
     assert isinstance(res, BatchResult)
     # the cases that exercise trouble do (per-replicate fits, errors by replicate)
@@ -455,3 +455,6 @@ def test_generic_supports_batch_follows_the_declaration():
     small = sp.NormalPaired(n=3).draw_batch(np.random.default_rng(0), 2)
     assert small.layout("paired") is not None and not PairsOnly().supports_batch(small)
     assert not NoBatch().supports_batch(batch_of("two_arm"))
+    with pytest.raises(ValueError, match="paired_t: no batch path for this batch .* layouts paired; the batch has "
+                                         "table, two_arm"):
+        sp.PairedT().batch(batch_of("two_arm"))

@@ -258,7 +258,7 @@ class Analysis(Component):
         """Extra conditions on a declared layout (e.g. no missing values); True by default."""
         return True
 
-    def batch_layout(self, batch):
+    def find_layout(self, batch):
         """The first declared layout that ``batch`` has and :meth:`_supports` accepts, or None."""
         for kind in self.layouts:
             layout = batch.layout(kind)
@@ -266,13 +266,22 @@ class Analysis(Component):
                 return layout
         return None
 
+    def batch_layout(self, batch):
+        """:meth:`find_layout` for a batch path: raises ``ValueError`` when there is none."""
+        layout = self.find_layout(batch)
+        if layout is None:
+            raise ValueError(f"{self.name or type(self).__name__}: no batch path for this batch (it handles the "
+                             f"layouts {', '.join(self.layouts) or 'none declared'}; the batch has "
+                             f"{', '.join(batch.layouts()) or 'none'})")
+        return layout
+
     def supports_batch(self, batch) -> bool:
         """Whether :meth:`batch` can handle this particular batch: it has a declared layout the analysis accepts."""
         if not self.has_batch:
             return False
         if not self.layouts:
             return True
-        return self.batch_layout(batch) is not None
+        return self.find_layout(batch) is not None
 
     #: whether :meth:`analytic_power` is exact (the cross-check flag then means something is wrong)
     #: or an approximation (Welch's Satterthwaite df, normal approximations, Schoenfeld): then a
