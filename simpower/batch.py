@@ -108,8 +108,10 @@ class Layout:
         Padding mask: True where a row exists; None when every row exists.
     missing : bool
         Whether the process leaves outcomes missing at all (a missingness mechanism is on).
-    batch : Batch
-        The batch the view was computed from (other columns: :meth:`column`).
+    per_rep, shared : dict
+        The batch's columns (the same dicts; other columns: :meth:`column`, ``name in layout``).
+        A layout holds these, not the batch, so that the batch's cache of its layouts forms no
+        reference cycle and a chunk's arrays are freed as soon as the chunk is done.
     """
 
     kind = ""
@@ -117,7 +119,8 @@ class Layout:
     y: np.ndarray
     present: np.ndarray | None
     missing: bool
-    batch: Batch = field(repr=False)
+    per_rep: dict = field(repr=False)
+    shared: dict = field(repr=False)
 
     @property
     def size(self) -> int:
@@ -141,8 +144,13 @@ class Layout:
         return ok if self.present is None else ok & self.present
 
     def column(self, name: str) -> np.ndarray | None:
-        """Another column of the batch ((R, N) or (N,)), or None."""
-        return self.batch[name] if name in self.batch else None
+        """Another column of the batch ((R, N) per replicate or (N,) shared), or None."""
+        if name in self.per_rep:
+            return self.per_rep[name]
+        return self.shared.get(name)
+
+    def __contains__(self, name: str) -> bool:
+        return name in self.per_rep or name in self.shared
 
 
 def _labels(arm) -> tuple | None:
@@ -325,7 +333,8 @@ class SurvivalLayout(Layout):
 
 # -- building them from a batch -------------------------------------------------------------
 def _base(batch: Batch, y) -> dict:
-    return {"y": y, "present": batch.present, "missing": batch.missing, "batch": batch}
+    return {"y": y, "present": batch.present, "missing": batch.missing, "per_rep": batch.per_rep,
+            "shared": batch.shared}
 
 
 def _table(batch):

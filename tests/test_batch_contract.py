@@ -14,8 +14,10 @@
 
 from __future__ import annotations
 
+import gc
 import math
 import warnings
+import weakref
 
 import numpy as np
 import pytest
@@ -160,6 +162,22 @@ def test_longitudinal_and_survival_layouts():
             assert np.all(np.diff(seen.astype(int)) <= 0)
     surv = batch_of("survival").layout("survival")
     assert surv.time is surv.y and set(np.unique(surv.event).tolist()) <= {0, 1} and surv.labels == (0, 1)
+
+
+def test_a_batch_with_layouts_is_freed_without_the_cycle_collector():
+    # the layout cache must form no reference cycle, or every chunk's arrays would wait for the
+    # cycle collector and memory would grow with the replicates (test_engine_memory.py)
+    b = batch_of("clusters_variable_missing")
+    for kind in b.layouts():
+        layout = b.layout(kind)
+        layout.observed  # noqa: B018 - fill the cached masks too
+    ref = weakref.ref(b)
+    gc.disable()
+    try:
+        del b, layout
+        assert ref() is None
+    finally:
+        gc.enable()
 
 
 def test_layouts_are_views_computed_once():

@@ -389,11 +389,11 @@ class FinalVisitT(Analysis):
 
     def _supports(self, layout):
         """No padding; arms and visits shared by all replicates."""
-        return layout.present is None and "visit" in layout.batch.shared and "arm" in layout.batch.shared
+        return layout.present is None and "visit" in layout.shared and "arm" in layout.shared
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
-        visit, arm = layout.batch.shared["visit"], layout.batch.shared["arm"]
+        visit, arm = layout.shared["visit"], layout.shared["arm"]
         last = visit == visit.max()
         y = layout.y[:, last]
         a = arm[last]

@@ -291,7 +291,7 @@ class LogT(Analysis):
 
     def _supports(self, layout):
         """Complete batches; two arms in contiguous blocks and not paired (paired data take the paired layout)."""
-        if layout.kind == "two_arm" and ("pair" in layout.batch or layout.split is None):
+        if layout.kind == "two_arm" and ("pair" in layout or layout.split is None):
             return False
         return layout.complete
 

@@ -150,11 +150,11 @@ class LogRank(Analysis):
 
     def _supports(self, layout):
         """No padding; both arms present, in a design shared by all replicates."""
-        return layout.present is None and "arm" in layout.batch.shared and layout.labels == (0, 1)
+        return layout.present is None and "arm" in layout.shared and layout.labels == (0, 1)
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
-        time, event, arm = layout.time, layout.event, layout.batch.shared["arm"]
+        time, event, arm = layout.time, layout.event, layout.shared["arm"]
         u, v = np.empty(batch.size), np.empty(batch.size)
         step = max(1, _BLOCK_CELLS // max(arm.size, 1))  # bounds the memory of the sort-and-count arrays
         for s in range(0, batch.size, step):
