@@ -8,7 +8,7 @@ Monte Carlo error.
 from ._version import __version__
 
 from . import analytic
-from .analyses.base import Analysis, TestResult, as_test_result
+from .analyses.base import Analysis, BatchResult, TestResult, as_batch_result, as_test_result
 from .analyses.binary import ChiSquare, FisherExact, Logistic, TwoProportions
 from .analyses.clustered import GEE, ClusterMeansT, FinalVisitT
 from .analyses.counts import NegBinGLM, PoissonGLM
@@ -24,7 +24,8 @@ from .engine import RunInterrupted, run, run_many
 from .engine.store import RunStore, open_store
 from .errors import ParameterError, RunError, ScenarioFileError, SimpowerError, StoreError, UnknownNameError
 from .processes.arms import MultiArm, TwoArm
-from .processes.base import Batch, Missingness, Outcome, Process
+from .batch import Batch
+from .processes.base import Missingness, Outcome, Process
 from .processes.binary import BinaryTwoArm
 from .processes.clusters import ClusterTrial
 from .processes.counts import CountTwoArm
@@ -61,7 +62,8 @@ __all__ = [
     "sweep", "Grid", "Range", "null_check", "required_n", "detectable_effect", "SearchResult", "run_to_mcse",
     "run_many_to_mcse", "MemoryStore", "point_key", "make_report",
     # contracts
-    "Process", "Analysis", "Outcome", "Missingness", "Batch", "TestResult", "as_test_result",
+    "Process", "Analysis", "Outcome", "Missingness", "Batch", "TestResult", "as_test_result", "BatchResult",
+    "as_batch_result",
     # processes
     "NormalOneSample", "NormalPaired", "NormalTwoArm", "TwoArm", "MultiArm", "ClusterTrial", "RepeatedMeasures",
     "BinaryTwoArm", "CountTwoArm", "SurvivalTwoArm",

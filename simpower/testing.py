@@ -543,8 +543,10 @@ def _check_batch_path(an, batch, results, rep: _Report, rtol, atol, where: str) 
         except Exception as exc:
             rep.fail(f"{where}batch() raised {type(exc).__name__}: {exc} on a batch supports_batch() accepted")
             return 0
-    if not rep.check(isinstance(out, dict) and "pvalue" in out, f"{where}batch() should return a dict with "
-                                                                "'pvalue'"):
+    from collections.abc import Mapping
+
+    if not rep.check(isinstance(out, Mapping) and "pvalue" in out, f"{where}batch() should return a "
+                                                                   "BatchResult or a dict with 'pvalue'"):
         return 0
     n = batch.size
     cols = {}

@@ -298,6 +298,48 @@ def test_registry_and_version_are_leaves():
     assert graph["simpower._version"] == set()
 
 
+def test_batch_module_is_a_leaf():
+    # processes build batches and analyses read their layouts: both import it, so it imports nothing of theirs
+    graph = import_graph(deferred=True)
+    assert graph["simpower.batch"] == set()
+    assert "simpower.batch" in graph["simpower.processes.base"] and "simpower.batch" not in graph["simpower.analyses.base"]
+
+
+def private_cross_imports(module: str, source: str, files) -> list[str]:
+    """``from .other import _name`` in ``module`` where ``other`` is another module of the same package.
+
+    Private modules (``from . import _kernels``) are allowed: a module whose name starts with an
+    underscore is the package's internal part; private names of a sibling module are not.
+    """
+    package = module.rpartition(".")[0]
+    bad = []
+    for node in _imports(ast.parse(source).body, deferred=True):
+        if not isinstance(node, ast.ImportFrom) or node.level != 1 or not node.module:
+            continue
+        target = f"{package}.{node.module}"
+        if target == module or target not in files:
+            continue
+        bad += [f"{module} imports {alias.name} from {target}" for alias in node.names
+                if alias.name.startswith("_") and f"{target}.{alias.name}" not in files]
+    return bad
+
+
+def test_private_cross_import_finder_finds_a_planted_one():
+    files = {"simpower.analyses.a": None, "simpower.analyses.b": None, "simpower.analyses._k": None}
+    src = "from .b import _helper, public\nfrom . import _k\ndef f():\n    from .b import _late\n"
+    assert private_cross_imports("simpower.analyses.a", src, files) == [
+        "simpower.analyses.a imports _helper from simpower.analyses.b",
+        "simpower.analyses.a imports _late from simpower.analyses.b"]
+
+
+def test_analyses_do_not_import_each_others_private_helpers():
+    # shared helpers live in analyses/numeric.py (numbers) and analyses/base.py (the contract)
+    files = _module_files()
+    bad = [line for name, path in sorted(files.items()) if name.startswith("simpower.analyses.")
+           for line in private_cross_imports(name, path.read_text(), files)]
+    assert not bad, "\n".join(bad)
+
+
 HEAVY = ("statsmodels", "matplotlib", "dask", "distributed", "numba")
 
 

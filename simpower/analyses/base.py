@@ -6,9 +6,9 @@ result has a ``pvalue`` and optionally ``estimate``, ``se``, ``ci_low``,
 these into a :class:`TestResult`.
 
 Built-in analyses are :class:`Analysis` objects; those with a batch path
-implement :meth:`Analysis.batch`, which takes a
-:class:`~simpower.processes.base.Batch` and returns a dict of arrays
-(``pvalue`` required; ``estimate``, ``se``, ``ci_low``, ``ci_high`` optional),
+declare the layouts they handle (``layouts``, see :mod:`simpower.batch`) and
+implement :meth:`Analysis.batch`, which takes a :class:`~simpower.batch.Batch`
+and returns a :class:`BatchResult` (a dict with the same keys is accepted too),
 equal to applying the analysis replicate by replicate.
 """
 
@@ -16,7 +16,9 @@ from __future__ import annotations
 
 import math
 import numbers
-from dataclasses import dataclass, field
+import warnings
+from collections.abc import Mapping
+from dataclasses import dataclass, field, fields
 from typing import Any
 
 import numpy as np
@@ -115,6 +117,134 @@ def as_test_result(obj: Any) -> TestResult:
     )
 
 
+def result_from_fields(out: Mapping) -> TestResult:
+    """A :class:`TestResult` from a mapping of scalar fields (``pvalue``, ``estimate``, ...)."""
+    return TestResult(**{k: float(v) for k, v in out.items()})
+
+
+# -- the batch result ------------------------------------------------------------------------
+@dataclass(eq=False)
+class BatchResult(Mapping):
+    """What a batch path returns: the fields of every replicate of a batch, arrays of shape (R,).
+
+    Attributes
+    ----------
+    pvalue : ndarray (R,)
+        The primary p-value (NaN where none could be computed: the engine then
+        records ``nonfinite_pvalue`` unless ``trouble`` names a cause).
+    estimate, se, ci_low, ci_high : ndarray (R,) or None
+        None when the analysis has no such field (recorded as NaN).
+    pvalues : ndarray (R, k) or None
+        Several hypotheses in one analysis: the adjusted p-values, with their ``names``.
+    names : tuple of str
+    trouble : dict cause -> ndarray (R,) of bool
+        Replicates the engine must record as failed, by cause: ``"error:<Type>"``
+        (the per-replicate path would raise that exception) or
+        ``"warning:<Type>"`` (it would warn: fit trouble, judged by the run's
+        policy). Causes are numbered in the order of this dict. A replicate
+        marked here keeps the values given above (an error's are usually NaN).
+    trouble_messages : dict cause -> str
+        One message per cause, shown in the failure summary.
+
+    It reads as a mapping of its fields that are set (``res["pvalue"]``,
+    ``"pvalues" in res``, ``res.get("trouble")``), like the dicts batch paths
+    returned before; :func:`as_batch_result` turns such a dict into one.
+    """
+
+    pvalue: np.ndarray
+    estimate: np.ndarray | None = None
+    se: np.ndarray | None = None
+    ci_low: np.ndarray | None = None
+    ci_high: np.ndarray | None = None
+    pvalues: np.ndarray | None = None
+    names: tuple[str, ...] = ()
+    trouble: dict[str, np.ndarray] = field(default_factory=dict)
+    trouble_messages: dict[str, str] = field(default_factory=dict)
+
+    __test__ = False  # not a pytest class
+
+    def _set(self):
+        for f in fields(self):
+            v = getattr(self, f.name)
+            if v is None or (f.name in ("names", "trouble", "trouble_messages") and not v):
+                continue
+            yield f.name, v
+
+    def __getitem__(self, key: str):
+        for k, v in self._set():
+            if k == key:
+                return v
+        raise KeyError(key)
+
+    def __iter__(self):
+        return (k for k, _ in self._set())
+
+    def __len__(self) -> int:
+        return sum(1 for _ in self._set())
+
+    def mark(self, cause: str, mask, message: str = "") -> None:
+        """Add replicates ``mask`` to the trouble of ``cause`` (the first message of a cause is kept)."""
+        mask = np.asarray(mask, bool)
+        self.trouble[cause] = self.trouble[cause] | mask if cause in self.trouble else mask
+        self.trouble_messages.setdefault(cause, message[:500])
+
+
+_BATCH_KEYS = tuple(f.name for f in fields(BatchResult))
+
+
+def as_batch_result(obj: Any) -> BatchResult:
+    """A :class:`BatchResult` from what a batch path returned (a BatchResult, or a mapping with ``pvalue``).
+
+    Keys other than the fields of :class:`BatchResult` are ignored.
+    """
+    if isinstance(obj, BatchResult):
+        return obj
+    if not isinstance(obj, Mapping) or "pvalue" not in obj:
+        raise TypeError(f"a batch path returned {type(obj).__name__}; return a BatchResult or a dict with 'pvalue'")
+    kw = {k: obj[k] for k in _BATCH_KEYS if k in obj and obj[k] is not None}
+    if "names" in kw:
+        kw["names"] = tuple(kw["names"])
+    for k in ("trouble", "trouble_messages"):
+        kw[k] = dict(kw.get(k) or {})
+    return BatchResult(**kw)
+
+
+def rowwise(analysis, batch, rows) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray], dict[str, str]]:
+    """Run ``analysis`` per replicate on ``rows`` of a batch, the way the engine would.
+
+    Returns the fields of those rows, and trouble masks over the whole batch
+    keyed by cause (``error:<Type>``, ``warning:<Type>``: the first warning
+    that is not a deprecation-type warning), so a batch path can hand the
+    few replicates it cannot compute in closed form to the per-replicate
+    path and still agree with it exactly.
+    """
+    fields_ = {f: np.full(rows.size, np.nan) for f in ("pvalue", "estimate", "se", "ci_low", "ci_high")}
+    trouble: dict[str, np.ndarray] = {}
+    messages: dict[str, str] = {}
+
+    def mark(cause, i, msg):
+        trouble.setdefault(cause, np.zeros(batch.size, bool))[i] = True
+        messages.setdefault(cause, msg[:500])
+
+    for j, i in enumerate(rows):
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            try:
+                res = analysis(batch.replicate(int(i)))
+            except Exception as exc:
+                mark(f"error:{type(exc).__name__}", i, f"{type(exc).__name__}: {exc}")
+                continue
+        for f in fields_:
+            fields_[f][j] = getattr(res, f)
+        if not math.isfinite(res.pvalue):
+            continue
+        for w in caught:
+            if not issubclass(w.category, IGNORED_WARNINGS):
+                mark(f"warning:{w.category.__name__}", i, str(w.message))
+                break
+    return fields_, trouble, messages
+
+
 class Analysis(Component):
     """Base class of built-in analyses."""
 
@@ -128,7 +258,12 @@ class Analysis(Component):
     def __call__(self, data) -> TestResult:  # pragma: no cover - abstract
         raise NotImplementedError
 
-    def batch(self, batch) -> dict[str, np.ndarray] | None:
+    #: the batch layouts (:data:`simpower.batch.LAYOUTS`) the batch path handles, in order of
+    #: preference; empty: no declaration (then :meth:`supports_batch` is True whenever there is a
+    #: batch path, or the class overrides it)
+    layouts: tuple[str, ...] = ()
+
+    def batch(self, batch) -> BatchResult | None:
         """Statistics for all replicates of a batch, or None if there is no batch path."""
         return None
 
@@ -136,9 +271,34 @@ class Analysis(Component):
     def has_batch(self) -> bool:
         return type(self).batch is not Analysis.batch
 
+    def _supports(self, layout) -> bool:
+        """Extra conditions on a declared layout (e.g. no missing values); True by default."""
+        return True
+
+    def find_layout(self, batch):
+        """The first declared layout that ``batch`` has and :meth:`_supports` accepts, or None."""
+        for kind in self.layouts:
+            layout = batch.layout(kind)
+            if layout is not None and self._supports(layout):
+                return layout
+        return None
+
+    def batch_layout(self, batch):
+        """:meth:`find_layout` for a batch path: raises ``ValueError`` when there is none."""
+        layout = self.find_layout(batch)
+        if layout is None:
+            raise ValueError(f"{self.name or type(self).__name__}: no batch path for this batch (it handles the "
+                             f"layouts {', '.join(self.layouts) or 'none declared'}; the batch has "
+                             f"{', '.join(batch.layouts()) or 'none'})")
+        return layout
+
     def supports_batch(self, batch) -> bool:
-        """Whether :meth:`batch` can handle this particular batch (layout checks)."""
-        return self.has_batch
+        """Whether :meth:`batch` can handle this particular batch: it has a declared layout the analysis accepts."""
+        if not self.has_batch:
+            return False
+        if not self.layouts:
+            return True
+        return self.find_layout(batch) is not None
 
     #: whether :meth:`analytic_power` is exact (the cross-check flag then means something is wrong)
     #: or an approximation (Welch's Satterthwaite df, normal approximations, Schoenfeld): then a

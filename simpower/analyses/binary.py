@@ -21,7 +21,8 @@ from scipy import special, stats
 
 from .. import analytic
 from .._validation import Bool
-from .base import ALTERNATIVE, CI_LEVEL, IGNORED_WARNINGS, Analysis, TestResult
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, result_from_fields, rowwise
+from .numeric import p_from_z, wald
 
 
 # -- 2x2 tables --------------------------------------------------------------
@@ -39,24 +40,26 @@ def two_by_two(data) -> tuple[int, int, int, int]:
     return int(y0.sum()), int(y0.size), int(y1.sum()), int(y1.size)
 
 
-def _batch_layout_ok(batch) -> bool:
-    if "y" not in batch.per_rep or "arm" not in batch:
-        return False
-    arm = batch["arm"]
-    if not set(np.unique(arm).tolist()) <= {0, 1}:
-        return False
-    y = batch.per_rep["y"]
+def _binary_outcomes(layout) -> bool:
+    """The two-arm layout's finite outcomes are all 0 or 1 (padding and missing values allowed)."""
+    y = layout.y
     ok = np.isfinite(y)
     return bool(np.all((y[ok] == 0) | (y[ok] == 1)))
 
 
+class _Binary(Analysis):
+    """Two-arm binary analyses: batch path on the 2x2 tables of a two-arm layout."""
+
+    layouts = ("two_arm",)
+    _supports = staticmethod(_binary_outcomes)
+
+
 def batch_two_by_two(batch):
     """Arrays ``(x0, n0, x1, n1)`` over the replicates of a batch (padding and NaN dropped)."""
-    y = batch.per_rep["y"]
-    arm = np.broadcast_to(batch["arm"], y.shape)
-    ok = np.isfinite(y)
-    if "present" in batch.per_rep:
-        ok &= batch.per_rep["present"]
+    layout = batch.layout("two_arm")
+    y = layout.y
+    arm = np.broadcast_to(layout.arm, y.shape)
+    ok = layout.observed
     yy = np.where(ok, y, 0.0)
     is1 = arm == 1
     x1 = np.sum(yy * is1, axis=1)
@@ -76,63 +79,6 @@ def risk_difference(x0, n0, x1, n1, ci_level):
     return est, se, est - crit * se, est + crit * se
 
 
-def _p_from_z(z, alternative):
-    if alternative == "two-sided":
-        return 2.0 * special.ndtr(-np.abs(z))
-    if alternative == "greater":
-        return special.ndtr(-z)
-    return special.ndtr(z)
-
-
-def wald(est, se, alternative, ci_level):
-    """Wald z-test of ``est = 0`` with a ``ci_level`` interval (scalars or arrays)."""
-    crit = special.ndtri(0.5 + ci_level / 2)
-    with np.errstate(all="ignore"):
-        z = np.divide(est, se)
-        return {"pvalue": _p_from_z(z, alternative), "estimate": est, "se": se,
-                "ci_low": est - crit * se, "ci_high": est + crit * se}
-
-
-def _as_result(out: dict) -> TestResult:
-    return TestResult(**{k: float(v) for k, v in out.items()})
-
-
-def rowwise(analysis, batch, rows) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray], dict[str, str]]:
-    """Run ``analysis`` per replicate on ``rows`` of a batch, the way the engine would.
-
-    Returns the fields of those rows, and trouble masks over the whole batch
-    keyed by cause (``error:<Type>``, ``warning:<Type>``: the first warning
-    that is not a deprecation-type warning), so a batch path can hand the
-    few replicates it cannot compute in closed form to the per-replicate
-    path and still agree with it exactly.
-    """
-    fields = {f: np.full(rows.size, np.nan) for f in ("pvalue", "estimate", "se", "ci_low", "ci_high")}
-    trouble: dict[str, np.ndarray] = {}
-    messages: dict[str, str] = {}
-
-    def mark(cause, i, msg):
-        trouble.setdefault(cause, np.zeros(batch.size, bool))[i] = True
-        messages.setdefault(cause, msg[:500])
-
-    for j, i in enumerate(rows):
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always")
-            try:
-                res = analysis(batch.replicate(int(i)))
-            except Exception as exc:
-                mark(f"error:{type(exc).__name__}", i, f"{type(exc).__name__}: {exc}")
-                continue
-        for f in fields:
-            fields[f][j] = getattr(res, f)
-        if not math.isfinite(res.pvalue):
-            continue
-        for w in caught:
-            if not issubclass(w.category, IGNORED_WARNINGS):
-                mark(f"warning:{w.category.__name__}", i, str(w.message))
-                break
-    return fields, trouble, messages
-
-
 # -- two-proportion z-test ---------------------------------------------------
 def _z_test(x0, n0, x1, n1, continuity, alternative):
     with np.errstate(all="ignore"):
@@ -146,10 +92,10 @@ def _z_test(x0, n0, x1, n1, continuity, alternative):
             z = (d - cc) / se0
         else:
             z = (d + cc) / se0
-        return z, _p_from_z(z, alternative)
+        return z, p_from_z(z, alternative)
 
 
-class TwoProportions(Analysis):
+class TwoProportions(_Binary):
     """Two-sample z-test for proportions, pooled SE under H0, optional continuity correction.
 
     H0: p1 = p0. The statistic is ``(p1_hat - p0_hat) / sqrt(pbar (1 - pbar)
@@ -182,15 +128,11 @@ class TwoProportions(Analysis):
 
     def __call__(self, data):
         x0, n0, x1, n1 = two_by_two(data)
-        return _as_result(self._out(float(x0), float(n0), float(x1), float(n1)))
-
-    def supports_batch(self, batch):
-        return _batch_layout_ok(batch)
+        return result_from_fields(self._out(float(x0), float(n0), float(x1), float(n1)))
 
     def batch(self, batch):
         out = self._out(*batch_two_by_two(batch))
-        out.pop("statistic")
-        return out
+        return BatchResult(**{k: v for k, v in out.items() if k != "statistic"})
 
     def analytic_power(self, process, alpha):
         facts = getattr(process, "binary_case", lambda: None)()
@@ -223,7 +165,7 @@ def chi_square_2x2(x0, n0, x1, n1, correction):
     return np.where(bad, np.nan, x2)
 
 
-class ChiSquare(Analysis):
+class ChiSquare(_Binary):
     """Pearson's chi-square test of the 2x2 table (arm x event), optionally Yates-corrected.
 
     H0: the event risk does not depend on the arm (p1 = p0); two-sided. The
@@ -255,13 +197,10 @@ class ChiSquare(Analysis):
         return TestResult(pvalue=float(r.pvalue), statistic=float(r.statistic), df=1.0,
                           **{k: float(v) for k, v in rd.items()})
 
-    def supports_batch(self, batch):
-        return _batch_layout_ok(batch)
-
     def batch(self, batch):
         x0, n0, x1, n1 = batch_two_by_two(batch)
         x2 = chi_square_2x2(x0, n0, x1, n1, self.correction)
-        return {"pvalue": stats.chi2.sf(x2, 1), **self._rd(x0, n0, x1, n1)}
+        return BatchResult(pvalue=stats.chi2.sf(x2, 1), **self._rd(x0, n0, x1, n1))
 
 
 # -- Fisher's exact test -----------------------------------------------------
@@ -329,7 +268,7 @@ def _log_sample_odds_ratio(x0, n0, x1, n1):
         return np.where((num > 0) & (den > 0), np.log(num) - np.log(den), np.nan)
 
 
-class FisherExact(Analysis):
+class FisherExact(_Binary):
     """Fisher's exact test of the 2x2 table (arm x event), conditional on both margins.
 
     H0: the odds ratio of an event, treatment versus control, is 1. The
@@ -353,20 +292,17 @@ class FisherExact(Analysis):
         est = float(_log_sample_odds_ratio(float(x0), float(n0), float(x1), float(n1)))
         return TestResult(pvalue=float(r.pvalue), estimate=est, statistic=float(r.statistic))
 
-    def supports_batch(self, batch):
-        return _batch_layout_ok(batch)
-
     def batch(self, batch):
         x0, n0, x1, n1 = batch_two_by_two(batch)
         p = fisher_pvalues(x0, n0, x1, n1, self.alternative)
         for i in np.flatnonzero(np.isnan(p)):
             table = [[int(x1[i]), int(n1[i] - x1[i])], [int(x0[i]), int(n0[i] - x0[i])]]
             p[i] = stats.fisher_exact(table, alternative=self.alternative).pvalue
-        return {"pvalue": p, "estimate": _log_sample_odds_ratio(x0, n0, x1, n1)}
+        return BatchResult(pvalue=p, estimate=_log_sample_odds_ratio(x0, n0, x1, n1))
 
 
 # -- logistic regression ---------------------------------------------------------
-class Logistic(Analysis):
+class Logistic(_Binary):
     """Logistic regression of the event on the arm (statsmodels ``Logit``, Newton); Wald test.
 
     H0: the log odds ratio (treatment vs control) is 0. Estimate: the arm
@@ -405,23 +341,18 @@ class Logistic(Analysis):
         ok = np.isfinite(y)
         exog = np.column_stack([np.ones(int(ok.sum())), arm[ok]])
         fit = sm.Logit(y[ok], exog).fit(disp=0)
-        return _as_result(self._wald(float(fit.params[1]), float(fit.bse[1])))
-
-    def supports_batch(self, batch):
-        return _batch_layout_ok(batch)
+        return result_from_fields(self._wald(float(fit.params[1]), float(fit.bse[1])))
 
     def batch(self, batch):
         x0, n0, x1, n1 = batch_two_by_two(batch)
         with np.errstate(all="ignore"):
             est = np.log(x1) - np.log(n1 - x1) - np.log(x0) + np.log(n0 - x0)
             se = np.sqrt(1 / x1 + 1 / (n1 - x1) + 1 / x0 + 1 / (n0 - x0))
-        out = self._wald(est, se)
+        out = BatchResult(**self._wald(est, se))
         zero = np.minimum(np.minimum(x0, n0 - x0), np.minimum(x1, n1 - x1)) == 0
         rows = np.flatnonzero(zero)
         if rows.size:
-            fields, trouble, messages = rowwise(self, batch, rows)
+            fields, out.trouble, out.trouble_messages = rowwise(self, batch, rows)
             for f, v in fields.items():
                 out[f][rows] = v
-            out["trouble"] = trouble
-            out["trouble_messages"] = messages
         return out

@@ -24,8 +24,8 @@ from scipy import stats
 from .._validation import Anything, Bool, Choice, Int
 from ..errors import ParameterError
 from ..formula import FormulaText, require_columns
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
-from .ttests import p_from_t, p_from_z
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from .numeric import p_from_t, p_from_z
 
 
 def _two_sided_ci(est, se, df, ci_level):
@@ -132,19 +132,21 @@ class ClusterMeansT(Analysis):
                           df=float(df))
 
     # -- batch --------------------------------------------------------------------
-    def supports_batch(self, batch):
-        if not all(c in batch for c in ("y", "arm", "cluster")):
-            return False
-        cluster = batch["cluster"]
+    layouts = ("clustered",)
+
+    def _supports(self, layout):
+        """Cluster ids are integers in [0, 4 N) (the per-cluster sums are indexed by them)."""
+        cluster = layout.cluster
         return np.issubdtype(cluster.dtype, np.integer) and cluster.min() >= 0 and cluster.max() < 4 * cluster.shape[-1]
 
     def batch(self, batch):
-        y = batch.per_rep["y"]
+        layout = self.batch_layout(batch)
+        y = layout.y
         reps, width = y.shape
-        present = batch.per_rep.get("present")
+        present = layout.present
         present = np.ones((reps, width), bool) if present is None else present
-        cluster = np.broadcast_to(batch["cluster"], (reps, width))
-        arm = np.broadcast_to(batch["arm"], (reps, width))
+        cluster = np.broadcast_to(layout.cluster, (reps, width))
+        arm = np.broadcast_to(layout.arm, (reps, width))
         n_cl = int(cluster.max()) + 1
         idx = cluster + n_cl * np.arange(reps)[:, None]
         ok = present & np.isfinite(y)
@@ -174,12 +176,11 @@ class ClusterMeansT(Analysis):
                 mean1, v1 = _weighted_arm(means, counts, in1)
                 se = np.sqrt(v0 + v1)
             out = _t_fields(mean1 - mean0, se, df, self.alternative, self.ci_level)
-        if mixed.any():
-            for f in out:
-                out[f] = np.where(mixed, np.nan, out[f])
-            out["trouble"] = {"error:ValueError": mixed}
-            out["trouble_messages"] = {"error:ValueError": "cluster_means_t needs cluster randomisation: "
-                                                            "a cluster has members in both arms"}
+        if not mixed.any():
+            return BatchResult(**out)
+        out = BatchResult(**{f: np.where(mixed, np.nan, v) for f, v in out.items()})
+        out.mark("error:ValueError", mixed, "cluster_means_t needs cluster randomisation: "
+                                            "a cluster has members in both arms")
         return out
 
     # -- closed form ------------------------------------------------------------
@@ -387,14 +388,17 @@ class FinalVisitT(Analysis):
         return TestResult(pvalue=float(r.pvalue), estimate=est, se=se, ci_low=float(lo), ci_high=float(hi),
                           statistic=float(r.statistic), df=float(r.df))
 
-    def supports_batch(self, batch):
-        return ("visit" in batch.shared and "arm" in batch.shared and "present" not in batch.per_rep
-                and "y" in batch.per_rep)
+    layouts = ("longitudinal",)
+
+    def _supports(self, layout):
+        """No padding; arms and visits shared by all replicates."""
+        return layout.present is None and "visit" in layout.shared and "arm" in layout.shared
 
     def batch(self, batch):
-        visit, arm = batch.shared["visit"], batch.shared["arm"]
+        layout = self.batch_layout(batch)
+        visit, arm = layout.shared["visit"], layout.shared["arm"]
         last = visit == visit.max()
-        y = batch.per_rep["y"][:, last]
+        y = layout.y[:, last]
         a = arm[last]
         ok = np.isfinite(y)
         in0, in1 = ok & (a == 0), ok & (a == 1)
@@ -410,4 +414,4 @@ class FinalVisitT(Analysis):
             else:
                 df = (n0 + n1 - 2).astype(float)
                 se = np.sqrt((ss0 + ss1) / df * (1.0 / n0 + 1.0 / n1))
-            return _t_fields(m1 - m0, se, df, self.alternative, self.ci_level)
+            return BatchResult(**_t_fields(m1 - m0, se, df, self.alternative, self.ci_level))

@@ -17,8 +17,8 @@ import warnings
 import numpy as np
 
 from .._validation import Choice, Real
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
-from .binary import _as_result, rowwise, wald
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, result_from_fields, rowwise
+from .numeric import wald
 
 
 def count_columns(data):
@@ -89,26 +89,24 @@ class PoissonGLM(Analysis):
             return TestResult(pvalue=math.nan)
         model = sm.GLM(y, _design(arm), family=sm.families.Poisson(), offset=np.log(expo))
         fit = model.fit(method="newton", scale="X2" if self.scale == "pearson" else None)
-        return _as_result(wald(float(fit.params[1]), float(fit.bse[1]), self.alternative, self.ci_level))
+        return result_from_fields(wald(float(fit.params[1]), float(fit.bse[1]), self.alternative, self.ci_level))
 
-    def supports_batch(self, batch):
-        if "y" not in batch.per_rep or "arm" not in batch:
-            return False
-        if not set(np.unique(batch["arm"]).tolist()) <= {0, 1}:
-            return False
-        y = batch.per_rep["y"]
+    layouts = ("two_arm",)
+
+    def _supports(self, layout):
+        """Counts >= 0 where observed, exposure > 0 where given."""
+        y = layout.y
         ok = np.isfinite(y)
-        expo = batch["exposure"] if "exposure" in batch else None
+        expo = layout.column("exposure")
         return bool(np.all(y[ok] >= 0) and (expo is None or np.all(expo > 0)))
 
     def batch(self, batch):
-        y = batch.per_rep["y"]
+        layout = self.batch_layout(batch)
+        y = layout.y
         shape = y.shape
-        arm = np.broadcast_to(batch["arm"], shape)
-        expo = np.broadcast_to(batch["exposure"], shape) if "exposure" in batch else np.ones(shape)
-        ok = np.isfinite(y)
-        if "present" in batch.per_rep:
-            ok &= batch.per_rep["present"]
+        arm = np.broadcast_to(layout.arm, shape)
+        expo = np.broadcast_to(layout.column("exposure"), shape) if "exposure" in batch else np.ones(shape)
+        ok = layout.observed
         yy = np.where(ok, y, 0.0)
         ee = np.where(ok, expo, 0.0)
         is1 = arm == 1
@@ -122,13 +120,12 @@ class PoissonGLM(Analysis):
                 mu = rate * ee
                 x2 = np.sum(np.where(ok, (yy - mu) ** 2 / mu, 0.0), axis=1)
                 se = se * np.sqrt(x2 / (ok.sum(axis=1) - 2))
-        out = wald(est, se, self.alternative, self.ci_level)
+        out = BatchResult(**wald(est, se, self.alternative, self.ci_level))
         rows = np.flatnonzero((y0 == 0) | (y1 == 0))
         if rows.size:
-            fields, trouble, messages = rowwise(self, batch, rows)
+            fields, out.trouble, out.trouble_messages = rowwise(self, batch, rows)
             for f, v in fields.items():
                 out[f][rows] = v
-            out["trouble"], out["trouble_messages"] = trouble, messages
         return out
 
 
@@ -163,4 +160,4 @@ class NegBinGLM(Analysis):
         else:
             family = sm.families.NegativeBinomial(alpha=1.0 / self.dispersion)
             fit = sm.GLM(y, exog, family=family, offset=offset).fit()
-        return _as_result(wald(float(fit.params[1]), float(fit.bse[1]), self.alternative, self.ci_level))
+        return result_from_fields(wald(float(fit.params[1]), float(fit.bse[1]), self.alternative, self.ci_level))

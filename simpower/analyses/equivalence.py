@@ -17,8 +17,9 @@ from scipy import stats
 from .. import analytic
 from .._validation import Bool, Real
 from ..errors import ParameterError
-from .base import CI_LEVEL, Analysis, NullBoundary, TestResult
-from .ttests import TTest, _batch_arms, _mean_var, _split_arms, p_from_t, two_sample_se_df
+from .base import CI_LEVEL, Analysis, BatchResult, NullBoundary, TestResult
+from .numeric import mean_var, p_from_t, split_arms, two_sample_se_df
+from .ttests import TTest
 
 POSITIVE = Real(0.0, low_open=True)
 
@@ -29,7 +30,7 @@ def _t_parts(data, equal_var):
         y = np.asarray(data["y"], float)
         y = y[np.isfinite(y)]
         return (y,), float(y.mean()), float(y.std(ddof=1) / math.sqrt(y.size)), y.size - 1.0
-    y0, y1 = _split_arms(data)
+    y0, y1 = split_arms(data)
     n0, n1 = y0.size, y1.size
     se, df = two_sample_se_df(n0, n1, y0.var(ddof=1), y1.var(ddof=1), equal_var)
     return (y0, y1), float(y1.mean() - y0.mean()), float(se), float(df)
@@ -43,16 +44,16 @@ def _scipy_p(samples, value, equal_var, alternative):
     return float(stats.ttest_ind(y1 - value, y0, equal_var=equal_var, alternative=alternative).pvalue)
 
 
-def _batch_parts(batch, equal_var):
+def _batch_parts(layout, equal_var):
     with np.errstate(all="ignore"):
-        if "arm" not in batch:
-            y = batch.per_rep["y"]
-            m, v = _mean_var(y)
+        if layout.kind == "one_sample":
+            y = layout.y
+            m, v = mean_var(y)
             return m, np.sqrt(v / y.shape[1]), y.shape[1] - 1.0
-        y0, y1 = _batch_arms(batch)
+        y0, y1 = layout.arms()
         n0, n1 = y0.shape[1], y1.shape[1]
-        m0, v0 = _mean_var(y0)
-        m1, v1 = _mean_var(y1)
+        m0, v0 = mean_var(y0)
+        m1, v1 = mean_var(y1)
         return (m1 - m0, *two_sample_se_df(n0, n1, v0, v1, equal_var))
 
 
@@ -144,16 +145,15 @@ class TOST(Analysis):
         lo, hi = _ci(est, se, df, self.ci_level)
         return TestResult(pvalue=max(p_low, p_high), estimate=est, se=se, ci_low=lo, ci_high=hi, df=df)
 
-    def supports_batch(self, batch):
-        return TTest.supports_batch(TTest(), batch)
+    layouts, _supports = TTest.layouts, staticmethod(TTest._supports)  # the t-tests' batch layouts
 
     def batch(self, batch):
         low, high = self.bounds
-        est, se, df = _batch_parts(batch, self.equal_var)
+        est, se, df = _batch_parts(self.batch_layout(batch), self.equal_var)
         with np.errstate(all="ignore"):
             p = np.maximum(p_from_t((est - low) / se, df, "greater"), p_from_t((est - high) / se, df, "less"))
             lo, hi = _ci(est, se, df, self.ci_level)
-        return {"pvalue": p, "estimate": est, "se": se, "ci_low": lo, "ci_high": hi}
+        return BatchResult(pvalue=p, estimate=est, se=se, ci_low=lo, ci_high=hi)
 
 
 class NonInferiority(Analysis):
@@ -197,16 +197,15 @@ class NonInferiority(Analysis):
         return TestResult(pvalue=_scipy_p(samples, value, self.equal_var, alt), estimate=est, se=se,
                           ci_low=lo, ci_high=hi, statistic=(est - value) / se, df=df)
 
-    def supports_batch(self, batch):
-        return TTest.supports_batch(TTest(), batch)
+    layouts, _supports = TTest.layouts, staticmethod(TTest._supports)  # the t-tests' batch layouts
 
     def batch(self, batch):
         value, alt = self._null
-        est, se, df = _batch_parts(batch, self.equal_var)
+        est, se, df = _batch_parts(self.batch_layout(batch), self.equal_var)
         with np.errstate(all="ignore"):
             lo, hi = _ci(est, se, df, self.ci_level)
-            return {"pvalue": p_from_t((est - value) / se, df, alt), "estimate": est, "se": se,
-                    "ci_low": lo, "ci_high": hi}
+            return BatchResult(pvalue=p_from_t((est - value) / se, df, alt), estimate=est, se=se,
+                               ci_low=lo, ci_high=hi)
 
     @property
     def analytic_exact(self) -> bool:

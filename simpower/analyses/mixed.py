@@ -62,7 +62,8 @@ from scipy import stats
 from .._validation import Anything, Choice
 from ..errors import ParameterError
 from ..formula import FormulaText, require_columns
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from .numeric import p_from_t, p_from_z
 
 DF_METHODS = ("wald", "between-within", "satterthwaite")
 
@@ -104,14 +105,9 @@ class _Text(Anything):
 # ---------------------------------------------------------------------------
 def _p_and_crit(stat, df, alternative, ci_level):
     """p-value of ``stat`` and the CI multiplier, normal when ``df`` is None (arrays allowed)."""
-    dist = stats.norm if df is None else stats.t(df)
-    if alternative == "two-sided":
-        p = 2.0 * dist.sf(np.abs(stat))
-    elif alternative == "greater":
-        p = dist.sf(stat)
-    else:
-        p = dist.cdf(stat)
-    return p, dist.ppf(0.5 + ci_level / 2)
+    if df is None:
+        return p_from_z(stat, alternative), stats.norm.ppf(0.5 + ci_level / 2)
+    return p_from_t(stat, df, alternative), stats.t.ppf(0.5 + ci_level / 2, df)
 
 
 def _inv(M):
@@ -567,6 +563,8 @@ class MixedModel(Analysis):
         return out
 
     # -- batch ---------------------------------------------------------------
+    layouts = ("clustered",)  # the formula and column checks below are its own
+
     def supports_batch(self, batch):
         if self.formula.replace(" ", "") not in BATCH_FORMULAS or self.groups != "cluster":
             return False
@@ -610,6 +608,7 @@ class MixedModel(Analysis):
         out = self._result(est, se, df)
         # at the boundary the SE comes from the fixed-effect block alone, so the Hessian's sign is moot
         interior = np.asarray(fit["gamma"]) > 0
-        out["trouble"] = {"warning:ConvergenceWarning": np.asarray(fit["not_pd"], bool) & interior}
-        out["trouble_messages"] = {"warning:ConvergenceWarning": TROUBLE_MESSAGE}
+        out = BatchResult(**out)
+        out.trouble = {"warning:ConvergenceWarning": np.asarray(fit["not_pd"], bool) & interior}
+        out.trouble_messages = {"warning:ConvergenceWarning": TROUBLE_MESSAGE}
         return out

@@ -26,7 +26,7 @@ import numpy as np
 from .._validation import Anything, Choice
 from ..errors import ParameterError
 from ..registry import build, wrap_callable
-from .base import Analysis, TestResult, as_test_result
+from .base import Analysis, BatchResult, TestResult, as_batch_result, as_test_result
 
 #: our method names -> statsmodels' names
 METHODS = {"holm": "holm", "bonferroni": "bonferroni", "hochberg": "simes-hochberg", "hommel": "hommel",
@@ -261,21 +261,16 @@ class Multiple(Analysis):
 
     def batch(self, batch):
         subs = self._sub_batches(batch)
-        outs = [t.batch(b) for _, t, b in subs]
-        raw = np.column_stack([np.broadcast_to(np.asarray(o["pvalue"], float), (batch.size,)) for o in outs])
+        outs = [as_batch_result(t.batch(b)) for _, t, b in subs]
+        raw = np.column_stack([np.broadcast_to(np.asarray(o.pvalue, float), (batch.size,)) for o in outs])
         adj = adjust(raw, self.method)
         first = outs[0]
-        res = {"pvalue": np.min(adj, axis=1), "pvalues": adj, "names": [n for n, *_ in subs]}
-        for f in ("estimate", "se", "ci_low", "ci_high"):
-            if f in first:
-                res[f] = first[f]
-        trouble, messages = {}, {}
+        res = BatchResult(pvalue=np.min(adj, axis=1), pvalues=adj, names=tuple(n for n, *_ in subs),
+                          estimate=first.estimate, se=first.se, ci_low=first.ci_low, ci_high=first.ci_high)
         for o in outs:
-            for cause, mask in (o.get("trouble") or {}).items():
-                trouble[cause] = trouble.get(cause, False) | np.asarray(mask, bool)
-                messages.setdefault(cause, (o.get("trouble_messages") or {}).get(cause, ""))
-        if trouble:
-            res["trouble"], res["trouble_messages"] = trouble, messages
+            for cause, mask in o.trouble.items():
+                res.trouble[cause] = res.trouble.get(cause, False) | np.asarray(mask, bool)
+                res.trouble_messages.setdefault(cause, o.trouble_messages.get(cause, ""))
         return res
 
 

@@ -41,8 +41,8 @@ import numpy as np
 from scipy import special, stats
 
 from .._validation import Bool, Choice, Real
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
-from .ttests import PairedT, _batch_arms, _split_arms
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from .numeric import p_from_z, paired_differences, split_arms
 
 #: largest number of pairwise differences held in memory at once by the numpy path
 _BLOCK = 2_000_000
@@ -321,14 +321,6 @@ def pseudo_median(d: np.ndarray, ci_level: float):
     return _hl_from_order_stats(v, mm, k, r)
 
 
-def _tail_p(z, alternative):
-    if alternative == "two-sided":
-        return np.clip(2.0 * special.ndtr(-np.abs(z)), 0.0, 1.0)
-    if alternative == "greater":
-        return special.ndtr(-z)
-    return special.ndtr(z)
-
-
 # -- Mann-Whitney ------------------------------------------------------------------------
 class MannWhitney(Analysis):
     """Mann-Whitney (Wilcoxon rank-sum) test of two arms, normal approximation.
@@ -384,7 +376,7 @@ class MannWhitney(Analysis):
     def __call__(self, data):
         if "arm" not in data:
             raise ValueError("mann_whitney needs two arms (an 'arm' column); use wilcoxon_signed_rank for one sample")
-        y0, y1 = _split_arms(data)
+        y0, y1 = split_arms(data)
         x1 = y1 - self.null_value
         r = stats.mannwhitneyu(x1, y0, use_continuity=self.continuity, alternative=self.alternative,
                                method="asymptotic")
@@ -418,11 +410,14 @@ class MannWhitney(Analysis):
         return {"estimate": est, "se": se, "ci_low": np.clip(est - z * se, 0, 1),
                 "ci_high": np.clip(est + z * se, 0, 1)}
 
-    def supports_batch(self, batch):
-        return _batch_arms(batch) is not None
+    layouts = ("two_arm",)
+
+    def _supports(self, layout):
+        """Complete batches with contiguous arms."""
+        return layout.complete and layout.split is not None
 
     def batch(self, batch):
-        y0, y1 = _batch_arms(batch)
+        y0, y1 = self.batch_layout(batch).arms()
         x1 = y1 - self.null_value
         n0, n1 = y0.shape[1], x1.shape[1]
         n = n0 + n1
@@ -441,23 +436,11 @@ class MannWhitney(Analysis):
         with np.errstate(divide="ignore", invalid="ignore"):
             z = num / s
         p = special.ndtr(-z) * (2.0 if self.alternative == "two-sided" else 1.0)
-        out = {"pvalue": np.clip(p, 0.0, 1.0)}
-        if shift is None:
-            out.update(self._estimates(y0, x1, u1, pooled))
-        else:
-            out.update(self._shift_fields(*shift))
-        return out
+        fields = self._estimates(y0, x1, u1, pooled) if shift is None else self._shift_fields(*shift)
+        return BatchResult(pvalue=np.clip(p, 0.0, 1.0), **fields)
 
 
 # -- Wilcoxon signed rank ---------------------------------------------------------------------
-def _paired_batch(batch):
-    """Within-pair differences (R, n) for a batch, or None if the layout does not allow it."""
-    if not PairedT.supports_batch(PairedT(), batch):
-        return None
-    y0, y1 = _batch_arms(batch)
-    return y1 - y0
-
-
 class WilcoxonSignedRank(Analysis):
     """Wilcoxon signed-rank test, normal approximation with tie correction.
 
@@ -489,7 +472,7 @@ class WilcoxonSignedRank(Analysis):
 
     def __call__(self, data):
         if "arm" in data:
-            d = PairedT._differences(data)
+            d = paired_differences(data)
         else:
             d = np.asarray(data["y"], float)
             d = d[np.isfinite(d)]
@@ -500,18 +483,16 @@ class WilcoxonSignedRank(Analysis):
         return TestResult(pvalue=float(r.pvalue), statistic=float(r.statistic), estimate=float(est[0]) + nv,
                           ci_low=float(lo[0]) + nv, ci_high=float(hi[0]) + nv)
 
-    def _differences(self, batch):
-        if "arm" in batch:
-            return _paired_batch(batch)
-        if "present" in batch.per_rep or batch.info.get("missing"):
-            return None
-        return batch.per_rep["y"]
+    layouts = ("one_sample", "paired")
 
-    def supports_batch(self, batch):
-        return self._differences(batch) is not None
+    def _supports(self, layout):
+        """Complete batches (no missingness, no padding)."""
+        return layout.complete
 
     def batch(self, batch):
-        x = self._differences(batch) - self.null_value
+        layout = self.batch_layout(batch)
+        d = layout.y if layout.kind == "one_sample" else layout.y1 - layout.y0
+        x = d - self.null_value
         zero = x == 0
         nz = zero.sum(axis=1).astype(float)
         ranks, tie = rank_rows(np.abs(x))
@@ -528,5 +509,5 @@ class WilcoxonSignedRank(Analysis):
                 z = z - (np.sign(z) if sign is None else sign) * 0.5 / se
         est, lo, hi = pseudo_median(x, self.ci_level)
         nv = self.null_value
-        return {"pvalue": _tail_p(z, self.alternative), "estimate": est + nv, "ci_low": lo + nv,
-                "ci_high": hi + nv}
+        return BatchResult(pvalue=p_from_z(z, self.alternative), estimate=est + nv, ci_low=lo + nv,
+                           ci_high=hi + nv)

@@ -23,8 +23,8 @@ from scipy import stats
 from .._validation import Anything, Bool, Choice, Real
 from ..errors import ParameterError, nearest
 from ..formula import Formula, FormulaText, parse_formula  # noqa: F401  (parse_formula: public here too)
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
-from .ttests import p_from_t, p_from_z
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from .numeric import p_from_t, p_from_z
 
 COV_TYPES = ("nonrobust", "HC0", "HC1", "HC2", "HC3", "cluster")
 
@@ -150,11 +150,13 @@ class OLS(Analysis):
                 "statistic": t}
 
     # -- batch -------------------------------------------------------------------
+    layouts = ("table",)  # any complete table with the formula's columns (checked below)
+
     def supports_batch(self, batch):
         f = self.parsed
         if self.cov_type == "cluster" or not f.intercept or not f.main_effects_only or f.references:
             return False
-        if "present" in batch.per_rep or batch.info.get("missing"):
+        if batch.present is not None or batch.missing:
             return False
         for term in f.terms:
             kind, col = term[0]
@@ -223,7 +225,7 @@ class OLS(Analysis):
                     var = var * n / df
             out = self._inference(beta[:, k], np.sqrt(var), df)
         out.pop("statistic")
-        return out
+        return BatchResult(**out)
 
 
 class Ancova(OLS):

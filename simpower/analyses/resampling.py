@@ -25,8 +25,8 @@ import numpy as np
 from scipy import special, stats
 
 from .._validation import Bool, Choice, Int, Real
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
-from .ttests import PairedT, _batch_arms, _mean_var, _split_arms, p_from_t, two_sample_se_df
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from .numeric import mean_var, p_from_t, paired_differences, split_arms, two_sample_se_df
 
 POSITIVE = Real(0.0, low_open=True)
 SEED = Int(low=0)
@@ -49,8 +49,8 @@ def _layout(data):
         y = np.asarray(data["y"], float)
         return "one", y[np.isfinite(y)]
     if "pair" in data:
-        return "one", PairedT._differences(data)
-    return "two", _split_arms(data)
+        return "one", paired_differences(data)
+    return "two", split_arms(data)
 
 
 _LOCATION = {"mean": np.mean, "median": np.median}
@@ -268,11 +268,11 @@ class LogT(Analysis):
         ly[ok] = self._log(y[ok])
         table = {**data, "y": ly}
         if "arm" not in data or "pair" in data:
-            d = ly[ok] if "arm" not in data else PairedT._differences(table)
+            d = ly[ok] if "arm" not in data else paired_differences(table)
             r = stats.ttest_1samp(d, mu, alternative=self.alternative)
             est, se_log = float(d.mean()), float(d.std(ddof=1) / math.sqrt(d.size))
         else:
-            l0, l1 = _split_arms(table)
+            l0, l1 = split_arms(table)
             r = stats.ttest_ind(l1 - mu, l0, equal_var=self.equal_var, alternative=self.alternative)
             est = float(l1.mean() - l0.mean())
             if self.equal_var:
@@ -287,41 +287,41 @@ class LogT(Analysis):
                           ci_low=math.exp(est - crit * se_log), ci_high=math.exp(est + crit * se_log),
                           statistic=float(r.statistic), df=float(r.df))
 
-    def supports_batch(self, batch):
-        if "arm" not in batch:
-            return "present" not in batch.per_rep and not batch.info.get("missing")
-        if "pair" in batch:
-            return PairedT.supports_batch(PairedT(), batch)
-        return _batch_arms(batch) is not None
+    layouts = ("one_sample", "paired", "two_arm")
+
+    def _supports(self, layout):
+        """Complete batches; two arms in contiguous blocks and not paired (paired data take the paired layout)."""
+        if layout.kind == "two_arm" and ("pair" in layout or layout.split is None):
+            return False
+        return layout.complete
 
     def batch(self, batch):
-        y = batch.per_rep["y"]
+        layout = self.batch_layout(batch)
+        y = layout.y
         bad = np.any(y <= 0, axis=1)
         with np.errstate(all="ignore"):
             ly = np.log(np.where(y > 0, y, np.nan))
-            sub = type(batch)(batch.size, {**batch.per_rep, "y": ly}, batch.shared, batch.info)
-            if "arm" not in batch or "pair" in batch:
-                if "arm" in batch:
-                    l0, l1 = _batch_arms(sub)
-                    d = l1 - l0
+            if layout.kind != "two_arm":
+                if layout.kind == "paired":
+                    n0 = layout.y0.shape[1]
+                    d = ly[:, n0:] - ly[:, :n0]
                 else:
                     d = ly
-                m, v = _mean_var(d)
+                m, v = mean_var(d)
                 est, se_log, df = m, np.sqrt(v / d.shape[1]), d.shape[1] - 1
             else:
-                l0, l1 = _batch_arms(sub)
+                l0, l1 = ly[:, : layout.split], ly[:, layout.split:]
                 n0, n1 = l0.shape[1], l1.shape[1]
-                m0, v0 = _mean_var(l0)
-                m1, v1 = _mean_var(l1)
+                m0, v0 = mean_var(l0)
+                m1, v1 = mean_var(l1)
                 est = m1 - m0
                 se_log, df = two_sample_se_df(n0, n1, v0, v1, self.equal_var)
             t = (est - math.log(self.null_ratio)) / se_log
             crit = stats.t.ppf(0.5 + self.ci_level / 2, df)
             ratio = np.exp(est)
-            out = {"pvalue": np.where(bad, np.nan, p_from_t(t, df, self.alternative)), "estimate": ratio,
-                   "se": ratio * se_log, "ci_low": np.exp(est - crit * se_log),
-                   "ci_high": np.exp(est + crit * se_log)}
+            out = BatchResult(pvalue=np.where(bad, np.nan, p_from_t(t, df, self.alternative)), estimate=ratio,
+                              se=ratio * se_log, ci_low=np.exp(est - crit * se_log),
+                              ci_high=np.exp(est + crit * se_log))
         if bad.any():
-            out["trouble"] = {"error:ValueError": bad}
-            out["trouble_messages"] = {"error:ValueError": "ValueError: log_t needs positive outcomes"}
+            out.mark("error:ValueError", bad, "ValueError: log_t needs positive outcomes")
         return out

@@ -24,8 +24,8 @@ from scipy import special
 
 from .. import analytic
 from .._validation import Choice
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
-from .binary import _p_from_z, wald
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from .numeric import p_from_z, wald
 
 
 #: replicate-by-row cells handled at once by the batch log-rank path
@@ -130,7 +130,7 @@ class LogRank(Analysis):
             z = u / np.sqrt(v)
             est, se = u / v, 1.0 / np.sqrt(v)
         crit = special.ndtri(0.5 + self.ci_level / 2)
-        return {"pvalue": _p_from_z(z, self.alternative), "estimate": est, "se": se,
+        return {"pvalue": p_from_z(z, self.alternative), "estimate": est, "se": se,
                 "ci_low": est - crit * se, "ci_high": est + crit * se, "statistic": z}
 
     def __call__(self, data):
@@ -146,21 +146,20 @@ class LogRank(Analysis):
             out["pvalue"] = float(p)
         return TestResult(**out)
 
-    def supports_batch(self, batch):
-        if "present" in batch.per_rep or "time" not in batch.per_rep or "event" not in batch.per_rep:
-            return False
-        arm = batch.shared.get("arm")
-        return arm is not None and arm.ndim == 1 and set(np.unique(arm).tolist()) == {0, 1}
+    layouts = ("survival",)
+
+    def _supports(self, layout):
+        """No padding; both arms present, in a design shared by all replicates."""
+        return layout.present is None and "arm" in layout.shared and layout.labels == (0, 1)
 
     def batch(self, batch):
-        time, event, arm = batch.per_rep["time"], batch.per_rep["event"], batch.shared["arm"]
+        layout = self.batch_layout(batch)
+        time, event, arm = layout.time, layout.event, layout.shared["arm"]
         u, v = np.empty(batch.size), np.empty(batch.size)
         step = max(1, _BLOCK_CELLS // max(arm.size, 1))  # bounds the memory of the sort-and-count arrays
         for s in range(0, batch.size, step):
             u[s:s + step], v[s:s + step] = batch_logrank_terms(time[s:s + step], event[s:s + step], arm)
-        out = self._out(u, v)
-        out.pop("statistic")
-        return out
+        return BatchResult(**{k: x for k, x in self._out(u, v).items() if k != "statistic"})
 
     def analytic_power(self, process, alpha):
         expected = getattr(process, "expected_events", None)

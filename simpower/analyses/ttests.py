@@ -1,9 +1,11 @@
 """z-test, Student's t, Welch's t and the paired t-test, per replicate and as batches.
 
-Layouts understood (see :mod:`simpower.processes.base`): a one-sample table
+Layouts understood (see :mod:`simpower.batch`): a one-sample table
 with column ``y``; a two-arm table with ``y`` and ``arm`` in {0, 1} (the
 estimate is mean(arm 1) - mean(arm 0)); a paired table with ``y``, ``arm`` and
-``pair``. Missing outcomes (NaN in ``y``) are dropped (complete cases).
+``pair``. Missing outcomes (NaN in ``y``) are dropped (complete cases). The
+batch paths take complete batches (no missingness, no padding) whose arms are
+contiguous blocks.
 
 The per-replicate paths call :mod:`scipy.stats`; the batch paths compute the
 same statistics with numpy over a chunk of replicates, and the tests check the
@@ -19,69 +21,10 @@ from scipy import stats
 
 from .. import analytic
 from .._validation import Real
-
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, TestResult
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from .numeric import mean_var, p_from_t, p_from_z, paired_differences, split_arms, two_sample_se_df
 
 POSITIVE = Real(0.0, low_open=True)
-
-
-def p_from_t(t, df, alternative):
-    """p-value of a t statistic (arrays allowed)."""
-    if alternative == "two-sided":
-        return 2.0 * stats.t.sf(np.abs(t), df)
-    if alternative == "greater":
-        return stats.t.sf(t, df)
-    return stats.t.cdf(t, df)
-
-
-def p_from_z(z, alternative):
-    if alternative == "two-sided":
-        return 2.0 * stats.norm.sf(np.abs(z))
-    if alternative == "greater":
-        return stats.norm.sf(z)
-    return stats.norm.cdf(z)
-
-
-def _split_arms(data):
-    y = np.asarray(data["y"], dtype=float)
-    arm = np.asarray(data["arm"])
-    levels = np.unique(arm)
-    if levels.size != 2 or set(levels.tolist()) != {0, 1}:
-        raise ValueError(f"two-arm analyses need arm labels 0 and 1; got {levels.tolist()}")
-    y0, y1 = y[arm == 0], y[arm == 1]
-    return y0[np.isfinite(y0)], y1[np.isfinite(y1)]
-
-
-def _batch_arms(batch):
-    """Views of the control and treatment columns when arms are contiguous, else None."""
-    if "present" in batch.per_rep or batch.info.get("missing") or "arm" not in batch.shared:
-        return None
-    arm = batch.shared["arm"]
-    if arm.ndim != 1 or np.any(arm[:-1] > arm[1:]) or set(np.unique(arm).tolist()) != {0, 1}:
-        return None
-    y = batch.per_rep["y"]
-    n0 = int(np.count_nonzero(arm == 0))
-    return y[:, :n0], y[:, n0:]
-
-
-def _mean_var(y):
-    m = y.mean(axis=1)
-    d = y - m[:, None]
-    v = np.einsum("ij,ij->i", d, d) / (y.shape[1] - 1)
-    return m, v
-
-
-def two_sample_se_df(n0, n1, v0, v1, equal_var: bool):
-    """SE of the difference in arm means and its df, from arm sizes and variances (scalars or arrays).
-
-    ``equal_var``: the pooled variance and n0 + n1 - 2 df (Student); otherwise
-    the Welch-Satterthwaite df (Welch 1947; Satterthwaite 1946).
-    """
-    if equal_var:
-        df = n0 + n1 - 2.0
-        return np.sqrt(((n0 - 1) * v0 + (n1 - 1) * v1) / df * (1 / n0 + 1 / n1)), df
-    a0, a1 = v0 / n0, v1 / n1
-    return np.sqrt(a0 + a1), (a0 + a1) ** 2 / (a0**2 / (n0 - 1) + a1**2 / (n1 - 1))
 
 
 def _ci(est, se, crit):
@@ -104,7 +47,14 @@ class _TBase(Analysis):
         p = p_from_t(t, df, self.alternative)
         crit = stats.t.ppf(0.5 + self.ci_level / 2, df)
         lo, hi = _ci(est, se, crit)
-        return {"pvalue": p, "estimate": est, "se": se, "ci_low": lo, "ci_high": hi}
+        return BatchResult(pvalue=p, estimate=est, se=se, ci_low=lo, ci_high=hi)
+
+
+def _complete_blocks(layout) -> bool:
+    """One sample or pairs: complete; two arms: complete and contiguous (the batch paths' columns)."""
+    if not layout.complete:
+        return False
+    return layout.kind != "two_arm" or layout.split is not None
 
 
 class TTest(_TBase):
@@ -125,7 +75,7 @@ class TTest(_TBase):
             est = float(y.mean())
             se = float(y.std(ddof=1) / math.sqrt(y.size))
         else:
-            y0, y1 = _split_arms(data)
+            y0, y1 = split_arms(data)
             r = stats.ttest_ind(y1 - self.null_mean, y0, equal_var=True, alternative=self.alternative)
             est = float(y1.mean() - y0.mean())
             df = y0.size + y1.size - 2
@@ -135,21 +85,20 @@ class TTest(_TBase):
         return TestResult(pvalue=float(r.pvalue), estimate=est, se=se, ci_low=lo, ci_high=hi,
                           statistic=float(r.statistic), df=float(r.df))
 
-    def supports_batch(self, batch):
-        if "arm" not in batch:
-            return "present" not in batch.per_rep and not batch.info.get("missing")
-        return _batch_arms(batch) is not None
+    layouts = ("one_sample", "two_arm")
+    _supports = staticmethod(_complete_blocks)
 
     def batch(self, batch):
+        layout = self.batch_layout(batch)
         with np.errstate(all="ignore"):
-            if "arm" not in batch:
-                y = batch.per_rep["y"]
-                m, v = _mean_var(y)
+            if layout.kind == "one_sample":
+                y = layout.y
+                m, v = mean_var(y)
                 return self._result(m, np.sqrt(v / y.shape[1]), y.shape[1] - 1)
-            y0, y1 = _batch_arms(batch)
+            y0, y1 = layout.arms()
             n0, n1 = y0.shape[1], y1.shape[1]
-            m0, v0 = _mean_var(y0)
-            m1, v1 = _mean_var(y1)
+            m0, v0 = mean_var(y0)
+            m1, v1 = mean_var(y1)
             se, df = two_sample_se_df(n0, n1, v0, v1, equal_var=True)
             return self._result(m1 - m0, se, df)
 
@@ -174,7 +123,7 @@ class WelchT(_TBase):
     def __call__(self, data):
         if "arm" not in data:
             raise ValueError("welch_t needs two arms (an 'arm' column)")
-        y0, y1 = _split_arms(data)
+        y0, y1 = split_arms(data)
         r = stats.ttest_ind(y1 - self.null_mean, y0, equal_var=False, alternative=self.alternative)
         est = float(y1.mean() - y0.mean())
         se = math.sqrt(y0.var(ddof=1) / y0.size + y1.var(ddof=1) / y1.size)
@@ -182,15 +131,15 @@ class WelchT(_TBase):
         return TestResult(pvalue=float(r.pvalue), estimate=est, se=se, ci_low=lo, ci_high=hi,
                           statistic=float(r.statistic), df=float(r.df))
 
-    def supports_batch(self, batch):
-        return _batch_arms(batch) is not None
+    layouts = ("two_arm",)
+    _supports = staticmethod(_complete_blocks)
 
     def batch(self, batch):
-        y0, y1 = _batch_arms(batch)
+        y0, y1 = self.batch_layout(batch).arms()
         n0, n1 = y0.shape[1], y1.shape[1]
         with np.errstate(all="ignore"):
-            m0, v0 = _mean_var(y0)
-            m1, v1 = _mean_var(y1)
+            m0, v0 = mean_var(y0)
+            m1, v1 = mean_var(y1)
             se, df = two_sample_se_df(n0, n1, v0, v1, equal_var=False)
             return self._result(m1 - m0, se, df)
 
@@ -211,20 +160,8 @@ class PairedT(_TBase):
     name = "paired_t"
     null_hypothesis = "the mean within-pair difference equals null_mean"
 
-    @staticmethod
-    def _differences(data):
-        y = np.asarray(data["y"], float)
-        arm = np.asarray(data["arm"])
-        pair = np.asarray(data["pair"])
-        o0 = np.argsort(pair[arm == 0], kind="stable")
-        o1 = np.argsort(pair[arm == 1], kind="stable")
-        p0, p1 = pair[arm == 0][o0], pair[arm == 1][o1]
-        if p0.size != p1.size or np.any(p0 != p1):
-            common, i0, i1 = np.intersect1d(pair[arm == 0], pair[arm == 1], return_indices=True)
-            d = y[arm == 1][i1] - y[arm == 0][i0]
-        else:
-            d = y[arm == 1][o1] - y[arm == 0][o0]
-        return d[np.isfinite(d)]
+    #: within-pair differences of one long table (kept as an attribute for compatibility)
+    _differences = staticmethod(paired_differences)
 
     def __call__(self, data):
         d = self._differences(data)
@@ -234,18 +171,14 @@ class PairedT(_TBase):
         return TestResult(pvalue=float(r.pvalue), estimate=est, se=se, ci_low=lo, ci_high=hi,
                           statistic=float(r.statistic), df=float(r.df))
 
-    def supports_batch(self, batch):
-        if _batch_arms(batch) is None or "pair" not in batch.shared:
-            return False
-        arm, pair = batch.shared["arm"], batch.shared["pair"]
-        n0 = int(np.count_nonzero(arm == 0))
-        return 2 * n0 == arm.size and np.array_equal(pair[:n0], pair[n0:])
+    layouts = ("paired",)
+    _supports = staticmethod(_complete_blocks)
 
     def batch(self, batch):
-        y0, y1 = _batch_arms(batch)
-        d = y1 - y0
+        layout = self.batch_layout(batch)
+        d = layout.y1 - layout.y0
         with np.errstate(all="ignore"):
-            m, v = _mean_var(d)
+            m, v = mean_var(d)
             return self._result(m, np.sqrt(v / d.shape[1]), d.shape[1] - 1)
 
     def analytic_power(self, process, alpha):
@@ -277,7 +210,7 @@ class ZTest(Analysis):
         z = (est - self.null_mean) / se
         crit = stats.norm.ppf(0.5 + self.ci_level / 2)
         lo, hi = _ci(est, se, crit)
-        return {"pvalue": p_from_z(z, self.alternative), "estimate": est, "se": se, "ci_low": lo, "ci_high": hi}
+        return BatchResult(pvalue=p_from_z(z, self.alternative), estimate=est, se=se, ci_low=lo, ci_high=hi)
 
     def __call__(self, data):
         if "arm" not in data:
@@ -285,20 +218,21 @@ class ZTest(Analysis):
             y = y[np.isfinite(y)]
             out = self._out(float(y.mean()), self.sd / math.sqrt(y.size))
         else:
-            y0, y1 = _split_arms(data)
+            y0, y1 = split_arms(data)
             se = math.sqrt(self.sd**2 / y0.size + self._sd1() ** 2 / y1.size)
             out = self._out(float(y1.mean() - y0.mean()), se)
         return TestResult(**{k: float(v) for k, v in out.items()})
 
-    def supports_batch(self, batch):
-        return TTest.supports_batch(self, batch)
+    layouts = ("one_sample", "two_arm")
+    _supports = staticmethod(_complete_blocks)
 
     def batch(self, batch):
-        if "arm" not in batch:
-            y = batch.per_rep["y"]
+        layout = self.batch_layout(batch)
+        if layout.kind == "one_sample":
+            y = layout.y
             est = y.mean(axis=1)
             return self._out(est, np.full(est.shape, self.sd / math.sqrt(y.shape[1])))
-        y0, y1 = _batch_arms(batch)
+        y0, y1 = layout.arms()
         se = math.sqrt(self.sd**2 / y0.shape[1] + self._sd1() ** 2 / y1.shape[1])
         est = y1.mean(axis=1) - y0.mean(axis=1)
         return self._out(est, np.full(est.shape, se))

@@ -55,7 +55,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..analyses.base import FIELDS, IGNORED_WARNINGS, as_test_result
+from ..analyses.base import FIELDS, IGNORED_WARNINGS, as_batch_result, as_test_result
 TIMEOUT = "timeout"
 CRASH = "crash"
 PROCESS_CRASH = "process:crash"
@@ -207,7 +207,7 @@ def _apply_one(analysis, data, rec, i, causes: _Causes, hyp: dict, name: str, li
 
 
 def _apply_batch(analysis, batch, rec, causes: _Causes, hyp: dict, name: str):
-    out = analysis.batch(batch)
+    out = as_batch_result(analysis.batch(batch))  # a BatchResult, or a dict with its keys
     for f in FIELDS:
         if f in out:
             rec[f][:] = np.broadcast_to(np.asarray(out[f], float), rec[f].shape)

@@ -9,50 +9,18 @@ A process may also draw a whole chunk of replicates at once
 (:meth:`Process.draw_batch`), returning a :class:`Batch`; the engine then hands
 the batch to analyses that have a batch path, and per-replicate slices
 (:meth:`Batch.replicate`) to those that do not, so every analysis sees the same
-simulated data sets (common random numbers).
+simulated data sets (common random numbers). :class:`Batch` and its typed
+layouts live in :mod:`simpower.batch` (a leaf that analyses import too).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
+from ..batch import Batch  # noqa: F401 - the container processes build, defined in the leaf module
 from ..components import Component
-
-
-@dataclass
-class Batch:
-    """``size`` replicates as arrays.
-
-    ``per_rep`` arrays have a leading replicate axis of length ``size``;
-    ``shared`` arrays are the same in every replicate (the design: arm
-    labels, cluster ids...).  ``info`` carries scalars an analysis may need.
-    Rows where ``per_rep['present']`` is False (padding for variable sizes)
-    are dropped from per-replicate slices.
-    """
-
-    size: int
-    per_rep: dict[str, np.ndarray]
-    shared: dict[str, np.ndarray] = field(default_factory=dict)
-    info: dict[str, Any] = field(default_factory=dict)
-
-    def replicate(self, i: int) -> dict[str, np.ndarray]:
-        """Replicate ``i`` as a long table (dict of equal-length 1-D arrays)."""
-        row = {**self.shared, **{k: v[i] for k, v in self.per_rep.items()}}
-        present = row.pop("present", None)
-        if present is not None:
-            row = {k: v[present] for k, v in row.items()}
-        return row
-
-    def __getitem__(self, key: str) -> np.ndarray:
-        if key in self.per_rep:
-            return self.per_rep[key]
-        return self.shared[key]
-
-    def __contains__(self, key: str) -> bool:
-        return key in self.per_rep or key in self.shared
 
 
 class Process(Component):
@@ -135,7 +103,7 @@ class Missingness(Component):
 
     A process holding one (conventionally in its ``missing`` parameter) calls
     :meth:`mask` after drawing complete outcomes, sets the masked outcomes to
-    NaN, and sets ``Batch.info["missing"] = True``.
+    NaN, and sets ``Batch.info["missing"] = True`` (read by analyses as the layouts' ``missing``).
     """
 
     kind = "missingness"

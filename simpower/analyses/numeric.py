@@ -1,0 +1,104 @@
+"""Numerical helpers shared by the analyses (one copy each; scalars or arrays).
+
+Every analysis module takes these from here, never from another analysis
+module: p-values from z and t statistics by alternative, the Wald test, the
+two-sample SE and df, row-wise means and variances of a batch, and the
+splitting of a long table into arms or pairs.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import special, stats
+
+
+def p_from_z(z, alternative: str):
+    """p-value of a standard normal statistic ``z`` for H1 ``alternative`` (arrays allowed).
+
+    'two-sided': 2 Phi(-|z|); 'greater': Phi(-z); 'less': Phi(z). ``special.ndtr``
+    is what ``scipy.stats.norm.sf`` / ``cdf`` evaluate (bit for bit), without their
+    argument handling.
+    """
+    if alternative == "two-sided":
+        return 2.0 * special.ndtr(-np.abs(z))
+    if alternative == "greater":
+        return special.ndtr(-z)
+    return special.ndtr(z)
+
+
+def p_from_t(t, df, alternative: str):
+    """p-value of a t statistic with ``df`` degrees of freedom for H1 ``alternative`` (arrays allowed)."""
+    if alternative == "two-sided":
+        return 2.0 * stats.t.sf(np.abs(t), df)
+    if alternative == "greater":
+        return stats.t.sf(t, df)
+    return stats.t.cdf(t, df)
+
+
+def wald(est, se, alternative: str, ci_level: float) -> dict:
+    """Wald z-test of ``est = 0`` with a two-sided ``ci_level`` interval (scalars or arrays).
+
+    Returns the fields ``pvalue``, ``estimate``, ``se``, ``ci_low``, ``ci_high``.
+    """
+    crit = special.ndtri(0.5 + ci_level / 2)
+    with np.errstate(all="ignore"):
+        z = np.divide(est, se)
+        return {"pvalue": p_from_z(z, alternative), "estimate": est, "se": se,
+                "ci_low": est - crit * se, "ci_high": est + crit * se}
+
+
+def two_sample_se_df(n0, n1, v0, v1, equal_var: bool):
+    """SE of the difference in arm means and its df, from arm sizes and variances (scalars or arrays).
+
+    ``equal_var``: the pooled variance and n0 + n1 - 2 df (Student); otherwise
+    the Welch-Satterthwaite df (Welch 1947; Satterthwaite 1946).
+    """
+    if equal_var:
+        df = n0 + n1 - 2.0
+        return np.sqrt(((n0 - 1) * v0 + (n1 - 1) * v1) / df * (1 / n0 + 1 / n1)), df
+    a0, a1 = v0 / n0, v1 / n1
+    return np.sqrt(a0 + a1), (a0 + a1) ** 2 / (a0**2 / (n0 - 1) + a1**2 / (n1 - 1))
+
+
+def mean_var(y):
+    """Row means and sample variances (ddof 1) of a 2-D array (replicates x values)."""
+    m = y.mean(axis=1)
+    d = y - m[:, None]
+    v = np.einsum("ij,ij->i", d, d) / (y.shape[1] - 1)
+    return m, v
+
+
+def split_arms(data):
+    """Finite outcomes of arm 0 and arm 1 of one long table (``y``, ``arm`` labels exactly 0 and 1).
+
+    Raises
+    ------
+    ValueError
+        If the arm labels are not exactly {0, 1}.
+    """
+    y = np.asarray(data["y"], dtype=float)
+    arm = np.asarray(data["arm"])
+    levels = np.unique(arm)
+    if levels.size != 2 or set(levels.tolist()) != {0, 1}:
+        raise ValueError(f"two-arm analyses need arm labels 0 and 1; got {levels.tolist()}")
+    y0, y1 = y[arm == 0], y[arm == 1]
+    return y0[np.isfinite(y0)], y1[np.isfinite(y1)]
+
+
+def paired_differences(data):
+    """Finite within-pair differences arm 1 - arm 0 of one long table (``y``, ``arm``, ``pair``).
+
+    Pairs are matched by id; ids present in one arm only are dropped.
+    """
+    y = np.asarray(data["y"], float)
+    arm = np.asarray(data["arm"])
+    pair = np.asarray(data["pair"])
+    o0 = np.argsort(pair[arm == 0], kind="stable")
+    o1 = np.argsort(pair[arm == 1], kind="stable")
+    p0, p1 = pair[arm == 0][o0], pair[arm == 1][o1]
+    if p0.size != p1.size or np.any(p0 != p1):
+        common, i0, i1 = np.intersect1d(pair[arm == 0], pair[arm == 1], return_indices=True)
+        d = y[arm == 1][i1] - y[arm == 0][i0]
+    else:
+        d = y[arm == 1][o1] - y[arm == 0][o0]
+    return d[np.isfinite(d)]
