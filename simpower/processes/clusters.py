@@ -33,6 +33,7 @@ from .._validation import Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
 from .base import Batch, Process, check_missing_columns
+from .design import apply_missing
 
 POSITIVE = Real(0.0, low_open=True)
 
@@ -270,25 +271,10 @@ class ClusterTrial(Process):
             per_rep["present"] = present
         info = {"clusters_per_arm": self.clusters, "n_clusters": n_clusters, "randomise": self.randomise,
                 "equal_sizes": self.equal_sizes}
-        if self.missing is not None:
-            miss = self._missing_mask(rng, y, {"arm": arm, "cluster": cluster}, present)
-            y[miss] = np.nan
-            per_rep["observed"] = (~miss).astype(np.int8)
-            info["missing"] = True
+        # one call for equal clusters, else one per replicate on its rows (no padding)
+        apply_missing(self.missing, rng, y, {"arm": arm, "cluster": cluster}, per_rep, info, present=present)
         per_rep["y"] = y
         return Batch(size, per_rep, shared, info)
-
-    def _missing_mask(self, rng, y, columns, present):
-        """The ``missing`` component's mask: one call for equal clusters, else one per replicate (no padding rows)."""
-        if present is None:
-            cov = {k: np.broadcast_to(v, y.shape) for k, v in columns.items()}
-            return np.asarray(self.missing.mask(rng, y, cov), bool)
-        miss = np.zeros(y.shape, bool)
-        for i in range(y.shape[0]):
-            rows = present[i]
-            cov = {k: (v[i] if v.ndim == 2 else v)[rows] for k, v in columns.items()}
-            miss[i, rows] = np.asarray(self.missing.mask(rng, y[i, rows], cov), bool).reshape(-1)
-        return miss
 
     # -- words -----------------------------------------------------------
     def true_effect(self):

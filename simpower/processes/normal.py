@@ -9,8 +9,8 @@ from __future__ import annotations
 import numpy as np
 
 from .._validation import Int, Real
-from ..errors import ParameterError
 from .base import Batch, Process
+from .design import TwoArms, arm_defaults, arm_params
 
 POSITIVE = Real(0.0, low_open=True)
 
@@ -83,7 +83,7 @@ class NormalPaired(Process):
         return {"design": "paired", "effect": self.effect, "n": self.n, "sd": self.sd_difference, "ratio": 1.0}
 
 
-class NormalTwoArm(Process):
+class NormalTwoArm(TwoArms, Process):
     """Two independent arms, normal outcomes, possibly unequal SDs and allocation.
 
     Parameters
@@ -93,6 +93,9 @@ class NormalTwoArm(Process):
     ratio : float > 0
         Allocation ratio n_treatment / n_control; the treatment arm has
         ``round(ratio * n)`` participants (at least 2).
+    n1 : int >= 2, optional
+        The treatment arm's size, given directly instead of ``ratio``
+        (``sizes = [n0, n1]`` gives both arms at once).
     effect : float
         Mean of the treatment arm minus mean of the control arm.
     sd : float > 0
@@ -107,20 +110,15 @@ class NormalTwoArm(Process):
     """
 
     name = "normal_two_arm"
-    params = {"n": Int(low=2), "effect": Real(), "sd": POSITIVE, "sd_ratio": POSITIVE,
-              "ratio": POSITIVE, "mean0": Real()}
-    defaults = {"effect": 0.0, "sd": 1.0, "sd_ratio": 1.0, "ratio": 1.0, "mean0": 0.0}
+    params = arm_params({"n": Int(low=2), "effect": Real(), "sd": POSITIVE, "sd_ratio": POSITIVE,
+                         "ratio": POSITIVE, "mean0": Real()})
+    defaults = arm_defaults({"effect": 0.0, "sd": 1.0, "sd_ratio": 1.0, "ratio": 1.0, "mean0": 0.0})
 
     def _check(self):
-        if self.n1 < 2:
-            raise ParameterError(f"`ratio` gives a treatment arm of {self.n1} (< 2) with n = {self.n}; raise n or ratio.")
+        self._check_arms()
 
     def estimand_aliases(self):
         return {"location shift"} if self.sd_ratio == 1 else set()
-
-    @property
-    def n1(self) -> int:
-        return int(round(self.ratio * self.n))
 
     @property
     def sd1(self) -> float:
@@ -136,12 +134,11 @@ class NormalTwoArm(Process):
         if self.mean0:
             y[:, :n0] += self.mean0
         y[:, n0:] += self.mean0 + self.effect
-        arm = np.repeat(np.array([0, 1], dtype=np.int8), [n0, n1])
-        return Batch(size, {"y": y}, {"arm": arm}, info={"n0": n0, "n1": n1})
+        return Batch(size, {"y": y}, {"arm": self.arm_labels()}, info=self.arm_info())
 
     def describe(self):
         sds = f"SD {self.sd:g}" if self.sd_ratio == 1 else f"SDs {self.sd:g} (control) and {self.sd1:g} (treatment)"
-        return (f"two arms of {self.n} (control) and {self.n1} (treatment), normal outcomes with {sds}; "
+        return (f"{self.arms_text()}, normal outcomes with {sds}; "
                 f"treatment minus control mean difference {self.effect:g}")
 
     def normal_case(self):
