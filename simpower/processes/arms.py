@@ -33,7 +33,7 @@ from .._validation import Anything, Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
 from .base import Batch, Process, check_missing_columns
-from .design import TwoArms, apply_missing, arm_defaults, arm_params
+from .design import TwoArms, Vocabulary, apply_missing, arm_defaults, arm_params
 from .outcomes import Described, Normal
 
 POSITIVE = Real(0.0, low_open=True)
@@ -315,7 +315,7 @@ def _numbers(field, value, k=None, positive=False):
     return tuple(float(v) for v in vals)
 
 
-class MultiArm(Process):
+class MultiArm(Vocabulary, Process):
     """k >= 2 independent arms (arm 0 = control) with per-arm effects, sizes and SDs.
 
     Parameters
@@ -326,7 +326,7 @@ class MultiArm(Process):
         null value (0, or 1 for ``ratio``). ``k`` is its length.
     n : int >= 2 or list of k ints >= 2
         Size of the control arm (then ``allocation`` gives the others), or
-        the size of every arm.
+        the size of every arm. A list may also be given as ``sizes``.
     allocation : list of k positive numbers, optional
         Relative arm sizes: arm j has ``round(n * allocation[j] / allocation[0])``
         participants. Default: equal arms. Not with a list ``n``.
@@ -346,6 +346,7 @@ class MultiArm(Process):
     """
 
     name = "multi_arm"
+    aliases = {"sizes": "n"}
     effect_param = "effects"
     params = {"effects": Described(text="a list of effects, one per arm, control first (e.g. [0, 0.3, 0.5])"),
               "n": Described(text="the control-arm size (an integer >= 2) or a list of arm sizes"),

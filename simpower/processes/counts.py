@@ -13,7 +13,8 @@ participant from a gamma distribution with mean ``exposure`` and coefficient of
 variation ``exposure_cv`` (e.g. varying follow-up).
 
 The long table has columns ``y`` (counts, float), ``arm`` (0 control, 1
-treatment, control rows first) and ``exposure``.
+treatment, control rows first) and ``exposure``; with a ``missing``
+mechanism, hidden counts are NaN and an ``observed`` column (1/0) is added.
 """
 
 from __future__ import annotations
@@ -23,8 +24,9 @@ import math
 import numpy as np
 
 from .._validation import Int, Real
-from .base import Batch, Process
-from .design import TwoArms, arm_defaults, arm_params
+from ..components import Nested
+from .base import Batch, Process, check_missing_columns
+from .design import TwoArms, apply_missing, arm_defaults, arm_params
 
 POSITIVE = Real(0.0, low_open=True)
 
@@ -55,14 +57,17 @@ class CountTwoArm(TwoArms, Process):
     n1 : int >= 2, optional
         The treatment arm's size, given directly instead of ``ratio``
         (``sizes = [n0, n1]`` gives both arms at once).
+    missing : missingness, optional
+        Applied once after the counts are drawn (``mcar``, ``mnar``, or
+        ``mar`` with ``on = "arm"`` or ``"exposure"``); hidden counts are NaN.
 
     Notes
     -----
     :meth:`true_effect` is the log rate ratio, the estimand of
     ``poisson_glm`` and ``negbin_glm``. Draws come in a fixed order
-    (exposures, then gamma multipliers, then Poisson counts); with
-    ``exposure_cv = 0`` no exposure is drawn and without ``dispersion`` no
-    multiplier.
+    (exposures, then gamma multipliers, then Poisson counts, then the
+    missingness mask); with ``exposure_cv = 0`` no exposure is drawn, without
+    ``dispersion`` no multiplier and without ``missing`` no mask.
 
     Examples
     --------
@@ -82,14 +87,16 @@ class CountTwoArm(TwoArms, Process):
         "exposure": POSITIVE,
         "exposure_cv": Real(0.0),
         "ratio": POSITIVE,
+        "missing": Nested("missingness", optional=True),
     })
     defaults = arm_defaults({"rate_ratio": 1.0, "dispersion": None, "exposure": 1.0, "exposure_cv": 0.0,
-                             "ratio": 1.0})
+                             "ratio": 1.0, "missing": None})
     effect_param = "rate_ratio"
     size_param = "n"
 
     def _check(self):
         self._check_arms()
+        check_missing_columns(self.missing, {"arm", "exposure"}, self.name)
 
     def null_value(self) -> float:
         return 1.0
@@ -124,12 +131,15 @@ class CountTwoArm(TwoArms, Process):
             mu = mu * rng.gamma(k, 1.0 / k, (size, m))
         y = rng.poisson(np.broadcast_to(mu, (size, m))).astype(float)
         per_rep["y"] = y
-        return Batch(size, per_rep, shared, info=self.arm_info())
+        info = self.arm_info()
+        apply_missing(self.missing, rng, y, {"arm": arm, "exposure": expo}, per_rep, info)
+        return Batch(size, per_rep, shared, info=info)
 
     def describe(self):
         dist = ("Poisson counts" if self.dispersion is None else
                 f"negative binomial counts (variance mu + mu^2/{self.dispersion:g})")
         expo = (f"exposure {self.exposure:g}" if self.exposure_cv == 0 else
                 f"gamma-distributed exposure with mean {self.exposure:g} and CV {self.exposure_cv:g}")
+        miss = f"; missing outcomes: {self.missing.describe()}" if self.missing is not None else ""
         return (f"{self.arms_text()}, {dist}, {expo}; control rate "
-                f"{self.rate0:g} per unit exposure, treatment / control rate ratio {self.rate_ratio:g}")
+                f"{self.rate0:g} per unit exposure, treatment / control rate ratio {self.rate_ratio:g}{miss}")

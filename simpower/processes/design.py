@@ -8,8 +8,11 @@ each is written once:
 
 * :class:`TwoArms`, a mixin that gives a process the two-arm sizes: ``n`` (the
   control arm), and either ``ratio`` (treatment / control) or ``n1`` (the
-  treatment arm directly); a list ``sizes = [n0, n1]`` is accepted at
-  construction and stored as ``n`` and ``n1``.
+  treatment arm directly); the lists ``sizes = [n0, n1]`` and
+  ``allocation = [a0, a1]`` are accepted at construction and stored as
+  ``n`` and ``n1``, or as ``ratio``.
+* :class:`Vocabulary`, a mixin through which a process accepts another name
+  for one of its parameters (``corr`` for ``rho``...), keeping the stored name.
 * :func:`apply_missing`, which applies a :class:`~simpower.processes.base.Missingness`
   component once, after the complete outcomes are drawn, for every design:
   it sets hidden outcomes to NaN, adds the ``observed`` column (1/0) and sets
@@ -56,7 +59,46 @@ def _merged(table: dict, shared: dict) -> dict:
     return out
 
 
-class TwoArms:
+class Vocabulary:
+    """Mixin: other names a process accepts for its parameters, at construction and in ``replace``.
+
+    ``aliases`` maps an accepted name to the stored one (``{"corr": "rho"}``);
+    the object stores, shows and fingerprints the stored name only, so specs,
+    seeds and records do not depend on which name the user wrote. Giving
+    both names is an error.
+    """
+
+    aliases: dict[str, str] = {}
+
+    def __init__(self, **kwargs: Any):
+        used = {stored: alias for alias, stored in self.aliases.items() if alias in kwargs}
+        try:
+            super().__init__(**self.canonical(kwargs))
+        except ParameterError as exc:  # name the parameter as the user wrote it
+            msg = str(exc)
+            for stored, alias in used.items():
+                if msg.startswith(f"`{stored}`"):
+                    raise ParameterError(f"`{alias}`" + msg[len(stored) + 2:]) from None
+            raise
+
+    def replace(self, **changes: Any):
+        return super().replace(**self.canonical(changes))
+
+    @classmethod
+    def canonical(cls, values: dict[str, Any]) -> dict[str, Any]:
+        """``values`` with accepted names turned into stored names."""
+        if not any(k in values for k in cls.aliases):
+            return values
+        out = dict(values)
+        for alias, stored in cls.aliases.items():
+            if alias in out:
+                if stored in out:
+                    raise ParameterError(f"`{alias}` and `{stored}` name the same parameter of {cls.name}: give one.")
+                out[stored] = out.pop(alias)
+        return out
+
+
+class TwoArms(Vocabulary):
     """Mixin for processes with a control arm (arm 0) and a treatment arm (arm 1).
 
     Parameters (declared through :data:`ARM_PARAMS`)
@@ -72,12 +114,15 @@ class TwoArms:
         keep the allocation.
     sizes : [n0, n1], construction only
         Both arm sizes at once; stored as ``n`` and ``n1``.
+    allocation : [a0, a1], construction only
+        Relative arm sizes, as for ``multi_arm``; stored as ``ratio = a1 / a0``.
 
     Subclasses call :meth:`_check_arms` in their ``_check``.
     """
 
-    def __init__(self, **kwargs: Any):
-        super().__init__(**_sizes_form(kwargs))
+    @classmethod
+    def canonical(cls, values: dict[str, Any]) -> dict[str, Any]:
+        return _arm_forms(super().canonical(values))
 
     def _check_arms(self) -> None:
         """One validation of the arm sizes: one form of allocation, and at least 2 per arm."""
@@ -124,23 +169,34 @@ class TwoArms:
         return f"two arms of {self.n0} (control) and {self.n1} (treatment){unit}"
 
 
-def _sizes_form(kwargs: dict[str, Any]) -> dict[str, Any]:
-    """Turn ``sizes = [n0, n1]`` into ``n`` and ``n1``, refusing a second form of the same thing."""
-    if "sizes" not in kwargs:
+def _arm_forms(kwargs: dict[str, Any]) -> dict[str, Any]:
+    """Turn ``sizes = [n0, n1]`` into ``n``, ``n1`` and ``allocation = [a0, a1]`` into ``ratio = a1 / a0``.
+
+    Refuses a second form of the same thing (e.g. ``sizes`` with ``n``).
+    """
+    if "sizes" not in kwargs and "allocation" not in kwargs:
         return kwargs
     kwargs = dict(kwargs)
-    sizes = kwargs.pop("sizes")
-    others = [k for k in ("n", "n1") if kwargs.get(k) is not None]
-    if kwargs.get("ratio", 1) != 1:
-        others.append("ratio")
-    if others:
-        raise ParameterError(f"`sizes` and {', '.join(f'`{k}`' for k in others)} were both given: give the arm "
-                             "sizes in one form (`sizes`, or `n` with `ratio` or `n1`).")
-    if isinstance(sizes, (str, bytes)) or not hasattr(sizes, "__len__") or len(sizes) != 2:
-        raise ParameterError(f"`sizes` must be [control, treatment] (two integers >= 2); got {sizes!r}.")
-    kwargs["n"] = Int(low=2).clean("sizes[0]", sizes[0])
-    kwargs["n1"] = Int(low=2).clean("sizes[1]", sizes[1])
+    given = [k for k in ("sizes", "n", "allocation", "ratio", "n1")
+             if kwargs.get(k) is not None and not (k == "ratio" and kwargs[k] == 1)]
+    clash = [k for k in given if k != "n"] if "sizes" not in given else given
+    if len(clash) > 1:
+        raise ParameterError(f"{', '.join(f'`{k}`' for k in clash)}: give the arm sizes in one form (`sizes`; or "
+                             "`n` with one of `ratio`, `allocation`, `n1`).")
+    if "sizes" in kwargs:
+        n0, n1 = _pair(kwargs.pop("sizes"), "sizes", "[control, treatment] (two integers >= 2)", Int(low=2))
+        kwargs["n"], kwargs["n1"] = n0, n1
+    if "allocation" in kwargs:
+        a0, a1 = _pair(kwargs.pop("allocation"), "allocation", "[control, treatment] (two numbers > 0)",
+                       Real(0.0, low_open=True))
+        kwargs["ratio"] = a1 / a0
     return kwargs
+
+
+def _pair(value, field: str, what: str, constraint):
+    if isinstance(value, (str, bytes)) or not hasattr(value, "__len__") or len(value) != 2:
+        raise ParameterError(f"`{field}` must be {what}; got {value!r}.")
+    return tuple(constraint.clean(f"{field}[{j}]", v) for j, v in enumerate(value))
 
 
 # -- the missingness layer ----------------------------------------------------------------------

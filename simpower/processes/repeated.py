@@ -73,6 +73,8 @@ class RepeatedMeasures(TwoArms, Process):
     rho : float
         Correlation parameter: exchangeable needs ``rho > -1/(visits - 1)``,
         AR(1) ``|rho| < 1`` (otherwise the matrix is not positive definite).
+        Also accepted as ``corr`` (the name other processes use for a
+        correlation between two measurements of one participant).
     sd : float > 0
         SD of an outcome at every visit.
     effect : float
@@ -112,6 +114,7 @@ class RepeatedMeasures(TwoArms, Process):
     """
 
     name = "repeated_measures"
+    aliases = {"corr": "rho"}
     params = arm_params({
         "n": Int(low=2),
         "ratio": POSITIVE,
