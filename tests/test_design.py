@@ -166,7 +166,7 @@ def test_every_process_that_takes_missing_goes_through_the_one_layer():
     """A NaN outcome always has observed = 0, and info says so, for every built-in process with `missing`."""
     taking = [n for n in names("process") if "missing" in getattr(lookup("process", n), "params", {})]
     assert set(taking) == {"two_arm", "multi_arm", "binary_two_arm", "count_two_arm", "cluster_trial",
-                           "repeated_measures"}
+                           "repeated_measures", "trial"}
     for name in taking:
         p = build("process", {**_minimal(name), "missing": {"type": "mcar", "rate": 0.3}})
         b = p.draw_batch(np.random.default_rng(7), 3)
@@ -182,4 +182,6 @@ def _minimal(name):
         "binary_two_arm": {"n": 10, "p0": 0.3, "odds_ratio": 1.5},
         "count_two_arm": {"n": 10, "rate0": 1.0}, "cluster_trial": {"clusters": 3, "cluster_size": 4, "icc": 0.1},
         "repeated_measures": {"n": 10, "visits": 3, "rho": 0.3},
+        "trial": {"design": {"type": "clusters", "clusters": 3, "cluster_size": 5, "cluster_size_cv": 0.5,
+                             "icc": 0.1}},
     }[name] | {"type": name}
