@@ -126,6 +126,26 @@ def _layout(sizes: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return cluster, present, start
 
 
+def draw_clusters(rng: np.random.Generator, n_clusters: int, mean: float, cv: float, size: int):
+    """The cluster layer of a design: sizes, one standard normal per cluster, and the row layout.
+
+    Draws, in this order, the cluster sizes (:func:`draw_sizes`) and the
+    cluster effects ``u`` (standard normal, shape ``(size, n_clusters)``).
+    Returns ``(sizes, u, cluster, present, start)``: with equal sizes
+    ``cluster`` is shared (1-D) and ``present`` None, else both are per
+    replicate (padded, see :func:`_layout`); ``start`` is each cluster's first row.
+    """
+    shape = (size, n_clusters)
+    sizes = draw_sizes(rng, mean, cv, shape)
+    u = rng.standard_normal(shape)
+    if cv == 0:
+        m = int(mean)
+        cluster = np.repeat(np.arange(n_clusters, dtype=np.int32), m)
+        return sizes, u, cluster, None, np.broadcast_to(np.arange(n_clusters) * m, shape)
+    cluster, present, start = _layout(sizes)
+    return sizes, u, cluster, present, start
+
+
 def _within_cluster_arms(rng, sizes, cluster, present, start) -> np.ndarray:
     """Randomise half of each cluster to arm 1 (the odd member by a fair coin), rows as in ``cluster``."""
     reps, width = cluster.shape
@@ -239,17 +259,9 @@ class ClusterTrial(Process):
     def draw_batch(self, rng, size):
         n_clusters = self.n_clusters
         shape = (size, n_clusters)
-        sizes = draw_sizes(rng, self.cluster_size, self.cluster_size_cv, shape)
-        u = rng.standard_normal(shape)
-        if self.equal_sizes:
-            m = int(self.cluster_size)
-            cluster = np.repeat(np.arange(n_clusters, dtype=np.int32), m)
-            present = None
-            start = np.broadcast_to(np.arange(n_clusters) * m, shape)
-            width = cluster.size
-        else:
-            cluster, present, start = _layout(sizes)
-            width = cluster.shape[1]
+        sizes, u, cluster, present, start = draw_clusters(rng, n_clusters, self.cluster_size,
+                                                          self.cluster_size_cv, size)
+        width = cluster.shape[-1]
         e = rng.standard_normal((size, width))
         y = self.within_sd * e
         u *= self.between_sd

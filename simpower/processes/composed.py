@@ -44,7 +44,7 @@ from ..components import Component, Nested
 from ..errors import ParameterError
 from .arms import EFFECT_TYPE, POSITIVE, _check_missing, _check_outcome_for, _describe_effect, _effect_values
 from .base import Batch, Process
-from .clusters import _layout, _within_cluster_arms, draw_sizes, size_law
+from .clusters import _within_cluster_arms, draw_clusters, size_law
 from .design import ARM_DEFAULTS, ARM_PARAMS, TwoArms, apply_missing
 from .outcomes import Normal
 
@@ -120,15 +120,8 @@ class Clusters(Design):
 
     def draw(self, rng, size):
         n_clusters = 2 * self.clusters
-        shape = (size, n_clusters)
-        sizes = draw_sizes(rng, self.cluster_size, self.cluster_size_cv, shape)
-        u = rng.standard_normal(shape)
-        if self.cluster_size_cv == 0:
-            m = int(self.cluster_size)
-            cluster = np.repeat(np.arange(n_clusters, dtype=np.int32), m)
-            present, start = None, np.broadcast_to(np.arange(n_clusters) * m, shape)
-        else:
-            cluster, present, start = _layout(sizes)
+        sizes, u, cluster, present, start = draw_clusters(rng, n_clusters, self.cluster_size, self.cluster_size_cv,
+                                                          size)
         width = cluster.shape[-1]
         z = math.sqrt(1.0 - self.icc) * rng.standard_normal((size, width))
         z += math.sqrt(self.icc) * (u[:, cluster] if cluster.ndim == 1 else np.take_along_axis(u, cluster, axis=1))
