@@ -93,6 +93,13 @@ def test_a_search_over_n_keeps_a_directly_given_treatment_arm():
     assert sp.NormalTwoArm(n=20, ratio=2.0).replace(n=30).sizes == (30, 60)
 
 
+def test_replace_with_another_form_of_the_sizes_overrides_the_stored_form():
+    by_ratio = sp.NormalTwoArm(n=20, ratio=2.0)
+    direct = by_ratio.replace(sizes=[15, 25])
+    assert direct.sizes == (15, 25) and direct.ratio == 1.0
+    assert direct.replace(allocation=[1, 3]).sizes == (15, 45)
+
+
 # -- aliases: another accepted name, one stored name ---------------------------------------------
 
 @pytest.mark.parametrize("cls, alias, stored, value, kw", [

@@ -101,7 +101,7 @@ class Vocabulary:
 class TwoArms(Vocabulary):
     """Mixin for processes with a control arm (arm 0) and a treatment arm (arm 1).
 
-    Parameters (declared through :data:`ARM_PARAMS`)
+    Parameters
     ----------
     n : int >= 2
         Size of the control arm. The required-n search varies it.
@@ -117,7 +117,10 @@ class TwoArms(Vocabulary):
     allocation : [a0, a1], construction only
         Relative arm sizes, as for ``multi_arm``; stored as ``ratio = a1 / a0``.
 
-    Subclasses call :meth:`_check_arms` in their ``_check``.
+    Subclasses declare the parameters with :func:`arm_params` and
+    :func:`arm_defaults` and call :meth:`_check_arms` in their ``_check``.
+    ``sizes`` and ``allocation`` in ``replace`` override the stored form
+    (``replace(sizes=[40, 60])`` on a process with ``ratio = 2`` sets ratio 1).
     """
 
     @classmethod
@@ -185,11 +188,11 @@ def _arm_forms(kwargs: dict[str, Any]) -> dict[str, Any]:
                              "`n` with one of `ratio`, `allocation`, `n1`).")
     if "sizes" in kwargs:
         n0, n1 = _pair(kwargs.pop("sizes"), "sizes", "[control, treatment] (two integers >= 2)", Int(low=2))
-        kwargs["n"], kwargs["n1"] = n0, n1
+        kwargs["n"], kwargs["n1"], kwargs["ratio"] = n0, n1, 1.0
     if "allocation" in kwargs:
         a0, a1 = _pair(kwargs.pop("allocation"), "allocation", "[control, treatment] (two numbers > 0)",
                        Real(0.0, low_open=True))
-        kwargs["ratio"] = a1 / a0
+        kwargs["ratio"], kwargs["n1"] = a1 / a0, None
     return kwargs
 
 
