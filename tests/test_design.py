@@ -169,10 +169,26 @@ def test_mcar_count_outcomes_leave_the_log_rate_ratio_unbiased():
         sp.CountTwoArm(n=10, rate0=1.0, missing=sp.MAR(rate=0.2))
 
 
+def test_mcar_pairs_power_is_the_noncentral_t_power_averaged_over_complete_pairs():
+    """MCAR per measurement: a pair is complete with probability (1 - rate)^2, the number of complete
+    pairs K is Binomial(n, (1 - rate)^2) (Rubin 1976), and given K the paired t-test has the
+    one-sample noncentral-t power with K - 1 df and noncentrality d sqrt(K) (Cohen 1988, ch. 2)."""
+    n, d, rate, reps = 30, 0.5, 0.2, 2000
+    res = sp.run(sp.Scenario(sp.NormalPaired(n=n, effect=d, corr=0.5, missing=sp.MCAR(rate=rate)), sp.PairedT()),
+                 reps=reps, seed=12, n_jobs=1)
+    k = np.arange(2, n + 1)
+    crit = stats.t.ppf(0.975, k - 1)
+    power_k = stats.nct.sf(crit, k - 1, d * np.sqrt(k)) + stats.nct.cdf(-crit, k - 1, d * np.sqrt(k))
+    expected = float(np.sum(stats.binom.pmf(k, n, (1 - rate) ** 2) * power_k))
+    assert res.summaries["paired_t"]["analytic_power"] is None  # no closed form is claimed with missing outcomes
+    assert abs(res.power - expected) <= Z * math.sqrt(expected * (1 - expected) / reps)
+
+
 def test_every_process_that_takes_missing_goes_through_the_one_layer():
     """A NaN outcome always has observed = 0, and info says so, for every built-in process with `missing`."""
     taking = {n for n in names("process") if "missing" in getattr(lookup("process", n), "params", {})}
-    known = {"two_arm", "multi_arm", "binary_two_arm", "count_two_arm", "cluster_trial", "repeated_measures", "trial"}
+    known = {"two_arm", "multi_arm", "binary_two_arm", "count_two_arm", "cluster_trial", "repeated_measures", "trial",
+             "normal_one_sample", "normal_paired", "normal_two_arm"}
     assert known <= taking  # a process added later with `missing`: add it to _minimal below
     for name in sorted(known):
         p = build("process", {**_minimal(name), "missing": {"type": "mcar", "rate": 0.3}})
@@ -188,7 +204,8 @@ def _minimal(name):
         "two_arm": {"n": 10}, "multi_arm": {"n": 10, "effects": [0, 0.1]},
         "binary_two_arm": {"n": 10, "p0": 0.3, "odds_ratio": 1.5},
         "count_two_arm": {"n": 10, "rate0": 1.0}, "cluster_trial": {"clusters": 3, "cluster_size": 4, "icc": 0.1},
-        "repeated_measures": {"n": 10, "visits": 3, "rho": 0.3},
+        "repeated_measures": {"n": 10, "visits": 3, "rho": 0.3}, "normal_one_sample": {"n": 10},
+        "normal_paired": {"n": 10}, "normal_two_arm": {"n": 10},
         "trial": {"design": {"type": "clusters", "clusters": 3, "cluster_size": 5, "cluster_size_cv": 0.5,
                              "icc": 0.1}},
     }[name] | {"type": name}
