@@ -304,7 +304,7 @@ def check_process(process, *, size: int = 5, seed: int = 20261202) -> None:
     for attr in ("effect_param", "size_param"):
         key = getattr(proc, attr, None)
         if key is not None:
-            rep.check(key in proc.get_params(deep=False), f"`{attr}` = {key!r} is not a parameter")
+            rep.check(key in proc.get_params(deep=True), f"`{attr}` = {key!r} is not a parameter")  # dotted: nested
     te = rep.guard("true_effect()", proc.true_effect)
     rep.check(te is None or isinstance(te, (int, float)), f"true_effect() should be a number or None; got {te!r}")
     if getattr(proc, "effect_param", None):

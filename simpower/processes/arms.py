@@ -33,6 +33,7 @@ from .._validation import Anything, Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
 from .base import Batch, Process, check_missing_columns
+from .design import TwoArms, Vocabulary, apply_missing, arm_defaults, arm_params
 from .outcomes import Described, Normal
 
 POSITIVE = Real(0.0, low_open=True)
@@ -156,15 +157,6 @@ def _outcome_rules(outcome, effect_type, needs_centre):
         outcome.center if hasattr(outcome, "center") else outcome.mean  # noqa: B018
 
 
-def _apply_missing(missing, rng, y, covariates, per_rep, info):
-    if missing is None:
-        return
-    m = np.asarray(missing.mask(rng, y, covariates), dtype=bool)
-    y[m] = np.nan
-    per_rep["observed"] = (~m).astype(np.int8)
-    info["missing"] = True
-
-
 def _check_missing(missing, available, owner):
     needs_baseline = "baseline" in getattr(missing, "requires", ()) and "baseline" not in available
     hint = "; set `baseline_corr` to add a baseline column" if needs_baseline else ""
@@ -179,7 +171,7 @@ def _describe_effect(effect, effect_type, outcome):
     return f"treatment multiplies the outcome by {effect:g}"
 
 
-class TwoArm(Process):
+class TwoArm(TwoArms, Process):
     """Two independent arms with any outcome distribution, effect type, SDs, baseline and missingness.
 
     Parameters
@@ -189,6 +181,9 @@ class TwoArm(Process):
     ratio : float > 0, default 1
         Allocation ratio n_treatment / n_control; the treatment arm has
         ``round(ratio * n)`` participants (at least 2).
+    n1 : int >= 2, optional
+        The treatment arm's size, given directly instead of ``ratio``
+        (``sizes = [n0, n1]`` gives both arms at once).
     outcome : outcome, default normal(0, 1)
         Distribution of the control arm's outcome (object or ``{type = ...}`` table;
         a frozen scipy distribution works too).
@@ -224,19 +219,18 @@ class TwoArm(Process):
     """
 
     name = "two_arm"
-    params = {"n": Int(low=2), "ratio": POSITIVE, "outcome": Nested("outcome"), "effect": Real(),
-              "effect_type": EFFECT_TYPE, "sd_ratio": POSITIVE, "baseline_corr": CORR,
-              "missing": Nested("missingness", optional=True)}
-    defaults = {"ratio": 1.0, "outcome": Normal(), "effect": 0.0, "effect_type": "shift", "sd_ratio": 1.0,
-                "baseline_corr": None, "missing": None}
+    params = arm_params({"n": Int(low=2), "ratio": POSITIVE, "outcome": Nested("outcome"), "effect": Real(),
+                         "effect_type": EFFECT_TYPE, "sd_ratio": POSITIVE, "baseline_corr": CORR,
+                         "missing": Nested("missingness", optional=True)})
+    defaults = arm_defaults({"ratio": 1.0, "outcome": Normal(), "effect": 0.0, "effect_type": "shift",
+                             "sd_ratio": 1.0, "baseline_corr": None, "missing": None})
 
     def __setstate__(self, state):
         super().__setstate__(state)
         self._check()
 
     def _check(self):
-        if self.n1 < 2:
-            raise ParameterError(f"`ratio` gives a treatment arm of {self.n1} (< 2) with n = {self.n}; raise n or ratio.")
+        self._check_arms()
         if self.effect_type == "ratio" and not self.effect > 0:
             raise ParameterError(f"`effect` must be > 0 when `effect_type` = 'ratio'; got {self.effect:g}.")
         _check_outcome_for(self.outcome, self.effect_type, self.sd_ratio != 1)
@@ -244,11 +238,6 @@ class TwoArm(Process):
         _check_missing(self.missing, available, self.name)
         latent = None if self.baseline_corr is None else latent_correlation(self.outcome, self.baseline_corr)
         object.__setattr__(self, "_latent", latent)
-
-    @property
-    def n1(self) -> int:
-        """Size of the treatment arm."""
-        return int(round(self.ratio * self.n))
 
     @property
     def latent_corr(self) -> float | None:
@@ -271,12 +260,12 @@ class TwoArm(Process):
             per_rep["baseline"] = np.asarray(self.outcome.from_normal(z_base), dtype=float)
         x[:, n0:] = _effect_values(x[:, n0:], self.outcome, self.effect, self.effect_type, self.sd_ratio)
         per_rep["y"] = x
-        arm = np.repeat(np.array([0, 1], dtype=np.int8), [n0, n1])
-        info = {"n0": n0, "n1": n1}
-        covariates = {"arm": np.broadcast_to(arm, shape)}
+        arm = self.arm_labels()
+        info = self.arm_info()
+        covariates = {"arm": arm}
         if "baseline" in per_rep:
             covariates["baseline"] = per_rep["baseline"]
-        _apply_missing(self.missing, rng, x, covariates, per_rep, info)
+        apply_missing(self.missing, rng, x, covariates, per_rep, info)
         return Batch(size, per_rep, {"arm": arm}, info)
 
     def estimand_aliases(self):
@@ -292,7 +281,7 @@ class TwoArm(Process):
         return float(self.outcome.mean * (self.effect - 1.0))
 
     def describe(self):
-        parts = [f"two independent arms of {self.n} (control) and {self.n1} (treatment)",
+        parts = [f"two independent arms of {self.n0} (control) and {self.n1} (treatment)",
                  f"outcome {self.outcome.describe()}",
                  _describe_effect(self.effect, self.effect_type, self.outcome)]
         if self.sd_ratio != 1:
@@ -326,7 +315,7 @@ def _numbers(field, value, k=None, positive=False):
     return tuple(float(v) for v in vals)
 
 
-class MultiArm(Process):
+class MultiArm(Vocabulary, Process):
     """k >= 2 independent arms (arm 0 = control) with per-arm effects, sizes and SDs.
 
     Parameters
@@ -337,7 +326,7 @@ class MultiArm(Process):
         null value (0, or 1 for ``ratio``). ``k`` is its length.
     n : int >= 2 or list of k ints >= 2
         Size of the control arm (then ``allocation`` gives the others), or
-        the size of every arm.
+        the size of every arm. A list may also be given as ``sizes``.
     allocation : list of k positive numbers, optional
         Relative arm sizes: arm j has ``round(n * allocation[j] / allocation[0])``
         participants. Default: equal arms. Not with a list ``n``.
@@ -357,6 +346,7 @@ class MultiArm(Process):
     """
 
     name = "multi_arm"
+    aliases = {"sizes": "n"}
     effect_param = "effects"
     params = {"effects": Described(text="a list of effects, one per arm, control first (e.g. [0, 0.3, 0.5])"),
               "n": Described(text="the control-arm size (an integer >= 2) or a list of arm sizes"),
@@ -455,7 +445,7 @@ class MultiArm(Process):
         arm = np.repeat(np.arange(self.k, dtype=np.int8), sizes)
         per_rep = {"y": x}
         info = {"sizes": sizes}
-        _apply_missing(self.missing, rng, x, {"arm": np.broadcast_to(arm, shape)}, per_rep, info)
+        apply_missing(self.missing, rng, x, {"arm": arm}, per_rep, info)
         return Batch(size, per_rep, {"arm": arm}, info)
 
     def describe(self):

@@ -22,6 +22,7 @@ from .._validation import Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
 from .base import Batch, Process, check_missing_columns
+from .design import TwoArms, apply_missing, arm_defaults, arm_params
 
 POSITIVE = Real(0.0, low_open=True)
 EFFECTS = ("odds_ratio", "risk_ratio", "risk_difference")
@@ -38,7 +39,7 @@ def risk_from_effect(p0: float, *, odds_ratio=None, risk_ratio=None, risk_differ
     return p0 + risk_difference
 
 
-class BinaryTwoArm(Process):
+class BinaryTwoArm(TwoArms, Process):
     """Two independent arms with a binary outcome (1 = event).
 
     Parameters
@@ -54,6 +55,9 @@ class BinaryTwoArm(Process):
     ratio : float > 0
         Allocation ratio; the treatment arm has ``round(ratio * n)``
         participants (at least 2).
+    n1 : int >= 2, optional
+        The treatment arm's size, given directly instead of ``ratio``
+        (``sizes = [n0, n1]`` gives both arms at once).
     estimand : {'risk_difference', 'log_odds_ratio', 'log_risk_ratio'}
         What :meth:`true_effect` returns, for bias and coverage: match it to
         the analysis's estimate (``two_proportions`` and ``chi_square``
@@ -81,7 +85,7 @@ class BinaryTwoArm(Process):
     """
 
     name = "binary_two_arm"
-    params = {
+    params = arm_params({
         "n": Int(low=2),
         "p0": Real(0.0, 1.0, low_open=True, high_open=True),
         "odds_ratio": Real(0.0, low_open=True, optional=True),
@@ -90,9 +94,9 @@ class BinaryTwoArm(Process):
         "ratio": POSITIVE,
         "estimand": Choice(ESTIMANDS),
         "missing": Nested("missingness", optional=True),
-    }
-    defaults = {"odds_ratio": None, "risk_ratio": None, "risk_difference": None, "ratio": 1.0,
-                "estimand": "risk_difference", "missing": None}
+    })
+    defaults = arm_defaults({"odds_ratio": None, "risk_ratio": None, "risk_difference": None, "ratio": 1.0,
+                             "estimand": "risk_difference", "missing": None})
     size_param = "n"
 
     def _check(self):
@@ -110,8 +114,7 @@ class BinaryTwoArm(Process):
                 f"`{k}` = {self._p[k]:g} with p0 = {self.p0:g} gives a treatment risk of {p1:g}; "
                 f"it must be in (0, 1)."
             )
-        if self.n1 < 2:
-            raise ParameterError(f"`ratio` gives a treatment arm of {self.n1} (< 2) with n = {self.n}; raise n or ratio.")
+        self._check_arms()
 
     # -- derived ---------------------------------------------------------
     @property
@@ -121,10 +124,6 @@ class BinaryTwoArm(Process):
 
     def null_value(self) -> float:
         return 0.0 if self.effect_param == "risk_difference" else 1.0
-
-    @property
-    def n1(self) -> int:
-        return int(round(self.ratio * self.n))
 
     @property
     def p1(self) -> float:
@@ -160,20 +159,15 @@ class BinaryTwoArm(Process):
         y = np.empty_like(u)
         np.less(u[:, :n0], self.p0, out=y[:, :n0])
         np.less(u[:, n0:], self.p1, out=y[:, n0:])
-        arm = np.repeat(np.array([0, 1], dtype=np.int8), [n0, n1])
+        arm = self.arm_labels()
         per_rep = {"y": y}
-        info = {"n0": n0, "n1": n1}
-        if self.missing is not None:
-            arms = np.broadcast_to(arm, y.shape)
-            hide = np.asarray(self.missing.mask(rng, y, {"arm": arms}), bool)
-            y[hide] = np.nan
-            per_rep["observed"] = (~hide).astype(np.int8)
-            info["missing"] = True
+        info = self.arm_info()
+        apply_missing(self.missing, rng, y, {"arm": arm}, per_rep, info)
         return Batch(size, per_rep, {"arm": arm}, info=info)
 
     def describe(self):
         given = self.effect_param
         miss = f"; missing outcomes: {self.missing.describe()}" if self.missing is not None else ""
-        return (f"two arms of {self.n} (control) and {self.n1} (treatment), binary outcome with event "
+        return (f"{self.arms_text()}, binary outcome with event "
                 f"risks {self.p0:g} (control) and {self.p1:.4g} (treatment; {given} = {self._p[given]:g}), "
                 f"participants independent{miss}")

@@ -33,6 +33,7 @@ from .._validation import Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
 from .base import Batch, Process, check_missing_columns
+from .design import apply_missing
 
 POSITIVE = Real(0.0, low_open=True)
 
@@ -123,6 +124,26 @@ def _layout(sizes: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     cluster[flat_rep, col] = flat_cluster
     present = np.arange(width)[None, :] < totals[:, None]
     return cluster, present, start
+
+
+def draw_clusters(rng: np.random.Generator, n_clusters: int, mean: float, cv: float, size: int):
+    """The cluster layer of a design: sizes, one standard normal per cluster, and the row layout.
+
+    Draws, in this order, the cluster sizes (:func:`draw_sizes`) and the
+    cluster effects ``u`` (standard normal, shape ``(size, n_clusters)``).
+    Returns ``(sizes, u, cluster, present, start)``: with equal sizes
+    ``cluster`` is shared (1-D) and ``present`` None, else both are per
+    replicate (padded, see :func:`_layout`); ``start`` is each cluster's first row.
+    """
+    shape = (size, n_clusters)
+    sizes = draw_sizes(rng, mean, cv, shape)
+    u = rng.standard_normal(shape)
+    if cv == 0:
+        m = int(mean)
+        cluster = np.repeat(np.arange(n_clusters, dtype=np.int32), m)
+        return sizes, u, cluster, None, np.broadcast_to(np.arange(n_clusters) * m, shape)
+    cluster, present, start = _layout(sizes)
+    return sizes, u, cluster, present, start
 
 
 def _within_cluster_arms(rng, sizes, cluster, present, start) -> np.ndarray:
@@ -238,17 +259,9 @@ class ClusterTrial(Process):
     def draw_batch(self, rng, size):
         n_clusters = self.n_clusters
         shape = (size, n_clusters)
-        sizes = draw_sizes(rng, self.cluster_size, self.cluster_size_cv, shape)
-        u = rng.standard_normal(shape)
-        if self.equal_sizes:
-            m = int(self.cluster_size)
-            cluster = np.repeat(np.arange(n_clusters, dtype=np.int32), m)
-            present = None
-            start = np.broadcast_to(np.arange(n_clusters) * m, shape)
-            width = cluster.size
-        else:
-            cluster, present, start = _layout(sizes)
-            width = cluster.shape[1]
+        sizes, u, cluster, present, start = draw_clusters(rng, n_clusters, self.cluster_size,
+                                                          self.cluster_size_cv, size)
+        width = cluster.shape[-1]
         e = rng.standard_normal((size, width))
         y = self.within_sd * e
         u *= self.between_sd
@@ -270,25 +283,10 @@ class ClusterTrial(Process):
             per_rep["present"] = present
         info = {"clusters_per_arm": self.clusters, "n_clusters": n_clusters, "randomise": self.randomise,
                 "equal_sizes": self.equal_sizes}
-        if self.missing is not None:
-            miss = self._missing_mask(rng, y, {"arm": arm, "cluster": cluster}, present)
-            y[miss] = np.nan
-            per_rep["observed"] = (~miss).astype(np.int8)
-            info["missing"] = True
+        # one call for equal clusters, else one per replicate on its rows (no padding)
+        apply_missing(self.missing, rng, y, {"arm": arm, "cluster": cluster}, per_rep, info, present=present)
         per_rep["y"] = y
         return Batch(size, per_rep, shared, info)
-
-    def _missing_mask(self, rng, y, columns, present):
-        """The ``missing`` component's mask: one call for equal clusters, else one per replicate (no padding rows)."""
-        if present is None:
-            cov = {k: np.broadcast_to(v, y.shape) for k, v in columns.items()}
-            return np.asarray(self.missing.mask(rng, y, cov), bool)
-        miss = np.zeros(y.shape, bool)
-        for i in range(y.shape[0]):
-            rows = present[i]
-            cov = {k: (v[i] if v.ndim == 2 else v)[rows] for k, v in columns.items()}
-            miss[i, rows] = np.asarray(self.missing.mask(rng, y[i, rows], cov), bool).reshape(-1)
-        return miss
 
     # -- words -----------------------------------------------------------
     def true_effect(self):

@@ -13,7 +13,8 @@ participant from a gamma distribution with mean ``exposure`` and coefficient of
 variation ``exposure_cv`` (e.g. varying follow-up).
 
 The long table has columns ``y`` (counts, float), ``arm`` (0 control, 1
-treatment, control rows first) and ``exposure``.
+treatment, control rows first) and ``exposure``; with a ``missing``
+mechanism, hidden counts are NaN and an ``observed`` column (1/0) is added.
 """
 
 from __future__ import annotations
@@ -23,13 +24,14 @@ import math
 import numpy as np
 
 from .._validation import Int, Real
-from ..errors import ParameterError
-from .base import Batch, Process
+from ..components import Nested
+from .base import Batch, Process, check_missing_columns
+from .design import TwoArms, apply_missing, arm_defaults, arm_params
 
 POSITIVE = Real(0.0, low_open=True)
 
 
-class CountTwoArm(Process):
+class CountTwoArm(TwoArms, Process):
     """Two independent arms with count outcomes over an exposure time.
 
     Parameters
@@ -52,14 +54,20 @@ class CountTwoArm(Process):
     ratio : float > 0
         Allocation ratio; the treatment arm has ``round(ratio * n)``
         participants (at least 2).
+    n1 : int >= 2, optional
+        The treatment arm's size, given directly instead of ``ratio``
+        (``sizes = [n0, n1]`` gives both arms at once).
+    missing : missingness, optional
+        Applied once after the counts are drawn (``mcar``, ``mnar``, or
+        ``mar`` with ``on = "arm"`` or ``"exposure"``); hidden counts are NaN.
 
     Notes
     -----
     :meth:`true_effect` is the log rate ratio, the estimand of
     ``poisson_glm`` and ``negbin_glm``. Draws come in a fixed order
-    (exposures, then gamma multipliers, then Poisson counts); with
-    ``exposure_cv = 0`` no exposure is drawn and without ``dispersion`` no
-    multiplier.
+    (exposures, then gamma multipliers, then Poisson counts, then the
+    missingness mask); with ``exposure_cv = 0`` no exposure is drawn, without
+    ``dispersion`` no multiplier and without ``missing`` no mask.
 
     Examples
     --------
@@ -71,7 +79,7 @@ class CountTwoArm(Process):
     """
 
     name = "count_two_arm"
-    params = {
+    params = arm_params({
         "n": Int(low=2),
         "rate0": POSITIVE,
         "rate_ratio": POSITIVE,
@@ -79,18 +87,16 @@ class CountTwoArm(Process):
         "exposure": POSITIVE,
         "exposure_cv": Real(0.0),
         "ratio": POSITIVE,
-    }
-    defaults = {"rate_ratio": 1.0, "dispersion": None, "exposure": 1.0, "exposure_cv": 0.0, "ratio": 1.0}
+        "missing": Nested("missingness", optional=True),
+    })
+    defaults = arm_defaults({"rate_ratio": 1.0, "dispersion": None, "exposure": 1.0, "exposure_cv": 0.0,
+                             "ratio": 1.0, "missing": None})
     effect_param = "rate_ratio"
     size_param = "n"
 
     def _check(self):
-        if self.n1 < 2:
-            raise ParameterError(f"`ratio` gives a treatment arm of {self.n1} (< 2) with n = {self.n}; raise n or ratio.")
-
-    @property
-    def n1(self) -> int:
-        return int(round(self.ratio * self.n))
+        self._check_arms()
+        check_missing_columns(self.missing, {"arm", "exposure"}, self.name)
 
     def null_value(self) -> float:
         return 1.0
@@ -108,7 +114,7 @@ class CountTwoArm(Process):
     def draw_batch(self, rng, size):
         n0, n1 = self.n, self.n1
         m = n0 + n1
-        arm = np.repeat(np.array([0, 1], dtype=np.int8), [n0, n1])
+        arm = self.arm_labels()
         rate = np.where(arm == 1, self.rate0 * self.rate_ratio, self.rate0)
         if self.exposure_cv > 0:
             shape = 1.0 / self.exposure_cv**2
@@ -125,12 +131,15 @@ class CountTwoArm(Process):
             mu = mu * rng.gamma(k, 1.0 / k, (size, m))
         y = rng.poisson(np.broadcast_to(mu, (size, m))).astype(float)
         per_rep["y"] = y
-        return Batch(size, per_rep, shared, info={"n0": n0, "n1": n1})
+        info = self.arm_info()
+        apply_missing(self.missing, rng, y, {"arm": arm, "exposure": expo}, per_rep, info)
+        return Batch(size, per_rep, shared, info=info)
 
     def describe(self):
         dist = ("Poisson counts" if self.dispersion is None else
                 f"negative binomial counts (variance mu + mu^2/{self.dispersion:g})")
         expo = (f"exposure {self.exposure:g}" if self.exposure_cv == 0 else
                 f"gamma-distributed exposure with mean {self.exposure:g} and CV {self.exposure_cv:g}")
-        return (f"two arms of {self.n} (control) and {self.n1} (treatment), {dist}, {expo}; control rate "
-                f"{self.rate0:g} per unit exposure, treatment / control rate ratio {self.rate_ratio:g}")
+        miss = f"; missing outcomes: {self.missing.describe()}" if self.missing is not None else ""
+        return (f"{self.arms_text()}, {dist}, {expo}; control rate "
+                f"{self.rate0:g} per unit exposure, treatment / control rate ratio {self.rate_ratio:g}{miss}")

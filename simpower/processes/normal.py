@@ -1,7 +1,9 @@
 """Normal outcomes: one sample, paired measurements, two arms.
 
 These are the cases the analytic core covers exactly, so they anchor the
-engine's cross-check against closed-form power.
+engine's cross-check against closed-form power (when no ``missing``
+mechanism hides outcomes: that is applied once after the outcomes, by the
+shared step :func:`~simpower.processes.design.apply_missing`).
 """
 
 from __future__ import annotations
@@ -9,10 +11,16 @@ from __future__ import annotations
 import numpy as np
 
 from .._validation import Int, Real
-from ..errors import ParameterError
-from .base import Batch, Process
+from ..components import Nested
+from .base import Batch, Process, check_missing_columns
+from .design import TwoArms, apply_missing, arm_defaults, arm_params
 
 POSITIVE = Real(0.0, low_open=True)
+MISSING = Nested("missingness", optional=True)
+
+
+def _missing_text(missing) -> str:
+    return f"; missing outcomes: {missing.describe()}" if missing is not None else ""
 
 
 class NormalOneSample(Process):
@@ -25,23 +33,33 @@ class NormalOneSample(Process):
         True mean minus the null mean (0: give outcomes as differences from
         the null value, or set the analysis's ``null_mean``).
     sd : float > 0
+    missing : missingness, optional
+        ``mcar`` or ``mnar``, applied after the outcomes (NaN in ``y``, an
+        ``observed`` column); then there is no analytic cross-check.
     """
 
     name = "normal_one_sample"
-    params = {"n": Int(low=2), "effect": Real(), "sd": POSITIVE}
-    defaults = {"effect": 0.0, "sd": 1.0}
+    params = {"n": Int(low=2), "effect": Real(), "sd": POSITIVE, "missing": MISSING}
+    defaults = {"effect": 0.0, "sd": 1.0, "missing": None}
+
+    def _check(self):
+        check_missing_columns(self.missing, set(), self.name)
 
     def draw_batch(self, rng, size):
         y = rng.standard_normal((size, self.n))
         y *= self.sd
         y += self.effect
-        return Batch(size, {"y": y})
+        per_rep, info = {"y": y}, {}
+        apply_missing(self.missing, rng, y, {}, per_rep, info)
+        return Batch(size, per_rep, info=info)
 
     def describe(self):
         return (f"one sample of n = {self.n} from a normal distribution with SD {self.sd:g} "
-                f"and mean {self.effect:g} (null mean 0)")
+                f"and mean {self.effect:g} (null mean 0){_missing_text(self.missing)}")
 
     def normal_case(self):
+        if self.missing is not None:
+            return None
         return {"design": "one-sample", "effect": self.effect, "n": self.n, "sd": self.sd, "ratio": 1.0}
 
 
@@ -52,13 +70,18 @@ class NormalPaired(Process):
     within-pair difference is sqrt(sd0^2 + sd1^2 - 2 corr sd0 sd1).
 
     The long table has columns ``y``, ``arm`` (0/1) and ``pair`` (0..n-1),
-    rows ordered by arm, then pair.
+    rows ordered by arm, then pair. A ``missing`` mechanism (``mcar``,
+    ``mnar``, ``mar`` on ``arm``) hides single measurements; paired analyses
+    drop the incomplete pairs.
     """
 
     name = "normal_paired"
     params = {"n": Int(low=2), "effect": Real(), "sd0": POSITIVE, "sd1": POSITIVE,
-              "corr": Real(-1.0, 1.0, low_open=True, high_open=True)}
-    defaults = {"effect": 0.0, "sd0": 1.0, "sd1": 1.0, "corr": 0.5}
+              "corr": Real(-1.0, 1.0, low_open=True, high_open=True), "missing": MISSING}
+    defaults = {"effect": 0.0, "sd0": 1.0, "sd1": 1.0, "corr": 0.5, "missing": None}
+
+    def _check(self):
+        check_missing_columns(self.missing, {"arm", "pair"}, self.name)
 
     @property
     def sd_difference(self) -> float:
@@ -72,18 +95,22 @@ class NormalPaired(Process):
         y = np.concatenate([y0, y1], axis=1)
         arm = np.repeat(np.array([0, 1]), n)
         pair = np.tile(np.arange(n), 2)
-        return Batch(size, {"y": y}, {"arm": arm, "pair": pair})
+        per_rep, info = {"y": y}, {}
+        apply_missing(self.missing, rng, y, {"arm": arm, "pair": pair}, per_rep, info)
+        return Batch(size, per_rep, {"arm": arm, "pair": pair}, info)
 
     def describe(self):
         return (f"{self.n} pairs, normal with SDs {self.sd0:g} and {self.sd1:g} and within-pair "
                 f"correlation {self.corr:g}; mean difference {self.effect:g} "
-                f"(SD of differences {self.sd_difference:.4g})")
+                f"(SD of differences {self.sd_difference:.4g}){_missing_text(self.missing)}")
 
     def normal_case(self):
+        if self.missing is not None:
+            return None
         return {"design": "paired", "effect": self.effect, "n": self.n, "sd": self.sd_difference, "ratio": 1.0}
 
 
-class NormalTwoArm(Process):
+class NormalTwoArm(TwoArms, Process):
     """Two independent arms, normal outcomes, possibly unequal SDs and allocation.
 
     Parameters
@@ -93,6 +120,9 @@ class NormalTwoArm(Process):
     ratio : float > 0
         Allocation ratio n_treatment / n_control; the treatment arm has
         ``round(ratio * n)`` participants (at least 2).
+    n1 : int >= 2, optional
+        The treatment arm's size, given directly instead of ``ratio``
+        (``sizes = [n0, n1]`` gives both arms at once).
     effect : float
         Mean of the treatment arm minus mean of the control arm.
     sd : float > 0
@@ -101,26 +131,27 @@ class NormalTwoArm(Process):
         SD of the treatment arm divided by ``sd``.
     mean0 : float
         Control-arm mean.
+    missing : missingness, optional
+        ``mcar``, ``mnar``, or ``mar`` on ``arm``, applied after the outcomes
+        (NaN in ``y``, an ``observed`` column); then there is no analytic
+        cross-check.
 
     The long table has columns ``y`` and ``arm`` (0 = control, 1 = treatment),
     control rows first.
     """
 
     name = "normal_two_arm"
-    params = {"n": Int(low=2), "effect": Real(), "sd": POSITIVE, "sd_ratio": POSITIVE,
-              "ratio": POSITIVE, "mean0": Real()}
-    defaults = {"effect": 0.0, "sd": 1.0, "sd_ratio": 1.0, "ratio": 1.0, "mean0": 0.0}
+    params = arm_params({"n": Int(low=2), "effect": Real(), "sd": POSITIVE, "sd_ratio": POSITIVE,
+                         "ratio": POSITIVE, "mean0": Real(), "missing": MISSING})
+    defaults = arm_defaults({"effect": 0.0, "sd": 1.0, "sd_ratio": 1.0, "ratio": 1.0, "mean0": 0.0,
+                             "missing": None})
 
     def _check(self):
-        if self.n1 < 2:
-            raise ParameterError(f"`ratio` gives a treatment arm of {self.n1} (< 2) with n = {self.n}; raise n or ratio.")
+        self._check_arms()
+        check_missing_columns(self.missing, {"arm"}, self.name)
 
     def estimand_aliases(self):
-        return {"location shift"} if self.sd_ratio == 1 else set()
-
-    @property
-    def n1(self) -> int:
-        return int(round(self.ratio * self.n))
+        return {"location shift"} if self.sd_ratio == 1 and self.missing is None else set()
 
     @property
     def sd1(self) -> float:
@@ -136,14 +167,17 @@ class NormalTwoArm(Process):
         if self.mean0:
             y[:, :n0] += self.mean0
         y[:, n0:] += self.mean0 + self.effect
-        arm = np.repeat(np.array([0, 1], dtype=np.int8), [n0, n1])
-        return Batch(size, {"y": y}, {"arm": arm}, info={"n0": n0, "n1": n1})
+        arm, per_rep, info = self.arm_labels(), {"y": y}, self.arm_info()
+        apply_missing(self.missing, rng, y, {"arm": arm}, per_rep, info)
+        return Batch(size, per_rep, {"arm": arm}, info=info)
 
     def describe(self):
         sds = f"SD {self.sd:g}" if self.sd_ratio == 1 else f"SDs {self.sd:g} (control) and {self.sd1:g} (treatment)"
-        return (f"two arms of {self.n} (control) and {self.n1} (treatment), normal outcomes with {sds}; "
-                f"treatment minus control mean difference {self.effect:g}")
+        return (f"{self.arms_text()}, normal outcomes with {sds}; "
+                f"treatment minus control mean difference {self.effect:g}{_missing_text(self.missing)}")
 
     def normal_case(self):
+        if self.missing is not None:
+            return None
         return {"design": "two-sample", "effect": self.effect, "n": self.n, "ratio": self.n1 / self.n,
                 "sd0": self.sd, "sd1": self.sd1, "sd": self.sd if self.sd_ratio == 1 else None}

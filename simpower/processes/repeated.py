@@ -25,6 +25,7 @@ from .._validation import Bool, Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
 from .base import Batch, Process, check_missing_columns
+from .design import TwoArms, apply_missing, arm_defaults, arm_params
 
 POSITIVE = Real(0.0, low_open=True)
 RATE = Real(0.0, 1.0, high_open=True, optional=True)
@@ -53,7 +54,7 @@ def effect_profile(shape: str, k: int, baseline: bool) -> np.ndarray:
     return t
 
 
-class RepeatedMeasures(Process):
+class RepeatedMeasures(TwoArms, Process):
     """Two arms, each subject measured at ``visits`` visits, with optional monotone dropout.
 
     Parameters
@@ -62,6 +63,9 @@ class RepeatedMeasures(Process):
         Subjects in the control arm (the required-n search varies it).
     ratio : float > 0
         Treatment over control subjects; the treatment arm has ``round(ratio * n)``.
+    n1 : int >= 2, optional
+        Subjects in the treatment arm, given directly instead of ``ratio``
+        (``sizes = [n0, n1]`` gives both arms at once).
     visits : int >= 2
         Visits 0 .. visits-1.
     correlation : {"exchangeable", "ar1"}
@@ -69,6 +73,8 @@ class RepeatedMeasures(Process):
     rho : float
         Correlation parameter: exchangeable needs ``rho > -1/(visits - 1)``,
         AR(1) ``|rho| < 1`` (otherwise the matrix is not positive definite).
+        Also accepted as ``corr`` (the name other processes use for a
+        correlation between two measurements of one participant).
     sd : float > 0
         SD of an outcome at every visit.
     effect : float
@@ -108,7 +114,8 @@ class RepeatedMeasures(Process):
     """
 
     name = "repeated_measures"
-    params = {
+    aliases = {"corr": "rho"}
+    params = arm_params({
         "n": Int(low=2),
         "ratio": POSITIVE,
         "visits": Int(low=2),
@@ -122,10 +129,10 @@ class RepeatedMeasures(Process):
         "dropout_hazard": RATE,
         "dropout_mar_slope": Real(),
         "missing": Nested("missingness", optional=True),
-    }
-    defaults = {"ratio": 1.0, "correlation": "exchangeable", "sd": 1.0, "effect": 0.0, "effect_shape": "final",
-                "baseline": True, "dropout_rate": None, "dropout_hazard": None, "dropout_mar_slope": 0.0,
-                "missing": None}
+    })
+    defaults = arm_defaults({"ratio": 1.0, "correlation": "exchangeable", "sd": 1.0, "effect": 0.0,
+                             "effect_shape": "final", "baseline": True, "dropout_rate": None,
+                             "dropout_hazard": None, "dropout_mar_slope": 0.0, "missing": None})
 
     def _check(self):
         cols = {"arm", "subject", "visit"} | ({"baseline"} if self.baseline else set())
@@ -143,8 +150,7 @@ class RepeatedMeasures(Process):
                 f"`rho` = {self.rho:g} gives a correlation matrix that is not numerically positive definite; "
                 "move it away from the boundary."
             ) from None
-        if self.n1 < 2:
-            raise ParameterError(f"`ratio` gives a treatment arm of {self.n1} (< 2) with n = {self.n}; raise n or ratio.")
+        self._check_arms()
         if self.dropout_rate is not None and self.dropout_hazard is not None:
             raise ParameterError("`dropout_hazard` and `dropout_rate` both given: give one of them.")
         if self.dropout_mar_slope != 0 and self.dropout_rate is None and self.dropout_hazard is None:
@@ -156,10 +162,6 @@ class RepeatedMeasures(Process):
             object.__setattr__(self, "_intercept", self._calibrate())
 
     # -- facts -------------------------------------------------------------
-    @property
-    def n1(self) -> int:
-        return int(round(self.ratio * self.n))
-
     @property
     def corr_matrix(self) -> np.ndarray:
         return correlation_matrix(self.correlation, self.rho, self.visits)
@@ -234,7 +236,7 @@ class RepeatedMeasures(Process):
         n0, n1, k = self.n, self.n1, self.visits
         n_sub = n0 + n1
         z = rng.standard_normal((size, n_sub, k)) @ np.linalg.cholesky(self.corr_matrix).T
-        arm_sub = np.repeat(np.array([0, 1], dtype=np.int8), [n0, n1])
+        arm_sub = self.arm_labels()
         y = self.sd * z
         y[:, n0:, :] += self.effect * self.profile
         observed = None
@@ -254,26 +256,14 @@ class RepeatedMeasures(Process):
             observed = observed.reshape(size, n_sub * k)
         if self.baseline:
             per_rep["baseline"] = np.repeat(y[:, ::k], k, axis=1)
-        if self.missing is not None:
-            miss = self._missing_mask(rng, y, shared, per_rep.get("baseline"))
-            observed = ~miss if observed is None else observed & ~miss
-        info = {"n0": n0, "n1": n1, "visits": k}
-        if observed is not None:
-            y[~observed] = np.nan  # visit 0 is always observed, so is the baseline column
-            per_rep["observed"] = observed.astype(np.int8)
-            info["missing"] = True
+        info = {**self.arm_info(), "visits": k}
+        # the ``missing`` component sees the post-baseline rows (all rows without a baseline visit);
+        # visit 0 is always observed, so is the baseline column
+        rows = shared["visit"] > 0 if self.baseline else np.ones(y.shape[1], bool)
+        covariates = {**shared, **({"baseline": per_rep["baseline"]} if self.baseline else {})}
+        apply_missing(self.missing, rng, y, covariates, per_rep, info, rows=rows, observed=observed)
         per_rep["y"] = y
         return Batch(size, per_rep, shared, info)
-
-    def _missing_mask(self, rng, y, shared, baseline):
-        """The ``missing`` component's mask over the post-baseline rows (all rows without a baseline visit)."""
-        rows = shared["visit"] > 0 if self.baseline else np.ones(y.shape[1], bool)
-        cov = {name: np.broadcast_to(v[rows], (y.shape[0], int(rows.sum()))) for name, v in shared.items()}
-        if baseline is not None:
-            cov["baseline"] = baseline[:, rows]
-        miss = np.zeros(y.shape, bool)
-        miss[:, rows] = np.asarray(self.missing.mask(rng, y[:, rows], cov), bool).reshape(y.shape[0], -1)
-        return miss
 
     # -- words -----------------------------------------------------------
     def true_effect(self):
@@ -285,7 +275,7 @@ class RepeatedMeasures(Process):
         shape = {"final": f"rising linearly to {self.effect:g} at the final visit",
                  "constant": f"{self.effect:g} at every visit after randomisation",
                  "slope": f"{self.effect:g} per visit ({self.true_effect():g} at the final visit)"}[self.effect_shape]
-        text = (f"two arms of {self.n} (control) and {self.n1} (treatment) subjects, {self.visits} visits"
+        text = (f"{self.arms_text('subjects')}, {self.visits} visits"
                 f"{' (visit 0 a baseline before randomisation)' if self.baseline else ''}, normal outcomes with "
                 f"SD {self.sd:g} and {corr}; treatment minus control difference {shape}")
         if self.has_dropout:

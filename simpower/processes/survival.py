@@ -28,12 +28,13 @@ from scipy import integrate
 from .._validation import Int, Real
 from ..errors import ParameterError
 from .base import Batch, Process
+from .design import TwoArms, arm_defaults, arm_params
 
 POSITIVE = Real(0.0, low_open=True)
 OPT_POSITIVE = Real(0.0, low_open=True, optional=True)
 
 
-class SurvivalTwoArm(Process):
+class SurvivalTwoArm(TwoArms, Process):
     """Two arms with right-censored event times under proportional hazards.
 
     Parameters
@@ -67,6 +68,9 @@ class SurvivalTwoArm(Process):
     ratio : float > 0
         Allocation ratio; the treatment arm has ``round(ratio * n)``
         participants (at least 2).
+    n1 : int >= 2, optional
+        The treatment arm's size, given directly instead of ``ratio``
+        (``sizes = [n0, n1]`` gives both arms at once).
 
     Notes
     -----
@@ -89,7 +93,7 @@ class SurvivalTwoArm(Process):
     """
 
     name = "survival_two_arm"
-    params = {
+    params = arm_params({
         "n": Int(low=2),
         "median": OPT_POSITIVE,
         "hazard0": OPT_POSITIVE,
@@ -102,10 +106,10 @@ class SurvivalTwoArm(Process):
         "dropout_time": OPT_POSITIVE,
         "time_resolution": OPT_POSITIVE,
         "ratio": POSITIVE,
-    }
-    defaults = {"median": None, "hazard0": None, "hazard_ratio": 1.0, "shape": 1.0, "accrual": 0.0,
+    })
+    defaults = arm_defaults({"median": None, "hazard0": None, "hazard_ratio": 1.0, "shape": 1.0, "accrual": 0.0,
                 "follow_up": None, "dropout_rate": 0.0, "dropout_fraction": None, "dropout_time": None,
-                "time_resolution": None, "ratio": 1.0}
+                "time_resolution": None, "ratio": 1.0})
     effect_param = "hazard_ratio"
     size_param = "n"
 
@@ -121,14 +125,9 @@ class SurvivalTwoArm(Process):
                                      "follow-up, not both.")
         elif self.dropout_time is not None:
             raise ParameterError("`dropout_time` needs `dropout_fraction` (in [0, 1)); or give `dropout_rate`.")
-        if self.n1 < 2:
-            raise ParameterError(f"`ratio` gives a treatment arm of {self.n1} (< 2) with n = {self.n}; raise n or ratio.")
+        self._check_arms()
 
     # -- derived ---------------------------------------------------------
-    @property
-    def n1(self) -> int:
-        return int(round(self.ratio * self.n))
-
     @property
     def rate0(self) -> float:
         """Control-arm rate ``lam`` of ``H0(t) = (lam t) ** shape``."""
@@ -187,7 +186,7 @@ class SurvivalTwoArm(Process):
     def draw_batch(self, rng, size):
         n0, n1 = self.n, self.n1
         m = n0 + n1
-        arm = np.repeat(np.array([0, 1], dtype=np.int8), [n0, n1])
+        arm = self.arm_labels()
         e_event = rng.standard_exponential((size, m))
         u_entry = rng.random((size, m))
         e_loss = rng.standard_exponential((size, m))
@@ -203,7 +202,7 @@ class SurvivalTwoArm(Process):
         time = np.minimum(t, cens)
         if self.time_resolution is not None:
             time = np.ceil(time / self.time_resolution) * self.time_resolution
-        return Batch(size, {"time": time, "event": event}, {"arm": arm}, info={"n0": n0, "n1": n1})
+        return Batch(size, {"time": time, "event": event}, {"arm": arm}, info=self.arm_info())
 
     def describe(self):
         dist = "exponential" if self.shape == 1 else f"Weibull (shape {self.shape:g})"
@@ -215,5 +214,5 @@ class SurvivalTwoArm(Process):
         if self.loss_rate > 0:
             cens.append(f"exponential loss to follow-up at rate {self.loss_rate:.4g} per unit time")
         tail = "; " + ", ".join(cens) if cens else "; no censoring"
-        return (f"two arms of {self.n} (control) and {self.n1} (treatment), {dist} event times with control "
+        return (f"{self.arms_text()}, {dist} event times with control "
                 f"median {self.median0:.4g}, proportional hazards with hazard ratio {self.hazard_ratio:g}{tail}")

@@ -1,0 +1,243 @@
+"""A composed process, ``trial``: a design times a continuous outcome times a missingness mechanism.
+
+The three layers are separate components, combined in one process::
+
+    [process]
+    type = "trial"
+    effect = 0.25
+    design = {type = "clusters", clusters = 12, cluster_size = 20, icc = 0.05}
+    outcome = {type = "lognormal", median = 300, cv = 1.2}
+    missing = {type = "mcar", rate = 0.1}
+
+Designs (kind ``design``):
+
+* ``arms``: two independent arms, sized as every two-arm process
+  (:class:`~simpower.processes.design.TwoArms`: ``n`` with ``ratio`` or
+  ``n1``; ``sizes``, ``allocation``). Outcomes are independent draws of
+  ``outcome``: ``trial`` with ``arms`` draws exactly what ``two_arm`` draws
+  with the same fields (without ``baseline_corr``), replicate for replicate.
+* ``clusters``: ``clusters`` per arm of mean size ``cluster_size`` (sizes
+  vary with ``cluster_size_cv``, see :func:`~simpower.processes.clusters.size_law`),
+  randomised by cluster or individually within clusters. Outcomes share a
+  random cluster intercept on the normal-scores scale (the scale of the
+  linear predictor of a Gaussian copula): ``z = sqrt(icc) u_c + sqrt(1 - icc) e``
+  with u, e independent standard normal, and ``y = F^{-1}(Phi(z))`` for the
+  outcome's distribution F. So every outcome keeps the distribution
+  ``outcome`` says, and ``icc`` is the intracluster correlation of the normal
+  scores; for a normal outcome it is the ICC of the outcomes themselves (as
+  in ``cluster_trial``), for a skewed one the outcome-scale Pearson ICC is
+  somewhat smaller.
+
+The effect (``effect``, ``effect_type``, ``sd_ratio``) acts on the treatment
+rows as in ``two_arm``; then the missingness step
+(:func:`~simpower.processes.design.apply_missing`) runs once.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from .._validation import Choice, Int, Real
+from ..components import Component, Nested
+from ..errors import ParameterError
+from .arms import EFFECT_TYPE, POSITIVE, _check_missing, _check_outcome_for, _describe_effect, _effect_values
+from .base import Batch, Process
+from .clusters import _within_cluster_arms, draw_clusters, size_law
+from .design import ARM_DEFAULTS, ARM_PARAMS, TwoArms, apply_missing
+from .outcomes import Normal
+
+
+class Design(Component):
+    """Base class of designs: who is measured, in which arm and cluster, with which correlation.
+
+    :meth:`draw` returns the layout of ``size`` replicates: ``z``, standard
+    normal scores with the design's correlation (None: independent rows, the
+    outcome draws them itself), ``arm`` (shared 1-D or per replicate 2-D),
+    ``shared`` and ``per_rep`` design columns, ``present`` (padding mask or
+    None) and ``info``.
+    """
+
+    kind = "design"
+    #: the design's parameter the required-n search varies
+    size_param: str = "n"
+    #: design columns a MAR mechanism may use
+    columns: frozenset[str] = frozenset({"arm"})
+
+    def draw(self, rng: np.random.Generator, size: int) -> dict:
+        raise NotImplementedError
+
+
+class Arms(TwoArms, Design):
+    """Two independent arms: ``n`` (control), with ``ratio`` or ``n1`` (see :class:`TwoArms`)."""
+
+    name = "arms"
+    params = dict(ARM_PARAMS)
+    defaults = dict(ARM_DEFAULTS)
+
+    def _check(self):
+        self._check_arms()
+
+    def draw(self, rng, size):
+        arm = self.arm_labels()
+        return {"z": None, "width": self.total, "arm": arm, "shared": {"arm": arm}, "per_rep": {},
+                "present": None, "info": self.arm_info()}
+
+    def describe(self):
+        return f"{self.arms_text()}, participants independent"
+
+
+class Clusters(Design):
+    """Two arms of clusters, with a random cluster intercept on the normal-scores scale.
+
+    Parameters
+    ----------
+    clusters : int >= 2
+        Clusters per arm (with ``randomise = "individual"``: 2 * clusters
+        clusters in all, each split between the arms).
+    cluster_size : float >= 1
+        Mean cluster size; a whole number when ``cluster_size_cv`` is 0.
+    cluster_size_cv : float >= 0
+        Coefficient of variation of the cluster sizes (0: equal clusters).
+    icc : float in [0, 1)
+        Intracluster correlation of the outcomes' normal scores.
+    randomise : {"cluster", "individual"}
+    """
+
+    name = "clusters"
+    size_param = "clusters"
+    columns = frozenset({"arm", "cluster"})
+    params = {"clusters": Int(low=2), "cluster_size": Real(1.0), "cluster_size_cv": Real(0.0),
+              "icc": Real(0.0, 1.0, high_open=True), "randomise": Choice(("cluster", "individual"))}
+    defaults = {"cluster_size_cv": 0.0, "randomise": "cluster"}
+
+    def _check(self):
+        if self.cluster_size_cv == 0 and not float(self.cluster_size).is_integer():
+            raise ParameterError(f"`cluster_size` must be a whole number when cluster_size_cv = 0 (equal "
+                                 f"clusters); got {self.cluster_size:g}.")
+        size_law(self.cluster_size, self.cluster_size_cv)  # raises for an unreachable CV
+
+    def draw(self, rng, size):
+        n_clusters = 2 * self.clusters
+        sizes, u, cluster, present, start = draw_clusters(rng, n_clusters, self.cluster_size, self.cluster_size_cv,
+                                                          size)
+        width = cluster.shape[-1]
+        z = math.sqrt(1.0 - self.icc) * rng.standard_normal((size, width))
+        z += math.sqrt(self.icc) * (u[:, cluster] if cluster.ndim == 1 else np.take_along_axis(u, cluster, axis=1))
+        if self.randomise == "cluster":
+            arm = (cluster >= self.clusters).astype(np.int8)
+        else:
+            full_cluster = np.broadcast_to(cluster, (size, width))
+            full_present = np.ones((size, width), bool) if present is None else present
+            arm = _within_cluster_arms(rng, sizes, full_cluster, full_present, np.asarray(start))
+        shared = {"subject": np.arange(width, dtype=np.int64)}
+        per_rep = {}
+        (shared if arm.ndim == 1 else per_rep)["arm"] = arm
+        (shared if cluster.ndim == 1 else per_rep)["cluster"] = cluster
+        if present is not None:
+            per_rep["present"] = present
+        info = {"clusters_per_arm": self.clusters, "n_clusters": n_clusters, "randomise": self.randomise,
+                "equal_sizes": self.cluster_size_cv == 0}
+        return {"z": z, "width": width, "arm": arm, "shared": shared, "per_rep": per_rep, "present": present,
+                "info": info, "covariates": {"arm": arm, "cluster": cluster}}
+
+    def describe(self):
+        sizes = (f"{int(self.cluster_size)} members each" if self.cluster_size_cv == 0 else
+                 f"a mean of {self.cluster_size:g} members (CV {self.cluster_size_cv:g})")
+        design = (f"two arms of {self.clusters} clusters of {sizes}, randomised by cluster"
+                  if self.randomise == "cluster" else
+                  f"{2 * self.clusters} clusters of {sizes}, individuals randomised 1:1 within each cluster")
+        return f"{design}; intracluster correlation {self.icc:g} of the normal scores (a random cluster intercept)"
+
+
+class Trial(Process):
+    """A design (``arms``, ``clusters``) times a continuous outcome times an optional missingness.
+
+    Parameters
+    ----------
+    design : design
+        ``{type = "arms", ...}`` or ``{type = "clusters", ...}`` (see the module).
+    outcome : outcome, default normal(0, 1)
+        The control-arm distribution of an outcome.
+    effect, effect_type, sd_ratio
+        The treatment effect, as for ``two_arm``.
+    missing : missingness, optional
+        Applied once after the outcomes; a MAR mechanism may use the design's
+        columns (``arm``; ``cluster`` for clusters).
+
+    Notes
+    -----
+    ``true_effect()`` is the treatment minus control difference in mean
+    outcome, as for ``two_arm``. The required-n search varies the design's
+    size (``design.n`` or ``design.clusters``).
+    """
+
+    name = "trial"
+    params = {"design": Nested("design"), "outcome": Nested("outcome"), "effect": Real(),
+              "effect_type": EFFECT_TYPE, "sd_ratio": POSITIVE, "missing": Nested("missingness", optional=True)}
+    defaults = {"outcome": Normal(), "effect": 0.0, "effect_type": "shift", "sd_ratio": 1.0, "missing": None}
+
+    def _check(self):
+        if self.effect_type == "ratio" and not self.effect > 0:
+            raise ParameterError(f"`effect` must be > 0 when `effect_type` = 'ratio'; got {self.effect:g}.")
+        _check_outcome_for(self.outcome, self.effect_type, self.sd_ratio != 1)
+        if not isinstance(self.design, Arms) and not hasattr(self.outcome, "from_normal"):
+            raise ParameterError(f"`outcome` needs a quantile function (from_normal) for a {self.design.name} "
+                                 f"design; {type(self.outcome).__name__} has none.")
+        _check_missing(self.missing, set(self.design.columns), self.name)
+
+    @property
+    def size_param(self) -> str:  # type: ignore[override]
+        return f"design.{self.design.size_param}"
+
+    def null_value(self):
+        return 1.0 if self.effect_type == "ratio" else 0.0
+
+    def true_effect(self):
+        if self.effect_type == "shift":
+            return float(self.effect)
+        if self.effect_type == "d":
+            return float(self.effect * self.outcome.sd)
+        return float(self.outcome.mean * (self.effect - 1.0))
+
+    def draw_batch(self, rng, size):
+        lay = self.design.draw(rng, size)
+        if lay["z"] is None:
+            y = np.asarray(self.outcome.sample(rng, (size, lay["width"])), dtype=float)
+        else:
+            y = np.asarray(self.outcome.from_normal(lay["z"]), dtype=float)
+        arm = lay["arm"]
+        if arm.ndim == 1:
+            treated = arm == 1
+            y[:, treated] = _effect_values(y[:, treated], self.outcome, self.effect, self.effect_type, self.sd_ratio)
+        else:
+            treated = arm == 1
+            y[treated] = _effect_values(y[treated], self.outcome, self.effect, self.effect_type, self.sd_ratio)
+        per_rep = {"y": y, **lay["per_rep"]}
+        info = dict(lay["info"])
+        apply_missing(self.missing, rng, y, lay.get("covariates", {"arm": arm}), per_rep, info,
+                      present=lay["present"])
+        return Batch(size, per_rep, lay["shared"], info)
+
+    def estimand_aliases(self):
+        pure_shift = (isinstance(self.design, Arms) and self.effect_type in ("shift", "d") and self.sd_ratio == 1
+                      and self.missing is None)
+        return {"location shift"} if pure_shift else set()
+
+    def normal_case(self):
+        if not isinstance(self.design, Arms) or not isinstance(self.outcome, Normal) or self.missing is not None:
+            return None
+        d, sd0 = self.design, self.outcome.sd
+        return {"design": "two-sample", "effect": self.true_effect(), "n": d.n0, "ratio": d.n1 / d.n0,
+                "sd0": sd0, "sd1": sd0 * self.sd_ratio, "sd": sd0 if self.sd_ratio == 1 else None}
+
+    def describe(self):
+        parts = [self.design.describe(), f"outcome {self.outcome.describe()}",
+                 _describe_effect(self.effect, self.effect_type, self.outcome)]
+        if self.sd_ratio != 1:
+            parts.append(f"treatment-arm deviations around its mean scaled by {self.sd_ratio:g}")
+        if self.missing is not None:
+            parts.append(self.missing.describe())
+        parts.append(f"estimand: treatment minus control difference in mean outcome = {self.true_effect():.4g}")
+        return "; ".join(parts)
