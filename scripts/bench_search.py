@@ -106,7 +106,7 @@ def main() -> None:
 
 
 def sp_search(sc, seed):
-    from simpower.search import required_n
+    from simpower.planning.search import required_n
 
     return required_n(sc, TARGET, low=LOW, high=HIGH, seed=seed, n_jobs=1, rel_tol=0.02)
 

@@ -36,9 +36,9 @@ from .processes.outcomes import (ContaminatedNormal, Fleishman, Gamma, Lognormal
 from .processes.repeated import RepeatedMeasures
 from .processes.survival import SurvivalTwoArm
 from .result import Records, RunResult
-from .search import SearchResult, detectable_effect, required_n
-from .sequential import MemoryStore, point_key, run_many_to_mcse, run_to_mcse
-from .sweep import Grid, Range, null_check, sweep
+from .planning.search import SearchResult, detectable_effect, required_n
+from .planning.sequential import MemoryStore, point_key, run_many_to_mcse, run_to_mcse
+from .planning.sweep import Grid, Range, null_check, sweep
 from .scenario import Scenario
 from .scenario_files import load as load_scenario
 from .summaries import bradley_liberal, paired_difference, wilson_interval

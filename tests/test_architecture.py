@@ -240,11 +240,10 @@ def test_no_import_cycles_through_deferred_imports():
     assert not cycles, "import cycles inside simpower/ (counting imports inside functions):\n" + msg
 
 
-ABOVE_ENGINE = ("simpower.cli", "simpower.report", "simpower.sweep", "simpower.search", "simpower.sequential",
-                "simpower.validation")
+ABOVE_ENGINE = ("simpower.cli", "simpower.report", "simpower.planning")
 ENGINE_AND_ABOVE = ABOVE_ENGINE + ("simpower.engine", "simpower.scenario", "simpower.scenario_files")
 # part -> the parts it must not import, counting deferred imports (DEVELOPERS.md, "Imports flow one way":
-# cli -> report/search/sweep -> engine -> processes/analyses -> analytic)
+# cli -> report/planning -> engine -> processes/analyses -> analytic)
 FORBIDDEN = {
     "simpower.analytic": ENGINE_AND_ABOVE + ("simpower.processes", "simpower.analyses", "simpower.components",
                                              "simpower.registry", "simpower.functions", "simpower.result"),
@@ -256,9 +255,7 @@ FORBIDDEN = {
     "simpower.summaries": ENGINE_AND_ABOVE + ("simpower.result",),
     "simpower.result": ENGINE_AND_ABOVE,
     "simpower.engine": ABOVE_ENGINE,
-    "simpower.sweep": ("simpower.cli", "simpower.report"),
-    "simpower.search": ("simpower.cli", "simpower.report"),
-    "simpower.sequential": ("simpower.cli", "simpower.report"),
+    "simpower.planning": ("simpower.cli", "simpower.report"),
     "simpower.report": ("simpower.cli",),
 }
 
@@ -282,7 +279,7 @@ def test_layering_arrows(part):
 
 
 def test_commands_do_not_import_each_other():
-    # steps shared by several commands live in cli/common.py and cli/planning.py
+    # steps shared by several commands live in cli/common.py and cli/steps.py
     graph = import_graph(deferred=True)
     commands = [m for m in graph if m.startswith("simpower.cli.cmd_")]
     assert len(commands) >= 5

@@ -21,7 +21,7 @@ from simpower.analyses.equivalence import TOST, NonInferiority
 from simpower.analyses.resampling import LogT
 from simpower.cli.main import main
 from simpower.errors import ParameterError
-from simpower.sweep import null_check
+from simpower.planning.sweep import null_check
 from test_equivalence import tost_power_exact
 
 ROOT = Path(__file__).parent.parent

@@ -11,7 +11,7 @@ import math
 import numpy as np
 
 import simpower as sp
-from simpower.validation import run_battery
+from simpower.planning.battery import run_battery
 
 
 def test_full_battery_within_4_mcse():

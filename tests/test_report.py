@@ -10,8 +10,8 @@ pytest.importorskip("matplotlib", reason="the report's figures need matplotlib (
 import simpower as sp  # noqa: E402
 from simpower.report import make_report, reproduce_command  # noqa: E402
 from simpower.report import plots  # noqa: E402
-from simpower.search import required_n  # noqa: E402
-from simpower.sweep import null_check, sweep  # noqa: E402
+from simpower.planning.search import required_n  # noqa: E402
+from simpower.planning.sweep import null_check, sweep  # noqa: E402
 from simpower.textout import CAUTION  # noqa: E402
 
 SC = sp.Scenario(sp.NormalTwoArm(n=30, effect=0.6), analyses=[sp.TTest(), sp.WelchT()], name="Demo trial")
@@ -79,7 +79,7 @@ def test_reproduce_command_pins_the_seed():
 
 
 def test_sequential_run_is_reported(tmp_path):
-    from simpower.sequential import run_to_mcse
+    from simpower.planning.sequential import run_to_mcse
 
     res = run_to_mcse(SC, 0.02, seed=2, n_jobs=1)
     md = make_report(SC, tmp_path, seed=2, run=res)["md"].read_text()

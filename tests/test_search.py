@@ -13,8 +13,8 @@ from scipy import optimize, stats
 
 import simpower as sp
 from simpower.errors import ParameterError
-from simpower.search import detectable_effect, fit_probit, required_n, runnable_low
-from simpower.sequential import MemoryStore
+from simpower.planning.search import detectable_effect, fit_probit, required_n, runnable_low
+from simpower.planning.sequential import MemoryStore
 
 
 def se_of(res):

@@ -11,7 +11,7 @@ import pytest
 
 import simpower as sp
 from simpower.errors import ParameterError
-from simpower.sequential import MemoryStore, point_key, reps_for_mcse, run_many_to_mcse, run_to_mcse
+from simpower.planning.sequential import MemoryStore, point_key, reps_for_mcse, run_many_to_mcse, run_to_mcse
 
 SC = sp.Scenario(sp.NormalTwoArm(n=64, effect=0.5), sp.TTest())
 

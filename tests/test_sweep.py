@@ -9,8 +9,8 @@ from scipy import stats
 
 import simpower as sp
 from simpower.errors import ParameterError
-from simpower.sequential import MemoryStore
-from simpower.sweep import Grid, Range, grid_from_block, parse_axis, parse_together, sweep
+from simpower.planning.sequential import MemoryStore
+from simpower.planning.sweep import Grid, Range, grid_from_block, parse_axis, parse_together, sweep
 
 SC = sp.Scenario(sp.NormalTwoArm(n=30, effect=0.5), analyses=[sp.TTest(), sp.WelchT()])
 

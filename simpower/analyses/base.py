@@ -60,7 +60,7 @@ class TestResult:
 class NullBoundary:
     """Where an analysis's H0 meets its H1: the estimand's value there, and what that value is.
 
-    The type I error check (:func:`simpower.sweep.null_check`) sets the
+    The type I error check (:func:`simpower.planning.sweep.null_check`) sets the
     process's effect so that its true effect equals ``value`` (in the units of
     what the analysis estimates), and shows ``label`` beside the rate.
     """

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ..validation import DEFAULT_SEED, battery_passed, format_battery, run_battery
+from ..planning.battery import DEFAULT_SEED, battery_passed, format_battery, run_battery
 
 
 def register(sub) -> None:

@@ -14,7 +14,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from .common import add_run_options, check_output_folder, load_scenario
-from .planning import (REPORT_FIELDS, engine_of, null_settings, plot_axis, run_null, run_search,
+from .steps import (REPORT_FIELDS, engine_of, null_settings, plot_axis, run_null, run_search,
                        run_sweep, seed_of, write_outputs)
 
 DEFAULT_REPS = 2000
@@ -32,7 +32,7 @@ def register(sub) -> None:
 
 def base_run(sf, args, seed):
     from ..engine import run
-    from ..sequential import SEQUENTIAL_FIELDS, read_block, run_to_mcse
+    from ..planning.sequential import SEQUENTIAL_FIELDS, read_block, run_to_mcse
 
     block = read_block("sequential", sf.blocks.get("sequential"), SEQUENTIAL_FIELDS)
     eng = engine_of(sf, args, "run")
@@ -48,8 +48,8 @@ def base_run(sf, args, seed):
 
 
 def main(args) -> int:
-    from ..sequential import read_block
-    from ..sweep import SWEEP_FIELDS, grid_from_block
+    from ..planning.sequential import read_block
+    from ..planning.sweep import SWEEP_FIELDS, grid_from_block
 
     sf = load_scenario(args)
     seed = seed_of(sf, args)
@@ -63,7 +63,7 @@ def main(args) -> int:
         check_output_folder("--out" if args.out else "report.out", outdir)
     ns = null_settings(sf, args, default_on=True)
     if ns is not None:  # a boundary that cannot be placed is refused before anything runs
-        from ..nullpoints import null_points
+        from ..planning.nullpoints import null_points
 
         null_points(sf.scenario)
     results: dict = {}

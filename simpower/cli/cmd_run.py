@@ -28,7 +28,7 @@ def register(sub) -> None:
 
 
 def _sequential(sf, args) -> dict:
-    from ..sequential import SEQUENTIAL_FIELDS, check_target_mcse, read_block
+    from ..planning.sequential import SEQUENTIAL_FIELDS, check_target_mcse, read_block
 
     block = read_block("sequential", sf.blocks.get("sequential"), SEQUENTIAL_FIELDS)
     if args.target_mcse is not None:
@@ -45,7 +45,7 @@ def _simulate(sf, args, opts, fit_trouble):
     if seq.get("target_mcse") is None:
         return run(sf.scenario, reps=sf.run.get("reps", DEFAULT_REPS), seed=sf.run.get("seed"),
                    fit_trouble=fit_trouble, **opts)
-    from ..sequential import run_to_mcse
+    from ..planning.sequential import run_to_mcse
 
     engine = {k: opts[k] for k in ("backend", "address", "timeout", "keep_records")}
     kw = {k: seq[k] for k in ("min_reps", "max_reps", "which") if k in seq}
@@ -58,9 +58,9 @@ def _simulate(sf, args, opts, fit_trouble):
 def _null_reps(sf, args) -> int | None:
     """Replicates of the type I check, or None when it is off; its boundaries are checked now, before
     anything runs, so a boundary that cannot be placed costs no simulation."""
-    from ..nullpoints import null_points
-    from ..sequential import read_block
-    from ..sweep import NULL_CHECK_FIELDS
+    from ..planning.nullpoints import null_points
+    from ..planning.sequential import read_block
+    from ..planning.sweep import NULL_CHECK_FIELDS
 
     block = read_block("null_check", sf.blocks.get("null_check"), NULL_CHECK_FIELDS)
     if not (args.null_check or block.get("enabled", False)):
@@ -73,8 +73,8 @@ def _null_reps(sf, args) -> int | None:
 
 
 def _null_check(sf, reps, opts, fit_trouble, seed) -> str | None:
-    from ..sweep import null_check
-    from .planning import null_lines
+    from ..planning.sweep import null_check
+    from .steps import null_lines
 
     if reps is None:
         return None

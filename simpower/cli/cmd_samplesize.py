@@ -19,7 +19,7 @@ never reached is an error that reports the best power seen.
 from __future__ import annotations
 
 from .common import add_run_options, load_scenario
-from .planning import null_lines, null_settings, run_null, run_search, seed_of, write_outputs
+from .steps import null_lines, null_settings, run_null, run_search, seed_of, write_outputs
 
 
 def register(sub) -> None:

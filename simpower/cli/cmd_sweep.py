@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from ..errors import ParameterError
 from .common import add_run_options, load_scenario
-from .planning import null_lines, null_settings, plot_axis, run_null, run_sweep, seed_of, write_outputs
+from .steps import null_lines, null_settings, plot_axis, run_null, run_sweep, seed_of, write_outputs
 
 SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power", "path")
 
@@ -43,7 +43,7 @@ def register(sub) -> None:
 
 
 def grid_of(sf, args, block):
-    from ..sweep import Grid, grid_from_block, parse_axis, parse_together
+    from ..planning.sweep import Grid, grid_from_block, parse_axis, parse_together
 
     if args.vary or args.together:
         g = Grid()
@@ -71,8 +71,8 @@ def format_table(table) -> str:
 
 
 def main(args) -> int:
-    from ..sequential import read_block
-    from ..sweep import SWEEP_FIELDS
+    from ..planning.sequential import read_block
+    from ..planning.sweep import SWEEP_FIELDS
     from ..textout import CAUTION
 
     sf = load_scenario(args)

@@ -366,7 +366,7 @@ def part_label(component) -> str:
 def _kept_in(store) -> str | None:
     """Where finished chunks outlive this call: a store's path ('the store' for one without), or None.
 
-    A :class:`~simpower.sequential.MemoryStore` keeps chunks only in memory;
+    A :class:`~simpower.planning.sequential.MemoryStore` keeps chunks only in memory;
     it counts only through the store behind it (``backing``), if any.
     """
     if store is not None and hasattr(store, "backing"):

@@ -37,11 +37,11 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from ._validation import Choice, Int, Real
-from .engine import run_many
-from .errors import ParameterError, nearest
+from .._validation import Choice, Int, Real
+from ..engine import run_many
+from ..errors import ParameterError, nearest
 from .sequential import as_memory_store, point_key, seed_with_store
-from .summaries import wilson_interval
+from ..summaries import wilson_interval
 
 #: replicates per chunk (and per pilot point) of a search
 SEARCH_CHUNK = 200

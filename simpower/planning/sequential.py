@@ -24,12 +24,12 @@ from __future__ import annotations
 import math
 from typing import Sequence
 
-from ._validation import Choice, Int, Real
-from .engine import run_many
-from .engine.chunk import ChunkOutput
-from .engine.runner import default_chunk_size
-from .errors import ParameterError
-from .summaries import mcse_target_reps
+from .._validation import Choice, Int, Real
+from ..engine import run_many
+from ..engine.chunk import ChunkOutput
+from ..engine.runner import default_chunk_size
+from ..errors import ParameterError
+from ..summaries import mcse_target_reps
 
 #: chunk size of growing runs: fine enough that the final replicate count
 #: overshoots its target by little, coarse enough to keep batches efficient
@@ -75,7 +75,7 @@ class MemoryStore:
     def __init__(self, backing=None):
         self.owned = False
         if isinstance(backing, (str, bytes)) or hasattr(backing, "__fspath__"):
-            from .engine.store import RunStore
+            from ..engine.store import RunStore
 
             backing, self.owned = RunStore(backing), True
         self.backing = backing
@@ -126,7 +126,7 @@ def as_memory_store(store) -> MemoryStore:
 
 def seed_with_store(seed, mem: MemoryStore) -> int:
     """The run's entropy: ``seed``, else the backing store's (resuming), else fresh."""
-    from .engine import normalize_seed
+    from ..engine import normalize_seed
 
     return normalize_seed(seed if seed is not None or mem.seed is None else int(mem.seed))
 
@@ -292,7 +292,7 @@ def read_block(block_name: str, block, fields: dict) -> dict:
     Unknown fields raise ParameterError naming the nearest valid one; absent
     fields are left out.
     """
-    from .errors import nearest
+    from ..errors import nearest
 
     if block is None:
         return {}

@@ -28,12 +28,12 @@ from typing import Any, Iterable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from .engine import normalize_seed, run_many
-from .engine.runner import point_labels
-from ._validation import Bool, Int, Real
-from .errors import ParameterError
+from ..engine import normalize_seed, run_many
+from ..engine.runner import point_labels
+from .._validation import Bool, Int, Real
+from ..errors import ParameterError
 from .sequential import as_memory_store, check_target_mcse, point_key, run_many_to_mcse, seed_with_store
-from .summaries import bradley_liberal
+from ..summaries import bradley_liberal
 
 #: columns of a sweep table after the grid parameters, in order
 RESULT_COLUMNS = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "n_ok", "failures",
@@ -112,7 +112,7 @@ def range_from_table(name: str, table: Mapping[str, Any]) -> Range:
     allowed = {"from", "to", "step", "count", "scale"}
     for key in table:
         if key not in allowed:
-            from .errors import nearest
+            from ..errors import nearest
 
             raise ParameterError(f"range of `{name}`: unknown field `{key}`.{nearest(key, allowed)}")
     if "from" not in table or "to" not in table:
@@ -516,7 +516,7 @@ NULL_CHECK_FIELDS = {"enabled": Bool(), "reps": Int(low=1), "at_grid": Bool()}
 def parse_axis(text: str) -> tuple[str, Any]:
     """A command-line axis ``name=values``: ``40,60,80`` (a list), ``20:100:10`` (from:to:step),
     ``20:100/5`` (5 evenly spaced values), ``10:1000//7`` (7 log-spaced values)."""
-    from .scenario_files import parse_assignment
+    from ..scenario_files import parse_assignment
 
     name, sep, spec = text.partition("=")
     name, spec = name.strip(), spec.strip()

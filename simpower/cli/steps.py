@@ -7,7 +7,6 @@ command imports another: ``report`` runs what ``sweep`` and ``samplesize`` run.
 
 from __future__ import annotations
 
-import sys
 
 from ..errors import ParameterError
 from .common import engine_options
@@ -42,8 +41,8 @@ def seed_of(sf, args) -> int:
 
 
 def null_settings(sf, args, default_on: bool) -> dict | None:
-    from ..sequential import read_block
-    from ..sweep import NULL_CHECK_FIELDS
+    from ..planning.sequential import read_block
+    from ..planning.sweep import NULL_CHECK_FIELDS
 
     block = read_block("null_check", sf.blocks.get("null_check"), NULL_CHECK_FIELDS)
     on = getattr(args, "null_check", False) or block.get("enabled", default_on)
@@ -72,7 +71,7 @@ def null_lines(table, grid_cols=()) -> list[str]:
 
 
 def run_null(sf, args, seed, settings, grid=None):
-    from ..sweep import null_check
+    from ..planning.sweep import null_check
 
     return null_check(sf.scenario, grid if settings["at_grid"] else None, reps=settings["reps"], seed=seed,
                       chunk_size=sf.run.get("chunk_size"), fit_trouble=sf.run.get("fit_trouble", "failure"),
@@ -84,7 +83,7 @@ def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None,
     from ..report import make_report
     from ..report.manifest import reproduce_command
 
-    from ..sequential import read_block
+    from ..planning.sequential import read_block
 
     block = read_block("report", sf.blocks.get("report"), {k: None for k in REPORT_FIELDS})
     fm = formats or block.get("formats") or ("md", "html")
@@ -98,7 +97,7 @@ def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None,
 
 
 def run_sweep(sf, args, seed, grid, block):
-    from ..sweep import sweep
+    from ..planning.sweep import sweep
 
     target = getattr(args, "target_mcse", None) or block.get("target_mcse")
     kw = {}
@@ -119,7 +118,7 @@ def plot_axis(sf, args, block, grid, plot: bool) -> str:
     if it is swept. The report leaves out the power curve of a non-numeric
     axis, so only ``--plot`` needs numbers.
     """
-    from ..sweep import check_names
+    from ..planning.sweep import check_names
 
     check_names(sf.scenario, grid.names)
     from_file = block.get("x")
@@ -155,8 +154,8 @@ def _range(text: str):
 
 
 def run_search(sf, args, seed):
-    from ..search import SEARCH_FIELDS, search
-    from ..sequential import read_block
+    from ..planning.search import SEARCH_FIELDS, search
+    from ..planning.sequential import read_block
 
     opts = read_block("search", sf.blocks.get("search"), SEARCH_FIELDS)
     file_find = opts.pop("find", None) or "size"

@@ -24,13 +24,12 @@ from __future__ import annotations
 import itertools
 import math
 
-import numpy as np
 import pandas as pd
 
-from .analyses.ttests import TTest, WelchT, ZTest, PairedT
-from .engine import run_many
-from .processes.normal import NormalOneSample, NormalPaired, NormalTwoArm
-from .scenario import Scenario
+from ..analyses.ttests import TTest, WelchT, ZTest, PairedT
+from ..engine import run_many
+from ..processes.normal import NormalOneSample, NormalPaired, NormalTwoArm
+from ..scenario import Scenario
 
 DEFAULT_SEED = 20261201
 

@@ -23,7 +23,7 @@ import numbers
 from dataclasses import dataclass
 from typing import Any
 
-from .errors import ParameterError
+from ..errors import ParameterError
 
 #: relative tolerance to which the true effect must meet the boundary
 _TOL = 1e-9
@@ -165,7 +165,7 @@ def null_points(scenario) -> list[NullPoint]:
 
 def _sub_scenario(scenario, names: list[str], param: str, value: float):
     """``scenario`` with only the analyses ``names`` and the effect parameter set to ``value``."""
-    from .scenario import Scenario
+    from ..scenario import Scenario
 
     moved = scenario.with_params(**{f"process.{param}": value})
     true_effect = getattr(scenario, "_true_effect", None)
