@@ -3,7 +3,7 @@
 Every summary simpower shows -- of a run held in memory, of a run too large to
 keep, of a run store, of each grid point of a sweep or search -- is computed
 the same way: each chunk of replicates is reduced to policy-free sufficient
-statistics (:class:`AnalysisStats`: counts by failure cause, rejections among
+statistics where it ran (in the worker: :func:`chunk_statistics`; :class:`AnalysisStats`: counts by failure cause, rejections among
 clean replicates, moments of the estimates and of the squared SEs, coverage
 counts, per-hypothesis counts, and the discordant pairs of each two analyses),
 the chunk statistics of a grid point are folded in chunk order
@@ -333,6 +333,14 @@ def true_effect_of(scenario, name: str) -> float | None:
     return per(name) if per is not None else scenario.true_effect
 
 
+def chunk_statistics(scenario, records: dict[str, dict[str, np.ndarray]], causes: list[str]) -> tuple:
+    """One chunk's statistics per analysis and its discordant pairs (computed by the worker that ran it)."""
+    alpha = scenario.alpha
+    per = {name: AnalysisStats.of(rec, causes, alpha, true_effect_of(scenario, name))
+           for name, rec in records.items() if name in scenario.analyses}
+    return per, pair_counts({n: records[n] for n in scenario.analyses if n in records}, alpha)
+
+
 class PointStats:
     """Chunk statistics of one grid point, folded in chunk order.
 
@@ -360,15 +368,21 @@ class PointStats:
         returns the chunk's statistics per analysis."""
         per = {name: AnalysisStats.of(rec, causes, self.alpha, self.truth[name])
                for name, rec in records.items() if name in self.truth}
-        self.waiting[chunk] = (per, pair_counts({n: records[n] for n in self.analyses if n in records}, self.alpha))
+        return self._add(chunk, per, pair_counts({n: records[n] for n in self.analyses if n in records}, self.alpha))
+
+    def add(self, out) -> dict[str, AnalysisStats]:
+        """Add a finished chunk (a :class:`simpower.engine.chunk.ChunkOutput`): its statistics as the
+        worker computed them, or computed here for a chunk read back from a store."""
+        if getattr(out, "stats", None) is None:
+            return self.add_records(out.chunk, out.records, out.causes)
+        return self._add(out.chunk, *out.stats)
+
+    def _add(self, chunk: int, per: dict[str, AnalysisStats], pairs: dict) -> dict[str, AnalysisStats]:
+        self.waiting[chunk] = (per, pairs)
         while self._next in self.waiting:
             self._prefix = self._fold(self._prefix, self.waiting.pop(self._next))
             self._next += 1
         return per
-
-    def add(self, out) -> dict[str, AnalysisStats]:
-        """Add a finished chunk (a :class:`simpower.engine.chunk.ChunkOutput`)."""
-        return self.add_records(out.chunk, out.records, out.causes)
 
     @classmethod
     def from_records(cls, scenario, records, chunk_size: int) -> "PointStats":

@@ -56,6 +56,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..analyses.base import FIELDS, IGNORED_WARNINGS, as_batch_result, as_test_result
+from ..summaries import chunk_statistics
 TIMEOUT = "timeout"
 CRASH = "crash"
 PROCESS_CRASH = "process:crash"
@@ -87,6 +88,9 @@ class ChunkOutput:
     worker: str = ""
     #: None: no time limit asked; True/False: whether the limit could be enforced there
     timeout_enforced: bool | None = None
+    #: the chunk's summary statistics, computed where the chunk ran: (analysis -> AnalysisStats,
+    #: (a, b) -> discordant counts); None for a chunk read back from a store (computed on arrival)
+    stats: tuple | None = None
 
 
 class ReplicateTimeout(BaseException):
@@ -322,6 +326,7 @@ def run_chunk(scenario, entropy: int, point: int, chunk: int, size: int,
                     continue
                 for name, analysis in analyses.items():
                     _apply_one(analysis, data, records[name], i, causes, hyp, name, limit, crashed, mark)
+    stats = chunk_statistics(scenario, records, causes.causes)
     return ChunkOutput(point, chunk, size, records, causes.causes, causes.messages, paths, hyp,
                        time.perf_counter() - t0, started_at=started, worker=f"{socket.gethostname()}:{os.getpid()}",
-                       timeout_enforced=None if not timeout else limit.enforced)
+                       timeout_enforced=None if not timeout else limit.enforced, stats=stats)
