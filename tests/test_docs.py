@@ -1,7 +1,7 @@
 """Every Python block of README.md and docs/*.md runs as written, and the numbers it claims hold.
 
 A block runs in a fresh namespace (as ``__main__``, in an empty working folder), unless its
-first line is a comment saying "(continues ...)": then it runs in the namespace of the block
+first line is a comment saying "(continues ...)": then it runs with the names of every block
 before it in the same file. After the blocks of a file have run, the checks registered for it
 below test the claims the text makes; their sources are named beside them.
 """
@@ -16,6 +16,8 @@ import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
 DOCS = [ROOT / "README.md", *sorted((ROOT / "docs").glob("*.md"))]
+#: documents whose blocks define components (which register their names): run in a fresh interpreter
+ISOLATED = [ROOT / "DEVELOPERS.md"]
 BLOCK = re.compile(r"^```python\n(.*?)^```$", re.S | re.M)
 CONTINUES = re.compile(r"\A#\s*\(continues\b")
 
@@ -30,7 +32,9 @@ def run_blocks(path: Path) -> list[dict]:
     for i, code in enumerate(python_blocks(path)):
         if CONTINUES.match(code):
             assert spaces, f"{path.name} block {i + 1} says it continues, but no block comes before it"
-            ns = spaces[-1]
+            ns = {}
+            for earlier in spaces:
+                ns.update(earlier)
         else:
             ns = {"__name__": "__main__"}
         exec(compile(code, f"{path.name}[python block {i + 1}]", "exec"), ns)
@@ -78,8 +82,22 @@ def test_python_blocks_run_as_written(path, tmp_path, monkeypatch):
         CHECKS[path.name](spaces)
 
 
+@pytest.mark.slow
+@pytest.mark.parametrize("path", ISOLATED, ids=lambda p: p.name)
+def test_python_blocks_run_as_written_in_a_fresh_interpreter(path, tmp_path):
+    import subprocess
+    import sys
+
+    assert python_blocks(path), f"{path.name} has no Python block"
+    code = f"import sys; sys.path.insert(0, {str(Path(__file__).parent)!r}); import test_docs; " \
+           f"test_docs.run_blocks(test_docs.Path({str(path)!r}))"
+    done = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True,
+                          env={**__import__("os").environ, "MPLBACKEND": "Agg"})
+    assert done.returncode == 0, done.stderr[-3000:]
+
+
 def test_every_continuing_block_follows_another():
-    for path in DOCS:
+    for path in DOCS + ISOLATED:
         blocks = python_blocks(path)
         if blocks:
             assert not CONTINUES.match(blocks[0]), f"{path.name}: its first Python block cannot continue another"
