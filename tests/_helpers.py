@@ -23,3 +23,15 @@ def per_replicate(analysis, batch):
             out[f][i] = getattr(r, f)
         warned[i] = next((f"warning:{w.category.__name__}" for w in caught), "")
     return out, warned
+
+
+def cranky(data):
+    """A user analysis that sometimes raises (first outcome above z_0.95) and sometimes warns (fit trouble)."""
+    y = np.asarray(data["y"])
+    if y[0] > 1.6448536269514722:
+        raise ValueError("high")
+    if y[1] > 1.0:
+        warnings.warn("wobbly fit", RuntimeWarning)
+    d = y[data["arm"] == 1].mean() - y[data["arm"] == 0].mean()
+    return {"pvalue": float(min(1.0, abs(d))), "estimate": float(d), "se": 0.4, "ci_low": d - 0.8,
+            "ci_high": d + 0.8}

@@ -9,27 +9,15 @@ difference in power (Agresti 2013, Categorical Data Analysis, section 11.1.1).
 from __future__ import annotations
 
 import math
-import warnings
 
 import numpy as np
 import pytest
 from statsmodels.stats.proportion import proportion_confint
 
 import simpower as sp
+from _helpers import cranky
 from simpower.engine import runner
 from simpower.summaries import AnalysisSummary, EstimatePerformance, RejectionRate
-
-
-def cranky(data):
-    """A user analysis that sometimes raises and sometimes warns (fit trouble)."""
-    y = np.asarray(data["y"])
-    if y[0] > 1.6448536269514722:
-        raise ValueError("high")
-    if y[1] > 1.0:
-        warnings.warn("wobbly fit", RuntimeWarning)
-    d = y[data["arm"] == 1].mean() - y[data["arm"] == 0].mean()
-    return {"pvalue": float(min(1.0, abs(d))), "estimate": float(d), "se": 0.4, "ci_low": d - 0.8,
-            "ci_high": d + 0.8}
 
 
 SCENARIO = sp.Scenario(sp.NormalTwoArm(n=10, effect=0.4),
