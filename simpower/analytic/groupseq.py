@@ -429,7 +429,7 @@ def boundaries(looks, alpha=0.025, sides=1, spending="obf", param=None, futility
     (DeMets & Lan 1994, Stat Med 13:1341, Table I; from memory):
 
     >>> from simpower.analytic import boundaries
-    >>> [round(b, 3) for b in boundaries(5, 0.05, sides=2).efficacy]
+    >>> [round(float(b), 3) for b in boundaries(5, 0.05, sides=2).efficacy]
     [4.877, 3.357, 2.68, 2.29, 2.031]
     """
     t = _looks(looks)
