@@ -18,6 +18,7 @@ import pytest
 from scipy import stats
 
 from simpower.analytic import (
+    BetaSpending,
     Boundaries,
     boundaries,
     classical,
@@ -240,6 +241,35 @@ def test_binding_and_non_binding_futility():
     assert abs(cr.upper.sum() + cr.lower.sum() - 1.0) < 1e-9
 
 
+def mvn_reject_with_futility(b: Boundaries, drift):
+    """P(reject) = sum_j P(a_i < Z_i < b_i for i < j, Z_j >= b_j), by scipy (one-sided designs)."""
+    t = b.fractions
+    return sum(mvn_box(t[:j + 1], np.concatenate([b.futility[:j], [b.efficacy[j]]]),
+                       np.concatenate([b.efficacy[:j], [np.inf]]), drift, seed=j) for j in range(len(t)))
+
+
+@pytest.mark.parametrize("binding", [False, True])
+@pytest.mark.parametrize("kind", ["obf", "pocock"])
+def test_beta_spending_futility(kind, binding):
+    # beta-spending (Pampallona, Tsiatis & Kim 2001; Jennison & Turnbull 2000, sec. 7.3; from
+    # memory): at the design drift the futility exits spend beta as the function says, and since
+    # a_K = b_K the power there is 1 - beta; checked by scipy's box probabilities
+    looks = [0.3, 0.6, 1.0]
+    b = boundaries(looks, 0.025, spending="obf", futility=BetaSpending(kind, 0.1), binding=binding)
+    assert b.futility[-1] == b.efficacy[-1] and np.all(b.futility[:-1] < b.efficacy[:-1])
+    cr = crossing_probabilities(b, b.drift)
+    target = np.diff(np.concatenate([[0.0], spending(kind, np.array(looks), 0.1)]))
+    assert np.max(np.abs(cr.lower - target)) < 1e-9
+    assert abs(mvn_reject_with_futility(b, b.drift) - 0.9) < MVN_TOL
+    # type I error: exactly alpha if binding, below it if not (the rule is then optional)
+    h0 = mvn_reject_with_futility(b, 0.0)
+    assert abs(h0 - 0.025) < MVN_TOL if binding else h0 < 0.025 - 1e-4
+    # the design drift is the one drift_for_power finds, and R is relative to z_{.975} + z_{.9}
+    assert abs(drift_for_power(b, 0.9) - b.drift) < 1e-7
+    fixed = stats.norm.ppf(0.975) + stats.norm.ppf(0.9)
+    assert abs(inflation_factor(b, 0.9) - (b.drift / fixed) ** 2) < 1e-7
+
+
 # --- direct simulation of Brownian motion ---------------------------------------------------------
 
 
@@ -304,6 +334,9 @@ def test_expected_information_limits():
     (lambda: boundaries(3, 0.05, sides=2, futility=[0.0, 0.0]), "`futility`"),
     (lambda: boundaries(3, 0.025, binding=True), "`binding`"),
     (lambda: classical("haybittle", 3, 0.025), "`kind`"),
+    (lambda: boundaries(3, 0.025, futility=BetaSpending("obf", 0.99)), "`futility.beta`"),
+    (lambda: boundaries(3, 0.025, futility=BetaSpending("power")), "`futility.param`"),
+    (lambda: boundaries(3, 0.025, futility=BetaSpending("linear")), "`futility.kind`"),
     (lambda: spending("power", 0.5, 0.025, -1.0), "`param`"),
     (lambda: spending("obf", 1.5, 0.025), "`t`"),
     (lambda: inflation_factor("design", 0.8), "`bounds`"),

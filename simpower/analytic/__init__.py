@@ -24,6 +24,7 @@ from .design import ceil_n, clusters_per_arm, design_effect, inflate_for_dropout
 from .equivalence import tost_power, welch_tost_power
 from .freedman import freedman_events, freedman_power
 from .groupseq import (
+    BetaSpending,
     Boundaries,
     Crossing,
     boundaries,
@@ -50,7 +51,7 @@ __all__ = [
     "ceil_n", "clusters_per_arm", "design_effect", "inflate_for_dropout",
     "corr_effect", "corr_n", "corr_power",
     "freedman_events", "freedman_power",
-    "Boundaries", "Crossing", "boundaries", "classical", "crossing_probabilities", "drift_for_power",
+    "BetaSpending", "Boundaries", "Crossing", "boundaries", "classical", "crossing_probabilities", "drift_for_power",
     "expected_information", "inflation_factor", "naive_alpha", "spending",
     "noether_effect", "noether_n", "noether_power", "superiority_normal",
     "prop2_effect", "prop2_n", "prop2_power",

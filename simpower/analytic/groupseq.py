@@ -295,6 +295,9 @@ class Boundaries:
         Total type I error, 1 or 2, how the boundaries were made (e.g.
         ``"spending obf"``, ``"classical pocock"``), and whether the futility
         rule is binding.
+    drift : float or None
+        For a beta-spending futility rule, the design drift ``theta sqrt(I_max)``
+        at which the power is ``1 - beta``.
     """
 
     fractions: np.ndarray
@@ -305,6 +308,7 @@ class Boundaries:
     sides: int
     method: str
     binding: bool = False
+    drift: float | None = None
 
     @property
     def spent(self) -> np.ndarray:
@@ -410,9 +414,10 @@ def boundaries(looks, alpha=0.025, sides=1, spending="obf", param=None, futility
         The spending function; see :func:`spending`.
     param : float, optional
         ``rho`` for "power", ``gamma`` for "gamma".
-    futility : sequence of float, optional
+    futility : sequence of float or BetaSpending, optional
         One-sided only: a z value per interim look (K - 1 values, ``-inf`` for
-        none); the trial stops for futility when ``Z_k <= futility[k]``.
+        none), or a :class:`BetaSpending` rule; the trial stops for futility
+        when ``Z_k <= futility[k]``.
     binding : bool
         If True the efficacy boundaries are computed on the paths the futility
         rule lets through (lower boundaries, alpha exact only if the rule is
@@ -437,26 +442,26 @@ def boundaries(looks, alpha=0.025, sides=1, spending="obf", param=None, futility
     sides = _sides(sides)
     kind = c.choice("spending", spending, SPENDING)
     p = _param(kind, param)
-    lower = _futility(futility, t, sides)
     binding = c.flag("binding", binding)
-    if binding and lower is None:
+    if futility is None and binding:
         raise ParameterError("`binding` must be False without a `futility` boundary.")
     tail = a / sides  # two-sided: each tail spends alpha/2 by the function taken at alpha/2
     cum = _spend(kind, np.concatenate([[0.0], t]), tail, p)
     cum[-1] = tail
-    increments = sides * np.diff(cum)
-    walk = _Walk()
-    eff = np.empty(len(t))
-    crossing = np.empty(len(t))
-    for k in range(len(t)):
-        def cross(b, k=k):
-            out = walk.above(b, t[k], 0.0)
-            return out + walk.below(-b, t[k], 0.0) if sides == 2 else out
-        eff[k] = _decreasing_root(cross, increments[k], 0.0 if sides == 2 else -_BIG)
-        crossing[k] = cross(eff[k])
-        if k < len(t) - 1:
-            lo = -eff[k] if sides == 2 else (lower[k] if binding else -_BIG)
-            walk.step(lo, eff[k], t[k], 0.0, t[k + 1])
+    alpha_incr = sides * np.diff(cum)
+    method = f"spending {kind}"
+    if isinstance(futility, BetaSpending):
+        if sides == 2:
+            raise ParameterError("`futility` must be None for sides=2 (only one-sided designs take a "
+                                 "futility boundary here).")
+        beta_incr = futility._increments(t, a)
+        drift = _beta_drift(t, alpha_incr, beta_incr, binding, a, futility.beta)
+        eff, low, crossing = _design(t, alpha_incr, sides, binding, beta_incr=beta_incr, drift=drift)
+        low[-1] = eff[-1]
+        return Boundaries(t, eff, low, crossing, a, sides, f"{method}; futility beta-spending {futility.kind}",
+                          binding, drift)
+    lower = _futility(futility, t, sides)
+    eff, _, crossing = _design(t, alpha_incr, sides, binding, fixed_lower=lower)
     fut = None
     if lower is not None:
         if np.any(lower >= eff[:-1]):
@@ -464,7 +469,99 @@ def boundaries(looks, alpha=0.025, sides=1, spending="obf", param=None, futility
             raise ParameterError(f"`futility` must lie below the efficacy boundary; at look {k + 1} "
                                  f"{lower[k]:g} >= {eff[k]:.4g}.")
         fut = np.concatenate([lower, eff[-1:]])
-    return Boundaries(t, eff, fut, crossing, a, sides, f"spending {kind}", binding)
+    return Boundaries(t, eff, fut, crossing, a, sides, method, binding)
+
+
+def _increasing_root(fun, target: float) -> float:
+    """The ``a`` in [-_BIG, _BIG] with ``fun(a) = target`` for ``fun`` increasing (clamped at the ends)."""
+    if fun(-_BIG) >= target:
+        return -_BIG
+    if fun(_BIG) <= target:
+        return _BIG
+    return optimize.brentq(lambda x: fun(x) - target, -_BIG, _BIG, xtol=1e-13,
+                           rtol=4 * np.finfo(float).eps, maxiter=500)
+
+
+def _design(t, alpha_incr, sides, binding, fixed_lower=None, beta_incr=None, drift=0.0):
+    """Efficacy boundaries (H0 walk) and, with ``beta_incr``, beta-spending futility ones (walk at ``drift``).
+
+    Returns the efficacy z, the futility z (the final entry unclamped, so the
+    caller can compare it with the final efficacy value) and the H0 crossings.
+    """
+    k_max = len(t)
+    h0 = _Walk()
+    h1 = _Walk() if beta_incr is not None else None
+    eff = np.empty(k_max)
+    low = np.full(k_max, -_BIG)
+    crossing = np.empty(k_max)
+    for k in range(k_max):
+        def cross(b, k=k):
+            out = h0.above(b, t[k], 0.0)
+            return out + h0.below(-b, t[k], 0.0) if sides == 2 else out
+        eff[k] = _decreasing_root(cross, alpha_incr[k], 0.0 if sides == 2 else -_BIG)
+        crossing[k] = cross(eff[k])
+        if h1 is not None:
+            low[k] = _increasing_root(lambda a, k=k: h1.below(a, t[k], drift), beta_incr[k])
+            if k < k_max - 1:
+                low[k] = min(low[k], eff[k])
+        elif fixed_lower is not None and k < k_max - 1:
+            low[k] = fixed_lower[k]
+        if k < k_max - 1:
+            lo0 = -eff[k] if sides == 2 else (low[k] if binding else -_BIG)
+            h0.step(lo0, eff[k], t[k], 0.0, t[k + 1])
+            if h1 is not None:
+                h1.step(low[k], eff[k], t[k], drift, t[k + 1])
+    return eff, low, crossing
+
+
+def _beta_drift(t, alpha_incr, beta_incr, binding, alpha, beta) -> float:
+    """The drift at which beta-spending futility meets the efficacy boundary at the final look.
+
+    There the design has power exactly ``1 - beta``: every path that does not
+    stop for futility rejects H0.
+    """
+    def gap(drift):
+        eff, low, _ = _design(t, alpha_incr, 1, binding, beta_incr=beta_incr, drift=drift)
+        return low[-1] - eff[-1]
+
+    fixed = float(c.critical_z(alpha, "greater") + c.critical_z(beta, "greater"))
+    lo, hi = 0.5 * fixed, fixed
+    for _ in range(60):
+        if gap(hi) > 0:
+            break
+        lo, hi = hi, 1.5 * hi
+    return optimize.brentq(gap, lo, hi, xtol=1e-12, rtol=4 * np.finfo(float).eps, maxiter=200)
+
+
+@dataclass(frozen=True)
+class BetaSpending:
+    """A futility rule from a beta-spending function (one-sided designs).
+
+    The type II error ``beta`` is spent over the looks like alpha (same
+    ``kind`` and ``param`` as :func:`spending`): at look k the futility
+    boundary ``a_k`` is set so that the probability of stopping for futility
+    at look k under the design drift equals ``beta(t_k) - beta(t_{k-1})``,
+    and the design drift is found so that ``a_K = b_K``, which gives power
+    ``1 - beta`` at that drift (Pampallona, Tsiatis & Kim 2001, Stat Med
+    20:1077; Jennison & Turnbull 2000, sec. 7.3; from memory).
+    """
+
+    kind: str = "obf"
+    beta: float = 0.1
+    param: float | None = None
+
+    def _increments(self, t: np.ndarray, alpha: float) -> np.ndarray:
+        kind = c.choice("futility.kind", self.kind, SPENDING)
+        if not c.is_scalar(self.beta):
+            raise ParameterError(f"`futility.beta` must be a single number; got {self.beta!r}.")
+        beta = float(c.real("futility.beta", self.beta, 0.0, 1.0 - alpha, low_open=True, high_open=True))
+        try:
+            p = _param(kind, self.param)
+        except ParameterError as err:
+            raise ParameterError("`futility." + str(err)[1:]) from None
+        cum = _spend(kind, np.concatenate([[0.0], t]), beta, p)
+        cum[-1] = beta
+        return np.diff(cum)
 
 
 def classical(kind, looks, alpha=0.025, sides=1):
