@@ -320,6 +320,7 @@ class Boundaries:
         """Nominal p-value thresholds per look: ``1 - Phi(b_k)`` (one-sided), twice that (two-sided)."""
         return self.sides * special.ndtr(-self.efficacy)
 
+    @property
     def lower(self) -> np.ndarray:
         """The z boundary below which the trial stops: futility, lower efficacy, or -inf."""
         if self.sides == 2:
@@ -330,7 +331,7 @@ class Boundaries:
 
     def rows(self) -> list[dict]:
         """One dict per look (fraction, boundaries, nominal p, crossing, spent) for a table."""
-        lower = self.lower()
+        lower = self.lower
         return [{"look": k + 1, "fraction": float(self.fractions[k]), "efficacy_z": float(self.efficacy[k]),
                  "lower_z": float(lower[k]), "nominal_p": float(self.nominal[k]),
                  "crossing_h0": float(self.crossing[k]), "spent": float(self.spent[k])}
@@ -441,6 +442,8 @@ def boundaries(looks, alpha=0.025, sides=1, spending="obf", param=None, futility
     a = _scalar_alpha(alpha)
     sides = _sides(sides)
     kind = c.choice("spending", spending, SPENDING)
+    if not c.is_scalar(param):
+        raise ParameterError(f"`param` must be a single number; got {param!r}.")
     p = _param(kind, param)
     binding = c.flag("binding", binding)
     if futility is None and binding:
@@ -555,6 +558,8 @@ class BetaSpending:
         if not c.is_scalar(self.beta):
             raise ParameterError(f"`futility.beta` must be a single number; got {self.beta!r}.")
         beta = float(c.real("futility.beta", self.beta, 0.0, 1.0 - alpha, low_open=True, high_open=True))
+        if not c.is_scalar(self.param):
+            raise ParameterError(f"`futility.param` must be a single number; got {self.param!r}.")
         try:
             p = _param(kind, self.param)
         except ParameterError as err:
@@ -610,7 +615,7 @@ def _check_bounds(bounds) -> Boundaries:
 
 def _crossing(b: Boundaries, drift: float) -> Crossing:
     upper = np.minimum(b.efficacy, _BIG)
-    lower = np.maximum(b.lower(), -_BIG)
+    lower = np.maximum(b.lower, -_BIG)
     up, down = _exits(b.fractions, upper, lower, drift)
     return Crossing(b.fractions, drift, up, down, b.sides)
 
