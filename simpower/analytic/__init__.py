@@ -9,6 +9,10 @@ treatment / control size. ``alternative`` is "two-sided", "greater" (H1:
 effect > 0) or "less". Two-sided power counts both rejection tails, and the
 ``*_n`` / ``*_effect`` functions invert the power functions exactly.
 
+Group-sequential designs (boundaries from spending functions or the classical
+Pocock / O'Brien-Fleming shapes, exit probabilities, inflation factors,
+expected information) live in :mod:`.groupseq`.
+
 See ``docs/analytic.md`` for formulas and sources.
 """
 
@@ -19,6 +23,19 @@ from .correlation import corr_effect, corr_n, corr_power
 from .design import ceil_n, clusters_per_arm, design_effect, inflate_for_dropout
 from .equivalence import tost_power, welch_tost_power
 from .freedman import freedman_events, freedman_power
+from .groupseq import (
+    BetaSpending,
+    Boundaries,
+    Crossing,
+    boundaries,
+    classical,
+    crossing_probabilities,
+    drift_for_power,
+    expected_information,
+    inflation_factor,
+    naive_alpha,
+    spending,
+)
 from .noether import noether_effect, noether_n, noether_power, superiority_normal
 from .normal import z_critical, z_effect, z_n, z_power
 from .proportions import prop2_effect, prop2_n, prop2_power
@@ -34,6 +51,8 @@ __all__ = [
     "ceil_n", "clusters_per_arm", "design_effect", "inflate_for_dropout",
     "corr_effect", "corr_n", "corr_power",
     "freedman_events", "freedman_power",
+    "BetaSpending", "Boundaries", "Crossing", "boundaries", "classical", "crossing_probabilities", "drift_for_power",
+    "expected_information", "inflation_factor", "naive_alpha", "spending",
     "noether_effect", "noether_n", "noether_power", "superiority_normal",
     "prop2_effect", "prop2_n", "prop2_power",
     "rate_ratio_effect", "rate_ratio_n", "rate_ratio_power",
