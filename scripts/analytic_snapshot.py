@@ -133,7 +133,11 @@ def _pair(sp, proc, an, alpha):
 
 def snapshot() -> dict:
     import simpower as sp
-    from simpower import validation
+
+    try:
+        from simpower import validation
+    except ImportError:  # the battery's later home
+        from simpower.planning import battery as validation
     from simpower.registry import build
     from simpower.scenario_files import load
 
