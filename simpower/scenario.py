@@ -166,7 +166,12 @@ class Scenario:
         return targets
 
     def analytic_power(self) -> dict[str, float | None]:
-        """Closed-form power of each analysis where the analytic core covers the case."""
+        """Closed-form power of each analysis where the analytic core covers the case.
+
+        Each analysis's :meth:`~simpower.analyses.base.Analysis.analytic_power`, which looks
+        (analysis, the process's facts) up in :data:`simpower.crosscheck.TABLE`; None where no
+        entry covers the pair or the closed form fails.
+        """
         out = {}
         for name, a in self.analyses.items():
             try:

@@ -18,6 +18,7 @@ import pytest
 from scipy import optimize, stats
 
 import simpower as sp
+from simpower.facts import NormalFacts
 from simpower.processes.arms import MultiArm, TwoArm, copula_correlation, latent_correlation
 from simpower.processes.missing import MAR, MCAR
 from simpower.processes.outcomes import Fleishman, Gamma, Lognormal, Normal, ScipyOutcome, StudentT
@@ -209,12 +210,13 @@ def test_engine_with_mcar_dropout_keeps_type_one_error():
     assert abs(s["power"] - 0.05) <= Z * math.sqrt(0.05 * 0.95 / 1000)
 
 
-def test_normal_case_only_for_the_analytic_cases():
-    nc = TwoArm(n=20, ratio=2.0, outcome=Normal(sd=2.0), effect=0.5, effect_type="d", sd_ratio=1.5).normal_case()
-    assert nc == {"design": "two-sample", "effect": 1.0, "n": 20, "ratio": 2.0, "sd0": 2.0, "sd1": 3.0, "sd": None}
-    assert TwoArm(n=20, outcome=Lognormal(median=1.0, cv=0.5)).normal_case() is None
-    assert TwoArm(n=20, baseline_corr=0.5).normal_case() is None
-    assert TwoArm(n=20, missing=MCAR(rate=0.1)).normal_case() is None
+def test_normal_facts_only_for_the_analytic_cases():
+    facts = TwoArm(n=20, ratio=2.0, outcome=Normal(sd=2.0), effect=0.5, effect_type="d", sd_ratio=1.5).facts()
+    assert facts == (NormalFacts("two-sample", effect=1.0, n=20, sd0=2.0, sd1=3.0, ratio=2.0),)
+    assert facts[0].sd is None  # unequal SDs: no common SD
+    assert TwoArm(n=20, outcome=Lognormal(median=1.0, cv=0.5)).facts() == ()
+    assert TwoArm(n=20, baseline_corr=0.5).facts() == ()
+    assert TwoArm(n=20, missing=MCAR(rate=0.1)).facts() == ()
 
 
 def test_spec_pickle_and_scenario_file_round_trips():

@@ -39,7 +39,7 @@ def test_trial_with_arms_draws_exactly_what_two_arm_draws(kw):
     for key in b.per_rep:
         np.testing.assert_array_equal(a.per_rep[key], b.per_rep[key])
     np.testing.assert_array_equal(a["arm"], b["arm"])
-    assert composed.true_effect() == old.true_effect() and composed.normal_case() == old.normal_case()
+    assert composed.true_effect() == old.true_effect() and composed.facts() == old.facts()
 
 
 def _mean_squares(y, cluster, n_clusters, m):

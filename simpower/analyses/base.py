@@ -23,6 +23,7 @@ from typing import Any
 
 import numpy as np
 
+from .. import crosscheck
 from .._validation import Choice, Real
 from ..components import Component
 
@@ -300,14 +301,24 @@ class Analysis(Component):
             return True
         return self.find_layout(batch) is not None
 
-    #: whether :meth:`analytic_power` is exact (the cross-check flag then means something is wrong)
-    #: or an approximation (Welch's Satterthwaite df, normal approximations, Schoenfeld): then a
-    #: distance beyond 3 MCSE says how far the approximation is off, and is not flagged
-    analytic_exact: bool = True
+    @property
+    def analytic_exact(self) -> bool:
+        """Whether :meth:`analytic_power` is exact (the cross-check flag then means something is wrong)
+        or an approximation (Welch's Satterthwaite df, normal approximations, Schoenfeld): then a
+        distance beyond 3 MCSE says how far the approximation is off, and is not flagged.
+
+        Read from the cross-check table (:mod:`simpower.crosscheck`); a subclass that
+        overrides :meth:`analytic_power` may set ``analytic_exact = False`` as a class attribute.
+        """
+        return crosscheck.is_exact(self)
 
     def analytic_power(self, process, alpha: float) -> float | None:
-        """Closed-form power of this analysis for ``process``, where the analytic core covers it."""
-        return None
+        """Closed-form power of this analysis for ``process``, where the analytic core covers it.
+
+        Looked up in :data:`simpower.crosscheck.TABLE` by this analysis's name and the
+        process's :meth:`~simpower.processes.base.Process.facts`; None when no entry covers them.
+        """
+        return crosscheck.power(self, process, alpha)
 
     #: parameters that hold the estimand's value under a point H0 (t-tests' ``null_mean``, the rank,
     #: permutation, bootstrap and regression analyses' ``null_value``) with the value meaning "no effect"

@@ -19,7 +19,6 @@ import warnings
 import numpy as np
 from scipy import special, stats
 
-from .. import analytic
 from .._validation import Bool
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, result_from_fields, rowwise
 from .numeric import p_from_z, wald
@@ -115,7 +114,6 @@ class TwoProportions(_Binary):
     """
 
     name = "two_proportions"
-    analytic_exact = False  # the closed form is an approximation
     estimand_label = "risk difference"
     null_hypothesis = "the event risks in the two arms are equal (p1 = p0)"
     params = {"alternative": ALTERNATIVE, "continuity": Bool(), "ci_level": CI_LEVEL}
@@ -133,13 +131,6 @@ class TwoProportions(_Binary):
     def batch(self, batch):
         out = self._out(*batch_two_by_two(batch))
         return BatchResult(**{k: v for k, v in out.items() if k != "statistic"})
-
-    def analytic_power(self, process, alpha):
-        facts = getattr(process, "binary_case", lambda: None)()
-        if facts is None:
-            return None
-        return analytic.prop2_power(facts["p0"], facts["p1"], facts["n"], ratio=facts["ratio"], alpha=alpha,
-                                    alternative=self.alternative, continuity=self.continuity)
 
 
 # -- chi-square ----------------------------------------------------------------

@@ -183,25 +183,6 @@ class ClusterMeansT(Analysis):
                                             "a cluster has members in both arms")
         return out
 
-    # -- closed form ------------------------------------------------------------
-    def analytic_power(self, process, alpha):
-        """Exact power for equal clusters under cluster randomisation without missing data.
-
-        The cluster means are then i.i.d. normal with variance
-        ``sigma_b^2 + sigma_w^2 / m`` in each arm, so Student's t-test on them
-        has noncentral-t power with df = 2k - 2 (Donner & Klar 2000, ch. 6).
-        """
-        from .. import analytic
-
-        if getattr(process, "name", None) != "cluster_trial" or not process.equal_sizes:
-            return None
-        if process.randomise != "cluster" or process.missing is not None:
-            return None
-        m = int(process.cluster_size)
-        sd_means = math.sqrt(process.between_sd**2 + process.within_sd**2 / m)
-        return analytic.t_power(process.effect, process.clusters, sd=sd_means, alpha=alpha,
-                                alternative=self.alternative, design="two-sample")
-
 
 def _masked_mean_ss(x, mask):
     k = mask.sum(axis=1)

@@ -14,7 +14,6 @@ import math
 import numpy as np
 from scipy import stats
 
-from .. import analytic
 from .._validation import Bool, Real
 from ..errors import ParameterError
 from .base import CI_LEVEL, Analysis, BatchResult, NullBoundary, TestResult
@@ -116,27 +115,6 @@ class TOST(Analysis):
         """The upper end of the equivalence range (the lower one is its mirror image)."""
         return NullBoundary(float(self.bounds[1]), "upper equivalence margin")
 
-    @property
-    def analytic_exact(self) -> bool:
-        return bool(self.equal_var)  # the Welch variant's closed form is an approximation
-
-    def analytic_power(self, process, alpha):
-        """Power of the TOST for normal outcomes: exact (pooled, one sample) or Welch-Satterthwaite."""
-        nc = process.normal_case()
-        if nc is None or nc["design"] not in ("one-sample", "two-sample"):
-            return None
-        low, high = self.bounds
-        if nc["design"] == "one-sample":
-            return analytic.tost_power(nc["effect"], nc["n"], low=low, high=high, sd=nc["sd"], alpha=alpha,
-                                       design="one-sample")
-        if self.equal_var:
-            if nc.get("sd") is None:
-                return None
-            return analytic.tost_power(nc["effect"], nc["n"], low=low, high=high, sd=nc["sd"], alpha=alpha,
-                                       design="two-sample", ratio=nc["ratio"])
-        return analytic.welch_tost_power(nc["effect"], nc["n"], low=low, high=high, sd0=nc["sd0"], sd1=nc["sd1"],
-                                         ratio=nc["ratio"], alpha=alpha)
-
     def __call__(self, data):
         low, high = self.bounds
         samples, est, se, df = _t_parts(data, self.equal_var)
@@ -206,24 +184,3 @@ class NonInferiority(Analysis):
             lo, hi = _ci(est, se, df, self.ci_level)
             return BatchResult(pvalue=p_from_t((est - value) / se, df, alt), estimate=est, se=se,
                                ci_low=lo, ci_high=hi)
-
-    @property
-    def analytic_exact(self) -> bool:
-        return bool(self.equal_var)  # the Welch variant's closed form is an approximation
-
-    def analytic_power(self, process, alpha):
-        """Power of the shifted one-sided t-test (pooled) or Welch test, normal outcomes."""
-        nc = process.normal_case()
-        if nc is None or nc["design"] not in ("one-sample", "two-sample"):
-            return None
-        value, alt = self._null
-        shift = nc["effect"] - value
-        if nc["design"] == "one-sample":
-            return analytic.t_power(shift, nc["n"], sd=nc["sd"], alpha=alpha, alternative=alt, design="one-sample")
-        if self.equal_var:
-            if nc.get("sd") is None:
-                return None
-            return analytic.t_power(shift, nc["n"], sd=nc["sd"], alpha=alpha, alternative=alt,
-                                    design="two-sample", ratio=nc["ratio"])
-        return analytic.welch_power(shift, nc["n"], sd0=nc["sd0"], sd1=nc["sd1"], ratio=nc["ratio"],
-                                    alpha=alpha, alternative=alt)

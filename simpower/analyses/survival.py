@@ -22,7 +22,6 @@ import warnings
 import numpy as np
 from scipy import special
 
-from .. import analytic
 from .._validation import Choice
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
 from .numeric import p_from_z, wald
@@ -119,7 +118,6 @@ class LogRank(Analysis):
     """
 
     name = "logrank"
-    analytic_exact = False  # the closed form is an approximation
     estimand_label = "log hazard ratio"
     null_hypothesis = "the survival functions of the two arms are equal"
     params = {"alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
@@ -160,14 +158,6 @@ class LogRank(Analysis):
         for s in range(0, batch.size, step):
             u[s:s + step], v[s:s + step] = batch_logrank_terms(time[s:s + step], event[s:s + step], arm)
         return BatchResult(**{k: x for k, x in self._out(u, v).items() if k != "statistic"})
-
-    def analytic_power(self, process, alpha):
-        expected = getattr(process, "expected_events", None)
-        hr = getattr(process, "hazard_ratio", None)
-        if expected is None or hr is None or getattr(process, "n1", None) is None:
-            return None
-        return analytic.schoenfeld_power(hr, expected(), alpha=alpha, alternative=self.alternative,
-                                         ratio=process.n1 / process.n)
 
 
 class Cox(Analysis):

@@ -19,7 +19,6 @@ import math
 import numpy as np
 from scipy import stats
 
-from .. import analytic
 from .._validation import Real
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
 from .numeric import mean_var, p_from_t, p_from_z, paired_differences, split_arms, two_sample_se_df
@@ -102,13 +101,6 @@ class TTest(_TBase):
             se, df = two_sample_se_df(n0, n1, v0, v1, equal_var=True)
             return self._result(m1 - m0, se, df)
 
-    def analytic_power(self, process, alpha):
-        nc = process.normal_case()
-        if nc is None or nc.get("sd") is None or nc["design"] == "paired":
-            return None
-        return analytic.t_power(nc["effect"] - self.null_mean, nc["n"], sd=nc["sd"], alpha=alpha,
-                                alternative=self.alternative, design=nc["design"], ratio=nc["ratio"])
-
 
 class WelchT(_TBase):
     """Welch's t-test for two arms (unequal variances, Satterthwaite df).
@@ -117,7 +109,6 @@ class WelchT(_TBase):
     """
 
     name = "welch_t"
-    analytic_exact = False  # the closed form is an approximation
     null_hypothesis = "the two arm means differ by null_mean (variances may differ)"
 
     def __call__(self, data):
@@ -142,13 +133,6 @@ class WelchT(_TBase):
             m1, v1 = mean_var(y1)
             se, df = two_sample_se_df(n0, n1, v0, v1, equal_var=False)
             return self._result(m1 - m0, se, df)
-
-    def analytic_power(self, process, alpha):
-        nc = process.normal_case()
-        if nc is None or nc["design"] != "two-sample":
-            return None
-        return analytic.welch_power(nc["effect"] - self.null_mean, nc["n"], sd0=nc["sd0"], sd1=nc["sd1"],
-                                    ratio=nc["ratio"], alpha=alpha, alternative=self.alternative)
 
 
 class PairedT(_TBase):
@@ -180,13 +164,6 @@ class PairedT(_TBase):
         with np.errstate(all="ignore"):
             m, v = mean_var(d)
             return self._result(m, np.sqrt(v / d.shape[1]), d.shape[1] - 1)
-
-    def analytic_power(self, process, alpha):
-        nc = process.normal_case()
-        if nc is None or nc["design"] != "paired":
-            return None
-        return analytic.t_power(nc["effect"] - self.null_mean, nc["n"], sd=nc["sd"], alpha=alpha,
-                                alternative=self.alternative, design="paired")
 
 
 class ZTest(Analysis):
@@ -236,21 +213,3 @@ class ZTest(Analysis):
         se = math.sqrt(self.sd**2 / y0.shape[1] + self._sd1() ** 2 / y1.shape[1])
         est = y1.mean(axis=1) - y0.mean(axis=1)
         return self._out(est, np.full(est.shape, se))
-
-    def analytic_power(self, process, alpha):
-        nc = process.normal_case()
-        if nc is None or nc["design"] == "paired":
-            return None
-        if nc["design"] == "one-sample":
-            if not math.isclose(nc["sd"], self.sd):
-                return None
-            return analytic.z_power(nc["effect"] - self.null_mean, nc["n"], sd=self.sd, alpha=alpha,
-                                    alternative=self.alternative, design="one-sample")
-        if not (math.isclose(nc["sd0"], self.sd) and math.isclose(nc["sd1"], self._sd1())):
-            return None
-        if nc.get("sd") is None:
-            return None
-        return analytic.z_power(nc["effect"] - self.null_mean, nc["n"], sd=self.sd, alpha=alpha,
-                                alternative=self.alternative, design="two-sample", ratio=nc["ratio"])
-
-

@@ -32,6 +32,7 @@ from scipy import optimize
 from .._validation import Anything, Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
+from ..facts import NormalFacts
 from .base import Batch, Process, check_missing_columns
 from .design import TwoArms, Vocabulary, apply_missing, arm_defaults, arm_params
 from .outcomes import Described, Normal
@@ -294,12 +295,12 @@ class TwoArm(TwoArms, Process):
         parts.append(f"estimand: treatment minus control difference in mean outcome = {self.true_effect():.4g}")
         return "; ".join(parts)
 
-    def normal_case(self):
+    def facts(self):
         if not isinstance(self.outcome, Normal) or self.missing is not None or self.baseline_corr is not None:
-            return None
+            return ()
         sd0 = self.outcome.sd
-        return {"design": "two-sample", "effect": self.true_effect(), "n": self.n, "ratio": self.n1 / self.n,
-                "sd0": sd0, "sd1": sd0 * self.sd_ratio, "sd": sd0 if self.sd_ratio == 1 else None}
+        return (NormalFacts("two-sample", effect=self.true_effect(), n=self.n, sd0=sd0, sd1=sd0 * self.sd_ratio,
+                            ratio=self.n1 / self.n),)
 
 
 def _numbers(field, value, k=None, positive=False):

@@ -15,12 +15,14 @@ layouts live in :mod:`simpower.batch` (a leaf that analyses import too).
 
 from __future__ import annotations
 
+import warnings
 from typing import Any
 
 import numpy as np
 
 from ..batch import Batch  # noqa: F401 - the container processes build, defined in the leaf module
 from ..components import Component
+from ..facts import NormalFacts
 
 
 class Process(Component):
@@ -72,14 +74,30 @@ class Process(Component):
     def null_value(self) -> float:
         return 0.0
 
+    def facts(self) -> tuple:
+        """What this process draws, as typed facts for the analytic cross-check (:mod:`simpower.facts`).
+
+        A tuple of :class:`~simpower.facts.NormalFacts`, :class:`~simpower.facts.BinaryFacts`,
+        ... (empty when no closed form applies, e.g. with missing outcomes); the table in
+        :mod:`simpower.crosscheck` turns (analysis, facts) into closed-form power. A subclass
+        written against the older :meth:`normal_case` (a dictionary) still gets its facts read
+        from it.
+        """
+        if type(self).normal_case is Process.normal_case:
+            return ()
+        nc = self.normal_case()
+        return (NormalFacts.from_dict(nc),) if nc is not None else ()
+
     def normal_case(self) -> dict[str, Any] | None:
-        """If the analytic core covers this process, the facts it needs; else None.
+        """Deprecated: the :class:`~simpower.facts.NormalFacts` of :meth:`facts` as the older dictionary, or None.
 
         Keys: ``design`` ('one-sample' | 'paired' | 'two-sample'), ``effect``,
-        ``n`` (control arm / pairs / sample), ``ratio``, ``sd`` (or ``sd0`` and
-        ``sd1``).
+        ``n`` (control arm / pairs / sample), ``ratio``, ``sd`` (None when the
+        arms' SDs differ) and, for two arms, ``sd0`` and ``sd1``.
         """
-        return None
+        warnings.warn("Process.normal_case() is deprecated; use facts() (simpower.facts.NormalFacts)",
+                      DeprecationWarning, stacklevel=2)
+        return next((f.as_dict() for f in self.facts() if isinstance(f, NormalFacts)), None)
 
 
 def check_missing_columns(missing, available, owner: str, hint: str = "") -> None:

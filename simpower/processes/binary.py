@@ -21,6 +21,7 @@ import numpy as np
 from .._validation import Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
+from ..facts import BinaryFacts
 from .base import Batch, Process, check_missing_columns
 from .design import TwoArms, apply_missing, arm_defaults, arm_params
 
@@ -69,9 +70,9 @@ class BinaryTwoArm(TwoArms, Process):
     Notes
     -----
     The null scenario (:meth:`null`) sets the given effect to its null value:
-    1 for an odds or risk ratio, 0 for a risk difference. :meth:`normal_case`
-    is None (the t/z analytic case does not apply); :meth:`binary_case` gives
-    the facts the two-proportion normal approximation needs.
+    1 for an odds or risk ratio, 0 for a risk difference. :meth:`facts` gives
+    the risks and arm sizes (:class:`~simpower.facts.BinaryFacts`) the
+    two-proportion normal approximation needs.
 
     Examples
     --------
@@ -142,15 +143,11 @@ class BinaryTwoArm(TwoArms, Process):
             return math.log(p1 / p0)
         return p1 - p0
 
-    def binary_case(self) -> dict | None:
-        """Facts for the two-proportion normal approximation, or None with missing outcomes.
-
-        Keys ``p0``, ``p1``, ``n`` (control arm) and ``ratio`` (realised
-        n1 / n0).
-        """
+    def facts(self):
+        """:class:`~simpower.facts.BinaryFacts` (``ratio`` the realised n1 / n0); none with missing outcomes."""
         if self.missing is not None:
-            return None
-        return {"p0": self.p0, "p1": self.p1, "n": self.n, "ratio": self.n1 / self.n}
+            return ()
+        return (BinaryFacts(p0=self.p0, p1=self.p1, n=self.n, ratio=self.n1 / self.n),)
 
     # -- drawing -----------------------------------------------------------
     def draw_batch(self, rng, size):

@@ -32,6 +32,7 @@ import numpy as np
 from .._validation import Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
+from ..facts import ClusterFacts
 from .base import Batch, Process, check_missing_columns
 from .design import apply_missing
 
@@ -254,6 +255,14 @@ class ClusterTrial(Process):
     @property
     def equal_sizes(self) -> bool:
         return self.cluster_size_cv == 0
+
+    def facts(self):
+        """:class:`~simpower.facts.ClusterFacts`; none with missing outcomes."""
+        if self.missing is not None:
+            return ()
+        return (ClusterFacts(clusters=self.clusters, cluster_size=self.cluster_size,
+                             cluster_size_cv=self.cluster_size_cv, icc=self.icc, effect=self.effect, sd=self.sd,
+                             sd1=self.sd, randomise=self.randomise, slope_sd=self.slope_sd),)
 
     # -- draws ---------------------------------------------------------------
     def draw_batch(self, rng, size):

@@ -42,6 +42,7 @@ import numpy as np
 from .._validation import Choice, Int, Real
 from ..components import Component, Nested
 from ..errors import ParameterError
+from ..facts import ClusterFacts, NormalFacts
 from .arms import EFFECT_TYPE, POSITIVE, _check_missing, _check_outcome_for, _describe_effect, _effect_values
 from .base import Batch, Process
 from .clusters import _within_cluster_arms, draw_clusters, size_law
@@ -225,12 +226,19 @@ class Trial(Process):
                       and self.missing is None)
         return {"location shift"} if pure_shift else set()
 
-    def normal_case(self):
-        if not isinstance(self.design, Arms) or not isinstance(self.outcome, Normal) or self.missing is not None:
-            return None
+    def facts(self):
+        """Normal outcomes without missing data: :class:`NormalFacts` (arms) or :class:`ClusterFacts` (clusters)."""
+        if not isinstance(self.outcome, Normal) or self.missing is not None:
+            return ()
         d, sd0 = self.design, self.outcome.sd
-        return {"design": "two-sample", "effect": self.true_effect(), "n": d.n0, "ratio": d.n1 / d.n0,
-                "sd0": sd0, "sd1": sd0 * self.sd_ratio, "sd": sd0 if self.sd_ratio == 1 else None}
+        if isinstance(d, Arms):
+            return (NormalFacts("two-sample", effect=self.true_effect(), n=d.n0, sd0=sd0, sd1=sd0 * self.sd_ratio,
+                                ratio=d.n1 / d.n0),)
+        if isinstance(d, Clusters):
+            return (ClusterFacts(clusters=d.clusters, cluster_size=d.cluster_size, cluster_size_cv=d.cluster_size_cv,
+                                 icc=d.icc, effect=self.true_effect(), sd=sd0, sd1=sd0 * self.sd_ratio,
+                                 randomise=d.randomise),)
+        return ()
 
     def describe(self):
         parts = [self.design.describe(), f"outcome {self.outcome.describe()}",

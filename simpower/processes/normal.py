@@ -12,6 +12,7 @@ import numpy as np
 
 from .._validation import Int, Real
 from ..components import Nested
+from ..facts import NormalFacts
 from .base import Batch, Process, check_missing_columns
 from .design import TwoArms, apply_missing, arm_defaults, arm_params
 
@@ -57,10 +58,10 @@ class NormalOneSample(Process):
         return (f"one sample of n = {self.n} from a normal distribution with SD {self.sd:g} "
                 f"and mean {self.effect:g} (null mean 0){_missing_text(self.missing)}")
 
-    def normal_case(self):
+    def facts(self):
         if self.missing is not None:
-            return None
-        return {"design": "one-sample", "effect": self.effect, "n": self.n, "sd": self.sd, "ratio": 1.0}
+            return ()
+        return (NormalFacts("one-sample", effect=self.effect, n=self.n, sd0=self.sd, sd1=self.sd),)
 
 
 class NormalPaired(Process):
@@ -104,10 +105,11 @@ class NormalPaired(Process):
                 f"correlation {self.corr:g}; mean difference {self.effect:g} "
                 f"(SD of differences {self.sd_difference:.4g}){_missing_text(self.missing)}")
 
-    def normal_case(self):
+    def facts(self):
         if self.missing is not None:
-            return None
-        return {"design": "paired", "effect": self.effect, "n": self.n, "sd": self.sd_difference, "ratio": 1.0}
+            return ()
+        sd = self.sd_difference
+        return (NormalFacts("paired", effect=self.effect, n=self.n, sd0=sd, sd1=sd),)
 
 
 class NormalTwoArm(TwoArms, Process):
@@ -176,8 +178,8 @@ class NormalTwoArm(TwoArms, Process):
         return (f"{self.arms_text()}, normal outcomes with {sds}; "
                 f"treatment minus control mean difference {self.effect:g}{_missing_text(self.missing)}")
 
-    def normal_case(self):
+    def facts(self):
         if self.missing is not None:
-            return None
-        return {"design": "two-sample", "effect": self.effect, "n": self.n, "ratio": self.n1 / self.n,
-                "sd0": self.sd, "sd1": self.sd1, "sd": self.sd if self.sd_ratio == 1 else None}
+            return ()
+        return (NormalFacts("two-sample", effect=self.effect, n=self.n, sd0=self.sd, sd1=self.sd1,
+                            ratio=self.n1 / self.n),)

@@ -27,6 +27,7 @@ from scipy import integrate
 
 from .._validation import Int, Real
 from ..errors import ParameterError
+from ..facts import SurvivalFacts
 from .base import Batch, Process
 from .design import TwoArms, arm_defaults, arm_params
 
@@ -181,6 +182,11 @@ class SurvivalTwoArm(TwoArms, Process):
     def expected_events(self) -> float:
         """Expected number of observed events, both arms together."""
         return self.n * self.event_probability(0) + self.n1 * self.event_probability(1)
+
+    def facts(self):
+        """:class:`~simpower.facts.SurvivalFacts`: the hazard ratio at the expected number of events."""
+        return (SurvivalFacts(hazard_ratio=self.hazard_ratio, events=self.expected_events(), n=self.n,
+                              ratio=self.n1 / self.n),)
 
     # -- drawing -----------------------------------------------------------
     def draw_batch(self, rng, size):

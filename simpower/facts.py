@@ -1,0 +1,119 @@
+"""Typed facts a process states about itself, for the analytic cross-check.
+
+A process returns a tuple of these from :meth:`Process.facts` (empty when no
+closed form applies, e.g. with missing outcomes); :mod:`simpower.crosscheck`
+maps (analysis, fact type) to a closed form. The facts describe the *process*
+only (what is drawn), never an analysis: whether a closed form covers the pair
+is the table's business.
+
+This module is a leaf (it imports nothing of simpower's), so processes, which
+state the facts, and analyses, which read them through the table, may both
+import it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Literal
+
+NormalDesign = Literal["one-sample", "paired", "two-sample"]
+
+
+@dataclass(frozen=True)
+class NormalFacts:
+    """Normal outcomes, complete: one sample, pairs, or two independent arms.
+
+    ``effect`` is the true mean (one sample), the mean within-pair difference
+    (paired) or treatment minus control mean (two arms), in outcome units.
+    ``n`` counts observations, pairs, or the control arm; ``ratio`` is the
+    treatment arm's size over the control arm's (1 otherwise). ``sd0`` and
+    ``sd1`` are the SDs of the control and treatment arms; for one sample they
+    are both the observations' SD, for pairs both the SD of a within-pair
+    difference.
+    """
+
+    design: NormalDesign
+    effect: float
+    n: int
+    sd0: float
+    sd1: float
+    ratio: float = 1.0
+
+    @property
+    def sd(self) -> float | None:
+        """The common SD, or None when the arms' SDs differ."""
+        return self.sd0 if self.sd0 == self.sd1 else None
+
+    def as_dict(self) -> dict:
+        """The older ``normal_case()`` dictionary (kept for code written against it)."""
+        out = {"design": self.design, "effect": self.effect, "n": self.n, "sd": self.sd, "ratio": self.ratio}
+        if self.design == "two-sample":
+            out.update(sd0=self.sd0, sd1=self.sd1)
+        return out
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "NormalFacts":
+        """Read an older ``normal_case()`` dictionary."""
+        sd0 = d.get("sd0", d.get("sd"))
+        sd1 = d.get("sd1", sd0)
+        return cls(design=d["design"], effect=d["effect"], n=d["n"], sd0=sd0, sd1=sd1, ratio=d.get("ratio", 1.0))
+
+
+@dataclass(frozen=True)
+class BinaryFacts:
+    """A binary outcome in two independent arms, complete: event risks ``p0`` (control) and ``p1``.
+
+    ``n`` is the control arm's size, ``ratio`` the treatment arm's size over it.
+    """
+
+    p0: float
+    p1: float
+    n: int
+    ratio: float = 1.0
+
+
+@dataclass(frozen=True)
+class SurvivalFacts:
+    """Time to event in two arms under proportional hazards.
+
+    ``hazard_ratio`` is treatment over control; ``events`` the expected number
+    of observed events in both arms together; ``n`` the control arm's size and
+    ``ratio`` the treatment arm's size over it.
+    """
+
+    hazard_ratio: float
+    events: float
+    n: int
+    ratio: float = 1.0
+
+
+@dataclass(frozen=True)
+class ClusterFacts:
+    """Normal outcomes in two arms of clusters with a random cluster intercept, complete.
+
+    ``clusters`` per arm of mean size ``cluster_size`` (coefficient of
+    variation ``cluster_size_cv``; 0 for equal clusters); intracluster
+    correlation ``icc``; total SD of an outcome ``sd`` in the control arm and
+    ``sd1`` in the treatment arm (deviations scaled, ICC kept); ``effect`` the
+    treatment minus control mean. ``randomise`` is "cluster" (whole clusters
+    to arms) or "individual" (within clusters), ``slope_sd`` the SD of a
+    cluster-specific treatment effect (0: none).
+    """
+
+    clusters: int
+    cluster_size: float
+    cluster_size_cv: float
+    icc: float
+    effect: float
+    sd: float
+    sd1: float
+    randomise: Literal["cluster", "individual"] = "cluster"
+    slope_sd: float = 0.0
+
+    @property
+    def equal_sizes(self) -> bool:
+        return self.cluster_size_cv == 0
+
+
+#: every fact type, for documentation and tests
+FACT_TYPES = (NormalFacts, BinaryFacts, SurvivalFacts, ClusterFacts)
