@@ -82,7 +82,8 @@ def main(args) -> int:
     seed = seed_of(sf, args)
     table = run_sweep(sf, args, seed, grid, block)
     print(format_table(table))
-    print(f"\nseed: {seed}  chunk size: {table.attrs['chunk_size']}  points: {len(table) // len(sf.scenario.analyses)}")
+    chunk = f"  chunk size: {table.attrs['chunk_size']}" if getattr(args, "verbose", False) else ""
+    print(f"\nseed: {seed}{chunk}  points: {len(table) // len(sf.scenario.analyses)}")
     null = None
     ns = null_settings(sf, args, default_on=False) if (args.null_check or block.get("null_check")) else None
     if ns is not None:
