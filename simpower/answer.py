@@ -437,7 +437,23 @@ def _analysis_words(scenario, name: str) -> str:
     return name
 
 
-def _null_sentence(null, name: str) -> tuple[str, bool]:
+def _null_where(null, res) -> str:
+    """Where a search's null check ran: at the answer or at the scenario as given (by the table's fingerprint)."""
+    fp = getattr(null, "attrs", {}).get("fingerprint")
+    if fp is None or res is None or res.kind != "size" or null.attrs.get("grid"):
+        return ""
+    try:
+        if fp == res.at_answer().fingerprint():
+            return f" at the answer ({res.parameter} = {_num(res.value)})"
+        if fp == res.scenario.fingerprint():
+            given = res.scenario.get_params().get(res.parameter)
+            return f" at the scenario as given ({res.parameter} = {given})"
+    except Exception:  # noqa: BLE001 - the place is extra information
+        pass
+    return ""
+
+
+def _null_sentence(null, name: str, where: str = "") -> tuple[str, bool]:
     if null is None or "analysis" not in null:
         return "", False
     rows = null[null["analysis"] == name]
@@ -448,7 +464,7 @@ def _null_sentence(null, name: str) -> tuple[str, bool]:
     closed = r.get("analytic_type1")
     closed = (f"; closed form {round_to_mcse(float(closed), m)}" if closed is not None and closed == closed else "")
     verdict = "within" if bool(r["meets_bradley"]) else "OUTSIDE"
-    return (f"With the effect set to the null ({r['null_at']}), the simulated type I error was "
+    return (f"With the effect set to the null ({r['null_at']}){where}, the simulated type I error was "
             f"{round_to_mcse(float(r['type1_error']), m)} (MCSE {m:.1g}; {int(r['reps'])} replicates{closed}), "
             f"{verdict} Bradley's liberal criterion of {r['bradley_low']:g} to {r['bradley_high']:g}."), True
 
@@ -528,7 +544,8 @@ def justification(result, *, null=None, scenario=None, target=None, x=None) -> J
                  f"Primary analysis: {_analysis_words(sc, name)}, at a {_sided(sc, name)}significance level "
                  f"of {sc.alpha:g}."] + [f"{k}: {v}." for k, v in block.rows]
         seed = result.attrs.get("seed", "")
-    null_text, used = _null_sentence(null, name)
+    where = _null_where(null, result) if hasattr(result, "estimate_interval") else ""
+    null_text, used = _null_sentence(null, name, where)
     if used:
         refs.append("bradley")
     sentences = first + ([null_text] if null_text else []) + [_dropout_sentence(rec)]
