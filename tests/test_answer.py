@@ -201,3 +201,43 @@ def test_help_is_plain_text(command, capsys):
     out = capsys.readouterr().out
     assert out.startswith("usage: simpower " + command)
     assert "`" not in out and "::" not in out and ":func:" not in out
+
+
+def test_expected_events_of_an_event_time_design():
+    # Lachin & Foulkes (1986), Biometrics 42:507, eq. (2.6) with no loss: uniform accrual over a and
+    # follow-up f after accrual closes, exponential hazard lam -> P(event) = 1 - (e^{-lam f} -
+    # e^{-lam (a + f)}) / (lam a)
+    proc = sp.SurvivalTwoArm(n=100, hazard_ratio=0.6, median=12, follow_up=24, accrual=12)
+    lam0 = math.log(2) / 12
+
+    def p_event(lam, a=12.0, f=24.0):
+        return 1 - (math.exp(-lam * f) - math.exp(-lam * (a + f))) / (lam * a)
+
+    expected = 100 * p_event(lam0) + 100 * p_event(0.6 * lam0)
+    r = recruitment(proc)
+    assert r.events == pytest.approx(expected, rel=1e-6)
+    assert r.participants == 200 and r.completers is None
+    res = sp.run(sp.Scenario(proc, analyses=[sp.LogRank()]), reps=50, seed=1, n_jobs=1)
+    assert dict(answer_block(res).rows)["Expected events"] == str(round(expected))
+    assert f"about {round(expected)} events are expected" in res.justification().paragraph
+
+
+def test_sweep_answer_is_the_smallest_grid_value_reaching_the_target():
+    # noncentral t (scipy): two-sample t, d = 0.5, two-sided 0.05 -> power 0.34 at n = 20 and 0.80 at
+    # n = 64 per arm (Cohen 1988, Table 2.4.1); with 600 replicates (MCSE <= 0.02) a target of 0.6
+    # lies more than 4 MCSE from both, so the answer must be n = 64
+    from scipy import stats
+
+    from simpower.sweep import sweep
+
+    def power(n, d=0.5):
+        df, nc = 2 * n - 2, d * math.sqrt(n / 2)
+        c = stats.t.ppf(0.975, df)
+        return stats.nct.sf(c, df, nc) + stats.nct.cdf(-c, df, nc)
+
+    assert power(20) < 0.6 - 4 * 0.02 and power(64) > 0.6 + 4 * 0.02
+    table = sweep(SC, {"n": [20, 64, 100]}, reps=600, seed=2, n_jobs=1)
+    block = answer_block(table, scenario=SC, target=0.6)
+    assert block.numbers["value"] == 64
+    assert block.answer.startswith("n = 64 (64 participants in the control arm and 64 in the treatment arm")
+    assert any("two arms of 64 (control)" in a for a in block.assumptions)
