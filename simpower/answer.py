@@ -333,8 +333,13 @@ def sweep_block(table, scenario, *, target: float | None = None, x: str | None =
     nums: dict[str, Any] = {"points": len(part)}
     at = scenario
     if target is not None and x is not None and len(part):
-        ok = part[part["power"] >= target].sort_values(x)
-        heading = f"Sweep over {', '.join(grid)}: smallest {x} reaching {_pct(target)} power ({name})"
+        # the least favourable of the other swept assumptions decides: the smallest x whose power reaches
+        # the target at every combination of them
+        worst = part.loc[part.groupby(x, sort=True)["power"].idxmin()].sort_values(x)
+        ok = worst[worst["power"] >= target]
+        others = [g for g in grid if g != x]
+        heading = (f"Sweep over {', '.join(grid)}: smallest {x} reaching {_pct(target)} power"
+                   + (f" at every {', '.join(others)} in the grid" if others else "") + f" ({name})")
         if len(ok):
             r = ok.iloc[0]
             point = {g: r[g] for g in grid}
@@ -345,19 +350,20 @@ def sweep_block(table, scenario, *, target: float | None = None, x: str | None =
             except Exception:  # noqa: BLE001 - a grid column need not be a scenario parameter
                 at = scenario
             rec = recruitment(_process_at(at))
-            answer = f"{x} = {r[x]}" + (f" ({recruitment_phrase(rec)})" if recruitment_phrase(rec) else "")
+            answer = f"{x} = {point[x]}" + (f" ({recruitment_phrase(rec)})" if recruitment_phrase(rec) else "")
             m = float(r["mcse"])
-            rows += [("Grid point", ", ".join(f"{k} = {v}" for k, v in point.items())),
+            where = "least favourable grid point" if others else "grid point"
+            rows += [(where.capitalize(), ", ".join(f"{k} = {v}" for k, v in point.items())),
                      ("Power there", f"{round_to_mcse(float(r['power']), m)} (95% interval "
                                      f"{round_to_mcse(float(r['ci_low']), m)} to {round_to_mcse(float(r['ci_high']), m)})")]
             if "analytic_power" in r and r["analytic_power"] is not None and r["analytic_power"] == r["analytic_power"]:
                 rows.append(("Closed form there", round_to_mcse(float(r["analytic_power"]), m)))
             rows += recruitment_lines(rec)
-            nums.update(value=r[x], power=float(r["power"]), mcse=m)
+            nums.update(value=point[x], power=float(r["power"]), mcse=m)
             rows.append(("Note", "the smallest grid value reaching the target; the grid's spacing limits the "
                                  "precision (a search gives the value itself)"))
         else:
-            answer = f"no grid point reaches the target (best power {part['power'].max():.2f})"
+            answer = f"no {x} in the grid reaches the target everywhere (best power {part['power'].max():.2f})"
             nums.update(value=None)
     else:
         heading = f"Sweep over {', '.join(grid) or 'the grid'} ({name})"

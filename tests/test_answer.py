@@ -241,3 +241,9 @@ def test_sweep_answer_is_the_smallest_grid_value_reaching_the_target():
     assert block.numbers["value"] == 64
     assert block.answer.startswith("n = 64 (64 participants in the control arm and 64 in the treatment arm")
     assert any("two arms of 64 (control)" in a for a in block.assumptions)
+    # over a second assumption the least favourable value decides: at d = 0.9, n = 20 already has
+    # power 0.79 (noncentral t), but at d = 0.5 it does not, so the answer stays n = 64
+    assert power(20, 0.9) > 0.6 + 4 * 0.02
+    table = sweep(SC, {"n": [20, 64, 100], "effect": [0.5, 0.9]}, reps=600, seed=2, n_jobs=1)
+    block = answer_block(table, scenario=SC, target=0.6, x="n")
+    assert block.numbers["value"] == 64 and dict(block.rows)["Least favourable grid point"] == "n = 64, effect = 0.5"
