@@ -51,6 +51,10 @@ REFERENCES = {
 }
 
 
+#: targets a sweep without one reports (common practice in trial planning: 80% or 90% power)
+CONVENTIONAL_TARGETS = (0.8, 0.9)
+
+
 # -- rounding -----------------------------------------------------------------
 def mcse_decimals(mcse: float, default: int = 3) -> int:
     """Decimals a value with this MCSE supports: down to the first significant digit of the MCSE (1 to 6)."""
@@ -370,9 +374,34 @@ def sweep_block(table, scenario, *, target: float | None = None, x: str | None =
         lo, hi = part["power"].min(), part["power"].max()
         answer = f"power from {lo:.2f} to {hi:.2f} over {len(part)} grid points"
         nums.update(low=float(lo), high=float(hi))
+        if x is not None and len(part) and pd_numeric(part[x]):
+            others = [g for g in grid if g != x]
+            worst = part.loc[part.groupby(x, sort=True)["power"].idxmin()].sort_values(x)
+            every = f" at every {', '.join(others)} in the grid" if others else ""
+            for t in CONVENTIONAL_TARGETS:   # no target given: the usual ones (common practice: 80% or 90%)
+                ok = worst[worst["power"] >= t]
+                value = ok[x].iloc[0] if len(ok) else None
+                nums[f"smallest_for_{t:g}"] = value
+                text = "none in the grid" if value is None else f"{value:g}"
+                if others:
+                    reached, missed = [], []
+                    for key, g in part.groupby(others, sort=True):
+                        key = key if isinstance(key, tuple) else (key,)
+                        at_key = ", ".join(f"{k} = {v:g}" if isinstance(v, (int, float)) else f"{k} = {v}"
+                                           for k, v in zip(others, key))
+                        hit = g[g["power"] >= t][x]
+                        (reached.append(f"{hit.min():g} at {at_key}") if len(hit) else missed.append(at_key))
+                    text += " (" + "; ".join(reached + ([f"not reached at {'; '.join(missed)}"] if missed else [])) + ")"
+                rows.append((f"Smallest {x} with {_pct(t)} power{every}", text))
     rows.append(("Monte Carlo effort", f"{int(part['reps'].min())} to {int(part['reps'].max())} simulated trials "
                                        f"per grid point"))
     return AnswerBlock(heading, answer, tuple(rows), _describe(at), nums)
+
+
+def pd_numeric(column) -> bool:
+    import pandas as pd
+
+    return bool(pd.api.types.is_numeric_dtype(column))
 
 
 def answer_block(result, **kw) -> AnswerBlock:

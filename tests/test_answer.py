@@ -244,6 +244,13 @@ def test_sweep_answer_is_the_smallest_grid_value_reaching_the_target():
     # over a second assumption the least favourable value decides: at d = 0.9, n = 20 already has
     # power 0.79 (noncentral t), but at d = 0.5 it does not, so the answer stays n = 64
     assert power(20, 0.9) > 0.6 + 4 * 0.02
-    table = sweep(SC, {"n": [20, 64, 100], "effect": [0.5, 0.9]}, reps=600, seed=2, n_jobs=1)
+    table = sweep(SC, {"n": [20, 64, 100], "effect": [0.5, 0.9]}, reps=1000, seed=2, n_jobs=1)
     block = answer_block(table, scenario=SC, target=0.6, x="n")
     assert block.numbers["value"] == 64 and dict(block.rows)["Least favourable grid point"] == "n = 64, effect = 0.5"
+    # without a target, the conventional 90%: n = 100 at d = 0.5 (power 0.94), n = 64 at d = 0.9 (0.99);
+    # each power lies more than 4 MCSE from 0.9 (MCSE at 0.9 with 1000 replicates: sqrt(0.09 / 1000))
+    mcse = math.sqrt(0.9 * 0.1 / 1000)
+    for n, d in ((64, 0.5), (100, 0.5), (20, 0.9), (64, 0.9)):
+        assert abs(power(n, d) - 0.9) > 4 * mcse
+    rows = dict(answer_block(table, scenario=SC, x="n").rows)
+    assert rows["Smallest n with 90% power at every effect in the grid"] == "100 (100 at effect = 0.5; 64 at effect = 0.9)"
