@@ -32,7 +32,9 @@ def _answer(doc: Document, block, just) -> None:
     """The answer block and the justification paragraph: the report's first screen."""
     doc.heading("Answer")
     doc.para("**" + literal(f"{block.heading}: {block.answer}") + "**")
-    doc.bullets([literal(f"{k}: {v}") for k, v in block.rows])
+    doc.bullets([literal(f"{k}: {v}") for k, v in block.rows]
+                + [literal(f"{block.assumptions_label}: " + (block.assumptions[0] if block.assumptions else "-")
+                           + " (all of them under 'Assumptions' below)")])
     doc.heading("Sample-size justification (for the protocol)")
     doc.para(literal(just.paragraph))
     doc.para("References:")
