@@ -12,7 +12,7 @@ gives them, and the first entry that returns a number wins; a process whose
 facts no entry covers gets None, never a number meant for something else.
 :meth:`Analysis.analytic_power` consults it (a subclass may still override
 that method), and :meth:`Scenario.analytic_power` and the required-n search's
-closed-form reference (:mod:`simpower.search`) go through that method.
+closed-form reference (:mod:`simpower.planning.search`) go through that method.
 
 An analysis class inherits the entries of its base classes: the table is read
 under the first name along the class's method resolution order that has any.

@@ -227,6 +227,26 @@ class RunResult:
 
         return format_result(self)
 
+    def answer(self, analysis: str | None = None):
+        """The power at the planned design first: an :class:`~simpower.answer.AnswerBlock`."""
+        from .answer import run_block
+
+        return run_block(self, analysis)
+
+    def justification(self, null=None):
+        """The sample-size justification paragraph for a protocol (give ``null``, a null-check table, to cite it)."""
+        from .answer import justification
+
+        return justification(self, null=null)
+
+    def _repr_html_(self) -> str:
+        from .answer import run_block
+        from .labels import frame_html, readable
+
+        shown = readable(self.summary(), "power", ("analysis", "power", "mcse", "ci_low", "ci_high", "reps",
+                                                   "n_failed", "analytic_power"))
+        return run_block(self).html() + frame_html(shown, "Every analysis")
+
     def __repr__(self) -> str:
         return f"<RunResult power={self.power:.4f} mcse={self.mcse:.4f} reps={self.reps}>"
 

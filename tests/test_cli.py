@@ -18,7 +18,9 @@ def test_run_prints_power_analytic_and_writes_json(tmp_path, capsys):
     rc = main(["run", str(SCEN), "--reps", "400", "--seed", "3", "--jobs", "1", "-q", "--json", str(out)])
     text = capsys.readouterr().out
     assert rc == 0
-    assert "power" in text and "MCSE" in text and "analytic power 0.8015" in text
+    # the closed form (0.8015, noncentral t; Cohen 1988 Table 2.4.1: 0.80) rounded to the MCSE of 400 replicates
+    assert "Power" in text and "MCSE" in text and "Closed-form power 0.80 " in text
+    assert "chunk size" not in text and "execution path" not in text      # implementation details: -v only
     assert "ICH E9" in text
     d = json.loads(out.read_text())
     assert d["reps"] == 400 and d["seed"] == "3"

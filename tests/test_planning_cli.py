@@ -81,14 +81,14 @@ def test_command_line_grid_replaces_the_files(scen, tmp_path, capsys):
 def test_samplesize_prints_answer_and_interval(scen, tmp_path, capsys):
     rc = main(["samplesize", str(scen), "--seed", "2", "--jobs", "1", "-q", "--json", str(tmp_path / "r.json")])
     out = capsys.readouterr().out
-    assert rc == 0 and "required `n` for power 0.8" in out and "Monte Carlo interval" in out
+    assert rc == 0 and "Required sample size for 80% power" in out and "Monte Carlo interval" in out
     d = json.loads((tmp_path / "r.json").read_text())
     assert d["interval"][0] <= d["value"] <= d["interval"][1] and d["seed"] == "2"
 
 
 def test_samplesize_detectable_effect(scen, capsys):
     rc = main(["samplesize", str(scen), "--effect", "--range", "0:1.5", "--seed", "3", "--jobs", "1", "-q"])
-    assert rc == 0 and "minimal detectable `effect`" in capsys.readouterr().out
+    assert rc == 0 and "Minimal detectable effect for" in capsys.readouterr().out
 
 
 @pytest.mark.parametrize("argv, message", [
@@ -191,9 +191,9 @@ def test_sleep_app_detectable_effect_command_from_its_header(capsys):
                "--jobs", "1", "-q"])
     out = capsys.readouterr().out
     assert rc == 0, out
-    value, lo, hi = _numbers(r"minimal detectable `effect` for power 0\.9 \(welch_t\): ([\d.]+)\s+"
-                             r"\(95% Monte Carlo interval ([\d.]+) to ([\d.]+)", out)
-    (closed,) = _numbers(r"closed form: ([\d.]+)", out)
+    (value,) = _numbers(r"Minimal detectable effect for 90% power \(welch_t\): effect = ([\d.]+)", out)
+    lo, hi = _numbers(r"95% Monte Carlo interval: +([\d.]+) to ([\d.]+)", out)
+    (closed,) = _numbers(r"Closed form: +([\d.]+)", out)
     # reference: 80 vs round(2 * 80) = 160 per arm, SDs 30 and 1.3 * 30, power 0.9 (the file's [search] power)
     from scipy.optimize import brentq
 

@@ -80,5 +80,5 @@ def test_approximate_closed_forms_are_labelled_and_not_flagged():
     res = sp.run(sc, reps=40000, seed=6, n_jobs=1)
     w = res.summaries["welch_t"]
     assert w["analytic_exact"] is False and w["cross_check_flag"] is False
-    assert "approximate closed-form power" in str(res)
+    assert "Approximate closed-form power" in str(res)
     assert res.summaries["t_test"]["analytic_power"] is None  # Student t under unequal SDs: no closed form here

@@ -37,7 +37,9 @@ def test_report_has_every_section(tmp_path, pieces):
     assert "`t_test`: batch path" in md
     assert "Bradley" in md and "every analysis meets" in md
     assert "simpower report demo.toml --seed 1" in md
-    assert "two arms of 30 (control)" in md                       # the assumptions in words
+    # the assumptions in words, stated at the answer of the search (not at the scenario's n = 30)
+    assumptions = md.split("## Assumptions", 1)[1].split("\n## ", 1)[0]
+    assert f"two arms of {search.value} (control)" in assumptions and "two arms of 30 (control)" not in assumptions
     for stem in ("search", "sweep_power", "sweep_heatmap"):
         assert (tmp_path / f"{stem}.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
         assert (tmp_path / f"{stem}.svg").read_text().lstrip().startswith("<?xml")

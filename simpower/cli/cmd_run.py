@@ -98,7 +98,9 @@ def main(args) -> int:
     res.extra["command"] = command_line(res.seed, args)
     if opts["store"]:
         res.extra["store"] = opts["store"]
-    print(res)
+    from ..textout import format_result
+
+    print(format_result(res, verbose=getattr(args, "verbose", False)))
     seq = res.extra.get("sequential")
     if seq:
         state = "reached" if seq.get("reached") else "NOT reached (max_reps hit)"

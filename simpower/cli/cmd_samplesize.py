@@ -51,12 +51,7 @@ def main(args) -> int:
     seed = seed_of(sf, args)
     res = run_search(sf, args, seed)
     print(res.summary())
-    if res.kind == "size":
-        try:
-            print(f"  at the answer: {res.at_answer().process.describe()}")
-        except Exception:  # a user process may not describe itself
-            pass
-    print(f"  seed: {seed}  chunk size: {res.chunk_size}")
+    print(f"  Seed: {seed}" + (f"  chunk size: {res.chunk_size}" if getattr(args, "verbose", False) else ""))
     null = None
     ns = null_settings(sf, args, default_on=False) if args.null_check else None
     if ns is not None:

@@ -59,10 +59,13 @@ def grid_of(sf, args, block):
     return g
 
 
-def format_table(table) -> str:
-    """The sweep table as terminal text; missing values (None or NaN) show as ``-``, as in the report."""
+def format_table(table, verbose: bool = False) -> str:
+    """The sweep table as terminal text; missing values (None or NaN) show as ``-``, as in the report.
+
+    The execution path (an implementation detail) shows with ``verbose`` only.
+    """
     grid = [c for c in table.attrs.get("grid", []) if c in table.columns]
-    cols = grid + [c for c in SHOWN if c in table.columns]
+    cols = grid + [c for c in SHOWN if c in table.columns and (verbose or c != "path")]
     shown = table[cols].copy()
     for c in shown.columns:
         if shown[c].dtype == object:   # pandas' na_rep skips None in an all-None column
@@ -81,8 +84,9 @@ def main(args) -> int:
     x = plot_axis(sf, args, block, grid, bool(args.plot)) if (args.plot or args.report) else None
     seed = seed_of(sf, args)
     table = run_sweep(sf, args, seed, grid, block)
-    print(format_table(table))
-    print(f"\nseed: {seed}  chunk size: {table.attrs['chunk_size']}  points: {len(table) // len(sf.scenario.analyses)}")
+    print(format_table(table, verbose=getattr(args, "verbose", False)))
+    chunk = f"  chunk size: {table.attrs['chunk_size']}" if getattr(args, "verbose", False) else ""
+    print(f"\nseed: {seed}{chunk}  points: {len(table) // len(sf.scenario.analyses)}")
     null = None
     ns = null_settings(sf, args, default_on=False) if (args.null_check or block.get("null_check")) else None
     if ns is not None:

@@ -19,6 +19,9 @@ def add_run_options(p: argparse.ArgumentParser) -> None:
                    help="change a scenario parameter, e.g. --set n=80 --set outcome.cv=1.5 (repeatable)")
     p.add_argument("--json", metavar="PATH", help="also write the result as JSON to PATH")
     p.add_argument("--quiet", "-q", action="store_true", help="no progress bar")
+    p.add_argument("--verbose", "-v", action="store_true",
+                   help="also print implementation details that do not change the numbers (execution path, chunk "
+                        "size, time)")
     add_engine_options(p)
 
 

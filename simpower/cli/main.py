@@ -38,6 +38,9 @@ def build_parser() -> argparse.ArgumentParser:
     for mod in sorted(pkgutil.iter_modules(cli_path), key=lambda m: m.name):
         if mod.name.startswith("cmd_"):
             importlib.import_module(f"{__package__}.{mod.name}").register(sub)
+    from .helptext import apply
+
+    apply(parser)  # --help as plain text: no reST markup from the docstrings
     return parser
 
 

@@ -263,20 +263,37 @@ class SearchResult:
         """The scenario at the answer (e.g. to read the arm sizes in words)."""
         return self.scenario.with_params(**{self.parameter: self.value})
 
+    def answer(self):
+        """The answer first, in the units that get recruited: an :class:`~simpower.answer.AnswerBlock`."""
+        from ..answer import search_block
+
+        return search_block(self)
+
+    def justification(self, null=None):
+        """The sample-size justification paragraph for a protocol (give ``null``, a null-check table, to cite it).
+
+        Returns a :class:`~simpower.answer.Justification`: ``str()`` of
+        it is the paragraph with its references and caution; ``.markdown()``
+        and ``.html()`` render the same text.
+        """
+        from ..answer import justification
+
+        return justification(self, null=null)
+
     def summary(self) -> str:
-        what = "required" if self.kind == "size" else "minimal detectable"
-        lo, hi = self.interval
-        fmt = (lambda v: f"{v:g}") if self.kind == "size" else (lambda v: f"{v:.4g}")
-        lines = [f"{what} `{self.parameter}` for power {self.target:g} ({self.analysis}): {fmt(self.value)}"
-                 f"  ({self.level:.0%} Monte Carlo interval {fmt(lo)} to {fmt(hi)}; continuous estimate "
-                 f"{self.estimate:.4g})"]
-        if self.analytic is not None:
-            lines.append(f"  closed form: {fmt(self.analytic)} (continuous {self.analytic_estimate:.4g})")
-        lines.append(f"  {self.reps_total} replicates over {len(self.table)} values; "
-                     f"{'converged' if self.converged else 'NOT converged: interval wider than asked'}")
+        """The answer block as plain text (what the terminal shows)."""
+        text = self.answer().text()
         if self.note:
-            lines.append(f"  note: {self.note}")
-        return "\n".join(lines)
+            text += f"\n  Note: {self.note}"
+        return text
+
+    def _repr_html_(self) -> str:
+        from ..answer import search_block
+        from ..labels import frame_html, readable
+
+        shown = readable(self.table, "power", ("value", "reps", "power", "mcse", "ci_low", "ci_high", "fitted_power"))
+        return search_block(self).html() + frame_html(shown.rename(columns={"Value": self.parameter}),
+                                                      "Values evaluated by the search")
 
     def __str__(self):
         return self.summary()

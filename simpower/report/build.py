@@ -9,12 +9,14 @@ import pandas as pd
 
 from ..textout import CAUTION
 from . import plots
+from ..answer import answer_block, justification
 from .document import Document, code, literal
+from ..labels import readable
 from .manifest import manifest_rows
 
-SWEEP_SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power", "path")
-NULL_SHOWN = ("analysis", "null_at", "alpha", "type1_error", "mcse", "ci_low", "ci_high", "reps", "failures",
-              "analytic_type1", "meets_bradley", "path")
+SWEEP_SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power")
+NULL_SHOWN = ("analysis", "null_at", "null_effect", "alpha", "type1_error", "mcse", "ci_low", "ci_high", "reps",
+              "failures", "analytic_type1", "meets_bradley")
 
 
 def _plain_params(scenario) -> pd.DataFrame:
@@ -23,7 +25,21 @@ def _plain_params(scenario) -> pd.DataFrame:
         if hasattr(v, "spec"):
             v = v.spec().get("type", "")
         rows.append((k, v))
-    return pd.DataFrame(rows, columns=["parameter", "value"])
+    return pd.DataFrame(rows, columns=["Parameter", "Value"])
+
+
+def _answer(doc: Document, block, just) -> None:
+    """The answer block and the justification paragraph: the report's first screen."""
+    doc.heading("Answer")
+    doc.para("**" + literal(f"{block.heading}: {block.answer}") + "**")
+    doc.bullets([literal(f"{k}: {v}") for k, v in block.rows]
+                + [literal(f"{block.assumptions_label}: " + (block.assumptions[0] if block.assumptions else "-")
+                           + " (all of them under 'Assumptions' below)")])
+    doc.heading("Sample-size justification (for the protocol)")
+    doc.para(literal(just.paragraph))
+    doc.para("References:")
+    doc.bullets([literal(r) for r in just.references])
+    doc.para(literal("Caution: " + just.caution))
 
 
 def _paths(paths: dict[str, str]) -> list[str]:
@@ -82,35 +98,47 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
     doc = Document(literal(title or scenario.name or "Power analysis by simulation"))
     if scenario.description:
         doc.para(literal(scenario.description))
+    at, where = scenario, "as given"
+    if search is not None:
+        _answer(doc, answer_block(search), justification(search, null=null))
+        if search.kind == "size":
+            try:
+                at, where = search.at_answer(), f"at the answer ({search.parameter} = {search.value:g})"
+            except Exception:  # a user process may refuse the value
+                pass
+    elif run is not None:
+        _answer(doc, answer_block(run), justification(run, null=null))
+    elif sweep is not None:
+        _answer(doc, answer_block(sweep, scenario=scenario, target=target, x=x),
+                justification(sweep, null=null, scenario=scenario, target=target, x=x))
     doc.heading("Assumptions")
-    doc.para("The numbers below hold only under these assumptions about the data and the planned analysis:")
-    doc.bullets(_describe(scenario))
-    doc.table(_plain_params(scenario), "Every parameter of the scenario (before any sweep or search)")
+    doc.para("The numbers below hold only under these assumptions about the data and the planned analysis"
+             + (f", stated {literal(where)}:" if search is not None else ":"))
+    doc.bullets(_describe(at))
+    doc.table(_plain_params(at), literal(f"Every parameter of the scenario {where}")
+              + (" (a sweep varies the grid's parameters)" if sweep is not None else ""))
     paths: dict[str, str] = {}
 
     if search is not None:
         doc.heading("Required " + ("sample size" if search.kind == "size" else "minimal detectable effect"))
-        doc.para(literal(search.summary()))
-        if search.kind == "size":
-            try:
-                doc.para(literal("At the answer: " + search.at_answer().process.describe() + "."))
-            except Exception:  # a user process may not describe itself
-                pass
         doc.para(literal(f"Method: a probit model of power in {search.fit.scale if search.fit else '?'}"
                          f"({search.parameter}) fitted to all simulated replicates, the next replicates placed at the "
                          f"current estimate, stopped when the {search.level:.0%} Monte Carlo (Fieller) interval was "
-                         f"within {search.settings.get('rel_tol', 0):.0%} of the estimate; chunk size "
-                         f"{search.chunk_size}."))
+                         f"within {search.settings.get('rel_tol', 0):.0%} of the estimate; continuous estimate "
+                         f"{search.estimate:.4g}."))
+        if search.note:
+            doc.para(literal("Note: " + search.note))
         png, svg = plots.save(plots.search_plot(search), out / "search")
         doc.figure(png, svg, "Search: simulated power (Wilson intervals), fitted curve, target and answer")
-        shown = search.table[["value", "reps", "power", "mcse", "ci_low", "ci_high", "fitted_power", "in_fit"]]
-        doc.table(shown.rename(columns={"value": search.parameter}), "Values evaluated by the search")
+        shown = readable(search.table, "power", ("value", "reps", "power", "mcse", "ci_low", "ci_high",
+                                                 "fitted_power", "in_fit"))
+        doc.table(shown.rename(columns={"Value": search.parameter}), "Values evaluated by the search")
         paths.update({search.analysis: p for p in search.table["path"].unique()[:1]})
 
     if sweep is not None:
         grid = [c for c in sweep.attrs.get("grid", []) if c in sweep.columns]
         doc.heading("Sweep over the assumptions")
-        doc.table(sweep[grid + [c for c in SWEEP_SHOWN if c in sweep.columns]],
+        doc.table(readable(sweep, "power", tuple(grid + [c for c in SWEEP_SHOWN if c in sweep.columns])),
                   "Power at each grid point (Wilson 95% interval; closed form where it applies)")
         xs = x or (grid[0] if grid else None)
         numeric = xs is not None and pd.api.types.is_numeric_dtype(sweep[xs])
@@ -127,8 +155,9 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
 
     if run is not None:
         doc.heading("Power at the planned design")
-        doc.table(run.summary()[["analysis", "power", "mcse", "ci_low", "ci_high", "reps", "n_failed",
-                                 "analytic_power", "path"]], "Simulated power at the scenario as given")
+        doc.table(readable(run.summary(), "power", ("analysis", "power", "mcse", "ci_low", "ci_high", "reps",
+                                                    "n_failed", "analytic_power")),
+                  "Simulated power at the scenario as given")
         seq = run.extra.get("sequential")
         if seq:
             doc.para(f"Sequential stopping: the run went on until the MCSE of the power was at most "
@@ -142,14 +171,14 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
         grid = [c for c in null.attrs.get("grid", []) if c in null.columns]
         doc.para(f"The same scenario with the effect on the boundary of each analysis's null hypothesis and everything "
                  f"else kept: no effect for a test of no difference, the margin for an equivalence (upper margin) or "
-                 f"non-inferiority test, the stated null value otherwise; the column 'null_at' says where and which "
-                 f"value of the process's effect that is. Bradley's (1978) liberal criterion asks for a rejection "
-                 f"rate in [{0.5 * a:g}, {1.5 * a:g}] at alpha = {a:g}; 'analytic_type1' is the closed-form rate "
+                 f"non-inferiority test, the stated null value otherwise; the column 'Effect placed at' says where and which "
+                 f"value of the process's effect that is ('Effect value'). Bradley's (1978) liberal criterion asks for a rejection "
+                 f"rate in [{0.5 * a:g}, {1.5 * a:g}] at alpha = {a:g}; 'Closed-form type I error' is the rate "
                  f"where the analytic core covers the case (normal outcomes).")
-        shown = null[grid + [c for c in NULL_SHOWN if c in null.columns]]
-        if "analytic_type1" in shown and shown["analytic_type1"].isna().all():
-            shown = shown.drop(columns=["analytic_type1"])
-        doc.table(shown, "Type I error check")
+        cols = grid + [c for c in NULL_SHOWN if c in null.columns]
+        if "analytic_type1" in null and null["analytic_type1"].isna().all():
+            cols.remove("analytic_type1")
+        doc.table(readable(null, "type1_error", tuple(cols)), "Type I error check")
         ok = bool(null["meets_bradley"].all())
         doc.para("**Verdict:** " + ("every analysis meets Bradley's liberal criterion." if ok else
                                     "at least one analysis does NOT meet Bradley's liberal criterion; its power "
@@ -158,7 +187,7 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
             doc.para("On an equivalence margin the TOST's exact size is at most alpha, and below it when the "
                      "standard error is large against the equivalence range (Schuirmann 1987); a rate below alpha "
                      "there is a property of the test; where the closed form applies (normal outcomes), "
-                     "'analytic_type1' gives the value to expect.")
+                     "'Closed-form type I error' gives the value to expect.")
 
     doc.heading("Failures")
     fl = _failures([("search", search.table if search is not None else None), ("sweep", sweep),

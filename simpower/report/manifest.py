@@ -97,7 +97,7 @@ def manifest_rows(man: dict[str, Any]):
         rows.append(("simpower source digest", man["simpower_source_sha256"]))
     for k, v in man.get("settings", {}).items():
         rows.append((f"setting: {k}", json.dumps(v, default=str) if not isinstance(v, str) else v))
-    return pd.DataFrame(rows, columns=["item", "value"])
+    return pd.DataFrame(rows, columns=["Item", "Value"])
 
 
 def write_manifest(man: dict[str, Any], path) -> Path:

@@ -10,17 +10,16 @@ from __future__ import annotations
 import re
 from pathlib import Path
 
+from ..answer import md_escape
 from .document import Bullets, Code, Document, Figure, Heading, Paragraph, Table, fmt_cell, spans
 
-#: characters that start Markdown constructs anywhere in a line (HTML, emphasis, code, links, tables, entities)
-_INLINE = re.compile(r"([\\`*_\[\]<>&|~])")
 #: a line start that would open a heading, list, quote or rule
 _BLOCK_START = re.compile(r"^(\s*)([#+=-]|\d+(?=[.)]))")
 
 
 def escape(text: str) -> str:
-    """Plain text as Markdown that shows exactly this text, on one line."""
-    return _INLINE.sub(r"\\\1", " ".join(str(text).splitlines()))
+    """Plain text as Markdown that shows exactly this text, on one line (backslash before ``\\`*_[]<>&|~``)."""
+    return md_escape(text)
 
 
 def _block(md: str) -> str:
