@@ -38,6 +38,15 @@ PROCESSES = {
     "paired": lambda: sp.NormalPaired(n=10, effect=0.4),
     "two_arm": lambda: sp.TwoArm(n=10, ratio=1.5, effect=0.5),
     "two_arm_missing": lambda: sp.TwoArm(n=10, effect=0.5, missing=sp.MCAR(rate=0.2)),
+    "two_arm_mar": lambda: sp.TwoArm(n=10, effect=0.5, baseline_corr=0.5, missing=sp.MAR(rate=0.3)),
+    "two_arm_mnar": lambda: sp.TwoArm(n=10, ratio=1.5, effect=0.5, missing=sp.MNAR(rate=0.2)),
+    # 3 per arm, half missing: some replicates keep fewer than two values in an arm (no statistic)
+    "two_arm_sparse": lambda: sp.TwoArm(n=3, effect=0.5, missing=sp.MCAR(rate=0.5)),
+    "one_sample_missing": lambda: sp.NormalOneSample(n=12, effect=0.3, missing=sp.MCAR(rate=0.2)),
+    "one_sample_sparse": lambda: sp.NormalOneSample(n=3, effect=0.3, missing=sp.MCAR(rate=0.5)),
+    "paired_missing": lambda: sp.NormalPaired(n=10, effect=0.4, missing=sp.MCAR(rate=0.2)),
+    "lognormal_missing": lambda: sp.TwoArm(n=10, effect=1.3, effect_type="ratio",
+                                           outcome=sp.Lognormal(median=1.0, sigma=0.5), missing=sp.MCAR(rate=0.2)),
     "two_arm_baseline": lambda: sp.TwoArm(n=10, effect=0.5, baseline_corr=0.5),
     "lognormal": lambda: sp.TwoArm(n=10, effect=1.3, effect_type="ratio", outcome=sp.Lognormal(median=1.0, sigma=0.5)),
     "three_arms": lambda: sp.MultiArm(effects=[0, 0.3, 0.6], n=8),
@@ -226,8 +235,27 @@ CASES = [
     ({"type": "t_test"}, "one_sample", True),
     ({"type": "t_test"}, "two_arm", True),
     ({"type": "t_test"}, "paired", True),                 # paired data are also two-arm data
-    ({"type": "t_test"}, "two_arm_missing", False),       # missing values: per replicate (for now)
-    ({"type": "t_test"}, "clusters_variable_missing", False),
+    # missing outcomes (and padding): complete cases under the observed mask
+    ({"type": "t_test"}, "two_arm_missing", True),
+    ({"type": "t_test", "alternative": "less"}, "two_arm_mnar", True),
+    ({"type": "t_test"}, "two_arm_sparse", True),         # too few values: those replicates per replicate
+    ({"type": "t_test"}, "one_sample_missing", True),
+    ({"type": "t_test"}, "one_sample_sparse", True),
+    ({"type": "t_test"}, "paired_missing", True),         # two-arm view of pairs: all observed values
+    ({"type": "t_test"}, "clusters_variable_missing", True),
+    ({"type": "welch_t"}, "two_arm_missing", True),
+    ({"type": "welch_t", "alternative": "less"}, "two_arm_mar", True),
+    ({"type": "welch_t"}, "two_arm_sparse", True),
+    ({"type": "paired_t"}, "paired_missing", True),       # complete pairs
+    ({"type": "z_test", "sd1": 1.5}, "two_arm_missing", True),
+    ({"type": "z_test"}, "two_arm_sparse", True),
+    ({"type": "z_test", "alternative": "less"}, "one_sample_missing", True),
+    ({"type": "tost", "margin": 0.5}, "two_arm_mnar", True),
+    ({"type": "tost", "margin": 0.5, "equal_var": True}, "one_sample_sparse", True),
+    ({"type": "non_inferiority", "margin": 0.3, "higher_is_better": False}, "two_arm_sparse", True),
+    ({"type": "log_t"}, "lognormal_missing", True),
+    ({"type": "log_t", "equal_var": True}, "paired_missing", True),  # negatives: error rows; complete pairs
+    ({"type": "log_t"}, "one_sample_sparse", True),
     ({"type": "welch_t", "alternative": "greater"}, "two_arm", True),
     ({"type": "welch_t"}, "one_sample", False),
     ({"type": "paired_t", "alternative": "less"}, "paired", True),
@@ -237,7 +265,7 @@ CASES = [
     ({"type": "tost", "margin": 0.5}, "two_arm", True),
     ({"type": "tost", "margin": 0.5, "equal_var": True}, "one_sample", True),
     ({"type": "non_inferiority", "margin": 0.3}, "two_arm", True),
-    ({"type": "non_inferiority", "margin": 0.3}, "two_arm_missing", False),
+    ({"type": "non_inferiority", "margin": 0.3}, "two_arm_missing", True),
     ({"type": "mann_whitney", "continuity": True}, "two_arm", True),
     ({"type": "mann_whitney", "estimand": "shift", "alternative": "less"}, "two_arm", True),
     ({"type": "mann_whitney"}, "two_arm_missing", False),
@@ -274,7 +302,21 @@ CASES = [
 
 #: cases whose batch result marks some replicates as failed
 WITH_TROUBLE = {("logistic", "binary_small"), ("logistic", "binary_missing"), ("poisson_glm", "counts_small"), ("log_t", "paired"),
-                ("log_t", "one_sample"), ("cluster_means_t", "clusters_individual"), ("multiple", "binary_small")}
+                ("log_t", "one_sample"), ("cluster_means_t", "clusters_individual"), ("multiple", "binary_small"),
+                # sparse replicates handed to the per-replicate path: an empty arm raises ZeroDivisionError
+                # there (Student's and the z-test's SE); Welch's and the one-sample paths give NaN instead
+                ("t_test", "two_arm_sparse"), ("z_test", "two_arm_sparse"),
+                ("log_t", "one_sample_sparse"), ("log_t", "paired_missing")}
+
+
+def test_sparse_batches_have_replicates_without_a_statistic():
+    # the sparse cases above exercise the hand-over to the per-replicate path: some replicates
+    # keep fewer than two observed values in an arm (or none at all)
+    two = batch_of("two_arm_sparse").layout("two_arm")
+    assert np.any(np.minimum(two.n0, two.n1) < 2) and np.any(np.minimum(two.n0, two.n1) == 0)
+    assert np.any(np.minimum(two.n0, two.n1) >= 2)
+    one = batch_of("one_sample_sparse").layout("one_sample")
+    assert np.any(one.observed.sum(axis=1) < 2)
 
 
 def _case_id(case):
@@ -476,3 +518,24 @@ def test_generic_supports_batch_follows_the_declaration():
     with pytest.raises(ValueError, match="paired_t: no batch path for this batch .* layouts paired; the batch has "
                                          "table, two_arm"):
         sp.PairedT().batch(batch_of("two_arm"))
+
+
+def test_engine_keeps_the_batch_path_with_missing_outcomes():
+    # 20% MCAR / MAR / MNAR outcomes: the t-test family runs on the batch path through the engine
+    # (before, any missingness sent it per replicate), and records the per-replicate path's
+    # values (scipy.stats.ttest_ind on the observed values of replicate 0 as the reference)
+    analyses = {"t": sp.TTest(), "w": sp.WelchT(), "z": sp.ZTest(), "tost": sp.TOST(margin=0.5),
+                "ni": sp.NonInferiority(margin=0.3)}
+    for miss in (sp.MCAR(rate=0.2), sp.MAR(rate=0.2), sp.MNAR(rate=0.2)):
+        proc = sp.TwoArm(n=15, effect=0.5, baseline_corr=0.3, missing=miss)
+        out = run_chunk(sp.Scenario(proc, analyses=analyses), 7, 0, 0, 40)
+        assert all(out.paths[k] == "batch" for k in analyses), out.paths
+        batch = proc.draw_batch(np.random.default_rng(chunk_seed(7, 0, 0)), 40)
+        t = batch.replicate(0)
+        ok = np.isfinite(t["y"])
+        y, arm = t["y"][ok], t["arm"][ok]
+        ref = stats.ttest_ind(y[arm == 1], y[arm == 0]).pvalue
+        assert out.records["t"]["pvalue"][0] == pytest.approx(ref, rel=1e-10)
+    paired = run_chunk(sp.Scenario(sp.NormalPaired(n=12, missing=sp.MCAR(rate=0.2)),
+                                   analyses={"p": sp.PairedT(), "l": sp.TTest()}), 7, 0, 0, 20)
+    assert paired.paths == {"p": "batch", "l": "batch"}
