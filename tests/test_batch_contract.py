@@ -269,7 +269,15 @@ CASES = [
     ({"type": "non_inferiority", "margin": 0.3}, "two_arm_missing", True),
     ({"type": "mann_whitney", "continuity": True}, "two_arm", True),
     ({"type": "mann_whitney", "estimand": "shift", "alternative": "less"}, "two_arm", True),
-    ({"type": "mann_whitney"}, "two_arm_missing", False),
+    ({"type": "mann_whitney"}, "two_arm_missing", True),  # complete cases, grouped by observed counts
+    ({"type": "mann_whitney", "estimand": "probability", "continuity": False}, "two_arm_missing", True),
+    ({"type": "mann_whitney", "estimand": "none", "alternative": "greater"}, "two_arm_mnar", True),
+    ({"type": "mann_whitney", "null_value": 0.2}, "two_arm_sparse", True),
+    ({"type": "mann_whitney", "estimand": "probability"}, "clusters_variable_missing", True),
+    ({"type": "mann_whitney"}, "binary_missing", True),  # heavy ties
+    ({"type": "wilcoxon_signed_rank"}, "one_sample_missing", True),
+    ({"type": "wilcoxon_signed_rank", "continuity": True, "alternative": "less"}, "paired_missing", True),
+    ({"type": "wilcoxon_signed_rank", "null_value": 0.1}, "one_sample_sparse", True),
     ({"type": "wilcoxon_signed_rank"}, "one_sample", True),
     ({"type": "wilcoxon_signed_rank", "continuity": True, "alternative": "greater"}, "paired", True),
     ({"type": "wilcoxon_signed_rank"}, "two_arm", False),
@@ -313,7 +321,9 @@ WITH_TROUBLE = {("logistic", "binary_small"), ("logistic", "binary_missing"), ("
                 # sparse replicates handed to the per-replicate path: an empty arm raises ZeroDivisionError
                 # there (Student's and the z-test's SE); Welch's and the one-sample paths give NaN instead
                 ("t_test", "two_arm_sparse"), ("z_test", "two_arm_sparse"),
-                ("log_t", "one_sample_sparse"), ("log_t", "paired_missing"), ("multiple", "two_arm_sparse")}
+                ("log_t", "one_sample_sparse"), ("log_t", "paired_missing"), ("multiple", "two_arm_sparse"),
+                # an empty sample: the per-replicate Hodges-Lehmann estimate raises ValueError
+                ("mann_whitney", "two_arm_sparse"), ("wilcoxon_signed_rank", "one_sample_sparse")}
 
 
 def test_sparse_batches_have_replicates_without_a_statistic():
@@ -533,7 +543,7 @@ def test_engine_keeps_the_batch_path_with_missing_outcomes():
     # (before, any missingness sent it per replicate), and records the per-replicate path's
     # values (scipy.stats.ttest_ind on the observed values of replicate 0 as the reference)
     analyses = {"t": sp.TTest(), "w": sp.WelchT(), "z": sp.ZTest(), "tost": sp.TOST(margin=0.5),
-                "ni": sp.NonInferiority(margin=0.3)}
+                "ni": sp.NonInferiority(margin=0.3), "mw": sp.MannWhitney()}
     for miss in (sp.MCAR(rate=0.2), sp.MAR(rate=0.2), sp.MNAR(rate=0.2)):
         proc = sp.TwoArm(n=15, effect=0.5, baseline_corr=0.3, missing=miss)
         out = run_chunk(sp.Scenario(proc, analyses=analyses), 7, 0, 0, 40)
@@ -544,6 +554,6 @@ def test_engine_keeps_the_batch_path_with_missing_outcomes():
         y, arm = t["y"][ok], t["arm"][ok]
         ref = stats.ttest_ind(y[arm == 1], y[arm == 0]).pvalue
         assert out.records["t"]["pvalue"][0] == pytest.approx(ref, rel=1e-10)
-    paired = run_chunk(sp.Scenario(sp.NormalPaired(n=12, missing=sp.MCAR(rate=0.2)),
-                                   analyses={"p": sp.PairedT(), "l": sp.TTest()}), 7, 0, 0, 20)
-    assert paired.paths == {"p": "batch", "l": "batch"}
+    pairs = {"p": sp.PairedT(), "l": sp.TTest(), "w": sp.WilcoxonSignedRank()}
+    paired = run_chunk(sp.Scenario(sp.NormalPaired(n=12, missing=sp.MCAR(rate=0.2)), analyses=pairs), 7, 0, 0, 20)
+    assert paired.paths == {"p": "batch", "l": "batch", "w": "batch"}
