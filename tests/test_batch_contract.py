@@ -303,7 +303,18 @@ CASES = [
     ({"type": "logrank", "alternative": "greater"}, "survival", True),
     ({"type": "ols"}, "two_arm", True),
     ({"type": "ancova", "cov_type": "HC3"}, "two_arm_baseline", True),
-    ({"type": "ols"}, "two_arm_missing", False),
+    # missing outcomes: X'WX with W the observed mask (complete cases, as statsmodels after dropna)
+    ({"type": "ols"}, "two_arm_missing", True),
+    ({"type": "ancova", "cov_type": "HC3"}, "two_arm_mar", True),
+    ({"type": "ancova", "alternative": "greater"}, "two_arm_mar", True),
+    ({"type": "ols", "cov_type": "HC1", "use_t": False}, "two_arm_mnar", True),
+    ({"type": "ols", "cov_type": "HC2"}, "two_arm_sparse", True),  # too few rows: per replicate
+    ({"type": "ols", "cov_type": "HC0"}, "three_arms_missing", True),
+    ({"type": "ols", "term": "C(arm)[T.2]"}, "three_arms_missing", True),
+    ({"type": "ols", "cov_type": "cluster"}, "clusters_variable_missing", True),
+    ({"type": "ols", "cov_type": "cluster", "use_t": False}, "clusters_variable_missing", True),
+    ({"type": "ols", "cov_type": "cluster"}, "clusters", False),  # complete data: per replicate, as before
+    ({"type": "ols"}, "clusters_variable_missing", True),
     ({"type": "ols"}, "three_arms", True),                # any complete table with the formula's columns
     ({"type": "multiple", "tests": [{"type": "t_test"}, {"type": "welch_t"}]}, "two_arm", True),
     ({"type": "multiple", "tests": [{"type": "logistic"}, {"type": "fisher_exact"}]}, "binary_small", True),
@@ -323,7 +334,9 @@ WITH_TROUBLE = {("logistic", "binary_small"), ("logistic", "binary_missing"), ("
                 ("t_test", "two_arm_sparse"), ("z_test", "two_arm_sparse"),
                 ("log_t", "one_sample_sparse"), ("log_t", "paired_missing"), ("multiple", "two_arm_sparse"),
                 # an empty sample: the per-replicate Hodges-Lehmann estimate raises ValueError
-                ("mann_whitney", "two_arm_sparse"), ("wilcoxon_signed_rank", "one_sample_sparse")}
+                ("mann_whitney", "two_arm_sparse"), ("wilcoxon_signed_rank", "one_sample_sparse"),
+                # an arm without observed outcomes: statsmodels has no arm coefficient (ValueError)
+                ("ols", "two_arm_sparse")}
 
 
 def test_sparse_batches_have_replicates_without_a_statistic():
@@ -543,7 +556,8 @@ def test_engine_keeps_the_batch_path_with_missing_outcomes():
     # (before, any missingness sent it per replicate), and records the per-replicate path's
     # values (scipy.stats.ttest_ind on the observed values of replicate 0 as the reference)
     analyses = {"t": sp.TTest(), "w": sp.WelchT(), "z": sp.ZTest(), "tost": sp.TOST(margin=0.5),
-                "ni": sp.NonInferiority(margin=0.3), "mw": sp.MannWhitney()}
+                "ni": sp.NonInferiority(margin=0.3), "mw": sp.MannWhitney(), "ols": sp.OLS(),
+                "ancova": sp.Ancova(cov_type="HC3")}
     for miss in (sp.MCAR(rate=0.2), sp.MAR(rate=0.2), sp.MNAR(rate=0.2)):
         proc = sp.TwoArm(n=15, effect=0.5, baseline_corr=0.3, missing=miss)
         out = run_chunk(sp.Scenario(proc, analyses=analyses), 7, 0, 0, 40)
@@ -557,3 +571,6 @@ def test_engine_keeps_the_batch_path_with_missing_outcomes():
     pairs = {"p": sp.PairedT(), "l": sp.TTest(), "w": sp.WilcoxonSignedRank()}
     paired = run_chunk(sp.Scenario(sp.NormalPaired(n=12, missing=sp.MCAR(rate=0.2)), analyses=pairs), 7, 0, 0, 20)
     assert paired.paths == {"p": "batch", "l": "batch", "w": "batch"}
+    clusters = sp.ClusterTrial(clusters=6, cluster_size=5, cluster_size_cv=0.4, icc=0.1, missing=sp.MCAR(rate=0.2))
+    out = run_chunk(sp.Scenario(clusters, analyses={"cr": sp.OLS(cov_type="cluster"), "t": sp.TTest()}), 7, 0, 0, 20)
+    assert out.paths == {"cr": "batch", "t": "batch"}
