@@ -60,6 +60,9 @@ PROCESSES = {
     "clusters_individual": lambda: sp.ClusterTrial(clusters=5, cluster_size=4, cluster_size_cv=0.4, icc=0.1,
                                                    effect=0.5, randomise="individual"),
     "repeated": lambda: sp.RepeatedMeasures(n=8, visits=3, rho=0.5, effect=0.5),
+    "clusters_mnar": lambda: sp.ClusterTrial(clusters=5, cluster_size=4, icc=0.1, effect=0.5, missing=sp.MNAR(rate=0.2)),
+    "repeated_dropout_mcar": lambda: sp.RepeatedMeasures(n=8, visits=3, rho=0.5, effect=0.5, dropout_rate=0.2,
+                                                         missing=sp.MCAR(rate=0.1)),
     "repeated_dropout": lambda: sp.RepeatedMeasures(n=8, visits=3, rho=0.5, effect=0.5, dropout_rate=0.3),
     "survival": lambda: sp.SurvivalTwoArm(n=12, median=1.0, hazard_ratio=0.6, follow_up=2.0),
 }
@@ -299,6 +302,11 @@ CASES = [
     ({"type": "cluster_means_t"}, "clusters_individual", True),  # mixed clusters: error rows
     ({"type": "final_visit_t"}, "repeated", True),
     ({"type": "final_visit_t", "welch": True}, "repeated_dropout", True),
+    ({"type": "final_visit_t"}, "repeated_dropout_mcar", True),  # dropout, then intermittent MCAR
+    ({"type": "cluster_means_t"}, "clusters_mnar", True),
+    ({"type": "t_test"}, "clusters_mnar", True),
+    ({"type": "ols", "cov_type": "cluster"}, "clusters_mnar", True),
+    ({"type": "mann_whitney"}, "repeated_dropout", True),        # the two-arm view of the long table
     ({"type": "logrank"}, "survival", True),
     ({"type": "logrank", "alternative": "greater"}, "survival", True),
     ({"type": "ols"}, "two_arm", True),
