@@ -38,8 +38,18 @@ PROCESSES = {
     "paired": lambda: sp.NormalPaired(n=10, effect=0.4),
     "two_arm": lambda: sp.TwoArm(n=10, ratio=1.5, effect=0.5),
     "two_arm_missing": lambda: sp.TwoArm(n=10, effect=0.5, missing=sp.MCAR(rate=0.2)),
+    "two_arm_mar": lambda: sp.TwoArm(n=10, effect=0.5, baseline_corr=0.5, missing=sp.MAR(rate=0.3)),
+    "two_arm_mnar": lambda: sp.TwoArm(n=10, ratio=1.5, effect=0.5, missing=sp.MNAR(rate=0.2)),
+    # 3 per arm, half missing: some replicates keep fewer than two values in an arm (no statistic)
+    "two_arm_sparse": lambda: sp.TwoArm(n=3, effect=0.5, missing=sp.MCAR(rate=0.5)),
+    "one_sample_missing": lambda: sp.NormalOneSample(n=12, effect=0.3, missing=sp.MCAR(rate=0.2)),
+    "one_sample_sparse": lambda: sp.NormalOneSample(n=3, effect=0.3, missing=sp.MCAR(rate=0.5)),
+    "paired_missing": lambda: sp.NormalPaired(n=10, effect=0.4, missing=sp.MCAR(rate=0.2)),
+    "lognormal_missing": lambda: sp.TwoArm(n=10, effect=1.3, effect_type="ratio",
+                                           outcome=sp.Lognormal(median=1.0, sigma=0.5), missing=sp.MCAR(rate=0.2)),
     "two_arm_baseline": lambda: sp.TwoArm(n=10, effect=0.5, baseline_corr=0.5),
     "lognormal": lambda: sp.TwoArm(n=10, effect=1.3, effect_type="ratio", outcome=sp.Lognormal(median=1.0, sigma=0.5)),
+    "three_arms_missing": lambda: sp.MultiArm(effects=[0, 0.3, 0.6], n=8, missing=sp.MCAR(rate=0.2)),
     "three_arms": lambda: sp.MultiArm(effects=[0, 0.3, 0.6], n=8),
     "binary_small": lambda: sp.BinaryTwoArm(n=8, p0=0.2, odds_ratio=2.0),
     "binary_missing": lambda: sp.BinaryTwoArm(n=15, p0=0.3, odds_ratio=2.0, missing=sp.MCAR(rate=0.2)),
@@ -50,6 +60,9 @@ PROCESSES = {
     "clusters_individual": lambda: sp.ClusterTrial(clusters=5, cluster_size=4, cluster_size_cv=0.4, icc=0.1,
                                                    effect=0.5, randomise="individual"),
     "repeated": lambda: sp.RepeatedMeasures(n=8, visits=3, rho=0.5, effect=0.5),
+    "clusters_mnar": lambda: sp.ClusterTrial(clusters=5, cluster_size=4, icc=0.1, effect=0.5, missing=sp.MNAR(rate=0.2)),
+    "repeated_dropout_mcar": lambda: sp.RepeatedMeasures(n=8, visits=3, rho=0.5, effect=0.5, dropout_rate=0.2,
+                                                         missing=sp.MCAR(rate=0.1)),
     "repeated_dropout": lambda: sp.RepeatedMeasures(n=8, visits=3, rho=0.5, effect=0.5, dropout_rate=0.3),
     "survival": lambda: sp.SurvivalTwoArm(n=12, median=1.0, hazard_ratio=0.6, follow_up=2.0),
 }
@@ -226,8 +239,27 @@ CASES = [
     ({"type": "t_test"}, "one_sample", True),
     ({"type": "t_test"}, "two_arm", True),
     ({"type": "t_test"}, "paired", True),                 # paired data are also two-arm data
-    ({"type": "t_test"}, "two_arm_missing", False),       # missing values: per replicate (for now)
-    ({"type": "t_test"}, "clusters_variable_missing", False),
+    # missing outcomes (and padding): complete cases under the observed mask
+    ({"type": "t_test"}, "two_arm_missing", True),
+    ({"type": "t_test", "alternative": "less"}, "two_arm_mnar", True),
+    ({"type": "t_test"}, "two_arm_sparse", True),         # too few values: those replicates per replicate
+    ({"type": "t_test"}, "one_sample_missing", True),
+    ({"type": "t_test"}, "one_sample_sparse", True),
+    ({"type": "t_test"}, "paired_missing", True),         # two-arm view of pairs: all observed values
+    ({"type": "t_test"}, "clusters_variable_missing", True),
+    ({"type": "welch_t"}, "two_arm_missing", True),
+    ({"type": "welch_t", "alternative": "less"}, "two_arm_mar", True),
+    ({"type": "welch_t"}, "two_arm_sparse", True),
+    ({"type": "paired_t"}, "paired_missing", True),       # complete pairs
+    ({"type": "z_test", "sd1": 1.5}, "two_arm_missing", True),
+    ({"type": "z_test"}, "two_arm_sparse", True),
+    ({"type": "z_test", "alternative": "less"}, "one_sample_missing", True),
+    ({"type": "tost", "margin": 0.5}, "two_arm_mnar", True),
+    ({"type": "tost", "margin": 0.5, "equal_var": True}, "one_sample_sparse", True),
+    ({"type": "non_inferiority", "margin": 0.3, "higher_is_better": False}, "two_arm_sparse", True),
+    ({"type": "log_t"}, "lognormal_missing", True),
+    ({"type": "log_t", "equal_var": True}, "paired_missing", True),  # negatives: error rows; complete pairs
+    ({"type": "log_t"}, "one_sample_sparse", True),
     ({"type": "welch_t", "alternative": "greater"}, "two_arm", True),
     ({"type": "welch_t"}, "one_sample", False),
     ({"type": "paired_t", "alternative": "less"}, "paired", True),
@@ -237,10 +269,18 @@ CASES = [
     ({"type": "tost", "margin": 0.5}, "two_arm", True),
     ({"type": "tost", "margin": 0.5, "equal_var": True}, "one_sample", True),
     ({"type": "non_inferiority", "margin": 0.3}, "two_arm", True),
-    ({"type": "non_inferiority", "margin": 0.3}, "two_arm_missing", False),
+    ({"type": "non_inferiority", "margin": 0.3}, "two_arm_missing", True),
     ({"type": "mann_whitney", "continuity": True}, "two_arm", True),
     ({"type": "mann_whitney", "estimand": "shift", "alternative": "less"}, "two_arm", True),
-    ({"type": "mann_whitney"}, "two_arm_missing", False),
+    ({"type": "mann_whitney"}, "two_arm_missing", True),  # complete cases, grouped by observed counts
+    ({"type": "mann_whitney", "estimand": "probability", "continuity": False}, "two_arm_missing", True),
+    ({"type": "mann_whitney", "estimand": "none", "alternative": "greater"}, "two_arm_mnar", True),
+    ({"type": "mann_whitney", "null_value": 0.2}, "two_arm_sparse", True),
+    ({"type": "mann_whitney", "estimand": "probability"}, "clusters_variable_missing", True),
+    ({"type": "mann_whitney"}, "binary_missing", True),  # heavy ties
+    ({"type": "wilcoxon_signed_rank"}, "one_sample_missing", True),
+    ({"type": "wilcoxon_signed_rank", "continuity": True, "alternative": "less"}, "paired_missing", True),
+    ({"type": "wilcoxon_signed_rank", "null_value": 0.1}, "one_sample_sparse", True),
     ({"type": "wilcoxon_signed_rank"}, "one_sample", True),
     ({"type": "wilcoxon_signed_rank", "continuity": True, "alternative": "greater"}, "paired", True),
     ({"type": "wilcoxon_signed_rank"}, "two_arm", False),
@@ -262,19 +302,59 @@ CASES = [
     ({"type": "cluster_means_t"}, "clusters_individual", True),  # mixed clusters: error rows
     ({"type": "final_visit_t"}, "repeated", True),
     ({"type": "final_visit_t", "welch": True}, "repeated_dropout", True),
+    ({"type": "final_visit_t"}, "repeated_dropout_mcar", True),  # dropout, then intermittent MCAR
+    ({"type": "cluster_means_t"}, "clusters_mnar", True),
+    ({"type": "t_test"}, "clusters_mnar", True),
+    ({"type": "ols", "cov_type": "cluster"}, "clusters_mnar", True),
+    ({"type": "mann_whitney"}, "repeated_dropout", True),        # the two-arm view of the long table
     ({"type": "logrank"}, "survival", True),
     ({"type": "logrank", "alternative": "greater"}, "survival", True),
     ({"type": "ols"}, "two_arm", True),
     ({"type": "ancova", "cov_type": "HC3"}, "two_arm_baseline", True),
-    ({"type": "ols"}, "two_arm_missing", False),
+    # missing outcomes: X'WX with W the observed mask (complete cases, as statsmodels after dropna)
+    ({"type": "ols"}, "two_arm_missing", True),
+    ({"type": "ancova", "cov_type": "HC3"}, "two_arm_mar", True),
+    ({"type": "ancova", "alternative": "greater"}, "two_arm_mar", True),
+    ({"type": "ols", "cov_type": "HC1", "use_t": False}, "two_arm_mnar", True),
+    ({"type": "ols", "cov_type": "HC2"}, "two_arm_sparse", True),  # too few rows: per replicate
+    ({"type": "ols", "cov_type": "HC0"}, "three_arms_missing", True),
+    ({"type": "ols", "term": "C(arm)[T.2]"}, "three_arms_missing", True),
+    ({"type": "ols", "cov_type": "cluster"}, "clusters_variable_missing", True),
+    ({"type": "ols", "cov_type": "cluster", "use_t": False}, "clusters_variable_missing", True),
+    ({"type": "ols", "cov_type": "cluster"}, "clusters", False),  # complete data: per replicate, as before
+    ({"type": "ols"}, "clusters_variable_missing", True),
     ({"type": "ols"}, "three_arms", True),                # any complete table with the formula's columns
     ({"type": "multiple", "tests": [{"type": "t_test"}, {"type": "welch_t"}]}, "two_arm", True),
     ({"type": "multiple", "tests": [{"type": "logistic"}, {"type": "fisher_exact"}]}, "binary_small", True),
+    ({"type": "multiple", "tests": [{"type": "t_test"}, {"type": "welch_t"}, {"type": "tost", "margin": 0.5}]},
+     "two_arm_missing", True),                          # its tests batch with missing outcomes: so does it
+    ({"type": "multiple", "tests": [{"type": "t_test"}, {"type": "z_test"}], "method": "bonferroni"},
+     "two_arm_sparse", True),
+    ({"type": "multiple", "tests": [{"type": "welch_t"}], "comparisons": "each_vs_control"}, "three_arms_missing",
+     True),
 ]
 
 #: cases whose batch result marks some replicates as failed
 WITH_TROUBLE = {("logistic", "binary_small"), ("logistic", "binary_missing"), ("poisson_glm", "counts_small"), ("log_t", "paired"),
-                ("log_t", "one_sample"), ("cluster_means_t", "clusters_individual"), ("multiple", "binary_small")}
+                ("log_t", "one_sample"), ("cluster_means_t", "clusters_individual"), ("multiple", "binary_small"),
+                # sparse replicates handed to the per-replicate path: an empty arm raises ZeroDivisionError
+                # there (Student's and the z-test's SE); Welch's and the one-sample paths give NaN instead
+                ("t_test", "two_arm_sparse"), ("z_test", "two_arm_sparse"),
+                ("log_t", "one_sample_sparse"), ("log_t", "paired_missing"), ("multiple", "two_arm_sparse"),
+                # an empty sample: the per-replicate Hodges-Lehmann estimate raises ValueError
+                ("mann_whitney", "two_arm_sparse"), ("wilcoxon_signed_rank", "one_sample_sparse"),
+                # an arm without observed outcomes: statsmodels has no arm coefficient (ValueError)
+                ("ols", "two_arm_sparse")}
+
+
+def test_sparse_batches_have_replicates_without_a_statistic():
+    # the sparse cases above exercise the hand-over to the per-replicate path: some replicates
+    # keep fewer than two observed values in an arm (or none at all)
+    two = batch_of("two_arm_sparse").layout("two_arm")
+    assert np.any(np.minimum(two.n0, two.n1) < 2) and np.any(np.minimum(two.n0, two.n1) == 0)
+    assert np.any(np.minimum(two.n0, two.n1) >= 2)
+    one = batch_of("one_sample_sparse").layout("one_sample")
+    assert np.any(one.observed.sum(axis=1) < 2)
 
 
 def _case_id(case):
@@ -308,10 +388,11 @@ def test_batch_path_equals_per_replicate_path(spec, process, takes_batch):
         np.testing.assert_allclose(np.broadcast_to(got, (batch.size,)), ref[f], rtol=1e-9, atol=1e-12,
                                    equal_nan=True, err_msg=f)
     if res.pvalues is not None:
+        ok = np.array([not c.startswith("error:") for c in ref_cause])  # no p-values where it raises
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            per = np.array([analysis(batch.replicate(i)).pvalues for i in range(batch.size)])
-        np.testing.assert_allclose(res.pvalues, per, rtol=1e-9, atol=1e-12, equal_nan=True)
+            per = np.array([analysis(batch.replicate(i)).pvalues for i in np.flatnonzero(ok)])
+        np.testing.assert_allclose(res.pvalues[ok], per, rtol=1e-9, atol=1e-12, equal_nan=True)
 
 
 def test_mixed_model_declares_its_layout():
@@ -476,3 +557,28 @@ def test_generic_supports_batch_follows_the_declaration():
     with pytest.raises(ValueError, match="paired_t: no batch path for this batch .* layouts paired; the batch has "
                                          "table, two_arm"):
         sp.PairedT().batch(batch_of("two_arm"))
+
+
+def test_engine_keeps_the_batch_path_with_missing_outcomes():
+    # 20% MCAR / MAR / MNAR outcomes: the t-test family runs on the batch path through the engine
+    # (before, any missingness sent it per replicate), and records the per-replicate path's
+    # values (scipy.stats.ttest_ind on the observed values of replicate 0 as the reference)
+    analyses = {"t": sp.TTest(), "w": sp.WelchT(), "z": sp.ZTest(), "tost": sp.TOST(margin=0.5),
+                "ni": sp.NonInferiority(margin=0.3), "mw": sp.MannWhitney(), "ols": sp.OLS(),
+                "ancova": sp.Ancova(cov_type="HC3")}
+    for miss in (sp.MCAR(rate=0.2), sp.MAR(rate=0.2), sp.MNAR(rate=0.2)):
+        proc = sp.TwoArm(n=15, effect=0.5, baseline_corr=0.3, missing=miss)
+        out = run_chunk(sp.Scenario(proc, analyses=analyses), 7, 0, 0, 40)
+        assert all(out.paths[k] == "batch" for k in analyses), out.paths
+        batch = proc.draw_batch(np.random.default_rng(chunk_seed(7, 0, 0)), 40)
+        t = batch.replicate(0)
+        ok = np.isfinite(t["y"])
+        y, arm = t["y"][ok], t["arm"][ok]
+        ref = stats.ttest_ind(y[arm == 1], y[arm == 0]).pvalue
+        assert out.records["t"]["pvalue"][0] == pytest.approx(ref, rel=1e-10)
+    pairs = {"p": sp.PairedT(), "l": sp.TTest(), "w": sp.WilcoxonSignedRank()}
+    paired = run_chunk(sp.Scenario(sp.NormalPaired(n=12, missing=sp.MCAR(rate=0.2)), analyses=pairs), 7, 0, 0, 20)
+    assert paired.paths == {"p": "batch", "l": "batch", "w": "batch"}
+    clusters = sp.ClusterTrial(clusters=6, cluster_size=5, cluster_size_cv=0.4, icc=0.1, missing=sp.MCAR(rate=0.2))
+    out = run_chunk(sp.Scenario(clusters, analyses={"cr": sp.OLS(cov_type="cluster"), "t": sp.TTest()}), 7, 0, 0, 20)
+    assert out.paths == {"cr": "batch", "t": "batch"}

@@ -45,3 +45,18 @@ def test_unknown_row_is_a_one_line_error(capsys):
     else:  # pragma: no cover
         raise AssertionError("--only z should exit with status 2")
     assert "unknown row 'z'" in capsys.readouterr().err
+
+
+def test_missing_rows_run_and_agree_with_the_libraries(tmp_path):
+    # rows m: the batch paths with 20% MCAR outcomes against scipy / statsmodels loops on the same
+    # replicates (the references); tiny sizes, so only the answers are checked, never the timings
+    bench = _load()
+    bench.SIZES["m_reps"] = (300, 300)
+    bench.SIZES["m_loop"] = (40, 40)
+    out = tmp_path / "bench.json"
+    assert bench.main(["--quick", "--only", "m", "--repeats", "1", "--json", str(out)]) == 0
+    rows = json.loads(out.read_text())["rows"]
+    assert [r["row"] for r in rows] == [f"m{i:02d}" for i in range(1, 15)]
+    for r in rows:
+        assert r["answers_agree"] is True, r
+        assert math.isfinite(r["ratio"]) and r["ratio"] > 0

@@ -246,6 +246,29 @@ def rowwise(analysis, batch, rows) -> tuple[dict[str, np.ndarray], dict[str, np.
     return fields_, trouble, messages
 
 
+def hand_over(analysis, batch, res: BatchResult, rows) -> BatchResult:
+    """Replace replicates ``rows`` (a boolean mask (R,)) of ``res`` by the per-replicate path's.
+
+    For the few replicates a batch path has no closed form for (too few observed values...):
+    their fields and trouble become exactly what :func:`rowwise` gives. ``res`` is changed
+    in place and returned.
+    """
+    rows = np.flatnonzero(np.asarray(rows, bool))
+    if rows.size == 0:
+        return res
+    vals, trouble, messages = rowwise(analysis, batch, rows)
+    for f, v in vals.items():
+        cur = getattr(res, f)
+        if cur is None:
+            continue
+        cur = np.array(np.broadcast_to(cur, (batch.size,)), float)
+        cur[rows] = v
+        setattr(res, f, cur)
+    for cause, mask in trouble.items():
+        res.mark(cause, mask, messages[cause])
+    return res
+
+
 class Analysis(Component):
     """Base class of built-in analyses."""
 

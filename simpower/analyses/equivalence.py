@@ -16,8 +16,8 @@ from scipy import stats
 
 from .._validation import Bool, Real
 from ..errors import ParameterError
-from .base import CI_LEVEL, Analysis, BatchResult, NullBoundary, TestResult
-from .numeric import mean_var, p_from_t, split_arms, two_sample_se_df
+from .base import CI_LEVEL, Analysis, BatchResult, NullBoundary, TestResult, hand_over
+from .numeric import masked_t_parts, mean_var, p_from_t, split_arms, two_sample_se_df
 from .ttests import TTest
 
 POSITIVE = Real(0.0, low_open=True)
@@ -44,16 +44,19 @@ def _scipy_p(samples, value, equal_var, alternative):
 
 
 def _batch_parts(layout, equal_var):
+    """(estimate, se, df, few): complete batches by the original arithmetic (few None), others masked."""
+    if not layout.complete:
+        return masked_t_parts(layout, equal_var)
     with np.errstate(all="ignore"):
         if layout.kind == "one_sample":
             y = layout.y
             m, v = mean_var(y)
-            return m, np.sqrt(v / y.shape[1]), y.shape[1] - 1.0
+            return m, np.sqrt(v / y.shape[1]), y.shape[1] - 1.0, None
         y0, y1 = layout.arms()
         n0, n1 = y0.shape[1], y1.shape[1]
         m0, v0 = mean_var(y0)
         m1, v1 = mean_var(y1)
-        return (m1 - m0, *two_sample_se_df(n0, n1, v0, v1, equal_var))
+        return (m1 - m0, *two_sample_se_df(n0, n1, v0, v1, equal_var), None)
 
 
 def _ci(est, se, df, level):
@@ -127,11 +130,12 @@ class TOST(Analysis):
 
     def batch(self, batch):
         low, high = self.bounds
-        est, se, df = _batch_parts(self.batch_layout(batch), self.equal_var)
+        est, se, df, few = _batch_parts(self.batch_layout(batch), self.equal_var)
         with np.errstate(all="ignore"):
             p = np.maximum(p_from_t((est - low) / se, df, "greater"), p_from_t((est - high) / se, df, "less"))
             lo, hi = _ci(est, se, df, self.ci_level)
-        return BatchResult(pvalue=p, estimate=est, se=se, ci_low=lo, ci_high=hi)
+        res = BatchResult(pvalue=p, estimate=est, se=se, ci_low=lo, ci_high=hi)
+        return res if few is None else hand_over(self, batch, res, few)
 
 
 class NonInferiority(Analysis):
@@ -179,8 +183,10 @@ class NonInferiority(Analysis):
 
     def batch(self, batch):
         value, alt = self._null
-        est, se, df = _batch_parts(self.batch_layout(batch), self.equal_var)
+        est, se, df, few = _batch_parts(self.batch_layout(batch), self.equal_var)
         with np.errstate(all="ignore"):
             lo, hi = _ci(est, se, df, self.ci_level)
-            return BatchResult(pvalue=p_from_t((est - value) / se, df, alt), estimate=est, se=se,
-                               ci_low=lo, ci_high=hi)
+            res = BatchResult(pvalue=p_from_t((est - value) / se, df, alt), estimate=est, se=se,
+                              ci_low=lo, ci_high=hi)
+        return res if few is None else hand_over(self, batch, res, few)
+

@@ -41,7 +41,7 @@ import numpy as np
 from scipy import special, stats
 
 from .._validation import Bool, Choice, Real
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
 from .numeric import p_from_z, paired_differences, split_arms
 
 #: largest number of pairwise differences held in memory at once by the numpy path
@@ -321,6 +321,49 @@ def pseudo_median(d: np.ndarray, ci_level: float):
     return _hl_from_order_stats(v, mm, k, r)
 
 
+def _count_groups(counts: np.ndarray):
+    """Replicates grouped by their observed counts: yields (counts row, replicate indices), in order.
+
+    ``counts`` (R, k) integers (one column per sample). Rows of a group have the same
+    counts, so their observed values compact into dense (rows, count) arrays.
+    """
+    keys, inv = np.unique(counts, axis=0, return_inverse=True)
+    inv = inv.reshape(-1)
+    order = np.argsort(inv, kind="stable")
+    bounds = np.cumsum(np.bincount(inv, minlength=keys.shape[0]))[:-1]
+    for key, rows in zip(keys, np.split(order, bounds)):
+        yield key, rows
+
+
+def _compact(y: np.ndarray, mask: np.ndarray, rows: np.ndarray, count: int) -> np.ndarray:
+    """The masked values of ``rows`` of ``y`` as a dense (len(rows), count) array, in column order."""
+    return y[rows][mask[rows]].reshape(rows.size, count)
+
+
+def _by_counts(analysis, batch, samples, dense) -> BatchResult:
+    """A batch path with missing outcomes: ``dense`` run on replicates grouped by observed counts.
+
+    ``samples``: [(y, mask)] per sample, (R, N) each. Replicates of one group have the
+    same count in every sample, so their observed values form dense arrays and ``dense``
+    (the complete-data computation, a function of those arrays returning a
+    :class:`BatchResult`) applies unchanged. Replicates with fewer than two observed
+    values in a sample go to the per-replicate path (:func:`hand_over`).
+    """
+    r = batch.size
+    counts = np.column_stack([np.count_nonzero(m, axis=1) for _, m in samples])
+    few = np.any(counts < 2, axis=1)
+    out: dict[str, np.ndarray] = {"pvalue": np.full(r, np.nan)}
+    for key, rows in _count_groups(counts):
+        if np.any(key < 2):
+            continue
+        res = dense(*(_compact(y, m, rows, int(c)) for (y, m), c in zip(samples, key)))
+        for f, v in res.items():
+            if f in ("trouble", "trouble_messages", "names", "pvalues"):
+                continue
+            out.setdefault(f, np.full(r, np.nan))[rows] = v
+    return hand_over(analysis, batch, BatchResult(**out), few)
+
+
 # -- Mann-Whitney ------------------------------------------------------------------------
 class MannWhitney(Analysis):
     """Mann-Whitney (Wilcoxon rank-sum) test of two arms, normal approximation.
@@ -355,7 +398,9 @@ class MannWhitney(Analysis):
     the scenario's ``true_effects`` otherwise); the probability index only
     with ``true_effects``.
     Missing outcomes (NaN) are dropped. The batch path (contiguous arms, no
-    missing values) sorts the pooled arms of all replicates at once; the
+    missing values) sorts the pooled arms of all replicates at once; with missing
+    outcomes it does so for each group of replicates with the same observed
+    counts in the two arms (their observed values compacted); the
     Hodges-Lehmann order statistics use the compiled kernel when numba is
     installed (see the module notes).
     """
@@ -413,11 +458,20 @@ class MannWhitney(Analysis):
     layouts = ("two_arm",)
 
     def _supports(self, layout):
-        """Complete batches with contiguous arms."""
-        return layout.complete and layout.split is not None
+        """Complete batches with contiguous arms; batches of a process with missing outcomes."""
+        return layout.missing or (layout.complete and layout.split is not None)
 
     def batch(self, batch):
-        y0, y1 = self.batch_layout(batch).arms()
+        layout = self.batch_layout(batch)
+        if not layout.complete:  # complete cases, grouped by the observed counts of the two arms
+            obs = layout.observed
+            masks = (obs & (layout.arm == 0), obs & (layout.arm == 1))
+            return _by_counts(self, batch, [(layout.y, masks[0]), (layout.y, masks[1])], self._dense)
+        y0, y1 = layout.arms()
+        return self._dense(y0, y1)
+
+    def _dense(self, y0, y1):
+        """The batch statistics of dense arms ``y0`` (R, n0) and ``y1`` (R, n1)."""
         x1 = y1 - self.null_value
         n0, n1 = y0.shape[1], x1.shape[1]
         n = n0 + n1
@@ -486,12 +540,19 @@ class WilcoxonSignedRank(Analysis):
     layouts = ("one_sample", "paired")
 
     def _supports(self, layout):
-        """Complete batches (no missingness, no padding)."""
-        return layout.complete
+        """Complete batches (no missingness, no padding), or of a process with missing outcomes."""
+        return layout.complete or layout.missing
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
         d = layout.y if layout.kind == "one_sample" else layout.y1 - layout.y0
+        if not layout.complete:  # complete cases (pairs), grouped by their observed count
+            mask = layout.observed if layout.kind == "one_sample" else layout.pair_observed
+            return _by_counts(self, batch, [(d, mask)], self._dense)
+        return self._dense(d)
+
+    def _dense(self, d):
+        """The batch statistics of dense values (or within-pair differences) ``d`` (R, n)."""
         x = d - self.null_value
         zero = x == 0
         nz = zero.sum(axis=1).astype(float)

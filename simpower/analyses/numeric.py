@@ -68,6 +68,58 @@ def mean_var(y):
     return m, v
 
 
+def masked_mean_var(y, mask):
+    """Row counts, means and sample variances (ddof 1) of the values of ``y`` where ``mask`` is True.
+
+    ``y`` and ``mask`` are (R, N); values outside the mask (NaN, padding) never enter the
+    arithmetic (they are replaced by 0 before summing). Returns ``(n, m, v)``, each (R,);
+    rows with n < 2 get a non-finite variance (n = 0: a NaN mean), without warnings.
+    """
+    n = np.count_nonzero(mask, axis=1)
+    with np.errstate(all="ignore"):
+        m = np.where(mask, y, 0.0).sum(axis=1) / n
+        d = np.where(mask, y - m[:, None], 0.0)
+        v = np.einsum("ij,ij->i", d, d) / (n - 1)
+    return n, m, v
+
+
+def masked_arms(layout, y=None):
+    """``(n0, m0, v0), (n1, m1, v1)``: :func:`masked_mean_var` of each arm of a two-arm layout.
+
+    Only observed outcomes count (``layout.observed``: finite and present). ``y`` (R, N)
+    replaces the layout's outcomes (e.g. their logarithms) where given.
+    """
+    y = layout.y if y is None else y
+    obs = layout.observed
+    if layout.split is not None:
+        s = layout.split
+        return masked_mean_var(y[:, :s], obs[:, :s]), masked_mean_var(y[:, s:], obs[:, s:])
+    return masked_mean_var(y, obs & (layout.arm == 0)), masked_mean_var(y, obs & (layout.arm == 1))
+
+
+def masked_t_parts(layout, equal_var: bool = True, y=None):
+    """``(estimate, se, df, few)`` of a t statistic from the observed outcomes of a layout (arrays (R,)).
+
+    One sample: the mean; ``paired``: the mean within-pair difference arm 1 - arm 0 over
+    pairs with both outcomes observed; ``two_arm``: mean(arm 1) - mean(arm 0), pooled
+    (``equal_var``) or Welch's SE and df. ``y`` replaces the outcomes (e.g. their
+    logarithms). ``few`` marks replicates with fewer than 2 observed values in a sample,
+    whose statistics are not defined (a batch path hands them to the per-replicate path).
+    """
+    with np.errstate(all="ignore"):
+        if layout.kind == "two_arm":
+            (n0, m0, v0), (n1, m1, v1) = masked_arms(layout, y)
+            se, df = two_sample_se_df(n0, n1, v0, v1, equal_var)
+            return m1 - m0, se, df, (n0 < 2) | (n1 < 2)
+        if layout.kind == "paired":
+            y = layout.y if y is None else y
+            k = layout.y0.shape[1]
+            n, m, v = masked_mean_var(y[:, k:] - y[:, :k], layout.pair_observed)
+        else:
+            n, m, v = masked_mean_var(layout.y if y is None else y, layout.observed)
+        return m, np.sqrt(v / n), n - 1.0, n < 2
+
+
 def split_arms(data):
     """Finite outcomes of arm 0 and arm 1 of one long table (``y``, ``arm`` labels exactly 0 and 1).
 

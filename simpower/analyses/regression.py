@@ -8,9 +8,15 @@ interactions ``a:b`` and ``a*b``, parentheses, ``0``/``1`` and ``- term``;
 nothing else is accepted, so a scenario file cannot run code through it.
 
 The batch path (main-effects formulas with an intercept, categorical columns
-shared by all replicates, no missing outcomes; ``cov_type`` 'nonrobust' or
-'HC0'-'HC3') solves the normal equations of every replicate at once with
-numpy on stacked (R, p, p) matrices, and agrees with statsmodels to about 1e-10.
+shared by all replicates; ``cov_type`` 'nonrobust' or 'HC0'-'HC3') solves the
+normal equations of every replicate at once with numpy on stacked (R, p, p)
+matrices, and agrees with statsmodels to about 1e-10. With missing outcomes
+(a process with a missingness mechanism, padded or not) it weights the rows by
+the observed mask W (X'WX, X'Wy: complete cases, as the per-replicate
+``dropna``), with per-replicate residual df, and also covers ``cov_type =
+'cluster'`` (CR1 with G - 1 df, G the clusters with an observed row, as
+statsmodels); a replicate where a level of a categorical column has no observed
+row, or with no residual df, goes to the per-replicate path.
 """
 
 from __future__ import annotations
@@ -23,7 +29,7 @@ from scipy import stats
 from .._validation import Anything, Bool, Choice, Real
 from ..errors import ParameterError, nearest
 from ..formula import Formula, FormulaText, parse_formula  # noqa: F401  (parse_formula: public here too)
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
 from .numeric import p_from_t, p_from_z
 
 COV_TYPES = ("nonrobust", "HC0", "HC1", "HC2", "HC3", "cluster")
@@ -154,13 +160,16 @@ class OLS(Analysis):
 
     def supports_batch(self, batch):
         f = self.parsed
-        if self.cov_type == "cluster" or not f.intercept or not f.main_effects_only or f.references:
+        if not f.intercept or not f.main_effects_only or f.references:
             return False
-        if batch.present is not None or batch.missing:
+        if batch.missing:  # missing outcomes (padded or not): the masked path
+            if self.cov_type == "cluster" and "cluster" not in batch:
+                return False
+        elif self.cov_type == "cluster" or batch.present is not None:
             return False
         for term in f.terms:
             kind, col = term[0]
-            if kind == "cat" and col not in batch.shared:
+            if kind == "cat" and col not in batch.shared and not batch.missing:
                 return False
             if col not in batch:
                 return False
@@ -172,8 +181,11 @@ class OLS(Analysis):
             return False
         return self.coefficient in names
 
-    def _design(self, batch):
-        """Design (N, p) shared or (R, N, p) per replicate, and its column names."""
+    def _design(self, batch, present=None):
+        """Design (N, p) shared or (R, N, p) per replicate, and its column names.
+
+        ``present`` (R, N): the levels of a categorical column are those of these rows only.
+        """
         f = self.parsed
         cols, names = [], []
         n = np.shape(batch[f.outcome])[-1]
@@ -183,7 +195,8 @@ class OLS(Analysis):
         for ((kind, col),) in f.terms:
             v = np.asarray(batch[col])
             if kind == "cat":
-                for lev in np.unique(v)[1:]:
+                levels = np.unique(v[present] if present is not None and v.ndim == 2 else v)
+                for lev in levels[1:]:
                     cols.append((v == lev).astype(float))
                     names.append(f"C({col})[T.{_level(lev)}]")
             else:
@@ -195,6 +208,8 @@ class OLS(Analysis):
         return np.stack(stacked, axis=-1), names
 
     def batch(self, batch):
+        if batch.missing:
+            return self._masked(batch)
         f = self.parsed
         x, names = self._design(batch)
         y = np.asarray(batch[f.outcome], float)
@@ -226,6 +241,84 @@ class OLS(Analysis):
             out = self._inference(beta[:, k], np.sqrt(var), df)
         out.pop("statistic")
         return BatchResult(**out)
+
+    def _masked(self, batch):
+        """Complete cases under the observed mask W: X'WX, X'Wy, residual df n_obs - p per replicate."""
+        f = self.parsed
+        x, names = self._design(batch, batch.present)
+        y = np.asarray(batch[f.outcome], float)
+        r, n, p = batch.size, y.shape[-1], len(names)
+        y = np.broadcast_to(y, (r, n))
+        xb = np.broadcast_to(x, (r, n, p))
+        w = np.isfinite(y)                                   # dropna over the formula's columns
+        for col in f.columns[1:] + (["cluster"] if self.cov_type == "cluster" else []):
+            v = np.asarray(batch[col])
+            if np.issubdtype(v.dtype, np.floating):
+                w = w & np.isfinite(v)
+        if batch.present is not None:
+            w = w & batch.present
+        n_obs = np.count_nonzero(w, axis=1)
+        # replicates with a categorical level (reference included) without an observed row: statsmodels
+        # then has other coefficients; with no residual df: no SE; both per replicate
+        few = n_obs <= p
+        for ((kind, col),) in f.terms:
+            if kind == "cat":
+                v = np.asarray(batch[col])
+                for lev in np.unique(v[w] if v.ndim == 2 else v):
+                    few |= ~np.any(w & (v == lev), axis=1)
+        k = names.index(self.coefficient)
+        with np.errstate(all="ignore"):
+            xw = np.where(w[:, :, None], xb, 0.0)
+            yw = np.where(w, y, 0.0)
+            a = np.einsum("rni,rnj->rij", xw, xw)
+            a[few] = np.eye(p)                               # handed over below; keeps inv() defined
+            try:
+                ainv = np.linalg.inv(a)
+            except np.linalg.LinAlgError:
+                ainv = np.linalg.pinv(a)
+            beta = np.einsum("rij,rnj,rn->ri", ainv, xw, yw)
+            e = yw - np.einsum("rnj,rj->rn", xw, beta)       # 0 on rows not observed
+            df = (n_obs - p).astype(float)
+            if self.cov_type == "nonrobust":
+                var = np.einsum("rn,rn->r", e, e) / df * ainv[:, k, k]
+            else:
+                wx = np.einsum("rnj,rjk->rnk", xw, ainv)    # rows of X (X'WX)^-1
+                c = wx[:, :, k]
+                if self.cov_type == "cluster":
+                    var, g = self._cluster_var(batch, c * e, w, n_obs, p)
+                    df = (g - 1).astype(float)
+                    few = few | (g < 2)
+                else:
+                    e2 = e * e
+                    if self.cov_type in ("HC2", "HC3"):
+                        h = np.einsum("rnj,rnj->rn", wx, xw)   # leverages (0 on rows not observed)
+                        e2 = e2 / (1.0 - h) ** (1 if self.cov_type == "HC2" else 2)
+                        # a leverage of 1 (a level observed once): 0/0 up to rounding, per replicate
+                        few = few | np.any(h > 1.0 - 1e-8, axis=1)
+                    var = np.einsum("rn,rn->r", c * c, e2)
+                    if self.cov_type == "HC1":
+                        var = var * n_obs / df
+            out = self._inference(beta[:, k], np.sqrt(var), df)
+        out.pop("statistic")
+        return hand_over(self, batch, BatchResult(**out), few)
+
+    @staticmethod
+    def _cluster_var(batch, score, w, n_obs, p):
+        """Cluster-robust variance of one coefficient from its per-row scores, and G (R,).
+
+        statsmodels' 'cluster' covariance with its default small-sample correction (CR1):
+        G / (G - 1) * (N - 1) / (N - p) * sum over clusters of the squared score sums, G the
+        clusters with an observed row.
+        """
+        r, n = score.shape
+        cl = np.broadcast_to(np.asarray(batch["cluster"]), (r, n))
+        labels, codes = np.unique(cl, return_inverse=True)
+        g_all = labels.size
+        idx = codes.reshape(r, n) + g_all * np.arange(r)[:, None]
+        sums = np.bincount(idx[w], weights=score[w], minlength=r * g_all).reshape(r, g_all)
+        g = np.count_nonzero(np.bincount(idx[w], minlength=r * g_all).reshape(r, g_all), axis=1)
+        var = (g / (g - 1.0)) * ((n_obs - 1.0) / (n_obs - p)) * np.einsum("rg,rg->r", sums, sums)
+        return var, g
 
 
 class Ancova(OLS):

@@ -25,8 +25,8 @@ import numpy as np
 from scipy import special, stats
 
 from .._validation import Bool, Choice, Int, Real
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
-from .numeric import mean_var, p_from_t, paired_differences, split_arms, two_sample_se_df
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
+from .numeric import masked_t_parts, mean_var, p_from_t, paired_differences, split_arms, two_sample_se_df
 
 POSITIVE = Real(0.0, low_open=True)
 SEED = Int(low=0)
@@ -290,14 +290,21 @@ class LogT(Analysis):
     layouts = ("one_sample", "paired", "two_arm")
 
     def _supports(self, layout):
-        """Complete batches; two arms in contiguous blocks and not paired (paired data take the paired layout)."""
-        if layout.kind == "two_arm" and ("pair" in layout or layout.split is None):
+        """Two arms not paired (paired data take the paired layout); complete batches in contiguous blocks.
+
+        Batches of a process with missing outcomes take the masked path (complete cases).
+        """
+        if layout.kind == "two_arm" and "pair" in layout:
             return False
-        return layout.complete
+        if layout.missing:
+            return True
+        return layout.complete and (layout.kind != "two_arm" or layout.split is not None)
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
         y = layout.y
+        if not layout.complete:
+            return self._masked(batch, layout)
         bad = np.any(y <= 0, axis=1)
         with np.errstate(all="ignore"):
             ly = np.log(np.where(y > 0, y, np.nan))
@@ -325,3 +332,20 @@ class LogT(Analysis):
         if bad.any():
             out.mark("error:ValueError", bad, "ValueError: log_t needs positive outcomes")
         return out
+
+    def _masked(self, batch, layout):
+        """Missing outcomes or padding: the t statistic of the observed logarithms (complete cases)."""
+        y, obs = layout.y, layout.observed
+        bad = np.any(obs & (y <= 0), axis=1)
+        with np.errstate(all="ignore"):
+            ly = np.log(np.where(y > 0, y, np.nan))
+            est, se_log, df, few = masked_t_parts(layout, self.equal_var, ly)
+            est[bad] = np.nan
+            t = (est - math.log(self.null_ratio)) / se_log
+            crit = stats.t.ppf(0.5 + self.ci_level / 2, df)
+            ratio = np.exp(est)
+            out = BatchResult(pvalue=p_from_t(t, df, self.alternative), estimate=ratio, se=ratio * se_log,
+                              ci_low=np.exp(est - crit * se_log), ci_high=np.exp(est + crit * se_log))
+        if bad.any():
+            out.mark("error:ValueError", bad, "ValueError: log_t needs positive outcomes")
+        return hand_over(self, batch, out, few & ~bad)

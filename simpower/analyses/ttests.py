@@ -5,7 +5,10 @@ with column ``y``; a two-arm table with ``y`` and ``arm`` in {0, 1} (the
 estimate is mean(arm 1) - mean(arm 0)); a paired table with ``y``, ``arm`` and
 ``pair``. Missing outcomes (NaN in ``y``) are dropped (complete cases). The
 batch paths take complete batches (no missingness, no padding) whose arms are
-contiguous blocks.
+contiguous blocks (the original arithmetic, unchanged), or batches of a process
+with missing outcomes (padded or not), whose observed values are summed under the observed mask
+(complete cases, as the per-replicate paths); a replicate with fewer than two
+observed values in a sample is handed to the per-replicate path.
 
 The per-replicate paths call :mod:`scipy.stats`; the batch paths compute the
 same statistics with numpy over a chunk of replicates, and the tests check the
@@ -20,8 +23,8 @@ import numpy as np
 from scipy import stats
 
 from .._validation import Real
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
-from .numeric import mean_var, p_from_t, p_from_z, paired_differences, split_arms, two_sample_se_df
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
+from .numeric import masked_t_parts, mean_var, p_from_t, p_from_z, paired_differences, split_arms, two_sample_se_df
 
 POSITIVE = Real(0.0, low_open=True)
 
@@ -48,12 +51,25 @@ class _TBase(Analysis):
         lo, hi = _ci(est, se, crit)
         return BatchResult(pvalue=p, estimate=est, se=se, ci_low=lo, ci_high=hi)
 
+    def _masked(self, batch, layout, equal_var):
+        """Batch path with missing outcomes or padding: complete cases under the observed mask."""
+        est, se, df, few = masked_t_parts(layout, equal_var)
+        with np.errstate(all="ignore"):
+            res = self._result(est, se, df)
+        return hand_over(self, batch, res, few)
+
 
 def _complete_blocks(layout) -> bool:
-    """One sample or pairs: complete; two arms: complete and contiguous (the batch paths' columns)."""
-    if not layout.complete:
-        return False
-    return layout.kind != "two_arm" or layout.split is not None
+    """Complete batches: one sample, pairs, or two arms in contiguous blocks (the original columns).
+
+    Batches of a process with missing outcomes are taken whatever their arm layout and padding:
+    the masked path (:func:`masked_t_parts`) reads the observed mask. Padding alone (variable
+    cluster sizes, no missingness) stays per replicate, so that the numbers of complete-data
+    scenarios are those they always were.
+    """
+    if layout.missing:
+        return True
+    return layout.complete and (layout.kind != "two_arm" or layout.split is not None)
 
 
 class TTest(_TBase):
@@ -89,6 +105,8 @@ class TTest(_TBase):
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
+        if not layout.complete:
+            return self._masked(batch, layout, equal_var=True)
         with np.errstate(all="ignore"):
             if layout.kind == "one_sample":
                 y = layout.y
@@ -126,7 +144,10 @@ class WelchT(_TBase):
     _supports = staticmethod(_complete_blocks)
 
     def batch(self, batch):
-        y0, y1 = self.batch_layout(batch).arms()
+        layout = self.batch_layout(batch)
+        if not layout.complete:
+            return self._masked(batch, layout, equal_var=False)
+        y0, y1 = layout.arms()
         n0, n1 = y0.shape[1], y1.shape[1]
         with np.errstate(all="ignore"):
             m0, v0 = mean_var(y0)
@@ -160,6 +181,8 @@ class PairedT(_TBase):
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
+        if not layout.complete:
+            return self._masked(batch, layout, equal_var=True)
         d = layout.y1 - layout.y0
         with np.errstate(all="ignore"):
             m, v = mean_var(d)
@@ -205,6 +228,18 @@ class ZTest(Analysis):
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
+        if not layout.complete:
+            est, _, _, few = masked_t_parts(layout)
+            obs = layout.observed
+            with np.errstate(all="ignore"):
+                if layout.kind == "one_sample":
+                    se = self.sd / np.sqrt(np.count_nonzero(obs, axis=1))
+                else:
+                    n0 = np.count_nonzero(obs & (layout.arm == 0), axis=1)
+                    n1 = np.count_nonzero(obs & (layout.arm == 1), axis=1)
+                    se = np.sqrt(self.sd**2 / n0 + self._sd1() ** 2 / n1)
+                res = self._out(est, se)
+            return hand_over(self, batch, res, few)
         if layout.kind == "one_sample":
             y = layout.y
             est = y.mean(axis=1)
