@@ -37,7 +37,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .._validation import Choice, Int, Real
+from .._validation import Int, Real
 from ..engine import run_many
 from ..errors import ParameterError, nearest
 from .sequential import as_memory_store, point_key, seed_with_store
@@ -774,13 +774,8 @@ def detectable_effect(scenario, power: float = 0.8, *, parameter: str | None = N
                         sign=sign, **out)
 
 
-#: fields of the [search] block of a scenario file
-SEARCH_FIELDS = {
-    "find": Choice(("size", "effect")), "power": Real(0.0, 1.0, low_open=True, high_open=True), "parameter": None,
-    "low": Real(), "high": Real(), "step": Real(0.0, low_open=True), "scale": Choice(tuple(SCALES)),
-    "level": Real(0.5, 1.0, high_open=True), "rel_tol": Real(0.0, 1.0, low_open=True, high_open=True),
-    "max_reps": Int(low=1), "chunk_size": Int(low=1), "analysis": None, "pilot_points": Int(low=2),
-}
+# the [search] block's fields live with the other blocks (simpower.blocks)
+from ..blocks import SEARCH_FIELDS  # noqa: E402,F401
 
 
 def search(scenario, find: str = "size", **options) -> SearchResult:

@@ -24,7 +24,7 @@ from __future__ import annotations
 import math
 from typing import Sequence
 
-from .._validation import Choice, Int, Real
+from .._validation import Int, Real
 from ..engine import run_many
 from ..engine.chunk import ChunkOutput
 from ..engine.runner import default_chunk_size
@@ -286,28 +286,5 @@ def run_to_mcse(scenario, target_mcse: float = 0.005, *, max_reps: int = MAX_REP
                             engine=engine)[0]
 
 
-def read_block(block_name: str, block, fields: dict) -> dict:
-    """Validate a scenario-file block (a TOML table) against ``{field: Constraint}``; return the cleaned fields.
-
-    Unknown fields raise ParameterError naming the nearest valid one; absent
-    fields are left out.
-    """
-    from ..errors import nearest
-
-    if block is None:
-        return {}
-    if not isinstance(block, dict):
-        raise ParameterError(f"[{block_name}] must be a table.")
-    out = {}
-    for key, value in block.items():
-        if key not in fields:
-            raise ParameterError(f"[{block_name}]: unknown field `{key}`.{nearest(key, fields)}")
-        con = fields[key]
-        out[key] = value if con is None else con.clean(f"{block_name}.{key}", value)
-    return out
-
-
-#: fields of the [sequential] block
-SEQUENTIAL_FIELDS = {"target_mcse": Real(0.0, 0.5, low_open=True, high_open=True), "min_reps": Int(low=1),
-                     "max_reps": Int(low=1), "chunk_size": Int(low=1), "which": Choice(("primary", "all"))}
-
+# the [sequential] block's fields and the block reader live with the other blocks (simpower.blocks)
+from ..blocks import SEQUENTIAL_FIELDS, read_block  # noqa: E402,F401

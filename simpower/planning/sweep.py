@@ -30,7 +30,7 @@ import pandas as pd
 
 from ..engine import normalize_seed, run_many
 from ..engine.runner import point_labels
-from .._validation import Bool, Int, Real
+
 from ..errors import ParameterError
 from .sequential import as_memory_store, check_target_mcse, point_key, run_many_to_mcse, seed_with_store
 from ..summaries import bradley_liberal
@@ -507,10 +507,8 @@ def grid_from_block(block: Mapping[str, Any]) -> Grid | None:
     return axes if axes.axes else None
 
 
-SWEEP_FIELDS = {"vary": None, "together": None, "reps": Int(low=1), "target_mcse": Real(0.0, 0.5, low_open=True,
-                high_open=True), "max_reps": Int(low=1), "min_reps": Int(low=1), "chunk_size": Int(low=1),
-                "x": None, "null_check": Bool()}
-NULL_CHECK_FIELDS = {"enabled": Bool(), "reps": Int(low=1), "at_grid": Bool()}
+# the [sweep] and [null_check] blocks' fields live with the other blocks (simpower.blocks)
+from ..blocks import NULL_CHECK_FIELDS, SWEEP_FIELDS  # noqa: E402,F401
 
 
 def parse_axis(text: str) -> tuple[str, Any]:
