@@ -94,7 +94,7 @@ def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | No
     return str(path)
 
 
-def engine_options(sf: ScenarioFile, args, fingerprint: str | None = None) -> dict:
+def engine_options(sf: ScenarioFile, args, fingerprint: str | None = None, with_store: bool = True) -> dict:
     """Keyword arguments for ``engine.run`` / ``run_many`` from the file and the command line.
 
     Gives n_jobs, chunk_size, progress, backend, address, max_failure_rate,
@@ -123,8 +123,24 @@ def engine_options(sf: ScenarioFile, args, fingerprint: str | None = None) -> di
         "max_failure_rate": rate if rate is not None else sf.run.get("max_failure_rate", 0.5),
         "timeout": timeout,
         "keep_records": False if lean else None,
-        "store": store_of(args, fingerprint or sf.scenario.fingerprint(), sf),
+        "store": store_of(args, fingerprint or sf.scenario.fingerprint(), sf) if with_store else None,
     }
+
+
+def execution_of(sf: ScenarioFile, args):
+    """The command's :class:`~simpower.execution.Execution` (without a store: see :func:`store_of`).
+
+    From the file (seed, jobs, chunk_size, fit_trouble, max_failure_rate, [execution]) and the command
+    line (--backend, --address, --timeout, --max-failure-rate, --summaries-only, --quiet), checked as
+    :func:`engine_options` checks them.
+    """
+    from ..execution import Execution
+
+    opts = engine_options(sf, args, fingerprint=None, with_store=False)
+    return Execution(seed=sf.run.get("seed"), n_jobs=opts["n_jobs"], chunk_size=opts["chunk_size"],
+                     progress=opts["progress"], backend=opts["backend"], address=opts["address"],
+                     max_failure_rate=opts["max_failure_rate"], timeout=opts["timeout"],
+                     keep_records=opts["keep_records"], fit_trouble=sf.run.get("fit_trouble", "failure"))
 
 
 def resume_hint(store: str | None, sf: ScenarioFile | None = None) -> str:
