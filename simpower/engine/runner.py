@@ -49,7 +49,6 @@ is counted as failure ``crash`` and the run goes on; see
 
 from __future__ import annotations
 
-import math
 import sys
 import time
 import warnings
@@ -61,7 +60,7 @@ from typing import Any, Iterator, Mapping, Protocol, Sequence
 
 import numpy as np
 
-from ..execution import DEFAULTS, Execution, check_address, resolve  # noqa: F401 (check_address: old home)
+from ..execution import Execution, check_address, resolve  # noqa: F401 (check_address: its old home)
 from ..errors import ParameterError, RunError
 from ..result import MissingRecords, RunResult
 from ..summaries import WARNING_PREFIX, PointStats
@@ -445,10 +444,6 @@ def executor_of(ex: Execution) -> tuple[int | None, str | None, Any]:
     if isinstance(n_jobs, int) and n_jobs < -1:  # joblib's "all but k"
         n_jobs = effective_jobs(n_jobs)
     return n_jobs, backend, address
-
-
-#: the keyword arguments of run / run_many that stand for execution settings (see simpower.execution)
-EXECUTION_KEYWORDS = tuple(DEFAULTS)
 
 
 def run_many(scenarios: Sequence, reps: int | Sequence[int], *, seed=None, n_jobs: int | None = -1,
