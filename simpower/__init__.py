@@ -41,6 +41,8 @@ from .planning.sequential import MemoryStore, point_key, run_many_to_mcse, run_t
 from .planning.sweep import Grid, Range, null_check, sweep
 from .scenario import Scenario
 from .scenario_files import load as load_scenario
+from .execution import Execution
+from .study import PlanResult, StudyPlan, execute, load_plan
 from .summaries import bradley_liberal, paired_difference, wilson_interval
 
 
@@ -57,7 +59,7 @@ def __getattr__(name):
 __all__ = [
     "__version__", "analytic",
     # scenario, running, results
-    "Scenario", "load_scenario", "run", "run_many", "RunResult", "Records", "RunInterrupted", "RunStore", "open_store",
+    "Scenario", "load_scenario", "load_plan", "StudyPlan", "execute", "PlanResult", "Execution", "run", "run_many", "RunResult", "Records", "RunInterrupted", "RunStore", "open_store",
     # planning
     "sweep", "Grid", "Range", "null_check", "required_n", "detectable_effect", "SearchResult", "run_to_mcse",
     "run_many_to_mcse", "MemoryStore", "point_key", "make_report",

@@ -173,7 +173,66 @@ class Anything:
         return value
 
 
-Constraint = Real | Int | Jobs | Choice | Bool | Anything
+@dataclass(frozen=True)
+class Text:
+    """A string (e.g. a parameter name, a path, a title)."""
+
+    optional: bool = False
+
+    def describe(self) -> str:
+        return "a string"
+
+    def clean(self, name: str, value: Any) -> Any:
+        if value is None and self.optional:
+            return None
+        if not isinstance(value, str):
+            raise ParameterError(f"`{name}` must be a string; got {value!r}.")
+        return value
+
+
+@dataclass(frozen=True)
+class Table:
+    """A table of named values (a TOML table, a Python dict); its entries are checked by its reader."""
+
+    optional: bool = False
+
+    def describe(self) -> str:
+        return "a table (name = value, ...)"
+
+    def clean(self, name: str, value: Any) -> Any:
+        if value is None and self.optional:
+            return None
+        if not isinstance(value, dict):
+            raise ParameterError(f"`{name}` must be a table (name = value, ...); got {value!r}.")
+        return value
+
+
+@dataclass(frozen=True)
+class OneOrMore:
+    """One value or a non-empty list of values, each meeting ``item``; with ``sep``, a string is split on it.
+
+    Cleans to a tuple.
+    """
+
+    item: Any
+    sep: str | None = None
+    optional: bool = False
+
+    def describe(self) -> str:
+        return f"{self.item.describe()}, or a list of them"
+
+    def clean(self, name: str, value: Any) -> Any:
+        if value is None and self.optional:
+            return None
+        if isinstance(value, str) and self.sep is not None:
+            value = [v.strip() for v in value.split(self.sep) if v.strip()]
+        values = list(value) if isinstance(value, (list, tuple)) else [value]
+        if not values:
+            raise ParameterError(f"`{name}` must be {self.describe()}; got an empty list.")
+        return tuple(self.item.clean(name, v) for v in values)
+
+
+Constraint = Real | Int | Jobs | Choice | Bool | Anything | Text | Table | OneOrMore
 
 
 def check_params(constraints: dict[str, Constraint], values: dict[str, Any], owner: str = "") -> dict[str, Any]:

@@ -25,6 +25,13 @@ Choice(options, optional)
     One of a fixed set of strings; a near miss gets "Did you mean ...?".
 Bool(optional)
     True or false.
+Text(optional)
+    A string (a parameter name, a path, a title).
+Table(optional)
+    A table of named values (its entries are checked by its reader).
+OneOrMore(item, sep, optional)
+    One value or a list of values, each meeting ``item`` (with ``sep``, a
+    string is split on it); cleans to a tuple.
 Anything(optional=True)
     No check here (the component's ``_check`` validates it).
 Nested(kind, optional)
@@ -40,8 +47,8 @@ Any object with ``describe() -> str``, ``clean(name, value) -> value`` and an
 
 from __future__ import annotations
 
-from ._validation import Anything, Bool, Choice, Constraint, Int, Real, check_params
+from ._validation import Anything, Bool, Choice, Constraint, Int, OneOrMore, Real, Table, Text, check_params
 from .components import Nested
 from .errors import ParameterError
 
-__all__ = ["Real", "Int", "Choice", "Bool", "Anything", "Nested", "Constraint", "check_params", "ParameterError"]
+__all__ = ["Real", "Int", "Choice", "Bool", "Text", "Table", "OneOrMore", "Anything", "Nested", "Constraint", "check_params", "ParameterError"]

@@ -19,9 +19,10 @@ and run settings::
 User code is referenced as ``type = "module:function"`` or
 ``type = "path/file.py:function"`` (relative to the file's folder, wherever the
 reference sits, also inside ``multiple.tests``); loading such a file imports and
-so runs that code, like any Python import. Blocks for
-later steps (``[sweep]``, ``[search]``, ...) are kept as data for the commands
-that read them. See docs/scenario-files.md for every block and field.
+so runs that code, like any Python import. The blocks of the study plan
+(``[sweep]``, ``[search]``, ``[sequential]``, ``[null_check]``, ``[report]``,
+``[store]``, ``[execution]``) are checked at load against their declared
+fields (:mod:`simpower.blocks`) and kept, cleaned, in ``blocks``. See docs/scenario-files.md for every block and field.
 """
 
 from __future__ import annotations
@@ -33,6 +34,7 @@ from pathlib import Path
 from typing import Any
 
 from ._validation import Choice, Int, Jobs, Real
+from .blocks import BLOCK_FIELDS, read_block
 from .errors import ParameterError, ScenarioFileError, SimpowerError, nearest
 from .registry import build
 from .scenario import Scenario
@@ -47,8 +49,8 @@ RUN_FIELDS = {
     "max_failure_rate": Real(0.0, 1.0, low_open=True),
 }
 SCENARIO_FIELDS = ("name", "description", "alpha", "true_effect", "true_effects", "process", "params", "analysis", "analyses")
-#: blocks read by other commands (sweep, required-n search, ...), validated by their readers
-EXTRA_BLOCKS = {"sweep", "search", "sequential", "null_check", "report", "store", "execution"}
+#: the blocks of a study plan, checked at load against their fields (simpower.blocks)
+EXTRA_BLOCKS = set(BLOCK_FIELDS)
 
 
 @dataclass
@@ -167,8 +169,23 @@ def _build(raw, text, where, base_dir, overrides, path) -> ScenarioFile:
             continue
         if key in RUN_FIELDS:
             run[key] = RUN_FIELDS[key].clean(key, value)
-    blocks = {k: raw[k] for k in EXTRA_BLOCKS if k in raw}
+    blocks = {}
+    for name, fields in BLOCK_FIELDS.items():
+        if name in raw:
+            blocks[name] = _read(raw[name], name, fields, text, where)
     return ScenarioFile(scenario, run, blocks, Path(path) if path else None, raw)
+
+
+def _read(block, name, fields, text, where) -> dict:
+    """A block checked against its fields; an error names the field and, when found, its line."""
+    try:
+        return read_block(name, block, fields)
+    except ParameterError as exc:
+        bad = next((k for k in (block if isinstance(block, dict) else ())
+                    if f"`{name}.{k}`" in str(exc)), None)
+        line = _line_of(text, name, bad) if bad is not None and text else None
+        at = f" (line {line})" if line else ""
+        raise ScenarioFileError(f"{where}{at}: {exc}") from None
 
 
 def parse_assignment(text: str) -> tuple[str, Any]:

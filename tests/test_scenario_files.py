@@ -284,3 +284,48 @@ def test_run_accepts_a_scenario_file_path(tmp_path):
     assert sp.run(p, n_jobs=1).reps == 500  # the file's reps when none is given
     with pytest.raises(sp.ParameterError, match=r"`scenario` must be a Scenario or a scenario file path"):
         sp.run({"process": "normal_two_arm"}, reps=10)
+
+
+# -- every block of the study plan is checked at load (simpower.blocks), in one line naming the field --------
+@pytest.mark.parametrize("block, pattern", [
+    ("[sweep]\nreps = -5", r"\(line \d+\): `sweep.reps` must be an integer >= 1; got -5\.$"),
+    ('[execution]\ntimeout = "soon"', r"`execution.timeout` must be a number > 0; got 'soon'\.$"),
+    ("[execution]\ntimeout = 0", r"`execution.timeout` must be > 0; got 0\.$"),
+    ('[execution]\nbackend = "lokyy"', r"`execution.backend` must be one of .*Did you mean 'loky'\?$"),
+    ("[execution]\nsummaries_only = 1", r"`execution.summaries_only` must be true or false; got 1\.$"),
+    ("[sweep]\nrep = 500", r"`sweep.rep` is not a field of \[sweep\]\. Did you mean 'reps'\?$"),
+    ("[sweep]\nvary = [1, 2]", r"`sweep.vary` must be a table"),
+    ("[sweep]\nx = 3", r"`sweep.x` must be a string; got 3\.$"),
+    ("[search]\npower = 1.2", r"`search.power` must be in \(0, 1\); got 1\.2\.$"),
+    ('[search]\nfind = "sizes"', r"`search.find` must be one of 'size', 'effect'.*Did you mean 'size'\?$"),
+    ("[search]\nparameter = 5", r"`search.parameter` must be a string; got 5\.$"),
+    ("[sequential]\ntarget_mcse = 0.7", r"`sequential.target_mcse` must be in \(0, 0\.5\); got 0\.7\.$"),
+    ('[sequential]\nwhich = "every"', r"`sequential.which` must be one of 'primary', 'all'"),
+    ('[null_check]\nenabled = "yes"', r"`null_check.enabled` must be true or false; got 'yes'\.$"),
+    ("[null_check]\nreps = 0", r"`null_check.reps` must be an integer >= 1; got 0\.$"),
+    ('[report]\nformats = "md,pdf"', r"`report.formats` must be one of 'md', 'html'; got 'pdf'\.$"),
+    ("[report]\ntitel = 'x'", r"`report.titel` is not a field of \[report\]\. Did you mean 'title'\?$"),
+    ('[store]\nsync = "ful"', r"`store.sync` must be one of 'normal', 'full'.*Did you mean 'full'\?$"),
+    ("[store]\npath = 3", r"`store.path` must be a string; got 3\.$"),
+    ("execution = 3", r"`execution` must be a table"),
+])
+def test_every_block_is_checked_at_load(block, pattern):
+    text = block + "\n" + GOOD if not block.startswith("[") else GOOD + "\n" + block + "\n"
+    with pytest.raises(ScenarioFileError, match=pattern) as info:
+        loads(text, path="plan.toml")
+    assert "\n" not in str(info.value) and str(info.value).startswith("plan.toml")
+
+
+def test_blocks_are_kept_cleaned():
+    sf = loads(GOOD + '\n[report]\nformats = "md, html"\n[search]\nlow = 20\nhigh = 400\n'
+               '[execution]\ntimeout = 5\n')
+    assert sf.blocks["report"]["formats"] == ("md", "html")
+    assert sf.blocks["search"] == {"low": 20.0, "high": 400.0}
+    assert sf.blocks["execution"] == {"timeout": 5.0}
+    # a recorded plan (data, no file) is checked the same way
+    from simpower.scenario_files import from_data
+    import tomllib
+
+    raw = tomllib.loads(GOOD + "\n[sweep]\nreps = -5\n")
+    with pytest.raises(ScenarioFileError, match=r"`sweep.reps` must be an integer >= 1"):
+        from_data(raw, "store.sqlite: recorded plan")

@@ -3,21 +3,19 @@
 Runs the ``[search]`` block (required size or minimal detectable effect), the
 ``[sweep]`` block, the type I error check (``[null_check]``, on unless
 ``enabled = false``) and, when there is neither a search nor a sweep, the
-scenario as given (to a target MCSE if ``[sequential]`` asks). Writes
-report.md, a self-contained report.html, manifest.json, the tables (CSV) and
-the figures (PNG and SVG) into DIR. The manifest's command reproduces every
-number exactly.
+scenario as given (to a target MCSE if ``[sequential]`` asks): the file's
+study plan, run by :func:`simpower.execute`. Writes report.md, a
+self-contained report.html, manifest.json, the tables (CSV) and the figures
+(PNG and SVG) into DIR. The manifest's command reproduces every number
+exactly.
 """
 
 from __future__ import annotations
 
 from pathlib import Path
 
-from .common import add_run_options, check_output_folder, load_scenario
-from .steps import (REPORT_FIELDS, engine_of, null_settings, plot_axis, run_null, run_search,
-                       run_sweep, seed_of, write_outputs)
-
-DEFAULT_REPS = 2000
+from .common import add_run_options, check_output_folder, execution_of, load_scenario
+from .steps import stores_of, write_outputs
 
 
 def register(sub) -> None:
@@ -30,30 +28,25 @@ def register(sub) -> None:
     p.set_defaults(func=main)
 
 
-def base_run(sf, args, seed):
-    from ..engine import run
-    from ..planning.sequential import SEQUENTIAL_FIELDS, read_block, run_to_mcse
+def plan_of(sf, args):
+    """The file's study plan with the command line's overrides (checked before anything runs)."""
+    from ..study import plan_from_file
 
-    block = read_block("sequential", sf.blocks.get("sequential"), SEQUENTIAL_FIELDS)
-    eng = engine_of(sf, args, "run")
-    common = dict(seed=seed, n_jobs=eng["n_jobs"], progress=eng["progress"],
-                  fit_trouble=sf.run.get("fit_trouble", "failure"), max_failure_rate=eng["max_failure_rate"],
-                  store=eng["store"])
-    if block.get("target_mcse") is not None:
-        kw = {k: block[k] for k in ("min_reps", "max_reps", "which") if k in block}
-        return run_to_mcse(sf.scenario, block["target_mcse"], chunk_size=block.get("chunk_size", sf.run.get("chunk_size")),
-                           engine=eng["engine"], **kw, **common)
-    return run(sf.scenario, reps=sf.run.get("reps", DEFAULT_REPS), chunk_size=sf.run.get("chunk_size"),
-               **eng["engine"], **common)
+    plan = plan_from_file(sf, execution=execution_of(sf, args))
+    if plan.null_check is not None and args.null_reps:
+        plan = plan.replace(null_check={**plan.null_check, "reps": args.null_reps})
+    if plan.sweep is not None and args.reps:
+        plan = plan.replace(sweep={**plan.sweep, "reps": args.reps})  # --reps wins over [sweep] reps
+    parts = [p for p, on in (("search", plan.search is not None), ("sweep", plan.sweep is not None),
+                             ("run", plan.kind == "run"), ("null_check", plan.null_check is not None)) if on]
+    return plan.replace(stores=stores_of(sf, args, parts))
 
 
 def main(args) -> int:
-    from ..planning.sequential import read_block
-    from ..planning.sweep import SWEEP_FIELDS, grid_from_block
+    from ..study import execute
 
     sf = load_scenario(args)
-    seed = seed_of(sf, args)
-    block = read_block("report", sf.blocks.get("report"), {k: None for k in REPORT_FIELDS})
+    block = sf.blocks.get("report", {})
     if getattr(args, "resumed_from", None) is not None:
         outdir = Path(args.out) if args.out else None  # resuming writes only where its own command line says
     else:
@@ -61,44 +54,15 @@ def main(args) -> int:
         if sf.path is not None and not Path(outdir).is_absolute() and not args.out and "out" in block:
             outdir = sf.path.parent / outdir
         check_output_folder("--out" if args.out else "report.out", outdir)
-    ns = null_settings(sf, args, default_on=True)
-    if ns is not None:  # a boundary that cannot be placed is refused before anything runs
-        from ..planning.nullpoints import null_points
-
-        null_points(sf.scenario)
-    results: dict = {}
-    settings: dict = {"set": list(args.set)}
-    grid = sblock = None
-    if "sweep" in sf.blocks:  # check the grid and the plot axis before anything runs
-        from types import SimpleNamespace
-
-        sblock = read_block("sweep", sf.blocks["sweep"], SWEEP_FIELDS)
-        grid = grid_from_block(sblock)
-        results["x"] = plot_axis(sf, SimpleNamespace(vary=None, together=None, x=None), sblock, grid, plot=False)
-    if "search" in sf.blocks:
-        results["search"] = run_search(sf, args, seed)
-        settings["search"] = results["search"].settings
-        print(results["search"].summary())
-    if "sweep" in sf.blocks:
-        results["sweep"] = run_sweep(sf, args, seed, grid, sblock)
-        settings["sweep"] = {"grid": grid.describe(), "reps": results["sweep"].attrs.get("reps"),
-                             "target_mcse": results["sweep"].attrs.get("target_mcse"),
-                             "chunk_size": results["sweep"].attrs.get("chunk_size")}
-        print(f"sweep: {len(results['sweep'])} rows")
-    if "search" not in sf.blocks and "sweep" not in sf.blocks:
-        results["run"] = base_run(sf, args, seed)
-        settings["run"] = {"reps": results["run"].reps, "chunk_size": results["run"].chunk_size}
-        print(results["run"])
-    if ns is not None:
-        results["null"] = run_null(sf, args, seed, ns, grid)
-        settings["null_check"] = ns
-    print(f"seed: {seed}")
+    plan = plan_of(sf, args)
+    result = execute(plan, echo=print)
+    print(f"seed: {result.seed}")
     if outdir is None:
         print("report not written: give --out DIR to write it")
         return 0
-    paths = write_outputs(sf, args, seed, outdir, sweep=results.get("sweep"), search=results.get("search"),
-                          null=results.get("null"), run=results.get("run"), x=results.get("x"),
-                          formats=args.formats, settings=settings)
+    paths = write_outputs(sf, args, result.seed, outdir, sweep=result.sweep, search=result.search,
+                          null=result.null, run=result.run, x=result.x, formats=args.formats,
+                          settings={"set": list(args.set), **result.settings})
     for k, p in paths.items():
         print(f"wrote {k}: {p}")
     return 0

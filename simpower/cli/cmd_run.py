@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from ..engine import RunInterrupted, run
+from ..engine import RunInterrupted
 from ..errors import ParameterError
-from .common import add_run_options, command_line, engine_options, load_scenario, resume_hint
+from .common import add_run_options, command_line, execution_of, load_scenario, resume_hint, store_of
 
 DEFAULT_REPS = 2000
 
@@ -28,9 +28,9 @@ def register(sub) -> None:
 
 
 def _sequential(sf, args) -> dict:
-    from ..planning.sequential import SEQUENTIAL_FIELDS, check_target_mcse, read_block
+    from ..planning.sequential import check_target_mcse
 
-    block = read_block("sequential", sf.blocks.get("sequential"), SEQUENTIAL_FIELDS)
+    block = dict(sf.blocks.get("sequential", {}))
     if args.target_mcse is not None:
         block["target_mcse"] = check_target_mcse(args.target_mcse)
     if args.max_reps is not None:
@@ -40,29 +40,12 @@ def _sequential(sf, args) -> dict:
     return block
 
 
-def _simulate(sf, args, opts, fit_trouble):
-    seq = _sequential(sf, args)
-    if seq.get("target_mcse") is None:
-        return run(sf.scenario, reps=sf.run.get("reps", DEFAULT_REPS), seed=sf.run.get("seed"),
-                   fit_trouble=fit_trouble, **opts)
-    from ..planning.sequential import run_to_mcse
-
-    engine = {k: opts[k] for k in ("backend", "address", "timeout", "keep_records")}
-    kw = {k: seq[k] for k in ("min_reps", "max_reps", "which") if k in seq}
-    return run_to_mcse(sf.scenario, seq["target_mcse"], seed=sf.run.get("seed"), n_jobs=opts["n_jobs"],
-                       chunk_size=seq.get("chunk_size", opts["chunk_size"]), store=opts["store"],
-                       progress=opts["progress"], fit_trouble=fit_trouble,
-                       max_failure_rate=opts["max_failure_rate"], engine=engine, **kw)
-
-
 def _null_reps(sf, args) -> int | None:
     """Replicates of the type I check, or None when it is off; its boundaries are checked now, before
     anything runs, so a boundary that cannot be placed costs no simulation."""
     from ..planning.nullpoints import null_points
-    from ..planning.sequential import read_block
-    from ..planning.sweep import NULL_CHECK_FIELDS
 
-    block = read_block("null_check", sf.blocks.get("null_check"), NULL_CHECK_FIELDS)
+    block = sf.blocks.get("null_check", {})
     if not (args.null_check or block.get("enabled", False)):
         return None
     reps = args.null_reps if args.null_reps is not None else block.get("reps", 10_000)
@@ -72,32 +55,37 @@ def _null_reps(sf, args) -> int | None:
     return reps
 
 
-def _null_check(sf, reps, opts, fit_trouble, seed) -> str | None:
-    from ..planning.sweep import null_check
-    from .steps import null_lines
+def plan_of(sf, args):
+    """The run's study plan: the scenario as given (to a target MCSE with --target-mcse / [sequential]),
+    and the type I check when asked."""
+    from ..study import StudyPlan
 
-    if reps is None:
-        return None
-    engine = {k: opts[k] for k in ("backend", "address", "timeout", "keep_records")}
-    table = null_check(sf.scenario, reps=reps, seed=seed, n_jobs=opts["n_jobs"], chunk_size=opts["chunk_size"],
-                       progress=opts["progress"], fit_trouble=fit_trouble,
-                       max_failure_rate=opts["max_failure_rate"], engine=engine)
-    return "\n".join(null_lines(table))
+    ex = execution_of(sf, args)
+    if args.fit_trouble:
+        ex = ex.replace(fit_trouble=args.fit_trouble)
+    store = store_of(args, sf.scenario.fingerprint(), sf)
+    null_reps = _null_reps(sf, args)
+    return StudyPlan(scenario=sf.scenario, execution=ex, reps=sf.run.get("reps", DEFAULT_REPS),
+                     sequential=_sequential(sf, args), stores={"run": store},
+                     null_check=None if null_reps is None else {"reps": null_reps, "at_grid": False}, path=sf.path)
 
 
 def main(args) -> int:
+    from ..study import execute
+    from .steps import null_lines
+
     sf = load_scenario(args)
-    opts = engine_options(sf, args)
-    fit_trouble = args.fit_trouble or sf.run.get("fit_trouble", "failure")
-    null_reps = _null_reps(sf, args)
+    plan = plan_of(sf, args)
+    store = plan.stores["run"]
     try:
-        res = _simulate(sf, args, opts, fit_trouble)
-        null_text = _null_check(sf, null_reps, opts, fit_trouble, res.seed)
+        out = execute(plan)
     except RunInterrupted:
-        raise RunInterrupted(f"interrupted; {resume_hint(opts['store'], sf)}.") from None
+        raise RunInterrupted(f"interrupted; {resume_hint(store, sf)}.") from None
+    res = out.run
+    null_text = "\n".join(null_lines(out.null)) if out.null is not None else None
     res.extra["command"] = command_line(res.seed, args)
-    if opts["store"]:
-        res.extra["store"] = opts["store"]
+    if store:
+        res.extra["store"] = store
     from ..textout import format_result
 
     print(format_result(res, verbose=getattr(args, "verbose", False)))
@@ -108,8 +96,8 @@ def main(args) -> int:
     if null_text:
         print("\n" + null_text)
     print(f"\nTo reproduce these numbers exactly: {res.extra['command']}")
-    if opts["store"]:
-        print(f"\nRun store: {opts['store']} (simpower export {opts['store']} OUT.csv)")
+    if store:
+        print(f"\nRun store: {store} (simpower export {store} OUT.csv)")
     if args.json:
         res.to_json(args.json)
         print(f"\nJSON written to {args.json}")

@@ -19,7 +19,8 @@ never reached is an error that reports the best power seen.
 from __future__ import annotations
 
 from .common import add_run_options, load_scenario
-from .steps import null_lines, null_settings, run_null, run_search, seed_of, write_outputs
+from .common import execution_of
+from .steps import null_lines, null_settings, search_options, seed_of, stores_of, write_outputs
 
 
 def register(sub) -> None:
@@ -44,18 +45,30 @@ def register(sub) -> None:
     p.set_defaults(func=main)
 
 
+def plan_of(sf, args, seed):
+    """The search's study plan: the file's [search] with the options above, and the type I check when asked."""
+    from ..study import StudyPlan
+
+    ns = null_settings(sf, args, default_on=False) if args.null_check else None
+    ex = execution_of(sf, args).replace(seed=seed)
+    parts = ["search"] + (["null_check"] if ns is not None else [])
+    return StudyPlan(scenario=sf.scenario, execution=ex, reps=sf.run.get("reps"), search=search_options(sf, args),
+                     null_check=ns, stores=stores_of(sf, args, parts), path=sf.path)
+
+
 def main(args) -> int:
+    from ..study import execute
     from ..textout import CAUTION
 
     sf = load_scenario(args)
     seed = seed_of(sf, args)
-    res = run_search(sf, args, seed)
+    plan = plan_of(sf, args, seed)
+    out = execute(plan)
+    res = out.search
     print(res.summary())
     print(f"  Seed: {seed}" + (f"  chunk size: {res.chunk_size}" if getattr(args, "verbose", False) else ""))
-    null = None
-    ns = null_settings(sf, args, default_on=False) if args.null_check else None
-    if ns is not None:
-        null = run_null(sf, args, seed, ns)
+    null = out.null
+    if null is not None:
         print("\n" + "\n".join(null_lines(null)))
     if args.csv:
         res.table.to_csv(args.csv, index=False)

@@ -13,8 +13,8 @@ spaced), ``from:to//count`` (log-spaced; rounded for integer parameters).
 from __future__ import annotations
 
 from ..errors import ParameterError
-from .common import add_run_options, load_scenario
-from .steps import null_lines, null_settings, plot_axis, run_null, run_sweep, seed_of, write_outputs
+from .common import add_run_options, execution_of, load_scenario
+from .steps import null_lines, null_settings, plot_axis, seed_of, stores_of, write_outputs
 
 SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power", "path")
 
@@ -73,24 +73,39 @@ def format_table(table, verbose: bool = False) -> str:
     return shown.to_string(index=False, float_format=lambda v: f"{v:.4f}", na_rep="-")
 
 
+def plan_of(sf, args, block, grid):
+    """The sweep's study plan: the grid (from --vary/--together or the file), its replicates or target MCSE,
+    and the type I check when asked."""
+    from ..study import StudyPlan, sweep_part
+
+    part = sweep_part(block, grid)
+    for key, value in (("reps", args.reps), ("target_mcse", args.target_mcse), ("max_reps", args.max_reps)):
+        if value:
+            part[key] = value  # the command line wins over [sweep]
+    ex = execution_of(sf, args)
+    ns = null_settings(sf, args, default_on=False) if (args.null_check or block.get("null_check")) else None
+    parts = ["sweep"] + (["null_check"] if ns is not None else [])
+    return StudyPlan(scenario=sf.scenario, execution=ex, reps=sf.run.get("reps"), sweep=part, null_check=ns,
+                     stores=stores_of(sf, args, parts), path=sf.path)
+
+
 def main(args) -> int:
-    from ..planning.sequential import read_block
-    from ..planning.sweep import SWEEP_FIELDS
+    from ..study import execute
     from ..textout import CAUTION
 
     sf = load_scenario(args)
-    block = read_block("sweep", sf.blocks.get("sweep"), SWEEP_FIELDS)
+    block = sf.blocks.get("sweep", {})
     grid = grid_of(sf, args, block)
     x = plot_axis(sf, args, block, grid, bool(args.plot)) if (args.plot or args.report) else None
     seed = seed_of(sf, args)
-    table = run_sweep(sf, args, seed, grid, block)
+    plan = plan_of(sf, args, block, grid)
+    plan = plan.replace(execution=plan.execution.replace(seed=seed))
+    out = execute(plan)
+    table, null, ns = out.sweep, out.null, plan.null_check
     print(format_table(table, verbose=getattr(args, "verbose", False)))
     chunk = f"  chunk size: {table.attrs['chunk_size']}" if getattr(args, "verbose", False) else ""
     print(f"\nseed: {seed}{chunk}  points: {len(table) // len(sf.scenario.analyses)}")
-    null = None
-    ns = null_settings(sf, args, default_on=False) if (args.null_check or block.get("null_check")) else None
     if ns is not None:
-        null = run_null(sf, args, seed, ns, grid)
         cols = [c for c in table.attrs.get("grid", []) if c in null.columns and ns["at_grid"]]
         print("\n" + "\n".join(null_lines(null, cols)))
     if args.csv:

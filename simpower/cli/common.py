@@ -27,9 +27,8 @@ def add_run_options(p: argparse.ArgumentParser) -> None:
 
 #: where ``--store`` without a path puts the run store
 DEFAULT_STORE_DIR = "simpower-runs"
-#: fields of the scenario file's [store] and [execution] blocks
-STORE_FIELDS = ("path", "sync")
-EXECUTION_FIELDS = ("backend", "address", "timeout", "summaries_only")
+#: fields of the scenario file's [store] and [execution] blocks (declared and checked at load: simpower.blocks)
+from ..blocks import EXECUTION_FIELDS, STORE_FIELDS  # noqa: E402,F401
 
 
 def add_engine_options(p: argparse.ArgumentParser) -> None:
@@ -55,16 +54,9 @@ def add_engine_options(p: argparse.ArgumentParser) -> None:
                         "store); automatic above 1,000,000 replicates")
 
 
-def _block(sf: ScenarioFile, name: str, fields: tuple[str, ...]) -> dict:
-    from ..errors import nearest
-
-    block = sf.blocks.get(name) or {}
-    if not isinstance(block, dict):
-        raise ParameterError(f"`[{name}]` must be a table with fields {', '.join(fields)}.")
-    for key in block:
-        if key not in fields:
-            raise ParameterError(f"`{name}.{key}` is not a field of [{name}].{nearest(key, fields)}")
-    return block
+def _block(sf: ScenarioFile, name: str) -> dict:
+    """A block of the file, as the loader checked and cleaned it (empty when absent)."""
+    return sf.blocks.get(name) or {}
 
 
 def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | None:
@@ -83,7 +75,7 @@ def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | No
 
     from ..engine.store import RunStore
 
-    block = _block(sf, "store", STORE_FIELDS) if sf is not None else {}
+    block = _block(sf, "store") if sf is not None else {}
     raw = getattr(args, "store", None)
     path = Path(str(raw)) if raw else None
     if not raw and block.get("path"):
@@ -96,8 +88,6 @@ def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | No
     if raw.endswith(("/", "\\")) or path.is_dir():
         path = path / f"run-{fingerprint}.sqlite"
     sync = block.get("sync")
-    if sync not in (None, "normal", "full"):
-        raise ParameterError(f"`store.sync` must be 'normal' or 'full'; got {sync!r}.")
     from .plan import plan_of
 
     plan = plan_of(args, sf) if sf is not None else None
@@ -107,14 +97,14 @@ def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | No
     return str(path)
 
 
-def engine_options(sf: ScenarioFile, args, fingerprint: str | None = None) -> dict:
+def engine_options(sf: ScenarioFile, args, fingerprint: str | None = None, with_store: bool = True) -> dict:
     """Keyword arguments for ``engine.run`` / ``run_many`` from the file and the command line.
 
     Gives n_jobs, chunk_size, progress, backend, address, max_failure_rate,
     timeout, keep_records and store (a path or None; the fingerprint names
     the file when --store is a folder; default: the scenario's).
     """
-    ex = _block(sf, "execution", EXECUTION_FIELDS)
+    ex = _block(sf, "execution")
     address = getattr(args, "address", None) or ex.get("address")
     backend = getattr(args, "backend", None) or ex.get("backend") or ("dask" if address else None)
     if address and backend != "dask":
@@ -136,8 +126,24 @@ def engine_options(sf: ScenarioFile, args, fingerprint: str | None = None) -> di
         "max_failure_rate": rate if rate is not None else sf.run.get("max_failure_rate", 0.5),
         "timeout": timeout,
         "keep_records": False if lean else None,
-        "store": store_of(args, fingerprint or sf.scenario.fingerprint(), sf),
+        "store": store_of(args, fingerprint or sf.scenario.fingerprint(), sf) if with_store else None,
     }
+
+
+def execution_of(sf: ScenarioFile, args):
+    """The command's :class:`~simpower.execution.Execution` (without a store: see :func:`store_of`).
+
+    From the file (seed, jobs, chunk_size, fit_trouble, max_failure_rate, [execution]) and the command
+    line (--backend, --address, --timeout, --max-failure-rate, --summaries-only, --quiet), checked as
+    :func:`engine_options` checks them.
+    """
+    from ..execution import Execution
+
+    opts = engine_options(sf, args, fingerprint=None, with_store=False)
+    return Execution(seed=sf.run.get("seed"), n_jobs=opts["n_jobs"], chunk_size=opts["chunk_size"],
+                     progress=opts["progress"], backend=opts["backend"], address=opts["address"],
+                     max_failure_rate=opts["max_failure_rate"], timeout=opts["timeout"],
+                     keep_records=opts["keep_records"], fit_trouble=sf.run.get("fit_trouble", "failure"))
 
 
 def resume_hint(store: str | None, sf: ScenarioFile | None = None) -> str:

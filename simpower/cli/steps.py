@@ -1,36 +1,32 @@
 """Steps shared by the planning commands (``sweep``, ``samplesize`` and ``report``).
 
-The engine settings of a planning run, its seed, the sweep, the search, the type I
-error check and the report. They live here, not in one of the commands, so that no
-command imports another: ``report`` runs what ``sweep`` and ``samplesize`` run.
+How a command builds its part of the study plan from the file and its options (the run
+stores, the seed, the search options, the type I error check), the plot axis, and the
+report. They live here, not in one of the commands, so that no command imports another;
+every command runs its plan with :func:`simpower.execute`.
 """
 
 from __future__ import annotations
 
 
 from ..errors import ParameterError
-from .common import engine_options
 
 #: replicates per grid point of a sweep when neither the command line nor the file says
-DEFAULT_REPS = 2000
 DEFAULT_NULL_REPS = 10_000
-REPORT_FIELDS = ("title", "out", "formats")
 #: [search] settings that describe the file's own search target, dropped when --effect overrides it
 SIZE_ONLY = ("low", "high", "step", "scale", "parameter")
 
 
-def engine_of(sf, args, kind: str) -> dict:
-    """Store, failure threshold, jobs, progress and the engine's extra options for a planning command.
+def stores_of(sf, args, parts) -> dict:
+    """A run store per part that will run (None without --store or [store]).
 
-    A ``--store`` folder gets one file per scenario and command kind (sweeps, searches and null
-    checks use different chunk sizes, which one store file cannot mix).
+    A --store folder gets one file per scenario and part (sweeps, searches and null checks use
+    different chunk sizes, which one store file cannot mix).
     """
     from ..components import fingerprint
+    from .common import store_of
 
-    eng = engine_options(sf, args, fingerprint([sf.scenario.fingerprint(), kind]))
-    extra = {k: eng[k] for k in ("backend", "address", "timeout", "keep_records") if eng.get(k) is not None}
-    return {"store": eng["store"], "max_failure_rate": eng["max_failure_rate"], "n_jobs": eng["n_jobs"],
-            "progress": eng["progress"], "engine": extra}
+    return {kind: store_of(args, fingerprint([sf.scenario.fingerprint(), kind]), sf) for kind in parts}
 
 
 def seed_of(sf, args) -> int:
@@ -41,17 +37,11 @@ def seed_of(sf, args) -> int:
 
 
 def null_settings(sf, args, default_on: bool) -> dict | None:
-    from ..planning.sequential import read_block
-    from ..planning.sweep import NULL_CHECK_FIELDS
+    """The type I check's part of the plan (None when off): the file's [null_check] with --null-check / --null-reps."""
+    from ..study import null_settings as settings
 
-    block = read_block("null_check", sf.blocks.get("null_check"), NULL_CHECK_FIELDS)
-    on = getattr(args, "null_check", False) or block.get("enabled", default_on)
-    if not on:
-        return None
-    reps = getattr(args, "null_reps", None) or block.get("reps", DEFAULT_NULL_REPS)
-    if reps < 1:
-        raise ParameterError(f"`--null-reps` must be an integer >= 1; got {reps}.")
-    return {"reps": reps, "at_grid": block.get("at_grid", False)}
+    return settings(sf.blocks.get("null_check", {}), default_on, on=getattr(args, "null_check", False),
+                    reps=getattr(args, "null_reps", None))
 
 
 def null_lines(table, grid_cols=()) -> list[str]:
@@ -70,22 +60,12 @@ def null_lines(table, grid_cols=()) -> list[str]:
     return lines
 
 
-def run_null(sf, args, seed, settings, grid=None):
-    from ..planning.sweep import null_check
-
-    return null_check(sf.scenario, grid if settings["at_grid"] else None, reps=settings["reps"], seed=seed,
-                      chunk_size=sf.run.get("chunk_size"), fit_trouble=sf.run.get("fit_trouble", "failure"),
-                      **engine_of(sf, args, "null_check"))
-
-
 def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None, run=None, x=None, formats=None,
                   settings=None) -> dict:
     from ..report import make_report
     from ..report.manifest import reproduce_command
 
-    from ..planning.sequential import read_block
-
-    block = read_block("report", sf.blocks.get("report"), {k: None for k in REPORT_FIELDS})
+    block = sf.blocks.get("report", {})
     fm = formats or block.get("formats") or ("md", "html")
     if isinstance(fm, str):
         fm = [f.strip() for f in fm.split(",") if f.strip()]
@@ -94,19 +74,6 @@ def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None,
     return make_report(sf.scenario, outdir, seed=seed, command=reproduce_command(argv_of(args), seed), sweep=sweep,
                        search=search, null=null, run=run, title=str(block.get("title", "")), x=x,
                        scenario_file=sf.path, settings=settings, formats=tuple(fm))
-
-
-def run_sweep(sf, args, seed, grid, block):
-    from ..planning.sweep import sweep
-
-    target = getattr(args, "target_mcse", None) or block.get("target_mcse")
-    kw = {}
-    if target is not None:
-        kw = {"target_mcse": target, "max_reps": getattr(args, "max_reps", None) or block.get("max_reps", 100_000),
-              "min_reps": block.get("min_reps", 1000)}
-    reps = getattr(args, "reps", None) or block.get("reps") or sf.run.get("reps", DEFAULT_REPS)
-    return sweep(sf.scenario, grid, reps=reps, seed=seed, chunk_size=block.get("chunk_size", sf.run.get("chunk_size")),
-                 fit_trouble=sf.run.get("fit_trouble", "failure"), **engine_of(sf, args, "sweep"), **kw)
 
 
 def plot_axis(sf, args, block, grid, plot: bool) -> str:
@@ -153,11 +120,9 @@ def _range(text: str):
         raise ParameterError(f"`--range` must look like LOW:HIGH (e.g. 10:400); got {text!r}.") from None
 
 
-def run_search(sf, args, seed):
-    from ..planning.search import SEARCH_FIELDS, search
-    from ..planning.sequential import read_block
-
-    opts = read_block("search", sf.blocks.get("search"), SEARCH_FIELDS)
+def search_options(sf, args) -> dict:
+    """The search part of the plan: the file's [search] block with the command line's overrides, ``find`` included."""
+    opts = dict(sf.blocks.get("search", {}))
     file_find = opts.pop("find", None) or "size"
     find = "effect" if getattr(args, "effect", False) else file_find
     if find != file_find:
@@ -172,7 +137,4 @@ def run_search(sf, args, seed):
             opts[key] = v
     if getattr(args, "range", None):
         opts["low"], opts["high"] = _range(args.range)
-    if opts.get("chunk_size") is None and sf.run.get("chunk_size"):
-        opts["chunk_size"] = sf.run["chunk_size"]
-    return search(sf.scenario, find, seed=seed, fit_trouble=sf.run.get("fit_trouble", "failure"),
-                  **engine_of(sf, args, "search"), **opts)
+    return {"find": find, **opts}

@@ -45,9 +45,39 @@ def effective_jobs(n_jobs: int | None) -> int:
     return n_jobs
 
 
+#: joblib backend classes -> the executor simpower runs chunks on under them (others: joblib's Parallel itself)
+_CONTEXT = {"SequentialBackend": "serial", "ThreadingBackend": "threading", "LokyBackend": None,
+            "DaskDistributedBackend": "dask"}
+
+
+def context_backend() -> tuple[str | None, Any, int | None]:
+    """(backend, address, n_jobs) of joblib's current context (``joblib.parallel_config``) for ``backend=None``.
+
+    Read with joblib's public ``get_active_backend()``, which returns the
+    backend a ``joblib.Parallel`` would use here: outside any context its
+    default (loky), mapped to simpower's default (loky workers with crash
+    isolation); ``"sequential"`` to 'serial', ``"threading"`` to 'threading',
+    ``"dask"`` to 'dask' on the context's client; any other backend (e.g.
+    'multiprocessing', or one registered by the caller) to 'joblib', which
+    runs the chunks with ``joblib.Parallel`` inside that context. ``n_jobs``
+    is the context's, or None when it sets none.
+    """
+    from joblib.parallel import get_active_backend
+
+    active, n_jobs = get_active_backend()
+    name = type(active).__name__
+    if name not in _CONTEXT:
+        return "joblib", None, n_jobs
+    backend = _CONTEXT[name]
+    address = getattr(active, "client", None) if backend == "dask" else None
+    return backend, address, n_jobs
+
+
 def check_backend(backend: str | None) -> str | None:
     if backend in (None, "local"):
         return None
+    if backend == "joblib":  # internal: the caller's joblib context (see context_backend)
+        return backend
     if backend not in BACKENDS:
         from ..errors import nearest
 
@@ -244,10 +274,12 @@ def execute(fn: Callable, tasks: Iterable[tuple], n_jobs: int | None = -1, backe
             for t in it:
                 yield fn(*t)
             return
-    if backend == "threading":
+    if backend in ("threading", "joblib"):
         from joblib import Parallel, delayed
 
-        par = Parallel(n_jobs=min(jobs, n_tasks), backend="threading", return_as="generator_unordered")
+        # 'joblib': the caller's joblib context (parallel_config) picks the backend
+        kind = {"backend": "threading"} if backend == "threading" else {}
+        par = Parallel(n_jobs=min(jobs, n_tasks), return_as="generator_unordered", **kind)
         gen = par(delayed(fn)(*t) for t in it)
         try:
             yield from gen

@@ -49,7 +49,6 @@ is counted as failure ``crash`` and the run goes on; see
 
 from __future__ import annotations
 
-import math
 import sys
 import time
 import warnings
@@ -61,14 +60,14 @@ from typing import Any, Iterator, Mapping, Protocol, Sequence
 
 import numpy as np
 
-from .._validation import Jobs
+from ..execution import Execution, check_address, resolve  # noqa: F401 (check_address: its old home)
 from ..errors import ParameterError, RunError
 from ..result import MissingRecords, RunResult
 from ..summaries import WARNING_PREFIX, PointStats
 from .chunk import ChunkOutput, run_chunk
 from .collect import CauseBook, RecordCollector
 from . import guard
-from .executor import check_backend, effective_jobs, execute
+from .executor import context_backend, effective_jobs, execute
 from .spool import RecordSpool
 
 BATCH_CHUNK = 2000
@@ -411,17 +410,7 @@ def _open_store(store):
     raise ParameterError(f"`store` must be a file path or a store with load/save; got {store!r}.")
 
 
-def _check_args(reps, keys, n_scen, chunk_size, fit_trouble, max_failure_rate, timeout, keep_records):
-    if fit_trouble not in ("failure", "nonrejection"):
-        raise ParameterError(f"`fit_trouble` must be 'failure' or 'nonrejection'; got {fit_trouble!r}.")
-    if isinstance(max_failure_rate, bool) or not isinstance(max_failure_rate, (int, float)) \
-            or not (0 < max_failure_rate <= 1):
-        raise ParameterError(f"`max_failure_rate` must be in (0, 1]; got {max_failure_rate!r}.")
-    if timeout is not None and (isinstance(timeout, bool) or not isinstance(timeout, (int, float))
-                                or not (timeout > 0 and math.isfinite(timeout))):
-        raise ParameterError(f"`timeout` must be a number of seconds > 0 (or None); got {timeout!r}.")
-    if keep_records not in (None, True, False):
-        raise ParameterError(f"`keep_records` must be True, False or None (automatic); got {keep_records!r}.")
+def _check_args(reps, keys, n_scen):
     reps_list = [reps] * n_scen if np.ndim(reps) == 0 else list(reps)
     if len(reps_list) != n_scen:
         raise ParameterError(f"`reps` must be one integer or one per scenario ({n_scen}); got {len(reps_list)}.")
@@ -434,40 +423,27 @@ def _check_args(reps, keys, n_scen, chunk_size, fit_trouble, max_failure_rate, t
     keys = list(range(n_scen)) if keys is None else [int(k) for k in keys]
     if len(keys) != n_scen or len(set(keys)) != n_scen or min(keys, default=0) < 0 or max(keys, default=0) >= 2**63:
         raise ParameterError(f"`keys` must be {n_scen} distinct integers in [0, 2**63); got {keys!r}.")
-    if chunk_size is not None and (isinstance(chunk_size, bool) or not isinstance(chunk_size, (int, np.integer))
-                                   or chunk_size < 1):
-        raise ParameterError(f"`chunk_size` must be an integer >= 1; got {chunk_size!r}.")
     return reps_list, keys
 
 
-def check_address(address: Any, name: str = "address") -> Any:
-    """A dask scheduler address as given, once it looks like SCHEME://HOST:PORT (or HOST:PORT)."""
-    if address is None or not isinstance(address, str):
-        return address  # None, or a dask Client object
-    text = address.strip()
-    scheme, sep, rest = text.partition("://")
-    if not sep:
-        scheme, rest = "tcp", text
-    if scheme in ("tcp", "tls"):
-        host, colon, port = rest.rstrip("/").rpartition(":")
-        if not (colon and host.strip("[]") and port.isdigit() and 0 < int(port) < 65536):
-            raise ParameterError(f"`{name}` must look like tcp://HOST:PORT (e.g. tcp://10.0.0.5:8786), with the "
-                                 f"scheduler's port; got {address!r}.")
-    return text
-
-
 def check_execution(n_jobs: Any, backend: Any, address: Any) -> tuple[int | None, str | None, Any]:
-    """Validated ``(n_jobs, backend, address)``; an ``address`` implies ``backend='dask'``."""
-    n_jobs = Jobs().clean("n_jobs", n_jobs)
-    backend = check_backend(backend)
-    address = check_address(address)
-    if address is not None and address != "":
-        if backend is None:
-            backend = "dask"
-        elif backend != "dask":
-            raise ParameterError(f"`address` is a dask scheduler's; it cannot be used with backend={backend!r} "
-                                 f"(drop `address`, or use backend='dask').")
-    return n_jobs, backend, address or None
+    """Validated ``(n_jobs, backend, address)``; an ``address`` implies ``backend='dask'`` (see :class:`Execution`)."""
+    ex = Execution(n_jobs=n_jobs, backend=backend, address=address)
+    return ex.n_jobs, ex.backend, ex.address
+
+
+def executor_of(ex: Execution) -> tuple[int | None, str | None, Any]:
+    """(n_jobs, backend, address) the chunks run with: ``ex``'s, or joblib's current context when ``backend`` is None.
+
+    Read in the calling thread (joblib's context is thread-local), before any chunk runs.
+    """
+    if ex.backend is not None:
+        return ex.n_jobs, ex.backend, ex.address
+    backend, address, ctx_jobs = context_backend()
+    n_jobs = ctx_jobs if ex.n_jobs is None and ctx_jobs is not None else ex.n_jobs
+    if isinstance(n_jobs, int) and n_jobs < -1:  # joblib's "all but k"
+        n_jobs = effective_jobs(n_jobs)
+    return n_jobs, backend, address
 
 
 def run_many(scenarios: Sequence, reps: int | Sequence[int], *, seed=None, n_jobs: int | None = -1,
@@ -475,26 +451,33 @@ def run_many(scenarios: Sequence, reps: int | Sequence[int], *, seed=None, n_job
              backend: str | None = None, address: Any = None, store: Any = None,
              max_failure_rate: float = 0.5, keys: Sequence[int] | None = None, desc: str = "simulating",
              timeout: float | None = None, keep_records: bool | None = None,
-             labels: Mapping[int, str] | None = None) -> list[RunResult]:
+             labels: Mapping[int, str] | None = None, execution: Execution | None = None) -> list[RunResult]:
     """Run several scenarios (grid points) with one pool of workers.
 
     Point ``i`` uses seed key ``keys[i]`` (default ``i``). ``labels`` maps a
     key to the point's parameters in words for messages (default: the
     parameters in which the scenarios differ). See :func:`run` for the other
-    parameters; ``reps`` may give one count per scenario.
+    parameters; ``reps`` may give one count per scenario. The execution
+    settings may be given as one :class:`~simpower.execution.Execution`.
     """
+    ex = resolve(execution, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, progress=progress,
+                 fit_trouble=fit_trouble, backend=backend, address=address, store=store,
+                 max_failure_rate=max_failure_rate, timeout=timeout, keep_records=keep_records)
+    return run_points(scenarios, reps, ex, keys=keys, desc=desc, labels=labels)
+
+
+def run_points(scenarios: Sequence, reps: int | Sequence[int], ex: Execution, *, keys: Sequence[int] | None = None,
+               desc: str = "simulating", labels: Mapping[int, str] | None = None) -> list[RunResult]:
+    """:func:`run_many` with its execution settings as one :class:`~simpower.execution.Execution` value."""
     scenarios = list(scenarios)
-    reps_list, keys = _check_args(reps, keys, len(scenarios), chunk_size, fit_trouble, max_failure_rate,
-                                  timeout, keep_records)
-    n_jobs, backend, address = check_execution(n_jobs, backend, address)
-    store, owned = _open_store(store)
+    reps_list, keys = _check_args(reps, keys, len(scenarios))
+    store, owned = _open_store(ex.store)
     try:
         stored_seed = getattr(store, "seed", None) if store is not None else None
-        entropy = normalize_seed(stored_seed if seed is None and stored_seed is not None else seed)
+        entropy = normalize_seed(stored_seed if ex.seed is None and stored_seed is not None else ex.seed)
         if labels is None:
             labels = dict(zip(keys, point_labels(scenarios)))
-        return _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend,
-                    address, store, max_failure_rate, desc, timeout, keep_records, labels)
+        return _run(scenarios, reps_list, keys, entropy, ex, store, desc, labels)
     finally:
         if owned:
             store.close()
@@ -595,7 +578,7 @@ def _tasks(points, plans, done, entropy, timeout) -> Iterator[tuple]:
 
 def _isolation(scenarios, backend, jobs) -> tuple[bool, str | None]:
     """(whether crashes are isolated, the backend chunks run on); see :mod:`simpower.engine.guard`."""
-    isolating = guard.available() and backend not in ("serial", "threading")
+    isolating = guard.available() and backend not in ("serial", "threading", "joblib")
     if isolating and backend is None and jobs == 1 and any(guard.has_user_code(sc) for sc in scenarios):
         why = next((w for w in map(guard.unsendable, scenarios) if w), None)
         if why is not None:
@@ -619,8 +602,10 @@ def _chunk_results(tasks, n_tasks, scenarios, isolating, run_backend, n_jobs, ad
                    n_tasks=n_tasks, fallback=fallback)
 
 
-def _run(scenarios, reps_list, keys, entropy, n_jobs, chunk_size, progress, fit_trouble, backend, address,
-         store, max_failure_rate, desc, timeout, keep_records, labels):
+def _run(scenarios, reps_list, keys, entropy, ex: Execution, store, desc, labels):
+    n_jobs, backend, address = executor_of(ex)
+    chunk_size, progress, fit_trouble = ex.chunk_size, ex.progress, ex.fit_trouble
+    max_failure_rate, timeout, keep_records = ex.max_failure_rate, ex.timeout, ex.keep_records
     jobs = effective_jobs(n_jobs)
     isolating, run_backend = _isolation(scenarios, backend, jobs)
     for sc, r in zip(scenarios, reps_list):
@@ -723,7 +708,8 @@ DEFAULT_REPS = 1000
 def run(scenario, reps: int | None = None, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
         progress: bool | None = None, fit_trouble: str = "failure", backend: str | None = None,
         address: Any = None, store: Any = None, max_failure_rate: float = 0.5, point: int | None = None,
-        timeout: float | None = None, keep_records: bool | None = None) -> RunResult:
+        timeout: float | None = None, keep_records: bool | None = None,
+        execution: Execution | None = None) -> RunResult:
     """Simulate ``reps`` replicates of ``scenario`` and summarise them.
 
     Parameters
@@ -752,7 +738,9 @@ def run(scenario, reps: int | None = None, *, seed=None, n_jobs: int | None = -1
         What replicates whose analysis warned (non-convergence, singular fit)
         count as; the result shows both figures either way.
     backend : {None, 'loky', 'serial', 'threading', 'dask'}
-        None is loky worker processes (or this process when ``n_jobs=1``) for
+        None takes joblib's current context when the caller set one
+        (``with joblib.parallel_config(backend="threading"):``; see
+        :mod:`simpower.execution`); otherwise it is loky worker processes (or this process when ``n_jobs=1``) for
         built-in scenarios, and workers forked from the crash-isolating helper
         for scenarios with user code (or dask when an ``address`` is given), so that a replicate that kills its
         process (a segfault) counts as failure ``crash`` and the run goes on.
@@ -784,6 +772,10 @@ def run(scenario, reps: int | None = None, *, seed=None, n_jobs: int | None = -1
         folder (memory maps) up to 1,000,000 replicates, above that
         summaries only (records then stay in the store only). False:
         summaries only.
+    execution : Execution, optional
+        All of the settings above (seed to keep_records, and chunk_size) as
+        one :class:`~simpower.execution.Execution` value; a keyword argument
+        that contradicts it is refused.
 
     Examples
     --------
@@ -793,8 +785,13 @@ def run(scenario, reps: int | None = None, *, seed=None, n_jobs: int | None = -1
     >>> abs(res.power - 0.80) < 4 * res.mcse   # Cohen (1988): n = 64 per arm gives 80% power
     True
     """
-    scenario, reps, seed = _scenario_of(scenario, reps, seed)
-    store, owned = _open_store(store)
+    ex = resolve(execution, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, progress=progress,
+                 fit_trouble=fit_trouble, backend=backend, address=address, store=store,
+                 max_failure_rate=max_failure_rate, timeout=timeout, keep_records=keep_records)
+    scenario, reps, file_seed = _scenario_of(scenario, reps, ex.seed)
+    if ex.seed is None and file_seed is not None:
+        ex = ex.replace(seed=file_seed)
+    store, owned = _open_store(ex.store)
     try:
         if point is None:
             point = scenario.point_key()
@@ -803,10 +800,7 @@ def run(scenario, reps: int | None = None, *, seed=None, n_jobs: int | None = -1
                 # the store holds one other run: bind to it, so a changed scenario is refused
                 # (naming what changed) rather than stored beside the old one
                 point = held[0]
-        return run_many([scenario], reps, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, progress=progress,
-                        fit_trouble=fit_trouble, backend=backend, address=address, store=store,
-                        max_failure_rate=max_failure_rate, keys=[point], timeout=timeout,
-                        keep_records=keep_records)[0]
+        return run_points([scenario], reps, ex.replace(store=store), keys=[point])[0]
     finally:
         if owned:
             store.close()

@@ -37,10 +37,11 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .._validation import Choice, Int, Real
-from ..engine import run_many
+from .._validation import Int, Real
+from ..engine.runner import run_points
+from ..execution import Execution
 from ..errors import ParameterError, nearest
-from .sequential import as_memory_store, point_key, seed_with_store
+from .sequential import as_memory_store, execution_of, point_key, seed_with_store
 from ..summaries import wilson_interval
 
 #: replicates per chunk (and per pilot point) of a search
@@ -315,13 +316,10 @@ class SearchResult:
 class _Evaluations:
     """Results so far per value; extends a value's run when asked for more replicates."""
 
-    def __init__(self, scenario, parameter, analysis, seed, n_jobs, chunk_size, store, progress, fit_trouble,
-                 max_failure_rate, setter, engine=None):
-        self.engine = dict(engine or {})
+    def __init__(self, scenario, parameter, analysis, ex: Execution, setter, labels=None):
         self.scenario, self.parameter, self.analysis = scenario, parameter, analysis
-        self.seed, self.n_jobs, self.chunk_size = seed, n_jobs, chunk_size
-        self.store = as_memory_store(store)
-        self.progress, self.fit_trouble, self.max_failure_rate = progress, fit_trouble, max_failure_rate
+        self.ex, self.labels = ex, dict(labels or {})
+        self.seed = ex.seed
         self.setter = setter
         self.stats: dict[float, dict] = {}
         self.order: list[float] = []
@@ -337,10 +335,8 @@ class _Evaluations:
         scs = [self.scenario.with_params(**{self.parameter: self.setter(v)}) for v in todo]
         keys = [point_key(s) for s in scs]
         labels = {k: f"{self.parameter} = {self.setter(v):g}" for k, v in zip(keys, todo)}
-        outs = run_many(scs, list(todo.values()), seed=self.seed, n_jobs=self.n_jobs, chunk_size=self.chunk_size,
-                        store=self.store, progress=self.progress, fit_trouble=self.fit_trouble,
-                        keys=keys, max_failure_rate=self.max_failure_rate, desc="searching", labels=labels,
-                        **self.engine)
+        outs = run_points(scs, list(todo.values()), self.ex, keys=keys, desc="searching",
+                          labels={**labels, **self.labels})
         for v, res in zip(todo, outs):
             s = res.summaries[self.analysis]
             if v not in self.stats:
@@ -396,20 +392,28 @@ def _not_reached(ev, parameter, target, lo, hi, best_note="") -> ParameterError:
 
 
 def _search(scenario, *, parameter, kind, target, low, high, scale, step, setter, level, rel_tol, abs_tol,
-            max_reps, seed, n_jobs, chunk_size, store, progress, fit_trouble, analysis, max_failure_rate,
-            pilot_points, pilot_reps, engine=None):
+            max_reps, ex: Execution, analysis, pilot_points, pilot_reps, labels=None):
     pilot_points = Int(low=2).clean("pilot_points", pilot_points)
-    mem = as_memory_store(store)
+    mem = as_memory_store(ex.store)
     try:
-        entropy = seed_with_store(seed, mem)
-        ev = _Evaluations(scenario, parameter, analysis, entropy, n_jobs, chunk_size, mem, progress, fit_trouble,
-                          max_failure_rate, setter, engine)
+        entropy = seed_with_store(ex.seed, mem)
+        ev = _Evaluations(scenario, parameter, analysis, ex.replace(seed=entropy, store=mem), setter, labels)
         return _rounds(ev, parameter=parameter, kind=kind, target=target, low=low, high=high, scale=scale,
                        step=step, level=level, rel_tol=rel_tol, abs_tol=abs_tol, max_reps=max_reps,
-                       chunk_size=chunk_size, pilot_points=pilot_points, pilot_reps=pilot_reps)
+                       chunk_size=ex.chunk_size, pilot_points=pilot_points, pilot_reps=pilot_reps)
     finally:
-        if mem is not store:
+        if mem is not ex.store:
             mem.close()
+
+
+def _search_execution(execution, engine, chunk_size, **keywords) -> tuple[Execution, dict | None]:
+    """The search's Execution: its chunk size is SEARCH_CHUNK unless the call or ``execution`` gives another."""
+    ex, labels = execution_of(execution, engine, **keywords)
+    if ex.chunk_size is not None and chunk_size != SEARCH_CHUNK and chunk_size != ex.chunk_size:
+        raise ParameterError(f"`chunk_size` = {chunk_size!r} contradicts `execution.chunk_size` = {ex.chunk_size!r}; "
+                             f"give it in one place.")
+    chunk_size = Int(low=1).clean("chunk_size", ex.chunk_size if ex.chunk_size is not None else chunk_size)
+    return ex.replace(chunk_size=chunk_size), labels
 
 
 def _rounds(ev, *, parameter, kind, target, low, high, scale, step, level, rel_tol, abs_tol, max_reps, chunk_size,
@@ -573,7 +577,7 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
                rel_tol: float = 0.02, max_reps: int = 200_000, seed=None, n_jobs: int | None = -1,
                chunk_size: int = SEARCH_CHUNK, store=None, progress: bool | None = None,
                fit_trouble: str = "failure", analysis: str | None = None, max_failure_rate: float = 0.5,
-               pilot_points: int = PILOT_POINTS, engine=None) -> SearchResult:
+               pilot_points: int = PILOT_POINTS, engine=None, execution: Execution | None = None) -> SearchResult:
     """The smallest sample size (or number of clusters) that reaches ``power``, with a Monte Carlo interval.
 
     Parameters
@@ -601,6 +605,8 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
         estimate (or half a step, whichever is larger).
     max_reps : int
         Budget of replicates; the result says if it ran out first.
+    execution : Execution, optional
+        The execution settings as one value (instead of the keywords below).
     seed, n_jobs, chunk_size, store, progress, fit_trouble, max_failure_rate
         As for :func:`simpower.run`; ``chunk_size`` is fixed by the search
         (default :data:`SEARCH_CHUNK`) and recorded, so the numbers reproduce.
@@ -624,6 +630,8 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
     >>> res.interval[0] <= 64 <= res.interval[1]
     True
     """
+    ex, labels = _search_execution(execution, engine, chunk_size, seed=seed, n_jobs=n_jobs, store=store,
+                                   progress=progress, fit_trouble=fit_trouble, max_failure_rate=max_failure_rate)
     target, level, rel_tol, max_reps, analysis = _check_common(scenario, power, level, rel_tol, max_reps, analysis)
     parameter = _parameter(scenario, parameter, "size_param")
     if scale not in SCALES:
@@ -637,7 +645,7 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
     moved = ""
     if low is None:
         start = _default_low(scenario, parameter)
-        low = runnable_low(scenario, parameter, start, current, integer, max_failure_rate)
+        low = runnable_low(scenario, parameter, start, current, integer, ex.max_failure_rate)
         if low != start:
             moved = (f"the range starts at {parameter} = {low:g}, the smallest size (doubling from {start:g}) at "
                      f"which every analysis ran on trial replicates; give `low` (--range) to start elsewhere")
@@ -646,15 +654,14 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
     high = Real(0.0, low_open=True).clean("high", high)
     if high <= low:
         raise ParameterError(f"`high` ({high:g}) must be above `low` ({low:g}).")
-    chunk_size = Int(low=1).clean("chunk_size", chunk_size)
     setter = (lambda v: int(v)) if integer else (lambda v: float(v))
     out = _search(scenario, parameter=parameter, kind="size", target=target, low=low, high=high, scale=scale,
                   step=step, setter=setter, level=level, rel_tol=rel_tol,
-                  abs_tol=0.5 * step if step else 0.0, max_reps=max_reps, seed=seed, n_jobs=n_jobs,
-                  chunk_size=chunk_size, store=store, progress=progress, fit_trouble=fit_trouble, analysis=analysis,
-                  max_failure_rate=max_failure_rate, pilot_points=pilot_points, pilot_reps=chunk_size, engine=engine)
+                  abs_tol=0.5 * step if step else 0.0, max_reps=max_reps, ex=ex, analysis=analysis,
+                  pilot_points=pilot_points, pilot_reps=ex.chunk_size, labels=labels)
     if moved:
         out["note"] = "; ".join(filter(None, (moved, out["note"])))
+    chunk_size = ex.chunk_size
     an, an_cont = analytic_size(scenario, analysis, parameter, target, low, high, step or 1) if integer else (None, None)
     settings = {"power": target, "parameter": parameter, "low": low, "high": high, "step": step, "scale": scale,
                 "level": level, "rel_tol": rel_tol, "max_reps": max_reps, "chunk_size": chunk_size,
@@ -735,7 +742,7 @@ def detectable_effect(scenario, power: float = 0.8, *, parameter: str | None = N
                       max_reps: int = 200_000, seed=None, n_jobs: int | None = -1, chunk_size: int = SEARCH_CHUNK,
                       store=None, progress: bool | None = None, fit_trouble: str = "failure",
                       analysis: str | None = None, max_failure_rate: float = 0.5,
-                      pilot_points: int = PILOT_POINTS, engine=None) -> SearchResult:
+                      pilot_points: int = PILOT_POINTS, engine=None, execution: Execution | None = None) -> SearchResult:
     """The minimal detectable effect: the smallest effect reaching ``power`` at the scenario's size.
 
     The effect is searched on its magnitude in the direction of the
@@ -754,6 +761,8 @@ def detectable_effect(scenario, power: float = 0.8, *, parameter: str | None = N
     >>> res.interval[0] <= 0.4986 <= res.interval[1]   # t_effect(64, 0.8, design="two-sample")
     True
     """
+    ex, labels = _search_execution(execution, engine, chunk_size, seed=seed, n_jobs=n_jobs, store=store,
+                                   progress=progress, fit_trouble=fit_trouble, max_failure_rate=max_failure_rate)
     target, level, rel_tol, max_reps, analysis = _check_common(scenario, power, level, rel_tol, max_reps, analysis)
     parameter = _parameter(scenario, parameter, "effect_param")
     current = float(scenario.get_params()[parameter])
@@ -767,13 +776,10 @@ def detectable_effect(scenario, power: float = 0.8, *, parameter: str | None = N
     high = abs(Real().clean("high", high))
     if high <= low:
         raise ParameterError(f"`high` ({high:g}) must be above `low` ({low:g}) in magnitude.")
-    chunk_size = Int(low=1).clean("chunk_size", chunk_size)
     setter = lambda u: sign * float(u)  # noqa: E731
     out = _search(scenario, parameter=parameter, kind="effect", target=target, low=low, high=high, scale="linear",
-                  step=None, setter=setter, level=level, rel_tol=rel_tol, abs_tol=0.0, max_reps=max_reps, seed=seed,
-                  n_jobs=n_jobs, chunk_size=chunk_size, store=store, progress=progress, fit_trouble=fit_trouble,
-                  analysis=analysis, max_failure_rate=max_failure_rate, pilot_points=pilot_points,
-                  pilot_reps=chunk_size, engine=engine)
+                  step=None, setter=setter, level=level, rel_tol=rel_tol, abs_tol=0.0, max_reps=max_reps, ex=ex,
+                  analysis=analysis, pilot_points=pilot_points, pilot_reps=ex.chunk_size, labels=labels)
     if sign < 0:
         out["value"], out["estimate"] = -out["value"], -out["estimate"]
         lo, hi = out["interval"]
@@ -781,6 +787,7 @@ def detectable_effect(scenario, power: float = 0.8, *, parameter: str | None = N
         lo, hi = out["estimate_interval"]
         out["estimate_interval"] = (-hi, -lo)
         out["table"]["value"] = -out["table"]["value"]
+    chunk_size = ex.chunk_size
     an = analytic_effect(scenario, analysis, parameter, target, low, high, setter)
     settings = {"power": target, "parameter": parameter, "low": low, "high": high, "scale": "linear",
                 "level": level, "rel_tol": rel_tol, "max_reps": max_reps, "chunk_size": chunk_size,
@@ -791,13 +798,8 @@ def detectable_effect(scenario, power: float = 0.8, *, parameter: str | None = N
                         sign=sign, **out)
 
 
-#: fields of the [search] block of a scenario file
-SEARCH_FIELDS = {
-    "find": Choice(("size", "effect")), "power": Real(0.0, 1.0, low_open=True, high_open=True), "parameter": None,
-    "low": Real(), "high": Real(), "step": Real(0.0, low_open=True), "scale": Choice(tuple(SCALES)),
-    "level": Real(0.5, 1.0, high_open=True), "rel_tol": Real(0.0, 1.0, low_open=True, high_open=True),
-    "max_reps": Int(low=1), "chunk_size": Int(low=1), "analysis": None, "pilot_points": Int(low=2),
-}
+# the [search] block's fields live with the other blocks (simpower.blocks)
+from ..blocks import SEARCH_FIELDS  # noqa: E402,F401
 
 
 def search(scenario, find: str = "size", **options) -> SearchResult:

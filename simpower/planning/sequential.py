@@ -24,8 +24,9 @@ from __future__ import annotations
 import math
 from typing import Sequence
 
-from .._validation import Choice, Int, Real
-from ..engine import run_many
+from .._validation import Int, Real
+from ..engine.runner import run_points
+from ..execution import Execution, resolve
 from ..engine.chunk import ChunkOutput
 from ..engine.runner import default_chunk_size
 from ..errors import ParameterError
@@ -131,6 +132,26 @@ def seed_with_store(seed, mem: MemoryStore) -> int:
     return normalize_seed(seed if seed is not None or mem.seed is None else int(mem.seed))
 
 
+#: keys of the old ``engine={...}`` mapping that are execution settings (the rest: ``labels``)
+ENGINE_KEYS = ("backend", "address", "timeout", "keep_records")
+
+
+def execution_of(execution: Execution | None, engine=None, **keywords) -> tuple[Execution, dict | None]:
+    """(the call's Execution, point labels) from ``execution``, an old ``engine`` mapping and keyword arguments.
+
+    ``engine`` (``backend``, ``address``, ``timeout``, ``keep_records``, and
+    ``labels`` for messages) is the mapping planning calls took before
+    :class:`~simpower.execution.Execution`; it keeps working.
+    """
+    eng = dict(engine or {})
+    labels = eng.pop("labels", None)
+    unknown = [k for k in eng if k not in ENGINE_KEYS]
+    if unknown:
+        raise ParameterError(f"`engine` has no setting `{unknown[0]}`; it takes {', '.join(ENGINE_KEYS)} "
+                             f"(or give execution=Execution(...)).")
+    return resolve(execution, **keywords, **eng), labels
+
+
 def check_target_mcse(target_mcse) -> float:
     return Real(0.0, 0.5, low_open=True, high_open=True).clean("target_mcse", target_mcse)
 
@@ -170,7 +191,7 @@ def run_many_to_mcse(scenarios: Sequence, target_mcse: float = 0.005, *, max_rep
                      min_reps: int = MIN_REPS, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
                      store=None, progress: bool | None = None, fit_trouble: str = "failure",
                      which: str = "primary", keys: Sequence[int] | None = None, max_failure_rate: float = 0.5,
-                     engine=None):
+                     engine=None, execution: Execution | None = None):
     """Run each scenario until its power's MCSE reaches ``target_mcse`` (or ``max_reps``).
 
     All points still short of their target are extended together in one
@@ -185,20 +206,21 @@ def run_many_to_mcse(scenarios: Sequence, target_mcse: float = 0.005, *, max_rep
         raise ParameterError(f"`min_reps` ({min_reps}) must not exceed `max_reps` ({max_reps}).")
     if which not in ("primary", "all"):
         raise ParameterError(f"`which` must be 'primary' or 'all'; got {which!r}.")
+    ex, labels = execution_of(execution, engine, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, store=store,
+                              progress=progress, fit_trouble=fit_trouble, max_failure_rate=max_failure_rate)
     scenarios = list(scenarios)
     keys = [point_key(s) for s in scenarios] if keys is None else list(keys)
-    sizes = [grow_chunk_size(s, chunk_size) for s in scenarios]
-    mem = as_memory_store(store)
+    sizes = [grow_chunk_size(s, ex.chunk_size) for s in scenarios]
+    mem = as_memory_store(ex.store)
     try:
-        return _grow(scenarios, target_mcse, max_reps, min_reps, seed_with_store(seed, mem), n_jobs, sizes, mem,
-                     progress, fit_trouble, which, keys, max_failure_rate, dict(engine or {}))
+        return _grow(scenarios, target_mcse, max_reps, min_reps, ex.replace(seed=seed_with_store(ex.seed, mem),
+                     store=mem), sizes, which, keys, labels)
     finally:
-        if mem is not store:
+        if mem is not ex.store:
             mem.close()
 
 
-def _grow(scenarios, target_mcse, max_reps, min_reps, entropy, n_jobs, sizes, mem, progress, fit_trouble, which,
-          keys, max_failure_rate, engine):
+def _grow(scenarios, target_mcse, max_reps, min_reps, ex: Execution, sizes, which, keys, labels):
     reps = [min(_round_up(min_reps, cs), max_reps) for cs in sizes]
     results: list = [None] * len(scenarios)
     looks: list[list[int]] = [[] for _ in scenarios]
@@ -208,10 +230,8 @@ def _grow(scenarios, target_mcse, max_reps, min_reps, entropy, n_jobs, sizes, me
         for i in todo:
             groups.setdefault(sizes[i], []).append(i)
         for cs, idx in groups.items():
-            outs = run_many([scenarios[i] for i in idx], [reps[i] for i in idx], seed=entropy, n_jobs=n_jobs,
-                            chunk_size=cs, progress=progress, fit_trouble=fit_trouble, store=mem,
-                            keys=[keys[i] for i in idx], max_failure_rate=max_failure_rate,
-                            desc="extending", **engine)
+            outs = run_points([scenarios[i] for i in idx], [reps[i] for i in idx], ex.replace(chunk_size=cs),
+                              keys=[keys[i] for i in idx], desc="extending", labels=labels)
             for i, res in zip(idx, outs):
                 results[i] = res
                 looks[i].append(reps[i])
@@ -238,7 +258,7 @@ def _grow(scenarios, target_mcse, max_reps, min_reps, entropy, n_jobs, sizes, me
 def run_to_mcse(scenario, target_mcse: float = 0.005, *, max_reps: int = MAX_REPS, min_reps: int = MIN_REPS,
                 seed=None, n_jobs: int | None = -1, chunk_size: int | None = None, store=None,
                 progress: bool | None = None, fit_trouble: str = "failure", which: str = "primary",
-                max_failure_rate: float = 0.5, engine=None):
+                max_failure_rate: float = 0.5, engine=None, execution: Execution | None = None):
     """Simulate until the power's Monte Carlo SE is at most ``target_mcse``.
 
     Parameters
@@ -264,7 +284,9 @@ def run_to_mcse(scenario, target_mcse: float = 0.005, *, max_reps: int = MAX_REP
         Whose MCSE must reach the target: the primary analysis, or every one.
     engine : mapping, optional
         Further keyword arguments for :func:`simpower.run_many` (``backend``,
-        ``address``, ``timeout``, ``keep_records``).
+        ``address``, ``timeout``, ``keep_records``); kept for old calls.
+    execution : Execution, optional
+        The execution settings (seed to chunk_size) as one value.
 
     Returns
     -------
@@ -283,31 +305,8 @@ def run_to_mcse(scenario, target_mcse: float = 0.005, *, max_reps: int = MAX_REP
     return run_many_to_mcse([scenario], target_mcse, max_reps=max_reps, min_reps=min_reps, seed=seed,
                             n_jobs=n_jobs, chunk_size=chunk_size, store=store, progress=progress,
                             fit_trouble=fit_trouble, which=which, max_failure_rate=max_failure_rate,
-                            engine=engine)[0]
+                            engine=engine, execution=execution)[0]
 
 
-def read_block(block_name: str, block, fields: dict) -> dict:
-    """Validate a scenario-file block (a TOML table) against ``{field: Constraint}``; return the cleaned fields.
-
-    Unknown fields raise ParameterError naming the nearest valid one; absent
-    fields are left out.
-    """
-    from ..errors import nearest
-
-    if block is None:
-        return {}
-    if not isinstance(block, dict):
-        raise ParameterError(f"[{block_name}] must be a table.")
-    out = {}
-    for key, value in block.items():
-        if key not in fields:
-            raise ParameterError(f"[{block_name}]: unknown field `{key}`.{nearest(key, fields)}")
-        con = fields[key]
-        out[key] = value if con is None else con.clean(f"{block_name}.{key}", value)
-    return out
-
-
-#: fields of the [sequential] block
-SEQUENTIAL_FIELDS = {"target_mcse": Real(0.0, 0.5, low_open=True, high_open=True), "min_reps": Int(low=1),
-                     "max_reps": Int(low=1), "chunk_size": Int(low=1), "which": Choice(("primary", "all"))}
-
+# the [sequential] block's fields and the block reader live with the other blocks (simpower.blocks)
+from ..blocks import SEQUENTIAL_FIELDS, read_block  # noqa: E402,F401

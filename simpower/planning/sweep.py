@@ -28,11 +28,13 @@ from typing import Any, Iterable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from ..engine import normalize_seed, run_many
-from ..engine.runner import point_labels
-from .._validation import Bool, Int, Real
+from ..engine import normalize_seed
+from ..engine.runner import point_labels, run_points
+from ..execution import Execution
+
 from ..errors import ParameterError
-from .sequential import as_memory_store, check_target_mcse, point_key, run_many_to_mcse, seed_with_store
+from .sequential import (as_memory_store, check_target_mcse, execution_of, point_key, run_many_to_mcse,
+                         seed_with_store)
 from ..summaries import bradley_liberal
 
 #: columns of a sweep table after the grid parameters, in order
@@ -303,8 +305,7 @@ def _opened(store):
             mem.close()
 
 
-def _run_points(scenarios, reps, seed, n_jobs, chunk_size, store, progress, fit_trouble, target_mcse, max_reps,
-                min_reps, max_failure_rate, engine=None):
+def _run_points(scenarios, reps, ex: Execution, target_mcse, max_reps, min_reps, labels=None):
     """Run unique points once (content keys), in one pool; return results in the scenarios' order."""
     keys = [point_key(s) for s in scenarios]
     unique: dict[int, Any] = {}
@@ -312,16 +313,12 @@ def _run_points(scenarios, reps, seed, n_jobs, chunk_size, store, progress, fit_
         unique.setdefault(k, s)
     ukeys = list(unique)
     # messages name a point by its parameters ("n = 48, icc = 0.05"), not by its seed key
-    engine = {**dict(engine or {}), "labels": dict(zip(keys, point_labels(scenarios)))}
+    labels = {**dict(zip(keys, point_labels(scenarios))), **dict(labels or {})}
     if target_mcse is not None:
-        outs = run_many_to_mcse(list(unique.values()), target_mcse, max_reps=max_reps, min_reps=min_reps, seed=seed,
-                                n_jobs=n_jobs, chunk_size=chunk_size, store=store, progress=progress,
-                                fit_trouble=fit_trouble, keys=ukeys, max_failure_rate=max_failure_rate,
-                                engine=engine)
+        outs = run_many_to_mcse(list(unique.values()), target_mcse, max_reps=max_reps, min_reps=min_reps,
+                                keys=ukeys, engine={"labels": labels}, execution=ex)
     else:
-        outs = run_many(list(unique.values()), reps, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, store=store,
-                        progress=progress, fit_trouble=fit_trouble, keys=ukeys, max_failure_rate=max_failure_rate,
-                        desc="sweeping", **engine)
+        outs = run_points(list(unique.values()), reps, ex, keys=ukeys, desc="sweeping", labels=labels)
     by_key = dict(zip(ukeys, outs))
     return [by_key[k] for k in keys]
 
@@ -329,7 +326,7 @@ def _run_points(scenarios, reps, seed, n_jobs, chunk_size, store, progress, fit_
 def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
           store=None, progress: bool | None = None, fit_trouble: str = "failure", target_mcse: float | None = None,
           max_reps: int = 100_000, min_reps: int = 1000, max_failure_rate: float = 0.5,
-          return_results: bool = False, engine=None):
+          return_results: bool = False, engine=None, execution: Execution | None = None):
     """Simulate ``scenario`` at every point of ``grid``; one row per grid point and analysis.
 
     Parameters
@@ -357,7 +354,10 @@ def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -
         Also return the list of RunResults (one per grid point).
     engine : mapping, optional
         Further keyword arguments for :func:`simpower.run_many` (``backend``,
-        ``address``, ``timeout``, ``keep_records``).
+        ``address``, ``timeout``, ``keep_records``); kept for old calls.
+    execution : Execution, optional
+        The execution settings (seed to chunk_size) as one value; a keyword
+        argument that contradicts it is refused.
 
     Returns
     -------
@@ -375,11 +375,14 @@ def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -
     """
     if target_mcse is not None:
         target_mcse = check_target_mcse(target_mcse)
+    ex, labels = execution_of(execution, engine, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, store=store,
+                              progress=progress, fit_trouble=fit_trouble, max_failure_rate=max_failure_rate)
+    fit_trouble = ex.fit_trouble
     settings, scenarios = grid_scenarios(scenario, grid)
-    with _opened(store) as mem:
-        entropy = normalize_seed(seed) if mem is None else seed_with_store(seed, mem)
-        results = _run_points(scenarios, reps, entropy, n_jobs, chunk_size, mem, progress, fit_trouble, target_mcse,
-                              max_reps, min_reps, max_failure_rate, engine)
+    with _opened(ex.store) as mem:
+        entropy = normalize_seed(ex.seed) if mem is None else seed_with_store(ex.seed, mem)
+        results = _run_points(scenarios, reps, ex.replace(seed=entropy, store=mem), target_mcse, max_reps,
+                              min_reps, labels)
     extra = None
     if target_mcse is not None:
         extra = lambda res, name, s: {"mcse_reached": res.extra["sequential"]["reached"]}  # noqa: E731
@@ -394,7 +397,7 @@ def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -
 
 def null_check(scenario, grid=None, reps: int = 10_000, *, seed=None, n_jobs: int | None = -1,
                chunk_size: int | None = None, store=None, progress: bool | None = None, fit_trouble: str = "failure",
-               max_failure_rate: float = 0.5, engine=None) -> pd.DataFrame:
+               max_failure_rate: float = 0.5, engine=None, execution: Execution | None = None) -> pd.DataFrame:
     """Type I error of each analysis with the effect on the boundary of its H0, everything else kept.
 
     A test of "no effect" is run at the process's null (effect 0, or ratio
@@ -441,11 +444,13 @@ def null_check(scenario, grid=None, reps: int = 10_000, *, seed=None, n_jobs: in
         settings, scenarios = [{}], [scenario]
     else:
         settings, scenarios = grid_scenarios(scenario, grid)
+    ex, labels = execution_of(execution, engine, seed=seed, n_jobs=n_jobs, chunk_size=chunk_size, store=store,
+                              progress=progress, fit_trouble=fit_trouble, max_failure_rate=max_failure_rate)
     points = [null_points(s) for s in scenarios]
-    with _opened(store) as mem:
-        entropy = normalize_seed(seed) if mem is None else seed_with_store(seed, mem)
-        results = _run_points([p.scenario for pts in points for p in pts], reps, entropy, n_jobs, chunk_size, mem,
-                              progress, fit_trouble, None, None, None, max_failure_rate, engine)
+    with _opened(ex.store) as mem:
+        entropy = normalize_seed(ex.seed) if mem is None else seed_with_store(ex.seed, mem)
+        results = _run_points([p.scenario for pts in points for p in pts], reps, ex.replace(seed=entropy, store=mem),
+                              None, None, None, labels)
     done = iter(results)
     rows = []
     for setting, s, pts in zip(settings, scenarios, points):
@@ -507,10 +512,8 @@ def grid_from_block(block: Mapping[str, Any]) -> Grid | None:
     return axes if axes.axes else None
 
 
-SWEEP_FIELDS = {"vary": None, "together": None, "reps": Int(low=1), "target_mcse": Real(0.0, 0.5, low_open=True,
-                high_open=True), "max_reps": Int(low=1), "min_reps": Int(low=1), "chunk_size": Int(low=1),
-                "x": None, "null_check": Bool()}
-NULL_CHECK_FIELDS = {"enabled": Bool(), "reps": Int(low=1), "at_grid": Bool()}
+# the [sweep] and [null_check] blocks' fields live with the other blocks (simpower.blocks)
+from ..blocks import NULL_CHECK_FIELDS, SWEEP_FIELDS  # noqa: E402,F401
 
 
 def parse_axis(text: str) -> tuple[str, Any]:

@@ -1,0 +1,92 @@
+"""The blocks of a scenario file and their declared fields, checked when the file is loaded.
+
+Each block of a study plan (``[sweep]``, ``[search]``, ``[sequential]``,
+``[null_check]``, ``[report]``, ``[store]``, ``[execution]``) declares its
+fields as a table ``{field: constraint}`` (:mod:`simpower.constraints`);
+:func:`read_block` checks a block against its table and returns the cleaned
+fields. The loader (:mod:`simpower.scenario_files`) calls it for every block
+present, so ``[sweep] reps = -5`` is refused at load, in one line naming
+``sweep.reps``, before anything runs.
+
+The tables live here, below the planning code and the engine that use them,
+so the loader can check every block without importing what runs it.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from ._validation import Bool, Choice, Int, OneOrMore, Real, Table, Text
+from .errors import ParameterError, nearest
+
+#: a target Monte Carlo SE of a rejection rate: above 0 and below 0.5 (the largest SE a rate can have)
+TARGET_MCSE = Real(0.0, 0.5, low_open=True, high_open=True)
+#: executors (see :mod:`simpower.engine.executor`)
+BACKENDS = ("loky", "threading", "serial", "dask")
+#: the scales a size search may use between its evaluated sizes (see :mod:`simpower.planning.search`)
+SEARCH_SCALES = ("sqrt", "log", "linear")
+#: report formats
+FORMATS = ("md", "html")
+
+#: [sweep]: the grid (``vary`` crossed, ``together`` zipped sets), replicates per point and the plot axis
+SWEEP_FIELDS = {"vary": Table(), "together": OneOrMore(Table()), "reps": Int(low=1), "target_mcse": TARGET_MCSE,
+                "max_reps": Int(low=1), "min_reps": Int(low=1), "chunk_size": Int(low=1), "x": Text(),
+                "null_check": Bool()}
+#: [search]: the required size (``find = "size"``) or the minimal detectable effect (``"effect"``)
+SEARCH_FIELDS = {
+    "find": Choice(("size", "effect")), "power": Real(0.0, 1.0, low_open=True, high_open=True), "parameter": Text(),
+    "low": Real(), "high": Real(), "step": Real(0.0, low_open=True), "scale": Choice(SEARCH_SCALES),
+    "level": Real(0.5, 1.0, high_open=True), "rel_tol": Real(0.0, 1.0, low_open=True, high_open=True),
+    "max_reps": Int(low=1), "chunk_size": Int(low=1), "analysis": Text(), "pilot_points": Int(low=2),
+}
+#: [sequential]: run until the power's MCSE reaches a target
+SEQUENTIAL_FIELDS = {"target_mcse": TARGET_MCSE, "min_reps": Int(low=1), "max_reps": Int(low=1),
+                     "chunk_size": Int(low=1), "which": Choice(("primary", "all"))}
+#: [null_check]: the type I error at each analysis's H0 boundary
+NULL_CHECK_FIELDS = {"enabled": Bool(), "reps": Int(low=1), "at_grid": Bool()}
+#: [report]: title, output folder (relative to the file's folder), formats (a list or "md,html")
+REPORT_FIELDS = {"title": Text(), "out": Text(), "formats": OneOrMore(Choice(FORMATS), sep=",")}
+#: [store]: the run store file (relative to the file's folder) and its durability
+STORE_FIELDS = {"path": Text(), "sync": Choice(("normal", "full"))}
+#: [execution]: where and how chunks run (never what they compute)
+EXECUTION_FIELDS = {"backend": Choice(BACKENDS), "address": Text(), "timeout": Real(0.0, low_open=True),
+                    "summaries_only": Bool()}
+
+#: every block of a study plan -> its fields
+BLOCK_FIELDS: dict[str, dict[str, Any]] = {
+    "sweep": SWEEP_FIELDS, "search": SEARCH_FIELDS, "sequential": SEQUENTIAL_FIELDS,
+    "null_check": NULL_CHECK_FIELDS, "report": REPORT_FIELDS, "store": STORE_FIELDS,
+    "execution": EXECUTION_FIELDS,
+}
+
+
+def read_block(block_name: str, block: Any, fields: dict | None = None) -> dict:
+    """Check a block (a TOML table) against ``{field: constraint}``; return the cleaned fields.
+
+    ``fields`` defaults to the block's own table in :data:`BLOCK_FIELDS`. An
+    unknown field raises a ParameterError naming the nearest valid one; a bad
+    value one naming ``block.field``; absent fields are left out.
+
+    Examples
+    --------
+    >>> read_block("sweep", {"reps": 500})
+    {'reps': 500}
+    >>> read_block("sweep", {"reps": -5})
+    Traceback (most recent call last):
+    ...
+    simpower.errors.ParameterError: `sweep.reps` must be an integer >= 1; got -5.
+    """
+    if fields is None:
+        fields = BLOCK_FIELDS[block_name]
+    if block is None:
+        return {}
+    if not isinstance(block, dict):
+        raise ParameterError(f"`{block_name}` must be a table ([{block_name}] with fields "
+                             f"{', '.join(fields)}); got {block!r}.")
+    out = {}
+    for key, value in block.items():
+        if key not in fields:
+            raise ParameterError(f"`{block_name}.{key}` is not a field of [{block_name}].{nearest(key, fields)}")
+        con = fields[key]
+        out[key] = value if con is None else con.clean(f"{block_name}.{key}", value)
+    return out

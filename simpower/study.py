@@ -1,0 +1,303 @@
+"""A study plan and its execution: what a scenario file plans, as one value, and the one function that runs it.
+
+:func:`load_plan` reads a scenario file into a validated :class:`StudyPlan`:
+the Scenario, the blocks that say what to compute (``[search]``, ``[sweep]``,
+``[sequential]``, ``[null_check]``, ``[report]``) and how to run it (one
+:class:`~simpower.execution.Execution`, with run stores per part).
+:func:`execute` runs it and returns a :class:`PlanResult`:
+
+* the search (required size or minimal detectable effect) when the plan has one;
+* the sweep when it has one;
+* otherwise the scenario as given, ``reps`` replicates (or to a target MCSE
+  when ``[sequential]`` sets one);
+* and the type I error check at each analysis's H0 boundary when it is on
+  (on unless ``[null_check] enabled = false``).
+
+All parts share one seed (the plan's, else fresh entropy, recorded in the
+result), so ``execute(load_plan("trial.toml"))`` gives the numbers
+``simpower report trial.toml`` gives. The command line only parses, builds or
+overrides a plan, executes it and prints.
+
+Examples
+--------
+>>> import simpower as sp, tempfile, pathlib
+>>> text = '''
+... seed = 1
+... reps = 500
+... [process]
+... type = "normal_two_arm"
+... n = 64
+... effect = 0.5
+... [analysis]
+... type = "t_test"
+... [null_check]
+... enabled = false
+... [execution]
+... backend = "serial"
+... '''
+>>> path = pathlib.Path(tempfile.mkdtemp()) / "trial.toml"
+>>> _ = path.write_text(text)
+>>> out = sp.execute(sp.load_plan(path))
+>>> abs(out.run.power - 0.80) < 4 * out.run.mcse   # Cohen (1988): n = 64 per arm, d = 0.5 -> 80%
+True
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Mapping
+
+from .errors import ParameterError
+from .execution import Execution
+
+#: replicates of a plain run or a sweep point when neither the call nor the file gives ``reps``
+DEFAULT_REPS = 2000
+#: replicates of the type I error check by default
+DEFAULT_NULL_REPS = 10_000
+#: the parts of a plan that run, in the order they run (each may have its own run store)
+PARTS = ("search", "sweep", "run", "null_check")
+
+
+@dataclass(frozen=True)
+class StudyPlan:
+    """What to compute and how: a Scenario, its planning blocks, and one Execution.
+
+    Attributes
+    ----------
+    scenario : Scenario
+    execution : Execution
+        Seed, workers, executor, failure policy, limits, records and the run
+        level chunk size (``store`` is left None: see ``stores``).
+    reps : int or None
+        Replicates of a plain run (and of each sweep point unless the sweep
+        gives its own); None: :data:`DEFAULT_REPS`.
+    search : mapping or None
+        Options of :func:`simpower.planning.search.search`, ``find`` included.
+    sweep : mapping or None
+        ``grid`` (a :class:`~simpower.planning.sweep.Grid`), and optionally
+        ``reps``, ``target_mcse``, ``max_reps``, ``min_reps``, ``chunk_size``, ``x``.
+    sequential : mapping
+        The ``[sequential]`` block (a plain run to a target MCSE when it has
+        ``target_mcse``).
+    null_check : mapping or None
+        ``reps`` and ``at_grid`` of the type I error check; None when it is off.
+    report : mapping
+        The ``[report]`` block (title, out, formats), for whoever renders.
+    stores : mapping
+        A run store (path) per part (:data:`PARTS`); a part not named has none.
+    path : Path or None
+        The scenario file (for messages and the report).
+    """
+
+    scenario: Any
+    execution: Execution = field(default_factory=Execution)
+    reps: int | None = None
+    search: Mapping[str, Any] | None = None
+    sweep: Mapping[str, Any] | None = None
+    sequential: Mapping[str, Any] = field(default_factory=dict)
+    null_check: Mapping[str, Any] | None = None
+    report: Mapping[str, Any] = field(default_factory=dict)
+    stores: Mapping[str, Any] = field(default_factory=dict)
+    path: Path | None = None
+
+    def replace(self, **changes) -> "StudyPlan":
+        """A copy with ``changes`` applied (e.g. ``plan.replace(null_check=None)``)."""
+        return dataclasses.replace(self, **changes)
+
+    @property
+    def kind(self) -> str:
+        """What the plan computes first: 'search', 'sweep' or 'run'."""
+        return "search" if self.search is not None else "sweep" if self.sweep is not None else "run"
+
+
+@dataclass
+class PlanResult:
+    """The results of :func:`execute`: one per part that ran, the seed they share, and the settings used."""
+
+    seed: int
+    search: Any = None
+    sweep: Any = None
+    run: Any = None
+    null: Any = None
+    x: str | None = None
+    settings: dict = field(default_factory=dict)
+
+
+def execution_from_file(sf) -> Execution:
+    """The Execution a loaded scenario file asks for (top-level run settings and ``[execution]``)."""
+    ex = sf.blocks.get("execution", {})
+    return Execution(seed=sf.run.get("seed"), n_jobs=sf.run.get("jobs", -1), chunk_size=sf.run.get("chunk_size"),
+                     fit_trouble=sf.run.get("fit_trouble", "failure"),
+                     max_failure_rate=sf.run.get("max_failure_rate", 0.5), backend=ex.get("backend"),
+                     address=ex.get("address"), timeout=ex.get("timeout"),
+                     keep_records=False if ex.get("summaries_only") else None)
+
+
+def null_settings(block: Mapping[str, Any], default_on: bool, on: bool = False,
+                  reps: int | None = None) -> dict | None:
+    """The type I check's settings from its block (``on``/``reps`` from a command line win), or None when off."""
+    if not (on or block.get("enabled", default_on)):
+        return None
+    reps = reps or block.get("reps", DEFAULT_NULL_REPS)
+    if reps < 1:
+        raise ParameterError(f"`--null-reps` must be an integer >= 1; got {reps}.")
+    return {"reps": reps, "at_grid": block.get("at_grid", False)}
+
+
+def sweep_part(block: Mapping[str, Any], grid=None) -> dict:
+    """The sweep part of a plan from a ``[sweep]`` block (``grid`` replaces the block's)."""
+    from .planning.sweep import grid_from_block
+
+    grid = grid if grid is not None else grid_from_block(block)
+    if grid is None:
+        raise ParameterError("the grid is empty: give --vary NAME=VALUES, or a [sweep] block with [sweep.vary] "
+                             "or [[sweep.together]].")
+    part = {k: block[k] for k in ("reps", "target_mcse", "max_reps", "min_reps", "chunk_size", "x") if k in block}
+    part["grid"] = grid
+    return part
+
+
+def plan_from_file(sf, *, execution: Execution | None = None, stores: Mapping[str, Any] | None = None) -> StudyPlan:
+    """The StudyPlan of a loaded :class:`~simpower.scenario_files.ScenarioFile` (what ``simpower report`` runs).
+
+    The grid and the plot axis are checked here, before anything runs, and so
+    is every null-check boundary.
+    """
+    from .planning.nullpoints import null_points
+    from .planning.sweep import check_names
+
+    blocks = sf.blocks
+    sweep = None
+    if "sweep" in blocks:
+        sweep = sweep_part(blocks["sweep"])
+        names = sweep["grid"].names
+        check_names(sf.scenario, names)
+        x = sweep.get("x", names[0])
+        if x not in names:
+            src = "`[sweep] x`" if "x" in sweep else "the default x axis (the first swept parameter)"
+            raise ParameterError(f"{src} {x!r} is not a swept parameter; swept: {', '.join(names)}.")
+        sweep["x"] = x
+    null = null_settings(blocks.get("null_check", {}), default_on=True)
+    if null is not None:
+        null_points(sf.scenario)  # a boundary that cannot be placed is refused before anything runs
+    search = None
+    if "search" in blocks:
+        search = dict(blocks["search"])
+        search.setdefault("find", "size")
+    return StudyPlan(scenario=sf.scenario, execution=execution or execution_from_file(sf), reps=sf.run.get("reps"),
+                     search=search, sweep=sweep, sequential=dict(blocks.get("sequential", {})), null_check=null,
+                     report=dict(blocks.get("report", {})), stores=dict(stores or {}), path=sf.path)
+
+
+def load_plan(path: str | Path, overrides: Mapping[str, Any] | None = None,
+              changes: Mapping[str, Any] | None = None) -> StudyPlan:
+    """Read and validate a scenario file into a :class:`StudyPlan`.
+
+    ``overrides`` replace top-level run settings (``reps``, ``seed``,
+    ``jobs``...); ``changes`` are scenario parameters, as for
+    :meth:`Scenario.with_params` (``{"n": 80}``), resolved against the file's
+    folder.
+    """
+    from .functions import reference_folder
+    from .scenario_files import load
+
+    sf = load(path, overrides=dict(overrides or {}))
+    if changes:
+        with reference_folder(Path(path).resolve().parent):
+            sf.scenario = sf.scenario.with_params(**dict(changes))
+    return plan_from_file(sf)
+
+
+def _search(plan: StudyPlan, ex: Execution):
+    from .planning.search import SEARCH_CHUNK, search
+
+    opts = dict(plan.search)
+    find = opts.pop("find", "size")
+    if opts.get("chunk_size") is None and ex.chunk_size:
+        opts["chunk_size"] = ex.chunk_size
+    opts.setdefault("chunk_size", SEARCH_CHUNK)
+    return search(plan.scenario, find, execution=ex.replace(chunk_size=None, store=plan.stores.get("search")),
+                  **opts)
+
+
+def _sweep(plan: StudyPlan, ex: Execution):
+    from .planning.sweep import sweep
+
+    part = plan.sweep
+    kw = {}
+    if part.get("target_mcse") is not None:
+        kw = {"target_mcse": part["target_mcse"], "max_reps": part.get("max_reps", 100_000),
+              "min_reps": part.get("min_reps", 1000)}
+    reps = part.get("reps") or plan.reps or DEFAULT_REPS
+    chunk = part.get("chunk_size", ex.chunk_size)
+    return sweep(plan.scenario, part["grid"], reps=reps,
+                 execution=ex.replace(chunk_size=chunk, store=plan.stores.get("sweep")), **kw)
+
+
+def _run(plan: StudyPlan, ex: Execution):
+    from .engine.runner import run
+    from .planning.sequential import run_to_mcse
+
+    seq = plan.sequential
+    store = plan.stores.get("run")
+    if seq.get("target_mcse") is not None:
+        kw = {k: seq[k] for k in ("min_reps", "max_reps", "which") if k in seq}
+        return run_to_mcse(plan.scenario, seq["target_mcse"],
+                           execution=ex.replace(chunk_size=seq.get("chunk_size", ex.chunk_size), store=store), **kw)
+    return run(plan.scenario, reps=plan.reps or DEFAULT_REPS, execution=ex.replace(store=store))
+
+
+def _null(plan: StudyPlan, ex: Execution):
+    from .planning.sweep import null_check
+
+    grid = plan.sweep["grid"] if plan.sweep is not None and plan.null_check["at_grid"] else None
+    return null_check(plan.scenario, grid, reps=plan.null_check["reps"],
+                      execution=ex.replace(store=plan.stores.get("null_check")))
+
+
+def execute(plan: StudyPlan, echo=None) -> PlanResult:
+    """Run what ``plan`` plans: its search, its sweep, else the scenario as given; then the type I check.
+
+    Parameters
+    ----------
+    plan : StudyPlan
+    echo : callable, optional
+        Called with a line of text as each part finishes (the command line prints them).
+
+    Returns
+    -------
+    PlanResult
+        ``search``, ``sweep``, ``run`` and ``null`` (None for a part that did
+        not run), the ``seed`` they share, the plot axis ``x`` of a sweep, and
+        the ``settings`` each part ran with (for the report's manifest).
+    """
+    from .engine import normalize_seed
+
+    if not isinstance(plan, StudyPlan):
+        raise ParameterError(f"`plan` must be a StudyPlan (simpower.load_plan('x.toml')); got "
+                             f"{type(plan).__name__}.")
+    say = echo or (lambda line: None)
+    seed = normalize_seed(plan.execution.seed)
+    ex = plan.execution.replace(seed=seed)
+    out = PlanResult(seed=seed)
+    if plan.search is not None:
+        out.search = _search(plan, ex)
+        out.settings["search"] = out.search.settings
+        say(out.search.summary())
+    if plan.sweep is not None:
+        out.sweep = _sweep(plan, ex)
+        out.x = plan.sweep.get("x")
+        out.settings["sweep"] = {"grid": plan.sweep["grid"].describe(), "reps": out.sweep.attrs.get("reps"),
+                                 "target_mcse": out.sweep.attrs.get("target_mcse"),
+                                 "chunk_size": out.sweep.attrs.get("chunk_size")}
+        say(f"sweep: {len(out.sweep)} rows")
+    if plan.search is None and plan.sweep is None:
+        out.run = _run(plan, ex)
+        out.settings["run"] = {"reps": out.run.reps, "chunk_size": out.run.chunk_size}
+        say(str(out.run))
+    if plan.null_check is not None:
+        out.null = _null(plan, ex)
+        out.settings["null_check"] = dict(plan.null_check)
+    return out
