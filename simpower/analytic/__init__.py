@@ -19,6 +19,8 @@ from .correlation import corr_effect, corr_n, corr_power
 from .design import ceil_n, clusters_per_arm, design_effect, inflate_for_dropout
 from .equivalence import tost_power, welch_tost_power
 from .freedman import freedman_events, freedman_power
+from .multiarm import (anova_effect, anova_n, anova_power, box_probability, cohen_f, dunnett_critical,
+                       dunnett_power, dunnett_pvalues, many_to_one_corr, many_to_one_lambdas)
 from .noether import noether_effect, noether_n, noether_power, superiority_normal
 from .normal import z_critical, z_effect, z_n, z_power
 from .proportions import prop2_effect, prop2_n, prop2_power
@@ -34,6 +36,8 @@ __all__ = [
     "ceil_n", "clusters_per_arm", "design_effect", "inflate_for_dropout",
     "corr_effect", "corr_n", "corr_power",
     "freedman_events", "freedman_power",
+    "anova_effect", "anova_n", "anova_power", "box_probability", "cohen_f", "dunnett_critical", "dunnett_power",
+    "dunnett_pvalues", "many_to_one_corr", "many_to_one_lambdas",
     "noether_effect", "noether_n", "noether_power", "superiority_normal",
     "prop2_effect", "prop2_n", "prop2_power",
     "rate_ratio_effect", "rate_ratio_n", "rate_ratio_power",
