@@ -176,10 +176,31 @@ def dunnett_pvalues(statistics, sizes, df=None, alternative="two-sided") -> np.n
     out = np.full(flat.shape, np.nan)
     ok = np.isfinite(flat)
     lo, hi = _limits(flat[ok], alternative)
-    lo = np.repeat(lo[:, None], k, axis=1)
-    hi = np.repeat(hi[:, None], k, axis=1)
-    out[ok] = np.clip(1.0 - box_probability(lo, hi, lam, df), 0.0, 1.0)
+    out[ok] = np.clip(1.0 - _common_box(lo, hi, lam, df), 0.0, 1.0)
     return out.reshape(t.shape)
+
+
+def _common_box(lo, hi, lam, df) -> np.ndarray:
+    """:func:`box_probability` with the same limits (lo[m], hi[m]) for every coordinate, no shift.
+
+    Coordinates with equal lambda have equal factors given (Z_0, S), so each distinct
+    lambda is evaluated once and raised to its multiplicity (equal treatment arms: one).
+    """
+    values, counts = np.unique(np.asarray(lam, float), return_counts=True)
+    tau = np.sqrt(1.0 - values * values)
+    z, wz = _z_rule()
+    u, wu = _s_rule(None if df is None else float(df))
+    lo = np.asarray(lo, float)[:, None, None]
+    hi = np.asarray(hi, float)[:, None, None]
+    base = values[None, :] * z[:, None]  # (Z, L)
+    out = np.zeros(lo.shape[0])
+    with np.errstate(invalid="ignore"):
+        for ui, wi in zip(u, wu):
+            a = np.where(np.isneginf(lo), -np.inf, (lo * ui - base) / tau)
+            b = np.where(np.isposinf(hi), np.inf, (hi * ui - base) / tau)
+            cell = (special.ndtr(b) - special.ndtr(a)) ** counts  # (M, Z, L)
+            out += wi * (np.prod(cell, axis=2) @ wz)
+    return np.clip(out, 0.0, 1.0)
 
 
 def _critical(k, df, alpha, alternative, alloc):
@@ -187,8 +208,7 @@ def _critical(k, df, alpha, alternative, alloc):
 
     def excess(x):
         lo, hi = _limits(np.array([x]), alternative)
-        lo, hi = np.repeat(lo, k)[None], np.repeat(hi, k)[None]
-        return float(1.0 - box_probability(lo, hi, lam, df)[0]) - alpha
+        return float(1.0 - _common_box(lo, hi, lam, df)[0]) - alpha
 
     if alternative == "less":
         return -_critical(k, df, alpha, "greater", alloc)
