@@ -14,6 +14,7 @@ from .analyses.clustered import GEE, ClusterMeansT, FinalVisitT
 from .analyses.counts import NegBinGLM, PoissonGLM
 from .analyses.equivalence import TOST, NonInferiority
 from .analyses.mixed import MixedModel
+from .analyses.multiarm import AnovaF, Dunnett
 from .analyses.multiplicity import Multiple
 from .analyses.nonparametric import MannWhitney, WilcoxonSignedRank
 from .analyses.regression import OLS, Ancova
@@ -75,7 +76,7 @@ __all__ = [
     # analyses
     "ZTest", "TTest", "WelchT", "PairedT", "ClusterMeansT", "GEE", "FinalVisitT", "TwoProportions", "ChiSquare",
     "FisherExact", "Logistic", "PoissonGLM", "NegBinGLM", "LogRank", "Cox", "MannWhitney", "WilcoxonSignedRank",
-    "PermutationTest", "BootstrapCI", "LogT", "TOST", "NonInferiority", "Multiple", "OLS", "Ancova", "MixedModel",
+    "PermutationTest", "BootstrapCI", "LogT", "TOST", "NonInferiority", "Multiple", "Dunnett", "AnovaF", "OLS", "Ancova", "MixedModel",
     # summaries
     "bradley_liberal", "paired_difference", "wilson_interval",
     # errors

@@ -324,6 +324,12 @@ CASES = [
     ({"type": "ols", "cov_type": "cluster"}, "clusters", False),  # complete data: per replicate, as before
     ({"type": "ols"}, "clusters_variable_missing", True),
     ({"type": "ols"}, "three_arms", True),                # any complete table with the formula's columns
+    ({"type": "dunnett"}, "three_arms", True),            # arms in sorted blocks of the table layout
+    ({"type": "dunnett", "alternative": "less"}, "three_arms", True),
+    ({"type": "dunnett"}, "two_arm", True),               # one comparison with control
+    ({"type": "dunnett"}, "two_arm_missing", False),      # missing values: per replicate
+    ({"type": "anova_f"}, "three_arms", True),
+    ({"type": "anova_f"}, "one_sample", False),           # no arms
     ({"type": "multiple", "tests": [{"type": "t_test"}, {"type": "welch_t"}]}, "two_arm", True),
     ({"type": "multiple", "tests": [{"type": "logistic"}, {"type": "fisher_exact"}]}, "binary_small", True),
     ({"type": "multiple", "tests": [{"type": "t_test"}, {"type": "welch_t"}, {"type": "tost", "margin": 0.5}]},

@@ -36,6 +36,8 @@ from .groupseq import (
     naive_alpha,
     spending,
 )
+from .multiarm import (anova_effect, anova_n, anova_power, box_probability, cohen_f, dunnett_critical,
+                       dunnett_power, dunnett_pvalues, many_to_one_corr, many_to_one_lambdas)
 from .noether import noether_effect, noether_n, noether_power, superiority_normal
 from .normal import z_critical, z_effect, z_n, z_power
 from .proportions import prop2_effect, prop2_n, prop2_power
@@ -53,6 +55,8 @@ __all__ = [
     "freedman_events", "freedman_power",
     "BetaSpending", "Boundaries", "Crossing", "boundaries", "classical", "crossing_probabilities", "drift_for_power",
     "expected_information", "inflation_factor", "naive_alpha", "spending",
+    "anova_effect", "anova_n", "anova_power", "box_probability", "cohen_f", "dunnett_critical", "dunnett_power",
+    "dunnett_pvalues", "many_to_one_corr", "many_to_one_lambdas",
     "noether_effect", "noether_n", "noether_power", "superiority_normal",
     "prop2_effect", "prop2_n", "prop2_power",
     "rate_ratio_effect", "rate_ratio_n", "rate_ratio_power",

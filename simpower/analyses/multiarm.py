@@ -1,0 +1,200 @@
+"""Several arms against a shared control: Dunnett's many-to-one test and the one-way ANOVA F test.
+
+Both read a long table with ``y`` and ``arm`` (0 = control, 1, 2, ... the
+other arms); missing outcomes (NaN) are dropped. The batch paths take the
+``table`` layout of a complete batch (no padding, no missingness) whose shared
+``arm`` labels are sorted and run 0, 1, ..., K - 1 (what ``multi_arm`` draws);
+they compute the same statistics with numpy and agree with the per-replicate
+paths to floating-point tolerance.
+
+:class:`Dunnett` returns one adjusted p-value per comparison with control
+(``pvalues``, named ``"1-0"``, ``"2-0"``, ...; the run result reports
+per-comparison, 'any' and 'all' power); its primary p-value is the smallest,
+so the primary power is the disjunctive power (at least one arm beats
+control). The adjusted p-values are those of ``scipy.stats.dunnett``
+(single-step, pooled variance of all arms, many-to-one multivariate t),
+evaluated by the deterministic quadrature of :mod:`simpower.analytic.multiarm`.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import stats
+
+from .. import analytic
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+
+
+def _arm_groups(data):
+    """Arm labels (sorted, control 0 first) and the finite outcomes of each arm."""
+    if "arm" not in data:
+        raise ValueError("a multi-arm analysis needs an 'arm' column (0 = control)")
+    y = np.asarray(data["y"], float)
+    arm = np.asarray(data["arm"])
+    levels = np.unique(arm)
+    if levels.size < 2 or levels[0] != 0:
+        raise ValueError(f"a multi-arm analysis needs arm 0 (control) and at least one other arm; got {levels.tolist()}")
+    groups = [y[(arm == lev) & np.isfinite(y)] for lev in levels]
+    empty = [int(lev) for lev, g in zip(levels, groups) if g.size == 0]
+    if empty:
+        raise ValueError(f"arm {empty[0]} has no observed outcome")
+    return levels, groups
+
+
+def _sorted_blocks(layout):
+    """Sizes of the arms 0..K-1 when the layout is complete and its shared arm labels are sorted blocks."""
+    if not layout.complete or "arm" not in layout.shared or "arm" in layout.per_rep:
+        return None
+    arm = np.asarray(layout.shared["arm"])
+    if arm.ndim != 1 or arm.size != layout.width or not np.issubdtype(arm.dtype, np.integer):
+        return None
+    if arm.size == 0 or arm[0] != 0 or np.any(np.diff(arm) < 0):
+        return None
+    levels, sizes = np.unique(arm, return_counts=True)
+    if levels.size < 2 or not np.array_equal(levels, np.arange(levels.size)):
+        return None
+    return sizes
+
+
+def _block_stats(y, sizes):
+    """Per-arm means (R, K) and the within-arm sum of squares (R,) of contiguous blocks."""
+    edges = np.concatenate([[0], np.cumsum(sizes)])
+    means, ss = [], 0.0
+    for a, b in zip(edges[:-1], edges[1:]):
+        block = y[:, a:b]
+        m = block.mean(axis=1)
+        d = block - m[:, None]
+        means.append(m)
+        ss = ss + np.einsum("ij,ij->i", d, d)
+    return np.column_stack(means), ss
+
+
+def _common_sd(process):
+    facts = getattr(process, "normal_arms", None)
+    return facts() if callable(facts) else None
+
+
+class Dunnett(Analysis):
+    """Dunnett's many-to-one test: each arm against the shared control, single-step adjusted.
+
+    H0 (comparison j): arm j's mean equals the control's (arm 0), against
+    ``alternative`` ('greater': arm j above control). The SD is pooled over
+    all arms (df = N - K); the adjusted p-value of comparison j is
+    1 - P(max_i T_i < t_j) under the many-to-one multivariate t (two-sided:
+    of |T|), as in ``scipy.stats.dunnett`` (Dunnett 1955, JASA 50:1096-1121).
+
+    ``estimate`` is arm 1's mean difference from control, ``se`` its pooled
+    standard error; the CI is that comparison's two-sided ``ci_level``
+    interval with the pooled SD (per comparison, not simultaneous), so its
+    coverage is comparable with the t-tests'.
+    """
+
+    name = "dunnett"
+    null_hypothesis = "each arm's mean equals the control arm's mean (common variance)"
+    params = {"alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
+    defaults = {"alternative": "two-sided", "ci_level": 0.95}
+
+    def __call__(self, data):
+        levels, groups = _arm_groups(data)
+        sizes = np.array([g.size for g in groups], float)
+        means = np.array([g.mean() for g in groups])
+        df = sizes.sum() - sizes.size
+        if df <= 0:
+            raise ValueError(f"Dunnett's test needs more observations than arms; got {int(sizes.sum())}")
+        ss = sum(float(np.sum((g - m) ** 2)) for g, m in zip(groups, means))
+        fields = self._fields(means[None, :], np.array([ss]), sizes, df)
+        return TestResult(pvalue=float(fields["pvalue"][0]), estimate=float(fields["estimate"][0]),
+                          se=float(fields["se"][0]), ci_low=float(fields["ci_low"][0]),
+                          ci_high=float(fields["ci_high"][0]), statistic=float(fields["t"][0, 0]), df=float(df),
+                          pvalues=fields["pvalues"][0], names=tuple(f"{int(j)}-0" for j in levels[1:]))
+
+    def _fields(self, means, ss, sizes, df):
+        """Statistics of R replicates from arm means (R, K), within sum of squares (R,), sizes (K,), df."""
+        with np.errstate(all="ignore"):
+            s = np.sqrt(ss / df)
+            se = s[:, None] * np.sqrt(1.0 / sizes[1:] + 1.0 / sizes[0])
+            diff = means[:, 1:] - means[:, :1]
+            t = diff / se
+        adj = analytic.dunnett_pvalues(t, sizes, df, self.alternative)
+        bad = ~np.all(np.isfinite(adj), axis=1)
+        primary = np.where(bad, np.nan, np.min(np.where(bad[:, None], 0.0, adj), axis=1))
+        crit = stats.t.ppf(0.5 + self.ci_level / 2, df)
+        est, se1 = diff[:, 0], se[:, 0]
+        return {"pvalue": primary, "pvalues": adj, "estimate": est, "se": se1, "ci_low": est - crit * se1,
+                "ci_high": est + crit * se1, "t": t}
+
+    layouts = ("table",)
+
+    def _supports(self, layout):
+        return _sorted_blocks(layout) is not None
+
+    def batch(self, batch):
+        layout = self.batch_layout(batch)
+        sizes = _sorted_blocks(layout)
+        with np.errstate(all="ignore"):
+            means, ss = _block_stats(layout.y, sizes)
+        f = self._fields(means, ss, sizes.astype(float), float(sizes.sum() - sizes.size))
+        return BatchResult(pvalue=f["pvalue"], estimate=f["estimate"], se=f["se"], ci_low=f["ci_low"],
+                           ci_high=f["ci_high"], pvalues=f["pvalues"],
+                           names=tuple(f"{j}-0" for j in range(1, sizes.size)))
+
+    def analytic_power(self, process, alpha):
+        """Exact power to reject at least one comparison (the primary p-value), see :meth:`power_parts`."""
+        parts = self.power_parts(process, alpha)
+        return None if parts is None else parts["any"]
+
+    def power_parts(self, process, alpha) -> dict | None:
+        """Exact per-comparison, any- and all-rejection power (:func:`simpower.analytic.dunnett_power`).
+
+        For a normal outcome with a common SD and no missingness (the process's
+        ``normal_arms()`` facts); None otherwise.
+        """
+        facts = _common_sd(process)
+        if facts is None:
+            return None
+        sizes = facts["sizes"]
+        return analytic.dunnett_power(facts["means"][1:], sizes[0], sd=facts["sd"], alpha=alpha,
+                                      alternative=self.alternative, allocation=sizes)
+
+
+class AnovaF(Analysis):
+    """One-way ANOVA F test of equal means over all arms (``scipy.stats.f_oneway``).
+
+    H0: every arm has the same mean (common variance). Returns the p-value only
+    (no estimate: the F test has no one-number effect estimate).
+    """
+
+    name = "anova_f"
+    null_hypothesis = "all arm means are equal (common variance)"
+
+    def __call__(self, data):
+        _, groups = _arm_groups(data)
+        r = stats.f_oneway(*groups)
+        return TestResult(pvalue=float(r.pvalue), statistic=float(r.statistic),
+                          df=float(sum(g.size for g in groups) - len(groups)))
+
+    layouts = ("table",)
+
+    def _supports(self, layout):
+        return _sorted_blocks(layout) is not None
+
+    def batch(self, batch):
+        layout = self.batch_layout(batch)
+        sizes = _sorted_blocks(layout)
+        k, n = sizes.size, int(sizes.sum())
+        with np.errstate(all="ignore"):
+            means, ss_within = _block_stats(layout.y, sizes)
+            grand = means @ sizes / n
+            ss_between = ((means - grand[:, None]) ** 2) @ sizes
+            f = (ss_between / (k - 1)) / (ss_within / (n - k))
+        return BatchResult(pvalue=stats.f.sf(f, k - 1, n - k))
+
+    def analytic_power(self, process, alpha):
+        """Noncentral-F power with Cohen's f from the process's arm means, sizes and common SD."""
+        facts = _common_sd(process)
+        if facts is None:
+            return None
+        sizes = facts["sizes"]
+        f = analytic.cohen_f(facts["means"], sizes, facts["sd"])
+        return analytic.anova_power(f, sizes[0], len(sizes), alpha, allocation=sizes)
+
