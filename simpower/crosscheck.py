@@ -28,7 +28,7 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 from . import analytic
-from .facts import BinaryFacts, ClusterFacts, NormalFacts, SurvivalFacts
+from .facts import BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
 
 PowerFn = Callable[[Any, Any, float], "float | None"]
 
@@ -143,6 +143,23 @@ def _cluster_means_t(a, f: ClusterFacts, alpha):
                             design="two-sample")
 
 
+def _dunnett(a, f: MultiArmFacts, alpha):
+    """Power to reject at least one comparison (the primary p-value of ``dunnett``)."""
+    parts = dunnett_parts(a, f, alpha)
+    return parts["any"]
+
+
+def dunnett_parts(a, f: MultiArmFacts, alpha) -> dict:
+    """Exact per-comparison, any- and all-rejection power of Dunnett's test (:func:`analytic.dunnett_power`)."""
+    return analytic.dunnett_power(list(f.means[1:]), f.sizes[0], sd=f.sd, alpha=alpha,
+                                  alternative=a.alternative, allocation=list(f.sizes))
+
+
+def _anova_f(a, f: MultiArmFacts, alpha):
+    cohen = analytic.cohen_f(list(f.means), list(f.sizes), f.sd)
+    return analytic.anova_power(cohen, f.sizes[0], len(f.sizes), alpha, allocation=list(f.sizes))
+
+
 def _pooled(a) -> bool:
     return bool(a.equal_var)  # the Welch variant's closed form is an approximation
 
@@ -164,6 +181,9 @@ _ENTRIES = (
                "Schoenfeld (1981) approximation at the expected number of events"),
     ClosedForm("cluster_means_t", ClusterFacts, _cluster_means_t, True,
                "noncentral t on cluster means (Donner & Klar 2000, ch. 6)"),
+    ClosedForm("dunnett", MultiArmFacts, _dunnett, True,
+               "many-to-one multivariate noncentral t (Dunnett 1955; Dunnett & Tamhane 1991)"),
+    ClosedForm("anova_f", MultiArmFacts, _anova_f, True, "noncentral F with Cohen's f (Cohen 1988, ch. 8)"),
 )
 
 #: (analysis name, fact type) -> closed form

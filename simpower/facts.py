@@ -115,5 +115,19 @@ class ClusterFacts:
         return self.cluster_size_cv == 0
 
 
+@dataclass(frozen=True)
+class MultiArmFacts:
+    """Normal outcomes in k >= 2 independent arms with a common SD, complete.
+
+    ``means`` are each arm's mean difference from the control arm (control
+    first, so ``means[0] == 0``), ``sizes`` the arm sizes (control first) and
+    ``sd`` the common SD.
+    """
+
+    means: tuple[float, ...]
+    sizes: tuple[int, ...]
+    sd: float
+
+
 #: every fact type, for documentation and tests
-FACT_TYPES = (NormalFacts, BinaryFacts, SurvivalFacts, ClusterFacts)
+FACT_TYPES = (NormalFacts, BinaryFacts, SurvivalFacts, ClusterFacts, MultiArmFacts)

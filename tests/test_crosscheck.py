@@ -18,7 +18,9 @@ independent computation of the published formula with scipy (tolerance stated pe
   2003, ch. 4: Phi((|D| sqrt(n) - z A) / B) plus the far tail);
 * log-rank: Schoenfeld (1981), Phi(|log HR| sqrt(D r) / (1 + r) - z) plus the far tail, at the
   expected number of events, here for exponential survival with fixed follow-up f, where an
-  arm's event probability is 1 - exp(-lambda HR f) (common practice).
+  arm's event probability is 1 - exp(-lambda HR f) (common practice);
+* Dunnett with a single treatment arm: Student's t (Dunnett 1955), here ``scipy.stats.nct``;
+* one-way ANOVA F: statsmodels ``FTestAnovaPower`` with Cohen's f (Cohen 1988, ch. 8).
 
 Then: processes whose facts no entry covers get None (never a number meant for another
 case); subclasses inherit their base's entries; a process written against the older
@@ -40,7 +42,7 @@ from scipy import integrate, stats
 
 import simpower as sp
 from simpower import analytic, crosscheck
-from simpower.facts import FACT_TYPES, BinaryFacts, ClusterFacts, NormalFacts, SurvivalFacts
+from simpower.facts import FACT_TYPES, BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
 from simpower.processes.base import Batch, Process
 from simpower.registry import build
 
@@ -192,6 +194,20 @@ def _cases():
                           "design": {"type": "clusters", "clusters": k, "cluster_size": m, "icc": icc}})
     out.append(Case("cluster_means_t trial", build("analysis", {"type": "cluster_means_t", "weights": "size"}), p,
                     ("cluster_means_t", ClusterFacts), direct_c, lambda: ref_c))
+    # Dunnett with one treatment arm is Student's t (Dunnett 1955): noncentral t, df 2n - 2
+    p = sp.MultiArm(effects=[0.0, 0.8], n=15)
+    out.append(Case("dunnett, one comparison", build("analysis", {"type": "dunnett"}), p, ("dunnett", MultiArmFacts),
+                    lambda f, al: analytic.dunnett_power([0.8], 15, sd=1.0, alpha=al)["any"],
+                    lambda: nct_power(0.8 / math.sqrt(2 / 15), 28, ALPHA, "two-sided"), tol=1e-6))
+    # one-way ANOVA F: statsmodels FTestAnovaPower with Cohen's f (Cohen 1988, ch. 8)
+    from statsmodels.stats.power import FTestAnovaPower
+
+    p = sp.MultiArm(effects=[0.0, 0.4, 0.8], n=20)
+    f_cohen = math.sqrt(np.mean((np.array([0.0, 0.4, 0.8]) - 0.4) ** 2))
+    out.append(Case("anova_f", build("analysis", {"type": "anova_f"}), p, ("anova_f", MultiArmFacts),
+                    lambda f, al: analytic.anova_power(f_cohen, 20, 3, al),
+                    lambda: FTestAnovaPower().power(effect_size=f_cohen, nobs=60, alpha=ALPHA, k_groups=3),
+                    tol=1e-9))
     return out
 
 

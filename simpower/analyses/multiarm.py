@@ -69,11 +69,6 @@ def _block_stats(y, sizes):
     return np.column_stack(means), ss
 
 
-def _common_sd(process):
-    facts = getattr(process, "normal_arms", None)
-    return facts() if callable(facts) else None
-
-
 class Dunnett(Analysis):
     """Dunnett's many-to-one test: each arm against the shared control, single-step adjusted.
 
@@ -138,23 +133,19 @@ class Dunnett(Analysis):
                            ci_high=f["ci_high"], pvalues=f["pvalues"],
                            names=tuple(f"{j}-0" for j in range(1, sizes.size)))
 
-    def analytic_power(self, process, alpha):
-        """Exact power to reject at least one comparison (the primary p-value), see :meth:`power_parts`."""
-        parts = self.power_parts(process, alpha)
-        return None if parts is None else parts["any"]
-
     def power_parts(self, process, alpha) -> dict | None:
         """Exact per-comparison, any- and all-rejection power (:func:`simpower.analytic.dunnett_power`).
 
-        For a normal outcome with a common SD and no missingness (the process's
-        ``normal_arms()`` facts); None otherwise.
+        For a process stating multi-arm facts (a normal outcome with a common SD
+        and no missingness: :class:`simpower.facts.MultiArmFacts`); None
+        otherwise. The primary closed form (any rejection) is the cross-check
+        table's entry (:mod:`simpower.crosscheck`).
         """
-        facts = _common_sd(process)
-        if facts is None:
-            return None
-        sizes = facts["sizes"]
-        return analytic.dunnett_power(facts["means"][1:], sizes[0], sd=facts["sd"], alpha=alpha,
-                                      alternative=self.alternative, allocation=sizes)
+        from ..crosscheck import dunnett_parts
+        from ..facts import MultiArmFacts
+
+        facts = next((f for f in process.facts() if isinstance(f, MultiArmFacts)), None)
+        return None if facts is None else dunnett_parts(self, facts, alpha)
 
 
 class AnovaF(Analysis):
@@ -189,12 +180,4 @@ class AnovaF(Analysis):
             f = (ss_between / (k - 1)) / (ss_within / (n - k))
         return BatchResult(pvalue=stats.f.sf(f, k - 1, n - k))
 
-    def analytic_power(self, process, alpha):
-        """Noncentral-F power with Cohen's f from the process's arm means, sizes and common SD."""
-        facts = _common_sd(process)
-        if facts is None:
-            return None
-        sizes = facts["sizes"]
-        f = analytic.cohen_f(facts["means"], sizes, facts["sd"])
-        return analytic.anova_power(f, sizes[0], len(sizes), alpha, allocation=sizes)
 

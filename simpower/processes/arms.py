@@ -32,7 +32,7 @@ from scipy import optimize
 from .._validation import Anything, Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
-from ..facts import NormalFacts
+from ..facts import MultiArmFacts, NormalFacts
 from .base import Batch, Process, check_missing_columns
 from .design import TwoArms, Vocabulary, apply_missing, arm_defaults, arm_params
 from .outcomes import Described, Normal
@@ -432,16 +432,12 @@ class MultiArm(Vocabulary, Process):
     def true_effect(self):
         return self.true_effects()[1] if self.k == 2 else None
 
-    def normal_arms(self) -> dict | None:
-        """Facts for the multi-arm closed forms (Dunnett, ANOVA F), or None when they do not apply.
-
-        Applies to a normal outcome with equal arm SDs and no missingness:
-        ``means`` (each arm's mean difference from control, control first, = 0),
-        ``sizes`` (control first) and the common ``sd``.
-        """
+    def facts(self):
+        """Multi-arm facts for the closed forms (Dunnett, ANOVA F): a normal outcome with equal arm SDs
+        and no missingness; none otherwise."""
         if not isinstance(self.outcome, Normal) or self.missing is not None or len(set(self._factors)) != 1:
-            return None
-        return {"means": self.true_effects(), "sizes": list(self._sizes), "sd": self.outcome.sd * self._factors[0]}
+            return ()
+        return (MultiArmFacts(tuple(self.true_effects()), tuple(self._sizes), self.outcome.sd * self._factors[0]),)
 
     def draw_batch(self, rng, size):
         sizes = self._sizes
