@@ -11,7 +11,7 @@ from __future__ import annotations
 import math
 import numbers
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -174,37 +174,38 @@ class Anything:
 
 
 @dataclass(frozen=True)
-class Text:
-    """A string (e.g. a parameter name, a path, a title)."""
+class _Typed:
+    """A value of one Python type (``kind``), described to users as ``label``."""
 
     optional: bool = False
+    kind: ClassVar[type] = object
+    label: ClassVar[str] = "a value"
 
     def describe(self) -> str:
-        return "a string"
+        return self.label
 
     def clean(self, name: str, value: Any) -> Any:
         if value is None and self.optional:
             return None
-        if not isinstance(value, str):
-            raise ParameterError(f"`{name}` must be a string; got {value!r}.")
+        if not isinstance(value, self.kind):
+            raise ParameterError(f"`{name}` must be {self.label}; got {value!r}.")
         return value
 
 
 @dataclass(frozen=True)
-class Table:
+class Text(_Typed):
+    """A string (e.g. a parameter name, a path, a title)."""
+
+    kind: ClassVar[type] = str
+    label: ClassVar[str] = "a string"
+
+
+@dataclass(frozen=True)
+class Table(_Typed):
     """A table of named values (a TOML table, a Python dict); its entries are checked by its reader."""
 
-    optional: bool = False
-
-    def describe(self) -> str:
-        return "a table (name = value, ...)"
-
-    def clean(self, name: str, value: Any) -> Any:
-        if value is None and self.optional:
-            return None
-        if not isinstance(value, dict):
-            raise ParameterError(f"`{name}` must be a table (name = value, ...); got {value!r}.")
-        return value
+    kind: ClassVar[type] = dict
+    label: ClassVar[str] = "a table (name = value, ...)"
 
 
 @dataclass(frozen=True)

@@ -500,6 +500,19 @@ def _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble):
 PREFLIGHT_REPLICATES = 3
 
 
+def trial_data(scenario, count: int) -> list | None:
+    """``count`` replicates of the scenario's process drawn with a fixed generator (never the run's own
+    random numbers), as long tables; None when the process raises."""
+    rng = np.random.default_rng(0)
+    try:
+        if scenario.process.has_batch:
+            batch = scenario.process.draw_batch(rng, count)
+            return [batch.replicate(i) for i in range(count)]
+        return [scenario.process(rng) for _ in range(count)]
+    except Exception:
+        return None
+
+
 def preflight(scenario, label: str = "") -> None:
     """Refuse at once an analysis that cannot analyse the process's data at all.
 
@@ -510,14 +523,8 @@ def preflight(scenario, label: str = "") -> None:
     refused, with one line naming the analysis and its first error. A process
     that raises is left to the run, which counts it by cause.
     """
-    rng = np.random.default_rng(0)
-    try:
-        if scenario.process.has_batch:
-            batch = scenario.process.draw_batch(rng, PREFLIGHT_REPLICATES)
-            data = [batch.replicate(i) for i in range(PREFLIGHT_REPLICATES)]
-        else:
-            data = [scenario.process(rng) for _ in range(PREFLIGHT_REPLICATES)]
-    except Exception:
+    data = trial_data(scenario, PREFLIGHT_REPLICATES)
+    if data is None:
         return
     for name, analysis in scenario.analyses.items():
         errors = []

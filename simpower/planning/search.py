@@ -681,14 +681,10 @@ def _trial_failure_share(scenario, limit: float = 1.0) -> float:
     or as soon as one analysis fails on more than ``limit`` of them."""
     import warnings
 
-    rng = np.random.default_rng(0)
-    try:
-        if scenario.process.has_batch:
-            batch = scenario.process.draw_batch(rng, TRIAL_REPLICATES)
-            data = [batch.replicate(i) for i in range(TRIAL_REPLICATES)]
-        else:
-            data = [scenario.process(rng) for _ in range(TRIAL_REPLICATES)]
-    except Exception:
+    from ..engine.runner import trial_data
+
+    data = trial_data(scenario, TRIAL_REPLICATES)
+    if data is None:
         return 1.0
     worst = 0
     with warnings.catch_warnings():
