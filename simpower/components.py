@@ -222,7 +222,7 @@ class Component:
             if v is not None:  # an unset optional parameter: TOML has no null, and rebuilding restores it
                 out[k] = to_plain(v)
         if ref is not None:
-            out["_source"] = _source_hash(type(self))
+            out["_source"] = source_hash(type(self))
         return out
 
     def fingerprint(self) -> str:
@@ -293,7 +293,8 @@ def _restore_from_file(path: str, qualname: str, state: dict) -> "Component":
     return obj
 
 
-def _source_hash(obj: Any) -> str:
+def source_hash(obj: Any) -> str:
+    """First 12 hex digits of the SHA-256 of ``obj``'s source ('' when it has none): marks which code a spec came from."""
     try:
         src = inspect.getsource(obj)
     except (OSError, TypeError):

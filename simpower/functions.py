@@ -21,25 +21,16 @@ does. Two settings of the current context govern references (both read by
 
 from __future__ import annotations
 
-import hashlib
 import inspect
 from pathlib import Path
-from typing import Any, Callable, Iterator
+from typing import Any, Callable
 
 from .analyses.base import Analysis, as_test_result
-from .components import to_plain
+from .components import source_hash, to_plain
 from .errors import ParameterError, nearest
 from .processes.base import Process
 from .registry import (check_code_allowed, current_reference_folder, no_user_code,  # noqa: F401 (public here)
                        reference_folder, register_wrapper, resolve_reference)
-
-
-def _source_hash(fn: Callable) -> str:
-    try:
-        src = inspect.getsource(fn)
-    except (OSError, TypeError):
-        return ""
-    return hashlib.sha256(src.encode()).hexdigest()[:12]
 
 
 class _FunctionMixin:
@@ -82,7 +73,7 @@ class _FunctionMixin:
 
     def spec(self):
         out = {"type": self.label, **{k: to_plain(v) for k, v in self._p.items()}}
-        out["_source"] = _source_hash(self._fn)
+        out["_source"] = source_hash(self._fn)
         return out
 
     def describe(self) -> str:

@@ -27,8 +27,6 @@ def add_run_options(p: argparse.ArgumentParser) -> None:
 
 #: where ``--store`` without a path puts the run store
 DEFAULT_STORE_DIR = "simpower-runs"
-#: fields of the scenario file's [store] and [execution] blocks (declared and checked at load: simpower.blocks)
-from ..blocks import EXECUTION_FIELDS, STORE_FIELDS  # noqa: E402,F401
 
 
 def add_engine_options(p: argparse.ArgumentParser) -> None:
@@ -97,53 +95,33 @@ def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | No
     return str(path)
 
 
-def engine_options(sf: ScenarioFile, args, fingerprint: str | None = None, with_store: bool = True) -> dict:
-    """Keyword arguments for ``engine.run`` / ``run_many`` from the file and the command line.
+def execution_of(sf: ScenarioFile, args):
+    """The command's :class:`~simpower.execution.Execution` (without a store: see :func:`store_of`).
 
-    Gives n_jobs, chunk_size, progress, backend, address, max_failure_rate,
-    timeout, keep_records and store (a path or None; the fingerprint names
-    the file when --store is a folder; default: the scenario's).
+    From the file (seed, jobs, chunk_size, fit_trouble, max_failure_rate, [execution]) and the command
+    line (--backend, --address, --timeout, --max-failure-rate, --summaries-only, --quiet); an address
+    implies dask and is checked here, so the error names the option the user wrote.
     """
+    from ..execution import Execution
+
     ex = _block(sf, "execution")
     address = getattr(args, "address", None) or ex.get("address")
     backend = getattr(args, "backend", None) or ex.get("backend") or ("dask" if address else None)
     if address and backend != "dask":
         raise ParameterError(f"`--address` is for the dask backend; got --backend {backend}.")
     if address:
-        from ..engine.runner import check_address
+        from ..execution import check_address
 
         check_address(address, "--address" if getattr(args, "address", None) else "execution.address")
     rate = getattr(args, "max_failure_rate", None)
     timeout = getattr(args, "timeout", None)
     timeout = timeout if timeout is not None else ex.get("timeout")
     lean = getattr(args, "summaries_only", False) or bool(ex.get("summaries_only", False))
-    return {
-        "n_jobs": jobs_of(sf, args),
-        "chunk_size": sf.run.get("chunk_size"),
-        "progress": progress_of(args),
-        "backend": backend,
-        "address": address,
-        "max_failure_rate": rate if rate is not None else sf.run.get("max_failure_rate", 0.5),
-        "timeout": timeout,
-        "keep_records": False if lean else None,
-        "store": store_of(args, fingerprint or sf.scenario.fingerprint(), sf) if with_store else None,
-    }
-
-
-def execution_of(sf: ScenarioFile, args):
-    """The command's :class:`~simpower.execution.Execution` (without a store: see :func:`store_of`).
-
-    From the file (seed, jobs, chunk_size, fit_trouble, max_failure_rate, [execution]) and the command
-    line (--backend, --address, --timeout, --max-failure-rate, --summaries-only, --quiet), checked as
-    :func:`engine_options` checks them.
-    """
-    from ..execution import Execution
-
-    opts = engine_options(sf, args, fingerprint=None, with_store=False)
-    return Execution(seed=sf.run.get("seed"), n_jobs=opts["n_jobs"], chunk_size=opts["chunk_size"],
-                     progress=opts["progress"], backend=opts["backend"], address=opts["address"],
-                     max_failure_rate=opts["max_failure_rate"], timeout=opts["timeout"],
-                     keep_records=opts["keep_records"], fit_trouble=sf.run.get("fit_trouble", "failure"))
+    return Execution(seed=sf.run.get("seed"), n_jobs=jobs_of(sf, args), chunk_size=sf.run.get("chunk_size"),
+                     progress=progress_of(args), backend=backend, address=address,
+                     max_failure_rate=rate if rate is not None else sf.run.get("max_failure_rate", 0.5),
+                     timeout=timeout, keep_records=False if lean else None,
+                     fit_trouble=sf.run.get("fit_trouble", "failure"))
 
 
 def resume_hint(store: str | None, sf: ScenarioFile | None = None) -> str:
@@ -259,4 +237,3 @@ def check_outputs(args) -> None:
     for attr, option in OUTPUT_FOLDERS.items():
         if getattr(args, attr, None):
             check_output_folder(option, getattr(args, attr))
-

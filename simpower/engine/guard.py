@@ -34,6 +34,13 @@ Where it is used (see :func:`simpower.engine.runner.run_many`):
 It runs on Linux (it forks; on macOS forking a process whose system libraries
 may have started threads is unsafe); elsewhere a crash ends the run as before.
 
+What crosses the pipes: jobs (the chunk function, the scenario, its seed key) and their
+results are pickled, as loky and dask do between a process and its workers, and only
+across the anonymous pipes this process creates for its own helper (``pass_fds``) and
+the helper's forked children. Nothing pickled is ever written to or read from a file;
+the run store stays data only (:mod:`simpower.engine.store`), so a store, scenario
+file or export received from someone else never reaches ``pickle.loads``.
+
 Orphans: the helper exits when this process dies (end of file on its request
 pipe, and a check of its parent every second), its children are killed with
 it (``PR_SET_PDEATHSIG`` on Linux), and loky workers started by simpower watch
@@ -49,7 +56,7 @@ import ctypes.util
 import faulthandler
 import itertools
 import os
-import pickle
+import pickle  # only across this process's own pipes to its helper (see the module notes)
 import selectors
 import signal
 import struct

@@ -60,7 +60,7 @@ from typing import Any, Iterator, Mapping, Protocol, Sequence
 
 import numpy as np
 
-from ..execution import Execution, check_address, resolve  # noqa: F401 (check_address: its old home)
+from ..execution import Execution, resolve
 from ..errors import ParameterError, RunError
 from ..result import MissingRecords, RunResult
 from ..summaries import WARNING_PREFIX, PointStats

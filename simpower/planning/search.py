@@ -794,9 +794,6 @@ def detectable_effect(scenario, power: float = 0.8, *, parameter: str | None = N
                         sign=sign, **out)
 
 
-# the [search] block's fields live with the other blocks (simpower.blocks)
-from ..blocks import SEARCH_FIELDS  # noqa: E402,F401
-
 
 def search(scenario, find: str = "size", **options) -> SearchResult:
     """:func:`required_n` (``find='size'``) or :func:`detectable_effect` (``find='effect'``)."""

@@ -306,7 +306,3 @@ def run_to_mcse(scenario, target_mcse: float = 0.005, *, max_reps: int = MAX_REP
                             n_jobs=n_jobs, chunk_size=chunk_size, store=store, progress=progress,
                             fit_trouble=fit_trouble, which=which, max_failure_rate=max_failure_rate,
                             engine=engine, execution=execution)[0]
-
-
-# the [sequential] block's fields and the block reader live with the other blocks (simpower.blocks)
-from ..blocks import SEQUENTIAL_FIELDS, read_block  # noqa: E402,F401

@@ -512,9 +512,6 @@ def grid_from_block(block: Mapping[str, Any]) -> Grid | None:
     return axes if axes.axes else None
 
 
-# the [sweep] and [null_check] blocks' fields live with the other blocks (simpower.blocks)
-from ..blocks import NULL_CHECK_FIELDS, SWEEP_FIELDS  # noqa: E402,F401
-
 
 def parse_axis(text: str) -> tuple[str, Any]:
     """A command-line axis ``name=values``: ``40,60,80`` (a list), ``20:100:10`` (from:to:step),
