@@ -38,6 +38,7 @@ SEARCH_FIELDS = {
     "low": Real(), "high": Real(), "step": Real(0.0, low_open=True), "scale": Choice(SEARCH_SCALES),
     "level": Real(0.5, 1.0, high_open=True), "rel_tol": Real(0.0, 1.0, low_open=True, high_open=True),
     "max_reps": Int(low=1), "chunk_size": Int(low=1), "analysis": Text(), "pilot_points": Int(low=2),
+    "all_analyses": Bool(),
 }
 #: [sequential]: run until the power's MCSE reaches a target
 SEQUENTIAL_FIELDS = {"target_mcse": TARGET_MCSE, "min_reps": Int(low=1), "max_reps": Int(low=1),

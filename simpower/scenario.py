@@ -232,6 +232,24 @@ class Scenario:
             new._true_effect_targets()  # an analysis' estimand may have changed with its parameters
         return new
 
+    def only(self, *names: str) -> "Scenario":
+        """A copy with just the analyses ``names`` (in that order; the first is the primary).
+
+        The copy draws the same data but its fingerprint (and so its
+        :meth:`point_key`) differs: a planning step that runs a subset keeps the
+        whole scenario's key as the seed key, so each kept analysis gets the same
+        replicates as in the whole scenario.
+        """
+        if not names:
+            raise ParameterError("`only` needs at least one analysis name.")
+        for n in names:
+            if n not in self.analyses:
+                raise ParameterError(f"`{n}` is not an analysis of this scenario.{nearest(n, self.analyses)}")
+        new = self.with_params()
+        new.analyses = {n: self.analyses[n] for n in names}
+        new.true_effects = {n: v for n, v in self.true_effects.items() if n in new.analyses}
+        return new
+
     def null(self) -> "Scenario":
         """The same scenario with the effect set to its null value (everything else kept)."""
         new = self.with_params()

@@ -522,6 +522,42 @@ def _count_rows(u, v, ts, out):
             out[r, q] = _valid_total(counts[q], False)
 
 
+#: seconds a first kernel call may take before the user is told it is compiling
+COMPILE_NOTICE_AFTER = 1.0
+_first_call_done: set[str] = set()
+
+
+class _compile_notice:
+    """Around a kernel's first call in this process: if it takes longer than :data:`COMPILE_NOTICE_AFTER`
+    seconds (numba compiling it for this machine, before its cache exists), say so once on standard error."""
+
+    def __init__(self, kernel: str):
+        self.kernel = kernel
+        self.timer = None
+
+    def __enter__(self):
+        if HAVE_NUMBA and self.kernel not in _first_call_done:
+            import threading
+
+            self.timer = threading.Timer(COMPILE_NOTICE_AFTER, self._say)
+            self.timer.daemon = True
+            self.timer.start()
+        return self
+
+    def _say(self):
+        import sys
+
+        sys.stderr.write(f"simpower: compiling the {self.kernel} kernel for this machine (first use only; "
+                         f"10-20 s; later runs load it from numba's cache)...\n")
+        sys.stderr.flush()
+
+    def __exit__(self, *exc):
+        if self.timer is not None:
+            self.timer.cancel()
+            _first_call_done.add(self.kernel)
+        return False
+
+
 def count_sorted_sums(u, v, ts):
     """Number of pairs (i, j) with ``u[r, i] + v[r, j] <= t`` for each row r and threshold t.
 
@@ -534,7 +570,8 @@ def count_sorted_sums(u, v, ts):
     ts = np.asarray(ts, float)
     out = np.zeros((u.shape[0], ts.size), np.int64)
     if u.shape[0] and ts.size and u.shape[1] and v.shape[1]:
-        _count_rows(u, v, ts, out)
+        with _compile_notice("rank-count"):
+            _count_rows(u, v, ts, out)
     return out
 
 
@@ -588,7 +625,8 @@ def select_sorted_sums(u, v, ks, scale=1.0, triangular=False):
     out1 = np.empty((reps, len(pairs)))
     out2 = np.empty((reps, len(pairs)))
     if reps and len(pairs):
-        _select_rows(u, v, float(scale), bool(triangular), k1s, k2s, np.asarray(zs, float), out1, out2)
+        with _compile_notice("rank-selection"):
+            _select_rows(u, v, float(scale), bool(triangular), k1s, k2s, np.asarray(zs, float), out1, out2)
     res = {}
     for q, (k1, k2) in enumerate(pairs):
         res[k1] = out1[:, q]

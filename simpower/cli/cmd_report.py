@@ -15,7 +15,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from .common import add_run_options, check_output_folder, execution_of, load_scenario
-from .steps import stores_of, write_outputs
+from .steps import announce, stores_of, write_outputs
 
 
 def register(sub) -> None:
@@ -55,6 +55,7 @@ def main(args) -> int:
             outdir = sf.path.parent / outdir
         check_output_folder("--out" if args.out else "report.out", outdir)
     plan = plan_of(sf, args)
+    announce(plan, 'report', args)
     result = execute(plan, echo=print)
     print(f"seed: {result.seed}")
     if outdir is None:

@@ -72,12 +72,13 @@ def plan_of(sf, args):
 
 def main(args) -> int:
     from ..study import execute
-    from .steps import null_lines
+    from .steps import announce, null_lines
 
     sf = load_scenario(args)
     plan = plan_of(sf, args)
     store = plan.stores["run"]
     try:
+        announce(plan, 'run', args)
         out = execute(plan)
     except RunInterrupted:
         raise RunInterrupted(f"interrupted; {resume_hint(store, sf)}.") from None

@@ -20,7 +20,7 @@ from __future__ import annotations
 
 from .common import add_run_options, load_scenario
 from .common import execution_of
-from .steps import null_lines, null_settings, search_options, seed_of, stores_of, write_outputs
+from .steps import announce, null_lines, null_settings, search_options, seed_of, stores_of, write_outputs
 
 
 def register(sub) -> None:
@@ -37,6 +37,8 @@ def register(sub) -> None:
                                                   "(default 0.02)")
     p.add_argument("--max-reps", type=int, help="budget of replicates (default 200000)")
     p.add_argument("--analysis", help="whose power must reach the target (default: the primary analysis)")
+    p.add_argument("--all-analyses", action="store_true",
+                   help="fit every analysis at each size (default: only the one whose power decides)")
     p.add_argument("--csv", metavar="PATH", help="write the evaluated values as CSV")
     p.add_argument("--plot", metavar="STEM", help="write STEM.png and STEM.svg")
     p.add_argument("--null-check", action="store_true", help="also the type I error under the null")
@@ -63,6 +65,7 @@ def main(args) -> int:
     sf = load_scenario(args)
     seed = seed_of(sf, args)
     plan = plan_of(sf, args, seed)
+    announce(plan, 'samplesize', args)
     out = execute(plan)
     res = out.search
     print(res.summary())

@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from ..errors import ParameterError
 from .common import add_run_options, execution_of, load_scenario
-from .steps import null_lines, null_settings, plot_axis, seed_of, stores_of, write_outputs
+from .steps import announce, null_lines, null_settings, plot_axis, seed_of, stores_of, write_outputs
 
 SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power", "path")
 
@@ -100,6 +100,7 @@ def main(args) -> int:
     seed = seed_of(sf, args)
     plan = plan_of(sf, args, block, grid)
     plan = plan.replace(execution=plan.execution.replace(seed=seed))
+    announce(plan, 'sweep', args)
     out = execute(plan)
     table, null, ns = out.sweep, out.null, plan.null_check
     print(format_table(table, verbose=getattr(args, "verbose", False)))

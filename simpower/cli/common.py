@@ -18,7 +18,7 @@ def add_run_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                    help="change a scenario parameter, e.g. --set n=80 --set outcome.cv=1.5 (repeatable)")
     p.add_argument("--json", metavar="PATH", help="also write the result as JSON to PATH")
-    p.add_argument("--quiet", "-q", action="store_true", help="no progress bar")
+    p.add_argument("--quiet", "-q", action="store_true", help="no progress bar or log lines, no opening line")
     p.add_argument("--verbose", "-v", action="store_true",
                    help="also print implementation details that do not change the numbers (execution path, chunk "
                         "size, time)")

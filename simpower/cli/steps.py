@@ -137,4 +137,32 @@ def search_options(sf, args) -> dict:
             opts[key] = v
     if getattr(args, "range", None):
         opts["low"], opts["high"] = _range(args.range)
+    if getattr(args, "all_analyses", False):
+        opts["all_analyses"] = True
     return {"find": find, **opts}
+
+
+def announce(plan, command: str, args=None) -> None:
+    """Say, before the work starts, what is about to run (the result follows at the end); not with --quiet."""
+    if getattr(args, "quiet", False):
+        return
+    sc = plan.scenario
+    what = sc.name or (plan.path.name if plan.path is not None else "scenario")
+    if plan.search is not None:
+        s = plan.search
+        target = s.get("power", 0.8)
+        kind = "the minimal detectable effect" if s.get("find") == "effect" else "the required size"
+        part = f"searching {kind} for power {target:g} ({s.get('analysis') or sc.primary})"
+    elif plan.sweep is not None:
+        grid = plan.sweep["grid"]
+        try:
+            count = f"{len(grid.settings(sc))} points"
+        except Exception:  # the sweep itself reports a grid that does not fit the scenario
+            count = "a grid"
+        part = f"sweeping {count} ({'; '.join(grid.describe())})"
+    else:
+        part = f"{plan.reps or 'the default number of'} replicates"
+    ex = plan.execution
+    jobs = "all cores" if ex.n_jobs in (None, -1) else f"{ex.n_jobs} job{'s' if ex.n_jobs != 1 else ''}"
+    seed = f", seed {ex.seed}" if ex.seed is not None else ""
+    print(f"simpower {command}: {what}: {part}; {jobs}{seed}", flush=True)

@@ -49,7 +49,6 @@ is counted as failure ``crash`` and the run goes on; see
 
 from __future__ import annotations
 
-import sys
 import time
 import warnings
 from collections.abc import Sequence as _SequenceABC
@@ -68,6 +67,7 @@ from .chunk import ChunkOutput, run_chunk
 from .collect import CauseBook, RecordCollector
 from . import guard
 from .executor import context_backend, effective_jobs, execute
+from .progress import display as progress_display
 from .spool import RecordSpool
 
 BATCH_CHUNK = 2000
@@ -390,15 +390,6 @@ def point_labels(scenarios: Sequence) -> list[str]:
     return [", ".join(f"{k} = {_fmt_value(p.get(k))}" for k in names) for p in params]
 
 
-def _progress(total: int, enabled: bool | None, desc: str, initial: int = 0):
-    if enabled is None:
-        enabled = sys.stderr.isatty()
-    from tqdm import tqdm
-
-    return tqdm(total=total, initial=initial, disable=not enabled, file=sys.stderr, unit="rep", desc=desc,
-                leave=False, dynamic_ncols=True)
-
-
 def _open_store(store):
     """(store object, owned) for a path or an object."""
     if store is None or hasattr(store, "load"):
@@ -644,7 +635,7 @@ def _run(scenarios, reps_list, keys, entropy, ex: Execution, store, desc, labels
     total = sum(reps_list) - reused
     tasks = _tasks(points, plans, done, entropy, timeout)
     t0 = time.perf_counter()
-    bar = _progress(total + reused, progress, desc, initial=reused)
+    bar = progress_display(total + reused, progress, desc, initial=reused)
     gen = _chunk_results(tasks, n_tasks, scenarios, isolating, run_backend, n_jobs, address, max_failure_rate)
     unenforced = False
     try:

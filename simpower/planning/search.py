@@ -38,6 +38,7 @@ import pandas as pd
 from scipy import stats
 
 from .._validation import Int, Real
+from ..engine.progress import session as progress_session, status
 from ..engine.runner import run_points
 from ..execution import Execution
 from ..errors import ParameterError, nearest
@@ -316,8 +317,11 @@ class SearchResult:
 class _Evaluations:
     """Results so far per value; extends a value's run when asked for more replicates."""
 
-    def __init__(self, scenario, parameter, analysis, ex: Execution, setter, labels=None):
+    def __init__(self, scenario, parameter, analysis, ex: Execution, setter, labels=None, all_analyses=False):
         self.scenario, self.parameter, self.analysis = scenario, parameter, analysis
+        # only the deciding analysis is fitted unless asked for all; its seeds stay those of the whole scenario
+        self.running = scenario if all_analyses else scenario.only(analysis)
+        self.stage = "pilot"  # what the progress display says the search is doing
         self.ex, self.labels = ex, dict(labels or {})
         self.seed = ex.seed
         self.setter = setter
@@ -332,9 +336,11 @@ class _Evaluations:
         todo = {v: r for v, r in wanted.items() if r > self.stats.get(v, {}).get("reps", 0)}
         if not todo:
             return
-        scs = [self.scenario.with_params(**{self.parameter: self.setter(v)}) for v in todo]
-        keys = [point_key(s) for s in scs]
+        changes = [{self.parameter: self.setter(v)} for v in todo]
+        keys = [point_key(self.scenario.with_params(**c)) for c in changes]
+        scs = [self.running.with_params(**c) for c in changes]
         labels = {k: f"{self.parameter} = {self.setter(v):g}" for k, v in zip(keys, todo)}
+        status(f"{self.stage}: " + ", ".join(f"{self.parameter} = {self.setter(v):g}" for v in todo))
         outs = run_points(scs, list(todo.values()), self.ex, keys=keys, desc="searching",
                           labels={**labels, **self.labels})
         for v, res in zip(todo, outs):
@@ -392,15 +398,17 @@ def _not_reached(ev, parameter, target, lo, hi, best_note="") -> ParameterError:
 
 
 def _search(scenario, *, parameter, kind, target, low, high, scale, step, setter, level, rel_tol, abs_tol,
-            max_reps, ex: Execution, analysis, pilot_points, pilot_reps, labels=None):
+            max_reps, ex: Execution, analysis, pilot_points, pilot_reps, labels=None, all_analyses=False):
     pilot_points = Int(low=2).clean("pilot_points", pilot_points)
     mem = as_memory_store(ex.store)
     try:
         entropy = seed_with_store(ex.seed, mem)
-        ev = _Evaluations(scenario, parameter, analysis, ex.replace(seed=entropy, store=mem), setter, labels)
-        return _rounds(ev, parameter=parameter, kind=kind, target=target, low=low, high=high, scale=scale,
-                       step=step, level=level, rel_tol=rel_tol, abs_tol=abs_tol, max_reps=max_reps,
-                       chunk_size=ex.chunk_size, pilot_points=pilot_points, pilot_reps=pilot_reps)
+        ev = _Evaluations(scenario, parameter, analysis, ex.replace(seed=entropy, store=mem), setter, labels,
+                          all_analyses)
+        with progress_session(ex.progress, "searching"):
+            return _rounds(ev, parameter=parameter, kind=kind, target=target, low=low, high=high, scale=scale,
+                           step=step, level=level, rel_tol=rel_tol, abs_tol=abs_tol, max_reps=max_reps,
+                           chunk_size=ex.chunk_size, pilot_points=pilot_points, pilot_reps=pilot_reps)
     finally:
         if mem is not ex.store:
             mem.close()
@@ -428,6 +436,7 @@ def _rounds(ev, *, parameter, kind, target, low, high, scale, step, level, rel_t
     # the range must hold the target
     top = ev.stats[max(ev.stats)]
     if top["power"] < target:
+        ev.stage = "checking the range"
         ev.run({max(ev.stats): 4 * pilot_reps})
         top = ev.stats[max(ev.stats)]
         up = wilson_interval(top["rejections"], top["n_ok"], 0.999)[1]
@@ -460,6 +469,7 @@ def _rounds(ev, *, parameter, kind, target, low, high, scale, step, level, rel_t
             add = min(max(add, 2 * pilot_reps), 4 * r_near + 2 * pilot_reps)
         if before >= max_reps:
             break
+        ev.stage = f"round {rnd}"
         add = min(_round_up(add, chunk_size), _round_up(max_reps - before, chunk_size))
         ev.run({placed: ev.stats.get(placed, {}).get("reps", 0) + add})
         rounds.append({"round": rnd, "placed": f"{placed:g}", "reps_added": ev.total - before,
@@ -577,7 +587,8 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
                rel_tol: float = 0.02, max_reps: int = 200_000, seed=None, n_jobs: int | None = -1,
                chunk_size: int = SEARCH_CHUNK, store=None, progress: bool | None = None,
                fit_trouble: str = "failure", analysis: str | None = None, max_failure_rate: float = 0.5,
-               pilot_points: int = PILOT_POINTS, engine=None, execution: Execution | None = None) -> SearchResult:
+               pilot_points: int = PILOT_POINTS, all_analyses: bool = False, engine=None,
+               execution: Execution | None = None) -> SearchResult:
     """The smallest sample size (or number of clusters) that reaches ``power``, with a Monte Carlo interval.
 
     Parameters
@@ -612,6 +623,11 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
         (default :data:`SEARCH_CHUNK`) and recorded, so the numbers reproduce.
     analysis : str, optional
         Whose power must reach the target (default the primary analysis).
+    all_analyses : bool
+        Fit every analysis of the scenario at each size (default False: only
+        ``analysis``, which alone decides). Either way ``analysis`` gets the
+        same replicates, so the answer is the same; the other analyses' power
+        at the answer is one ``run`` away.
     engine : mapping, optional
         Further keyword arguments for :func:`simpower.run_many` (``backend``,
         ``address``, ``timeout``, ``keep_records``).
@@ -645,7 +661,8 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
     moved = ""
     if low is None:
         start = _default_low(scenario, parameter)
-        low = runnable_low(scenario, parameter, start, current, integer, ex.max_failure_rate)
+        low = runnable_low(scenario if all_analyses else scenario.only(analysis), parameter, start, current,
+                         integer, ex.max_failure_rate)
         if low != start:
             moved = (f"the range starts at {parameter} = {low:g}, the smallest size (doubling from {start:g}) at "
                      f"which every analysis ran on trial replicates; give `low` (--range) to start elsewhere")
@@ -658,7 +675,7 @@ def required_n(scenario, power: float = 0.8, *, parameter: str | None = None, lo
     out = _search(scenario, parameter=parameter, kind="size", target=target, low=low, high=high, scale=scale,
                   step=step, setter=setter, level=level, rel_tol=rel_tol,
                   abs_tol=0.5 * step if step else 0.0, max_reps=max_reps, ex=ex, analysis=analysis,
-                  pilot_points=pilot_points, pilot_reps=ex.chunk_size, labels=labels)
+                  pilot_points=pilot_points, pilot_reps=ex.chunk_size, labels=labels, all_analyses=all_analyses)
     if moved:
         out["note"] = "; ".join(filter(None, (moved, out["note"])))
     chunk_size = ex.chunk_size
@@ -738,13 +755,14 @@ def detectable_effect(scenario, power: float = 0.8, *, parameter: str | None = N
                       max_reps: int = 200_000, seed=None, n_jobs: int | None = -1, chunk_size: int = SEARCH_CHUNK,
                       store=None, progress: bool | None = None, fit_trouble: str = "failure",
                       analysis: str | None = None, max_failure_rate: float = 0.5,
-                      pilot_points: int = PILOT_POINTS, engine=None, execution: Execution | None = None) -> SearchResult:
+                      pilot_points: int = PILOT_POINTS, all_analyses: bool = False, engine=None,
+                      execution: Execution | None = None) -> SearchResult:
     """The minimal detectable effect: the smallest effect reaching ``power`` at the scenario's size.
 
     The effect is searched on its magnitude in the direction of the
     scenario's current effect (negative effects for ``alternative='less'``),
     from ``low`` (default 0) to ``high`` (default 3 times the current
-    magnitude). Other parameters as in :func:`required_n`; the model is
+    magnitude). Other parameters (``all_analyses``...) as in :func:`required_n`; the model is
     probit-linear in the effect.
 
     Examples
@@ -775,7 +793,8 @@ def detectable_effect(scenario, power: float = 0.8, *, parameter: str | None = N
     setter = lambda u: sign * float(u)  # noqa: E731
     out = _search(scenario, parameter=parameter, kind="effect", target=target, low=low, high=high, scale="linear",
                   step=None, setter=setter, level=level, rel_tol=rel_tol, abs_tol=0.0, max_reps=max_reps, ex=ex,
-                  analysis=analysis, pilot_points=pilot_points, pilot_reps=ex.chunk_size, labels=labels)
+                  analysis=analysis, pilot_points=pilot_points, pilot_reps=ex.chunk_size, labels=labels,
+                  all_analyses=all_analyses)
     if sign < 0:
         out["value"], out["estimate"] = -out["value"], -out["estimate"]
         lo, hi = out["interval"]

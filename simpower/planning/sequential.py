@@ -25,6 +25,7 @@ import math
 from typing import Sequence
 
 from .._validation import Int, Real
+from ..engine.progress import session as progress_session, status
 from ..engine.runner import run_points
 from ..execution import Execution, resolve
 from ..engine.chunk import ChunkOutput
@@ -225,27 +226,31 @@ def _grow(scenarios, target_mcse, max_reps, min_reps, ex: Execution, sizes, whic
     results: list = [None] * len(scenarios)
     looks: list[list[int]] = [[] for _ in scenarios]
     todo = list(range(len(scenarios)))
-    while todo:
-        groups: dict[int, list[int]] = {}
-        for i in todo:
-            groups.setdefault(sizes[i], []).append(i)
-        for cs, idx in groups.items():
-            outs = run_points([scenarios[i] for i in idx], [reps[i] for i in idx], ex.replace(chunk_size=cs),
-                              keys=[keys[i] for i in idx], desc="extending", labels=labels)
-            for i, res in zip(idx, outs):
-                results[i] = res
-                looks[i].append(reps[i])
-        nxt = []
-        for i in todo:
-            res = results[i]
-            if _reached(res, target_mcse, which) or reps[i] >= max_reps:
-                continue
-            # at most 4 times the current count per look: an estimate from few replicates can overshoot
-            want = min(_round_up(_needed(res, target_mcse, which), sizes[i]), 4 * reps[i])
-            want = min(max(want, reps[i] + sizes[i]), max_reps)
-            reps[i] = want
-            nxt.append(i)
-        todo = nxt
+    look = 0
+    with progress_session(ex.progress, "extending"):
+        while todo:
+            look += 1
+            status(f"look {look}, {len(todo)} point{'s' if len(todo) != 1 else ''} short of the target MCSE")
+            groups: dict[int, list[int]] = {}
+            for i in todo:
+                groups.setdefault(sizes[i], []).append(i)
+            for cs, idx in groups.items():
+                outs = run_points([scenarios[i] for i in idx], [reps[i] for i in idx], ex.replace(chunk_size=cs),
+                                  keys=[keys[i] for i in idx], desc="extending", labels=labels)
+                for i, res in zip(idx, outs):
+                    results[i] = res
+                    looks[i].append(reps[i])
+            nxt = []
+            for i in todo:
+                res = results[i]
+                if _reached(res, target_mcse, which) or reps[i] >= max_reps:
+                    continue
+                # at most 4 times the current count per look: an estimate from few replicates can overshoot
+                want = min(_round_up(_needed(res, target_mcse, which), sizes[i]), 4 * reps[i])
+                want = min(max(want, reps[i] + sizes[i]), max_reps)
+                reps[i] = want
+                nxt.append(i)
+            todo = nxt
     for i, res in enumerate(results):
         res.extra["sequential"] = {
             "target_mcse": target_mcse, "reached": bool(_reached(res, target_mcse, which)), "reps": res.reps,

@@ -29,6 +29,7 @@ import numpy as np
 import pandas as pd
 
 from ..engine import normalize_seed
+from ..engine.progress import session as progress_session
 from ..engine.runner import point_labels, run_points
 from ..execution import Execution
 
@@ -314,13 +315,20 @@ def _run_points(scenarios, reps, ex: Execution, target_mcse, max_reps, min_reps,
     ukeys = list(unique)
     # messages name a point by its parameters ("n = 48, icc = 0.05"), not by its seed key
     labels = {**dict(zip(keys, point_labels(scenarios))), **dict(labels or {})}
+    with progress_session(ex.progress, "sweeping"):
+        outs = _run_unique(unique, reps, ex, target_mcse, max_reps, min_reps, labels)
+    by_key = dict(zip(ukeys, outs))
+    return [by_key[k] for k in keys]
+
+
+def _run_unique(unique, reps, ex, target_mcse, max_reps, min_reps, labels):
+    ukeys = list(unique)
     if target_mcse is not None:
         outs = run_many_to_mcse(list(unique.values()), target_mcse, max_reps=max_reps, min_reps=min_reps,
                                 keys=ukeys, engine={"labels": labels}, execution=ex)
     else:
         outs = run_points(list(unique.values()), reps, ex, keys=ukeys, desc="sweeping", labels=labels)
-    by_key = dict(zip(ukeys, outs))
-    return [by_key[k] for k in keys]
+    return outs
 
 
 def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -1, chunk_size: int | None = None,
