@@ -162,8 +162,22 @@ def _dask_results(fn: Callable, tasks: Iterable[tuple], address, n_jobs, fallbac
 
 #: estimated cost (seconds) of starting a local worker pool and importing simpower in it
 POOL_START_SECONDS = 1.0
+#: estimated cost (seconds) of handing work to a pool that is already running (warm workers)
+WARM_POOL_SECONDS = 0.05
 #: seconds an idle loky worker waits for work before it exits (joblib's default)
 IDLE_WORKER_SECONDS = 300
+#: (workers, time.monotonic() when the pool last finished work) of this process's loky pool
+_last_pool: tuple[int, float] | None = None
+
+
+def pool_start_seconds(jobs: int) -> float:
+    """What starting ``jobs`` local workers is expected to cost now: little when the pool of the previous run
+    (a search's earlier round, a sweep's earlier point) is still alive with the same size, else a cold start."""
+    if _last_pool is not None:
+        size, when = _last_pool
+        if size == jobs and time.monotonic() - when < IDLE_WORKER_SECONDS - 30:
+            return WARM_POOL_SECONDS
+    return POOL_START_SECONDS
 
 
 def _worker_env(jobs: int) -> dict:
@@ -215,6 +229,8 @@ def _loky_results(fn: Callable, tasks: Iterator[tuple], jobs: int, fallback) -> 
     finally:
         for fut in running:
             fut.cancel()
+        global _last_pool
+        _last_pool = (jobs, time.monotonic())
 
 
 def execute(fn: Callable, tasks: Iterable[tuple], n_jobs: int | None = -1, backend: str | None = None,
@@ -235,10 +251,11 @@ def execute(fn: Callable, tasks: Iterable[tuple], n_jobs: int | None = -1, backe
         The dask scheduler (``tcp://host:8786``) for ``backend='dask'``.
     probe : bool
         Run the first task in this process and start a worker pool for the
-        rest only if that is expected to save time (``POOL_START_SECONDS``
-        against the remaining work spread over the workers). The runner asks
-        for it for fast vectorised scenarios when ``n_jobs`` was left at its
-        default; it changes where tasks run, never their numbers.
+        rest only if that is expected to save time (:func:`pool_start_seconds`,
+        small when the previous run's pool is still warm, against the
+        remaining work spread over the workers). The runner asks for it for
+        fast vectorised scenarios on local workers, whatever ``n_jobs`` says;
+        it changes where tasks run, never their numbers.
     n_tasks : int, optional
         How many tasks there are (when ``tasks`` is lazy); None counts a list.
     fallback : callable, optional
@@ -270,7 +287,8 @@ def execute(fn: Callable, tasks: Iterable[tuple], n_jobs: int | None = -1, backe
         if not n_tasks:
             return
         rest = first * n_tasks
-        if rest - (POOL_START_SECONDS + rest / min(jobs, n_tasks)) <= 0:
+        start = pool_start_seconds(min(jobs, n_tasks)) if backend is None else POOL_START_SECONDS
+        if rest - (start + rest / min(jobs, n_tasks)) <= 0:
             for t in it:
                 yield fn(*t)
             return

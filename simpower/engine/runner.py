@@ -71,7 +71,10 @@ from .progress import display as progress_display
 from .spool import RecordSpool
 
 BATCH_CHUNK = 2000
-LOOP_CHUNK = 200
+#: replicates per chunk when an analysis runs replicate by replicate: small enough that a 300-replicate
+#: run spreads over two workers in six chunks (not 200 + 100) and a store commits every few seconds,
+#: large enough that a chunk's fixed cost (seeding, statistics, a store row) stays below a percent
+LOOP_CHUNK = 50
 #: above this many replicates per point, records are not kept unless asked (summaries stream)
 KEEP_RECORDS_LIMIT = 1_000_000
 #: records of at most this many replicates x analyses per point are held in memory; larger
@@ -595,7 +598,7 @@ def _chunk_results(tasks, n_tasks, scenarios, isolating, run_backend, n_jobs, ad
     if isolating and run_backend is None and any(guard.has_user_code(sc) for sc in scenarios):
         return fallback(tasks)  # user code: every chunk in a forked worker of the helper
     fast = all(sc.process.has_batch and all(a.has_batch for a in sc.analyses.values()) for sc in scenarios)
-    probe = fast and run_backend is None and n_jobs in (None, -1)
+    probe = fast and run_backend is None  # an explicit --jobs 2 too: workers must pay for their start
     return execute(run_chunk, tasks, n_jobs=n_jobs, backend=run_backend, address=address, probe=probe,
                    n_tasks=n_tasks, fallback=fallback)
 
