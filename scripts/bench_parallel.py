@@ -1,7 +1,7 @@
 """jobs = 2 against jobs = 1 for a per-replicate (non-vectorised) scenario.
 
 The scenario draws each replicate with a user function (no batch path, so
-chunks of 200 replicates) and analyses it with two scipy tests per replicate.
+chunks of 50 replicates, LOOP_CHUNK) and analyses it with two scipy tests per replicate.
 Workers are warmed up first (loky starts its processes once and reuses them);
 each configuration is timed over several interleaved rounds and the median
 reported, with the numbers checked identical across jobs.
