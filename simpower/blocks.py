@@ -45,8 +45,34 @@ SEQUENTIAL_FIELDS = {"target_mcse": TARGET_MCSE, "min_reps": Int(low=1), "max_re
                      "chunk_size": Int(low=1), "which": Choice(("primary", "all"))}
 #: [null_check]: the type I error at each analysis's H0 boundary
 NULL_CHECK_FIELDS = {"enabled": Bool(), "reps": Int(low=1), "at_grid": Bool()}
-#: [report]: title, output folder (relative to the file's folder), formats (a list or "md,html")
-REPORT_FIELDS = {"title": Text(), "out": Text(), "formats": OneOrMore(Choice(FORMATS), sep=",")}
+class Labels(Table):
+    """``[report.labels]``: parameter name -> words, or -> ``{label = "...", unit = "..."}``."""
+
+    def clean(self, name, value):
+        value = super().clean(name, value)
+        out = {}
+        for key, spec in value.items():
+            where = f"{name}.{key}"
+            if isinstance(spec, str):
+                out[key] = spec
+            elif isinstance(spec, dict):
+                bad = [k for k in spec if k not in ("label", "unit")]
+                if bad:
+                    raise ParameterError(f"`{where}.{bad[0]}` is not a field of a label; use `label` and `unit`, "
+                                         f'e.g. {key} = {{label = "words", unit = "units"}}.')
+                for k, v in spec.items():
+                    if not isinstance(v, str):
+                        raise ParameterError(f"`{where}.{k}` must be a string; got {v!r}.")
+                out[key] = dict(spec)
+            else:
+                raise ParameterError(f'`{where}` must be a string or a table {{label = "...", unit = "..."}}; '
+                                     f"got {spec!r}.")
+        return out
+
+
+#: [report]: title, output folder (relative to the file's folder), formats (a list or "md,html"), and
+#: [report.labels]: words and units for parameters in tables and plots
+REPORT_FIELDS = {"title": Text(), "out": Text(), "formats": OneOrMore(Choice(FORMATS), sep=","), "labels": Labels()}
 #: [store]: the run store file (relative to the file's folder) and its durability
 STORE_FIELDS = {"path": Text(), "sync": Choice(("normal", "full"))}
 #: [execution]: where and how chunks run (never what they compute)

@@ -121,7 +121,8 @@ def main(args) -> int:
     if args.plot:
         from ..report import plots
 
-        png, svg = plots.save(plots.power_curve(table, x, target=args.target), args.plot)
+        labels = sf.blocks.get("report", {}).get("labels")
+        png, svg = plots.save(table.plot(x, target=args.target, labels=labels), args.plot)
         print(f"plots written to {png} and {svg}")
     if args.report:
         paths = write_outputs(sf, args, seed, args.report, sweep=table, null=null, x=x,

@@ -73,7 +73,7 @@ def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None,
 
     return make_report(sf.scenario, outdir, seed=seed, command=reproduce_command(argv_of(args), seed), sweep=sweep,
                        search=search, null=null, run=run, title=str(block.get("title", "")), x=x,
-                       scenario_file=sf.path, settings=settings, formats=tuple(fm))
+                       scenario_file=sf.path, settings=settings, formats=tuple(fm), labels=block.get("labels"))
 
 
 def plot_axis(sf, args, block, grid, plot: bool) -> str:

@@ -34,6 +34,7 @@ from ..engine.runner import point_labels, run_points
 from ..execution import Execution
 
 from ..errors import ParameterError
+from .sweepresult import SweepResult
 from .sequential import (as_memory_store, check_target_mcse, execution_of, point_key, run_many_to_mcse,
                          seed_with_store)
 from ..summaries import bradley_liberal
@@ -369,9 +370,12 @@ def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -
 
     Returns
     -------
-    pandas.DataFrame
-        Grid parameter columns, then :data:`RESULT_COLUMNS`; ``attrs`` holds
-        the seed, chunk size, scenario fingerprint and grid names.
+    SweepResult
+        A :class:`pandas.DataFrame`: grid parameter columns, then
+        :data:`RESULT_COLUMNS`; ``attrs`` holds the seed, chunk size, scenario
+        fingerprint and grid names. Its methods answer the sweep's question:
+        ``required(target)`` (the size reaching the target per curve),
+        ``answer()``, ``plot()`` (see :mod:`simpower.planning.sweepresult`).
 
     Examples
     --------
@@ -400,6 +404,7 @@ def sweep(scenario, grid, reps: int = 2000, *, seed=None, n_jobs: int | None = -
         "chunk_size": results[0].chunk_size, "reps": None if target_mcse is not None else reps,
         "target_mcse": target_mcse, "alpha": scenario.alpha, "fit_trouble": fit_trouble,
     })
+    table = SweepResult.of(table, scenario)
     return (table, results) if return_results else table
 
 

@@ -32,14 +32,15 @@ def write_report(doc: Document, outdir, formats=("md", "html")) -> dict[str, Pat
 
 def make_report(scenario, outdir, *, seed: int, command: str = "", sweep=None, search=None, null=None, run=None,
                 title: str = "", x: str | None = None, target: float | None = None, scenario_file=None,
-                settings: dict | None = None, formats=("md", "html"), notes=None) -> dict[str, Path]:
+                settings: dict | None = None, formats=("md", "html"), notes=None, labels=None) -> dict[str, Path]:
     """Write a complete planning report into ``outdir`` from results already computed.
 
     Writes ``report.md`` / ``report.html``, ``manifest.json``, the figures
     (PNG and SVG) and the tables (``sweep.csv``, ``search.csv``,
     ``null_check.csv``). ``command`` is the command that reproduces the
     numbers (see :func:`reproduce_command`); from Python, record the call
-    that produced the results.
+    that produced the results. ``labels`` maps parameter names to words (and
+    units) for the plots' axes and legends (a scenario file's ``[report.labels]``).
     """
     out = Path(outdir)
     out.mkdir(parents=True, exist_ok=True)
@@ -48,7 +49,7 @@ def make_report(scenario, outdir, *, seed: int, command: str = "", sweep=None, s
     man = build_manifest(seed=seed, scenario=scenario, command=command or "(Python API)", scenario_file=scenario_file,
                          settings=settings)
     doc = planning_document(scenario, title=title, outdir=out, manifest=man, sweep=sweep, search=search, null=null,
-                            run=run, x=x, target=target, notes=notes)
+                            run=run, x=x, target=target, notes=notes, labels=labels)
     paths = write_report(doc, out, formats)
     paths["manifest"] = write_manifest(man, out / "manifest.json")
     for name, t in (("sweep", sweep), ("null_check", null), ("search", None if search is None else search.table)):

@@ -12,6 +12,7 @@ from . import plots
 from ..answer import answer_block, justification
 from .document import Document, code, literal
 from ..labels import readable
+from ..planning.sweepresult import required_by_curve
 from .manifest import manifest_rows
 
 SWEEP_SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power")
@@ -92,7 +93,7 @@ def _mc_error(frames: list[tuple[str, pd.DataFrame, str]]) -> list[str]:
 
 def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, Any], sweep: pd.DataFrame | None = None,
                       search=None, null: pd.DataFrame | None = None, run=None, x: str | None = None,
-                      target: float | None = None, notes: list[str] | None = None) -> Document:
+                      target: float | None = None, notes: list[str] | None = None, labels=None) -> Document:
     """Build the report's :class:`Document`, writing its figures (PNG and SVG) into ``outdir``."""
     out = Path(outdir)
     doc = Document(literal(title or scenario.name or "Power analysis by simulation"))
@@ -128,7 +129,7 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
                          f"{search.estimate:.4g}."))
         if search.note:
             doc.para(literal("Note: " + search.note))
-        png, svg = plots.save(plots.search_plot(search), out / "search")
+        png, svg = plots.save(plots.search_plot(search, labels=labels), out / "search")
         doc.figure(png, svg, "Search: simulated power (Wilson intervals), fitted curve, target and answer")
         shown = readable(search.table, "power", ("value", "reps", "power", "mcse", "ci_low", "ci_high",
                                                  "fitted_power", "in_fit"))
@@ -144,11 +145,25 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
         numeric = xs is not None and pd.api.types.is_numeric_dtype(sweep[xs])
         if numeric:
             req = search.value if (search is not None and search.parameter == xs) else None
-            png, svg = plots.save(plots.power_curve(sweep, xs, target=target, required=req), out / "sweep_power")
-            doc.figure(png, svg, literal(f"Power against {xs} with 95% Wilson bands"))
+            per_curve = required_by_curve(sweep, xs, target) if target is not None else None
+            png, svg = plots.save(plots.power_curve(sweep, xs, target=target, required=req, labels=labels,
+                                                    per_curve=per_curve), out / "sweep_power")
+            doc.figure(png, svg, literal(f"Power against {plots.axis_label(xs, labels)} with 95% Wilson bands"
+                                         + (f"; triangles mark where each curve reaches {target:g}" if target else "")))
+            if per_curve is not None:
+                shown = per_curve.rename(columns={
+                    "analysis": "Analysis", "smallest_on_grid": f"Smallest {xs} on the grid reaching {target:g}",
+                    "interpolated": f"{xs} interpolated", "low": "from (band)", "high": "to (band)", "note": "Note"})
+                doc.para(literal(f"How large for power {target:g}: per analysis and value of the other swept "
+                                 f"parameters, the smallest grid value of {xs} that reaches the target, and the value "
+                                 f"interpolated linearly between the grid values around the crossing, with the range "
+                                 f"where the 95% Wilson band crosses the target. The grid's spacing limits the "
+                                 f"precision; a sample-size search gives the value itself."))
+                doc.table(shown.round(1), literal(f"Required {xs} per curve for power {target:g}"))
         others = [g for g in grid if g != xs and pd.api.types.is_numeric_dtype(sweep[g])]
         if numeric and others:
-            png, svg = plots.save(plots.heatmap(sweep, xs, others[0], target=target), out / "sweep_heatmap")
+            png, svg = plots.save(plots.heatmap(sweep, xs, others[0], target=target, labels=labels),
+                                  out / "sweep_heatmap")
             doc.figure(png, svg, literal(f"Power of the primary analysis over {xs} and {others[0]}"))
         for a, p in zip(sweep["analysis"], sweep["path"]):
             paths.setdefault(a, p)
