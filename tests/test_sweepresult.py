@@ -88,3 +88,14 @@ def test_report_labels_block_is_checked():
         read_block("report", {"labels": {"n": {"units": "patients"}}})
     with pytest.raises(sp.ParameterError, match="report.labels.n"):
         read_block("report", {"labels": {"n": 3}})
+
+
+def test_a_search_draws_itself(tmp_path):
+    sc = sp.Scenario(sp.NormalTwoArm(n=40, effect=0.5), sp.TTest())
+    res = sp.required_n(sc, 0.8, low=20, high=120, seed=5, n_jobs=1, progress=False, max_reps=3000)
+    fig = res.plot(stem=tmp_path / "s", labels={"n": "patients per arm"})
+    ax = fig.axes[0]
+    assert ax.get_xlabel() == "patients per arm (n)"
+    answer = [ln for ln in ax.get_lines() if "answer" in str(ln.get_label())]
+    assert answer and float(answer[0].get_xdata()[0]) == res.value
+    assert (tmp_path / "s.png").exists()

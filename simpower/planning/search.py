@@ -282,6 +282,19 @@ class SearchResult:
 
         return justification(self, null=null)
 
+    def plot(self, stem=None, labels=None, title: str = ""):
+        """The search as a figure: evaluated values with Wilson intervals, fitted curve, target and answer.
+
+        ``stem`` writes ``stem.png`` and ``stem.svg``; ``labels`` maps parameter names to words (and units).
+        Returns the matplotlib Figure.
+        """
+        from ..report import plots
+
+        fig = plots.search_plot(self, title=title, labels=labels)
+        if stem is not None:
+            plots.save(fig, stem)
+        return fig
+
     def summary(self) -> str:
         """The answer block as plain text (what the terminal shows)."""
         text = self.answer().text()
