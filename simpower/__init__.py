@@ -37,6 +37,7 @@ from .processes.outcomes import (ContaminatedNormal, Fleishman, Gamma, Lognormal
 from .processes.repeated import RepeatedMeasures
 from .processes.survival import SurvivalTwoArm
 from .result import Records, RunResult
+from .planning.assurance import AssuranceResult, assurance, required_n_for_assurance
 from .planning.search import SearchResult, detectable_effect, required_n
 from .planning.sequential import MemoryStore, point_key, run_many_to_mcse, run_to_mcse
 from .planning.sweep import Grid, Range, null_check, sweep
@@ -63,7 +64,8 @@ __all__ = [
     "Scenario", "load_scenario", "load_plan", "StudyPlan", "execute", "PlanResult", "Execution", "run", "run_many", "RunResult", "Records", "RunInterrupted", "RunStore", "open_store",
     # planning
     "sweep", "Grid", "Range", "null_check", "required_n", "detectable_effect", "SearchResult", "run_to_mcse",
-    "run_many_to_mcse", "MemoryStore", "point_key", "make_report",
+    "run_many_to_mcse", "MemoryStore", "point_key", "make_report", "assurance", "required_n_for_assurance",
+    "AssuranceResult",
     # contracts
     "Process", "Analysis", "Outcome", "Missingness", "Batch", "TestResult", "as_test_result", "BatchResult",
     "as_batch_result",

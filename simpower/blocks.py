@@ -79,11 +79,18 @@ STORE_FIELDS = {"path": Text(), "sync": Choice(("normal", "full"))}
 EXECUTION_FIELDS = {"backend": Choice(BACKENDS), "address": Text(), "timeout": Real(0.0, low_open=True),
                     "summaries_only": Bool()}
 
+#: [assurance]: a prior on parameters ([assurance.prior]), the two-level Monte Carlo, and optionally the size
+#: whose assurance reaches `target` (evaluated at `points` sizes in [low, high])
+ASSURANCE_FIELDS = {"prior": Table(), "draws": Int(low=2), "reps_per_draw": Int(low=1),
+                    "favourable": Choice(("greater", "less")), "analysis": Text(),
+                    "target": Real(0.0, 1.0, low_open=True, high_open=True), "low": Real(0.0, low_open=True),
+                    "high": Real(0.0, low_open=True), "points": Int(low=2), "parameter": Text()}
+
 #: every block of a study plan -> its fields
 BLOCK_FIELDS: dict[str, dict[str, Any]] = {
     "sweep": SWEEP_FIELDS, "search": SEARCH_FIELDS, "sequential": SEQUENTIAL_FIELDS,
     "null_check": NULL_CHECK_FIELDS, "report": REPORT_FIELDS, "store": STORE_FIELDS,
-    "execution": EXECUTION_FIELDS,
+    "execution": EXECUTION_FIELDS, "assurance": ASSURANCE_FIELDS,
 }
 
 

@@ -85,6 +85,10 @@ class StudyPlan:
         ``reps`` and ``at_grid`` of the type I error check; None when it is off.
     report : mapping
         The ``[report]`` block (title, out, formats), for whoever renders.
+    assurance : mapping or None
+        The ``[assurance]`` block (prior, draws, reps_per_draw, favourable,
+        analysis; with ``target``, ``low`` and ``high`` the size whose
+        assurance reaches the target), prior checked at load.
     stores : mapping
         A run store (path) per part (:data:`PARTS`); a part not named has none.
     path : Path or None
@@ -101,6 +105,7 @@ class StudyPlan:
     report: Mapping[str, Any] = field(default_factory=dict)
     stores: Mapping[str, Any] = field(default_factory=dict)
     path: Path | None = None
+    assurance: Mapping[str, Any] | None = None
 
     def replace(self, **changes) -> "StudyPlan":
         """A copy with ``changes`` applied (e.g. ``plan.replace(null_check=None)``)."""
@@ -108,8 +113,10 @@ class StudyPlan:
 
     @property
     def kind(self) -> str:
-        """What the plan computes first: 'search', 'sweep' or 'run'."""
-        return "search" if self.search is not None else "sweep" if self.sweep is not None else "run"
+        """What the plan computes first: 'search', 'sweep', 'assurance' or 'run'."""
+        if self.search is not None:
+            return "search"
+        return "sweep" if self.sweep is not None else "assurance" if self.assurance is not None else "run"
 
 
 @dataclass
@@ -121,6 +128,7 @@ class PlanResult:
     sweep: Any = None
     run: Any = None
     null: Any = None
+    assurance: Any = None
     x: str | None = None
     settings: dict = field(default_factory=dict)
 
@@ -186,9 +194,15 @@ def plan_from_file(sf, *, execution: Execution | None = None, stores: Mapping[st
     if "search" in blocks:
         search = dict(blocks["search"])
         search.setdefault("find", "size")
+    assurance = None
+    if "assurance" in blocks:
+        from .planning.assurance import check_block
+
+        assurance = check_block(sf.scenario, blocks["assurance"])
     return StudyPlan(scenario=sf.scenario, execution=execution or execution_from_file(sf), reps=sf.run.get("reps"),
                      search=search, sweep=sweep, sequential=dict(blocks.get("sequential", {})), null_check=null,
-                     report=dict(blocks.get("report", {})), stores=dict(stores or {}), path=sf.path)
+                     report=dict(blocks.get("report", {})), stores=dict(stores or {}), path=sf.path,
+                     assurance=assurance)
 
 
 def load_plan(path: str | Path, overrides: Mapping[str, Any] | None = None,
@@ -258,7 +272,7 @@ def _null(plan: StudyPlan, ex: Execution):
 
 
 def execute(plan: StudyPlan, echo=None) -> PlanResult:
-    """Run what ``plan`` plans: its search, its sweep, else the scenario as given; then the type I check.
+    """Run what ``plan`` plans: its search, its sweep, its assurance, else the scenario as given; then the type I check.
 
     Parameters
     ----------
@@ -269,7 +283,7 @@ def execute(plan: StudyPlan, echo=None) -> PlanResult:
     Returns
     -------
     PlanResult
-        ``search``, ``sweep``, ``run`` and ``null`` (None for a part that did
+        ``search``, ``sweep``, ``assurance``, ``run`` and ``null`` (None for a part that did
         not run), the ``seed`` they share, the plot axis ``x`` of a sweep, and
         the ``settings`` each part ran with (for the report's manifest).
     """
@@ -293,7 +307,13 @@ def execute(plan: StudyPlan, echo=None) -> PlanResult:
                                  "target_mcse": out.sweep.attrs.get("target_mcse"),
                                  "chunk_size": out.sweep.attrs.get("chunk_size")}
         say(f"sweep: {len(out.sweep)} rows")
-    if plan.search is None and plan.sweep is None:
+    if plan.assurance is not None:
+        from .planning.assurance import run_block
+
+        out.assurance = run_block(plan.scenario, plan.assurance, ex)
+        out.settings["assurance"] = {k: v for k, v in plan.assurance.items() if k != "prior"}
+        say(out.assurance.summary())
+    if plan.search is None and plan.sweep is None and plan.assurance is None:
         out.run = _run(plan, ex)
         out.settings["run"] = {"reps": out.run.reps, "chunk_size": out.run.chunk_size}
         say(str(out.run))

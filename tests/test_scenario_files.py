@@ -101,7 +101,7 @@ def test_user_code_by_file_reference(tmp_path):
     """))
     sf = load(tmp_path / "s.toml")
     r1 = sp.run(sf.scenario, reps=300, seed=5, n_jobs=1)
-    r2 = sp.run(sf.scenario, reps=300, seed=5, n_jobs=2, chunk_size=200)  # workers re-import by reference
+    r2 = sp.run(sf.scenario, reps=300, seed=5, n_jobs=2)  # six chunks on two workers, which re-import by reference
     assert np.array_equal(r1.pvalues, r2.pvalues)
     assert r1.summaries[r1.primary]["n_failed"] == 0
 

@@ -63,6 +63,7 @@ def main(args) -> int:
         return 0
     paths = write_outputs(sf, args, result.seed, outdir, sweep=result.sweep, search=result.search,
                           null=result.null, run=result.run, x=result.x, formats=args.formats,
+                          assurance=result.assurance,
                           settings={"set": list(args.set), **result.settings})
     for k, p in paths.items():
         print(f"wrote {k}: {p}")

@@ -61,7 +61,7 @@ def null_lines(table, grid_cols=()) -> list[str]:
 
 
 def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None, run=None, x=None, formats=None,
-                  settings=None) -> dict:
+                  settings=None, assurance=None) -> dict:
     from ..report import make_report
     from ..report.manifest import reproduce_command
 
@@ -73,7 +73,8 @@ def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None,
 
     return make_report(sf.scenario, outdir, seed=seed, command=reproduce_command(argv_of(args), seed), sweep=sweep,
                        search=search, null=null, run=run, title=str(block.get("title", "")), x=x,
-                       scenario_file=sf.path, settings=settings, formats=tuple(fm), labels=block.get("labels"))
+                       scenario_file=sf.path, settings=settings, formats=tuple(fm), labels=block.get("labels"),
+                       assurance=assurance)
 
 
 def plot_axis(sf, args, block, grid, plot: bool) -> str:
@@ -148,7 +149,11 @@ def announce(plan, command: str, args=None) -> None:
         return
     sc = plan.scenario
     what = sc.name or (plan.path.name if plan.path is not None else "scenario")
-    if plan.search is not None:
+    if plan.assurance is not None:
+        a = plan.assurance
+        part = (f"assurance over {a.get('draws', 1000)} prior draws x {a.get('reps_per_draw', 20)} trials"
+                + (f", the size for assurance {a['target']:g}" if "target" in a else ""))
+    elif plan.search is not None:
         s = plan.search
         target = s.get("power", 0.8)
         kind = "the minimal detectable effect" if s.get("find") == "effect" else "the required size"

@@ -32,7 +32,8 @@ def write_report(doc: Document, outdir, formats=("md", "html")) -> dict[str, Pat
 
 def make_report(scenario, outdir, *, seed: int, command: str = "", sweep=None, search=None, null=None, run=None,
                 title: str = "", x: str | None = None, target: float | None = None, scenario_file=None,
-                settings: dict | None = None, formats=("md", "html"), notes=None, labels=None) -> dict[str, Path]:
+                settings: dict | None = None, formats=("md", "html"), notes=None, labels=None,
+                assurance=None) -> dict[str, Path]:
     """Write a complete planning report into ``outdir`` from results already computed.
 
     Writes ``report.md`` / ``report.html``, ``manifest.json``, the figures
@@ -49,13 +50,16 @@ def make_report(scenario, outdir, *, seed: int, command: str = "", sweep=None, s
     man = build_manifest(seed=seed, scenario=scenario, command=command or "(Python API)", scenario_file=scenario_file,
                          settings=settings)
     doc = planning_document(scenario, title=title, outdir=out, manifest=man, sweep=sweep, search=search, null=null,
-                            run=run, x=x, target=target, notes=notes, labels=labels)
+                            run=run, x=x, target=target, notes=notes, labels=labels, assurance=assurance)
     paths = write_report(doc, out, formats)
     paths["manifest"] = write_manifest(man, out / "manifest.json")
     for name, t in (("sweep", sweep), ("null_check", null), ("search", None if search is None else search.table)):
         if t is not None:
             paths[name] = out / f"{name}.csv"
             t.to_csv(paths[name], index=False)
+    if assurance is not None:
+        paths["assurance"] = out / "assurance.csv"
+        (assurance.table if hasattr(assurance, "table") else assurance.draws).to_csv(paths["assurance"], index=False)
     if run is not None:
         paths["run"] = out / "run.csv"
         run.summary().to_csv(paths["run"], index=False)

@@ -93,7 +93,8 @@ def _mc_error(frames: list[tuple[str, pd.DataFrame, str]]) -> list[str]:
 
 def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, Any], sweep: pd.DataFrame | None = None,
                       search=None, null: pd.DataFrame | None = None, run=None, x: str | None = None,
-                      target: float | None = None, notes: list[str] | None = None, labels=None) -> Document:
+                      target: float | None = None, notes: list[str] | None = None, labels=None,
+                      assurance=None) -> Document:
     """Build the report's :class:`Document`, writing its figures (PNG and SVG) into ``outdir``."""
     out = Path(outdir)
     doc = Document(literal(title or scenario.name or "Power analysis by simulation"))
@@ -179,6 +180,15 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
                      f"{seq['target_mcse']:g}; it took {seq['reps']} replicates (looks at {seq['looks']}); "
                      f"target {'reached' if seq['reached'] else 'NOT reached within ' + str(seq['max_reps'])}.")
         paths.update(run.paths)
+
+    if assurance is not None:
+        doc.heading("Assurance over the prior")
+        lines = assurance.summary().splitlines()
+        doc.para(literal(lines[0]))
+        doc.bullets([literal(ln.strip()) for ln in lines[1:]])
+        doc.para("Assurance is the probability of success (a rejection with the estimate on the favourable side) "
+                 "averaged over the prior on the parameters (O'Hagan, Stevens & Campbell 2005); its MCSE counts "
+                 "the prior's spread and the replicates' noise. The table of draws is in assurance.csv.")
 
     if null is not None:
         doc.heading("Type I error under the null")
