@@ -9,6 +9,7 @@ from ._version import __version__
 
 from . import analytic
 from .analyses.base import Analysis, BatchResult, TestResult, as_batch_result, as_test_result
+from .analyses.bayes import PosteriorProbability
 from .analyses.binary import ChiSquare, FisherExact, Logistic, TwoProportions
 from .analyses.clustered import GEE, ClusterMeansT, FinalVisitT
 from .analyses.counts import NegBinGLM, PoissonGLM
@@ -34,6 +35,7 @@ from .processes.missing import MAR, MCAR, MNAR
 from .processes.normal import NormalOneSample, NormalPaired, NormalTwoArm
 from .processes.outcomes import (ContaminatedNormal, Fleishman, Gamma, Lognormal, Normal, ScipyOutcome,
                                  SkewNormal, StudentT)
+from .processes.pilot import PilotResample
 from .processes.repeated import RepeatedMeasures
 from .processes.survival import SurvivalTwoArm
 from .result import Records, RunResult
@@ -71,7 +73,7 @@ __all__ = [
     "as_batch_result",
     # processes
     "NormalOneSample", "NormalPaired", "NormalTwoArm", "TwoArm", "MultiArm", "ClusterTrial", "RepeatedMeasures",
-    "BinaryTwoArm", "CountTwoArm", "SurvivalTwoArm",
+    "BinaryTwoArm", "CountTwoArm", "SurvivalTwoArm", "PilotResample",
     # outcomes and missingness
     "Normal", "Lognormal", "Gamma", "SkewNormal", "Fleishman", "StudentT", "ContaminatedNormal", "ScipyOutcome",
     "MCAR", "MAR", "MNAR",
@@ -79,6 +81,7 @@ __all__ = [
     "ZTest", "TTest", "WelchT", "PairedT", "ClusterMeansT", "GEE", "FinalVisitT", "TwoProportions", "ChiSquare",
     "FisherExact", "Logistic", "PoissonGLM", "NegBinGLM", "LogRank", "Cox", "MannWhitney", "WilcoxonSignedRank",
     "PermutationTest", "BootstrapCI", "LogT", "TOST", "NonInferiority", "Multiple", "Dunnett", "AnovaF", "OLS", "Ancova", "MixedModel",
+    "PosteriorProbability",
     # summaries
     "bradley_liberal", "paired_difference", "wilson_interval",
     # errors

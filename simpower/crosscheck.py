@@ -160,6 +160,24 @@ def _anova_f(a, f: MultiArmFacts, alpha):
     return analytic.anova_power(cohen, f.sizes[0], len(f.sizes), alpha, allocation=list(f.sizes))
 
 
+def _posterior_normal(a, f: NormalFacts, alpha):
+    """The normal rule with a known SD that is the process's (both arms): exact (``analytic.bayes``)."""
+    if a.model != "normal" or a.sd is None or f.design != "two-sample" or f.sd is None or not math.isclose(f.sd, a.sd):
+        return None
+    return analytic.normal_rule_power(f.effect, f.n, round(f.n * f.ratio), sd=a.sd, threshold=a.threshold, eta=a.eta,
+                             prior_mean=a.prior_mean, prior_sd=math.inf if a.prior_sd is None else a.prior_sd,
+                             direction=a.direction)
+
+
+def _posterior_binary(a, f: BinaryFacts, alpha):
+    """The beta-binomial rule: exact, by enumeration of the outcome tables (``analytic.bayes``)."""
+    if a.model != "beta_binomial":
+        return None
+    return analytic.beta_binomial_rule_power(f.p0, f.p1, f.n, round(f.n * f.ratio), threshold=a.threshold, eta=a.eta,
+                                    prior0=(a.prior_a0, a.prior_b0), prior1=(a.prior_a1, a.prior_b1),
+                                    direction=a.direction)
+
+
 def _pooled(a) -> bool:
     return bool(a.equal_var)  # the Welch variant's closed form is an approximation
 
@@ -184,6 +202,10 @@ _ENTRIES = (
     ClosedForm("dunnett", MultiArmFacts, _dunnett, True,
                "many-to-one multivariate noncentral t (Dunnett 1955; Dunnett & Tamhane 1991)"),
     ClosedForm("anova_f", MultiArmFacts, _anova_f, True, "noncentral F with Cohen's f (Cohen 1988, ch. 8)"),
+    ClosedForm("posterior_probability", NormalFacts, _posterior_normal, True,
+               "conjugate normal update, rule d > c (Spiegelhalter, Abrams & Myles 2004, ch. 3)"),
+    ClosedForm("posterior_probability", BinaryFacts, _posterior_binary, True,
+               "beta-binomial rule, exact sum over the outcome tables"),
 )
 
 #: (analysis name, fact type) -> closed form

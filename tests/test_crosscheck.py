@@ -208,7 +208,33 @@ def _cases():
                     lambda f, al: analytic.anova_power(f_cohen, 20, 3, al),
                     lambda: FTestAnovaPower().power(effect_size=f_cohen, nobs=60, alpha=ALPHA, k_groups=3),
                     tol=1e-9))
+    # Bayesian posterior-probability rules: the flat-prior normal rule with eta = 1 - 0.025 is the one-sided
+    # z-test at 0.025 (a known identity); the beta-binomial rule's exact power by a direct double sum with
+    # scipy's binomial pmf and posterior probabilities from scipy.integrate.quad
+    p = sp.NormalTwoArm(n=30, effect=0.6, sd=1.5)
+    out.append(Case("posterior_probability normal", sp.PosteriorProbability(sd=1.5, eta=0.975), p,
+                    ("posterior_probability", NormalFacts),
+                    lambda f, al: analytic.z_power(0.6, 30, sd=1.5, alpha=0.025, alternative="greater",
+                                                   design="two-sample"),
+                    lambda: z_power(0.6 / (1.5 * math.sqrt(2 / 30)), 0.025, "greater"), tol=1e-9))
+    p = sp.BinaryTwoArm(n=8, p0=0.3, risk_difference=0.4)
+    rule = sp.PosteriorProbability(model="beta_binomial", eta=0.9)
+    out.append(Case("posterior_probability beta_binomial", rule, p, ("posterior_probability", BinaryFacts),
+                    lambda f, al: _beta_rule_direct(0.3, 0.7, 8, 0.9), lambda: _beta_rule_direct(0.3, 0.7, 8, 0.9),
+                    tol=1e-7))
     return out
+
+
+def _beta_rule_direct(p0, p1, n, eta):
+    total = 0.0
+    for x0 in range(n + 1):
+        for x1 in range(n + 1):
+            post, _ = integrate.quad(lambda q: stats.beta.pdf(q, 1 + x0, 1 + n - x0) * stats.beta.sf(q, 1 + x1,
+                                                                                                     1 + n - x1),
+                                     0, 1, epsabs=1e-12)
+            if post > eta:
+                total += stats.binom.pmf(x0, n, p0) * stats.binom.pmf(x1, n, p1)
+    return total
 
 
 CASES = _cases()

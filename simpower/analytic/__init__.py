@@ -18,6 +18,8 @@ See ``docs/analytic.md`` for formulas and sources.
 
 from .ancova import ancova_effect, ancova_n, ancova_power
 from .arcsine import arcsine_effect, arcsine_n, arcsine_power, cohen_h
+from .assurance import assurance_ceiling, normal_prior_assurance, two_sample_z_se
+from .bayes import beta_binomial_rule_power, beta_difference_probability, calibrate_eta, normal_rule_power
 from .binomial import binom_exact_effect, binom_exact_n, binom_exact_power, binom_exact_region
 from .correlation import corr_effect, corr_n, corr_power
 from .design import ceil_n, clusters_per_arm, design_effect, inflate_for_dropout
@@ -49,6 +51,8 @@ from .welch import welch_df, welch_effect, welch_n, welch_power
 __all__ = [
     "ancova_effect", "ancova_n", "ancova_power",
     "arcsine_effect", "arcsine_n", "arcsine_power", "cohen_h",
+    "assurance_ceiling", "normal_prior_assurance", "two_sample_z_se",
+    "beta_binomial_rule_power", "beta_difference_probability", "calibrate_eta", "normal_rule_power",
     "binom_exact_effect", "binom_exact_n", "binom_exact_power", "binom_exact_region",
     "ceil_n", "clusters_per_arm", "design_effect", "inflate_for_dropout",
     "corr_effect", "corr_n", "corr_power",
