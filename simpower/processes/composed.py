@@ -1,4 +1,4 @@
-"""A composed process, ``trial``: a design times a continuous outcome times a missingness mechanism.
+"""A composed process, ``trial``: a design times an outcome times a missingness mechanism.
 
 The three layers are separate components, combined in one process::
 
@@ -31,6 +31,14 @@ Designs (kind ``design``):
 The effect (``effect``, ``effect_type``, ``sd_ratio``) acts on the treatment
 rows as in ``two_arm``; then the missingness step
 (:func:`~simpower.processes.design.apply_missing`) runs once.
+
+The outcome may instead be a layer with a linear predictor
+(:mod:`simpower.processes.glm_outcomes`: ``binary``, logit link; ``count``,
+log link), which carries its own effect (``outcome.odds_ratio``,
+``outcome.rate_ratio``...). Under ``clusters`` the cluster intercept then acts
+on the link scale, eta = beta0 + beta1 arm + sigma_b u_c, with sigma_b from the
+design's ``icc`` on the layer's ``icc_scale``; under ``arms`` the layer draws
+exactly what ``binary_two_arm`` / ``count_two_arm`` draw with the same fields.
 """
 
 from __future__ import annotations
