@@ -29,6 +29,7 @@ from scipy import integrate, optimize, stats
 from scipy.special import expit, logit
 
 import simpower as sp
+from simpower.errors import UnknownNameError
 from simpower.processes.glm_outcomes import ZLA_C, proportion_icc, zla_marginal
 from simpower.registry import build
 
@@ -167,6 +168,10 @@ def test_conditional_risk_ratio_in_clusters_is_refused_and_effect_belongs_to_the
     assert arms.linear.mean1 == sp.BinaryTwoArm(n=10, p0=0.3, risk_ratio=1.5).p1
     with pytest.raises(sp.ParameterError, match=r"^`effect` does not apply to a binary outcome.*remove `effect`"):
         trial({"type": "arms", "n": 10}, {"type": "binary", "p0": 0.3, "odds_ratio": 2.0}, effect=0.5)
+    with pytest.raises(UnknownNameError, match=r"^`outcome.type`: unknown outcome 'binari'. Did you mean 'binary'\?$"):
+        trial({"type": "arms", "n": 10}, {"type": "binari", "p0": 0.3})
+    with pytest.raises(sp.ParameterError, match=r"^`design.icc` = 0.9 cannot be reached by counts with dispersion"):
+        trial(clusters(icc=0.9), {"type": "count", "rate0": 1.0, "dispersion": 0.5})
 
 
 # -- event rates per arm -------------------------------------------------------------------------

@@ -49,7 +49,7 @@ import numpy as np
 
 from .._validation import Choice, Int, Real
 from ..components import Component, Nested
-from ..errors import ParameterError
+from ..errors import ParameterError, UnknownNameError, nearest
 from .. import registry
 from ..facts import BinaryFacts, ClusterBinaryFacts, ClusterFacts, NormalFacts
 from .arms import EFFECT_TYPE, POSITIVE, _check_missing, _check_outcome_for, _describe_effect, _effect_values
@@ -182,8 +182,13 @@ class OutcomeOrLayer(Nested):
     def clean(self, name, value):
         if isinstance(value, GLMOutcome):
             return value
-        if isinstance(value, dict) and value.get("type") in registry.names(GLMOutcome.kind):
-            return registry.build(GLMOutcome.kind, value, where=name)
+        if isinstance(value, dict):
+            kind = value.get("type")
+            layers, outcomes = registry.names(GLMOutcome.kind), registry.names("outcome")
+            if kind in layers:
+                return registry.build(GLMOutcome.kind, value, where=name)
+            if isinstance(kind, str) and kind not in outcomes and not registry.is_reference(kind):
+                raise UnknownNameError(f"`{name}.type`: unknown outcome {kind!r}.{nearest(kind, outcomes + layers)}")
         return super().clean(name, value)
 
 
