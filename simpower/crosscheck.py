@@ -28,7 +28,7 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 from . import analytic
-from .facts import BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
+from .facts import BinaryFacts, ClusterBinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
 
 PowerFn = Callable[[Any, Any, float], "float | None"]
 
@@ -143,6 +143,31 @@ def _cluster_means_t(a, f: ClusterFacts, alpha):
                             design="two-sample")
 
 
+def cluster_binary_power(f: ClusterBinaryFacts, alpha: float, alternative: str, cv: float) -> float:
+    """Two-proportion power at the effective size k m / DE per arm, DE = 1 + ((1 + cv^2) m - 1) icc.
+
+    The design effect of Eldridge, Ashby & Kerry (2006) for sizes with coefficient of variation ``cv``
+    (Donner & Klar 2000 for equal sizes, cv = 0), with the ICC of the 0/1 outcomes; the two-proportion
+    normal approximation with pooled SE under H0 (Fleiss, Levin & Paik 2003, ch. 4).
+    """
+    de = analytic.design_effect(f.cluster_size, f.icc, cv=cv)
+    return analytic.prop2_power(f.p0, f.p1, f.clusters * f.cluster_size / de, alpha=alpha, alternative=alternative)
+
+
+def _cluster_means_binary(a, f: ClusterBinaryFacts, alpha):
+    """Size-weighted: Eldridge's design effect; equal weights: only for equal clusters (where both coincide)."""
+    if f.randomise != "cluster" or (a.weights == "equal" and not f.equal_sizes):
+        return None
+    return cluster_binary_power(f, alpha, a.alternative, f.cluster_size_cv)
+
+
+def _gee_binary(a, f: ClusterBinaryFacts, alpha):
+    """The default mean model (y ~ arm) tested on `arm`: the risk difference, sized by the design effect."""
+    if f.randomise != "cluster" or getattr(a, "formula", None) is not None or getattr(a, "term", "arm") != "arm":
+        return None
+    return cluster_binary_power(f, alpha, a.alternative, f.cluster_size_cv)
+
+
 def _dunnett(a, f: MultiArmFacts, alpha):
     """Power to reject at least one comparison (the primary p-value of ``dunnett``)."""
     parts = dunnett_parts(a, f, alpha)
@@ -183,6 +208,8 @@ def _pooled(a) -> bool:
 
 
 NONCENTRAL_T = "noncentral t (Cohen 1988, ch. 2)"
+CLUSTER_BINARY = ("two-proportion normal approximation at n / design effect, DE = 1 + ((1 + cv^2) m - 1) ICC "
+                  "(Eldridge, Ashby & Kerry 2006; Donner & Klar 2000 for equal sizes), ICC of the 0/1 outcomes")
 _ENTRIES = (
     ClosedForm("t_test", NormalFacts, _t_test, True, NONCENTRAL_T),
     ClosedForm("welch_t", NormalFacts, _welch_t, False,
@@ -199,6 +226,8 @@ _ENTRIES = (
                "Schoenfeld (1981) approximation at the expected number of events"),
     ClosedForm("cluster_means_t", ClusterFacts, _cluster_means_t, True,
                "noncentral t on cluster means (Donner & Klar 2000, ch. 6)"),
+    ClosedForm("cluster_means_t", ClusterBinaryFacts, _cluster_means_binary, False, CLUSTER_BINARY),
+    ClosedForm("gee", ClusterBinaryFacts, _gee_binary, False, CLUSTER_BINARY),
     ClosedForm("dunnett", MultiArmFacts, _dunnett, True,
                "many-to-one multivariate noncentral t (Dunnett 1955; Dunnett & Tamhane 1991)"),
     ClosedForm("anova_f", MultiArmFacts, _anova_f, True, "noncentral F with Cohen's f (Cohen 1988, ch. 8)"),
@@ -251,6 +280,25 @@ def power(analysis, process, alpha: float) -> float | None:
     return None
 
 
-def is_exact(analysis) -> bool:
-    """Whether the analysis's closed forms are exact (True also when it has none, the default)."""
+def covering(analysis, process) -> ClosedForm | None:
+    """The entry whose closed form :func:`power` uses for ``process`` (None when no entry covers them)."""
+    table = entries(analysis)
+    if not table:
+        return None
+    for fact in process.facts():
+        entry = _entry_for(table, fact)
+        if entry is not None and entry.power(analysis, fact, 0.05) is not None:
+            return entry
+    return None
+
+
+def is_exact(analysis, process=None) -> bool:
+    """Whether the analysis's closed forms are exact (True also when it has none, the default).
+
+    With ``process``: whether the closed form it gets for that process is exact (an analysis may have
+    an exact entry for one kind of facts and an approximation for another, e.g. the cluster-means t).
+    """
+    if process is not None:
+        entry = covering(analysis, process)
+        return True if entry is None else entry.is_exact(analysis)
     return all(e.is_exact(analysis) for e in entries(analysis).values())

@@ -116,6 +116,30 @@ class ClusterFacts:
 
 
 @dataclass(frozen=True)
+class ClusterBinaryFacts:
+    """A binary outcome in two arms of clusters with a random cluster intercept, complete.
+
+    ``p0`` and ``p1`` are the population-averaged (marginal) risks of the
+    control and treatment arms; ``clusters`` per arm of mean size
+    ``cluster_size`` (coefficient of variation ``cluster_size_cv``); ``icc``
+    the intracluster correlation of the 0/1 outcomes in the control arm (the
+    proportion scale); ``randomise`` as in :class:`ClusterFacts`.
+    """
+
+    p0: float
+    p1: float
+    clusters: int
+    cluster_size: float
+    cluster_size_cv: float
+    icc: float
+    randomise: Literal["cluster", "individual"] = "cluster"
+
+    @property
+    def equal_sizes(self) -> bool:
+        return self.cluster_size_cv == 0
+
+
+@dataclass(frozen=True)
 class MultiArmFacts:
     """Normal outcomes in k >= 2 independent arms with a common SD, complete.
 
@@ -130,4 +154,4 @@ class MultiArmFacts:
 
 
 #: every fact type, for documentation and tests
-FACT_TYPES = (NormalFacts, BinaryFacts, SurvivalFacts, ClusterFacts, MultiArmFacts)
+FACT_TYPES = (NormalFacts, BinaryFacts, SurvivalFacts, ClusterFacts, ClusterBinaryFacts, MultiArmFacts)

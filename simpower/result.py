@@ -133,7 +133,9 @@ class RunResult:
         a = self.analytic.get(name)
         s["analytic_power"] = a
         if a is not None and s["n_ok"] > 0:
-            exact = bool(getattr(self.scenario.analyses[name], "analytic_exact", True))
+            an = self.scenario.analyses[name]
+            exact = bool(an.analytic_exact_for(self.scenario.process) if hasattr(an, "analytic_exact_for")
+                         else getattr(an, "analytic_exact", True))
             s["analytic_exact"] = exact
             # distance in MCSE units, with the MCSE at the analytic value (finite at p = 0 or 1)
             m = math.sqrt(max(a * (1 - a), 1e-12) / s["n_ok"])

@@ -53,6 +53,13 @@ PROCESSES = {
     "trial/clusters": {"design": {"type": "clusters", "clusters": 4, "cluster_size": 6, "cluster_size_cv": 0.4,
                                   "icc": 0.05}, "outcome": {"type": "lognormal", "median": 1.0, "cv": 0.5},
                        "effect": 0.3, "missing": {"type": "mcar", "rate": 0.2}},
+    "trial/binary": {"design": {"type": "clusters", "clusters": 4, "cluster_size": 6, "cluster_size_cv": 0.4,
+                                "icc": 0.05}, "outcome": {"type": "binary", "p0": 0.3, "risk_ratio": 1.5,
+                                                          "effect_scale": "marginal", "icc_scale": "proportion"},
+                     "missing": {"type": "mcar", "rate": 0.2}},
+    "trial/count": {"design": {"type": "clusters", "clusters": 4, "cluster_size": 5, "icc": 0.1},
+                    "outcome": {"type": "count", "rate0": 2.0, "rate_ratio": 1.5, "dispersion": 2.0,
+                                "exposure_cv": 0.3}},
     "two_arm": {"n": 10, "effect": 0.5, "baseline_corr": 0.5},
     "two_arm/lognormal": {"n": 10, "outcome": {"type": "lognormal", "median": 1.0, "cv": 0.5}, "effect": 1.3,
                           "effect_type": "ratio", "missing": {"type": "mcar", "rate": 0.2}},
@@ -72,6 +79,9 @@ PAIRS = [
     ({"type": "chi_square"}, BINARY),
     ({"type": "cluster_means_t"}, CLUSTERS),
     ({"type": "cluster_means_t", "weights": "size"}, ("cluster_trial", {**CLUSTERS[1], "cluster_size_cv": 0.5})),
+    ({"type": "cluster_means_t", "weights": "size"}, ("trial", {"design": {
+        "type": "clusters", "clusters": 5, "cluster_size": 8, "cluster_size_cv": 0.5, "icc": 0.05},
+        "outcome": {"type": "binary", "p0": 0.3, "odds_ratio": 2.0}})),
     ({"type": "cox"}, SURVIVAL),
     ({"type": "final_visit_t"}, ("repeated_measures", {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5})),
     ({"type": "fisher_exact"}, BINARY),
@@ -119,6 +129,8 @@ NESTED = {
     ("outcome", "scipy"): {"dist": "gamma", "args": [2.0], "kwds": {"scale": 3.0}},
     ("outcome", "skew_normal"): {"skewness": 0.5},
     ("outcome", "student_t"): {"df": 5.0},
+    ("glm_outcome", "binary"): {"p0": 0.3, "odds_ratio": 2.0, "icc_scale": "proportion"},
+    ("glm_outcome", "count"): {"rate0": 2.0, "rate_ratio": 0.8, "dispersion": 1.5},
     ("missingness", "mar"): {"rate": 0.2},
     ("missingness", "mcar"): {"rate": 0.2},
     ("missingness", "mnar"): {"rate": 0.2},
@@ -156,7 +168,7 @@ def test_every_registered_component_is_covered():
     paired = {p[0]["type"] for p in PAIRS}
     assert paired.isdisjoint(NO_PROCESS)
     assert paired | set(NO_PROCESS) == set(registry.names("analysis"))
-    for kind in ("outcome", "missingness"):
+    for kind in ("outcome", "glm_outcome", "missingness"):
         assert {name for k, name in NESTED if k == kind} == set(registry.names(kind))
 
 

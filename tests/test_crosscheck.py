@@ -42,7 +42,7 @@ from scipy import integrate, stats
 
 import simpower as sp
 from simpower import analytic, crosscheck
-from simpower.facts import FACT_TYPES, BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
+from simpower.facts import FACT_TYPES, BinaryFacts, ClusterBinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
 from simpower.processes.base import Batch, Process
 from simpower.registry import build
 
@@ -194,6 +194,31 @@ def _cases():
                           "design": {"type": "clusters", "clusters": k, "cluster_size": m, "icc": icc}})
     out.append(Case("cluster_means_t trial", build("analysis", {"type": "cluster_means_t", "weights": "size"}), p,
                     ("cluster_means_t", ClusterFacts), direct_c, lambda: ref_c))
+    # a binary outcome in clusters: the two-proportion approximation (Fleiss, Levin & Paik 2003, ch. 4) at
+    # k m / DE per arm, DE = 1 + ((1 + cv^2) m - 1) ICC (Eldridge, Ashby & Kerry 2006; cv = 0: Donner & Klar
+    # 2000), ICC of the 0/1 outcomes: stated on that scale here, and a marginal risk ratio, so p1 = 1.6 p0
+    kb, mb, cvb, iccb, p0b = 12, 15, 0.5, 0.04, 0.2
+    for weights, size_cv in (("size", cvb), ("equal", 0.0)):
+        p = build("process", {"type": "trial", "design": {"type": "clusters", "clusters": kb, "cluster_size": mb,
+                                                          "cluster_size_cv": size_cv, "icc": iccb},
+                              "outcome": {"type": "binary", "p0": p0b, "risk_ratio": 1.6, "effect_scale": "marginal",
+                                          "icc_scale": "proportion"}})
+        de = 1 + ((1 + size_cv**2) * mb - 1) * iccb
+        out.append(Case(f"cluster_means_t binary, {weights} weights",
+                        build("analysis", {"type": "cluster_means_t", "weights": weights}), p,
+                        ("cluster_means_t", ClusterBinaryFacts),
+                        lambda f, al, de=de: analytic.prop2_power(f.p0, f.p1, f.clusters * f.cluster_size / de,
+                                                                  alpha=al),
+                        lambda de=de: fleiss_power(p0b, 1.6 * p0b, kb * mb / de, 1.0, ALPHA, "two-sided"), tol=1e-8))
+    de = 1 + ((1 + cvb**2) * mb - 1) * iccb
+    p = build("process", {"type": "trial", "design": {"type": "clusters", "clusters": kb, "cluster_size": mb,
+                                                      "cluster_size_cv": cvb, "icc": iccb},
+                          "outcome": {"type": "binary", "p0": p0b, "risk_ratio": 1.6, "effect_scale": "marginal",
+                                      "icc_scale": "proportion"}})
+    out.append(Case("gee binary", build("analysis", {"type": "gee"}), p, ("gee", ClusterBinaryFacts),
+                    lambda f, al, de=de: analytic.prop2_power(f.p0, f.p1, f.clusters * f.cluster_size / de,
+                                                              alpha=al),
+                    lambda de=de: fleiss_power(p0b, 1.6 * p0b, kb * mb / de, 1.0, ALPHA, "two-sided"), tol=1e-8))
     # Dunnett with one treatment arm is Student's t (Dunnett 1955): noncentral t, df 2n - 2
     p = sp.MultiArm(effects=[0.0, 0.8], n=15)
     out.append(Case("dunnett, one comparison", build("analysis", {"type": "dunnett"}), p, ("dunnett", MultiArmFacts),
@@ -255,12 +280,19 @@ def test_entry_gives_its_closed_form(case):
     # the scenario reports the same number, and the table's exactness flag
     sc = sp.Scenario(case.process, case.analysis, alpha=ALPHA)
     assert sc.analytic_power()[sc.primary] == got
-    assert case.analysis.analytic_exact is crosscheck.TABLE[case.key].is_exact(case.analysis)
+    assert case.analysis.analytic_exact_for(case.process) is crosscheck.TABLE[case.key].is_exact(case.analysis)
 
 
 def test_exactness_follows_the_table():
     # exact: noncentral t and z; approximations: Welch-Satterthwaite, normal approximation, Schoenfeld
-    assert sp.TTest().analytic_exact and sp.PairedT().analytic_exact and sp.ClusterMeansT().analytic_exact
+    assert sp.TTest().analytic_exact and sp.PairedT().analytic_exact
+    # per process: the cluster-means t is exact for normal outcomes in equal clusters, approximate for binary ones
+    normal = sp.ClusterTrial(clusters=5, cluster_size=4, icc=0.1, effect=0.5)
+    binary = build("process", {"type": "trial", "design": {"type": "clusters", "clusters": 5, "cluster_size": 4,
+                                                           "icc": 0.1}, "outcome": {"type": "binary", "p0": 0.3,
+                                                                                    "odds_ratio": 2.0}})
+    assert sp.ClusterMeansT().analytic_exact_for(normal) and not sp.ClusterMeansT().analytic_exact_for(binary)
+    assert not sp.ClusterMeansT().analytic_exact  # without a process: all its entries
     assert not (sp.WelchT().analytic_exact or sp.TwoProportions().analytic_exact or sp.LogRank().analytic_exact)
     assert sp.TOST(margin=1.0, equal_var=True).analytic_exact and not sp.TOST(margin=1.0).analytic_exact
     assert not sp.NonInferiority(margin=1.0).analytic_exact

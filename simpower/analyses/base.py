@@ -335,6 +335,14 @@ class Analysis(Component):
         """
         return crosscheck.is_exact(self)
 
+    def analytic_exact_for(self, process) -> bool:
+        """:attr:`analytic_exact` for the closed form ``process`` gets (an analysis may have an exact
+        entry for some facts and an approximation for others, e.g. ``cluster_means_t``); a class that
+        sets ``analytic_exact`` as an attribute keeps it."""
+        if not isinstance(getattr(type(self), "analytic_exact", None), property):
+            return bool(self.analytic_exact)
+        return crosscheck.is_exact(self, process)
+
     def analytic_power(self, process, alpha: float) -> float | None:
         """Closed-form power of this analysis for ``process``, where the analytic core covers it.
 

@@ -86,8 +86,12 @@ class ClusterMeansT(Analysis):
         and outcomes normal. "size": difference of size-weighted means (the
         individual-level mean difference), each arm's variance estimated by
         ``k/(k-1) * sum_c (m_c / M)^2 (mean_c - mean)^2`` over its k clusters
-        (m_c observed members, M their total; a sandwich estimator), df =
-        clusters - 2. With equal sizes both choices give the same test.
+        (m_c observed members, M their total): the cluster-robust sandwich
+        variance of the arm mean (Liang & Zeger 1986) with the k/(k-1)
+        small-sample factor ("CR1", Cameron & Miller 2015), df = clusters - 2.
+        With equal sizes both choices give the same test. On 0/1 outcomes the
+        cluster means are cluster proportions and the estimate is the risk
+        difference.
     alternative : {"two-sided", "greater", "less"}
         H1 "greater": arm 1 above arm 0.
     ci_level : float in (0, 1)

@@ -1,4 +1,4 @@
-"""A composed process, ``trial``: a design times a continuous outcome times a missingness mechanism.
+"""A composed process, ``trial``: a design times an outcome times a missingness mechanism.
 
 The three layers are separate components, combined in one process::
 
@@ -31,6 +31,14 @@ Designs (kind ``design``):
 The effect (``effect``, ``effect_type``, ``sd_ratio``) acts on the treatment
 rows as in ``two_arm``; then the missingness step
 (:func:`~simpower.processes.design.apply_missing`) runs once.
+
+The outcome may instead be a layer with a linear predictor
+(:mod:`simpower.processes.glm_outcomes`: ``binary``, logit link; ``count``,
+log link), which carries its own effect (``outcome.odds_ratio``,
+``outcome.rate_ratio``...). Under ``clusters`` the cluster intercept then acts
+on the link scale, eta = beta0 + beta1 arm + sigma_b u_c, with sigma_b from the
+design's ``icc`` on the layer's ``icc_scale``; under ``arms`` the layer draws
+exactly what ``binary_two_arm`` / ``count_two_arm`` draw with the same fields.
 """
 
 from __future__ import annotations
@@ -41,12 +49,14 @@ import numpy as np
 
 from .._validation import Choice, Int, Real
 from ..components import Component, Nested
-from ..errors import ParameterError
-from ..facts import ClusterFacts, NormalFacts
+from ..errors import ParameterError, UnknownNameError, nearest
+from .. import registry
+from ..facts import BinaryFacts, ClusterBinaryFacts, ClusterFacts, NormalFacts
 from .arms import EFFECT_TYPE, POSITIVE, _check_missing, _check_outcome_for, _describe_effect, _effect_values
 from .base import Batch, Process
 from .clusters import _within_cluster_arms, draw_clusters, size_law
 from .design import ARM_DEFAULTS, ARM_PARAMS, TwoArms, apply_missing
+from .glm_outcomes import BinaryOutcome, GLMOutcome, Linear, proportion_icc
 from .outcomes import Normal
 
 
@@ -66,7 +76,10 @@ class Design(Component):
     #: design columns a MAR mechanism may use
     columns: frozenset[str] = frozenset({"arm"})
 
-    def draw(self, rng: np.random.Generator, size: int) -> dict:
+    def draw(self, rng: np.random.Generator, size: int, latent: bool = True) -> dict:
+        """The layout of ``size`` replicates; ``latent = False``: no normal scores ``z`` (an outcome layer
+        with a linear predictor draws its own), only the cluster effects ``u`` (standard normal, one
+        per cluster) and ``cluster``."""
         raise NotImplementedError
 
 
@@ -80,7 +93,7 @@ class Arms(TwoArms, Design):
     def _check(self):
         self._check_arms()
 
-    def draw(self, rng, size):
+    def draw(self, rng, size, latent=True):
         arm = self.arm_labels()
         return {"z": None, "width": self.total, "arm": arm, "shared": {"arm": arm}, "per_rep": {},
                 "present": None, "info": self.arm_info()}
@@ -119,13 +132,17 @@ class Clusters(Design):
                                  f"clusters); got {self.cluster_size:g}.")
         size_law(self.cluster_size, self.cluster_size_cv)  # raises for an unreachable CV
 
-    def draw(self, rng, size):
+    def draw(self, rng, size, latent=True):
         n_clusters = 2 * self.clusters
         sizes, u, cluster, present, start = draw_clusters(rng, n_clusters, self.cluster_size, self.cluster_size_cv,
                                                           size)
         width = cluster.shape[-1]
-        z = math.sqrt(1.0 - self.icc) * rng.standard_normal((size, width))
-        z += math.sqrt(self.icc) * (u[:, cluster] if cluster.ndim == 1 else np.take_along_axis(u, cluster, axis=1))
+        u_rows = u[:, cluster] if cluster.ndim == 1 else np.take_along_axis(u, cluster, axis=1)
+        if latent:
+            z = math.sqrt(1.0 - self.icc) * rng.standard_normal((size, width))
+            z += math.sqrt(self.icc) * u_rows
+        else:
+            z = None
         if self.randomise == "cluster":
             arm = (cluster >= self.clusters).astype(np.int8)
         else:
@@ -141,68 +158,139 @@ class Clusters(Design):
         info = {"clusters_per_arm": self.clusters, "n_clusters": n_clusters, "randomise": self.randomise,
                 "equal_sizes": self.cluster_size_cv == 0}
         return {"z": z, "width": width, "arm": arm, "shared": shared, "per_rep": per_rep, "present": present,
-                "info": info, "covariates": {"arm": arm, "cluster": cluster}}
+                "info": info, "covariates": {"arm": arm, "cluster": cluster}, "u_rows": u_rows}
 
-    def describe(self):
+    def describe(self, scale: str = "of the normal scores"):
         sizes = (f"{int(self.cluster_size)} members each" if self.cluster_size_cv == 0 else
                  f"a mean of {self.cluster_size:g} members (CV {self.cluster_size_cv:g})")
         design = (f"two arms of {self.clusters} clusters of {sizes}, randomised by cluster"
                   if self.randomise == "cluster" else
                   f"{2 * self.clusters} clusters of {sizes}, individuals randomised 1:1 within each cluster")
-        return f"{design}; intracluster correlation {self.icc:g} of the normal scores (a random cluster intercept)"
+        return f"{design}; intracluster correlation {self.icc:g} {scale} (a random cluster intercept)"
+
+
+class OutcomeOrLayer(Nested):
+    """The ``outcome`` of ``trial``: an outcome distribution, or an outcome layer with a linear predictor
+    (kind ``glm_outcome``: ``binary``, ``count``)."""
+
+    def __init__(self):
+        super().__init__("outcome")
+
+    def describe(self) -> str:
+        return "an outcome (object or {type = ...} table), or a `binary` / `count` outcome layer"
+
+    def clean(self, name, value):
+        if isinstance(value, GLMOutcome):
+            return value
+        if isinstance(value, dict):
+            kind = value.get("type")
+            layers, outcomes = registry.names(GLMOutcome.kind), registry.names("outcome")
+            if kind in layers:
+                return registry.build(GLMOutcome.kind, value, where=name)
+            if isinstance(kind, str) and kind not in outcomes and not registry.is_reference(kind):
+                raise UnknownNameError(f"`{name}.type`: unknown outcome {kind!r}.{nearest(kind, outcomes + layers)}")
+        return super().clean(name, value)
 
 
 class Trial(Process):
-    """A design (``arms``, ``clusters``) times a continuous outcome times an optional missingness.
+    """A design (``arms``, ``clusters``) times an outcome times an optional missingness.
 
     Parameters
     ----------
     design : design
         ``{type = "arms", ...}`` or ``{type = "clusters", ...}`` (see the module).
-    outcome : outcome, default normal(0, 1)
-        The control-arm distribution of an outcome.
+    outcome : outcome or outcome layer, default normal(0, 1)
+        The control-arm distribution of a continuous outcome, or a ``binary``
+        / ``count`` layer with a linear predictor (which carries its own
+        effect; see :mod:`simpower.processes.glm_outcomes`).
     effect, effect_type, sd_ratio
-        The treatment effect, as for ``two_arm``.
+        The treatment effect on a continuous outcome, as for ``two_arm``
+        (left at their defaults with a layer).
     missing : missingness, optional
         Applied once after the outcomes; a MAR mechanism may use the design's
-        columns (``arm``; ``cluster`` for clusters).
+        columns (``arm``; ``cluster`` for clusters; ``exposure`` for counts).
 
     Notes
     -----
     ``true_effect()`` is the treatment minus control difference in mean
-    outcome, as for ``two_arm``. The required-n search varies the design's
-    size (``design.n`` or ``design.clusters``).
+    outcome, as for ``two_arm``; with a layer, the layer's estimand (its
+    ``estimand_label``). The required-n search varies the design's size
+    (``design.n`` or ``design.clusters``).
     """
 
     name = "trial"
-    params = {"design": Nested("design"), "outcome": Nested("outcome"), "effect": Real(),
+    params = {"design": Nested("design"), "outcome": OutcomeOrLayer(), "effect": Real(),
               "effect_type": EFFECT_TYPE, "sd_ratio": POSITIVE, "missing": Nested("missingness", optional=True)}
     defaults = {"outcome": Normal(), "effect": 0.0, "effect_type": "shift", "sd_ratio": 1.0, "missing": None}
 
+    def __setstate__(self, state):
+        super().__setstate__(state)
+        self._check()
+
     def _check(self):
-        if self.effect_type == "ratio" and not self.effect > 0:
-            raise ParameterError(f"`effect` must be > 0 when `effect_type` = 'ratio'; got {self.effect:g}.")
-        _check_outcome_for(self.outcome, self.effect_type, self.sd_ratio != 1)
-        if not isinstance(self.design, Arms) and not hasattr(self.outcome, "from_normal"):
-            raise ParameterError(f"`outcome` needs a quantile function (from_normal) for a {self.design.name} "
-                                 f"design; {type(self.outcome).__name__} has none.")
-        _check_missing(self.missing, set(self.design.columns), self.name)
+        columns = set(self.design.columns)
+        if isinstance(self.outcome, GLMOutcome):
+            for field, default in (("effect", 0.0), ("effect_type", "shift"), ("sd_ratio", 1.0)):
+                if self._p[field] != default:
+                    raise ParameterError(f"`{field}` does not apply to a {self.outcome.name} outcome, which carries "
+                                         f"its effect (`outcome.{self.outcome.effect_param}`): remove `{field}`.")
+            sigma = self.outcome.sigma_for(self.design.icc) if isinstance(self.design, Clusters) else 0.0
+            object.__setattr__(self, "_lin", self.outcome.solve(sigma))
+            columns |= set(self.outcome.columns)
+        else:
+            if self.effect_type == "ratio" and not self.effect > 0:
+                raise ParameterError(f"`effect` must be > 0 when `effect_type` = 'ratio'; got {self.effect:g}.")
+            _check_outcome_for(self.outcome, self.effect_type, self.sd_ratio != 1)
+            if not isinstance(self.design, Arms) and not hasattr(self.outcome, "from_normal"):
+                raise ParameterError(f"`outcome` needs a quantile function (from_normal) for a {self.design.name} "
+                                     f"design; {type(self.outcome).__name__} has none.")
+        _check_missing(self.missing, columns, self.name)
+
+    @property
+    def layered(self) -> bool:
+        """Whether the outcome is a layer with a linear predictor (``binary``, ``count``)."""
+        return isinstance(self.outcome, GLMOutcome)
+
+    @property
+    def linear(self) -> Linear | None:
+        """The solved linear predictor of a layer (beta0, beta1, cluster SD, marginal means), else None."""
+        return self._lin if self.layered else None
 
     @property
     def size_param(self) -> str:  # type: ignore[override]
         return f"design.{self.design.size_param}"
 
+    @property
+    def effect_param(self) -> str:  # type: ignore[override]
+        return f"outcome.{self.outcome.effect_param}" if self.layered else "effect"
+
+    @property
+    def estimand_label(self) -> str:  # type: ignore[override]
+        return self.outcome.estimand_label if self.layered else "mean difference"
+
     def null_value(self):
+        if self.layered:
+            return self.outcome.null_value()
         return 1.0 if self.effect_type == "ratio" else 0.0
 
     def true_effect(self):
+        if self.layered:
+            return float(self.outcome.true_effect(self._lin))
         if self.effect_type == "shift":
             return float(self.effect)
         if self.effect_type == "d":
             return float(self.effect * self.outcome.sd)
         return float(self.outcome.mean * (self.effect - 1.0))
 
+    def true_values(self) -> dict[str, float]:
+        """A layer's true values on every scale (e.g. marginal and conditional log odds ratios), by estimand."""
+        if not self.layered:
+            return {"mean_difference": self.true_effect()}
+        return self.outcome.true_values(self._lin)
+
     def draw_batch(self, rng, size):
+        if self.layered:
+            return self._draw_layer(rng, size)
         lay = self.design.draw(rng, size)
         if lay["z"] is None:
             y = np.asarray(self.outcome.sample(rng, (size, lay["width"])), dtype=float)
@@ -221,16 +309,52 @@ class Trial(Process):
                       present=lay["present"])
         return Batch(size, per_rep, lay["shared"], info)
 
+    def _draw_layer(self, rng, size):
+        """A layer's outcomes from the linear predictor; with ``arms`` the draws of ``binary_two_arm`` /
+        ``count_two_arm`` (same fields, same numbers)."""
+        lay = self.design.draw(rng, size, latent=False)
+        lin = self._lin
+        u_rows = lay.get("u_rows") if lin.sigma > 0 else None
+        arm = lay["arm"]
+        y, shared, per_rep, cov = self.outcome.draw(rng, lin, arm, u_rows, size, lay["width"])
+        per_rep = {**per_rep, "y": y, **lay["per_rep"]}
+        shared = {**lay["shared"], **shared}
+        info = dict(lay["info"])
+        covariates = {**lay.get("covariates", {"arm": arm}), **cov}
+        apply_missing(self.missing, rng, y, covariates, per_rep, info, present=lay["present"])
+        return Batch(size, per_rep, shared, info)
+
     def estimand_aliases(self):
+        if self.layered:
+            return self.outcome.estimand_aliases(self._lin)
         pure_shift = (isinstance(self.design, Arms) and self.effect_type in ("shift", "d") and self.sd_ratio == 1
                       and self.missing is None)
         return {"location shift"} if pure_shift else set()
 
+    def proportion_icc(self) -> float | None:
+        """A binary layer's ICC of the 0/1 outcomes in the control arm (the proportion scale), else None."""
+        if not isinstance(self.outcome, BinaryOutcome):
+            return None
+        return proportion_icc(self._lin.sigma, self.outcome.p0)
+
     def facts(self):
-        """Normal outcomes without missing data: :class:`NormalFacts` (arms) or :class:`ClusterFacts` (clusters)."""
-        if not isinstance(self.outcome, Normal) or self.missing is not None:
+        """Normal outcomes without missing data: :class:`NormalFacts` (arms) or :class:`ClusterFacts` (clusters);
+        a binary layer without missing data: :class:`BinaryFacts` (arms) or :class:`ClusterBinaryFacts`."""
+        if self.missing is not None:
             return ()
-        d, sd0 = self.design, self.outcome.sd
+        d = self.design
+        if isinstance(self.outcome, BinaryOutcome):
+            lin = self._lin
+            if isinstance(d, Arms):
+                return (BinaryFacts(p0=lin.mean0, p1=lin.mean1, n=d.n0, ratio=d.n1 / d.n0),)
+            if isinstance(d, Clusters):
+                return (ClusterBinaryFacts(p0=lin.mean0, p1=lin.mean1, clusters=d.clusters,
+                                           cluster_size=d.cluster_size, cluster_size_cv=d.cluster_size_cv,
+                                           icc=self.proportion_icc(), randomise=d.randomise),)
+            return ()
+        if not isinstance(self.outcome, Normal):
+            return ()
+        sd0 = self.outcome.sd
         if isinstance(d, Arms):
             return (NormalFacts("two-sample", effect=self.true_effect(), n=d.n0, sd0=sd0, sd1=sd0 * self.sd_ratio,
                                 ratio=d.n1 / d.n0),)
@@ -241,6 +365,15 @@ class Trial(Process):
         return ()
 
     def describe(self):
+        if self.layered:
+            lin = self._lin
+            design = (self.design.describe(f"on the {self.outcome.icc_scale} scale")
+                      if isinstance(self.design, Clusters) else self.design.describe())
+            parts = [design, f"outcome: {self.outcome.describe(lin)}"]
+            if self.missing is not None:
+                parts.append(self.missing.describe())
+            parts.append(f"estimand: {self.estimand_label} = {self.true_effect():.4g}")
+            return "; ".join(parts)
         parts = [self.design.describe(), f"outcome {self.outcome.describe()}",
                  _describe_effect(self.effect, self.effect_type, self.outcome)]
         if self.sd_ratio != 1:
