@@ -28,7 +28,7 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 from . import analytic
-from .facts import BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
+from .facts import BinaryFacts, ClusterFacts, CrossoverFacts, MultiArmFacts, NormalFacts, SurvivalFacts
 
 PowerFn = Callable[[Any, Any, float], "float | None"]
 
@@ -160,6 +160,27 @@ def _anova_f(a, f: MultiArmFacts, alpha):
     return analytic.anova_power(cohen, f.sizes[0], len(f.sizes), alpha, allocation=list(f.sizes))
 
 
+def _crossover_t(a, f: CrossoverFacts, alpha):
+    """Noncentral t on the period differences; a carryover shifts the estimate's mean by -carryover/2."""
+    if a.scale != f.scale:
+        return None
+    return analytic.crossover_power(f.effect - f.carryover / 2, f.n_ab, sd_within=f.sd_within, alpha=alpha,
+                                    alternative=a.alternative, ratio=f.n_ba / f.n_ab)
+
+
+def _crossover_tost(a, f: CrossoverFacts, alpha):
+    if a.scale != f.scale:
+        return None
+    shift = f.effect - f.carryover / 2
+    if f.scale == "log":
+        low, high = a.bounds
+        return analytic.crossover_tost_power(math.exp(shift), f.n_ab, cv_within=math.sqrt(math.expm1(f.sd_within**2)),
+                                             low=low, high=high, alpha=alpha, ratio=f.n_ba / f.n_ab)
+    low, high = a.bounds
+    return analytic.tost_power(shift, f.n_ab, low=low, high=high, sd=f.sd_within / math.sqrt(2.0), alpha=alpha,
+                               design="two-sample", ratio=f.n_ba / f.n_ab)
+
+
 def _pooled(a) -> bool:
     return bool(a.equal_var)  # the Welch variant's closed form is an approximation
 
@@ -184,6 +205,10 @@ _ENTRIES = (
     ClosedForm("dunnett", MultiArmFacts, _dunnett, True,
                "many-to-one multivariate noncentral t (Dunnett 1955; Dunnett & Tamhane 1991)"),
     ClosedForm("anova_f", MultiArmFacts, _anova_f, True, "noncentral F with Cohen's f (Cohen 1988, ch. 8)"),
+    ClosedForm("crossover_t", CrossoverFacts, _crossover_t, True,
+               "noncentral t on the period differences (Senn 2002, ch. 3; Jones & Kenward 2003, ch. 2)"),
+    ClosedForm("crossover_tost", CrossoverFacts, _crossover_tost, True,
+               "TOST power integral on the period differences (Schuirmann 1987; Phillips 1990)"),
 )
 
 #: (analysis name, fact type) -> closed form
