@@ -83,6 +83,8 @@ class Crossover(TwoArms, Process):
     """
 
     name = "crossover"
+    #: what the two "arms" of the sizes are, for the answer block
+    arm_names = ("sequence AB", "sequence BA")
     aliases = {"dropout": "dropout_rate"}
     params = arm_params({
         "n": Int(low=2),
