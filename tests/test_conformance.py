@@ -39,6 +39,8 @@ PROCESSES = {
                                "effect": 0.5},
     "crossover": {"n": 6, "ratio": 1.5, "effect": 0.5, "period_effect": 0.2, "carryover": 0.1},
     "crossover/log": {"n": 6, "scale": "log", "cv_within": 0.25, "effect": 0.95, "dropout": 0.2},
+    "crossover/missing": {"n": 6, "effect": 0.5, "dropout": 0.2, "missing": {"type": "mar", "on": "period",
+                                                                          "rate": 0.2}},
     "count_two_arm": {"n": 15, "rate0": 2.0, "rate_ratio": 1.5, "dispersion": 0.5},
     "multi_arm": {"effects": [0.0, 0.3, 0.6], "n": 8},
     "normal_one_sample": {"n": 10, "effect": 0.4},

@@ -29,9 +29,10 @@ import math
 import numpy as np
 
 from .._validation import Choice, Int, Real
+from ..components import Nested
 from ..errors import ParameterError
 from ..facts import CrossoverFacts
-from .base import Batch, Process
+from .base import Batch, Process, check_missing_columns
 from .design import TwoArms, apply_missing, arm_defaults, arm_params
 
 POSITIVE = Real(0.0, low_open=True, optional=True)
@@ -73,6 +74,9 @@ class Crossover(TwoArms, Process):
         (sequence BA): added ("additive") or a factor ("log"); default none.
     dropout_rate : float in [0, 1), default 0
         Probability that a subject misses period 2 (MCAR). Also accepted as ``dropout``.
+    missing : missingness, optional
+        A further mechanism (``mcar``, ``mar``, ``mnar``) applied after dropout to every
+        outcome; its ``mask`` gets ``subject``, ``sequence``, ``period`` and ``treat``.
 
     Notes
     -----
@@ -97,12 +101,15 @@ class Crossover(TwoArms, Process):
         "period_effect": OPTIONAL,
         "carryover": OPTIONAL,
         "dropout_rate": Real(0.0, 1.0, high_open=True),
+        "missing": Nested("missingness", optional=True),
     })
     defaults = arm_defaults({"scale": "additive", "effect": None, "sd": None, "cv": None, "cv_within": None,
-                             "corr": 0.5, "period_effect": None, "carryover": None, "dropout_rate": 0.0})
+                             "corr": 0.5, "period_effect": None, "carryover": None, "dropout_rate": 0.0,
+                             "missing": None})
 
     def _check(self):
         self._check_arms()
+        check_missing_columns(self.missing, {"subject", "sequence", "period", "treat"}, self.name)
         log = self.scale == "log"
         if log:
             if self.sd is not None:
@@ -174,10 +181,11 @@ class Crossover(TwoArms, Process):
             x[:, total + self.n0:] += lam           # period 2 of sequence BA
         y = np.exp(x) if self.scale == "log" else x
         per_rep, info = {"y": y}, {**self.arm_info(), "periods": 2}
+        observed = None
         if self.dropout_rate > 0:
             stays = rng.random((size, total)) >= self.dropout_rate
             observed = np.concatenate([np.ones((size, total), bool), stays], axis=1)
-            apply_missing(None, rng, y, {}, per_rep, info, observed=observed)
+        apply_missing(self.missing, rng, y, shared, per_rep, info, observed=observed)
         return Batch(size, per_rep, shared, info)
 
     # -- words and facts ---------------------------------------------------------------------
@@ -199,10 +207,12 @@ class Crossover(TwoArms, Process):
             parts.append(f"carryover of B into period 2 ({unit}) {self.carryover:g}")
         if self.dropout_rate > 0:
             parts.append(f"{self.dropout_rate:.1%} of subjects drop out after period 1 (completely at random)")
+        if self.missing is not None:
+            parts.append(f"further missing outcomes: {self.missing.describe()}")
         return "; ".join(parts)
 
     def facts(self):
-        if self.dropout_rate > 0:
+        if self.dropout_rate > 0 or self.missing is not None:
             return ()
         return (CrossoverFacts(effect=self._on_scale("effect"), n_ab=self.n0, n_ba=self.n1,
                                sd_within=self.sd_within, carryover=self._on_scale("carryover"), scale=self.scale),)
