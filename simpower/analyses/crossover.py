@@ -314,13 +314,6 @@ class _Sums:
             self.by_m[k] = (np.einsum("rn,rni,rnj->rij", g, self.u, self.u), np.einsum("rn,rni->ri", g * s, self.u),
                             (g * s * s).sum(1), g.sum(1))
 
-    def subset(self, sel):
-        out = object.__new__(_Sums)
-        for k in ("shift", "m", "u", "S", "Ssum", "t", "yy", "n_obs"):
-            setattr(out, k, getattr(self, k)[sel])
-        out.by_m = {k: tuple(v[sel] for v in vals) for k, vals in self.by_m.items()}
-        return out
-
 
 def _criterion(gamma, st: _Sums):
     """REML ``-2 log L`` with sigma_e^2 profiled out (up to a constant), and the GLS fit.
