@@ -136,8 +136,8 @@ def recruitment(process) -> Recruitment:
         sizes = getattr(p, "sizes", None)
         if isinstance(sizes, tuple) and all(isinstance(s, (int,)) for s in sizes) and len(sizes) >= 2:
             kw["arms"] = tuple(int(s) for s in sizes)
-            kw["arm_names"] = ("control", "treatment") if len(sizes) == 2 else tuple(f"arm {i + 1}"
-                                                                                 for i in range(len(sizes)))
+            kw["arm_names"] = getattr(p, "arm_names", None) or (
+                ("control", "treatment") if len(sizes) == 2 else tuple(f"arm {i + 1}" for i in range(len(sizes))))
             kw["participants"] = float(sum(sizes))
             break
     if "participants" not in kw:

@@ -12,6 +12,8 @@ a *layout*, a typed view computed from it on first use and cached on the batch:
 * ``clustered`` (:class:`ClusteredLayout`): ``y``, ``arm``, ``cluster``;
 * ``longitudinal`` (:class:`LongitudinalLayout`): ``y``, ``arm``, ``visit`` (and ``subject``);
 * ``survival`` (:class:`SurvivalLayout`): ``time``, ``event``, ``arm`` with labels in {0, 1}.
+* ``crossover`` (:class:`CrossoverLayout`): a two-period crossover, period 1 in columns ``[0, n)`` and
+  period 2 in ``[n, 2n)`` with the same ``subject`` ids, and ``sequence``, ``period``, ``treat``.
 
 A batch may have several layouts at once (paired data are also two-arm data,
 a cluster trial's table is also a two-arm table). Every layout carries the
@@ -34,7 +36,7 @@ from typing import Any
 
 import numpy as np
 
-LAYOUTS = ("table", "one_sample", "two_arm", "paired", "clustered", "longitudinal", "survival")
+LAYOUTS = ("table", "one_sample", "two_arm", "paired", "clustered", "longitudinal", "survival", "crossover")
 
 
 @dataclass
@@ -331,6 +333,39 @@ class SurvivalLayout(Layout):
         return self.y
 
 
+@dataclass(frozen=True, eq=False)
+class CrossoverLayout(Layout):
+    """Two-period crossover: period 1 in columns ``[0, n)``, period 2 in ``[n, 2n)``, aligned by subject.
+
+    Column j and n + j hold the same ``subject``; ``sequence`` (n,) is 0 for AB (treatment A,
+    then B) and 1 for BA; ``treat`` is 0 for A and 1 for B, so the treatment of a row is its
+    sequence in period 1 and the other one in period 2. ``y1``, ``y2`` (R, n) are views of the
+    two periods' outcomes.
+    """
+
+    kind = "crossover"
+
+    y1: np.ndarray = None
+    y2: np.ndarray = None
+    subject: np.ndarray = None
+    sequence: np.ndarray = None
+
+    @cached_property
+    def seen1(self) -> np.ndarray:
+        """(R, n) bool: the period-1 outcome is observed."""
+        return self.observed[:, : self.y1.shape[1]]
+
+    @cached_property
+    def seen2(self) -> np.ndarray:
+        """(R, n) bool: the period-2 outcome is observed."""
+        return self.observed[:, self.y1.shape[1]:]
+
+    @cached_property
+    def both(self) -> np.ndarray:
+        """(R, n) bool: both periods observed (a complete pair)."""
+        return self.seen1 & self.seen2
+
+
 # -- building them from a batch -------------------------------------------------------------
 def _base(batch: Batch, y) -> dict:
     return {"y": y, "present": batch.present, "missing": batch.missing, "per_rep": batch.per_rep,
@@ -403,5 +438,23 @@ def _survival(batch):
                           labels=labels)
 
 
+def _crossover(batch):
+    need = ("subject", "period", "sequence", "treat")
+    if "y" not in batch.per_rep or not all(k in batch.shared for k in need) or "arm" in batch:
+        return None
+    subject, period, sequence, treat = (np.asarray(batch.shared[k]) for k in need)
+    width = batch.per_rep["y"].shape[1]
+    n = width // 2
+    if width != 2 * n or n == 0 or subject.shape != (width,):
+        return None
+    if not (np.all(period[:n] == 1) and np.all(period[n:] == 2) and np.array_equal(subject[:n], subject[n:])
+            and np.array_equal(sequence[:n], sequence[n:]) and np.all((sequence == 0) | (sequence == 1))):
+        return None
+    if not np.array_equal(treat, np.where(period == 1, sequence, 1 - sequence)):
+        return None
+    y = batch.per_rep["y"]
+    return CrossoverLayout(**_base(batch, y), y1=y[:, :n], y2=y[:, n:], subject=subject[:n], sequence=sequence[:n])
+
+
 _BUILDERS = {"table": _table, "one_sample": _one_sample, "two_arm": _two_arm, "paired": _paired, "clustered": _clustered,
-             "longitudinal": _longitudinal, "survival": _survival}
+             "longitudinal": _longitudinal, "survival": _survival, "crossover": _crossover}

@@ -28,7 +28,8 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 from . import analytic
-from .facts import BinaryFacts, ClusterBinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
+from .facts import (BinaryFacts, ClusterBinaryFacts, ClusterFacts, CrossoverFacts, MultiArmFacts, NormalFacts,
+                    SurvivalFacts)
 
 PowerFn = Callable[[Any, Any, float], "float | None"]
 
@@ -189,18 +190,39 @@ def _posterior_normal(a, f: NormalFacts, alpha):
     """The normal rule with a known SD that is the process's (both arms): exact (``analytic.bayes``)."""
     if a.model != "normal" or a.sd is None or f.design != "two-sample" or f.sd is None or not math.isclose(f.sd, a.sd):
         return None
-    return analytic.normal_rule_power(f.effect, f.n, round(f.n * f.ratio), sd=a.sd, threshold=a.threshold, eta=a.eta,
-                             prior_mean=a.prior_mean, prior_sd=math.inf if a.prior_sd is None else a.prior_sd,
-                             direction=a.direction)
+    return analytic.normal_rule_power(f.effect, f.n, round(f.n * f.ratio), sd=a.sd, threshold=a.threshold,
+                                      eta=a.eta, prior_mean=a.prior_mean,
+                                      prior_sd=math.inf if a.prior_sd is None else a.prior_sd, direction=a.direction)
 
 
 def _posterior_binary(a, f: BinaryFacts, alpha):
     """The beta-binomial rule: exact, by enumeration of the outcome tables (``analytic.bayes``)."""
     if a.model != "beta_binomial":
         return None
-    return analytic.beta_binomial_rule_power(f.p0, f.p1, f.n, round(f.n * f.ratio), threshold=a.threshold, eta=a.eta,
-                                    prior0=(a.prior_a0, a.prior_b0), prior1=(a.prior_a1, a.prior_b1),
-                                    direction=a.direction)
+    return analytic.beta_binomial_rule_power(f.p0, f.p1, f.n, round(f.n * f.ratio), threshold=a.threshold,
+                                             eta=a.eta, prior0=(a.prior_a0, a.prior_b0),
+                                             prior1=(a.prior_a1, a.prior_b1), direction=a.direction)
+
+
+def _crossover_t(a, f: CrossoverFacts, alpha):
+    """Noncentral t on the period differences; a carryover shifts the estimate's mean by -carryover/2."""
+    if a.scale != f.scale:
+        return None
+    return analytic.crossover_power(f.effect - f.carryover / 2, f.n_ab, sd_within=f.sd_within, alpha=alpha,
+                                    alternative=a.alternative, ratio=f.n_ba / f.n_ab)
+
+
+def _crossover_tost(a, f: CrossoverFacts, alpha):
+    if a.scale != f.scale:
+        return None
+    shift = f.effect - f.carryover / 2
+    if f.scale == "log":
+        low, high = a.bounds
+        return analytic.crossover_tost_power(math.exp(shift), f.n_ab, cv_within=math.sqrt(math.expm1(f.sd_within**2)),
+                                             low=low, high=high, alpha=alpha, ratio=f.n_ba / f.n_ab)
+    low, high = a.bounds
+    return analytic.tost_power(shift, f.n_ab, low=low, high=high, sd=f.sd_within / math.sqrt(2.0), alpha=alpha,
+                               design="two-sample", ratio=f.n_ba / f.n_ab)
 
 
 def _pooled(a) -> bool:
@@ -235,6 +257,10 @@ _ENTRIES = (
                "conjugate normal update, rule d > c (Spiegelhalter, Abrams & Myles 2004, ch. 3)"),
     ClosedForm("posterior_probability", BinaryFacts, _posterior_binary, True,
                "beta-binomial rule, exact sum over the outcome tables"),
+    ClosedForm("crossover_t", CrossoverFacts, _crossover_t, True,
+               "noncentral t on the period differences (Senn 2002, ch. 3; Jones & Kenward 2003, ch. 2)"),
+    ClosedForm("crossover_tost", CrossoverFacts, _crossover_tost, True,
+               "TOST power integral on the period differences (Schuirmann 1987; Phillips 1990)"),
 )
 
 #: (analysis name, fact type) -> closed form

@@ -153,5 +153,26 @@ class MultiArmFacts:
     sd: float
 
 
+@dataclass(frozen=True)
+class CrossoverFacts:
+    """A two-period, two-sequence (AB/BA) crossover with normal outcomes on the analysis scale, complete.
+
+    ``n_ab`` and ``n_ba`` subjects in the two sequences; ``sd_within`` is the SD of the
+    within-subject error (a period difference has variance ``2 sd_within**2``); ``effect`` is
+    treatment B minus A and ``carryover`` the differential first-order carryover (of B minus
+    that of A) into period 2, both on the analysis scale: outcome units for ``scale``
+    "additive", the log of the outcome for "log" (where ``effect`` is the log ratio of
+    geometric means).
+    """
+
+    effect: float
+    n_ab: int
+    n_ba: int
+    sd_within: float
+    carryover: float = 0.0
+    scale: Literal["additive", "log"] = "additive"
+
+
 #: every fact type, for documentation and tests
-FACT_TYPES = (NormalFacts, BinaryFacts, SurvivalFacts, ClusterFacts, ClusterBinaryFacts, MultiArmFacts)
+FACT_TYPES = (NormalFacts, BinaryFacts, SurvivalFacts, ClusterFacts, ClusterBinaryFacts, MultiArmFacts,
+              CrossoverFacts)

@@ -37,6 +37,10 @@ PROCESSES = {
     "cluster_trial": {"clusters": 4, "cluster_size": 5, "icc": 0.05, "effect": 0.5},
     "cluster_trial/variable": {"clusters": 4, "cluster_size": 6, "cluster_size_cv": 0.5, "icc": 0.05,
                                "effect": 0.5},
+    "crossover": {"n": 6, "ratio": 1.5, "effect": 0.5, "period_effect": 0.2, "carryover": 0.1},
+    "crossover/log": {"n": 6, "scale": "log", "cv_within": 0.25, "effect": 0.95, "dropout": 0.2},
+    "crossover/missing": {"n": 6, "effect": 0.5, "dropout": 0.2, "missing": {"type": "mar", "on": "period",
+                                                                          "rate": 0.2}},
     "count_two_arm": {"n": 15, "rate0": 2.0, "rate_ratio": 1.5, "dispersion": 0.5},
     "multi_arm": {"effects": [0.0, 0.3, 0.6], "n": 8},
     "normal_one_sample": {"n": 10, "effect": 0.4},
@@ -71,6 +75,8 @@ CLUSTERS = ("cluster_trial", {"clusters": 4, "cluster_size": 5, "icc": 0.05, "ef
 SURVIVAL = ("survival_two_arm", {"n": 15, "median": 1.0, "hazard_ratio": 0.6, "follow_up": 2.0})
 COUNTS = ("count_two_arm", {"n": 15, "rate0": 2.0, "rate_ratio": 1.5, "dispersion": 0.5})
 PAIRED = ("normal_paired", {"n": 10, "effect": 0.4})
+CROSSOVER = ("crossover", {"n": 8, "ratio": 1.5, "effect": 0.5, "dropout": 0.25})
+CROSSOVER_LOG = ("crossover", {"n": 8, "scale": "log", "cv": 0.3, "effect": 0.95, "dropout": 0.25})
 
 # -- analysis configuration -> the process whose layout it analyses --------------------------------
 PAIRS = [
@@ -83,6 +89,13 @@ PAIRS = [
         "type": "clusters", "clusters": 5, "cluster_size": 8, "cluster_size_cv": 0.5, "icc": 0.05},
         "outcome": {"type": "binary", "p0": 0.3, "odds_ratio": 2.0}})),
     ({"type": "cox"}, SURVIVAL),
+    ({"type": "crossover_t"}, CROSSOVER),
+    ({"type": "crossover_t", "scale": "log", "alternative": "less"}, CROSSOVER_LOG),
+    ({"type": "crossover_tost", "margin": 0.5}, CROSSOVER),
+    ({"type": "crossover_tost", "scale": "log"}, CROSSOVER_LOG),
+    # iterative fit: statsmodels (tight gtol) and the batch REML agree to about 1e-8 (tests/test_crossover.py)
+    ({"type": "crossover_mixed"}, CROSSOVER, {"rtol": 1e-6}),
+    ({"type": "crossover_mixed", "scale": "log", "df": "between-within"}, CROSSOVER_LOG, {"rtol": 1e-6}),
     ({"type": "final_visit_t"}, ("repeated_measures", {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5})),
     ({"type": "fisher_exact"}, BINARY),
     ({"type": "gee"}, CLUSTERS),

@@ -42,8 +42,10 @@ from scipy import integrate, stats
 
 import simpower as sp
 from simpower import analytic, crosscheck
-from simpower.facts import FACT_TYPES, BinaryFacts, ClusterBinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
+from simpower.facts import (FACT_TYPES, BinaryFacts, ClusterBinaryFacts, ClusterFacts, CrossoverFacts, MultiArmFacts,
+                            NormalFacts, SurvivalFacts)
 from simpower.processes.base import Batch, Process
+from simpower.processes.crossover import Crossover
 from simpower.registry import build
 
 
@@ -247,6 +249,22 @@ def _cases():
     out.append(Case("posterior_probability beta_binomial", rule, p, ("posterior_probability", BinaryFacts),
                     lambda f, al: _beta_rule_direct(0.3, 0.7, 8, 0.9), lambda: _beta_rule_direct(0.3, 0.7, 8, 0.9),
                     tol=1e-7))
+    # AB/BA crossover: Student's t on the period differences, SE sd_w sqrt((1/n_AB + 1/n_BA) / 2), df
+    # n_AB + n_BA - 2, mean B - A - carryover / 2 (Senn 2002, ch. 3; Jones & Kenward 2003, ch. 2)
+    p = Crossover(n=9, ratio=4 / 3, effect=0.8, sd=1.5, corr=0.6, period_effect=0.5, carryover=0.2)
+    sdw = 1.5 * math.sqrt(0.4)
+    se_x = sdw * math.sqrt((1 / 9 + 1 / 12) / 2)
+    out.append(Case("crossover_t", build("analysis", {"type": "crossover_t"}), p, ("crossover_t", CrossoverFacts),
+                    lambda f, al: analytic.crossover_power(0.7, 9, sd_within=sdw, alpha=al, ratio=12 / 9),
+                    lambda: nct_power(0.7 / se_x, 19, ALPHA, "two-sided")))
+    # bioequivalence on the log scale: within-subject CV 25%, ratio 0.95, range 0.80-1.25
+    p = Crossover(n=12, scale="log", cv_within=0.25, effect=0.95)
+    sdw_log = math.sqrt(math.log(1 + 0.25**2))
+    out.append(Case("crossover_tost log", build("analysis", {"type": "crossover_tost", "scale": "log"}), p,
+                    ("crossover_tost", CrossoverFacts),
+                    lambda f, al: analytic.crossover_tost_power(0.95, 12, cv_within=0.25, alpha=al),
+                    lambda: tost_integral(math.log(0.95), sdw_log * math.sqrt(1 / 12), 22, math.log(0.8), math.log(1.25),
+                                          ALPHA), tol=1e-6))
     return out
 
 

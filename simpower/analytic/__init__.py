@@ -22,6 +22,7 @@ from .assurance import assurance_ceiling, normal_prior_assurance, two_sample_z_s
 from .bayes import beta_binomial_rule_power, beta_difference_probability, calibrate_eta, normal_rule_power
 from .binomial import binom_exact_effect, binom_exact_n, binom_exact_power, binom_exact_region
 from .correlation import corr_effect, corr_n, corr_power
+from .crossover import crossover_n, crossover_power, crossover_tost_n, crossover_tost_power
 from .design import ceil_n, clusters_per_arm, design_effect, inflate_for_dropout
 from .equivalence import tost_power, welch_tost_power
 from .freedman import freedman_events, freedman_power
@@ -56,6 +57,7 @@ __all__ = [
     "binom_exact_effect", "binom_exact_n", "binom_exact_power", "binom_exact_region",
     "ceil_n", "clusters_per_arm", "design_effect", "inflate_for_dropout",
     "corr_effect", "corr_n", "corr_power",
+    "crossover_n", "crossover_power", "crossover_tost_n", "crossover_tost_power",
     "freedman_events", "freedman_power",
     "BetaSpending", "Boundaries", "Crossing", "boundaries", "classical", "crossing_probabilities", "drift_for_power",
     "expected_information", "inflation_factor", "naive_alpha", "spending",
