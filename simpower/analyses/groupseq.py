@@ -208,7 +208,11 @@ class GroupSequential(Analysis):
         of the classical boundary ("obf" or "pocock").
     param : float, optional
         rho of the power family, gamma of the gamma family.
-    boundary : {"spending", "classical"}, default "spending"
+    boundary : {"spending", "classical", "nominal"}, default "spending"
+        Spending-function boundaries, the classical ones, or ``"nominal"``:
+        the unadjusted fixed-sample level ``alpha`` at every look (repeated
+        significance testing, whose type I error exceeds alpha: Armitage,
+        McPherson & Rowe 1969; its ``spent`` shows the real one).
     alpha : float, default 0.025
         The design's total type I error (one-sided for a one-sided design).
     sides : {1, 2}, optional
@@ -230,7 +234,7 @@ class GroupSequential(Analysis):
     stopping_indicators = True
     null_hypothesis = "that of the inner analysis, tested at every look with group-sequential boundaries"
     params = {"inner": OneAnalysis(), "fractions": Fractions(), "spending": Choice(gs.SPENDING),
-              "param": Real(optional=True), "boundary": Choice(("spending", "classical")),
+              "param": Real(optional=True), "boundary": Choice(("spending", "classical", "nominal")),
               "alpha": Real(0.0, 0.5, low_open=True, high_open=True), "sides": Int(1, 2, optional=True),
               "futility": Futility(), "binding": Bool(), "scale": Choice(("z", "p"))}
     defaults = {"fractions": 3, "spending": "obf", "param": None, "boundary": "spending", "alpha": 0.025,
@@ -270,6 +274,11 @@ class GroupSequential(Analysis):
                 if self.param is not None:
                     raise ParameterError("`param` must be None with boundary = 'classical'.")
                 b = gs.classical(self.spending, looks, self.alpha, self._side_count())
+            elif self.boundary == "nominal":
+                if fut is not None or self.param is not None:
+                    raise ParameterError("`futility` and `param` must be None with boundary = 'nominal' (the "
+                                         "unadjusted level at every look).")
+                b = _nominal(looks, self.alpha, self._side_count())
             else:
                 b = gs.boundaries(looks, self.alpha, self._side_count(), self.spending, self.param, fut,
                                   self.binding)
@@ -319,6 +328,11 @@ class GroupSequential(Analysis):
         return (f"{self.inner.describe() if hasattr(self.inner, 'describe') else self.inner!r} at {self.looks} "
                 f"looks (fractions {', '.join(f'{t:g}' for t in b.fractions)}; {b.method}; alpha "
                 f"{self.alpha:g} {'one' if b.sides == 1 else 'two'}-sided{fut}; {self.scale} scale)")
+
+    def looks_lines(self, summary, process=None, name: str | None = None) -> list[str]:
+        """The per-look table of a run's summary of this analysis as text (see :func:`looks_table`)."""
+        rows, overall = looks_table(self, summary, None if process is None else arm_sizes_of(process))
+        return format_looks(name or self.name, rows, overall)
 
     # -- the statistic at a look ---------------------------------------------------------------
     def _statistic(self, pvalue, estimate, se):
@@ -472,6 +486,16 @@ class GroupSequential(Analysis):
             if m.any():
                 res.mark(cause, m, msg)
         return res
+
+
+def _nominal(looks, alpha: float, sides: int) -> gs.Boundaries:
+    """The fixed-sample critical value at every look, and its real crossing probabilities under H0."""
+    t = np.arange(1, looks + 1) / looks if isinstance(looks, int) else np.asarray(looks, float)
+    z = np.full(t.size, float(special.ndtri(1.0 - alpha / sides)))
+    plain = gs.Boundaries(t, z, None, np.zeros(t.size), alpha, sides, "nominal (unadjusted) level at every look")
+    cr = gs.crossing_probabilities(plain, 0.0)
+    crossing = cr.upper + (cr.lower if sides == 2 else 0.0)
+    return gs.Boundaries(t, z, None, crossing, alpha, sides, plain.method)
 
 
 def _columns(batch, cols: np.ndarray, width: int):
