@@ -208,3 +208,81 @@ def test_bad_parameters_get_one_line(kw, text):
 def test_sides_must_match_the_inner_alternative():
     with pytest.raises(ParameterError, match="`inner.alternative` must be 'greater' or 'less'"):
         GroupSequential(inner={"type": "t_test"}, sides=1)
+
+
+# -- the [looks] block and the command line ------------------------------------------------------------------
+ROOT = __import__("pathlib").Path(__file__).resolve().parent.parent
+BUNDLED = ROOT / "scenarios" / "staged_breathing_app.toml"
+
+BASE = """
+alpha = 0.025
+[process]
+type = "normal_two_arm"
+n = 30
+effect = 0.5
+[analyses.a]
+type = "z_test"
+alternative = "greater"
+[analyses.b]
+type = "t_test"
+alternative = "greater"
+"""
+
+
+def test_looks_block_wraps_the_named_analyses():
+    from simpower.scenario_files import loads
+
+    sf = loads(BASE + "[looks]\nanalyses = [\"a\"]\nfractions = [0.5, 1]\nspending = \"pocock\"\n")
+    a, b = sf.scenario.analyses["a"], sf.scenario.analyses["b"]
+    assert a.name == "group_sequential" and a.inner.name == "z_test" and b.name == "t_test"
+    assert a.alpha == 0.025 and a.design().method == "spending pocock"
+    sf = loads(BASE + "[looks]\nfractions = 2\n")
+    assert all(x.name == "group_sequential" for x in sf.scenario.analyses.values())
+
+
+@pytest.mark.parametrize("block, text", [
+    ("fractions = [0.6, 0.5, 1]", "`looks.fractions` must increase"),
+    ("fractions = [0.5, 0.8]", "`looks.fractions` must end at 1"),
+    ("spending = \"linear\"", "`looks.spending` must be one of"),
+    ("scale = \"q\"", "`looks.scale`"),
+    ("analyses = [\"c\"]", "`looks.analyses` names 'c'"),
+    ("futility = [0.0]", "`looks.futility` must list one z value per interim look"),
+    ("fraction = 3", "`looks.fraction` is not a field of [looks]"),
+])
+def test_looks_block_errors_name_the_field(block, text):
+    from simpower.errors import SimpowerError
+    from simpower.scenario_files import loads
+
+    with pytest.raises(SimpowerError) as err:
+        loads(BASE + "[looks]\n" + block + "\n")
+    assert text in str(err.value) and "\n" not in str(err.value)
+
+
+def test_bad_looks_block_exits_non_zero_in_one_line(tmp_path, capsys):
+    from simpower.cli.main import main
+
+    f = tmp_path / "bad.toml"
+    f.write_text(BASE + "[looks]\nfractions = [0.5, 0.8]\n")
+    assert main(["run", str(f), "--reps", "50", "--jobs", "1", "-q"]) != 0
+    err = capsys.readouterr().err.strip()
+    assert "`looks.fractions` must end at 1" in err and "Traceback" not in err
+
+
+def test_run_prints_the_per_look_table_of_the_bundled_scenario(capsys):
+    from simpower.cli.main import main
+
+    assert main(["run", str(BUNDLED), "--reps", "400", "--jobs", "1", "-q"]) == 0
+    out = capsys.readouterr().out
+    assert "Group-sequential design of `sequential`" in out
+    lines = [ln.split() for ln in out.splitlines() if ln.strip()[:1].isdigit() and len(ln.split()) >= 9]
+    assert [int(row[0]) for row in lines[:3]] == [1, 2, 3] and [int(row[2]) for row in lines[:3]] == [60, 120, 180]
+
+
+def test_report_writes_the_looks_section_and_plot(tmp_path):
+    from simpower.cli.main import main
+
+    assert main(["report", str(BUNDLED), "--reps", "300", "--null-reps", "300", "--jobs", "1", "-q",
+                 "--out", str(tmp_path / "r")]) == 0
+    md = (tmp_path / "r" / "report.md").read_text()
+    assert "## Group-sequential design of sequential" in md and "Alpha spent (cumulative)" in md
+    assert (tmp_path / "r" / "looks_sequential.png").stat().st_size > 1000
