@@ -286,3 +286,26 @@ def test_report_writes_the_looks_section_and_plot(tmp_path):
     md = (tmp_path / "r" / "report.md").read_text()
     assert "## Group-sequential design of sequential" in md and "Alpha spent (cumulative)" in md
     assert (tmp_path / "r" / "looks_sequential.png").stat().st_size > 1000
+
+
+def test_same_numbers_after_resuming_from_a_store(tmp_path):
+    g = GroupSequential(inner={"type": "t_test", "alternative": "greater"}, fractions=3, futility=[0.0, 0.5])
+    sc = sp.Scenario(sp.NormalTwoArm(n=15, effect=0.5), analyses={"gs": g}, alpha=0.025)
+    ex = SERIAL.replace(chunk_size=200)
+    fresh = sp.run(sc, reps=600, execution=ex)
+    store = tmp_path / "s.sqlite"
+    sp.run(sc, reps=200, execution=ex.replace(store=store))  # an interrupted run: its first chunk only
+    resumed = sp.run(sc, reps=600, execution=ex.replace(store=store))
+    assert np.array_equal(fresh.records["gs"].pvalues, resumed.records["gs"].pvalues)
+    assert np.array_equal(fresh.records["gs"].estimate, resumed.records["gs"].estimate, equal_nan=True)
+    assert fresh.summaries["gs"]["per_hypothesis"] == resumed.summaries["gs"]["per_hypothesis"]
+
+
+def test_plan_of_a_file_with_looks_runs_the_design(tmp_path):
+    f = tmp_path / "trial.toml"
+    f.write_text("seed = 3\nreps = 400\n" + BASE + "[looks]\nanalyses = [\"a\"]\nfractions = 2\n"
+                 "[null_check]\nenabled = false\n[execution]\nbackend = \"serial\"\n")
+    plan = sp.load_plan(f)
+    assert plan.looks == {"analyses": ("a",), "fractions": 2}
+    out = sp.execute(plan)
+    assert "per_hypothesis" in out.run.summaries["a"] and "look 2 efficacy" in out.run.summaries["a"]["per_hypothesis"]
