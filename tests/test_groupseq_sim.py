@@ -309,3 +309,26 @@ def test_plan_of_a_file_with_looks_runs_the_design(tmp_path):
     assert plan.looks == {"analyses": ("a",), "fractions": 2}
     out = sp.execute(plan)
     assert "per_hypothesis" in out.run.summaries["a"] and "look 2 efficacy" in out.run.summaries["a"]["per_hypothesis"]
+
+
+def test_a_user_function_inner_analysis_runs_per_replicate_with_the_same_decisions():
+    """scipy.stats.ttest_ind (one-sided) as a user function on the p scale: the decisions of the built-in t-test."""
+    def scipy_t(data):
+        y, arm = np.asarray(data["y"]), np.asarray(data["arm"])
+        return stats.ttest_ind(y[arm == 1], y[arm == 0], alternative="greater").pvalue
+
+    common = dict(fractions=[0.5, 1.0], spending="pocock", futility=[0.0], scale="p")
+    sc = sp.Scenario(sp.NormalTwoArm(n=12, effect=0.6), alpha=0.025, analyses={
+        "user": GroupSequential(inner=scipy_t, **common),
+        "builtin": GroupSequential(inner={"type": "t_test", "alternative": "greater"}, **common)})
+    res = sp.run(sc, reps=300, execution=SERIAL)
+    assert res.paths["user"].startswith("per-replicate") and res.paths["builtin"] == "batch"
+    assert np.array_equal(res.records["user"].pvalues, res.records["builtin"].pvalues)
+
+
+def test_time_to_event_data_are_refused_in_one_line():
+    sc = sp.Scenario(build("process", {"type": "survival_two_arm", "n": 30, "median": 1.0, "hazard_ratio": 0.6,
+                                       "follow_up": 2.0}),
+                     analyses={"gs": GroupSequential(inner={"type": "logrank"}, fractions=2, alpha=0.05)})
+    with pytest.raises(Exception, match="event counts are not implemented"):
+        sp.run(sc, reps=50, execution=SERIAL)

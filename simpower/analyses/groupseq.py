@@ -358,6 +358,9 @@ class GroupSequential(Analysis):
     # -- per replicate ---------------------------------------------------------------------------
     def _slice(self, data, k: int):
         """The long table of look k: the first n_k rows of each arm (row order)."""
+        if "y" not in data and "time" in data:
+            raise ValueError("group_sequential looks are by participants; time-to-event looks at event counts are "
+                             "not implemented yet")
         for col in _NOT_PARTICIPANTS:
             if col in data:
                 raise ValueError(f"group_sequential looks take the first rows of each arm as participants; the "
