@@ -177,10 +177,11 @@ def test_same_seed_same_numbers_for_any_executor():
     g = GroupSequential(inner={"type": "t_test", "alternative": "greater"}, fractions=3, futility=[0.0, 0.5])
     sc = sp.Scenario(sp.NormalTwoArm(n=15, effect=0.5), analyses={"gs": g}, alpha=0.025)
     a = sp.run(sc, reps=600, execution=SERIAL.replace(chunk_size=200))
-    b = sp.run(sc, reps=600, execution=SERIAL.replace(chunk_size=200, backend="threading", n_jobs=2))
-    assert np.array_equal(a.records["gs"].pvalues, b.records["gs"].pvalues)
-    assert a.summaries["gs"]["power"] == b.summaries["gs"]["power"]
-    assert a.summaries["gs"]["mean_estimate"] == b.summaries["gs"]["mean_estimate"]
+    for backend in ("threading", "loky"):  # loky: worker processes get the scenario pickled
+        b = sp.run(sc, reps=600, execution=SERIAL.replace(chunk_size=200, backend=backend, n_jobs=2))
+        assert np.array_equal(a.records["gs"].pvalues, b.records["gs"].pvalues)
+        assert a.summaries["gs"]["power"] == b.summaries["gs"]["power"]
+        assert a.summaries["gs"]["mean_estimate"] == b.summaries["gs"]["mean_estimate"]
 
 
 def test_look_sizes_round_the_fraction_of_each_arm():
@@ -332,3 +333,15 @@ def test_time_to_event_data_are_refused_in_one_line():
                      analyses={"gs": GroupSequential(inner={"type": "logrank"}, fractions=2, alpha=0.05)})
     with pytest.raises(Exception, match="event counts are not implemented"):
         sp.run(sc, reps=50, execution=SERIAL)
+
+
+def test_a_pickled_copy_decides_as_the_original():
+    """Worker processes get the analysis pickled (parameters only): derived settings must be recomputed."""
+    import cloudpickle
+
+    g = GroupSequential(inner={"type": "z_test", "alternative": "less"}, fractions=2, futility=[0.5])
+    data = sp.NormalTwoArm(n=20, effect=-0.6).draw_batch(np.random.default_rng(4), 30)
+    copy = cloudpickle.loads(cloudpickle.dumps(g))
+    for i in range(30):
+        a, b = g(data.replicate(i)), copy(data.replicate(i))
+        assert np.array_equal(a.pvalues, b.pvalues) and a.pvalue == b.pvalue

@@ -249,8 +249,6 @@ class GroupSequential(Analysis):
             need = "'two-sided'" if sides == 2 else "'greater' or 'less'"
             raise ParameterError(f"`inner.alternative` must be {need} for a {'two' if sides == 2 else 'one'}-sided "
                                  f"design (sides = {sides}); got {alt!r}.")
-        object.__setattr__(self, "_sides", sides)
-        object.__setattr__(self, "_direction", -1.0 if alt == "less" else 1.0)
         self.design()  # the boundaries, checked now: one line naming the field when they cannot be made
 
     # -- the design ----------------------------------------------------------------------------
@@ -291,11 +289,13 @@ class GroupSequential(Analysis):
         return b
 
     def _side_count(self) -> int:
-        sides = self.__dict__.get("_sides")
-        if sides is None:
-            alt = getattr(self.inner, "alternative", None)
-            sides = self.sides or (2 if alt == "two-sided" else 1)
-        return sides
+        """1 or 2: ``sides``, else from the inner analysis's ``alternative`` (computed, not stored: a
+        pickled copy in a worker process holds the parameters only)."""
+        return self.sides or (2 if getattr(self.inner, "alternative", None) == "two-sided" else 1)
+
+    def _direction(self) -> float:
+        """-1 when the inner analysis's H1 is 'less' (efficacy is a negative estimate), else 1."""
+        return -1.0 if getattr(self.inner, "alternative", None) == "less" else 1.0
 
     @property
     def looks(self) -> int:
@@ -344,7 +344,7 @@ class GroupSequential(Analysis):
                     p = p / 2.0
                 return -special.ndtri(np.clip(p, 0.0, 1.0))  # Phi^-1(1 - p)
             z = (np.asarray(estimate, float) - self._null()) / np.asarray(se, float)
-            return np.abs(z) if self._side_count() == 2 else self._direction * z
+            return np.abs(z) if self._side_count() == 2 else self._direction() * z
 
     def _decide(self, k: int, z):
         """+1 efficacy, -1 futility, 0 continue (or none at the last look), for statistic(s) ``z`` at look k."""
