@@ -173,6 +173,7 @@ def test_records_tell_look_decision_and_size():
     assert overall["expected_n"] == pytest.approx(n_used.mean())
 
 
+@pytest.mark.slow
 def test_same_seed_same_numbers_for_any_executor():
     g = GroupSequential(inner={"type": "t_test", "alternative": "greater"}, fractions=3, futility=[0.0, 0.5])
     sc = sp.Scenario(sp.NormalTwoArm(n=15, effect=0.5), analyses={"gs": g}, alpha=0.025)
