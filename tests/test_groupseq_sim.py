@@ -52,6 +52,24 @@ def test_type1_error_with_a_z_test_is_the_design_alpha(spending):
         _within(s["per_hypothesis"][f"look {k + 1} efficacy"]["power"], float(cross), reps)
 
 
+@pytest.mark.parametrize("binding", [True, False])
+def test_type1_error_with_a_futility_rule_obeyed(binding):
+    """Beta-spending futility (Pampallona, Tsiatis & Kim 2001): binding keeps alpha exactly when the rule is
+    obeyed; non-binding boundaries ignore the rule, so obeying it gives less than alpha (the recursion's value)."""
+    g = GroupSequential(inner={"type": "z_test", "alternative": "greater"}, fractions=3,
+                        futility={"kind": "obf", "beta": 0.2}, binding=binding)
+    reps = 20_000
+    s = _run(g, sp.NormalTwoArm(n=30, effect=0.0), reps).summaries["gs"]
+    ref = crossing_probabilities(g.design(), 0.0)
+    if binding:
+        assert ref.rejection == pytest.approx(0.025, abs=1e-9)
+    else:
+        assert ref.rejection < 0.025 - 0.001
+    _within(s["power"], ref.rejection, reps)
+    for k in range(2):
+        _within(s["per_hypothesis"][f"look {k + 1} futility"]["power"], float(ref.lower[k]), reps)
+
+
 # -- (b) naive repeated testing ----------------------------------------------------------------------
 AMR_MEMORY = {2: 0.083, 3: 0.107, 4: 0.126, 5: 0.142}  # Armitage, McPherson & Rowe (1969), Table 2; from memory
 
