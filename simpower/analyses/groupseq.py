@@ -45,6 +45,11 @@ What a replicate records (the run's usual fields):
   (:func:`stop_of`), and the expected sample size from their rates
   (:func:`looks_table`).
 
+Time-to-event data (``time``, ``event``, no ``y``) are looked at event
+counts instead: look k comes at the calendar time (``entry + time``) of the
+``round(t_k D)``-th of the D events of the full data set and sees the data as
+they stood then; this needs an ``entry`` column (calendar time of enrolment).
+
 A replicate fails (counted by cause, as every failure) when the inner
 analysis fails at a look the trial reached.
 """
@@ -358,9 +363,8 @@ class GroupSequential(Analysis):
     # -- per replicate ---------------------------------------------------------------------------
     def _slice(self, data, k: int):
         """The long table of look k: the first n_k rows of each arm (row order)."""
-        if "y" not in data and "time" in data:
-            raise ValueError("group_sequential looks are by participants; time-to-event looks at event counts are "
-                             "not implemented yet")
+        if "y" not in data and "time" in data and "event" in data:
+            return self._event_slice(data, k)
         for col in _NOT_PARTICIPANTS:
             if col in data:
                 raise ValueError(f"group_sequential looks take the first rows of each arm as participants; the "
@@ -375,6 +379,37 @@ class GroupSequential(Analysis):
         for label, size in sizes.items():
             keep |= (arm == label) & (rank < look_sizes(t, np.asarray(size)))
         return {c: (np.asarray(v)[keep] if np.ndim(v) == 1 and len(v) == n else v) for c, v in data.items()}
+
+    def _event_slice(self, data, k: int):
+        """Time-to-event data at look k: the data as they stood when the d_k-th event happened.
+
+        ``d_k = round(t_k D)`` of the D events of the full data set; at that calendar time ``c``
+        (``entry + time`` of the d_k-th event in calendar order) the participants who had entered
+        (``entry <= c``) are seen with follow-up ``min(time, c - entry)`` and an event only if it
+        happened by ``c``. The last look is the full data set. Needs an ``entry`` column (calendar
+        time of enrolment).
+        """
+        if "entry" not in data:
+            raise ValueError("group_sequential looks at time-to-event data need an `entry` column (each "
+                             "participant's calendar time of enrolment) to place the looks at event counts")
+        t = float(self.design().fractions[k])
+        if t >= 1.0:
+            return data
+        time = np.asarray(data["time"], float)
+        event = np.asarray(data["event"]) > 0
+        entry = np.asarray(data["entry"], float)
+        calendar = np.sort((entry + time)[event])
+        if calendar.size == 0:
+            raise ValueError("no events in the data set: a look at an event count cannot be placed")
+        d = int(np.clip(np.floor(t * calendar.size + 0.5 + 1e-9), 1, calendar.size))
+        c = calendar[d - 1]
+        keep = entry <= c
+        n = time.size
+        out = {col: (np.asarray(v)[keep] if np.ndim(v) == 1 and len(v) == n else v) for col, v in data.items()}
+        out["time"] = np.minimum(time[keep], c - entry[keep])
+        ev = event[keep] & (entry[keep] + time[keep] <= c)
+        out["event"] = ev.astype(np.asarray(data["event"]).dtype)
+        return out
 
     def __call__(self, data):
         k_max = self.looks
