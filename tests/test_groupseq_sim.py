@@ -401,3 +401,25 @@ def test_type1_error_of_a_logrank_at_event_count_looks():
     res = sp.run(sc, reps=reps, execution=SERIAL)
     _within(res.summaries["gs"]["power"], 0.025, reps)
     _within(res.summaries["gs"]["per_hypothesis"]["look 1 efficacy"]["power"], float(g.design().crossing[0]), reps)
+
+
+def test_batch_path_with_padding_uses_the_looks_as_masks():
+    """Variable arm sizes (padding) and missing outcomes: each look is a `present` mask over the padded rows,
+    and the batch path gives what the per-replicate path gives on each replicate's own rows."""
+    from simpower.batch import Batch
+
+    rng = np.random.default_rng(11)
+    r, width = 40, 30
+    arm = np.repeat([0, 1], width // 2)
+    y = rng.normal(0.4 * arm, 1.0, (r, width))
+    y[rng.random((r, width)) < 0.1] = np.nan
+    present = rng.random((r, width)) < 0.85
+    batch = Batch(r, {"y": y, "present": present}, {"arm": arm}, {"missing": True})
+    g = GroupSequential(inner={"type": "t_test", "alternative": "greater"}, fractions=[0.4, 0.7, 1.0],
+                        futility=[-0.5, 0.0])
+    assert g.supports_batch(batch)
+    res = g.batch(batch)
+    for i in range(r):
+        one = g(batch.replicate(i))
+        np.testing.assert_allclose(res.pvalues[i], one.pvalues, rtol=0, atol=0)
+        np.testing.assert_allclose([res.estimate[i], res.se[i]], [one.estimate, one.se], rtol=1e-9)
