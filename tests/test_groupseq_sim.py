@@ -218,6 +218,8 @@ def test_look_sizes_round_the_fraction_of_each_arm():
     ({"futility": [0.0]}, "`futility` must list one z value per interim look"),
     ({"futility": {"kind": "obf", "beta": 2}}, "`futility.beta`"),
     ({"scale": "t"}, "`scale`"),
+    ({"boundary": "classical", "binding": True}, "`binding` must be false"),
+    ({"boundary": "nominal", "futility": [0.0, 0.0]}, "`futility` and `param` must be None"),
 ])
 def test_bad_parameters_get_one_line(kw, text):
     with pytest.raises(ParameterError) as err:

@@ -267,6 +267,9 @@ class GroupSequential(Analysis):
         if isinstance(fut, dict):
             fut = gs.BetaSpending(fut["kind"], fut["beta"], fut.get("param"))
         try:
+            if self.boundary != "spending" and self.binding:
+                raise ParameterError(f"`binding` must be false with boundary = {self.boundary!r} (it has no "
+                                     f"futility rule).")
             if self.boundary == "classical":
                 if self.spending not in gs.CLASSICAL:
                     raise ParameterError(f"`spending` must be 'obf' or 'pocock' with boundary = 'classical'; got "
