@@ -16,7 +16,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from ._validation import Bool, Choice, Int, OneOrMore, Real, Table, Text
+from ._validation import Anything, Bool, Choice, Int, OneOrMore, Real, Table, Text
 from .errors import ParameterError, nearest
 
 #: a target Monte Carlo SE of a rejection rate: above 0 and below 0.5 (the largest SE a rate can have)
@@ -85,12 +85,18 @@ ASSURANCE_FIELDS = {"prior": Table(), "draws": Int(low=2), "reps_per_draw": Int(
                     "favourable": Choice(("greater", "less")), "analysis": Text(),
                     "target": Real(0.0, 1.0, low_open=True, high_open=True), "low": Real(0.0, low_open=True),
                     "high": Real(0.0, low_open=True), "points": Int(low=2), "parameter": Text()}
+#: [looks]: a group-sequential design around the scenario's analyses (see docs/group-sequential.md); the values are
+#: checked again, with their cross-field rules, when :func:`with_looks` builds the `group_sequential` analyses
+LOOKS_FIELDS = {"fractions": Anything(), "spending": Choice(("obf", "pocock", "power", "gamma")), "param": Real(),
+                "boundary": Choice(("spending", "classical", "nominal")),
+                "alpha": Real(0.0, 0.5, low_open=True, high_open=True), "sides": Int(1, 2), "futility": Anything(),
+                "binding": Bool(), "scale": Choice(("z", "p")), "analyses": OneOrMore(Text(), sep=",")}
 
 #: every block of a study plan -> its fields
 BLOCK_FIELDS: dict[str, dict[str, Any]] = {
     "sweep": SWEEP_FIELDS, "search": SEARCH_FIELDS, "sequential": SEQUENTIAL_FIELDS,
     "null_check": NULL_CHECK_FIELDS, "report": REPORT_FIELDS, "store": STORE_FIELDS,
-    "execution": EXECUTION_FIELDS, "assurance": ASSURANCE_FIELDS,
+    "execution": EXECUTION_FIELDS, "assurance": ASSURANCE_FIELDS, "looks": LOOKS_FIELDS,
 }
 
 
@@ -124,3 +130,34 @@ def read_block(block_name: str, block: Any, fields: dict | None = None) -> dict:
         con = fields[key]
         out[key] = value if con is None else con.clean(f"{block_name}.{key}", value)
     return out
+
+
+def with_looks(analyses: dict, block: dict, alpha: float) -> dict:
+    """The analyses with those the ``[looks]`` block names (default: all) wrapped in a group-sequential design.
+
+    Each keeps its label; the design's ``alpha`` defaults to the scenario's ``alpha``. A bad value
+    raises a ParameterError naming ``looks.<field>`` and the fix.
+
+    Examples
+    --------
+    >>> from simpower.registry import build
+    >>> got = with_looks({"t": build("analysis", {"type": "z_test", "alternative": "greater"})},
+    ...                  {"fractions": [0.5, 1]}, 0.025)
+    >>> got["t"].name, got["t"].looks
+    ('group_sequential', 2)
+    >>> with_looks({"t": got["t"].inner}, {"fractions": [0.5, 0.9]}, 0.025)
+    Traceback (most recent call last):
+    ...
+    simpower.errors.ParameterError: `looks.fractions` must end at 1 (the last look has all the data); got 0.9: add 1.
+    """
+    from .registry import build
+
+    names = list(block.get("analyses") or analyses)
+    for n in names:
+        if n not in analyses:
+            raise ParameterError(f"`looks.analyses` names {n!r}, which is no analysis of the scenario."
+                                 f"{nearest(n, analyses)}")
+    design = {k: v for k, v in block.items() if k != "analyses"}
+    design.setdefault("alpha", alpha)
+    return {label: build("analysis", {"type": "group_sequential", "inner": an, **design}, where="looks")
+            if label in names else an for label, an in analyses.items()}

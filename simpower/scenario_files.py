@@ -34,10 +34,10 @@ from pathlib import Path
 from typing import Any
 
 from ._validation import Choice, Int, Jobs, Real
-from .blocks import BLOCK_FIELDS, read_block
+from .blocks import BLOCK_FIELDS, read_block, with_looks
 from .errors import ParameterError, ScenarioFileError, SimpowerError, nearest
 from .registry import build
-from .scenario import Scenario
+from .scenario import ALPHA, Scenario
 
 #: top-level run settings and their constraints
 RUN_FIELDS = {
@@ -156,6 +156,9 @@ def _build(raw, text, where, base_dir, overrides, path) -> ScenarioFile:
             if not isinstance(spec, dict):
                 raise ScenarioFileError(f"{where}: [analyses.{label}] must be a table with `type = \"...\"`.")
             analyses[label] = build("analysis", spec, where=f"analyses.{label}", base_dir=base_dir)
+    if "looks" in raw:  # a group-sequential design around the analyses (simpower.blocks.with_looks)
+        analyses = with_looks(analyses, _read(raw["looks"], "looks", BLOCK_FIELDS["looks"], text, where),
+                              ALPHA.clean("alpha", raw.get("alpha", 0.05)))
     scenario = Scenario(process, analyses=analyses, alpha=raw.get("alpha", 0.05),
                         true_effect=raw.get("true_effect"), true_effects=raw.get("true_effects"),
                         name=str(raw.get("name", "")),

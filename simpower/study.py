@@ -2,7 +2,8 @@
 
 :func:`load_plan` reads a scenario file into a validated :class:`StudyPlan`:
 the Scenario, the blocks that say what to compute (``[search]``, ``[sweep]``,
-``[sequential]``, ``[null_check]``, ``[report]``) and how to run it (one
+``[sequential]``, ``[null_check]``, ``[report]``; ``[looks]``, a group-sequential
+design, is applied to the scenario's analyses when the file is read) and how to run it (one
 :class:`~simpower.execution.Execution`, with run stores per part).
 :func:`execute` runs it and returns a :class:`PlanResult`:
 
@@ -91,6 +92,10 @@ class StudyPlan:
         assurance reaches the target), prior checked at load.
     stores : mapping
         A run store (path) per part (:data:`PARTS`); a part not named has none.
+    looks : mapping
+        The ``[looks]`` block as loaded (a group-sequential design): the loader has already wrapped the
+        analyses it names in ``group_sequential`` (:func:`simpower.blocks.with_looks`), so every part
+        runs the design; kept here for whoever reports it.
     path : Path or None
         The scenario file (for messages and the report).
     """
@@ -106,6 +111,7 @@ class StudyPlan:
     stores: Mapping[str, Any] = field(default_factory=dict)
     path: Path | None = None
     assurance: Mapping[str, Any] | None = None
+    looks: Mapping[str, Any] = field(default_factory=dict)
 
     def replace(self, **changes) -> "StudyPlan":
         """A copy with ``changes`` applied (e.g. ``plan.replace(null_check=None)``)."""
@@ -202,7 +208,7 @@ def plan_from_file(sf, *, execution: Execution | None = None, stores: Mapping[st
     return StudyPlan(scenario=sf.scenario, execution=execution or execution_from_file(sf), reps=sf.run.get("reps"),
                      search=search, sweep=sweep, sequential=dict(blocks.get("sequential", {})), null_check=null,
                      report=dict(blocks.get("report", {})), stores=dict(stores or {}), path=sf.path,
-                     assurance=assurance)
+                     assurance=assurance, looks=dict(blocks.get("looks", {})))
 
 
 def load_plan(path: str | Path, overrides: Mapping[str, Any] | None = None,

@@ -421,7 +421,7 @@ def _result(analysis, data) -> _Outcome:
     return _Outcome((res, exc, warned, bad))
 
 
-def _check_output(res: TestResult, rep: _Report, where: str) -> None:
+def _check_output(res: TestResult, rep: _Report, where: str, indicators: bool = False) -> None:
     p = res.pvalue
     if not rep.check(isinstance(p, float), f"{where}: the p-value is a {type(p).__name__}, not a number"):
         return
@@ -438,7 +438,7 @@ def _check_output(res: TestResult, rep: _Report, where: str) -> None:
                      f"{where}: `pvalues` {pv.shape} does not match `names` {res.names}"):
             ok = np.isfinite(pv)
             rep.check(bool(np.all((pv[ok] >= 0) & (pv[ok] <= 1))), f"{where}: adjusted p-values outside [0, 1]")
-            if ok.all() and math.isfinite(p):
+            if ok.all() and math.isfinite(p) and not indicators:  # stopping indicators are no hypotheses
                 rep.check(math.isclose(p, float(pv.min()), rel_tol=1e-12, abs_tol=1e-15),
                           f"{where}: the primary p-value {p!r} is not the smallest adjusted one {pv.min()!r}")
 
@@ -501,7 +501,7 @@ def check_analysis(analysis, process=None, *, size: int = 6, seed: int = 2026120
         res = outcome.res
         rep.check(not outcome.bad_output, f"replicate {i}: the output is not a result ({outcome.bad_output})")
         if res is not None:
-            _check_output(res, rep, f"replicate {i}")
+            _check_output(res, rep, f"replicate {i}", getattr(an, "stopping_indicators", False))
             again = _result(an, d).res
             rep.check(again is not None and _same_result(res, again), f"replicate {i}: the same data gave "
                                                                      "another result")
@@ -621,7 +621,7 @@ def _check_missing(an, proc, batch, data, rep: _Report, rtol, atol) -> int | Non
         rep.check(not outcome.bad_output, f"replicate {i} with missing outcomes: the output is not a result "
                                           f"({outcome.bad_output})")
         if res is not None:
-            _check_output(res, rep, f"replicate {i} with missing outcomes")
+            _check_output(res, rep, f"replicate {i} with missing outcomes", getattr(an, "stopping_indicators", False))
     if batch is None or not an.has_batch:
         return None
     from .processes.base import Batch

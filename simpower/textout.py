@@ -77,7 +77,10 @@ def format_result(res, verbose: bool = False) -> str:
             parts += [pair(lab, key) for lab, key in (("bias", "bias"), ("empirical SE", "empirical_se"),
                                                        ("model SE", "model_se"), ("coverage", "coverage")) if key in s]
             lines.append("  " + "; ".join(parts))
-        if "per_hypothesis" in s:
+        an = sc.analyses.get(name)
+        if getattr(an, "stopping_indicators", False):  # a group-sequential design: its per-look table
+            lines += ["  " + line for line in an.looks_lines(s, sc.process, name)]
+        elif "per_hypothesis" in s:
             for h, v in s["per_hypothesis"].items():
                 lines.append(f"    {h}: power {_f(v['power'])} (MCSE {_f(v['mcse'])})")
     comps = res.comparisons()

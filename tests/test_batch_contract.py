@@ -338,6 +338,11 @@ CASES = [
      "two_arm_sparse", True),
     ({"type": "multiple", "tests": [{"type": "welch_t"}], "comparisons": "each_vs_control"}, "three_arms_missing",
      True),
+    # interim looks on slices of each replicate (tests/test_groupseq_sim.py checks them against the recursion)
+    ({"type": "group_sequential", "inner": {"type": "t_test", "alternative": "greater"}, "futility": [0.0, 0.0]},
+     "two_arm", True),
+    ({"type": "group_sequential", "inner": {"type": "welch_t"}, "fractions": [0.5, 1.0], "scale": "p",
+      "alpha": 0.05}, "two_arm_missing", True),
 ]
 
 #: cases whose batch result marks some replicates as failed
@@ -416,7 +421,7 @@ def test_every_builtin_batch_analysis_declares_known_layouts():
     with_batch = [c for c in with_batch if issubclass(c, Analysis) and c.batch is not Analysis.batch]
     assert len(with_batch) >= 15
     for cls in with_batch:
-        if cls.name == "multiple":  # takes the layouts of its component tests
+        if cls.name in ("multiple", "group_sequential"):  # take the layouts of their component tests
             continue
         assert cls.layouts and set(cls.layouts) <= set(LAYOUTS), cls.name
 

@@ -129,6 +129,8 @@ PAIRS = [
     ({"type": "tost", "margin": 0.5}, TWO_ARM),
     ({"type": "two_proportions"}, BINARY),
     ({"type": "welch_t"}, TWO_ARM),
+    ({"type": "group_sequential", "inner": {"type": "t_test", "alternative": "greater"}, "fractions": [0.5, 1.0],
+      "futility": [0.0]}, TWO_ARM),
     ({"type": "wilcoxon_signed_rank"}, PAIRED),
     ({"type": "z_test"}, TWO_ARM),
 ]

@@ -91,6 +91,31 @@ def _mc_error(frames: list[tuple[str, pd.DataFrame, str]]) -> list[str]:
     return lines
 
 
+def _looks(doc: Document, run, out: Path) -> None:
+    """A section per group-sequential analysis: its per-look table and a plot of boundaries and stopping."""
+    from ..analyses.groupseq import arm_sizes_of, looks_table
+
+    for name, an in run.scenario.analyses.items():
+        if not getattr(an, "stopping_indicators", False) or name not in run.summaries:
+            continue
+        rows, overall = looks_table(an, run.summaries[name], arm_sizes_of(run.scenario.process))
+        doc.heading(literal(f"Group-sequential design of {name}"))
+        line = (f"{overall['method']}; overall rejection rate {overall['rejection']:.4f} (MCSE "
+                f"{overall['rejection_mcse']:.4f}); expected sample size {overall['expected_n']:.4g} (MCSE "
+                f"{overall['expected_n_mcse']:.2g}) of {overall['max_n']:g} {overall['expected_n_unit']}")
+        if overall.get("bias") is not None:
+            line += f"; bias of the naive estimate at stopping {overall['bias']:.4g} (MCSE {overall['bias_mcse']:.2g})"
+        doc.para(literal(line + "."))
+        doc.table(pd.DataFrame(rows).rename(columns={
+            "look": "Look", "fraction": "Information fraction", "n": "Participants", "efficacy_z": "Efficacy z",
+            "nominal_p": "Nominal p", "futility_z": "Futility z", "alpha_spent": "Alpha spent (cumulative)",
+            "stop_efficacy": "Stopped for efficacy", "stop_efficacy_mcse": "MCSE",
+            "stop_futility": "Stopped for futility", "stop_futility_mcse": "MCSE (futility)"}),
+            literal(f"Boundaries and simulated stopping proportions per look ({name})"))
+        png, svg = plots.save(plots.looks_plot(rows), out / f"looks_{name}")
+        doc.figure(png, svg, literal(f"Boundaries and the share of replicates stopping at each look ({name})"))
+
+
 def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, Any], sweep: pd.DataFrame | None = None,
                       search=None, null: pd.DataFrame | None = None, run=None, x: str | None = None,
                       target: float | None = None, notes: list[str] | None = None, labels=None,
@@ -180,6 +205,7 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
                      f"{seq['target_mcse']:g}; it took {seq['reps']} replicates (looks at {seq['looks']}); "
                      f"target {'reached' if seq['reached'] else 'NOT reached within ' + str(seq['max_reps'])}.")
         paths.update(run.paths)
+        _looks(doc, run, out)
 
     if assurance is not None:
         doc.heading("Assurance over the prior")

@@ -232,3 +232,31 @@ def heatmap(table: pd.DataFrame, x: str, y: str, analysis: str | None = None, va
     fig.colorbar(im, ax=ax, label=value)
     ax.set_title(title or f"{value} of {analysis} over {x} and {y}" + (f" (bold: >= {target:g})" if target else ""))
     return fig
+
+
+def looks_plot(rows: list[dict], title: str = ""):
+    """A group-sequential design: z boundaries per look (lines) and simulated stopping proportions (bars)."""
+    fig, ax = new_figure(7.0, 4.0)
+    t = np.array([r["fraction"] for r in rows])
+    ax.plot(t, [r["efficacy_z"] for r in rows], "o-", color=COLORS[0], label="efficacy boundary (z)")
+    fut = [r["futility_z"] for r in rows]
+    if any(f is not None for f in fut):
+        ft = [(x, f) for x, f in zip(t, fut) if f is not None]
+        ax.plot([x for x, _ in ft], [f for _, f in ft], "s--", color=COLORS[1], label="futility boundary (z)")
+    ax.set_xlabel("information fraction")
+    ax.set_ylabel("z boundary")
+    ax.set_xlim(0, 1.05)
+    bars = ax.twinx()
+    width = 0.035
+    eff = np.array([r["stop_efficacy"] for r in rows], float)
+    bars.bar(t - width / 2, eff, width, color=COLORS[2], alpha=0.6, label="stopped for efficacy")
+    futs = np.array([np.nan if r["stop_futility"] is None else r["stop_futility"] for r in rows], float)
+    if np.isfinite(futs).any():
+        bars.bar(t + width / 2, np.nan_to_num(futs), width, color=COLORS[3], alpha=0.6, label="stopped for futility")
+    bars.set_ylabel("share of replicates stopping")
+    bars.set_ylim(0, 1)
+    h1, l1 = ax.get_legend_handles_labels()
+    h2, l2 = bars.get_legend_handles_labels()
+    ax.legend(h1 + h2, l1 + l2, loc="upper right", fontsize=8)
+    ax.set_title(title or "Boundaries and simulated stopping per look")
+    return fig
