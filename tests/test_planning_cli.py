@@ -322,6 +322,10 @@ def test_every_bundled_scenario_searches_its_sample_size_with_the_defaults(path,
     # the file's own range ([search] or the default one), few replicates per chunk and a small budget: the
     # search must not stop with an error (exit 2); it may end unconverged (exit 1) at this budget
     copy = tmp_path / path.name
+    if (path.parent / "data").is_dir():  # data files a scenario names relative to itself (pilot data)
+        import shutil
+
+        shutil.copytree(path.parent / "data", tmp_path / "data")
     chunk = SLOW_BUNDLED.get(path.name, 10)
     copy.write_text(f"chunk_size = {chunk}\n" + path.read_text(encoding="utf-8"), encoding="utf-8")
     out = tmp_path / "r.json"
