@@ -28,7 +28,7 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 from . import analytic
-from .facts import BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
+from .facts import BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, OrdinalFacts, SurvivalFacts
 
 PowerFn = Callable[[Any, Any, float], "float | None"]
 
@@ -160,6 +160,22 @@ def _anova_f(a, f: MultiArmFacts, alpha):
     return analytic.anova_power(cohen, f.sizes[0], len(f.sizes), alpha, allocation=list(f.sizes))
 
 
+def _proportional_odds(a, f: OrdinalFacts, alpha):
+    """Whitehead (1993): the normal approximation to the test of log OR with its variance at OR = 1."""
+    return analytic.whitehead_power(list(f.p0), f.odds_ratio, f.n, p1=list(f.p1), ratio=f.ratio, alpha=alpha,
+                                    alternative=a.alternative)
+
+
+def _dichotomised(a, f: OrdinalFacts, alpha):
+    """The two-proportion test of the shares at or above the cut (categories coded 0..K-1)."""
+    k = len(f.p0)
+    if not (0 < a.cut <= k - 1):
+        return None
+    first = int(math.ceil(a.cut))
+    return analytic.prop2_power(sum(f.p0[first:]), sum(f.p1[first:]), f.n, ratio=f.ratio, alpha=alpha,
+                                alternative=a.alternative, continuity=a.continuity)
+
+
 def _pooled(a) -> bool:
     return bool(a.equal_var)  # the Welch variant's closed form is an approximation
 
@@ -184,6 +200,10 @@ _ENTRIES = (
     ClosedForm("dunnett", MultiArmFacts, _dunnett, True,
                "many-to-one multivariate noncentral t (Dunnett 1955; Dunnett & Tamhane 1991)"),
     ClosedForm("anova_f", MultiArmFacts, _anova_f, True, "noncentral F with Cohen's f (Cohen 1988, ch. 8)"),
+    ClosedForm("proportional_odds", OrdinalFacts, _proportional_odds, False,
+               "Whitehead (1993), large-sample score variance at OR = 1 with the arms' mean category shares"),
+    ClosedForm("dichotomised", OrdinalFacts, _dichotomised, False,
+               "normal approximation, pooled SE under H0 (Fleiss, Levin & Paik 2003, ch. 4), on the shares >= cut"),
 )
 
 #: (analysis name, fact type) -> closed form

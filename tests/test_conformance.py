@@ -42,6 +42,9 @@ PROCESSES = {
     "normal_one_sample": {"n": 10, "effect": 0.4},
     "normal_paired": {"n": 10, "effect": 0.4},
     "normal_two_arm": {"n": 10, "effect": 0.5},
+    "ordinal_two_arm": {"n": 20, "p0": [0.2, 0.3, 0.3, 0.2], "odds_ratio": 1.8},
+    "ordinal_two_arm/p1": {"n": 20, "p0": [0.3, 0.4, 0.3], "p1": [0.2, 0.2, 0.6],
+                           "missing": {"type": "mcar", "rate": 0.2}},
     "repeated_measures": {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5},
     "repeated_measures/dropout": {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5, "dropout_rate": 0.2},
     "survival_two_arm": {"n": 15, "median": 1.0, "hazard_ratio": 0.6, "follow_up": 2.0},
@@ -60,6 +63,7 @@ CLUSTERS = ("cluster_trial", {"clusters": 4, "cluster_size": 5, "icc": 0.05, "ef
 SURVIVAL = ("survival_two_arm", {"n": 15, "median": 1.0, "hazard_ratio": 0.6, "follow_up": 2.0})
 COUNTS = ("count_two_arm", {"n": 15, "rate0": 2.0, "rate_ratio": 1.5, "dispersion": 0.5})
 PAIRED = ("normal_paired", {"n": 10, "effect": 0.4})
+ORDINAL = ("ordinal_two_arm", {"n": 25, "p0": [0.2, 0.3, 0.3, 0.2], "odds_ratio": 1.8})
 
 # -- analysis configuration -> the process whose layout it analyses --------------------------------
 PAIRS = [
@@ -69,6 +73,7 @@ PAIRS = [
     ({"type": "cluster_means_t"}, CLUSTERS),
     ({"type": "cluster_means_t", "weights": "size"}, ("cluster_trial", {**CLUSTERS[1], "cluster_size_cv": 0.5})),
     ({"type": "cox"}, SURVIVAL),
+    ({"type": "dichotomised", "cut": 2}, ORDINAL),
     ({"type": "final_visit_t"}, ("repeated_measures", {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5})),
     ({"type": "fisher_exact"}, BINARY),
     ({"type": "gee"}, CLUSTERS),
@@ -77,6 +82,7 @@ PAIRS = [
     ({"type": "logistic"}, BINARY),
     ({"type": "logrank"}, SURVIVAL),
     ({"type": "mann_whitney"}, TWO_ARM),
+    ({"type": "mann_whitney", "estimand": "probability"}, ORDINAL),   # heavy ties
     # statsmodels' default optimiser stops within about 1e-4 of the REML optimum the batch path finds
     # (tests/test_mixed.py checks both against statsmodels at that tolerance and at 1e-7 with gtol 1e-10)
     ({"type": "mixed_model"}, CLUSTERS, {"atol": 1e-4, "rtol": 0.0}),
@@ -93,6 +99,9 @@ PAIRS = [
     ({"type": "paired_t"}, PAIRED),
     ({"type": "permutation_test", "n_resamples": 199}, TWO_ARM),
     ({"type": "poisson_glm"}, COUNTS),
+    # the per-replicate path is statsmodels OrderedModel (Newton with numerical derivatives): its SE comes
+    # from a finite-difference Hessian, about 1e-5 relative (tests/test_ordinal.py checks both at that level)
+    ({"type": "proportional_odds"}, ORDINAL, {"rtol": 2e-5, "atol": 1e-8}),
     ({"type": "t_test"}, TWO_ARM),
     ({"type": "t_test"}, ("normal_one_sample", {"n": 10, "effect": 0.4})),
     ({"type": "tost", "margin": 0.5}, TWO_ARM),
