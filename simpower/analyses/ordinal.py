@@ -256,7 +256,8 @@ class ProportionalOdds(Analysis):
     (OrderedModel relabels the observed values), which leaves the likelihood of
     the others unchanged. Where the arms overlap in at most one category the
     MLE is infinite (:func:`separated`): the analysis then warns
-    ``PerfectSeparationWarning`` before fitting (fit trouble, by replicate). A
+    ``PerfectSeparationWarning`` (fit trouble, by replicate) and reports where
+    OrderedModel's BFGS stops (a large slope with a larger SE). A
     replicate with one observed category has nothing to fit (p-value NaN).
 
     Batch path: the 2 x K tables of a chunk, fitted at once by Newton-Raphson
@@ -288,14 +289,17 @@ class ProportionalOdds(Analysis):
         both = np.concatenate([y0, y1])
         if np.unique(both).size < 2:
             return TestResult(pvalue=math.nan)
-        if separated(y0.min(), y0.max(), y1.min(), y1.max()):
+        split = bool(separated(y0.min(), y0.max(), y1.min(), y1.max()))
+        if split:
             from statsmodels.tools.sm_exceptions import PerfectSeparationWarning
 
             warnings.warn(PerfectSeparationWarning(
                 "the arms overlap in at most one category: the log odds ratio has no finite maximum "
                 "likelihood estimate"))
         arm = np.concatenate([np.zeros(y0.size), np.ones(y1.size)])[:, None]
-        fit = OrderedModel(both, arm, distr="logit").fit(method="newton", disp=0, maxiter=200)
+        # Newton needs the Hessian's inverse, singular on the way to an infinite slope: BFGS then
+        method = "bfgs" if split else "newton"
+        fit = OrderedModel(both, arm, distr="logit").fit(method=method, disp=0, maxiter=1000 if split else 200)
         est, se = float(fit.params[0]), float(fit.bse[0])
         ll0 = float(fit.llnull) if self.test == "lr" else math.nan
         return result_from_fields(self._fields(est, se, float(fit.llf), ll0))
