@@ -351,3 +351,36 @@ def test_whitehead_input_errors_name_the_field():
         analytic.whitehead_power([0.5, 0.5], 0.0, 50)
     with pytest.raises(ParameterError, match=r"`log\(odds_ratio\)` must be > 0"):
         analytic.whitehead_n([0.5, 0.5], 0.8, 0.8, alternative="greater")
+
+
+def test_the_docstring_examples_hold():
+    import doctest
+
+    import simpower.analytic.ordinal
+    import simpower.processes.ordinal
+
+    for mod in (simpower.analytic.ordinal, simpower.processes.ordinal):
+        result = doctest.testmod(mod, optionflags=doctest.NORMALIZE_WHITESPACE)
+        assert result.attempted > 0 and result.failed == 0, mod.__name__
+
+
+def test_benchmark_row_o_runs_and_agrees_with_ordered_model(tmp_path):
+    # scripts/benchmark.py row o: the batch answers against statsmodels OrderedModel on the loop's
+    # replicates (tiny sizes: only the answers are checked, never the timings)
+    import importlib.util
+    import json
+    from pathlib import Path
+
+    script = Path(__file__).resolve().parents[1] / "scripts" / "benchmark.py"
+    spec = importlib.util.spec_from_file_location("simpower_benchmark_script_o", script)
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    bench.SIZES["o_reps"] = (300, 300)
+    bench.SIZES["o_loop"] = (12, 12)
+    out = tmp_path / "bench.json"
+    assert bench.main(["--quick", "--only", "o", "--repeats", "1", "--json", str(out)]) == 0
+    rows = json.loads(out.read_text())["rows"]
+    assert [r["row"] for r in rows] == ["o1", "o2"]
+    for r in rows:
+        assert r["answers_agree"] is True, r
+        assert math.isfinite(r["ratio"]) and r["ratio"] > 0

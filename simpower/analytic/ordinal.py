@@ -56,7 +56,7 @@ def po_shift(p0, odds_ratio) -> np.ndarray:
     Examples
     --------
     >>> from simpower.analytic import po_shift
-    >>> [round(v, 4) for v in po_shift([0.5, 0.5], 3.0)]
+    >>> [round(float(v), 4) for v in po_shift([0.5, 0.5], 3.0)]
     [0.25, 0.75]
     """
     p = _categories("p0", p0)

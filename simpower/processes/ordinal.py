@@ -114,7 +114,7 @@ class OrdinalTwoArm(TwoArms, Process):
     An odds ratio of 2 on four equally likely categories:
 
     >>> p = OrdinalTwoArm(n=50, p0=[0.25, 0.25, 0.25, 0.25], odds_ratio=2.0)
-    >>> [round(v, 4) for v in p.p1_probs]
+    >>> [round(float(v), 4) for v in p.p1_probs]
     [0.1429, 0.1905, 0.2667, 0.4]
     >>> round(p.true_effect(), 4), p.null().odds_ratio
     (0.6931, 1.0)
