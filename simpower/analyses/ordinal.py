@@ -159,7 +159,6 @@ def fit_po_counts(counts):
     theta, ll0 = null_fit(counts)
     beta = np.zeros(r)
     done = np.zeros(r, bool)
-    ll = np.full(r, -np.inf)
     for _ in range(MAX_ITER):
         act = np.flatnonzero(~done)
         if act.size == 0:
@@ -186,12 +185,10 @@ def fit_po_counts(counts):
             new_ll[worse] = _po_parts(new_th[worse], new_b[worse], n[worse], hessian=False)[0]
             worse = ~(new_ll >= cur - 1e-12 * np.abs(cur))
         keep = ~worse & ~bad
-        theta[act[keep]], beta[act[keep]], ll[act[keep]] = new_th[keep], new_b[keep], new_ll[keep]
+        theta[act[keep]], beta[act[keep]] = new_th[keep], new_b[keep]
         size = np.max(np.abs(scale[:, None] * step) / (1.0 + np.abs(np.column_stack([th, b]))), axis=1)
         done[act[keep & (size <= STEP_TOL)]] = True
-        done[act[~keep]] = True     # no ascent possible: stop (flagged unconverged below unless tiny)
-        stuck = act[~keep]
-        ll[stuck] = cur[~keep]
+        done[act[~keep]] = True     # no ascent possible: stop (the gradient test below flags it)
     loglik, grad, hess, ok = _po_parts(theta, beta, counts)
     with np.errstate(all="ignore"):
         try:
