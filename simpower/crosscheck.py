@@ -29,7 +29,7 @@ from typing import Any, Callable
 
 from . import analytic
 from .facts import (BinaryFacts, ClusterBinaryFacts, ClusterFacts, CrossoverFacts, MultiArmFacts, NormalFacts,
-                    SurvivalFacts)
+                    OrdinalFacts, SurvivalFacts)
 
 PowerFn = Callable[[Any, Any, float], "float | None"]
 
@@ -225,6 +225,22 @@ def _crossover_tost(a, f: CrossoverFacts, alpha):
                                design="two-sample", ratio=f.n_ba / f.n_ab)
 
 
+def _proportional_odds(a, f: OrdinalFacts, alpha):
+    """Whitehead (1993): the normal approximation to the test of log OR with its variance at OR = 1."""
+    return analytic.whitehead_power(list(f.p0), f.odds_ratio, f.n, p1=list(f.p1), ratio=f.ratio, alpha=alpha,
+                                    alternative=a.alternative)
+
+
+def _dichotomised(a, f: OrdinalFacts, alpha):
+    """The two-proportion test of the shares at or above the cut (categories coded 0..K-1)."""
+    k = len(f.p0)
+    if not (0 < a.cut <= k - 1):
+        return None
+    first = int(math.ceil(a.cut))
+    return analytic.prop2_power(sum(f.p0[first:]), sum(f.p1[first:]), f.n, ratio=f.ratio, alpha=alpha,
+                                alternative=a.alternative, continuity=a.continuity)
+
+
 def _pooled(a) -> bool:
     return bool(a.equal_var)  # the Welch variant's closed form is an approximation
 
@@ -261,6 +277,10 @@ _ENTRIES = (
                "noncentral t on the period differences (Senn 2002, ch. 3; Jones & Kenward 2003, ch. 2)"),
     ClosedForm("crossover_tost", CrossoverFacts, _crossover_tost, True,
                "TOST power integral on the period differences (Schuirmann 1987; Phillips 1990)"),
+    ClosedForm("proportional_odds", OrdinalFacts, _proportional_odds, False,
+               "Whitehead (1993), large-sample score variance at OR = 1 with the arms' mean category shares"),
+    ClosedForm("dichotomised", OrdinalFacts, _dichotomised, False,
+               "normal approximation, pooled SE under H0 (Fleiss, Levin & Paik 2003, ch. 4), on the shares >= cut"),
 )
 
 #: (analysis name, fact type) -> closed form

@@ -173,6 +173,23 @@ class CrossoverFacts:
     scale: Literal["additive", "log"] = "additive"
 
 
+@dataclass(frozen=True)
+class OrdinalFacts:
+    """An ordered categorical outcome in two independent arms under proportional odds, complete.
+
+    ``p0`` and ``p1`` are the control and treatment arms' category
+    probabilities (lowest category first), ``odds_ratio`` the common odds of
+    a higher category, treated over control; ``n`` is the control arm's size
+    and ``ratio`` the treatment arm's size over it.
+    """
+
+    p0: tuple[float, ...]
+    p1: tuple[float, ...]
+    odds_ratio: float
+    n: int
+    ratio: float = 1.0
+
+
 #: every fact type, for documentation and tests
 FACT_TYPES = (NormalFacts, BinaryFacts, SurvivalFacts, ClusterFacts, ClusterBinaryFacts, MultiArmFacts,
-              CrossoverFacts)
+              CrossoverFacts, OrdinalFacts)

@@ -65,6 +65,8 @@ PROCESSES = {
                                                          missing=sp.MCAR(rate=0.1)),
     "repeated_dropout": lambda: sp.RepeatedMeasures(n=8, visits=3, rho=0.5, effect=0.5, dropout_rate=0.3),
     "survival": lambda: sp.SurvivalTwoArm(n=12, median=1.0, hazard_ratio=0.6, follow_up=2.0),
+    "ordinal_missing": lambda: build("process", {"type": "ordinal_two_arm", "n": 15, "p0": [0.2, 0.3, 0.3, 0.2],
+                                                 "odds_ratio": 2.0, "missing": {"type": "mcar", "rate": 0.2}}),
 }
 
 _BATCHES: dict[str, Batch] = {}
@@ -295,6 +297,9 @@ CASES = [
     ({"type": "logistic"}, "binary_small", True),         # zero cells: per-replicate fits and their warnings
     ({"type": "logistic"}, "binary_missing", True),
     ({"type": "two_proportions"}, "two_arm", False),      # not 0/1 outcomes
+    ({"type": "dichotomised", "cut": 2}, "ordinal_missing", True),   # two_proportions on y >= cut
+    ({"type": "mann_whitney", "estimand": "probability"}, "ordinal_missing", True),  # heavy ties
+    ({"type": "dichotomised", "cut": 1}, "two_arm", True),    # any outcome: the share at or above the cut
     ({"type": "poisson_glm"}, "counts_small", True),      # arms without events: fit trouble
     ({"type": "poisson_glm", "scale": "pearson"}, "counts_small", True),
     ({"type": "cluster_means_t"}, "clusters", True),
@@ -404,6 +409,14 @@ def test_batch_path_equals_per_replicate_path(spec, process, takes_batch):
             warnings.simplefilter("ignore")
             per = np.array([analysis(batch.replicate(i)).pvalues for i in np.flatnonzero(ok)])
         np.testing.assert_allclose(res.pvalues[ok], per, rtol=1e-9, atol=1e-12, equal_nan=True)
+
+
+def test_proportional_odds_declares_its_layout():
+    # its batch Newton-Raphson is compared with statsmodels OrderedModel in test_ordinal.py, at that optimiser's
+    # accuracy (its SE comes from a finite-difference Hessian); here only the declaration
+    po = build("analysis", {"type": "proportional_odds"})
+    assert po.layouts == ("two_arm",) and po.supports_batch(batch_of("ordinal_missing"))
+    assert not po.supports_batch(batch_of("two_arm"))   # continuous outcomes: replicate by replicate
 
 
 def test_mixed_model_declares_its_layout():

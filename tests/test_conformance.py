@@ -18,7 +18,6 @@ would fail here.
 
 from __future__ import annotations
 
-import math
 import random
 
 import numpy as np
@@ -50,6 +49,9 @@ PROCESSES = {
                        "effect": 1.0, "spread": "inflate"},
     "pilot_resample/missing": {"n": 10, "values": [0.0, 1.0, 1.0, 0.0, 0.0], "effect": 2.0,
                                "effect_type": "odds_ratio", "missing": {"type": "mcar", "rate": 0.2}},
+    "ordinal_two_arm": {"n": 20, "p0": [0.2, 0.3, 0.3, 0.2], "odds_ratio": 1.8},
+    "ordinal_two_arm/p1": {"n": 20, "p0": [0.3, 0.4, 0.3], "p1": [0.2, 0.2, 0.6],
+                           "missing": {"type": "mcar", "rate": 0.2}},
     "repeated_measures": {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5},
     "repeated_measures/dropout": {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5, "dropout_rate": 0.2},
     "survival_two_arm": {"n": 15, "median": 1.0, "hazard_ratio": 0.6, "follow_up": 2.0},
@@ -77,6 +79,7 @@ COUNTS = ("count_two_arm", {"n": 15, "rate0": 2.0, "rate_ratio": 1.5, "dispersio
 PAIRED = ("normal_paired", {"n": 10, "effect": 0.4})
 CROSSOVER = ("crossover", {"n": 8, "ratio": 1.5, "effect": 0.5, "dropout": 0.25})
 CROSSOVER_LOG = ("crossover", {"n": 8, "scale": "log", "cv": 0.3, "effect": 0.95, "dropout": 0.25})
+ORDINAL = ("ordinal_two_arm", {"n": 25, "p0": [0.2, 0.3, 0.3, 0.2], "odds_ratio": 1.8})
 
 # -- analysis configuration -> the process whose layout it analyses --------------------------------
 PAIRS = [
@@ -96,6 +99,7 @@ PAIRS = [
     # iterative fit: statsmodels (tight gtol) and the batch REML agree to about 1e-8 (tests/test_crossover.py)
     ({"type": "crossover_mixed"}, CROSSOVER, {"rtol": 1e-6}),
     ({"type": "crossover_mixed", "scale": "log", "df": "between-within"}, CROSSOVER_LOG, {"rtol": 1e-6}),
+    ({"type": "dichotomised", "cut": 2}, ORDINAL),
     ({"type": "final_visit_t"}, ("repeated_measures", {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5})),
     ({"type": "fisher_exact"}, BINARY),
     ({"type": "gee"}, CLUSTERS),
@@ -104,6 +108,7 @@ PAIRS = [
     ({"type": "logistic"}, BINARY),
     ({"type": "logrank"}, SURVIVAL),
     ({"type": "mann_whitney"}, TWO_ARM),
+    ({"type": "mann_whitney", "estimand": "probability"}, ORDINAL),   # heavy ties
     # statsmodels' default optimiser stops within about 1e-4 of the REML optimum the batch path finds
     # (tests/test_mixed.py checks both against statsmodels at that tolerance and at 1e-7 with gtol 1e-10)
     ({"type": "mixed_model"}, CLUSTERS, {"atol": 1e-4, "rtol": 0.0}),
@@ -124,6 +129,9 @@ PAIRS = [
     ({"type": "posterior_probability", "sd": 1.0, "prior_sd": 0.5}, ("normal_two_arm", {
         "n": 12, "effect": 0.5, "missing": {"type": "mcar", "rate": 0.2}})),
     ({"type": "posterior_probability", "model": "beta_binomial", "eta": 0.9}, BINARY),
+    # the per-replicate path is statsmodels OrderedModel (Newton with numerical derivatives): its SE comes
+    # from a finite-difference Hessian, about 1e-5 relative (tests/test_ordinal.py checks both at that level)
+    ({"type": "proportional_odds"}, ORDINAL, {"rtol": 2e-5, "atol": 1e-8}),
     ({"type": "t_test"}, TWO_ARM),
     ({"type": "t_test"}, ("normal_one_sample", {"n": 10, "effect": 0.4})),
     ({"type": "tost", "margin": 0.5}, TWO_ARM),

@@ -20,7 +20,9 @@ independent computation of the published formula with scipy (tolerance stated pe
   expected number of events, here for exponential survival with fixed follow-up f, where an
   arm's event probability is 1 - exp(-lambda HR f) (common practice);
 * Dunnett with a single treatment arm: Student's t (Dunnett 1955), here ``scipy.stats.nct``;
-* one-way ANOVA F: statsmodels ``FTestAnovaPower`` with Cohen's f (Cohen 1988, ch. 8).
+* one-way ANOVA F: statsmodels ``FTestAnovaPower`` with Cohen's f (Cohen 1988, ch. 8);
+* proportional odds: Whitehead (1993), the normal power at delta = log OR sqrt(N A (1 - sum pbar^3) / 3) / (1 + A);
+  dichotomised: the two-proportion approximation (Fleiss, Levin & Paik 2003) on the shares at or above the cut.
 
 Then: processes whose facts no entry covers get None (never a number meant for another
 case); subclasses inherit their base's entries; a process written against the older
@@ -42,8 +44,8 @@ from scipy import integrate, stats
 
 import simpower as sp
 from simpower import analytic, crosscheck
-from simpower.facts import (FACT_TYPES, BinaryFacts, ClusterBinaryFacts, ClusterFacts, CrossoverFacts, MultiArmFacts,
-                            NormalFacts, SurvivalFacts)
+from simpower.facts import (FACT_TYPES, BinaryFacts, ClusterBinaryFacts, ClusterFacts, CrossoverFacts,
+                            MultiArmFacts, NormalFacts, OrdinalFacts, SurvivalFacts)
 from simpower.processes.base import Batch, Process
 from simpower.processes.crossover import Crossover
 from simpower.registry import build
@@ -265,6 +267,24 @@ def _cases():
                     lambda f, al: analytic.crossover_tost_power(0.95, 12, cv_within=0.25, alpha=al),
                     lambda: tost_integral(math.log(0.95), sdw_log * math.sqrt(1 / 12), 22, math.log(0.8), math.log(1.25),
                                           ALPHA), tol=1e-6))
+    # ordinal, proportional odds: Whitehead (1993), N = n (1 + A), delta = log OR sqrt(N A S / 3) / (1 + A),
+    # S = 1 - sum pbar^3, pbar the size-weighted mean of the arms' shares; treated shares from the cumulative logits
+    o0 = [0.1, 0.2, 0.3, 0.25, 0.15]
+    po = build("process", {"type": "ordinal_two_arm", "n": 60, "ratio": 1.5, "p0": o0, "odds_ratio": 1.8})
+    cum0 = np.cumsum(o0)[:-1]
+    cum1 = 1 / (1 + 1.8 * (1 - cum0) / cum0)
+    o1 = np.diff(np.concatenate([[0.0], cum1, [1.0]]))
+    pbar = (np.array(o0) + 1.5 * o1) / 2.5
+    delta_o = math.log(1.8) * math.sqrt(60 * 2.5 * 1.5 * (1 - np.sum(pbar**3)) / 3) / 2.5
+    out.append(Case("proportional_odds", build("analysis", {"type": "proportional_odds"}), po,
+                    ("proportional_odds", OrdinalFacts),
+                    lambda f, al: analytic.whitehead_power(o0, 1.8, 60, ratio=1.5, alpha=al),
+                    lambda: z_power(delta_o, ALPHA, "two-sided"), tol=1e-12))
+    # dichotomised at category 3: the two-proportion normal approximation on the shares >= 3
+    out.append(Case("dichotomised", build("analysis", {"type": "dichotomised", "cut": 3}), po,
+                    ("dichotomised", OrdinalFacts),
+                    lambda f, al: analytic.prop2_power(0.4, float(o1[3:].sum()), 60, ratio=1.5, alpha=al),
+                    lambda: fleiss_power(0.4, float(o1[3:].sum()), 60, 1.5, ALPHA, "two-sided"), tol=1e-9))
     return out
 
 

@@ -188,7 +188,7 @@ def test_every_process_that_takes_missing_goes_through_the_one_layer():
     """A NaN outcome always has observed = 0, and info says so, for every built-in process with `missing`."""
     taking = {n for n in names("process") if "missing" in getattr(lookup("process", n), "params", {})}
     known = {"two_arm", "multi_arm", "binary_two_arm", "count_two_arm", "cluster_trial", "repeated_measures", "trial",
-             "normal_one_sample", "normal_paired", "normal_two_arm", "crossover"}
+             "normal_one_sample", "normal_paired", "normal_two_arm", "crossover", "ordinal_two_arm", "pilot_resample"}
     assert known <= taking  # a process added later with `missing`: add it to _minimal below
     for name in sorted(known):
         p = build("process", {**_minimal(name), "missing": {"type": "mcar", "rate": 0.3}})
@@ -206,6 +206,8 @@ def _minimal(name):
         "count_two_arm": {"n": 10, "rate0": 1.0}, "cluster_trial": {"clusters": 3, "cluster_size": 4, "icc": 0.1},
         "repeated_measures": {"n": 10, "visits": 3, "rho": 0.3}, "normal_one_sample": {"n": 10},
         "normal_paired": {"n": 10}, "normal_two_arm": {"n": 10}, "crossover": {"n": 10, "dropout": 0.2},
+        "pilot_resample": {"n": 10, "values": [1.0, 2.5, 4.0, 3.0]},
+        "ordinal_two_arm": {"n": 10, "p0": [0.3, 0.4, 0.3], "odds_ratio": 1.5},
         "trial": {"design": {"type": "clusters", "clusters": 3, "cluster_size": 5, "cluster_size_cv": 0.5,
                              "icc": 0.1}},
     }[name] | {"type": name}

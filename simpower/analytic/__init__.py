@@ -43,6 +43,7 @@ from .multiarm import (anova_effect, anova_n, anova_power, box_probability, cohe
                        dunnett_power, dunnett_pvalues, many_to_one_corr, many_to_one_lambdas)
 from .noether import noether_effect, noether_n, noether_power, superiority_normal
 from .normal import z_critical, z_effect, z_n, z_power
+from .ordinal import po_shift, whitehead_factor, whitehead_n, whitehead_power
 from .proportions import prop2_effect, prop2_n, prop2_power
 from .rates import rate_ratio_effect, rate_ratio_n, rate_ratio_power
 from .survival import schoenfeld_events, schoenfeld_power
@@ -64,6 +65,7 @@ __all__ = [
     "anova_effect", "anova_n", "anova_power", "box_probability", "cohen_f", "dunnett_critical", "dunnett_power",
     "dunnett_pvalues", "many_to_one_corr", "many_to_one_lambdas",
     "noether_effect", "noether_n", "noether_power", "superiority_normal",
+    "po_shift", "whitehead_factor", "whitehead_n", "whitehead_power",
     "prop2_effect", "prop2_n", "prop2_power",
     "rate_ratio_effect", "rate_ratio_n", "rate_ratio_power",
     "schoenfeld_events", "schoenfeld_power",

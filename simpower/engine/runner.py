@@ -522,7 +522,7 @@ def preflight(scenario, label: str = "") -> None:
         return
     for name, analysis in scenario.analyses.items():
         errors = []
-        with warnings.catch_warnings():
+        with warnings.catch_warnings(record=True):   # recorded, never printed (see planning.search)
             warnings.simplefilter("ignore")
             for d in data:
                 try:

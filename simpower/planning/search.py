@@ -717,8 +717,10 @@ def _trial_failure_share(scenario, limit: float = 1.0) -> float:
     if data is None:
         return 1.0
     worst = 0
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # fit trouble is not a hard failure
+    # fit trouble is not a hard failure; record=True keeps warnings off stderr even when an analysis's first
+    # import of statsmodels inserts its "always" filters (statsmodels.tools.sm_exceptions) ahead of "ignore"
+    with warnings.catch_warnings(record=True):
+        warnings.simplefilter("ignore")
         for analysis in scenario.analyses.values():
             failed = 0
             for d in data:

@@ -1,0 +1,224 @@
+"""Ordered categorical outcomes in two independent arms (proportional odds, or any two distributions).
+
+The outcome has K >= 2 ordered categories coded ``0, 1, ..., K-1`` (0 the
+lowest) and stored as floats in ``y``; the control arm's category
+probabilities are ``p0``. The treatment arm's follow from exactly one of:
+
+* ``odds_ratio`` (proportional odds): for every cut k = 0..K-2,
+  ``logit P(Y1 <= k) = logit P(Y0 <= k) - log(odds_ratio)``. So
+  ``odds_ratio > 1`` moves the treated arm to *higher* categories: it is the
+  odds of being above any cut, treated over control. This is the sign of the
+  slope of statsmodels' ``OrderedModel`` (``P(Y <= k | x) = F(cut_k - x b)``)
+  and of the ``proportional_odds`` analysis, whose estimate is
+  ``log(odds_ratio)``;
+* ``p1``: the treated arm's probabilities given outright (any distribution,
+  so proportional odds may fail on purpose; then no single odds ratio exists).
+
+The long table has columns ``y`` (category 0..K-1 as a float; NaN where a
+``missing`` mechanism hid it), ``arm`` (0 control, 1 treatment, control rows
+first) and, with missingness, ``observed``.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+
+import numpy as np
+
+from .._validation import Int, Real
+from ..components import Nested
+from ..errors import ParameterError
+from ..facts import OrdinalFacts
+from .base import Batch, Process, check_missing_columns
+from .design import TwoArms, apply_missing, arm_defaults, arm_params
+from .outcomes import Described
+
+#: how far the listed probabilities may sum from 1 (typing 0.1 + 0.2 + ... rounds)
+SUM_TOL = 1e-6
+
+
+def _probabilities(field: str, value) -> tuple[float, ...]:
+    """A list of K >= 2 category probabilities, each in (0, 1), summing to 1 (one-line error otherwise)."""
+    fix = "list K >= 2 category probabilities, lowest category first, each > 0, summing to 1 (e.g. [0.2, 0.5, 0.3])"
+    if isinstance(value, (str, bytes)) or not hasattr(value, "__len__"):
+        raise ParameterError(f"`{field}` must {fix}; got {value!r}.")
+    vals = list(value)
+    if len(vals) < 2:
+        raise ParameterError(f"`{field}` must {fix}; got {len(vals)} categor{'y' if len(vals) == 1 else 'ies'}.")
+    for v in vals:
+        if isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(v) or not 0 < v < 1:
+            raise ParameterError(f"`{field}` must {fix}; got {v!r} among {vals!r}.")
+    total = math.fsum(vals)
+    if abs(total - 1.0) > SUM_TOL:
+        raise ParameterError(f"`{field}` must {fix}; its entries sum to {total:.6g}.")
+    return tuple(float(v) for v in vals)
+
+
+def proportional_odds_shift(p0, odds_ratio: float) -> np.ndarray:
+    """Treated-arm category probabilities under proportional odds from control ``p0`` and ``odds_ratio``.
+
+    ``logit P(Y1 <= k) = logit P(Y0 <= k) - log(odds_ratio)`` for k = 0..K-2
+    (McCullagh 1980, J R Stat Soc B 42:109-142): the odds of being above any
+    cut are multiplied by ``odds_ratio``.
+    """
+    p0 = np.asarray(p0, float) / math.fsum(p0)
+    cum0 = np.cumsum(p0)[:-1]
+    odds = cum0 / (1.0 - cum0) / odds_ratio
+    cum1 = np.concatenate([[0.0], odds / (1.0 + odds), [1.0]])
+    return np.diff(cum1)
+
+
+def probability_index(p0, p1) -> float:
+    """``P(Y1 > Y0) + P(Y1 = Y0) / 2`` for independent categorical Y0 ~ p0, Y1 ~ p1 (1/2: no effect)."""
+    p0, p1 = np.asarray(p0, float), np.asarray(p1, float)
+    below0 = np.concatenate([[0.0], np.cumsum(p0)[:-1]])   # P(Y0 < k)
+    return float(np.sum(p1 * (below0 + 0.5 * p0)))
+
+
+class OrdinalTwoArm(TwoArms, Process):
+    """Two independent arms with an ordered categorical outcome (categories 0..K-1).
+
+    Parameters
+    ----------
+    n : int >= 2
+        Size of the control arm (arm 0).
+    p0 : list of K >= 2 floats in (0, 1), summing to 1
+        Control-arm category probabilities, lowest category first.
+    odds_ratio : float > 0
+        Proportional-odds effect: the odds of a higher category (above any
+        cut), treated over control; > 1 moves the treated arm up. Give this
+        or ``p1``. Default 1 (no effect) when ``p1`` is not given.
+    p1 : list of K floats, optional
+        The treated arm's category probabilities, given outright (may break
+        proportional odds).
+    ratio, n1, sizes, allocation
+        Arm sizes, as for every two-arm process (DEVELOPERS.md, "Design vocabulary").
+    missing : missingness, optional
+        Missing-outcome mechanism (``mcar``, ``mar``, ``mnar``), applied once
+        after the outcomes are drawn; hidden outcomes are NaN.
+
+    Notes
+    -----
+    The estimand (:meth:`true_effect`) is ``log(odds_ratio)`` (the
+    ``proportional_odds`` analysis estimates it). With ``p1`` there is no
+    single odds ratio: :meth:`true_effect` is None, and the probability index
+    ``P(Y1 > Y0) + P(Y1 = Y0)/2`` that ``mann_whitney`` with
+    ``estimand = "probability"`` estimates is :attr:`probability_index` (give it
+    through the scenario's ``true_effects``). :meth:`facts` states
+    :class:`~simpower.facts.OrdinalFacts` under proportional odds without
+    missing outcomes (Whitehead's 1993 closed form then applies).
+
+    Examples
+    --------
+    An odds ratio of 2 on four equally likely categories:
+
+    >>> p = OrdinalTwoArm(n=50, p0=[0.25, 0.25, 0.25, 0.25], odds_ratio=2.0)
+    >>> [round(float(v), 4) for v in p.p1_probs]
+    [0.1429, 0.1905, 0.2667, 0.4]
+    >>> round(p.true_effect(), 4), p.null().odds_ratio
+    (0.6931, 1.0)
+    """
+
+    name = "ordinal_two_arm"
+    params = arm_params({
+        "n": Int(low=2),
+        "p0": Described(text="a list of category probabilities summing to 1 (e.g. [0.2, 0.5, 0.3])"),
+        "odds_ratio": Real(0.0, low_open=True, optional=True),
+        "p1": Described(text="a list of treated-arm category probabilities summing to 1", optional=True),
+        "missing": Nested("missingness", optional=True),
+    })
+    defaults = arm_defaults({"odds_ratio": None, "p1": None, "missing": None})
+    size_param = "n"
+
+    def _check(self):
+        p = dict(self._p)
+        p["p0"] = _probabilities("p0", p["p0"])
+        if p["p1"] is not None:
+            if p["odds_ratio"] is not None:
+                raise ParameterError("`odds_ratio`, `p1`: give the proportional-odds effect or the treated arm's "
+                                     "probabilities, not both.")
+            p["p1"] = _probabilities("p1", p["p1"])
+            if len(p["p1"]) != len(p["p0"]):
+                raise ParameterError(f"`p1` must have one probability per category of `p0` ({len(p['p0'])}); "
+                                     f"got {len(p['p1'])}.")
+        elif p["odds_ratio"] is None:
+            p["odds_ratio"] = 1.0
+        check_missing_columns(p["missing"], {"arm"}, self.name)
+        self._set_params(p)
+        self._check_arms()
+
+    # -- derived ---------------------------------------------------------
+    @property
+    def effect_param(self) -> str:  # type: ignore[override]
+        """``odds_ratio`` (null 1), or ``p1`` (null: ``p0``) when the treated arm was given outright."""
+        return "p1" if self._p["p1"] is not None else "odds_ratio"
+
+    def null_value(self):
+        return list(self.p0) if self.effect_param == "p1" else 1.0
+
+    @property
+    def proportional_odds(self) -> bool:
+        """Whether the arms differ by a proportional-odds shift (``odds_ratio`` given)."""
+        return self._p["p1"] is None
+
+    @property
+    def k(self) -> int:
+        """Number of categories."""
+        return len(self.p0)
+
+    @property
+    def p0_probs(self) -> np.ndarray:
+        """Control-arm probabilities (normalised to sum to 1 exactly)."""
+        return np.asarray(self.p0, float) / math.fsum(self.p0)
+
+    @property
+    def p1_probs(self) -> np.ndarray:
+        """Treated-arm probabilities: ``p1`` normalised, or the proportional-odds shift of ``p0``."""
+        if self._p["p1"] is not None:
+            return np.asarray(self._p["p1"], float) / math.fsum(self._p["p1"])
+        return proportional_odds_shift(self.p0, self.odds_ratio)
+
+    @property
+    def probability_index(self) -> float:
+        """``P(Y1 > Y0) + P(Y1 = Y0) / 2`` (1/2 under no effect), what ``mann_whitney`` estimates."""
+        return probability_index(self.p0_probs, self.p1_probs)
+
+    @property
+    def estimand_label(self) -> str | None:  # type: ignore[override]
+        return "log odds ratio" if self.proportional_odds else None
+
+    def true_effect(self) -> float | None:
+        """``log(odds_ratio)``; None with ``p1`` (no single odds ratio: see :attr:`probability_index`)."""
+        return math.log(self.odds_ratio) if self.proportional_odds else None
+
+    def facts(self):
+        """:class:`~simpower.facts.OrdinalFacts` under proportional odds without missing outcomes, else none."""
+        if self.missing is not None or not self.proportional_odds:
+            return ()
+        return (OrdinalFacts(p0=tuple(self.p0_probs), p1=tuple(self.p1_probs), odds_ratio=float(self.odds_ratio),
+                             n=self.n, ratio=self.n1 / self.n),)
+
+    # -- drawing -----------------------------------------------------------
+    def draw_batch(self, rng, size):
+        n0, n1 = self.n0, self.n1
+        u = rng.random((size, n0 + n1))
+        y = np.empty(u.shape)
+        # category = number of cumulative probabilities at or below u (the K-1 inner cuts)
+        for sl, probs in ((slice(0, n0), self.p0_probs), (slice(n0, n0 + n1), self.p1_probs)):
+            cuts = np.cumsum(probs)[:-1]
+            y[:, sl] = np.searchsorted(cuts, u[:, sl], side="right")
+        arm = self.arm_labels()
+        per_rep, info = {"y": y}, self.arm_info()
+        apply_missing(self.missing, rng, y, {"arm": arm}, per_rep, info)
+        return Batch(size, per_rep, {"arm": arm}, info)
+
+    def describe(self):
+        p0 = ", ".join(f"{v:g}" for v in self.p0)
+        p1 = ", ".join(f"{v:.3g}" for v in self.p1_probs)
+        effect = (f"proportional odds, odds ratio {self.odds_ratio:g} (treated shifted "
+                  f"{'up' if self.odds_ratio > 1 else 'down' if self.odds_ratio < 1 else 'nowhere'})"
+                  if self.proportional_odds else "treated probabilities given (proportional odds not assumed)")
+        miss = f"; missing outcomes: {self.missing.describe()}" if self.missing is not None else ""
+        return (f"{self.arms_text()}, ordinal outcome with {self.k} categories 0..{self.k - 1}: probabilities "
+                f"[{p0}] (control) and [{p1}] (treatment); {effect}{miss}")
