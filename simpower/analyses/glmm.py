@@ -204,36 +204,54 @@ def loglik_cells(theta, n, s, family: str, nodes, v0=None, gradient: bool = True
     nw = n * w
     h = 1.0 + sg * sg * nw.sum(-1)
     sc = np.sqrt(2.0 / h)
-    vk = v[..., None] + sc[..., None] * z                          # (..., G, Q)
-    etak = base[..., None, :] + (sg[..., None] * vk)[..., None]    # (..., G, Q, C)
-    nn, ss = n[..., None, :], s[..., None, :]
+    # node arrays put the node axis (and the cell axis) first: (Q, ..., G), (C, Q, ..., G), so the
+    # inner loops of numpy run over the contiguous replicates x clusters
+    zq = z.reshape((-1,) + (1,) * v.ndim)
+    vk = v + sc * zq                                               # (Q, ..., G)
+    svk = sg * vk
     one = n.shape[-1] == 1                                         # one cell per cluster: no sum over cells
-    cs = (lambda x: x[..., 0]) if one else (lambda x: x.sum(-1))  # noqa: E731
-    E = lambda x: np.einsum("...q,...q->...", pk, x)  # noqa: E731  quadrature of x over a cluster's nodes
+    if one:
+        nn, ss, cq = n[..., 0], s[..., 0], ca[..., 0]
+        etak = base[..., 0] + svk
+        cs = lambda x: x  # noqa: E731
+    else:
+        nn, ss, cq = (np.moveaxis(x, -1, 0)[:, None] for x in (n, s, ca))  # (C, 1, ..., G)
+        etak = np.moveaxis(base, -1, 0)[:, None] + svk
+        cs = lambda x: x.sum(0)  # noqa: E731
+    E = lambda x: np.einsum("q...,q...->...", pk, x)  # noqa: E731  quadrature over a cluster's nodes
     if family == "binomial":
-        e = np.exp(-np.abs(etak))
-        psik = np.maximum(etak, 0.0) + np.log1p(e)
-        muk = np.where(etak >= 0, 1.0, e) / (1.0 + e)
+        muk = special.expit(etak)
+        psik = np.log(muk)
+        np.subtract(etak, psik, out=psik)                          # log(1 + e^eta) = eta - log(expit(eta))
     else:
         psik = muk = np.exp(etak)
-    gk = cs(ss * etak - nn * psik) - 0.5 * vk * vk - 0.5 * LOG_2PI
-    a = gk + logw
-    top = a.max(-1, keepdims=True)
-    ea = np.exp(a - top)
-    tot = ea.sum(-1)
+    a = ss * etak
+    a -= nn * psik
+    if not one:
+        a = a.sum(0)
+    a -= 0.5 * vk * vk
+    a += (logw - 0.5 * LOG_2PI).reshape(zq.shape)
+    top = a.max(0)
+    a -= top
+    ea = np.exp(a, out=a)
+    tot = ea.sum(0)
     used = n.sum(-1) > 0
-    ll = np.where(used, np.log(sc) + np.log(tot) + top[..., 0], 0.0).sum(-1)
+    ll = np.where(used, np.log(sc) + np.log(tot) + top, 0.0).sum(-1)
     if not gradient:
         return ll, None, v
-    pk = ea / tot[..., None]                                       # weights of the nodes
-    rk = ss - nn * muk                                             # (..., G, Q, C) residuals
+    pk = ea
+    pk /= tot                                                      # weights of the nodes
+    rk = ss - nn * muk                                             # residuals per node (and cell)
     P = cs(rk)
-    P1 = P * ca[..., 0, None] if one else (rk * ca[..., None, :]).sum(-1)
     vP = vk * P
-    dg = np.stack([E(P), E(P1), E(vP)], -1)
-    gv = sg[..., None] * P - vk                                    # g'(v_k)
+    m = [E(P), None, E(vP)]
+    m[1] = cq * m[0] if one else E((rk * cq).sum(0))
+    dg = np.stack(m, -1)
+    gv = sg * P
+    gv -= vk                                                       # g'(v_k)
     e_gv = E(gv)
-    e_gvz = E(gv * z)
+    gv *= zq
+    e_gvz = E(gv)
     # at the mode
     r0 = (s - n * mu).sum(-1)
     w3 = nw * (1.0 - 2.0 * mu) if family == "binomial" else nw
@@ -261,16 +279,28 @@ def loglik_cells(theta, n, s, family: str, nodes, v0=None, gradient: bool = True
         h22 = -c(v * v * wsum) + (dd[..., 2] * dgv[..., 2]).sum(-1)
     else:                        # clusters without data have P = A = B = 0: they add nothing
         wk = muk * (1.0 - muk) if family == "binomial" else muk
-        A = cs(nn * wk)
-        B = A * ca[..., 0, None] if one else (nn * wk * ca[..., None, :]).sum(-1)
         m0, m1, m2 = dg[..., 0], dg[..., 1], dg[..., 2]
-        PPA, PPB = P * P - A, P * P1 - B
-        h00 = (E(PPA) - m0 * m0).sum(-1)
-        h01 = (E(PPB) - m0 * m1).sum(-1)
-        h02 = (E(vk * PPA) - m0 * m2).sum(-1)
-        h11 = (E(P1 * P1 - B) - m1 * m1).sum(-1)
-        h12 = (E(vk * PPB) - m1 * m2).sum(-1)
-        h22 = (E(vk * vk * PPA) - m2 * m2).sum(-1)
+        if one:                  # the cell's arm cq (0 or 1) is constant over the nodes: P1 = cq P, B = cq A
+            PPA = P * P
+            PPA -= nn * wk
+            e0 = E(PPA)
+            PPA *= vk
+            e1 = E(PPA)
+            PPA *= vk
+            e2 = E(PPA)
+            h00, h01, h02 = (e0 - m0 * m0).sum(-1), (cq * e0 - m0 * m1).sum(-1), (e1 - m0 * m2).sum(-1)
+            h11, h12, h22 = (cq * e0 - m1 * m1).sum(-1), (cq * e1 - m1 * m2).sum(-1), (e2 - m2 * m2).sum(-1)
+        else:
+            A = cs(nn * wk)
+            B = (nn * wk * cq).sum(0)
+            P1 = (rk * cq).sum(0)
+            PPA, PPB = P * P - A, P * P1 - B
+            h00 = (E(PPA) - m0 * m0).sum(-1)
+            h01 = (E(PPB) - m0 * m1).sum(-1)
+            h02 = (E(vk * PPA) - m0 * m2).sum(-1)
+            h11 = (E(P1 * P1 - B) - m1 * m1).sum(-1)
+            h12 = (E(vk * PPB) - m1 * m2).sum(-1)
+            h22 = (E(vk * vk * PPA) - m2 * m2).sum(-1)
     Hm = np.stack([np.stack([h00, h01, h02], -1), np.stack([h01, h11, h12], -1),
                    np.stack([h02, h12, h22], -1)], -2)
     return ll, grad, v, Hm
