@@ -96,19 +96,8 @@ SEPARATION = "warning:PerfectSeparationWarning"
 NONCONVERGENCE = "warning:ConvergenceWarning"
 
 
-# ---------------------------------------------------------------------------
-# the family: psi(eta) (the cumulant), mu = psi', w = psi'', w' = psi'''
-# ---------------------------------------------------------------------------
-def _family_terms(family: str, eta):
-    if family == "binomial":
-        mu = special.expit(eta)
-        w = mu * (1.0 - mu)
-        return np.logaddexp(0.0, eta), mu, w, w * (1.0 - 2.0 * mu)
-    mu = np.exp(eta)
-    return mu, mu, mu, mu
-
-
 def _mean(family: str, eta):
+    """The mean (= the cumulant's derivative) at the linear predictor ``eta``: expit or exp."""
     return special.expit(eta) if family == "binomial" else np.exp(eta)
 
 
@@ -510,11 +499,18 @@ class GLMMFit:
 
 
 def fit_one(n, s, family: str, points: int, maxiter: int, log_fact: float = 0.0):
-    """Fit one replicate's cell table (G, 2) with ``scipy.optimize.minimize`` (BFGS, analytic gradient)."""
+    """Fit one replicate's cell table (G, 2) with ``scipy.optimize.minimize`` (BFGS, analytic gradient).
+
+    A separated table (see :func:`separated`) is not fitted: its fields are NaN.
+    """
     from scipy import optimize
 
     nodes = gauss_hermite(points)
     n, s = n[None], s[None]
+    clusters = int(np.count_nonzero(n[0].sum(-1) > 0))
+    if separated(n, s, family)[0]:
+        return GLMMFit(b0=math.nan, b1=math.nan, sigma=math.nan, se=math.nan, loglik=math.nan, clusters=clusters,
+                       converged=False, boundary=False, separated=True)
     cache = {}
 
     def fun(th):
@@ -535,9 +531,8 @@ def fit_one(n, s, family: str, points: int, maxiter: int, log_fact: float = 0.0)
     gsmall = bool(np.max(np.abs(g[0])) <= GRADIENT_TOL * (1.0 + abs(ll[0])))
     sigma = abs(float(th[0, 2]))
     return GLMMFit(b0=float(th[0, 0]), b1=float(th[0, 1]), sigma=sigma, se=float(np.sqrt(cov[1, 1])),
-                   loglik=float(ll[0]) - log_fact, clusters=int(np.count_nonzero(n[0].sum(-1) > 0)),
-                   converged=bool(nd and gsmall and np.isfinite(ll[0])), boundary=sigma < 1e-6,
-                   separated=bool(separated(n, s, family)[0]))
+                   loglik=float(ll[0]) - log_fact, clusters=clusters,
+                   converged=bool(nd and gsmall and np.isfinite(ll[0])), boundary=sigma < 1e-6, separated=False)
 
 
 # ---------------------------------------------------------------------------
