@@ -244,6 +244,24 @@ def test_separation_is_flagged_on_both_paths():
     assert one.pvalue == 1.0
 
 
+def test_no_finite_sigma_is_flagged_on_both_paths():
+    # every cluster all events or all non-events (both arms have both): the marginal likelihood grows
+    # towards (1/2)^clusters as sigma grows (each cluster's probability tends to P(intercept on one
+    # side) = 1/2, common practice), so there is no maximum; a finite quadrature may show a spurious one
+    proc = ClusterCounts(clusters=4, cluster_size=5, effect=0.3)
+    batch = proc.draw_batch(np.random.default_rng(0), 3)
+    batch.per_rep["y"][0] = np.repeat([1.0, 0, 1, 0, 0, 1, 1, 0], 5)
+    an = GLMM()
+    res = an.batch(batch)
+    assert res.trouble["warning:ConvergenceWarning"].tolist() == [True, False, False]
+    with pytest.warns(Warning, match="sigma has no finite estimate"):
+        an(batch.replicate(0))
+    data = batch.replicate(0)
+    near = quad_loglik(data, 0.0, 0.0, 20.0, "binomial")
+    assert quad_loglik(data, 0.0, 0.0, 200.0, "binomial") > near            # still increasing in sigma
+    assert near < 8 * math.log(0.5) < 0.0                                       # towards (1/2)^8 from below
+
+
 def test_an_arm_without_observed_outcomes_is_an_error_on_both_paths():
     proc = ClusterCounts(clusters=3, cluster_size=4, effect=0.3, missing_rate=0.1)
     batch = proc.draw_batch(np.random.default_rng(2), 5)

@@ -59,8 +59,9 @@ flagged per replicate, on both paths alike:
     NaN estimate; the run's fit-trouble policy decides how it counts.
 ``warning:ConvergenceWarning``
     the optimiser stopped without a maximum (gradient not small, Hessian not negative
-    definite, non-finite values, ``maxiter`` reached; e.g. ``sigma`` running off when
-    every cluster is all events or all non-events). Values are kept but not trusted.
+    definite, non-finite values, ``maxiter`` reached), or there is none: binary outcomes
+    with every cluster all events or all non-events, where the likelihood grows without
+    bound in ``sigma`` (:func:`unbounded`). Values are kept but not trusted.
 
 A replicate in which one arm has no observed outcome at all cannot be fitted: the
 per-replicate path raises ``ValueError`` and the batch path hands the replicate to it.
@@ -94,6 +95,8 @@ HALVINGS = 40
 
 SEPARATION = "warning:PerfectSeparationWarning"
 NONCONVERGENCE = "warning:ConvergenceWarning"
+NONCONVERGENCE_MESSAGE = ("glmm: the optimiser stopped without a maximum of the likelihood (e.g. every cluster "
+                          "all events or all non-events: sigma has no finite estimate)")
 
 
 def _mean(family: str, eta):
@@ -372,6 +375,20 @@ def separated(n, s, family, ca=None):
     return np.any(bad & (N > 0), axis=-1)
 
 
+def unbounded(n, s, family):
+    """(...,) bool: binary outcomes with every cluster all events or all non-events.
+
+    The likelihood then grows without bound as sigma grows (each cluster's probability
+    tends to that of its intercept lying on one side), so there is no finite maximum; a
+    quadrature with finitely many nodes may still show a spurious one. Such a replicate is
+    reported as not converged on both paths.
+    """
+    if family != "binomial":
+        return np.zeros(n.shape[:-2], bool)
+    N, S = n.sum(-1), s.sum(-1)
+    return np.all((S == 0) | (S == N), -1)
+
+
 # ---------------------------------------------------------------------------
 # the batch fit: Newton across replicates
 # ---------------------------------------------------------------------------
@@ -446,7 +463,7 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
         lam = np.linalg.eigvalsh(np.where(np.isfinite(Hc), Hc, 0.0))
     nd = np.all(lam < 0, -1) & np.all(np.isfinite(Hc), (-1, -2))
     gsmall = np.max(np.abs(g), -1) <= GRADIENT_TOL * (1.0 + np.abs(ll))
-    ok = converged & nd & gsmall & np.isfinite(ll)
+    ok = converged & nd & gsmall & np.isfinite(ll) & ~unbounded(n, s, family)
     sigma = np.abs(theta[:, 2])
     return {"b0": theta[:, 0], "b1": theta[:, 1], "sigma": sigma, "se": np.sqrt(cov[:, 1, 1]), "loglik": ll,
             "converged": ok, "boundary": sigma < 1e-6, "iterations": iters}
@@ -532,7 +549,8 @@ def fit_one(n, s, family: str, points: int, maxiter: int, log_fact: float = 0.0)
     sigma = abs(float(th[0, 2]))
     return GLMMFit(b0=float(th[0, 0]), b1=float(th[0, 1]), sigma=sigma, se=float(np.sqrt(cov[1, 1])),
                    loglik=float(ll[0]) - log_fact, clusters=clusters,
-                   converged=bool(nd and gsmall and np.isfinite(ll[0])), boundary=sigma < 1e-6, separated=False)
+                   converged=bool(nd and gsmall and np.isfinite(ll[0]) and not unbounded(n, s, family)[0]),
+                   boundary=sigma < 1e-6, separated=False)
 
 
 # ---------------------------------------------------------------------------
@@ -612,7 +630,7 @@ class GLMM(Analysis):
         if not fit.converged:
             from statsmodels.tools.sm_exceptions import ConvergenceWarning
 
-            warnings.warn(ConvergenceWarning("glmm: the optimiser stopped without a maximum of the likelihood"))
+            warnings.warn(ConvergenceWarning(NONCONVERGENCE_MESSAGE))
         out = self._result(np.asarray(fit.b1), np.asarray(fit.se), np.asarray(float(fit.clusters)))
         return TestResult(**{k: float(v) for k, v in out.items()})
 
@@ -692,5 +710,5 @@ class GLMM(Analysis):
                                       "maximum likelihood estimate")
         trouble = ~fit["converged"] & ~sep & ~fit["unfit"]
         if trouble.any():
-            res.mark(NONCONVERGENCE, trouble, "glmm: the optimiser stopped without a maximum of the likelihood")
+            res.mark(NONCONVERGENCE, trouble, NONCONVERGENCE_MESSAGE)
         return hand_over(self, batch, res, fit["unfit"])
