@@ -153,6 +153,24 @@ def test_fitted_optimum_is_a_maximum_of_the_integrated_likelihood(family):
             assert quad_loglik(data, *th, family) < best, (i, d)
 
 
+@pytest.mark.parametrize("family", ["binomial", "poisson"])
+def test_standard_error_is_from_the_hessian_of_the_integrated_likelihood(family):
+    # the SE of b1 is sqrt of the b1 entry of minus the inverse Hessian of the marginal log-likelihood:
+    # here that Hessian by central differences (step 1e-3) of the quad-integrated log-likelihood
+    proc = ClusterCounts(clusters=4, cluster_size=10, sigma=0.8, b0=-0.2, effect=0.6, family=family)
+    data = proc.draw_batch(np.random.default_rng(5), 1).replicate(0)
+    fit = GLMM(family=family, quadrature_points=20).fit(data)
+    th, h = np.array([fit.b0, fit.b1, fit.sigma]), 1e-3
+    f = lambda x: quad_loglik(data, *x, family)  # noqa: E731
+    H = np.empty((3, 3))
+    for j in range(3):
+        for k in range(3):
+            ej, ek = np.eye(3)[j] * h, np.eye(3)[k] * h
+            H[j, k] = (f(th + ej + ek) - f(th + ej - ek) - f(th - ej + ek) + f(th - ej - ek)) / (4 * h * h)
+    se = math.sqrt(np.linalg.inv(-H)[1, 1])
+    assert fit.se == pytest.approx(se, rel=1e-4)
+
+
 @pytest.mark.parametrize("family,reps", [("binomial", 200), ("poisson", 100)])
 def test_batch_equals_per_replicate_scipy_fits(family, reps):
     # the vectorised Newton fit equals scipy.optimize.minimize (BFGS) on each replicate: estimates and
