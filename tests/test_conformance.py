@@ -125,6 +125,17 @@ PAIRS = [
     ({"type": "paired_t"}, PAIRED),
     ({"type": "permutation_test", "n_resamples": 199}, TWO_ARM),
     ({"type": "poisson_glm"}, COUNTS),
+    # the GLMM's two paths are two optimisers of one likelihood (tests/test_glmm.py: agreement to 1e-6)
+    ({"type": "glmm"}, ("trial", {"design": {"type": "clusters", "clusters": 5, "cluster_size": 8,
+                                             "cluster_size_cv": 0.4, "icc": 0.1},
+                                  "outcome": {"type": "binary", "p0": 0.3, "odds_ratio": 2.0,
+                                              "estimand": "conditional_log_odds_ratio"},
+                                  "missing": {"type": "mcar", "rate": 0.1}}), {"rtol": 1e-6, "atol": 1e-7}),
+    ({"type": "glmm", "family": "poisson"}, ("trial", {"design": {"type": "clusters", "clusters": 5,
+                                                                  "cluster_size": 8, "icc": 0.05},
+                                                       "outcome": {"type": "count", "rate0": 1.5,
+                                                                   "rate_ratio": 1.4}}),
+     {"rtol": 1e-6, "atol": 1e-7}),
     ({"type": "posterior_probability"}, TWO_ARM),
     ({"type": "posterior_probability", "sd": 1.0, "prior_sd": 0.5}, ("normal_two_arm", {
         "n": 12, "effect": 0.5, "missing": {"type": "mcar", "rate": 0.2}})),
@@ -159,7 +170,7 @@ NESTED = {
     ("missingness", "mnar"): {"rate": 0.2},
 }
 
-#: analyses with no compatible built-in process: name -> reason (none today)
+#: analyses with no compatible built-in process: name -> reason
 NO_PROCESS: dict[str, str] = {}
 #: known violations found by the kit, marked xfail(strict=True): id -> reason
 KNOWN: dict[str, str] = {
