@@ -11,7 +11,9 @@ a *layout*, a typed view computed from it on first use and cached on the batch:
   ``pair`` ids in both, no padding;
 * ``clustered`` (:class:`ClusteredLayout`): ``y``, ``arm``, ``cluster``;
 * ``longitudinal`` (:class:`LongitudinalLayout`): ``y``, ``arm``, ``visit`` (and ``subject``);
-* ``survival`` (:class:`SurvivalLayout`): ``time``, ``event``, ``arm`` with labels in {0, 1}.
+* ``survival`` (:class:`SurvivalLayout`): ``time``, ``event``, ``arm`` with labels in {0, 1};
+* ``stepped`` (:class:`SteppedLayout`): ``y``, ``cluster``, ``period``, ``treat`` (a treatment
+  indicator that varies by cluster and period, so not the two-arm ``arm``).
 
 A batch may have several layouts at once (paired data are also two-arm data,
 a cluster trial's table is also a two-arm table). Every layout carries the
@@ -34,7 +36,7 @@ from typing import Any
 
 import numpy as np
 
-LAYOUTS = ("table", "one_sample", "two_arm", "paired", "clustered", "longitudinal", "survival")
+LAYOUTS = ("table", "one_sample", "two_arm", "paired", "clustered", "longitudinal", "survival", "stepped")
 
 
 @dataclass
@@ -331,6 +333,21 @@ class SurvivalLayout(Layout):
         return self.y
 
 
+@dataclass(frozen=True, eq=False)
+class SteppedLayout(Layout):
+    """Multi-period cluster designs (stepped wedge): ``cluster``, ``period`` and ``treat`` per row.
+
+    Each of the three is (N,) shared or (R, N) per replicate; ``treat`` is 0/1
+    and may change within a cluster from one period to the next.
+    """
+
+    kind = "stepped"
+
+    cluster: np.ndarray = None
+    period: np.ndarray = None
+    treat: np.ndarray = None
+
+
 # -- building them from a batch -------------------------------------------------------------
 def _base(batch: Batch, y) -> dict:
     return {"y": y, "present": batch.present, "missing": batch.missing, "per_rep": batch.per_rep,
@@ -403,5 +420,12 @@ def _survival(batch):
                           labels=labels)
 
 
+def _stepped(batch):
+    if "y" not in batch.per_rep or not all(c in batch for c in ("cluster", "period", "treat")):
+        return None
+    return SteppedLayout(**_base(batch, batch.per_rep["y"]), cluster=batch["cluster"], period=batch["period"],
+                         treat=batch["treat"])
+
+
 _BUILDERS = {"table": _table, "one_sample": _one_sample, "two_arm": _two_arm, "paired": _paired, "clustered": _clustered,
-             "longitudinal": _longitudinal, "survival": _survival}
+             "longitudinal": _longitudinal, "survival": _survival, "stepped": _stepped}
