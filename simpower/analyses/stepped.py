@@ -1,0 +1,389 @@
+"""The linear mixed model of a stepped-wedge trial: statsmodels MixedLM per replicate, REML batches.
+
+Model (Hussey & Hughes 2007; Hooper et al. 2016 for the nested form):
+
+    y_ikt = mu_t + theta treat_kt + b_k [+ c_kt] + e_ikt,
+
+period fixed effects ``mu_t``, a random cluster intercept ``b_k ~ N(0, sigma_b^2)``,
+with ``structure = "nested"`` also a cluster-period random effect
+``c_kt ~ N(0, sigma_c^2)``, residuals ``e ~ N(0, sigma_e^2)``; fitted by REML, Wald
+test of theta = 0.
+
+Per replicate, :class:`SteppedMixed` calls statsmodels ``MixedLM`` with the
+formula ``y ~ C(period) + treat``, ``groups = cluster`` and, for the nested
+structure, the variance component ``0 + C(period)`` within clusters, optimised
+by Powell's method with tight tolerances (statsmodels' default gradient
+methods often stop short of the REML optimum here: by up to 0.1 in the log
+likelihood of a nested model in our trials), or by statsmodels' default
+where Powell's method steps on a variance of exactly 0 (a singular system).
+
+The batch path (treatment constant within each cluster-period cell, every
+period observed) uses the cell sufficient statistics: with ``n_kt`` observed
+outcomes of mean ``ybar_kt`` in a cell, the within-cell sum of squares ``W``
+carries ``sigma_e^2`` only, and ``z_kt = sqrt(n_kt) ybar_kt`` has, per cluster,
+covariance ``sigma_e^2 (I + gamma_c diag(n) + gamma_b v v')``, ``v = sqrt(n)``,
+``gamma = sigma^2 / sigma_e^2``. The REML criterion with ``sigma_e^2`` and the
+fixed effects profiled out,
+
+    f(gamma) = (N - p) log(W + Q) + log|V| + log|X' V^-1 X|,
+
+(``Q`` the GLS residual form of the ``z``, N observations, p = periods + 1
+fixed effects) is scanned on a grid of variance ratios for all replicates at
+once and minimised by projected Newton steps with its analytic gradient and
+Hessian (a ratio estimated at 0 stays on the boundary when the gradient
+points outward). The standard error is statsmodels': the inverse of the
+Hessian of the profiled log-likelihood in (fixed effects, variance ratios),
+the ratios at the boundary included. Where that Hessian is not positive
+definite (statsmodels then warns, and may give no standard error) the
+replicate is flagged as fit trouble (``warning:ConvergenceWarning``) and
+reports the standard error without the ratios held at 0.
+
+Reference distribution (``df``): ``"wald"`` the normal (statsmodels' own and
+Hussey & Hughes's); ``"clusters"`` Student's t with G - 2 degrees of freedom,
+G the clusters with an observed outcome (common practice for cluster trials with
+few clusters; Hemming, Kasza et al. 2020, BMJ, recommend a small-sample
+correction for stepped wedges with fewer than about 40 clusters, from memory).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+
+import numpy as np
+from scipy import stats
+
+from .._validation import Choice
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
+from .numeric import p_from_t, p_from_z
+
+#: statsmodels' warning at a small variance estimate: a boundary fit is an answer, not fit trouble
+BOUNDARY_WARNING = r".*on the boundary of the parameter space"
+TROUBLE_MESSAGE = "batch REML (stepped wedge): no interior optimum with a negative definite Hessian was reached"
+
+GRID_1D = 0.995 * np.linspace(0.0, 1.0, 21) ** 2
+GRID_2D = 0.99 * np.linspace(0.0, 1.0, 9) ** 2
+NEWTON_STEPS = 60
+
+
+# ---------------------------------------------------------------------------
+# cell sufficient statistics
+# ---------------------------------------------------------------------------
+class _Cells:
+    """Per-replicate cell statistics: counts n, means ybar (R, K, T), within-cell SS W and N (R,)."""
+
+    def __init__(self, n, ybar, W, N, X, shift):
+        self.n, self.ybar, self.W, self.N, self.X, self.shift = n, ybar, W, N, X, shift
+        self.p = X.shape[-1]
+        self.fac = N - self.p
+
+    def subset(self, sel):
+        return _Cells(self.n[sel], self.ybar[sel], self.W[sel], self.N[sel], self.X, self.shift[sel])
+
+
+def cell_statistics(y, observed, cluster, period, treat) -> _Cells | None:
+    """Cell statistics from a stepped batch with shared integer design columns; None if treat varies in a cell."""
+    cluster = np.asarray(cluster, np.intp)
+    period = np.asarray(period, np.intp)
+    K, T = int(cluster.max()) + 1, int(period.max()) + 1
+    cell = cluster * T + period
+    C = K * T
+    tr = np.asarray(treat, float)
+    cnt = np.bincount(cell, minlength=C)
+    tsum = np.bincount(cell, tr, minlength=C)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        tcell = np.where(cnt > 0, tsum / np.maximum(cnt, 1), 0.0)
+    if np.any(np.abs(tr - tcell[cell]) > 0):
+        return None
+    R = y.shape[0]
+    w = observed.astype(float)
+    y0 = np.where(observed, y, 0.0)
+    N = w.sum(1)
+    with np.errstate(all="ignore"):
+        shift = y0.sum(1) / N
+    yc = np.where(observed, y - shift[:, None], 0.0)
+    onehot = np.zeros((y.shape[1], C))
+    onehot[np.arange(y.shape[1]), cell] = 1.0
+    n = w @ onehot
+    s = yc @ onehot
+    with np.errstate(all="ignore"):
+        ybar = np.where(n > 0, s / np.maximum(n, 1), 0.0)
+    dev = np.where(observed, yc - ybar[:, cell], 0.0)
+    W = (dev * dev).sum(1)
+    X = np.zeros((K, T, T + 1))
+    X[:, np.arange(T), np.arange(T)] = 1.0
+    X[..., T] = tcell.reshape(K, T)
+    return _Cells(n.reshape(R, K, T), ybar.reshape(R, K, T), W, N, X, shift)
+
+
+# ---------------------------------------------------------------------------
+# the profiled REML criterion, its derivatives, the fit
+# ---------------------------------------------------------------------------
+def _criterion(gb, gc, st: _Cells):
+    """Profiled criterion f (R,) at variance ratios gb, gc (R,) (structured inverse, no derivatives)."""
+    n = st.n
+    v = np.sqrt(n)
+    z = v * st.ybar
+    d = 1.0 / (1.0 + gc[:, None, None] * n)
+    dv = d * v
+    sv = (dv * v).sum(-1)
+    c = gb[:, None] / (1.0 + gb[:, None] * sv)
+    Xz = v[..., None] * st.X
+    dvX = np.einsum("rkt,rktp->rkp", dv, Xz)
+    A = np.einsum("rkt,rktp,rktq->rpq", d, Xz, Xz) - np.einsum("rk,rkp,rkq->rpq", c, dvX, dvX)
+    dvz = (dv * z).sum(-1)
+    b = np.einsum("rkt,rktp,rkt->rp", d, Xz, z) - np.einsum("rk,rkp,rk->rp", c, dvX, dvz)
+    zz = (d * z * z).sum((1, 2)) - (c * dvz * dvz).sum(1)
+    with np.errstate(all="ignore"):
+        sign, logdetA = np.linalg.slogdet(A)
+        beta = np.linalg.solve(A, b[..., None])[..., 0]
+        Q = st.W + zz - (beta * b).sum(-1)
+        logdetV = np.log1p(gc[:, None, None] * n).sum((1, 2)) + np.log1p(gb[:, None] * sv).sum(1)
+        f = st.fac * np.log(Q) + logdetV + logdetA
+    return np.where((sign > 0) & (Q > 0), f, np.inf)
+
+
+def _derivatives(gb, gc, st: _Cells, nested: bool):
+    """f, the profiled gradient g (R, q) and Hessian H (R, q, q), the full matrix F over (beta, gamma), beta."""
+    n = st.n
+    R, K, T = n.shape
+    v = np.sqrt(n)
+    z = v * st.ybar
+    Xz = v[..., None] * st.X
+    V = (np.eye(T) + (gc[:, None, None] * n)[..., None] * np.eye(T)
+         + gb[:, None, None, None] * v[..., :, None] * v[..., None, :])
+    Vi = np.linalg.inv(V)
+    ViX = Vi @ Xz
+    A = np.einsum("rktp,rktq->rpq", Xz, ViX)
+    b = np.einsum("rktp,rkt->rp", ViX, z)
+    Ai = np.linalg.inv(A)
+    beta = np.einsum("rpq,rq->rp", Ai, b)
+    r = z - np.einsum("rktp,rp->rkt", Xz, beta)
+    Vir = np.einsum("rkts,rks->rkt", Vi, r)
+    Q = st.W + (r * Vir).sum((1, 2))
+    fac = st.fac
+    _, logdetA = np.linalg.slogdet(A)
+    f = fac * np.log(Q) + np.linalg.slogdet(V)[1].sum(1) + logdetA
+    Ds = [v[..., :, None] * v[..., None, :]]
+    if nested:
+        Ds.append(n[..., None] * np.eye(T))
+    q, p = len(Ds), st.p
+    ViD = [Vi @ D for D in Ds]
+    P = [VD @ Vi for VD in ViD]
+    Qi = [-np.einsum("rkt,rkts,rks->r", r, Pi, r) for Pi in P]
+    Ai_ = [-np.einsum("rktp,rkts,rksq->rpq", Xz, Pi, Xz) for Pi in P]
+    g = np.stack([fac * Qi[i] / Q + np.einsum("rktt->r", ViD[i]) + np.einsum("rpq,rqp->r", Ai, Ai_[i])
+                  for i in range(q)], -1)
+    F = np.empty((R, p + q, p + q))
+    F[:, :p, :p] = 2.0 * fac[:, None, None] * A / Q[:, None, None]
+    for i in range(q):
+        F[:, :p, p + i] = F[:, p + i, :p] = (2.0 * fac[:, None] * np.einsum("rktp,rkts,rks->rp", Xz, P[i], r)
+                                             / Q[:, None])
+        for j in range(i, q):
+            ViDiViDj = ViD[i] @ ViD[j]
+            Qij = 2.0 * np.einsum("rkt,rkts,rks->r", r, ViDiViDj @ Vi, r)
+            Aij = np.einsum("rktp,rkts,rksq->rpq", Xz, ViDiViDj @ Vi + ViD[j] @ ViD[i] @ Vi, Xz)
+            Lij = (-np.einsum("rktt->r", ViDiViDj) + np.einsum("rpq,rqp->r", Ai, Aij)
+                   - np.einsum("rpq,rqs,rst,rtp->r", Ai, Ai_[i], Ai, Ai_[j]))
+            F[:, p + i, p + j] = F[:, p + j, p + i] = fac * (Qij / Q - Qi[i] * Qi[j] / Q**2) + Lij
+    Fbb_inv = np.linalg.inv(F[:, :p, :p])
+    Fbg = F[:, :p, p:]
+    H = F[:, p:, p:] - np.einsum("rpi,rpq,rqj->rij", Fbg, Fbb_inv, Fbg)
+    return f, g, H, F, beta, Q
+
+
+def _start(st: _Cells, nested: bool):
+    """The best grid point per replicate (ratios gb, gc)."""
+    R = st.n.shape[0]
+    best = np.full(R, np.inf)
+    gb_best, gc_best = np.zeros(R), np.zeros(R)
+    grid_c = GRID_2D if nested else np.zeros(1)
+    grid_b = GRID_2D if nested else GRID_1D
+    for rc in grid_c:
+        for rb in grid_b:
+            gb = np.full(R, rb / (1.0 - rb))
+            gc = np.full(R, rc / (1.0 - rc))
+            f = _criterion(gb, gc, st)
+            better = f < best
+            best = np.where(better, f, best)
+            gb_best = np.where(better, gb, gb_best)
+            gc_best = np.where(better, gc, gc_best)
+    return gb_best, gc_best
+
+
+def _newton(st: _Cells, nested: bool):
+    """REML variance ratios per replicate: grid start, projected Newton, backtracking."""
+    R = st.n.shape[0]
+    q = 2 if nested else 1
+    gam = np.stack(_start(st, nested), -1)[:, :q]
+    done = np.zeros(R, bool)
+    for _ in range(NEWTON_STEPS):
+        act = ~done
+        if not act.any():
+            break
+        sub = st.subset(act)
+        g_a = gam[act]
+        gc_a = g_a[:, 1] if nested else np.zeros(g_a.shape[0])
+        with np.errstate(all="ignore"):
+            f0, g, H, _, _, _ = _derivatives(g_a[:, 0], gc_a, sub, nested)
+        fixed = (g_a <= 0) & (g > 0)           # on the boundary, gradient pointing outward
+        free = ~fixed
+        Hf = np.where(free[:, :, None] & free[:, None, :], H, 0.0) + np.where(fixed, 1.0, 0.0)[:, :, None] * np.eye(q)
+        gf = np.where(free, g, 0.0)
+        with np.errstate(all="ignore"):
+            step = -np.linalg.solve(Hf, gf[..., None])[..., 0]
+            pd = np.all(np.linalg.eigvalsh(Hf) > 0, axis=-1)
+        # not convex here: a scaled gradient step
+        fallback = -gf / np.maximum(np.abs(np.diagonal(Hf, axis1=1, axis2=2)), 1e-8)
+        step = np.where(pd[:, None] & np.all(np.isfinite(step), -1, keepdims=True), step, fallback)
+        step = np.clip(step, -1e6, 1e6)
+        scale = np.ones(g_a.shape[0])
+        new = np.maximum(g_a + step, 0.0)
+        accepted = np.zeros(g_a.shape[0], bool)
+        for _half in range(40):
+            new = np.maximum(g_a + scale[:, None] * step, 0.0)
+            f1 = _criterion(new[:, 0], new[:, 1] if nested else gc_a, sub)
+            ok = f1 <= f0 + 1e-12 * np.abs(f0)
+            accepted |= ok
+            if accepted.all():
+                break
+            scale = np.where(accepted, scale, 0.5 * scale)
+        moved = np.abs(new - g_a).max(-1)
+        gam_new = np.where(accepted[:, None], new, g_a)
+        conv = (moved <= 1e-10 * (1.0 + np.abs(g_a).max(-1))) | ~accepted
+        gam[act] = gam_new
+        idx = np.flatnonzero(act)
+        done[idx[conv]] = True
+    return gam, done
+
+
+def fit_cells(st: _Cells, nested: bool):
+    """Batched REML fit from cell statistics: dict of arrays (R,)."""
+    gam, converged = _newton(st, nested)
+    gb = gam[:, 0]
+    gc = gam[:, 1] if nested else np.zeros_like(gb)
+    with np.errstate(all="ignore"):
+        f, g, H, F, beta, Q = _derivatives(gb, gc, st, nested)
+    p = st.p
+    q = gam.shape[1]
+    at_bound = gam <= 0
+    free = ~at_bound
+    with np.errstate(all="ignore"):
+        # statsmodels' covariance: the inverse of the whole Hessian in (beta, gamma), the ratios at the
+        # boundary included; where that is not positive there, the ratios held at 0 are left out
+        cov = 2.0 * np.linalg.inv(F)
+        keep = np.concatenate([np.ones((gb.size, p), bool), free], axis=1)
+        Fk = np.where(keep[:, :, None] & keep[:, None, :], F, 0.0) + np.where(keep, 0.0, 1.0)[:, :, None] * np.eye(p + q)
+        reduced = 2.0 * np.linalg.inv(Fk)
+        bad = ~(cov[:, p - 1, p - 1] > 0) & at_bound.any(axis=1)
+        cov[bad] = reduced[bad]
+        # statsmodels warns (ConvergenceWarning) when this whole Hessian is not positive definite
+        not_pd = ~np.all(np.linalg.eigvalsh(F) > 0, axis=-1)
+    se = np.sqrt(cov[:, p - 1, p - 1])
+    scale = Q / st.fac
+    return {"theta": beta[:, p - 1], "se": se, "gamma_b": gb, "gamma_c": gc, "sigma_e2": scale,
+            "trouble": not_pd | ~converged | ~np.isfinite(se)}
+
+
+# ---------------------------------------------------------------------------
+# the analysis
+# ---------------------------------------------------------------------------
+class SteppedMixed(Analysis):
+    """Linear mixed model of a stepped-wedge trial: period fixed effects, treatment, random cluster effects.
+
+    H0: theta (treated minus control, adjusted for period) is 0.
+
+    Parameters
+    ----------
+    structure : {"exchangeable", "nested"}
+        Random cluster intercept only (Hussey & Hughes 2007), or also a
+        cluster-period random effect (Hooper et al. 2016; Girling & Hemming 2016).
+    df : {"wald", "clusters"}
+        Normal reference, or Student's t with clusters - 2 df (see the module notes).
+    alternative : {'two-sided', 'greater', 'less'}
+    ci_level : float in (0, 1)
+
+    Notes
+    -----
+    Needs the columns ``y``, ``cluster``, ``period``, ``treat`` (the ``stepped_wedge``
+    process's long table). Rows with a missing outcome are dropped.
+    """
+
+    name = "sw_mixed"
+    null_hypothesis = "no treatment effect (theta = 0), adjusted for period"
+    params = {"structure": Choice(("exchangeable", "nested")), "df": Choice(("wald", "clusters")),
+              "alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
+    defaults = {"structure": "exchangeable", "df": "wald", "alternative": "two-sided", "ci_level": 0.95}
+    layouts = ("stepped",)
+
+    # -- per replicate -------------------------------------------------------
+    def __call__(self, data):
+        import pandas as pd
+        import statsmodels.formula.api as smf
+
+        frame = data if isinstance(data, pd.DataFrame) else pd.DataFrame(
+            {k: np.asarray(v) for k, v in dict(data).items()})
+        for col in ("y", "cluster", "period", "treat"):
+            if col not in frame:
+                raise ValueError(f"sw_mixed needs a {col!r} column (a stepped-wedge long table)")
+        frame = frame[np.isfinite(frame["y"].to_numpy(float))]
+        extra = ({"re_formula": "1", "vc_formula": {"period": "0 + C(period)"}} if self.structure == "nested" else {})
+        model = smf.mixedlm("y ~ C(period) + treat", frame, groups=frame["cluster"], **extra)
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=BOUNDARY_WARNING)
+            try:
+                fit = model.fit(reml=True, method="powell", ftol=1e-12, maxiter=5000)
+            except np.linalg.LinAlgError:  # Powell tried a variance of exactly 0: the default optimiser
+                fit = model.fit(reml=True)
+        est = float(fit.fe_params["treat"])
+        se = float(fit.bse_fe["treat"])
+        df = float(frame["cluster"].nunique() - 2) if self.df == "clusters" else None
+        return self._result(np.asarray(est), np.asarray(se), df, scalar=True)
+
+    def _result(self, est, se, df, scalar=False):
+        with np.errstate(all="ignore"):
+            stat = est / se
+            if df is None:
+                p, crit = p_from_z(stat, self.alternative), stats.norm.ppf(0.5 + self.ci_level / 2)
+            else:
+                p, crit = p_from_t(stat, df, self.alternative), stats.t.ppf(0.5 + self.ci_level / 2, df)
+        out = {"pvalue": p, "estimate": est, "se": se, "ci_low": est - crit * se, "ci_high": est + crit * se}
+        if scalar:
+            return TestResult(**{k: float(v) for k, v in out.items()}, statistic=float(stat),
+                              df=math.inf if df is None else float(df))
+        return out
+
+    # -- batch ---------------------------------------------------------------
+    def _supports(self, layout):
+        cols = (layout.cluster, layout.period, layout.treat)
+        if any(np.ndim(c) != 1 for c in cols):
+            return False
+        if not all(np.issubdtype(np.asarray(c).dtype, np.integer) for c in cols[:2]):
+            return False
+        t = np.asarray(layout.treat)
+        return bool(np.all((t == 0) | (t == 1)) and np.asarray(cols[0]).min() >= 0 and np.asarray(cols[1]).min() >= 0)
+
+    def batch(self, batch):
+        layout = self.batch_layout(batch)
+        st = cell_statistics(layout.y, layout.observed, layout.cluster, layout.period, layout.treat)
+        if st is None:
+            raise ValueError("sw_mixed batch path: treat varies within a cluster-period cell")
+        R = layout.size
+        # periods or clusters without an observed outcome (or too few outcomes): statsmodels per replicate
+        n_per = st.n.sum(1)
+        n_cl = st.n.sum(2)
+        odd = np.any(n_per == 0, axis=1) | (st.fac <= 0)
+        good = ~odd
+        est = np.full(R, np.nan)
+        se = np.full(R, np.nan)
+        trouble = np.zeros(R, bool)
+        if good.any():
+            fit = fit_cells(st.subset(good), self.structure == "nested")
+            est[good], se[good], trouble[good] = fit["theta"], fit["se"], fit["trouble"]
+        df = (n_cl > 0).sum(1) - 2.0 if self.df == "clusters" else None
+        out = BatchResult(**self._result(est, se, df))
+        out.trouble = {"warning:ConvergenceWarning": trouble}
+        out.trouble_messages = {"warning:ConvergenceWarning": TROUBLE_MESSAGE}
+        if odd.any():
+            out = hand_over(self, batch, out, odd)
+        return out
