@@ -28,7 +28,8 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 from . import analytic
-from .facts import BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
+from .analytic.stepped import gls_variance, stepped_power
+from .facts import BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SteppedFacts, SurvivalFacts
 
 PowerFn = Callable[[Any, Any, float], "float | None"]
 
@@ -160,6 +161,24 @@ def _anova_f(a, f: MultiArmFacts, alpha):
     return analytic.anova_power(cohen, f.sizes[0], len(f.sizes), alpha, allocation=list(f.sizes))
 
 
+def _stepped_wedge(a, f: SteppedFacts, alpha):
+    """GLS variance of theta with the true variance components, Wald (or t, clusters - 2) power.
+
+    Only where the fitted model is the process's: a random cluster intercept for an exchangeable
+    process, cluster + cluster-period effects for a nested (or exchangeable) one, and no
+    persistent individual effects (cross-sectional, or a cohort with individual_autocorr 0).
+    """
+    if f.individual_autocorr != 0 or f.structure == "exponential":
+        return None
+    if a.structure == "exchangeable" and f.structure != "exchangeable":
+        return None
+    design = [row for row in f.sequences for _ in range(f.clusters_per_sequence)]
+    x = [[math.nan if v is None else v for v in row] for row in design]
+    var = gls_variance(x, f.m, f.icc, f.cac, f.structure, "cross_sectional", 0.0, f.sd)
+    df = None if a.df == "wald" else float(len(design) - 2)
+    return stepped_power(f.effect, var, alpha, a.alternative, df)
+
+
 def _pooled(a) -> bool:
     return bool(a.equal_var)  # the Welch variant's closed form is an approximation
 
@@ -184,6 +203,10 @@ _ENTRIES = (
     ClosedForm("dunnett", MultiArmFacts, _dunnett, True,
                "many-to-one multivariate noncentral t (Dunnett 1955; Dunnett & Tamhane 1991)"),
     ClosedForm("anova_f", MultiArmFacts, _anova_f, True, "noncentral F with Cohen's f (Cohen 1988, ch. 8)"),
+    # not exact: the variance components are estimated (power with known components, the normal or
+    # t(clusters - 2) reference; the Wald test's level and power differ with few clusters)
+    ClosedForm("sw_mixed", SteppedFacts, _stepped_wedge, False,
+               "GLS variance with known variance components (Hussey & Hughes 2007; Hooper et al. 2016)"),
 )
 
 #: (analysis name, fact type) -> closed form

@@ -102,10 +102,9 @@ def cell_statistics(y, observed, cluster, period, treat) -> _Cells | None:
     with np.errstate(all="ignore"):
         shift = y0.sum(1) / N
     yc = np.where(observed, y - shift[:, None], 0.0)
-    onehot = np.zeros((y.shape[1], C))
-    onehot[np.arange(y.shape[1]), cell] = 1.0
-    n = w @ onehot
-    s = yc @ onehot
+    flat = (cell[None, :] + C * np.arange(R)[:, None]).ravel()
+    n = np.bincount(flat, w.ravel(), R * C).reshape(R, C)
+    s = np.bincount(flat, yc.ravel(), R * C).reshape(R, C)
     with np.errstate(all="ignore"):
         ybar = np.where(n > 0, s / np.maximum(n, 1), 0.0)
     dev = np.where(observed, yc - ybar[:, cell], 0.0)
@@ -119,21 +118,32 @@ def cell_statistics(y, observed, cluster, period, treat) -> _Cells | None:
 # ---------------------------------------------------------------------------
 # the profiled REML criterion, its derivatives, the fit
 # ---------------------------------------------------------------------------
+def _by_cluster(w, X):
+    """``sum_t w[r, k, t] X[k, t, :]`` for every replicate and cluster: (R, K, p)."""
+    return np.matmul(w.transpose(1, 0, 2), X).transpose(1, 0, 2)
+
+
 def _criterion(gb, gc, st: _Cells):
-    """Profiled criterion f (R,) at variance ratios gb, gc (R,) (structured inverse, no derivatives)."""
+    """Profiled criterion f (R,) at variance ratios gb, gc (R,) (structured inverse, no derivatives).
+
+    Per cluster ``V^-1 = D - c (D v)(D v)'`` with ``D = diag(1 / (1 + gc n))`` and
+    ``c = gb / (1 + gb v' D v)`` (Sherman-Morrison); ``v * Xz = n X``, so only ``d n`` and
+    ``d n ybar`` are needed.
+    """
     n = st.n
-    v = np.sqrt(n)
-    z = v * st.ybar
+    R, K, T = n.shape
+    p = st.p
     d = 1.0 / (1.0 + gc[:, None, None] * n)
-    dv = d * v
-    sv = (dv * v).sum(-1)
+    dn = d * n
+    dny = dn * st.ybar
+    sv = dn.sum(-1)
     c = gb[:, None] / (1.0 + gb[:, None] * sv)
-    Xz = v[..., None] * st.X
-    dvX = np.einsum("rkt,rktp->rkp", dv, Xz)
-    A = np.einsum("rkt,rktp,rktq->rpq", d, Xz, Xz) - np.einsum("rk,rkp,rkq->rpq", c, dvX, dvX)
-    dvz = (dv * z).sum(-1)
-    b = np.einsum("rkt,rktp,rkt->rp", d, Xz, z) - np.einsum("rk,rkp,rk->rp", c, dvX, dvz)
-    zz = (d * z * z).sum((1, 2)) - (c * dvz * dvz).sum(1)
+    XX = (st.X[..., :, None] * st.X[..., None, :]).reshape(K * T, p * p)
+    dvX = _by_cluster(dn, st.X)
+    A = (dn.reshape(R, K * T) @ XX).reshape(R, p, p) - np.matmul((c[..., None] * dvX).transpose(0, 2, 1), dvX)
+    dvz = dny.sum(-1)
+    b = _by_cluster(dny, st.X).sum(1) - np.einsum("rk,rkp->rp", c * dvz, dvX)
+    zz = (dny * st.ybar).sum((1, 2)) - (c * dvz * dvz).sum(1)
     with np.errstate(all="ignore"):
         sign, logdetA = np.linalg.slogdet(A)
         beta = np.linalg.solve(A, b[..., None])[..., 0]
@@ -143,53 +153,112 @@ def _criterion(gb, gc, st: _Cells):
     return np.where((sign > 0) & (Q > 0), f, np.inf)
 
 
+def _flat(a):
+    """(R, K, T, ...) -> (R, K * T, ...)."""
+    return a.reshape((a.shape[0], a.shape[1] * a.shape[2]) + a.shape[3:])
+
+
+def _xtmy(X, M, Y):
+    """``sum_k X_k' M_k Y_k`` for (R, K, T, a), (R, K, T, T), (R, K, T, b): (R, a, b)."""
+    return np.matmul(_flat(X).transpose(0, 2, 1), _flat(M @ Y))
+
+
+def _tr(M):
+    return np.trace(M, axis1=-2, axis2=-1)
+
+
 def _derivatives(gb, gc, st: _Cells, nested: bool):
     """f, the profiled gradient g (R, q) and Hessian H (R, q, q), the full matrix F over (beta, gamma), beta."""
     n = st.n
     R, K, T = n.shape
     v = np.sqrt(n)
-    z = v * st.ybar
+    z = (v * st.ybar)[..., None]
     Xz = v[..., None] * st.X
-    V = (np.eye(T) + (gc[:, None, None] * n)[..., None] * np.eye(T)
+    eye = np.eye(T)
+    V = (eye + (gc[:, None, None] * n)[..., None] * eye
          + gb[:, None, None, None] * v[..., :, None] * v[..., None, :])
     Vi = np.linalg.inv(V)
-    ViX = Vi @ Xz
-    A = np.einsum("rktp,rktq->rpq", Xz, ViX)
-    b = np.einsum("rktp,rkt->rp", ViX, z)
+    A = _xtmy(Xz, Vi, Xz)
+    b = _xtmy(Xz, Vi, z)[..., 0]
     Ai = np.linalg.inv(A)
     beta = np.einsum("rpq,rq->rp", Ai, b)
-    r = z - np.einsum("rktp,rp->rkt", Xz, beta)
-    Vir = np.einsum("rkts,rks->rkt", Vi, r)
-    Q = st.W + (r * Vir).sum((1, 2))
+    r = z - Xz @ beta[:, None, :, None]
+    Q = st.W + _xtmy(r, Vi, r)[:, 0, 0]
     fac = st.fac
     _, logdetA = np.linalg.slogdet(A)
     f = fac * np.log(Q) + np.linalg.slogdet(V)[1].sum(1) + logdetA
     Ds = [v[..., :, None] * v[..., None, :]]
     if nested:
-        Ds.append(n[..., None] * np.eye(T))
+        Ds.append(n[..., None] * eye)
     q, p = len(Ds), st.p
     ViD = [Vi @ D for D in Ds]
     P = [VD @ Vi for VD in ViD]
-    Qi = [-np.einsum("rkt,rkts,rks->r", r, Pi, r) for Pi in P]
-    Ai_ = [-np.einsum("rktp,rkts,rksq->rpq", Xz, Pi, Xz) for Pi in P]
-    g = np.stack([fac * Qi[i] / Q + np.einsum("rktt->r", ViD[i]) + np.einsum("rpq,rqp->r", Ai, Ai_[i])
-                  for i in range(q)], -1)
+    Qi = [-_xtmy(r, Pi, r)[:, 0, 0] for Pi in P]
+    Ai_ = [-_xtmy(Xz, Pi, Xz) for Pi in P]
+    AiAi_ = [Ai @ M for M in Ai_]
+    g = np.stack([fac * Qi[i] / Q + _tr(ViD[i]).sum(1) + _tr(AiAi_[i]) for i in range(q)], -1)
     F = np.empty((R, p + q, p + q))
     F[:, :p, :p] = 2.0 * fac[:, None, None] * A / Q[:, None, None]
     for i in range(q):
-        F[:, :p, p + i] = F[:, p + i, :p] = (2.0 * fac[:, None] * np.einsum("rktp,rkts,rks->rp", Xz, P[i], r)
-                                             / Q[:, None])
+        F[:, :p, p + i] = F[:, p + i, :p] = 2.0 * fac[:, None] * _xtmy(Xz, P[i], r)[..., 0] / Q[:, None]
         for j in range(i, q):
             ViDiViDj = ViD[i] @ ViD[j]
-            Qij = 2.0 * np.einsum("rkt,rkts,rks->r", r, ViDiViDj @ Vi, r)
-            Aij = np.einsum("rktp,rkts,rksq->rpq", Xz, ViDiViDj @ Vi + ViD[j] @ ViD[i] @ Vi, Xz)
-            Lij = (-np.einsum("rktt->r", ViDiViDj) + np.einsum("rpq,rqp->r", Ai, Aij)
-                   - np.einsum("rpq,rqs,rst,rtp->r", Ai, Ai_[i], Ai, Ai_[j]))
+            Qij = 2.0 * _xtmy(r, ViDiViDj @ Vi, r)[:, 0, 0]
+            Aij = _xtmy(Xz, ViDiViDj @ Vi + ViD[j] @ ViD[i] @ Vi, Xz)
+            Lij = -_tr(ViDiViDj).sum(1) + _tr(Ai @ Aij) - _tr(AiAi_[i] @ AiAi_[j])
             F[:, p + i, p + j] = F[:, p + j, p + i] = fac * (Qij / Q - Qi[i] * Qi[j] / Q**2) + Lij
     Fbb_inv = np.linalg.inv(F[:, :p, :p])
     Fbg = F[:, :p, p:]
-    H = F[:, p:, p:] - np.einsum("rpi,rpq,rqj->rij", Fbg, Fbb_inv, Fbg)
+    H = F[:, p:, p:] - Fbg.transpose(0, 2, 1) @ Fbb_inv @ Fbg
     return f, g, H, F, beta, Q
+
+
+def _exchangeable(gb, st: _Cells):
+    """What :func:`_derivatives` gives for the random-intercept model, from per-cluster sums only.
+
+    With ``V = I + gb v v'`` per cluster, ``u = V^-1 v = v / (1 + gb sv)`` (``sv = sum_t n``):
+    ``Q_b = -sum (u'r)^2``, ``A_b = -sum (X'u)(X'u)'``, ``Q_bb = 2 sum (v'u)(u'r)^2``,
+    ``A_bb = 2 sum (v'u)(X'u)(X'u)'``, ``tr(V^-1 V_b V^-1 V_b) = sum (v'u)^2``.
+    """
+    n = st.n
+    R, K, T = n.shape
+    p = st.p
+    ny = n * st.ybar
+    sv = n.sum(-1)
+    h = 1.0 / (1.0 + gb[:, None] * sv)
+    c = gb[:, None] * h
+    XX = (st.X[..., :, None] * st.X[..., None, :]).reshape(K * T, p * p)
+    nX = _by_cluster(n, st.X)
+    A = (n.reshape(R, K * T) @ XX).reshape(R, p, p) - np.matmul((c[..., None] * nX).transpose(0, 2, 1), nX)
+    nys = ny.sum(-1)
+    b = _by_cluster(ny, st.X).sum(1) - np.einsum("rk,rkp->rp", c * nys, nX)
+    zz = (ny * st.ybar).sum((1, 2)) - (c * nys * nys).sum(1)
+    Ai = np.linalg.inv(A)
+    beta = np.einsum("rpq,rq->rp", Ai, b)
+    Q = st.W + zz - (beta * b).sum(-1)
+    fac = st.fac
+    f = fac * np.log(Q) + np.log1p(gb[:, None] * sv).sum(1) + np.linalg.slogdet(A)[1]
+    ur = (nys - np.einsum("rkp,rp->rk", nX, beta)) * h
+    xu = nX * h[..., None]
+    vu = sv * h
+    Qb = -(ur * ur).sum(1)
+    Ab = -np.matmul(xu.transpose(0, 2, 1), xu)
+    AiAb = Ai @ Ab
+    g = (fac * Qb / Q + vu.sum(1) + _tr(AiAb))[:, None]
+    F = np.empty((R, p + 1, p + 1))
+    F[:, :p, :p] = 2.0 * fac[:, None, None] * A / Q[:, None, None]
+    F[:, :p, p] = F[:, p, :p] = 2.0 * fac[:, None] * np.einsum("rkp,rk->rp", xu, ur) / Q[:, None]
+    Qbb = 2.0 * (vu * ur * ur).sum(1)
+    Abb = 2.0 * np.matmul((vu[..., None] * xu).transpose(0, 2, 1), xu)
+    Lbb = -(vu * vu).sum(1) + _tr(Ai @ Abb) - _tr(AiAb @ AiAb)
+    F[:, p, p] = fac * (Qbb / Q - Qb * Qb / Q**2) + Lbb
+    Fbg = F[:, :p, p:]
+    H = F[:, p:, p:] - Fbg.transpose(0, 2, 1) @ np.linalg.inv(F[:, :p, :p]) @ Fbg
+    return f, g, H, F, beta, Q
+
+
+def _parts(gb, gc, st: _Cells, nested: bool):
+    return _derivatives(gb, gc, st, True) if nested else _exchangeable(gb, st)
 
 
 def _start(st: _Cells, nested: bool):
@@ -225,7 +294,7 @@ def _newton(st: _Cells, nested: bool):
         g_a = gam[act]
         gc_a = g_a[:, 1] if nested else np.zeros(g_a.shape[0])
         with np.errstate(all="ignore"):
-            f0, g, H, _, _, _ = _derivatives(g_a[:, 0], gc_a, sub, nested)
+            f0, g, H, _, _, _ = _parts(g_a[:, 0], gc_a, sub, nested)
         fixed = (g_a <= 0) & (g > 0)           # on the boundary, gradient pointing outward
         free = ~fixed
         Hf = np.where(free[:, :, None] & free[:, None, :], H, 0.0) + np.where(fixed, 1.0, 0.0)[:, :, None] * np.eye(q)
@@ -263,7 +332,7 @@ def fit_cells(st: _Cells, nested: bool):
     gb = gam[:, 0]
     gc = gam[:, 1] if nested else np.zeros_like(gb)
     with np.errstate(all="ignore"):
-        f, g, H, F, beta, Q = _derivatives(gb, gc, st, nested)
+        f, g, H, F, beta, Q = _parts(gb, gc, st, nested)
     p = st.p
     q = gam.shape[1]
     at_bound = gam <= 0
