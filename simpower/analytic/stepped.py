@@ -150,7 +150,7 @@ def gls_information(design, m, icc: float, cac: float = 1.0, structure: str = "e
         t = np.flatnonzero(seen)
         if t.size == 0:
             continue
-        full = cell_mean_covariance(periods, np.where(seen, mm[k], 1.0), icc, cac, structure, sampling,
+        full = cell_mean_covariance(periods, np.where(seen, mm[k], mm[k, t[0]]), icc, cac, structure, sampling,
                                     individual_autocorr, sd)
         v = full[np.ix_(t, t)]
         design_k = np.zeros((t.size, periods + 1))
