@@ -28,7 +28,7 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 from . import analytic
-from .analytic.stepped import gls_variance, stepped_power
+from .analytic import stepped as stepped_forms
 from .facts import BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SteppedFacts, SurvivalFacts
 
 PowerFn = Callable[[Any, Any, float], "float | None"]
@@ -174,9 +174,9 @@ def _stepped_wedge(a, f: SteppedFacts, alpha):
         return None
     design = [row for row in f.sequences for _ in range(f.clusters_per_sequence)]
     x = [[math.nan if v is None else v for v in row] for row in design]
-    var = gls_variance(x, f.m, f.icc, f.cac, f.structure, "cross_sectional", 0.0, f.sd)
+    var = stepped_forms.gls_variance(x, f.m, f.icc, f.cac, f.structure, "cross_sectional", 0.0, f.sd)
     df = None if a.df == "wald" else float(len(design) - 2)
-    return stepped_power(f.effect, var, alpha, a.alternative, df)
+    return stepped_forms.stepped_power(f.effect, var, alpha, a.alternative, df)
 
 
 def _pooled(a) -> bool:

@@ -318,8 +318,9 @@ class SteppedWedge(Vocabulary, Process):
     def describe(self):
         x = self.sequence_matrix
         if self.steps is not None:
-            design = (f"a standard stepped wedge of {self.steps} steps ({self.baseline_periods} baseline "
-                      f"period(s), {self.periods_per_step} period(s) per step)")
+            b, t = self.baseline_periods, self.periods_per_step
+            design = (f"a standard stepped wedge of {self.steps} steps ({b} baseline period{'s' * (b != 1)}, "
+                      f"{t} period{'s' * (t != 1)} per step)")
         else:
             rows = ["".join(NOT_MEASURED if np.isnan(v) else str(int(v)) for v in row) for row in x]
             design = f"sequences {' / '.join(rows)}"
@@ -334,7 +335,8 @@ class SteppedWedge(Vocabulary, Process):
             out = f"binary outcomes (control risk {self.p0:g} at a zero random effect, logit link)"
         else:
             out = f"counts (control rate {self.rate0:g} at a zero random effect, log link)"
-        text = (f"{design}, {self.clusters_per_sequence} cluster(s) per sequence ({self.n_clusters} clusters, "
+        c = self.clusters_per_sequence
+        text = (f"{design}, {c} cluster{'s' * (c != 1)} per sequence ({self.n_clusters} clusters, "
                 f"{self.periods} periods); {self.m} individuals per cluster-period, {sampling}; {out}; "
                 f"ICC {self.icc:g} with {corr[self.structure]}; treatment effect {self.effect:g} "
                 f"({self.estimand_label})")
