@@ -45,7 +45,7 @@ PROCESSES = {
     "repeated_measures": {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5},
     "repeated_measures/dropout": {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5, "dropout_rate": 0.2},
     "stepped_wedge": {"steps": 3, "m": 3, "icc": 0.1, "effect": 0.5},
-    "stepped_wedge/cohort": {"sequences": [[0, 1, 1], [0, "-", 1]], "clusters_per_sequence": 2, "m": 3, "icc": 0.1,
+    "stepped_wedge/cohort": {"sequences": [[0, 1, 1], [0, 0, 1], [0, "-", 1]], "cluster_size_cv": 0.4, "clusters_per_sequence": 2, "m": 3, "icc": 0.1,
                              "structure": "exponential", "cac": 0.5, "sampling": "cohort", "individual_autocorr": 0.3,
                              "outcome": "binary", "p0": 0.3, "effect": 0.5, "missing": {"type": "mcar", "rate": 0.2}},
     "survival_two_arm": {"n": 15, "median": 1.0, "hazard_ratio": 0.6, "follow_up": 2.0},
@@ -103,6 +103,9 @@ PAIRS = [
     # optimum the batch path finds (tests/test_stepped.py checks the optimum with statsmodels' own loglike)
     ({"type": "sw_mixed"}, STEPPED, {"rtol": 1e-5}),
     ({"type": "sw_mixed", "structure": "nested", "df": "clusters"}, STEPPED, {"atol": 1e-4, "rtol": 0.0}),
+    ({"type": "sw_mixed", "alternative": "greater"},
+     ("stepped_wedge", {"sequences": [[0, 1, 1], [0, 0, 1], [0, "-", 1]], "clusters_per_sequence": 2, "m": 4,
+                        "cluster_size_cv": 0.5, "icc": 0.1, "effect": 0.5}), {"rtol": 1e-5}),
     ({"type": "t_test"}, TWO_ARM),
     ({"type": "t_test"}, ("normal_one_sample", {"n": 10, "effect": 0.4})),
     ({"type": "tost", "margin": 0.5}, TWO_ARM),

@@ -159,20 +159,22 @@ def test_bad_inputs_give_one_line_errors():
                       ({"steps": 3, "period_effects": [0.0, 1.0]}, "`period_effects` must have one number per period"),
                       ({"steps": 3, "outcome": "binary"}, "`p0` is needed"),
                       ({"sequences": [[1, 1]]}, "both control"),
+                      ({"sequences": [[0, 1, 1], [0, "-", 1]]}, "not estimable"),
+                      ({"steps": 3, "m": 1, "cluster_size_cv": 0.5}, "`cluster_size_cv` must be 0"),
                       ({"sequences": [[0, 3]]}, "`sequences` cells")):
         with pytest.raises(ParameterError, match=field) as info:
-            sw(m=5, icc=0.1, **kw)
+            sw(**{"m": 5, "icc": 0.1, **kw})
         assert "\n" not in str(info.value)
 
 
 # -- the process ------------------------------------------------------------------------------
 def test_long_table_and_design():
-    p = sw(sequences=[[0, 1, 1], [0, "-", 1]], clusters_per_step=2, m=3, icc=0.1, sampling="cohort",
+    p = sw(sequences=[[0, 1, 1], [0, "-", 1], [0, 0, 1]], clusters_per_step=2, m=3, icc=0.1, sampling="cohort",
            individual_autocorr=0.2, effect=0.5)
-    assert p.clusters_per_sequence == 2 and p.spec()["sequences"] == [[0, 1, 1], [0, "-", 1]]
+    assert p.clusters_per_sequence == 2 and p.spec()["sequences"] == [[0, 1, 1], [0, "-", 1], [0, 0, 1]]
     d = p(np.random.default_rng(1))
-    assert len(d["y"]) == 3 * (3 + 3 + 2 + 2)
-    cells = {(int(c), int(t)): int(x) for c, t, x in zip(d["cluster"], d["period"], d["treat"])}
+    assert len(d["y"]) == 3 * (3 + 3 + 2 + 2 + 3 + 3)
+    cells = {(int(c), int(t)): int(x) for c, t, x in zip(d["cluster"], d["period"], d["treat"]) if c < 4}
     assert cells == {(0, 0): 0, (0, 1): 1, (0, 2): 1, (1, 0): 0, (1, 1): 1, (1, 2): 1,
                      (2, 0): 0, (2, 2): 1, (3, 0): 0, (3, 2): 1}
     # a cohort: the same individuals in every period of their cluster
@@ -181,6 +183,25 @@ def test_long_table_and_design():
         assert ids[0] == ids[1] and len(ids[0]) == 3
     b = p.draw_batch(np.random.default_rng(1), 4)
     assert set(b.layouts()) == {"table", "one_sample", "stepped"}   # no `arm`: not a two-arm table
+
+
+def test_variable_cluster_sizes():
+    # each cluster measures its drawn size in every measured period, treated as its sequence says; the
+    # sizes have mean m (within 4 MCSE; their law, with its CV, is cluster_trial's: tests/test_clusters.py)
+    p = sw(steps=3, clusters_per_step=4, m=8, cluster_size_cv=0.5, icc=0.1, effect=0.3)
+    b = p.draw_batch(np.random.default_rng(5), 300)
+    assert "present" in b.per_rep and p.facts() == ()
+    sizes = []
+    for i in range(b.size):
+        t = b.replicate(i)
+        cnt = np.zeros((p.n_clusters, p.periods), int)
+        np.add.at(cnt, (t["cluster"], t["period"]), 1)
+        assert np.all(cnt == cnt[:, :1])              # the same size in every period
+        sizes.extend(cnt[:, 0].tolist())
+        assert np.array_equal(t["treat"], p.design_matrix[t["cluster"], t["period"]])
+    sizes = np.array(sizes, float)
+    per_rep = sizes.reshape(b.size, -1)
+    assert abs(sizes.mean() - 8) < 4 * per_rep.mean(1).std(ddof=1) / math.sqrt(b.size)
 
 
 def _cell_means(p, reps, seed):

@@ -18,7 +18,8 @@ likelihood of a nested model in our trials), or by statsmodels' default
 where Powell's method steps on a variance of exactly 0 (a singular system).
 
 The batch path (treatment constant within each cluster-period cell, every
-period observed) uses the cell sufficient statistics: with ``n_kt`` observed
+period observed; design columns shared or, with variable cluster sizes, per
+replicate and padded) uses the cell sufficient statistics: with ``n_kt`` observed
 outcomes of mean ``ybar_kt`` in a cell, the within-cell sum of squares ``W``
 carries ``sigma_e^2`` only, and ``z_kt = sqrt(n_kt) ybar_kt`` has, per cluster,
 covariance ``sigma_e^2 (I + gamma_c diag(n) + gamma_b v v')``, ``v = sqrt(n)``,
@@ -81,37 +82,44 @@ class _Cells:
         return _Cells(self.n[sel], self.ybar[sel], self.W[sel], self.N[sel], self.X, self.shift[sel])
 
 
-def cell_statistics(y, observed, cluster, period, treat) -> _Cells | None:
-    """Cell statistics from a stepped batch with shared integer design columns; None if treat varies in a cell."""
-    cluster = np.asarray(cluster, np.intp)
-    period = np.asarray(period, np.intp)
-    K, T = int(cluster.max()) + 1, int(period.max()) + 1
-    cell = cluster * T + period
+def cell_statistics(y, observed, cluster, period, treat, present=None) -> _Cells | None:
+    """Cell statistics of a stepped batch; None if treat varies within a cell (or between replicates).
+
+    The integer design columns are shared (N,) or per replicate (R, N) (variable cluster
+    sizes, padded; ``present`` marks the rows that exist).
+    """
+    R, Nw = y.shape
+    cluster = np.broadcast_to(np.asarray(cluster, np.intp), (R, Nw))
+    period = np.broadcast_to(np.asarray(period, np.intp), (R, Nw))
+    tr = np.broadcast_to(np.asarray(treat, float), (R, Nw))
+    rows = np.ones((R, Nw), bool) if present is None else np.asarray(present, bool)
+    K, T = int(cluster[rows].max()) + 1, int(period[rows].max()) + 1
     C = K * T
-    tr = np.asarray(treat, float)
-    cnt = np.bincount(cell, minlength=C)
-    tsum = np.bincount(cell, tr, minlength=C)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        tcell = np.where(cnt > 0, tsum / np.maximum(cnt, 1), 0.0)
-    if np.any(np.abs(tr - tcell[cell]) > 0):
-        return None
-    R = y.shape[0]
+    cell = cluster * T + period
+    flat = (cell + C * np.arange(R)[:, None]).ravel()
+    cnt = np.bincount(flat, rows.ravel().astype(float), R * C).reshape(R, C)
+    tsum = np.bincount(flat, np.where(rows, tr, 0.0).ravel(), R * C).reshape(R, C)
+    if np.any((tsum != 0) & (tsum != cnt)):
+        return None                                   # treat varies within a cell
+    seen = cnt > 0
+    t1, t0 = np.any(seen & (tsum > 0), axis=0), np.any(seen & (tsum == 0), axis=0)
+    if np.any(t1 & t0):
+        return None                                   # a cell treated in one replicate, not in another
     w = observed.astype(float)
     y0 = np.where(observed, y, 0.0)
     N = w.sum(1)
     with np.errstate(all="ignore"):
         shift = y0.sum(1) / N
     yc = np.where(observed, y - shift[:, None], 0.0)
-    flat = (cell[None, :] + C * np.arange(R)[:, None]).ravel()
     n = np.bincount(flat, w.ravel(), R * C).reshape(R, C)
     s = np.bincount(flat, yc.ravel(), R * C).reshape(R, C)
     with np.errstate(all="ignore"):
         ybar = np.where(n > 0, s / np.maximum(n, 1), 0.0)
-    dev = np.where(observed, yc - ybar[:, cell], 0.0)
+    dev = np.where(observed, yc - np.take_along_axis(ybar, cell, axis=1), 0.0)
     W = (dev * dev).sum(1)
     X = np.zeros((K, T, T + 1))
     X[:, np.arange(T), np.arange(T)] = 1.0
-    X[..., T] = tcell.reshape(K, T)
+    X[..., T] = t1.reshape(K, T)
     return _Cells(n.reshape(R, K, T), ybar.reshape(R, K, T), W, N, X, shift)
 
 
@@ -424,17 +432,16 @@ class SteppedMixed(Analysis):
 
     # -- batch ---------------------------------------------------------------
     def _supports(self, layout):
-        cols = (layout.cluster, layout.period, layout.treat)
-        if any(np.ndim(c) != 1 for c in cols):
+        cols = [np.asarray(c) for c in (layout.cluster, layout.period, layout.treat)]
+        if any(c.shape not in (layout.y.shape, layout.y.shape[1:]) for c in cols):
             return False
-        if not all(np.issubdtype(np.asarray(c).dtype, np.integer) for c in cols[:2]):
+        if not all(np.issubdtype(c.dtype, np.integer) for c in cols[:2]):
             return False
-        t = np.asarray(layout.treat)
-        return bool(np.all((t == 0) | (t == 1)) and np.asarray(cols[0]).min() >= 0 and np.asarray(cols[1]).min() >= 0)
+        return bool(np.all((cols[2] == 0) | (cols[2] == 1)) and cols[0].min() >= 0 and cols[1].min() >= 0)
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
-        st = cell_statistics(layout.y, layout.observed, layout.cluster, layout.period, layout.treat)
+        st = cell_statistics(layout.y, layout.observed, layout.cluster, layout.period, layout.treat, layout.present)
         if st is None:
             raise ValueError("sw_mixed batch path: treat varies within a cluster-period cell")
         R = layout.size

@@ -38,11 +38,12 @@ import math
 import numpy as np
 
 from .._validation import Anything, Choice, Int, Real
-from ..analytic.stepped import as_design, standard_design
+from ..analytic.stepped import as_design, gls_variance, standard_design
 from ..components import Nested
 from ..errors import ParameterError
 from ..facts import SteppedFacts
 from .base import Batch, Process, check_missing_columns
+from .clusters import _layout, draw_sizes, size_law
 from .design import Vocabulary, apply_missing
 
 NOT_MEASURED = "-"
@@ -105,7 +106,13 @@ class SteppedWedge(Vocabulary, Process):
         Clusters following each sequence (alias ``clusters_per_step``). The
         required-size search varies it.
     m : int >= 1
-        Individuals measured per cluster and measured period.
+        Individuals measured per cluster and measured period (the mean, with ``cluster_size_cv``).
+    cluster_size_cv : float >= 0, default 0
+        Coefficient of variation of the clusters' sizes: each cluster draws a size
+        (1 + negative binomial or binomial with mean ``m``; see
+        :func:`simpower.processes.clusters.size_law`) afresh in every replicate and
+        measures that many individuals in each of its measured periods (a cohort of
+        that size). 0: every cluster-period has ``m``.
     sampling : {"cross_sectional", "cohort"}
     individual_autocorr : float in [0, 1), default 0
         Cohorts: correlation of an individual's non-cluster parts over periods.
@@ -145,6 +152,7 @@ class SteppedWedge(Vocabulary, Process):
         "periods_per_step": Int(low=1),
         "clusters_per_sequence": Int(low=1),
         "m": Int(low=1),
+        "cluster_size_cv": Real(0.0),
         "sampling": Choice(("cross_sectional", "cohort")),
         "individual_autocorr": Real(0.0, 1.0, high_open=True),
         "structure": Choice(("exchangeable", "nested", "exponential")),
@@ -160,7 +168,7 @@ class SteppedWedge(Vocabulary, Process):
         "missing": Nested("missingness", optional=True),
     }
     defaults = {"sequences": None, "steps": None, "baseline_periods": 1, "periods_per_step": 1,
-                "clusters_per_sequence": 1, "sampling": "cross_sectional", "individual_autocorr": 0.0,
+                "clusters_per_sequence": 1, "cluster_size_cv": 0.0, "sampling": "cross_sectional", "individual_autocorr": 0.0,
                 "structure": "exchangeable", "cac": 1.0, "period_effects": 0.0, "outcome": "normal",
                 "mean": 0.0, "sd": 1.0, "p0": None, "rate0": None, "effect": 0.0, "missing": None}
 
@@ -193,6 +201,8 @@ class SteppedWedge(Vocabulary, Process):
         if not (np.any((x == 1) & measured) and np.any(x == 0)):
             raise ParameterError("`sequences` must have both control (0) and treated (1) cells.")
         check_missing_columns(self.missing, {"cluster", "period", "treat"}, self.name)
+        size_law(self.m, self.cluster_size_cv)  # raises for an unreachable CV
+        gls_variance(x, 1, 0.5)  # raises when the design cannot separate the effect from the periods
 
     # -- the design ---------------------------------------------------------------
     @property
@@ -256,7 +266,7 @@ class SteppedWedge(Vocabulary, Process):
     # -- facts ----------------------------------------------------------------------
     def facts(self):
         """:class:`~simpower.facts.SteppedFacts` for a complete normal outcome; none otherwise."""
-        if self.missing is not None or self.outcome != "normal":
+        if self.missing is not None or self.outcome != "normal" or self.cluster_size_cv > 0:
             return ()
         x = self.sequence_matrix
         seqs = tuple(tuple(None if np.isnan(v) else int(v) for v in row) for row in x)
@@ -281,17 +291,44 @@ class SteppedWedge(Vocabulary, Process):
             c[..., t] = r * c[..., t - 1] + math.sqrt(1.0 - r * r) * w[..., t]
         return c
 
+    def _variable_rows(self, rng, size):
+        """Per-replicate rows of clusters with drawn sizes: cluster, period, member, present (R, W)."""
+        x = self.design_matrix
+        n_clusters, periods = x.shape
+        sizes = draw_sizes(rng, self.m, self.cluster_size_cv, (size, n_clusters))
+        cells = sizes[:, :, None] * np.isfinite(x)[None].astype(np.int64)        # (R, K, T)
+        cell, present, start = _layout(cells.reshape(size, -1))
+        cluster = (cell // periods).astype(np.int32)
+        period = (cell % periods).astype(np.int32)
+        member = np.arange(cell.shape[1])[None, :] - np.take_along_axis(start, cell, axis=1)
+        return cluster, period, np.where(present, member, 0), present, int(sizes.max())
+
     def draw_batch(self, rng, size):
-        cluster, period, treat, member = self._rows()
-        n_clusters, periods, width = self.n_clusters, self.periods, cluster.size
+        x = self.design_matrix
+        n_clusters, periods = x.shape
+        if self.cluster_size_cv > 0:
+            cluster, period, member, present, members = self._variable_rows(rng, size)
+            treat = np.nan_to_num(x[cluster, period]).astype(np.int8)
+        else:
+            cluster, period, treat, member = self._rows()
+            present, members = None, self.m
+        width = cluster.shape[-1]
         s2 = self.total_var
         eta = np.empty((size, width))
         eta[:] = self.intercept + self.period_values[period] + self.effect * treat
         c = self._cluster_period_effects(rng, size, n_clusters, periods)
-        eta += math.sqrt(self.icc * s2) * c[:, cluster, period]
+        if present is None:
+            eta += math.sqrt(self.icc * s2) * c[:, cluster, period]
+        else:
+            cp = np.take_along_axis(np.ascontiguousarray(c).reshape(size, -1), cluster * periods + period, axis=1)
+            eta += math.sqrt(self.icc * s2) * cp
         if self.sampling == "cohort" and self.individual_autocorr > 0:
-            s = rng.standard_normal((size, n_clusters, self.m))
-            eta += math.sqrt(self.individual_autocorr * (1.0 - self.icc) * s2) * s[:, cluster, member]
+            s = rng.standard_normal((size, n_clusters, members))
+            scale = math.sqrt(self.individual_autocorr * (1.0 - self.icc) * s2)
+            if present is None:
+                eta += scale * s[:, cluster, member]
+            else:
+                eta += scale * np.take_along_axis(s.reshape(size, -1), cluster * members + member, axis=1)
         if self.outcome == "normal":
             resid = (1.0 - self.individual_autocorr) * (1.0 - self.icc) * s2
             eta += math.sqrt(resid) * rng.standard_normal((size, width))
@@ -301,13 +338,21 @@ class SteppedWedge(Vocabulary, Process):
         else:
             y = rng.poisson(np.exp(eta)).astype(float)
         if self.sampling == "cohort":
-            subject = cluster.astype(np.int64) * self.m + member
+            subject = cluster.astype(np.int64) * members + member
         else:
-            subject = np.arange(width, dtype=np.int64)
-        shared = {"cluster": cluster, "period": period, "treat": treat, "subject": subject}
+            subject = np.broadcast_to(np.arange(width, dtype=np.int64), cluster.shape)
+        design = {"cluster": cluster, "period": period, "treat": treat, "subject": subject}
         per_rep: dict[str, np.ndarray] = {}
+        if present is None:
+            shared = design
+        else:
+            shared = {}
+            per_rep.update({k: np.ascontiguousarray(v) for k, v in design.items()})
+            per_rep["present"] = present
+            y[~present] = np.nan
         info = {"n_clusters": n_clusters, "periods": periods, "m": self.m, "sampling": self.sampling}
-        apply_missing(self.missing, rng, y, {"cluster": cluster, "period": period, "treat": treat}, per_rep, info)
+        apply_missing(self.missing, rng, y, {"cluster": cluster, "period": period, "treat": treat}, per_rep, info,
+                      present=present)
         per_rep["y"] = y
         return Batch(size, per_rep, shared, info)
 
@@ -336,8 +381,10 @@ class SteppedWedge(Vocabulary, Process):
         else:
             out = f"counts (control rate {self.rate0:g} at a zero random effect, log link)"
         c = self.clusters_per_sequence
+        sizes = (f"{self.m} individuals per cluster-period" if self.cluster_size_cv == 0 else
+                 f"a mean of {self.m} individuals per cluster-period (cluster sizes with CV {self.cluster_size_cv:g})")
         text = (f"{design}, {c} cluster{'s' * (c != 1)} per sequence ({self.n_clusters} clusters, "
-                f"{self.periods} periods); {self.m} individuals per cluster-period, {sampling}; {out}; "
+                f"{self.periods} periods); {sizes}, {sampling}; {out}; "
                 f"ICC {self.icc:g} with {corr[self.structure]}; treatment effect {self.effect:g} "
                 f"({self.estimand_label})")
         if self.missing is not None:
