@@ -388,6 +388,7 @@ class SteppedMixed(Analysis):
 
     name = "sw_mixed"
     null_hypothesis = "no treatment effect (theta = 0), adjusted for period"
+    estimand_label = "mean difference"   # a linear model: on a binary or count outcome not the process's estimand
     params = {"structure": Choice(("exchangeable", "nested")), "df": Choice(("wald", "clusters")),
               "alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
     defaults = {"structure": "exchangeable", "df": "wald", "alternative": "two-sided", "ci_level": 0.95}
