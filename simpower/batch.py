@@ -11,9 +11,11 @@ a *layout*, a typed view computed from it on first use and cached on the batch:
   ``pair`` ids in both, no padding;
 * ``clustered`` (:class:`ClusteredLayout`): ``y``, ``arm``, ``cluster``;
 * ``longitudinal`` (:class:`LongitudinalLayout`): ``y``, ``arm``, ``visit`` (and ``subject``);
-* ``survival`` (:class:`SurvivalLayout`): ``time``, ``event``, ``arm`` with labels in {0, 1}.
+* ``survival`` (:class:`SurvivalLayout`): ``time``, ``event``, ``arm`` with labels in {0, 1};
 * ``crossover`` (:class:`CrossoverLayout`): a two-period crossover, period 1 in columns ``[0, n)`` and
-  period 2 in ``[n, 2n)`` with the same ``subject`` ids, and ``sequence``, ``period``, ``treat``.
+  period 2 in ``[n, 2n)`` with the same ``subject`` ids, and ``sequence``, ``period``, ``treat``;
+* ``stepped`` (:class:`SteppedLayout`): ``y``, ``cluster``, ``period``, ``treat`` (a treatment
+  indicator that varies by cluster and period, so not the two-arm ``arm``).
 
 A batch may have several layouts at once (paired data are also two-arm data,
 a cluster trial's table is also a two-arm table). Every layout carries the
@@ -36,7 +38,8 @@ from typing import Any
 
 import numpy as np
 
-LAYOUTS = ("table", "one_sample", "two_arm", "paired", "clustered", "longitudinal", "survival", "crossover")
+LAYOUTS = ("table", "one_sample", "two_arm", "paired", "clustered", "longitudinal", "survival", "crossover",
+           "stepped")
 
 
 @dataclass
@@ -366,6 +369,21 @@ class CrossoverLayout(Layout):
         return self.seen1 & self.seen2
 
 
+@dataclass(frozen=True, eq=False)
+class SteppedLayout(Layout):
+    """Multi-period cluster designs (stepped wedge): ``cluster``, ``period`` and ``treat`` per row.
+
+    Each of the three is (N,) shared or (R, N) per replicate; ``treat`` is 0/1
+    and may change within a cluster from one period to the next.
+    """
+
+    kind = "stepped"
+
+    cluster: np.ndarray = None
+    period: np.ndarray = None
+    treat: np.ndarray = None
+
+
 # -- building them from a batch -------------------------------------------------------------
 def _base(batch: Batch, y) -> dict:
     return {"y": y, "present": batch.present, "missing": batch.missing, "per_rep": batch.per_rep,
@@ -456,5 +474,12 @@ def _crossover(batch):
     return CrossoverLayout(**_base(batch, y), y1=y[:, :n], y2=y[:, n:], subject=subject[:n], sequence=sequence[:n])
 
 
+def _stepped(batch):
+    if "y" not in batch.per_rep or not all(c in batch for c in ("cluster", "period", "treat")):
+        return None
+    return SteppedLayout(**_base(batch, batch.per_rep["y"]), cluster=batch["cluster"], period=batch["period"],
+                         treat=batch["treat"])
+
+
 _BUILDERS = {"table": _table, "one_sample": _one_sample, "two_arm": _two_arm, "paired": _paired, "clustered": _clustered,
-             "longitudinal": _longitudinal, "survival": _survival, "crossover": _crossover}
+             "longitudinal": _longitudinal, "survival": _survival, "crossover": _crossover, "stepped": _stepped}

@@ -28,8 +28,9 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 from . import analytic
+from .analytic import stepped as stepped_forms
 from .facts import (BinaryFacts, ClusterBinaryFacts, ClusterFacts, CrossoverFacts, MultiArmFacts, NormalFacts,
-                    OrdinalFacts, SurvivalFacts)
+                    OrdinalFacts, SteppedFacts, SurvivalFacts)
 
 PowerFn = Callable[[Any, Any, float], "float | None"]
 
@@ -241,6 +242,24 @@ def _dichotomised(a, f: OrdinalFacts, alpha):
                                 alternative=a.alternative, continuity=a.continuity)
 
 
+def _stepped_wedge(a, f: SteppedFacts, alpha):
+    """GLS variance of theta with the true variance components, Wald (or t, clusters - 2) power.
+
+    Only where the fitted model is the process's: a random cluster intercept for an exchangeable
+    process, cluster + cluster-period effects for a nested (or exchangeable) one, and no
+    persistent individual effects (cross-sectional, or a cohort with individual_autocorr 0).
+    """
+    if f.individual_autocorr != 0 or f.structure == "exponential":
+        return None
+    if a.structure == "exchangeable" and f.structure != "exchangeable":
+        return None
+    design = [row for row in f.sequences for _ in range(f.clusters_per_sequence)]
+    x = [[math.nan if v is None else v for v in row] for row in design]
+    var = stepped_forms.gls_variance(x, f.m, f.icc, f.cac, f.structure, "cross_sectional", 0.0, f.sd)
+    df = None if a.df == "wald" else float(len(design) - 2)
+    return stepped_forms.stepped_power(f.effect, var, alpha, a.alternative, df)
+
+
 def _pooled(a) -> bool:
     return bool(a.equal_var)  # the Welch variant's closed form is an approximation
 
@@ -281,6 +300,10 @@ _ENTRIES = (
                "Whitehead (1993), large-sample score variance at OR = 1 with the arms' mean category shares"),
     ClosedForm("dichotomised", OrdinalFacts, _dichotomised, False,
                "normal approximation, pooled SE under H0 (Fleiss, Levin & Paik 2003, ch. 4), on the shares >= cut"),
+    # not exact: the variance components are estimated (power with known components, the normal or
+    # t(clusters - 2) reference; the Wald test's level and power differ with few clusters)
+    ClosedForm("sw_mixed", SteppedFacts, _stepped_wedge, False,
+               "GLS variance with known variance components (Hussey & Hughes 2007; Hooper et al. 2016)"),
 )
 
 #: (analysis name, fact type) -> closed form

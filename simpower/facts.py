@@ -190,6 +190,30 @@ class OrdinalFacts:
     ratio: float = 1.0
 
 
+@dataclass(frozen=True)
+class SteppedFacts:
+    """Normal outcomes of a multi-period cluster design (a stepped wedge), complete.
+
+    ``sequences`` is the sequence matrix (rows of 0/1, None where a cell is not
+    measured), each row followed by ``clusters_per_sequence`` clusters with ``m``
+    individuals per measured cell; ``icc``, ``cac``, ``structure``
+    ("exchangeable", "nested", "exponential"), ``sampling`` ("cross_sectional",
+    "cohort") and ``individual_autocorr`` as in :mod:`simpower.analytic.stepped`;
+    ``sd`` the total SD of an outcome and ``effect`` the treatment effect.
+    """
+
+    sequences: tuple[tuple[int | None, ...], ...]
+    clusters_per_sequence: int
+    m: int
+    icc: float
+    cac: float
+    structure: str
+    sampling: str
+    individual_autocorr: float
+    sd: float
+    effect: float
+
+
 #: every fact type, for documentation and tests
 FACT_TYPES = (NormalFacts, BinaryFacts, SurvivalFacts, ClusterFacts, ClusterBinaryFacts, MultiArmFacts,
-              CrossoverFacts, OrdinalFacts)
+              CrossoverFacts, OrdinalFacts, SteppedFacts)

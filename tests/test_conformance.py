@@ -54,6 +54,10 @@ PROCESSES = {
                            "missing": {"type": "mcar", "rate": 0.2}},
     "repeated_measures": {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5},
     "repeated_measures/dropout": {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5, "dropout_rate": 0.2},
+    "stepped_wedge": {"steps": 3, "m": 3, "icc": 0.1, "effect": 0.5},
+    "stepped_wedge/cohort": {"sequences": [[0, 1, 1], [0, 0, 1], [0, "-", 1]], "cluster_size_cv": 0.4, "clusters_per_sequence": 2, "m": 3, "icc": 0.1,
+                             "structure": "exponential", "cac": 0.5, "sampling": "cohort", "individual_autocorr": 0.3,
+                             "outcome": "binary", "p0": 0.3, "effect": 0.5, "missing": {"type": "mcar", "rate": 0.2}},
     "survival_two_arm": {"n": 15, "median": 1.0, "hazard_ratio": 0.6, "follow_up": 2.0},
     "trial": {"design": {"type": "arms", "n": 10, "n1": 14}, "effect": 0.5},
     "trial/clusters": {"design": {"type": "clusters", "clusters": 4, "cluster_size": 6, "cluster_size_cv": 0.4,
@@ -80,6 +84,8 @@ PAIRED = ("normal_paired", {"n": 10, "effect": 0.4})
 CROSSOVER = ("crossover", {"n": 8, "ratio": 1.5, "effect": 0.5, "dropout": 0.25})
 CROSSOVER_LOG = ("crossover", {"n": 8, "scale": "log", "cv": 0.3, "effect": 0.95, "dropout": 0.25})
 ORDINAL = ("ordinal_two_arm", {"n": 25, "p0": [0.2, 0.3, 0.3, 0.2], "odds_ratio": 1.8})
+STEPPED = ("stepped_wedge", {"steps": 3, "clusters_per_step": 2, "m": 4, "icc": 0.1, "structure": "nested", "cac": 0.8,
+                             "effect": 0.5})
 
 # -- analysis configuration -> the process whose layout it analyses --------------------------------
 PAIRS = [
@@ -143,6 +149,13 @@ PAIRS = [
     # the per-replicate path is statsmodels OrderedModel (Newton with numerical derivatives): its SE comes
     # from a finite-difference Hessian, about 1e-5 relative (tests/test_ordinal.py checks both at that level)
     ({"type": "proportional_odds"}, ORDINAL, {"rtol": 2e-5, "atol": 1e-8}),
+    # statsmodels' Powell optimiser stops within about 1e-6 (one variance ratio) or 1e-4 (two) of the REML
+    # optimum the batch path finds (tests/test_stepped.py checks the optimum with statsmodels' own loglike)
+    ({"type": "sw_mixed"}, STEPPED, {"rtol": 1e-5}),
+    ({"type": "sw_mixed", "structure": "nested", "df": "clusters"}, STEPPED, {"atol": 1e-4, "rtol": 0.0}),
+    ({"type": "sw_mixed", "alternative": "greater"},
+     ("stepped_wedge", {"sequences": [[0, 1, 1], [0, 0, 1], [0, "-", 1]], "clusters_per_sequence": 2, "m": 4,
+                        "cluster_size_cv": 0.5, "icc": 0.1, "effect": 0.5}), {"rtol": 1e-5}),
     ({"type": "t_test"}, TWO_ARM),
     ({"type": "t_test"}, ("normal_one_sample", {"n": 10, "effect": 0.4})),
     ({"type": "tost", "margin": 0.5}, TWO_ARM),

@@ -23,6 +23,7 @@ independent computation of the published formula with scipy (tolerance stated pe
 * one-way ANOVA F: statsmodels ``FTestAnovaPower`` with Cohen's f (Cohen 1988, ch. 8);
 * proportional odds: Whitehead (1993), the normal power at delta = log OR sqrt(N A (1 - sum pbar^3) / 3) / (1 + A);
   dichotomised: the two-proportion approximation (Fleiss, Levin & Paik 2003) on the shares at or above the cut.
+* stepped wedge (``sw_mixed``): the normal power at the variance of Hussey & Hughes (2007), eq. 8.
 
 Then: processes whose facts no entry covers get None (never a number meant for another
 case); subclasses inherit their base's entries; a process written against the older
@@ -45,7 +46,7 @@ from scipy import integrate, stats
 import simpower as sp
 from simpower import analytic, crosscheck
 from simpower.facts import (FACT_TYPES, BinaryFacts, ClusterBinaryFacts, ClusterFacts, CrossoverFacts,
-                            MultiArmFacts, NormalFacts, OrdinalFacts, SurvivalFacts)
+                            MultiArmFacts, NormalFacts, OrdinalFacts, SteppedFacts, SurvivalFacts)
 from simpower.processes.base import Batch, Process
 from simpower.processes.crossover import Crossover
 from simpower.registry import build
@@ -285,6 +286,18 @@ def _cases():
                     ("dichotomised", OrdinalFacts),
                     lambda f, al: analytic.prop2_power(0.4, float(o1[3:].sum()), 60, ratio=1.5, alpha=al),
                     lambda: fleiss_power(0.4, float(o1[3:].sum()), 60, 1.5, ALPHA, "two-sided"), tol=1e-9))
+    # stepped wedge: Hussey & Hughes (2007) eq. 8 written out, normal power (eq. 9 plus the far tail)
+    from simpower.analytic.stepped import gls_variance, stepped_power
+
+    x = np.repeat((np.arange(5)[None, :] >= np.arange(1, 5)[:, None]).astype(float), 3, axis=0)
+    s2, tau2 = (1 - 0.05) / 10, 0.05
+    U, W, V = x.sum(), (x.sum(0) ** 2).sum(), (x.sum(1) ** 2).sum()
+    var_hh = 12 * s2 * (s2 + 5 * tau2) / ((12 * U - W) * s2 + (U**2 + 12 * 5 * U - 5 * W - 12 * V) * tau2)
+    p = build("process", {"type": "stepped_wedge", "steps": 4, "clusters_per_step": 3, "m": 10, "icc": 0.05,
+                          "effect": 0.3})
+    out.append(Case("sw_mixed", build("analysis", {"type": "sw_mixed"}), p, ("sw_mixed", SteppedFacts),
+                    lambda f, al: stepped_power(0.3, gls_variance(x, 10, 0.05), al),
+                    lambda: z_power(0.3 / math.sqrt(var_hh), ALPHA, "two-sided"), tol=1e-10))
     return out
 
 
