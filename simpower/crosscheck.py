@@ -28,7 +28,7 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 from . import analytic
-from .facts import BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
+from .facts import BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, RepeatedFacts, SurvivalFacts
 
 PowerFn = Callable[[Any, Any, float], "float | None"]
 
@@ -160,6 +160,19 @@ def _anova_f(a, f: MultiArmFacts, alpha):
     return analytic.anova_power(cohen, f.sizes[0], len(f.sizes), alpha, allocation=list(f.sizes))
 
 
+#: MMRM covariance structures that contain the process's correlation structure
+_MMRM_FITS = {"unstructured": ("exchangeable", "ar1"), "toeplitz": ("exchangeable", "ar1"),
+              "cs": ("exchangeable",), "ar1": ("ar1",)}
+
+
+def _mmrm(a, f: RepeatedFacts, alpha):
+    """The final-visit contrast without covariates, under a covariance model that holds for the process."""
+    if a.contrast != "final" or a.baseline or f.structure not in _MMRM_FITS[a.covariance]:
+        return None
+    return analytic.mmrm_power(f.effect, f.n, cov=f.cov, retention=f.retention, alpha=alpha,
+                               alternative=a.alternative, ratio=f.ratio)
+
+
 def _pooled(a) -> bool:
     return bool(a.equal_var)  # the Welch variant's closed form is an approximation
 
@@ -184,6 +197,8 @@ _ENTRIES = (
     ClosedForm("dunnett", MultiArmFacts, _dunnett, True,
                "many-to-one multivariate noncentral t (Dunnett 1955; Dunnett & Tamhane 1991)"),
     ClosedForm("anova_f", MultiArmFacts, _anova_f, True, "noncentral F with Cohen's f (Cohen 1988, ch. 8)"),
+    ClosedForm("mmrm", RepeatedFacts, _mmrm, False,
+               "normal approximation with the MMRM variance inflation under monotone dropout (Lu, Luo & Chen 2008)"),
 )
 
 #: (analysis name, fact type) -> closed form

@@ -42,7 +42,8 @@ from scipy import integrate, stats
 
 import simpower as sp
 from simpower import analytic, crosscheck
-from simpower.facts import FACT_TYPES, BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, SurvivalFacts
+from simpower.facts import (FACT_TYPES, BinaryFacts, ClusterFacts, MultiArmFacts, NormalFacts, RepeatedFacts,
+                            SurvivalFacts)
 from simpower.processes.base import Batch, Process
 from simpower.registry import build
 
@@ -208,6 +209,16 @@ def _cases():
                     lambda f, al: analytic.anova_power(f_cohen, 20, 3, al),
                     lambda: FTestAnovaPower().power(effect_size=f_cohen, nobs=60, alpha=ALPHA, k_groups=3),
                     tol=1e-9))
+    # MMRM, final visit, monotone MCAR dropout: the asymptotic variance of the final-visit mean from the
+    # factored likelihood, sum_j L_Tj^2 / r_j with L the Cholesky factor of Sigma (Anderson 1957, JASA 52:200;
+    # Little & Rubin 2002, section 7.2), against the information-matrix form of Lu, Luo & Chen (2008)
+    p = sp.RepeatedMeasures(n=50, visits=4, correlation="ar1", rho=0.6, sd=2.0, effect=0.8, dropout_rate=0.3)
+    cov_m = 4.0 * 0.6 ** np.abs(np.subtract.outer(np.arange(4), np.arange(4)))
+    ret = (1 - p.hazard) ** np.arange(4)
+    se_m = math.sqrt((np.linalg.cholesky(cov_m)[-1] ** 2 / ret).sum() * 2 / 50)
+    out.append(Case("mmrm", build("analysis", {"type": "mmrm"}), p, ("mmrm", RepeatedFacts),
+                    lambda f, al: analytic.mmrm_power(0.8, 50, cov=cov_m, retention=ret, alpha=al),
+                    lambda: z_power(0.8 / se_m, ALPHA, "two-sided"), tol=1e-9))
     return out
 
 

@@ -29,7 +29,9 @@ from scipy import optimize, stats
 import simpower as sp
 from simpower.analyses import mmrm as M
 from simpower.analyses.mmrm import MMRM
+from simpower.analytic import mmrm_inflation, mmrm_n, mmrm_power, z_power
 from simpower.errors import ParameterError
+from simpower.registry import build
 
 
 def draw(seed, size=1, **kw):
@@ -300,8 +302,58 @@ def test_type_one_error_and_bias_under_mar_dropout():
     rate = res.summaries["mmrm"].rejection
     assert abs(rate.rate - 0.05) < 4 * rate.mcse, (rate.rate, rate.mcse)
     alt = sp.Scenario(sp.RepeatedMeasures(**common, effect=0.5),
-                      analyses={"mmrm": MMRM(), "complete_case": {"type": "final_visit_t"}})
+                      analyses={"mmrm": MMRM(), "complete_case": build("analysis", {"type": "final_visit_t"})})
     res = sp.run(alt, reps=3000, seed=20261203, n_jobs=1)
     mm, cc = res.summaries["mmrm"].estimates, res.summaries["complete_case"].estimates
     assert abs(mm.bias) < 4 * mm.bias_mcse, (mm.bias, mm.bias_mcse)
     assert abs(cc.bias) > 4 * cc.bias_mcse, (cc.bias, cc.bias_mcse)
+
+
+# -- the analytic core: Lu, Luo & Chen (2008) ------------------------------------------------------
+def factored_inflation(cov, retention):
+    """Asymptotic variance of the final-visit mean over Sigma_TT from the factored likelihood of monotone
+    data: sum_j L_Tj^2 / r_j, L the Cholesky factor (Anderson 1957, JASA 52:200; Little & Rubin 2002, 7.2)."""
+    L = np.linalg.cholesky(cov)
+    return float((L[-1] ** 2 / np.asarray(retention)).sum() / cov[-1, -1])
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_inflation_equals_the_factored_likelihood_variance(seed):
+    rng = np.random.default_rng(seed)
+    T = 5
+    A = rng.normal(size=(T, T))
+    cov = A @ A.T + 0.5 * np.eye(T)
+    retention = np.concatenate([[1.0], np.sort(rng.uniform(0.3, 1.0, T - 1))[::-1]])
+    assert mmrm_inflation(cov, retention) == pytest.approx(factored_inflation(cov, retention), rel=1e-10)
+
+
+def test_no_dropout_reduces_to_the_two_sample_formula():
+    cov = 2.0 * (0.4 * np.ones((4, 4)) + 0.6 * np.eye(4))
+    for ratio in (1.0, 2.0):
+        got = mmrm_power(0.7, 40, cov=cov, retention=[1, 1, 1, 1], ratio=ratio)
+        assert got == pytest.approx(z_power(0.7, 40, sd=math.sqrt(2.0), design="two-sample", ratio=ratio), rel=1e-12)
+    n = mmrm_n(0.5, 0.8, cov=cov, retention=[1, 0.9, 0.8, 0.7])
+    assert mmrm_power(0.5, n, cov=cov, retention=[1, 0.9, 0.8, 0.7]) == pytest.approx(0.8, rel=1e-9)
+    with pytest.raises(ParameterError, match="retention"):
+        mmrm_power(0.5, 40, cov=cov, retention=[1, 0.8, 0.9, 0.7])
+
+
+@pytest.mark.slow
+def test_formula_power_matches_simulated_mmrm_power_under_mcar_dropout():
+    """Simulated power of mmrm vs the formula. The formula is asymptotic (a z-test); the allowance is 4 MCSE
+    plus the gap between the z-test and a t-test with the complete cases' df at the formula's SE (a bound on
+    the small-sample part at these sizes)."""
+    proc = sp.RepeatedMeasures(n=100, visits=4, correlation="ar1", rho=0.6, effect=0.3, dropout_rate=0.3)
+    an = MMRM()
+    formula = an.analytic_power(proc, 0.05)
+    f = proc.facts()[0]
+    assert formula == pytest.approx(mmrm_power(0.3, 100, cov=f.cov, retention=f.retention), rel=1e-12)
+    res = sp.run(sp.Scenario(proc, analyses={"mmrm": an}), reps=2000, seed=808, n_jobs=1)
+    rate = res.summaries["mmrm"].rejection
+    cov = np.asarray(f.cov)
+    se = math.sqrt(cov[-1, -1] * mmrm_inflation(cov, f.retention) * 2 / 100)
+    df = 2 * 100 * f.retention[-1] - 2
+    crit = stats.t.ppf(0.975, df)
+    t_power = stats.nct.sf(crit, df, 0.3 / se) + stats.nct.cdf(-crit, df, 0.3 / se)
+    allowance = 4 * rate.mcse + abs(formula - t_power)
+    assert abs(rate.rate - formula) < allowance, (rate.rate, formula, rate.mcse, allowance)
