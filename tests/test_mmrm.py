@@ -162,7 +162,7 @@ def test_reml_optimum_equals_a_direct_dense_maximisation(seed):
     dense_se = scale[0] * math.sqrt(np.linalg.inv(XtVX)[k, k])
     # the batch path's optimum (Fisher scoring) and the per-replicate path's (BFGS)
     st = M.Patterns(Y, u)
-    theta, converged, _ = M.fisher_scoring(M.theta_of(M.start_sigma(Y, u), "unstructured"), st, "unstructured")
+    theta, converged, _ = M.fisher_scoring(M.theta_of(M.start_sigma(st), "unstructured"), st, "unstructured")
     ev = M.Evaluation(theta, st, "unstructured", gradient=False)
     assert converged[0]
     assert ev.dev[0] <= dev + 1e-8
@@ -180,13 +180,50 @@ def test_gradient_of_the_criterion_matches_finite_differences():
     Y, u, _ = cube(b.replicate(0))
     st = M.Patterns(Y, u)
     for kind in M.COVARIANCES:
-        theta = M.theta_of(M.start_sigma(Y, u), kind) + 0.05
+        theta = M.theta_of(M.start_sigma(st), kind) + 0.05
         g = M.Evaluation(theta, st, kind).grad[0]
         h = 1e-6
         fd = [(M.Evaluation(theta + h * e, st, kind, gradient=False).dev[0]
                - M.Evaluation(theta - h * e, st, kind, gradient=False).dev[0]) / (2 * h)
               for e in np.eye(theta.shape[1])[:, None, :]]
         np.testing.assert_allclose(g, fd, rtol=1e-5, atol=1e-5, err_msg=kind)
+
+
+@pytest.mark.parametrize("kind", M.COVARIANCES)
+def test_information_and_satterthwaite_df_equal_the_dense_formulas(kind):
+    """Expected REML information 1/2 tr(P V_k P V_l), P = V^-1 - V^-1 X (X'V^-1 X)^-1 X' V^-1 (Harville 1977),
+    and the Satterthwaite df 2 v^2 / (g' I^-1 g) with g_k = L'A^-1 X'V^-1 V_k V^-1 X A^-1 L (Giesbrecht &
+    Burns 1985), with dense N x N matrices."""
+    from scipy.linalg import block_diag
+
+    b = dropout_replicates(71, 1)
+    Y, u, _ = cube(b.replicate(0))
+    st = M.Patterns(Y, u)
+    theta = M.theta_of(M.start_sigma(st), kind) + 0.03
+    ev = M.Evaluation(theta, st, kind, information=True)
+    Sigma, J = M.sigma_of(theta, kind, 4)
+    Xs, Vs, Vk = [], [], [[] for _ in range(J.shape[1])]
+    for i in range(Y.shape[1]):
+        o = np.isfinite(Y[0, i])
+        if o.any():
+            Xs.append(np.kron(np.eye(4), u[0, i][None, :])[o])
+            Vs.append(Sigma[0][np.ix_(o, o)])
+            for k in range(J.shape[1]):
+                Vk[k].append(J[0, k][np.ix_(o, o)])
+    X, V = np.vstack(Xs), block_diag(*Vs)
+    Vi = np.linalg.inv(V)
+    Ai = np.linalg.inv(X.T @ Vi @ X)
+    P = Vi - Vi @ X @ Ai @ X.T @ Vi
+    Dk = [block_diag(*v) for v in Vk]
+    info = np.array([[0.5 * np.trace(P @ a @ P @ c) for c in Dk] for a in Dk])
+    np.testing.assert_allclose(ev.info[0], info, rtol=1e-9, atol=1e-9)
+    L = M.contrast_vector(4, 2, "final")
+    v = L @ Ai @ L
+    g = np.array([L @ Ai @ X.T @ Vi @ a @ Vi @ X @ Ai @ L for a in Dk])
+    df = 2 * v**2 / (g @ np.linalg.solve(info, g))
+    _, var, got = M.inference(ev, st, L, "satterthwaite")
+    assert var[0] == pytest.approx(v, rel=1e-10)
+    assert got[0] == pytest.approx(df, rel=1e-8)
 
 
 # -- (c) compound symmetry = statsmodels' random intercept ----------------------------------------

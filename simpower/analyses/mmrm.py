@@ -78,6 +78,8 @@ MAX_ITER = 100
 DECREMENT_TOL = 1e-9
 #: the batch path stops iterating once every step changes no parameter by more than this
 STEP_TOL = 1e-9
+#: Fisher-scoring iterations between two evaluations of the expected information
+REFRESH = 3
 #: steps smaller than this (in every parameter) are taken without checking that the criterion decreases
 TRUST_STEP = 1e-2
 #: Sigma is flagged as singular when its correlation matrix's smallest eigenvalue is below this
@@ -189,24 +191,26 @@ class Patterns:
         code = obs.astype(np.int64) @ (1 << np.arange(T, dtype=np.int64))
         codes = np.unique(code[code > 0])
         self.masks = ((codes[:, None] >> np.arange(T)) & 1).astype(bool)
-        H = (code[..., None] == codes).astype(float)          # (R, S, P)
-        y0 = np.where(obs, Y, 0.0)
-        feats = np.concatenate([(u[..., :, None] * u[..., None, :]).reshape(R, S, q * q),
-                                (y0[..., :, None] * u[..., None, :]).reshape(R, S, T * q),
-                                (y0[..., :, None] * y0[..., None, :]).reshape(R, S, T * T)], axis=-1)
-        sums = np.swapaxes(H, 1, 2) @ feats                    # (R, P, F)
         P = codes.size
+        # per pattern, sum over its subjects of z z' with z = (u, y): one batched product (the long
+        # subject axis last, so numpy's inner loops run over subjects, not over the few columns)
+        H = (code[:, :, None] == codes[None, None, :]).astype(float)          # (R, S, P)
+        Z = np.concatenate([np.swapaxes(u, 1, 2), np.swapaxes(np.where(obs, Y, 0.0), 1, 2)], axis=1)  # (R, q+T, S)
+        F = q + T
+        ZZ = ((Z[:, :, None, :] * Z[:, None, :, :]).reshape(R, F * F, S) @ H).reshape(R, F, F, P)
+        ZZ = ZZ.transpose(0, 3, 1, 2)
         self.n = H.sum(axis=1)
-        self.U = sums[..., : q * q].reshape(R, P, q, q)
-        self.M = sums[..., q * q: q * q + T * q].reshape(R, P, T, q)
-        self.C = sums[..., q * q + T * q:].reshape(R, P, T, T)
+        self.U = np.ascontiguousarray(ZZ[..., :q, :q])
+        self.M = np.ascontiguousarray(ZZ[..., q:, :q])
+        self.C = np.ascontiguousarray(ZZ[..., q:, q:])
         self.R, self.T, self.q, self.P = R, T, q, P
         self.n_obs = (self.n * self.masks.sum(1)).sum(1)        # (R,)
         self.n_subjects = self.n.sum(1)
         # per visit: sum of u u' over subjects seen there; jointly seen counts of two visits
         self.visit_U = np.einsum("pt,rpkl->rtkl", self.masks.astype(float), self.U)
         mf = self.masks.astype(float)
-        self.joint = np.einsum("rp,pt,pu->rtu", self.n, mf, mf)
+        self.joint = self.n @ (mf[:, :, None] * mf[:, None, :]).reshape(P, T * T)
+        self.joint = self.joint.reshape(R, T, T)
 
     def take(self, sel) -> "Patterns":
         out = object.__new__(Patterns)
@@ -360,30 +364,29 @@ def theta_of(Sigma, kind: str) -> np.ndarray:
     return out
 
 
-def start_sigma(Y, u) -> np.ndarray:
+def start_sigma(st: Patterns) -> np.ndarray:
     """Pairwise moment estimate of Sigma (R, T, T), shrunk towards its diagonal until positive definite.
 
     Residuals from the least-squares fit of each visit on ``u`` (its observed subjects);
-    covariances from the subjects seen at both visits.
+    covariances from the subjects seen at both visits (all from the per-pattern sums).
     """
-    obs = np.isfinite(Y)
-    y0 = np.where(obs, Y, 0.0)
-    w = obs.astype(float)
-    q = u.shape[-1]
-    # per visit: least squares of y on u over the subjects seen there
-    UU = np.einsum("rst,rsk,rsl->rtkl", w, u, u) + 1e-9 * np.eye(q)
-    Uy = np.einsum("rst,rsk->rtk", y0, u)
-    coef = np.linalg.solve(UU, Uy[..., None])[..., 0]          # (R, T, q)
-    res = np.where(obs, y0 - np.einsum("rsk,rtk->rst", u, coef), 0.0)
-    cnt = np.einsum("rst,rsu->rtu", w, w)
+    q = st.q
+    mf = st.masks.astype(float)
+    Uy = np.einsum("pt,rptk->rtk", mf, st.M)
+    coef = np.linalg.solve(st.visit_U + 1e-9 * np.eye(q), Uy[..., None])[..., 0]   # (R, T, q)
+    Mc = st.M @ coef.transpose(0, 2, 1)[:, None]               # (R, P, T, T): M_p[t] . c_u
+    cUc = coef[:, None] @ st.U @ coef.transpose(0, 2, 1)[:, None]                    # c_t' U_p c_u
+    both = mf[:, :, None] * mf[:, None, :]
+    cross = (both * (st.C - Mc - np.swapaxes(Mc, 2, 3) + cUc)).sum(axis=1)
+    cnt = st.joint
     with np.errstate(all="ignore"):
-        cov = np.einsum("rst,rsu->rtu", res, res) / np.maximum(cnt, 1.0)
+        cov = cross / np.maximum(cnt, 1.0)
     var = np.diagonal(cov, axis1=1, axis2=2).copy()
     var = np.where(np.isfinite(var) & (var > 1e-8), var, 1.0)
     sd = np.sqrt(var)
     corr = np.clip(cov / sd[:, :, None] / sd[:, None, :], -0.99, 0.99)
     corr = np.where(cnt > 0, corr, 0.0)
-    T = Y.shape[2]
+    T = st.T
     corr[:, np.arange(T), np.arange(T)] = 1.0
     emin = np.linalg.eigvalsh(corr)[:, 0]
     lam = np.where(emin < 0.05, 0.95 / (1.0 - emin), 1.0)
@@ -452,22 +455,30 @@ class Evaluation:
         self.grad = (J.reshape(R, -1, T * T) @ G.reshape(R, T * T, 1))[..., 0]   # d(-2 l_R)/dtheta
         if not information:
             return
-        m = J.shape[1]
-        info = np.zeros((R, m, m))
-        Ak = np.zeros((R, m, T, q, T, q))
-        Jflat = J.reshape(R, m, T * T).transpose(0, 2, 1)
+        # expected information in the free elements sigma_ab (a >= b) of Sigma, then D' I D with
+        # D = dsigma/dtheta: tr(X S_ab W S_cd) and W S_ab W with S_ab = E_ab + E_ba are index picks
+        a_, b_ = np.tril_indices(T)
+        half = np.where(a_ == b_, 0.5, 1.0)
+        Q = np.zeros((R, T, T, T, T))
+        Ak = np.zeros((R, a_.size, T, q, T, q))
         for k, (ld, W) in enumerate(inv):
             X = st.n[:, k, None, None] * W - 2.0 * W @ Ks[k] @ W
-            F = J @ W[:, None]                                  # J_k W  (R, m, T, T)
-            XF = (X[:, None] @ F).reshape(R, m, T * T)          # tr(X J_k W J_l), J_l symmetric
-            info += XF @ Jflat
-            WJW = W[:, None] @ F                                # W J_k W
-            Ak += WJW[:, :, :, None, :, None] * st.U[:, k, None, None, :, None, :]
-        Ak = Ak.reshape(R, m, p, p)
-        AiAk = self.Ainv[:, None] @ Ak
-        info += AiAk.reshape(R, m, p * p) @ np.swapaxes(AiAk, 2, 3).reshape(R, m, p * p).transpose(0, 2, 1)
-        self.info = 0.5 * info                                  # expected information of l_R
-        self.Ak = Ak                                            # X' V^-1 V_k V^-1 X
+            Q += np.swapaxes(X, 1, 2)[:, :, None, None, :] * W[:, None, :, :, None]   # X_li W_jk at [i,j,k,l]
+            O = W.transpose(0, 2, 1)[:, :, None, :, None] * W[:, None, :, None, :]    # W_xi W_jy at [i,j,x,y]
+            O = (O + O.transpose(0, 2, 1, 3, 4))[:, a_, b_] * half[:, None, None]   # W S_ab W
+            Ak += O[:, :, :, None, :, None] * st.U[:, k, None, None, :, None, :]
+        Q = Q + Q.transpose(0, 2, 1, 3, 4)
+        Q = Q + Q.transpose(0, 1, 2, 4, 3)
+        n_s = a_.size
+        info = Q[:, a_, b_][:, :, a_, b_] * half[:, None] * half[None, :]
+        Ak = Ak.reshape(R, n_s, p, p)
+        AiAk = (self.Ainv @ Ak.transpose(0, 2, 1, 3).reshape(R, p, n_s * p)).reshape(R, p, n_s, p)
+        AiAk = AiAk.transpose(0, 2, 1, 3)                       # A^-1 A_ab
+        info = info + AiAk.reshape(R, n_s, p * p) @ np.swapaxes(AiAk, 2, 3).reshape(R, n_s, p * p).transpose(0, 2, 1)
+        D = J[:, :, a_, b_].transpose(0, 2, 1)                  # (R, n_sigma, m)
+        self.info = 0.5 * np.swapaxes(D, 1, 2) @ info @ D       # expected information of l_R in theta
+        self.Ak = Ak                                            # X' V^-1 S_ab V^-1 X
+        self.D = D
 
 
 def reml_deviance(Sigma, Y, u) -> np.ndarray:
@@ -487,15 +498,20 @@ def fisher_scoring(theta, st: Patterns, kind: str):
     done = np.zeros(R, bool)
     broken = np.zeros(R, bool)
     active = np.arange(R)
-    for _ in range(MAX_ITER):
+    info = np.zeros((R, theta.shape[1], theta.shape[1]))
+    for it in range(MAX_ITER):
         if active.size == 0:
             break
         sub = st.take(active)
         th = theta[active]
+        # the information changes slowly: recomputed every REFRESH iterations (a chord step in between)
+        refresh = it < 2 or it % REFRESH == 0
         try:
             with np.errstate(all="ignore"):
-                ev = Evaluation(th, sub, kind, information=True)
-                step = np.linalg.solve(ev.info, -0.5 * ev.grad[..., None])[..., 0]
+                ev = Evaluation(th, sub, kind, information=refresh)
+                if refresh:
+                    info[active] = ev.info
+                step = np.linalg.solve(info[active], -0.5 * ev.grad[..., None])[..., 0]
         except np.linalg.LinAlgError:
             ev, step = None, None
         if ev is None:                                          # some replicate broke: one by one
@@ -504,6 +520,7 @@ def fisher_scoring(theta, st: Patterns, kind: str):
                 try:
                     with np.errstate(all="ignore"):
                         e1 = Evaluation(theta[[r]], st.take([r]), kind, information=True)
+                        info[r] = e1.info[0]
                         s1 = np.linalg.solve(e1.info, -0.5 * e1.grad[..., None])[..., 0]
                     ok[i] = np.all(np.isfinite(s1))
                 except np.linalg.LinAlgError:
@@ -586,7 +603,8 @@ def inference(ev: Evaluation, st: Patterns, L, df_method: str):
     if df_method == "between_within":
         df = st.n_subjects - st.q
     else:
-        g = np.einsum("ri,rkij,rj->rk", AiL, ev.Ak, AiL)      # d var / d theta_k
+        g = np.einsum("ri,rkij,rj->rk", AiL, ev.Ak, AiL)      # d var / d sigma_ab
+        g = (np.swapaxes(ev.D, 1, 2) @ g[..., None])[..., 0]   # d var / d theta_k
         with np.errstate(all="ignore"):
             try:
                 Ig = np.linalg.solve(ev.info, g[..., None])[..., 0]
@@ -694,7 +712,7 @@ class MMRM(Analysis):
         if bad[0]:
             raise ValueError(reasons[0])
         kind = self.covariance
-        theta0 = theta_of(start_sigma(Y, u), kind)
+        theta0 = theta_of(start_sigma(st), kind)
         T = st.T
 
         def f(th):
@@ -754,7 +772,7 @@ def fit_batch(Y, u, scale, analysis: MMRM) -> BatchResult:
     fit = np.flatnonzero(~bad)
     if fit.size:
         sub = st.take(fit)
-        theta0 = theta_of(start_sigma(Y[fit], u[fit] if u.ndim == 3 else u), kind)
+        theta0 = theta_of(start_sigma(sub), kind)
         theta, converged, broken = fisher_scoring(theta0, sub, kind)
         ok = ~broken
         if ok.any():
