@@ -192,13 +192,13 @@ class Patterns:
         codes = np.unique(code[code > 0])
         self.masks = ((codes[:, None] >> np.arange(T)) & 1).astype(bool)
         P = codes.size
-        # per pattern, sum over its subjects of z z' with z = (u, y): one batched product (the long
-        # subject axis last, so numpy's inner loops run over subjects, not over the few columns)
+        # per pattern, sum over its subjects of z z' with z = (u, y): a batched product per pattern
         H = (code[:, :, None] == codes[None, None, :]).astype(float)          # (R, S, P)
         Z = np.concatenate([np.swapaxes(u, 1, 2), np.swapaxes(np.where(obs, Y, 0.0), 1, 2)], axis=1)  # (R, q+T, S)
-        F = q + T
-        ZZ = ((Z[:, :, None, :] * Z[:, None, :, :]).reshape(R, F * F, S) @ H).reshape(R, F, F, P)
-        ZZ = ZZ.transpose(0, 3, 1, 2)
+        Zt = np.ascontiguousarray(np.swapaxes(Z, 1, 2))
+        ZZ = np.empty((R, P, q + T, q + T))
+        for k in range(P):
+            ZZ[:, k] = (Z * H[:, None, :, k]) @ Zt
         self.n = H.sum(axis=1)
         self.U = np.ascontiguousarray(ZZ[..., :q, :q])
         self.M = np.ascontiguousarray(ZZ[..., q:, :q])
@@ -398,80 +398,80 @@ def start_sigma(st: Patterns) -> np.ndarray:
 # the REML criterion, its gradient and the expected information
 # ---------------------------------------------------------------------------
 def _pattern_inverses(Sigma, masks):
-    """Per pattern: log|Sigma_P| (R,) and the embedded inverse W_P (R, T, T) (zeros off the pattern)."""
+    """Per pattern: log|Sigma_P| (R, P) and the embedded inverses W_P (R, P, T, T) (zeros off the pattern)."""
     R, T, _ = Sigma.shape
-    out = []
-    for mask in masks:
+    logdet = np.empty((R, len(masks)))
+    W = np.zeros((R, len(masks), T, T))
+    for k, mask in enumerate(masks):
         idx = np.flatnonzero(mask)
         sub = Sigma[:, idx[:, None], idx[None, :]]
         Lc = np.linalg.cholesky(sub)
-        logdet = 2.0 * np.log(np.diagonal(Lc, axis1=1, axis2=2)).sum(1)
-        inv = np.linalg.inv(sub)
-        W = np.zeros((R, T, T))
-        W[:, idx[:, None], idx[None, :]] = inv
-        out.append((logdet, W))
-    return out
+        logdet[:, k] = 2.0 * np.log(np.diagonal(Lc, axis1=1, axis2=2)).sum(1)
+        W[:, k, idx[:, None], idx[None, :]] = np.linalg.inv(sub)
+    return logdet, W
 
 
 class Evaluation:
-    """The REML criterion at Sigma(theta) for every replicate of ``st``: ``dev`` = -2 l_R and friends."""
+    """The REML criterion at Sigma(theta) for every replicate of ``st``: ``dev`` = -2 l_R and friends.
+
+    All patterns at once: the sums over patterns are batched matrix products over a (replicate,
+    pattern) stack, with the index pairs of a Kronecker product laid out so that each is one product.
+    """
 
     def __init__(self, theta, st: Patterns, kind: str, gradient: bool = True, information: bool = False):
         R, T, q, P = st.R, st.T, st.q, st.P
-        p = T * q
+        p, TT, qq = T * q, T * T, q * q
         self.Sigma, J = sigma_of(theta, kind, T, jacobian=gradient or information)
-        inv = _pattern_inverses(self.Sigma, st.masks)
-        A = np.zeros((R, T, q, T, q))
-        c = np.zeros((R, T, q))
-        yWy = np.zeros(R)
-        logdet = np.zeros(R)
-        for k, (ld, W) in enumerate(inv):
-            A += W[:, :, None, :, None] * st.U[:, k, None, :, None, :]
-            c += W @ st.M[:, k]
-            yWy += (W * st.C[:, k]).sum(axis=(1, 2))
-            logdet += st.n[:, k] * ld
-        A = A.reshape(R, p, p)
+        logdets, W = _pattern_inverses(self.Sigma, st.masks)
+        n = st.n
+        Uf = st.U.reshape(R, P, qq)
+        # X'V^-1 X = sum_p W_p (x) U_p, X'V^-1 y = sum_p W_p M_p, y'V^-1 y = sum_p tr(W_p C_p)
+        A = (W.reshape(R, P, TT).transpose(0, 2, 1) @ Uf).reshape(R, T, T, q, q)
+        A = A.transpose(0, 1, 3, 2, 4).reshape(R, p, p)
+        c = W.transpose(0, 2, 1, 3).reshape(R, T, P * T) @ st.M.reshape(R, P * T, q)
+        yWy = (W * st.C).sum(axis=(1, 2, 3))
         La = np.linalg.cholesky(A)
         self.Ainv = np.linalg.inv(A)
         beta = (self.Ainv @ c.reshape(R, p, 1))[..., 0]
-        self.B = beta.reshape(R, T, q)
-        self.dev = (logdet + 2.0 * np.log(np.diagonal(La, axis1=1, axis2=2)).sum(1) + yWy
+        self.B = B = beta.reshape(R, T, q)
+        self.dev = ((n * logdets).sum(1) + 2.0 * np.log(np.diagonal(La, axis1=1, axis2=2)).sum(1) + yWy
                     - np.einsum("ri,ri->r", c.reshape(R, p), beta) + (st.n_obs - p) * math.log(2.0 * math.pi))
         self.A = A
         if not (gradient or information):
             return
-        Ainv4 = self.Ainv.reshape(R, T, q, T, q)
-        B = self.B
-        G = np.zeros((R, T, T))
-        Ks = []
-        for k, (ld, W) in enumerate(inv):
-            U, M, C = st.U[:, k], st.M[:, k], st.C[:, k]
-            MB = M @ np.swapaxes(B, 1, 2)
-            Rr = C - MB - np.swapaxes(MB, 1, 2) + B @ U @ np.swapaxes(B, 1, 2)
-            K = (Ainv4 * U[:, None, :, None, :]).sum(axis=(2, 4))
-            Ks.append(K)
-            G += W @ (st.n[:, k, None, None] * self.Sigma - Rr - K) @ W
+        # K_p = sum_i X_i A^-1 X_i' over the pattern's subjects: K_p[j, l] = sum_km Ainv[j,k,l,m] U_p[k,m]
+        Ai = self.Ainv.reshape(R, T, q, T, q).transpose(0, 1, 3, 2, 4).reshape(R, TT, qq)
+        K = (Ai @ Uf.transpose(0, 2, 1)).transpose(0, 2, 1).reshape(R, P, T, T)
+        # residual cross-products per pattern: C - M B' - B M' + B U B'
+        Bt = B.transpose(0, 2, 1)
+        MB = (st.M.reshape(R, P * T, q) @ Bt).reshape(R, P, T, T)
+        BU = (B @ st.U.transpose(0, 2, 1, 3).reshape(R, q, P * q)).reshape(R, T, P, q).transpose(0, 2, 1, 3)
+        BUB = (BU.reshape(R, P * T, q) @ Bt).reshape(R, P, T, T)
+        inner = n[..., None, None] * self.Sigma[:, None] - (st.C - MB - MB.transpose(0, 1, 3, 2) + BUB) - K
+        G = (W @ inner @ W).sum(axis=1)
         self.G = G                                              # d(-2 l_R) = tr(G dSigma)
-        self.grad = (J.reshape(R, -1, T * T) @ G.reshape(R, T * T, 1))[..., 0]   # d(-2 l_R)/dtheta
+        self.grad = (J.reshape(R, -1, TT) @ G.reshape(R, TT, 1))[..., 0]   # d(-2 l_R)/dtheta
         if not information:
             return
         # expected information in the free elements sigma_ab (a >= b) of Sigma, then D' I D with
-        # D = dsigma/dtheta: tr(X S_ab W S_cd) and W S_ab W with S_ab = E_ab + E_ba are index picks
+        # D = dsigma/dtheta; S_ab = E_ab + E_ba (E_aa on the diagonal). W and X are symmetric.
         a_, b_ = np.tril_indices(T)
         half = np.where(a_ == b_, 0.5, 1.0)
-        Q = np.zeros((R, T, T, T, T))
-        Ak = np.zeros((R, a_.size, T, q, T, q))
-        for k, (ld, W) in enumerate(inv):
-            X = st.n[:, k, None, None] * W - 2.0 * W @ Ks[k] @ W
-            Q += np.swapaxes(X, 1, 2)[:, :, None, None, :] * W[:, None, :, :, None]   # X_li W_jk at [i,j,k,l]
-            O = W.transpose(0, 2, 1)[:, :, None, :, None] * W[:, None, :, None, :]    # W_xi W_jy at [i,j,x,y]
-            O = (O + O.transpose(0, 2, 1, 3, 4))[:, a_, b_] * half[:, None, None]   # W S_ab W
-            Ak += O[:, :, :, None, :, None] * st.U[:, k, None, None, :, None, :]
+        n_s = a_.size
+        X = n[..., None, None] * W - 2.0 * W @ K @ W
+        # tr(X S_ab W S_cd) from Q[i, j, k, l] = sum_p X_p[l, i] W_p[j, k]
+        Q = (X.reshape(R, P, TT).transpose(0, 2, 1) @ W.reshape(R, P, TT)).reshape(R, T, T, T, T)  # [i,l,j,k]
+        Q = Q.transpose(0, 1, 3, 4, 2)
         Q = Q + Q.transpose(0, 2, 1, 3, 4)
         Q = Q + Q.transpose(0, 1, 2, 4, 3)
-        n_s = a_.size
         info = Q[:, a_, b_][:, :, a_, b_] * half[:, None] * half[None, :]
-        Ak = Ak.reshape(R, n_s, p, p)
+        # A_ab = X' V^-1 S_ab V^-1 X = sum_p (W_p S_ab W_p) (x) U_p, from sum_p W_p[i,x] W_p[j,y] U_p[k,m]
+        Wf = W.reshape(R, P, TT)
+        WW = (Wf[..., :, None] * Wf[..., None, :]).reshape(R, P, TT * TT)
+        T4 = (WW.transpose(0, 2, 1) @ Uf).reshape(R, T, T, T, T, q, q)                # [i,x,j,y,k,m]
+        T4 = T4.transpose(0, 1, 3, 2, 5, 4, 6)                                        # [i,j,x,k,y,m]
+        T4 = T4 + T4.transpose(0, 2, 1, 3, 4, 5, 6)
+        Ak = T4[:, a_, b_].reshape(R, n_s, p, p) * half[:, None, None]
         AiAk = (self.Ainv @ Ak.transpose(0, 2, 1, 3).reshape(R, p, n_s * p)).reshape(R, p, n_s, p)
         AiAk = AiAk.transpose(0, 2, 1, 3)                       # A^-1 A_ab
         info = info + AiAk.reshape(R, n_s, p * p) @ np.swapaxes(AiAk, 2, 3).reshape(R, n_s, p * p).transpose(0, 2, 1)
