@@ -79,7 +79,7 @@ DECREMENT_TOL = 1e-9
 #: the batch path stops iterating once every step changes no parameter by more than this
 STEP_TOL = 1e-9
 #: Fisher-scoring iterations between two evaluations of the expected information
-REFRESH = 3
+REFRESH = 5
 #: steps smaller than this (in every parameter) are taken without checking that the criterion decreases
 TRUST_STEP = 1e-2
 #: Sigma is flagged as singular when its correlation matrix's smallest eigenvalue is below this
