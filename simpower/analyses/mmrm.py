@@ -77,7 +77,7 @@ MAX_ITER = 100
 #: a fit is at a stationary point when the Newton decrement s' I^-1 s (log-likelihood units) is below this
 DECREMENT_TOL = 1e-9
 #: the batch path stops iterating once every step changes no parameter by more than this
-STEP_TOL = 1e-9
+STEP_TOL = 1e-8
 #: Fisher-scoring iterations between two evaluations of the expected information
 REFRESH = 5
 #: steps smaller than this (in every parameter) are taken without checking that the criterion decreases
@@ -193,13 +193,15 @@ class Patterns:
         self.masks = ((codes[:, None] >> np.arange(T)) & 1).astype(bool)
         P = codes.size
         # per pattern, sum over its subjects of z z' with z = (u, y): a batched product per pattern
-        H = (code[:, :, None] == codes[None, None, :]).astype(float)          # (R, S, P)
-        Z = np.concatenate([np.swapaxes(u, 1, 2), np.swapaxes(np.where(obs, Y, 0.0), 1, 2)], axis=1)  # (R, q+T, S)
-        Zt = np.ascontiguousarray(np.swapaxes(Z, 1, 2))
+        Zt = np.concatenate([u, np.where(obs, Y, 0.0)], axis=2)                # (R, S, q+T)
+        Z = np.ascontiguousarray(np.swapaxes(Zt, 1, 2))
         ZZ = np.empty((R, P, q + T, q + T))
+        n = np.empty((R, P))
         for k in range(P):
-            ZZ[:, k] = (Z * H[:, None, :, k]) @ Zt
-        self.n = H.sum(axis=1)
+            h = code == codes[k]
+            n[:, k] = h.sum(axis=1)
+            ZZ[:, k] = (Z * h[:, None, :].astype(float)) @ Zt
+        self.n = n
         self.U = np.ascontiguousarray(ZZ[..., :q, :q])
         self.M = np.ascontiguousarray(ZZ[..., q:, :q])
         self.C = np.ascontiguousarray(ZZ[..., q:, q:])
