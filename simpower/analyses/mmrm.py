@@ -687,6 +687,8 @@ class MMRM(Analysis):
             Y = Y[:, :, 1:]
             if Y.shape[2] < 1:
                 raise ValueError("mmrm: `baseline = true` needs visits after the first")
+        if Y.shape[2] < 2 and self.covariance != "unstructured":
+            raise ValueError(f"mmrm: covariance = {self.covariance!r} needs at least two visits")
         return standardise(Y, sub_arm, b)
 
     def _fields(self, est, se, df):
