@@ -73,15 +73,13 @@ DF_METHODS = ("satterthwaite", "between_within")
 CONTRASTS = ("final", "average")
 
 #: Fisher-scoring iterations of the batch path before a replicate is flagged
-MAX_ITER = 100
+MAX_ITER = 300
 #: a fit is at a stationary point when the Newton decrement s' I^-1 s (log-likelihood units) is below this
-DECREMENT_TOL = 1e-9
+DECREMENT_TOL = 1e-11
 #: the batch path stops iterating once every step changes no parameter by more than this
 STEP_TOL = 1e-8
 #: Fisher-scoring iterations between two evaluations of the expected information
-REFRESH = 5
-#: steps smaller than this (in every parameter) are taken without checking that the criterion decreases
-TRUST_STEP = 1e-2
+REFRESH = 10
 #: Sigma is flagged as singular when its correlation matrix's smallest eigenvalue is below this
 SINGULAR_TOL = 1e-8
 
@@ -391,7 +389,7 @@ def start_sigma(st: Patterns) -> np.ndarray:
     T = st.T
     corr[:, np.arange(T), np.arange(T)] = 1.0
     emin = np.linalg.eigvalsh(corr)[:, 0]
-    lam = np.where(emin < 0.05, 0.95 / (1.0 - emin), 1.0)
+    lam = np.where(emin < 0.05, 0.95 / np.maximum(1.0 - emin, 0.95), 1.0)
     corr = lam[:, None, None] * corr + (1.0 - lam)[:, None, None] * np.eye(T)
     return corr * sd[:, :, None] * sd[:, None, :]
 
@@ -494,66 +492,53 @@ def reml_deviance(Sigma, Y, u) -> np.ndarray:
 # fitting
 # ---------------------------------------------------------------------------
 def fisher_scoring(theta, st: Patterns, kind: str):
-    """Batched Fisher scoring with step halving; returns theta (R, m) and a converged flag (R,)."""
+    """Batched Fisher scoring with step halving; returns theta (R, m), a converged flag (R,) and a broken flag (R,).
+
+    The expected information changes slowly, so it is recomputed every :data:`REFRESH` iterations
+    (chord steps in between), and for a replicate whose last step had to be shortened. A step is
+    taken only if it lowers the criterion (else halved, up to 30 times).
+    """
     theta = np.array(theta, float)
-    R = theta.shape[0]
+    R, m = theta.shape
     done = np.zeros(R, bool)
     broken = np.zeros(R, bool)
+    stale = np.ones(R, bool)                 # the stored information must be recomputed
+    info = np.zeros((R, m, m))
     active = np.arange(R)
-    info = np.zeros((R, theta.shape[1], theta.shape[1]))
     for it in range(MAX_ITER):
         if active.size == 0:
             break
+        if it < 2 or it % REFRESH == 0:
+            stale[active] = True
         sub = st.take(active)
         th = theta[active]
-        # the information changes slowly: recomputed every REFRESH iterations (a chord step in between)
-        refresh = it < 2 or it % REFRESH == 0
-        try:
-            with np.errstate(all="ignore"):
-                ev = Evaluation(th, sub, kind, information=refresh)
-                if refresh:
-                    info[active] = ev.info
-                step = np.linalg.solve(info[active], -0.5 * ev.grad[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            ev, step = None, None
-        if ev is None:                                          # some replicate broke: one by one
-            ok = np.zeros(active.size, bool)
-            for i, r in enumerate(active):
-                try:
-                    with np.errstate(all="ignore"):
-                        e1 = Evaluation(theta[[r]], st.take([r]), kind, information=True)
-                        info[r] = e1.info[0]
-                        s1 = np.linalg.solve(e1.info, -0.5 * e1.grad[..., None])[..., 0]
-                    ok[i] = np.all(np.isfinite(s1))
-                except np.linalg.LinAlgError:
-                    pass
-            broken[active[~ok]] = True
-            active = active[ok]
-            continue
-        finite = np.all(np.isfinite(step), axis=1) & np.isfinite(ev.dev)
-        broken[active[~finite]] = True
+        need = stale[active]
+        ev, grad, ok = _score_and_information(th, sub, kind, need, info, active)
+        stale[active[need & ok]] = False
+        broken[active[~ok]] = True
+        with np.errstate(all="ignore"):
+            step = np.linalg.solve(info[active][ok], -0.5 * grad[ok][..., None])[..., 0]
+        act, th, dev0 = active[ok], th[ok], ev[ok]
+        finite = np.all(np.isfinite(step), axis=1)
+        broken[act[~finite]] = True
         small = finite & (np.abs(step).max(axis=1) < STEP_TOL)
-        done[active[small]] = True
+        done[act[small]] = True
         move = finite & ~small
-        idx, th, step, dev0 = active[move], th[move], step[move], ev.dev[move]
+        idx, th, step, dev0 = act[move], th[move], step[move], dev0[move]
         t = np.ones(idx.size)
-        # near the optimum a scoring step is safe: take it without checking the criterion
-        accepted = np.abs(step).max(axis=1) < TRUST_STEP
-        theta[idx[accepted]] = th[accepted] + step[accepted]
-        if accepted.all():
-            active = idx
-            continue
+        accepted = np.zeros(idx.size, bool)
         sub = st.take(idx)
-        for _half in range(30):
+        for half in range(30):
             cand = th + t[:, None] * step
             with np.errstate(all="ignore"):
                 try:
                     dev = Evaluation(cand, sub, kind, gradient=False).dev
                 except np.linalg.LinAlgError:
                     dev = np.array([_dev_or_inf(cand[[i]], sub.take([i]), kind) for i in range(idx.size)])
-            good = np.isfinite(dev) & (dev <= dev0 + 1e-10 * np.abs(dev0))
-            newly = good & ~accepted
-            theta[idx[newly]] = cand[newly]
+            good = np.isfinite(dev) & (dev <= dev0 + 1e-12 * np.abs(dev0)) & ~accepted
+            theta[idx[good]] = cand[good]
+            if half > 0:
+                stale[idx[good]] = True      # a shortened step: fresh information next time
             accepted |= good
             if accepted.all():
                 break
@@ -562,6 +547,38 @@ def fisher_scoring(theta, st: Patterns, kind: str):
         done[idx[~accepted]] = True
         active = idx[accepted]
     return theta, done & ~broken, broken
+
+
+def _score_and_information(th, sub, kind, need, info, active):
+    """Criterion and gradient at ``th``; the information of the replicates ``need`` stored into ``info``.
+
+    Returns the criterion (n,), the gradient (n, m) and which replicates could be evaluated (n,).
+    """
+    n = th.shape[0]
+    ok = np.ones(n, bool)
+    dev = np.full(n, np.nan)
+    grad = np.full(th.shape, np.nan)
+    try:
+        with np.errstate(all="ignore"):
+            ev = Evaluation(th, sub, kind)
+            dev[:], grad[:] = ev.dev, ev.grad
+            if need.any():
+                rows = np.flatnonzero(need)
+                info[active[rows]] = Evaluation(th[rows], sub.take(rows), kind, information=True).info
+    except np.linalg.LinAlgError:                # some replicate broke: one by one
+        for i in range(n):
+            try:
+                with np.errstate(all="ignore"):
+                    e1 = Evaluation(th[[i]], sub.take([i]), kind, information=bool(need[i]))
+                dev[i], grad[i] = e1.dev[0], e1.grad[0]
+                if need[i]:
+                    info[active[i]] = e1.info[0]
+            except np.linalg.LinAlgError:
+                ok[i] = False
+    ok &= np.isfinite(dev) & np.all(np.isfinite(grad), axis=1)
+    with np.errstate(all="ignore"):
+        ok &= np.all(np.isfinite(info[active]), axis=(1, 2))
+    return dev, grad, ok
 
 
 def _dev_or_inf(theta, st, kind):
@@ -729,9 +746,13 @@ class MMRM(Analysis):
                 return math.inf, np.zeros_like(th)
             return float(ev.dev[0]), ev.grad[0]
 
-        opt = optimize.minimize(f, theta0[0], jac=True, method="BFGS", options={"gtol": 1e-7, "maxiter": 2000})
-        theta = opt.x[None, :]
-        ev, dec, singular = _at_optimum(theta, st, kind)
+        x = theta0[0]
+        for _restart in range(3):                  # BFGS restarted (fresh Hessian) if it stopped short
+            x = optimize.minimize(f, x, jac=True, method="BFGS", options={"gtol": 1e-7, "maxiter": 2000}).x
+            theta = x[None, :]
+            ev, dec, singular = _at_optimum(theta, st, kind)
+            if np.isfinite(dec[0]) and dec[0] <= DECREMENT_TOL:
+                break
         if not np.isfinite(dec[0]) or dec[0] > DECREMENT_TOL:
             warnings.warn(NOT_CONVERGED, ConvergenceWarning, stacklevel=2)
         elif singular[0]:
@@ -786,7 +807,7 @@ def fit_batch(Y, u, scale, analysis: MMRM) -> BatchResult:
             e, v, d = inference(ev, sub_ok, L, analysis.df_method)
             rows = fit[ok]
             est[rows], var[rows], df[rows] = e, v, d
-            not_conv = ~converged[ok] | ~np.isfinite(dec) | (dec > DECREMENT_TOL)
+            not_conv = ~np.isfinite(dec) | (dec > DECREMENT_TOL)   # the per-replicate path's criterion
             flag_conv[rows] = not_conv
             flag_sing[rows] = singular & ~not_conv
         flag_conv[fit[broken]] = True
