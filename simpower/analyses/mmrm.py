@@ -43,10 +43,12 @@ sub-matrix of Sigma, so everything REML needs reduces to per-pattern sums
 (counts, ``sum u u'``, ``sum y u'``, ``sum y y'`` with ``u_i = (1, a_i[, b_i])``)
 computed once; each evaluation then costs one Cholesky per pattern,
 whatever the number of subjects. The batch path runs Fisher scoring (expected
-information, step halving) for all replicates at once, on arrays with a
-leading replicate axis, from a pairwise moment estimate of Sigma; the
-per-replicate path minimises the same REML criterion (analytic gradient) with
-scipy's BFGS from the same start. Outcomes (and the baseline) are centred and
+information, recomputed every :data:`REFRESH` steps and after a shortened step;
+step halving) for all replicates at once, on arrays with a leading replicate
+axis, from a pairwise moment estimate of Sigma; the per-replicate path
+minimises the same REML criterion (analytic gradient) with scipy's BFGS from
+the same start (restarted if it stops short). Both call a fit converged when
+the Newton decrement is below :data:`DECREMENT_TOL`. Outcomes (and the baseline) are centred and
 scaled per replicate before fitting; results are returned in outcome units.
 
 Trouble, per replicate, on both paths: a design that cannot be fitted (a
