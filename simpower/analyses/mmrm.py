@@ -800,7 +800,7 @@ def fit_batch(Y, u, scale, analysis: MMRM) -> BatchResult:
     if fit.size:
         sub = st.take(fit)
         theta0 = theta_of(start_sigma(sub), kind)
-        theta, converged, broken = fisher_scoring(theta0, sub, kind)
+        theta, _, broken = fisher_scoring(theta0, sub, kind)
         ok = ~broken
         if ok.any():
             sub_ok = sub.take(np.flatnonzero(ok))
