@@ -30,7 +30,7 @@ from typing import Any, Callable
 from . import analytic
 from .analytic import stepped as stepped_forms
 from .facts import (BinaryFacts, ClusterBinaryFacts, ClusterFacts, CrossoverFacts, MultiArmFacts, NormalFacts,
-                    OrdinalFacts, SteppedFacts, SurvivalFacts)
+                    OrdinalFacts, RepeatedFacts, SteppedFacts, SurvivalFacts)
 
 PowerFn = Callable[[Any, Any, float], "float | None"]
 
@@ -260,6 +260,19 @@ def _stepped_wedge(a, f: SteppedFacts, alpha):
     return stepped_forms.stepped_power(f.effect, var, alpha, a.alternative, df)
 
 
+#: MMRM covariance structures that contain the process's correlation structure
+_MMRM_FITS = {"unstructured": ("exchangeable", "ar1"), "toeplitz": ("exchangeable", "ar1"),
+              "cs": ("exchangeable",), "ar1": ("ar1",)}
+
+
+def _mmrm(a, f: RepeatedFacts, alpha):
+    """The final-visit contrast without covariates, under a covariance model that holds for the process."""
+    if a.contrast != "final" or a.baseline or f.structure not in _MMRM_FITS[a.covariance]:
+        return None
+    return analytic.mmrm_power(f.effect, f.n, cov=f.cov, retention=f.retention, alpha=alpha,
+                               alternative=a.alternative, ratio=f.ratio)
+
+
 def _pooled(a) -> bool:
     return bool(a.equal_var)  # the Welch variant's closed form is an approximation
 
@@ -304,6 +317,8 @@ _ENTRIES = (
     # t(clusters - 2) reference; the Wald test's level and power differ with few clusters)
     ClosedForm("sw_mixed", SteppedFacts, _stepped_wedge, False,
                "GLS variance with known variance components (Hussey & Hughes 2007; Hooper et al. 2016)"),
+    ClosedForm("mmrm", RepeatedFacts, _mmrm, False,
+               "normal approximation with the MMRM variance inflation under monotone dropout (Lu, Luo & Chen 2008)"),
 )
 
 #: (analysis name, fact type) -> closed form

@@ -214,6 +214,26 @@ class SteppedFacts:
     effect: float
 
 
+@dataclass(frozen=True)
+class RepeatedFacts:
+    """Normal repeated measures in two arms with monotone dropout completely at random (or none).
+
+    ``cov`` is the covariance of the outcomes over the visits (rows of a T x T
+    matrix, both arms), ``structure`` its form ("exchangeable" or "ar1"),
+    ``retention`` the share of each arm still observed at each visit (1 at the
+    first, never increasing), ``effect`` the treatment minus control mean at the
+    final visit, ``n`` the control arm's size and ``ratio`` the treatment arm's
+    size over it.
+    """
+
+    effect: float
+    n: int
+    cov: tuple[tuple[float, ...], ...]
+    retention: tuple[float, ...]
+    structure: str = "exchangeable"
+    ratio: float = 1.0
+
+
 #: every fact type, for documentation and tests
 FACT_TYPES = (NormalFacts, BinaryFacts, SurvivalFacts, ClusterFacts, ClusterBinaryFacts, MultiArmFacts,
-              CrossoverFacts, OrdinalFacts, SteppedFacts)
+              CrossoverFacts, OrdinalFacts, SteppedFacts, RepeatedFacts)

@@ -115,6 +115,11 @@ PAIRS = [
     ({"type": "logrank"}, SURVIVAL),
     ({"type": "mann_whitney"}, TWO_ARM),
     ({"type": "mann_whitney", "estimand": "probability"}, ORDINAL),   # heavy ties
+    # iterative REML on both paths (Fisher scoring vs scipy BFGS): estimates agree to about 1e-9
+    ({"type": "mmrm"}, ("repeated_measures", {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5, "dropout_rate": 0.2}),
+     {"rtol": 1e-6, "atol": 1e-9}),
+    ({"type": "mmrm", "covariance": "toeplitz", "baseline": True}, ("repeated_measures", {"n": 8, "visits": 4,
+     "rho": 0.5, "effect": 0.5, "dropout_rate": 0.2}), {"rtol": 1e-6, "atol": 1e-9}),
     # statsmodels' default optimiser stops within about 1e-4 of the REML optimum the batch path finds
     # (tests/test_mixed.py checks both against statsmodels at that tolerance and at 1e-7 with gtol 1e-10)
     ({"type": "mixed_model"}, CLUSTERS, {"atol": 1e-4, "rtol": 0.0}),

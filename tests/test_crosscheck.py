@@ -46,7 +46,7 @@ from scipy import integrate, stats
 import simpower as sp
 from simpower import analytic, crosscheck
 from simpower.facts import (FACT_TYPES, BinaryFacts, ClusterBinaryFacts, ClusterFacts, CrossoverFacts,
-                            MultiArmFacts, NormalFacts, OrdinalFacts, SteppedFacts, SurvivalFacts)
+                            MultiArmFacts, NormalFacts, OrdinalFacts, RepeatedFacts, SteppedFacts, SurvivalFacts)
 from simpower.processes.base import Batch, Process
 from simpower.processes.crossover import Crossover
 from simpower.registry import build
@@ -298,6 +298,16 @@ def _cases():
     out.append(Case("sw_mixed", build("analysis", {"type": "sw_mixed"}), p, ("sw_mixed", SteppedFacts),
                     lambda f, al: stepped_power(0.3, gls_variance(x, 10, 0.05), al),
                     lambda: z_power(0.3 / math.sqrt(var_hh), ALPHA, "two-sided"), tol=1e-10))
+    # MMRM, final visit, monotone MCAR dropout: the asymptotic variance of the final-visit mean from the
+    # factored likelihood, sum_j L_Tj^2 / r_j with L the Cholesky factor of Sigma (Anderson 1957, JASA 52:200;
+    # Little & Rubin 2002, section 7.2), against the information-matrix form of Lu, Luo & Chen (2008)
+    p = sp.RepeatedMeasures(n=50, visits=4, correlation="ar1", rho=0.6, sd=2.0, effect=0.8, dropout_rate=0.3)
+    cov_m = 4.0 * 0.6 ** np.abs(np.subtract.outer(np.arange(4), np.arange(4)))
+    ret = (1 - p.hazard) ** np.arange(4)
+    se_m = math.sqrt((np.linalg.cholesky(cov_m)[-1] ** 2 / ret).sum() * 2 / 50)
+    out.append(Case("mmrm", build("analysis", {"type": "mmrm"}), p, ("mmrm", RepeatedFacts),
+                    lambda f, al: analytic.mmrm_power(0.8, 50, cov=cov_m, retention=ret, alpha=al),
+                    lambda: z_power(0.8 / se_m, ALPHA, "two-sided"), tol=1e-9))
     return out
 
 

@@ -39,6 +39,7 @@ from .groupseq import (
     naive_alpha,
     spending,
 )
+from .mmrm import mmrm_inflation, mmrm_n, mmrm_power
 from .multiarm import (anova_effect, anova_n, anova_power, box_probability, cohen_f, dunnett_critical,
                        dunnett_power, dunnett_pvalues, many_to_one_corr, many_to_one_lambdas)
 from .noether import noether_effect, noether_n, noether_power, superiority_normal
@@ -64,6 +65,7 @@ __all__ = [
     "expected_information", "inflation_factor", "naive_alpha", "spending",
     "anova_effect", "anova_n", "anova_power", "box_probability", "cohen_f", "dunnett_critical", "dunnett_power",
     "dunnett_pvalues", "many_to_one_corr", "many_to_one_lambdas",
+    "mmrm_inflation", "mmrm_n", "mmrm_power",
     "noether_effect", "noether_n", "noether_power", "superiority_normal",
     "po_shift", "whitehead_factor", "whitehead_n", "whitehead_power",
     "prop2_effect", "prop2_n", "prop2_power",

@@ -24,6 +24,7 @@ from scipy import optimize, special, stats
 from .._validation import Bool, Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
+from ..facts import RepeatedFacts
 from .base import Batch, Process, check_missing_columns
 from .design import TwoArms, apply_missing, arm_defaults, arm_params
 
@@ -230,6 +231,17 @@ class RepeatedMeasures(TwoArms, Process):
         f = lambda a0: self._mar_missing(a0) - target  # noqa: E731
         lo, hi = -40.0, 40.0
         return float(optimize.brentq(f, lo, hi, xtol=1e-10))
+
+    def facts(self):
+        """:class:`~simpower.facts.RepeatedFacts` with dropout completely at random (or none); else none."""
+        if self.mar or self.missing is not None:
+            return ()
+        k = self.visits
+        cov = self.sd**2 * self.corr_matrix
+        retention = (1.0 - self.hazard) ** np.arange(k)
+        return (RepeatedFacts(effect=self.true_effect(), n=self.n, cov=tuple(map(tuple, cov.tolist())),
+                              retention=tuple(retention.tolist()), structure=self.correlation,
+                              ratio=self.n1 / self.n),)
 
     # -- draws ---------------------------------------------------------------
     def draw_batch(self, rng, size):
