@@ -32,12 +32,13 @@ rounding:
   ``H_i = D_i B^-1 D_i' V_i^-1``, which equals ``sum (B - M_i)^-1 u_i u_i' (B - M_i)^-1``
   (Woodbury identity; statsmodels' ``bias_reduced``); Kauermann & Carroll (2001) with
   ``(I - H_i)^-1/2`` in place of ``(I - H_i)^-1`` (the principal square root; see
-  :func:`kauermann_carroll_cov`).
+  :func:`kauermann_carroll_cov`). On batches, with ``B = C C'`` and
+  ``C^-1 M_i C^-T = Q diag(lam) Q'``, ``D_i' V_i^-1 (I - H_i)^-1/2 r_i = u_i + M_i C^-T Q diag(f) Q' C^-1 u_i``
+  with ``f = ((1 - lam)^-1/2 - 1) / lam``: p x p algebra per group.
 
 Replicates the batch path cannot settle the way statsmodels would (the iteration limit
-reached, a singular or nearly singular ``B``, a correlation estimate outside the range
-of positive definite matrices, separation in the starting GLM, a visit without
-observations, ...) are handed to the per-replicate path, so their values and fit
+reached, a singular or nearly singular ``B``, a working correlation matrix near singular,
+separation in the starting GLM, a visit without observations, a group leverage of 1...) are handed to the per-replicate path, so their values and fit
 trouble (statsmodels' warnings, recorded per replicate) are statsmodels' own.
 """
 
@@ -160,24 +161,34 @@ def default_design(arm, visit=None):
 def kauermann_carroll_cov(D, V, r):
     """Kauermann & Carroll's (2001) bias-corrected sandwich from per-group arrays (one data set).
 
-    ``cov = B^-1 [sum_i D_i' V_i^-1 (I - H_i)^-1/2 r_i r_i' (I - H_i)^-T/2 V_i^-1 D_i] B^-1`` with
-    ``B = sum_i D_i' V_i^-1 D_i`` and ``H_i = D_i B^-1 D_i' V_i^-1``; ``(I - H_i)^-1/2`` is the
-    principal inverse square root, computed as ``L_i (I - H*_i)^-1/2 L_i^-1`` with
-    ``V_i = L_i L_i'`` (Cholesky) and the symmetric ``H*_i = L_i^-1 D_i B^-1 D_i' L_i^-T``
-    (``I - H_i`` is similar to ``I - H*_i``). ``D``, ``V``, ``r``: lists of the groups'
-    ``D_i`` (n_i, p), ``V_i`` (n_i, n_i) and residuals ``r_i`` (n_i,).
+    ``cov = B^-1 [sum_i D_i' V_i^-1 A_i r_i r_i' A_i' V_i^-1 D_i] B^-1`` with
+    ``B = sum_i D_i' V_i^-1 D_i``, ``H_i = D_i B^-1 D_i' V_i^-1`` and ``A_i = (I - H_i)^-1/2``, the
+    principal inverse square root. ``H_i = U_i S_i'`` with ``U_i = D_i C^-T``,
+    ``S_i' = C^-1 D_i' V_i^-1`` (``B = C C'``), and ``S_i' U_i = K_i = Q diag(lam) Q'`` is symmetric,
+    so the power series of ``(1 - x)^-1/2`` gives ``A_i = I + U_i Q diag(f(lam)) Q' S_i'`` with
+    ``f(lam) = ((1 - lam)^-1/2 - 1) / lam``. ``D``, ``V``, ``r``: lists of the groups' ``D_i``
+    (n_i, p), working covariances ``V_i`` (n_i, n_i) and residuals ``r_i`` (n_i,). Raises
+    ``ValueError`` when some ``lam >= 1`` (a group that alone determines a coefficient).
     """
-    B = sum(d.T @ np.linalg.solve(v, d) for d, v in zip(D, V))
+    VinvD = [np.linalg.solve(v, d) for d, v in zip(D, V)]
+    B = sum(d.T @ w for d, w in zip(D, VinvD))
+    try:
+        C = np.linalg.cholesky(B)
+    except np.linalg.LinAlgError:
+        raise ValueError("the Kauermann-Carroll correction is undefined: sum D_i' V_i^-1 D_i is not positive "
+                         "definite (an estimated working correlation that is not a correlation matrix)") from None
     Binv = np.linalg.inv(B)
     meat = np.zeros_like(B)
-    for d, v, res in zip(D, V, r):
-        L = np.linalg.cholesky(v)
-        Dt = np.linalg.solve(L, d)                 # L^-1 D_i
-        rt = np.linalg.solve(L, res)               # L^-1 r_i
-        Hs = Dt @ Binv @ Dt.T
-        lam, Q = np.linalg.eigh(np.eye(len(res)) - Hs)
-        adj = Q @ ((Q.T @ rt) / np.sqrt(lam))      # (I - H*_i)^-1/2 L^-1 r_i
-        u = Dt.T @ adj                              # D_i' V_i^-1 (I - H_i)^-1/2 r_i
+    for d, w, res in zip(D, VinvD, r):
+        U = np.linalg.solve(C, d.T).T                   # D_i C^-T
+        St = np.linalg.solve(C, w.T)                    # C^-1 D_i' V_i^-1
+        lam, Q = np.linalg.eigh(St @ U)
+        if np.any(lam >= 1):
+            raise ValueError("the Kauermann-Carroll correction is undefined: a group's leverage I - H_i is not "
+                             "positive definite (a group alone determines a coefficient)")
+        s = np.sqrt(1.0 - lam)
+        adj = res + U @ (Q @ ((Q.T @ (St @ res)) / (s * (1.0 + s))))   # (I - H_i)^-1/2 r_i
+        u = w.T @ adj                                                    # D_i' V_i^-1 (I - H_i)^-1/2 r_i
         meat += np.outer(u, u)
     return Binv @ meat @ Binv
 
@@ -198,11 +209,7 @@ def _kc_from_statsmodels(res) -> np.ndarray:
         D.append(model.mean_deriv(X, lpr))
         V.append(corr * np.outer(sd, sd) if is_cor else corr)
         r.append(y - mu)
-    try:
-        return kauermann_carroll_cov(D, V, r)
-    except np.linalg.LinAlgError as exc:
-        raise ValueError("the Kauermann-Carroll correction needs a positive definite working covariance in every "
-                         f"group (estimated exchangeable correlation {model.cov_struct.dep_params}): {exc}") from None
+    return kauermann_carroll_cov(D, V, r)
 
 
 # -- the analysis ----------------------------------------------------------------------------
@@ -581,10 +588,6 @@ class _GeeBatch:
         R, N = self.y.shape
         p = self.p
         cov = np.full((R, p, p), np.nan)
-        if cov_type == "kauermann_carroll":
-            # (I - H_i)^-1/2 needs a positive definite working correlation: else the per-replicate error
-            kmax = self.k.max(axis=1)
-            skip = skip | ((kmax > 1) & (self.alpha <= -1.0 / np.maximum(kmax - 1.0, 1.0)))
         todo = np.flatnonzero(~skip)
         step = max(1, BLOCK_VALUES // max(N * p * p, 1))
         with np.errstate(all="ignore"):
