@@ -75,12 +75,12 @@ def _mean_parts(family: str, eta):
         one = np.ones_like(eta)
         return eta, one, one
     if family == "binomial":
-        mu = 1.0 / (1.0 + np.exp(-eta))
-        t = np.exp(eta)
+        e = np.exp(-eta)
+        mu = 1.0 / (1.0 + e)
         p = np.clip(mu, EPS, 1.0 - EPS)
-        return mu, t / (1.0 + t) ** 2, p * (1.0 - p)
+        return mu, e * mu * mu, p * (1.0 - p)     # exp(eta) / (1 + exp(eta))^2 = e mu^2
     mu = np.exp(eta)
-    return mu, np.exp(eta), np.abs(mu)
+    return mu, mu, np.abs(mu)
 
 
 def _irls_parts(family: str, mu):
@@ -111,34 +111,87 @@ def _deviance(family: str, y, mu, obs):
     return 2.0 * np.where(obs, d, 0.0).sum(axis=1)
 
 
-# -- groups ----------------------------------------------------------------------------------
-class _Groups:
-    """Sums of per-row arrays (R, N, ...) within groups, -> (R, G, ...), for shared or per-replicate ids."""
+# -- designs: the sums the fit needs, for shared or per-replicate design columns ----------------
+class _SharedDesign:
+    """Design X (N, p) and group ids (N,) shared by every replicate: group sums as sparse products.
 
-    def __init__(self, codes):
-        codes = np.asarray(codes)
-        if codes.ndim == 1:
-            labels, inv = np.unique(codes, return_inverse=True)
-            self.order = np.argsort(inv, kind="stable")
-            sizes = np.bincount(inv, minlength=labels.size)
-            self.starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
-            self.codes, self.G = None, int(labels.size)
-        else:
-            labels, inv = np.unique(codes, return_inverse=True)
-            self.codes, self.G = inv.reshape(codes.shape), int(labels.size)
+    Every sum the fit needs is a product of per-row weights (r, N) with a fixed matrix: ``X``,
+    the rows' outer products ``x x'``, or the same spread over the groups (sparse, N nonzeros per
+    column block), so each is one call into compiled code.
+    """
 
-    def sum(self, a, rows):
-        """Group sums of ``a`` (r, N) or (r, N, k), whose replicates are ``rows`` of the batch."""
-        if self.codes is None:
-            return np.add.reduceat(a[:, self.order], self.starts, axis=1)
-        r = a.shape[0]
-        flat = (self.codes[rows] + self.G * np.arange(r)[:, None]).ravel()
-        if a.ndim == 2:
-            return np.bincount(flat, a.ravel(), r * self.G).reshape(r, self.G)
-        k = a.shape[2:]
-        a2 = a.reshape(r * a.shape[1], -1)
-        out = np.stack([np.bincount(flat, a2[:, j], r * self.G) for j in range(a2.shape[1])], axis=-1)
-        return out.reshape((r, self.G) + k)
+    def __init__(self, X, codes):
+        from scipy import sparse
+
+        N, p = X.shape
+        labels, inv = np.unique(np.asarray(codes), return_inverse=True)
+        self.G, self.p, self.X = int(labels.size), p, X
+        self.XX = (X[:, :, None] * X[:, None, :]).reshape(N, p * p)
+
+        def spread(values, width):     # (N, width) values -> sparse (G * width, N), row g * width + j
+            cols = inv[:, None] * width + np.arange(width)
+            m = sparse.csr_matrix((values.ravel(), (np.repeat(np.arange(N), width), cols.ravel())),
+                                  shape=(N, self.G * width))
+            return m.T.tocsr()
+
+        self.Sg, self.S1, self.S2 = spread(np.ones((N, 1)), 1), spread(X, p), spread(self.XX, p * p)
+
+    def eta(self, beta, rows):
+        return beta @ self.X.T
+
+    def xtw(self, v, rows):                  # sum_n v_n x_n -> (r, p)
+        return v @ self.X
+
+    def xtwx(self, w, rows):                 # sum_n w_n x_n x_n' -> (r, p, p)
+        return (w @ self.XX).reshape(-1, self.p, self.p)
+
+    def gsum(self, v, rows):                 # per group sum_n v_n -> (r, G)
+        return (self.Sg @ v.T).T
+
+    def gx(self, w, rows):                   # per group sum_n w_n x_n -> (r, G, p)
+        return (self.S1 @ w.T).T.reshape(-1, self.G, self.p)
+
+    def gxx(self, w, rows):                  # per group sum_n w_n x_n x_n' -> (r, G, p, p)
+        return (self.S2 @ w.T).T.reshape(-1, self.G, self.p, self.p)
+
+
+class _RowDesign:
+    """Design X (R, N, p) and group ids (N,) or (R, N) per replicate: group sums by ``bincount``."""
+
+    def __init__(self, X, codes):
+        labels, inv = np.unique(np.asarray(codes), return_inverse=True)
+        self.codes, self.G, self.X, self.p = inv.reshape(np.shape(codes)), int(labels.size), X, X.shape[-1]
+
+    def _flat(self, rows):
+        codes = self.codes if self.codes.ndim == 2 else np.broadcast_to(self.codes, self.X.shape[:2])
+        codes = codes[rows]
+        return (codes + self.G * np.arange(codes.shape[0])[:, None]).ravel()
+
+    def _sums(self, values, rows):           # values (r, N, k) -> (r, G, k)
+        flat, r = self._flat(rows), values.shape[0]
+        cols = [np.bincount(flat, values[..., j].ravel(), r * self.G) for j in range(values.shape[-1])]
+        return np.stack(cols, axis=-1).reshape(r, self.G, -1)
+
+    def eta(self, beta, rows):
+        return np.einsum("rnp,rp->rn", self.X[rows], beta)
+
+    def xtw(self, v, rows):
+        return np.einsum("rnp,rn->rp", self.X[rows], v)
+
+    def xtwx(self, w, rows):
+        X = self.X[rows]
+        return np.swapaxes(X * w[..., None], 1, 2) @ X
+
+    def gsum(self, v, rows):
+        return self._sums(v[..., None], rows)[..., 0]
+
+    def gx(self, w, rows):
+        return self._sums(self.X[rows] * w[..., None], rows)
+
+    def gxx(self, w, rows):
+        X = self.X[rows]
+        xx = (X[..., :, None] * X[..., None, :]).reshape(X.shape[:2] + (self.p * self.p,))
+        return self._sums(xx * w[..., None], rows).reshape(-1, self.G, self.p, self.p)
 
 
 # -- the default design ----------------------------------------------------------------------
@@ -397,7 +450,10 @@ class GEE(Analysis):
             X, _ = default_design(arm, visit)              # (N, p)
         else:
             X, _ = default_design(np.broadcast_to(arm, (R, N)), None)
-        fit = _GeeBatch(self.family_name, self.cov_struct, X, y, obs, _Groups(groups), self.maxiter)
+        groups = np.asarray(groups)
+        design = _SharedDesign(X, groups) if X.ndim == 2 and groups.ndim == 1 else \
+            _RowDesign(np.broadcast_to(X, (R,) + X.shape[-2:]), groups)
+        fit = _GeeBatch(self.family_name, self.cov_struct, design, y, obs, self.maxiter)
         bad = fit.run()
         if visit is not None and np.unique(visit).size > 1:
             # a visit without observed outcomes changes the per-replicate design: statsmodels decides
@@ -414,14 +470,14 @@ class GEE(Analysis):
 class _GeeBatch:
     """statsmodels' GEE fit (start, iteration, stopping rule, covariances) for R replicates at once."""
 
-    def __init__(self, family, cov_struct, X, y, obs, groups: _Groups, maxiter):
+    def __init__(self, family, cov_struct, design, y, obs, maxiter):
         self.family, self.exchangeable, self.maxiter = family, cov_struct == "exchangeable", maxiter
-        self.X, self.obs, self.groups = X, obs, groups
+        self.design, self.obs = design, obs
         self.y = np.where(obs, y, 0.0)
         R = y.shape[0]
-        self.p = X.shape[-1]
+        self.p = design.p
         rows = np.arange(R)
-        self.k = groups.sum(obs.astype(float), rows)                # (R, G) observed members
+        self.k = design.gsum(obs.astype(float), rows)              # (R, G) observed members
         self.n_obs = obs.sum(axis=1).astype(float)
         self.n_groups = (self.k > 0).sum(axis=1)
         self.n_pairs = (0.5 * self.k * (self.k - 1)).sum(axis=1)
@@ -437,27 +493,12 @@ class _GeeBatch:
             self.bad = np.zeros(R, bool)
         self.bad |= self.n_groups < 1
 
-    # -- rows of a set of replicates
-    def _X(self, rows):
-        return self.X if self.X.ndim == 2 else self.X[rows]
-
     def _eta(self, rows, beta):
-        X = self._X(rows)
-        if X.ndim == 2:
-            return beta @ X.T
-        return np.einsum("rnp,rp->rn", X, beta)
+        return self.design.eta(beta, rows)
 
     def _wls(self, rows, w, z):
-        """Weighted least squares per replicate: ``(X'WX)^-1 X'Wz``; also the smallest relative eigenvalue."""
-        X = self._X(rows)
-        Xw = (X if X.ndim == 3 else X[None]) * w[..., None]
-        A = np.swapaxes(Xw, 1, 2) @ (X if X.ndim == 3 else X[None])
-        b = np.einsum("rnp,rn->rp", Xw, z)
-        return self._solve(A, b)
-
-    @staticmethod
-    def _solve(A, b):
-        return _solve_sym(A, b)
+        """Weighted least squares per replicate: ``(X'WX)^-1 X'Wz`` and whether it was well posed."""
+        return _solve_sym(self.design.xtwx(w, rows), self.design.xtw(w * z, rows))
 
     # -- the independence GLM (statsmodels' GLM.fit, IRLS) as starting values
     def start(self):
@@ -509,12 +550,11 @@ class _GeeBatch:
         eta = self._eta(rows, beta)
         mu, dmu, v = _mean_parts(self.family, eta)
         sd = np.sqrt(v)
-        w = np.where(obs, dmu / sd, 0.0)
-        r1 = np.where(obs, (self.y[rows] - mu) / sd, 0.0)
-        X = self._X(rows)
-        D1 = (X if X.ndim == 3 else X[None]) * w[..., None]         # (r, N, p): rows of V^-1/2-scaled D
-        sD = self.groups.sum(D1, rows)                               # (r, G, p)
-        sr = self.groups.sum(r1, rows)                               # (r, G)
+        w = np.where(obs, dmu / sd, 0.0)                             # rows of D scaled by 1 / sd
+        r1 = np.where(obs, (self.y[rows] - mu) / sd, 0.0)            # Pearson residuals
+        d = self.design
+        sD = d.gx(w, rows)                                           # (r, G, p)
+        sr = d.gsum(r1, rows)                                        # (r, G)
         rr = np.einsum("rn,rn->r", r1, r1)
         if update is not None and update.any():
             alpha = alpha.copy()
@@ -526,21 +566,14 @@ class _GeeBatch:
             c = np.where(k > 0, a / (1.0 - a) / (1.0 + a * (k - 1.0)), 0.0)     # statsmodels' solve
         inv1 = 1.0 / (1.0 - alpha)
         out = {"eta": eta, "alpha": alpha}
+        cs = c[..., None] * sD
         if per_group:
-            p = D1.shape[-1]
-            DD = self.groups.sum((D1[..., :, None] * D1[..., None, :]).reshape(D1.shape[:2] + (p * p,)), rows)
-            DD = DD.reshape(DD.shape[:2] + (p, p))
-            Dr = self.groups.sum(D1 * r1[..., None], rows)
-            cs = c[..., None] * sD
-            out["M"] = DD * inv1[:, None, None, None] - cs[..., :, None] * sD[..., None, :]
-            out["u"] = Dr * inv1[:, None, None] - cs * sr[..., None]
-            out["B"] = out["M"].sum(axis=1)
-            out["U"] = out["u"].sum(axis=1)
+            M = d.gxx(w * w, rows) * inv1[:, None, None, None] - cs[..., :, None] * sD[..., None, :]
+            u = d.gx(w * r1, rows) * inv1[:, None, None] - cs * sr[..., None]
+            out.update(M=M, u=u, B=M.sum(axis=1), U=u.sum(axis=1))
         else:
-            Dt = np.swapaxes(D1, 1, 2)
-            cs = c[..., None] * sD
-            out["B"] = (Dt @ D1) * inv1[:, None, None] - np.swapaxes(cs, 1, 2) @ sD
-            out["U"] = (Dt @ r1[..., None])[..., 0] * inv1[:, None] - np.einsum("rgp,rg->rp", cs, sr)
+            out["B"] = d.xtwx(w * w, rows) * inv1[:, None, None] - np.swapaxes(cs, 1, 2) @ sD
+            out["U"] = d.xtw(w * r1, rows) * inv1[:, None] - np.einsum("rgp,rg->rp", cs, sr)
         return out
 
     def _alpha(self, rows, sr, rr):
@@ -561,12 +594,14 @@ class _GeeBatch:
             idx = np.flatnonzero(~done)
             if idx.size == 0:
                 break
+            if idx.size == R:                    # every replicate: views instead of copies
+                idx = slice(None)
             with np.errstate(all="ignore"):
                 beta = self.beta[idx]
                 # the correlation update statsmodels makes at the end of the previous iteration
                 upd = self.update_dep[idx] if itr > 0 and self.exchangeable else None
                 m = self.moments(idx, beta, self.alpha[idx], update=upd)
-                step, ok = self._solve(m["B"], m["U"])
+                step, ok = _solve_sym(m["B"], m["U"])
                 norm = np.sqrt((m["U"] ** 2).sum(axis=1))
             k, a = self.k[idx], self.alpha[idx][:, None]
             # statsmodels' exchangeable solve divides by 1 - alpha and 1 + alpha (k - 1) (it goes on when
@@ -578,8 +613,9 @@ class _GeeBatch:
             self.beta[idx] = beta + step
             score_norm[idx] = norm
             stop = (norm < CTOL) & ((itr > 0) | ~self.update_dep[idx])
-            self.bad[idx[wrong]] = True
-            done[idx[stop | wrong]] = True
+            rows = np.arange(R)[idx]
+            self.bad[rows[wrong]] = True
+            done[rows[stop | wrong]] = True
         self.bad |= ~(score_norm < CTOL)                # iteration limit: statsmodels warns
         return self.bad
 
