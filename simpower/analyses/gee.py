@@ -64,6 +64,8 @@ GLM_TOL, GLM_MAXITER = 1e-8, 100
 EPS = np.finfo(float).eps
 #: smallest eigenvalue of B, relative to its largest, below which a replicate goes to statsmodels
 RCOND = 1e-10
+#: outcome values (replicates x rows) per block of replicates fitted together
+BLOCK_ROWS = 2**15
 #: replicate rows (x coefficients^2) per block when per-group outer products are summed
 BLOCK_VALUES = 4_000_000
 
@@ -451,18 +453,24 @@ class GEE(Analysis):
         else:
             X, _ = default_design(np.broadcast_to(arm, (R, N)), None)
         groups = np.asarray(groups)
-        design = _SharedDesign(X, groups) if X.ndim == 2 and groups.ndim == 1 else \
-            _RowDesign(np.broadcast_to(X, (R,) + X.shape[-2:]), groups)
-        fit = _GeeBatch(self.family_name, self.cov_struct, design, y, obs, self.maxiter)
-        bad = fit.run()
+        shared = _SharedDesign(X, groups) if X.ndim == 2 and groups.ndim == 1 else None
+        bad = np.zeros(R, bool)
         if visit is not None and np.unique(visit).size > 1:
             # a visit without observed outcomes changes the per-replicate design: statsmodels decides
             per_visit = np.stack([obs[:, visit == v].any(axis=1) for v in np.unique(visit)], axis=1)
             bad |= ~per_visit.all(axis=1)
-        est, cov = fit.estimate_and_cov(self.cov_type, bad)
-        se = np.sqrt(cov[:, 1, 1])
-        df = (fit.n_groups - X.shape[-1]).astype(float)
-        out = BatchResult(**self._fields(est[:, 1], se, df))
+        est, se, df = np.empty(R), np.empty(R), np.empty(R)
+        step = max(1, BLOCK_ROWS // N)           # blocks of replicates: temporaries stay in cache
+        for lo in range(0, R, step):
+            blk = slice(lo, min(R, lo + step))
+            design = shared or _RowDesign(np.broadcast_to(X, (R,) + X.shape[-2:])[blk],
+                                          groups[blk] if groups.ndim == 2 else groups)
+            fit = _GeeBatch(self.family_name, self.cov_struct, design, y[blk], obs[blk], self.maxiter)
+            bad[blk] |= fit.run()
+            b, cov = fit.estimate_and_cov(self.cov_type, bad[blk])
+            est[blk], se[blk] = b[:, 1], np.sqrt(cov[:, 1, 1])
+            df[blk] = fit.n_groups - X.shape[-1]
+        out = BatchResult(**self._fields(est, se, df))
         bad |= ~(np.isfinite(out.pvalue) & np.isfinite(se) & np.isfinite(out.estimate) & (se > 0))
         return hand_over(self, batch, out, bad)
 
