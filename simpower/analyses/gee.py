@@ -355,10 +355,10 @@ class GEE(Analysis):
         return cov_struct.Exchangeable() if self.cov_struct == "exchangeable" else cov_struct.Independence()
 
     def _family(self):
-        import statsmodels.api as sm
+        from statsmodels.genmod import families
 
-        return {"gaussian": sm.families.Gaussian, "binomial": sm.families.Binomial,
-                "poisson": sm.families.Poisson}[self.family_name]()
+        return {"gaussian": families.Gaussian, "binomial": families.Binomial,
+                "poisson": families.Poisson}[self.family_name]()
 
     @property
     def _sm_cov_type(self) -> str:
@@ -366,8 +366,13 @@ class GEE(Analysis):
 
     # -- per replicate (statsmodels) -------------------------------------------------------------
     def fit(self, data):
+        """The statsmodels GEE results object for one long table."""
+        return self._fit(data)[0]
+
+    def _fit(self, data):
         """The statsmodels GEE results object for one long table, and the coefficient names."""
-        import statsmodels.api as sm
+        # the module itself, not statsmodels.api (whose import pulls in much more)
+        from statsmodels.genmod.generalized_estimating_equations import GEE as StatsmodelsGEE
 
         group_col = "cluster" if "cluster" in data else "subject" if "subject" in data else None
         if group_col is None:
@@ -377,7 +382,7 @@ class GEE(Analysis):
             keep = np.isfinite(y)
             visit = np.asarray(data["visit"])[keep] if "visit" in data else None
             X, names = default_design(np.asarray(data["arm"])[keep], visit)
-            model = sm.GEE(y[keep], X, groups=np.asarray(data[group_col])[keep], family=self._family(),
+            model = StatsmodelsGEE(y[keep], X, groups=np.asarray(data[group_col])[keep], family=self._family(),
                            cov_struct=self._structure())
         else:
             import pandas as pd
@@ -385,7 +390,7 @@ class GEE(Analysis):
             df = pd.DataFrame({k: np.asarray(v) for k, v in dict(data).items()})
             df = df[np.isfinite(df["y"].to_numpy(float))]
             require_columns(self.formula, df.columns, "gee")
-            model = sm.GEE.from_formula(self.formula, groups=group_col, data=df, family=self._family(),
+            model = StatsmodelsGEE.from_formula(self.formula, groups=group_col, data=df, family=self._family(),
                                         cov_struct=self._structure())
             names = list(model.exog_names)
         res = model.fit(maxiter=self.maxiter, cov_type=self._sm_cov_type)
@@ -394,7 +399,7 @@ class GEE(Analysis):
         return res, names
 
     def __call__(self, data) -> TestResult:
-        res, names = self.fit(data)
+        res, names = self._fit(data)
         if self.term not in names:
             from ..errors import nearest
 
