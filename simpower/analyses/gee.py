@@ -89,8 +89,8 @@ def _irls_parts(family: str, mu):
     """IRLS weights ``1 / (g'(mu)^2 v(mu))`` and ``g'(mu)`` of statsmodels' GLM (clipped as there)."""
     if family == "binomial":
         p = np.clip(mu, EPS, 1.0 - EPS)
-        d = 1.0 / (p * (1 - p))
-        return 1.0 / (d**2 * (p * (1.0 - p))), d
+        w = p * (1.0 - p)
+        return w, 1.0 / w
     d = 1.0 / np.clip(mu, EPS, np.inf)
     return 1.0 / (d**2 * np.abs(mu)), d
 
@@ -104,6 +104,8 @@ def _link(family: str, mu):
 
 def _deviance(family: str, y, mu, obs):
     """Deviance per replicate (statsmodels' ``_resid_dev`` with its clipping), observed rows only."""
+    if family == "binary":             # 0/1 outcomes: the same terms, one log per value
+        return -2.0 * np.where(obs, np.log(np.where(y > 0.5, mu + 1e-20, 1.0 - mu + 1e-20)), 0.0).sum(axis=1)
     if family == "binomial":
         a = np.clip(y / (mu + 1e-20), EPS, np.inf)
         b = np.clip((1.0 - y) / (1.0 - mu + 1e-20), EPS, np.inf)
@@ -530,7 +532,8 @@ class _GeeBatch:
                 ybar = y.sum(axis=1) / self.n_obs
             mu = (y + ybar[:, None]) / 2
         eta = _link(self.family, mu)
-        dev_old = _deviance(self.family, y, mu, obs)
+        kind = "binary" if self.family == "binomial" and np.all((y == 0) | (y == 1)) else self.family
+        dev_old = _deviance(kind, y, mu, obs)
         done = np.zeros(R, bool)
         for _ in range(GLM_MAXITER):
             idx = np.flatnonzero(~done & ~self.bad)
@@ -543,7 +546,7 @@ class _GeeBatch:
             self.beta[idx] = beta
             eta[idx] = self._eta(idx, beta)
             mu[idx] = _mean_parts(self.family, eta[idx])[0]
-            dev = _deviance(self.family, y[idx], mu[idx], obs[idx])
+            dev = _deviance(kind, y[idx], mu[idx], obs[idx])
             # statsmodels warns of perfect separation when every fitted mean is within 1e-8 of its outcome
             sep = ~np.any(obs[idx] & (np.abs(mu[idx] - y[idx]) > 1e-8), axis=1)
             self.bad[idx[sep]] = True
