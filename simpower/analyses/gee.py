@@ -36,10 +36,14 @@ rounding:
   ``C^-1 M_i C^-T = Q diag(lam) Q'``, ``D_i' V_i^-1 (I - H_i)^-1/2 r_i = u_i + M_i C^-T Q diag(f) Q' C^-1 u_i``
   with ``f = ((1 - lam)^-1/2 - 1) / lam``: p x p algebra per group.
 
-Replicates the batch path cannot settle the way statsmodels would (the iteration limit
-reached, a singular or nearly singular ``B``, a working correlation matrix near singular,
-separation in the starting GLM, a visit without observations, a group leverage of 1...) are handed to the per-replicate path, so their values and fit
-trouble (statsmodels' warnings, recorded per replicate) are statsmodels' own.
+The replicates of a batch are fitted in blocks (about 32,000 outcome values each), so the
+temporaries stay in the processor's cache; a group sum is a product with a sparse
+group-by-coefficient matrix when the design and groups are shared by every replicate, else a
+``bincount``. Replicates the batch path cannot settle the way statsmodels would (the
+iteration limit reached, a singular or nearly singular ``B``, a working correlation matrix
+near singular, separation in the starting GLM, a visit without observations, a group
+leverage of 1...) are handed to the per-replicate path, so their values and fit trouble
+(statsmodels' warnings, recorded per replicate) are statsmodels' own.
 """
 
 from __future__ import annotations
