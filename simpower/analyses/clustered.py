@@ -3,9 +3,8 @@
 * :class:`ClusterMeansT` -- the cluster-level summary t-test: one mean per
   cluster, compared between arms (Donner & Klar 2000, ch. 6). Batch path for
   equal and variable cluster sizes (padded layouts).
-* :class:`GEE` -- generalised estimating equations with a Gaussian family,
-  exchangeable working correlation and robust (sandwich) SEs, through
-  :mod:`statsmodels` (Liang & Zeger 1986).
+* :class:`GEE` -- generalised estimating equations (Liang & Zeger 1986); it lives in
+  :mod:`simpower.analyses.gee` and is re-exported here (also as ``Gee``).
 * :class:`FinalVisitT` -- complete-case Student or Welch t-test at the final
   visit of a repeated-measures table. Batch path.
 
@@ -18,14 +17,12 @@ from __future__ import annotations
 import math
 
 import numpy as np
-import pandas as pd
 from scipy import stats
 
-from .._validation import Anything, Bool, Choice, Int
-from ..errors import ParameterError
-from ..formula import FormulaText, require_columns
+from .._validation import Bool, Choice
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
-from .numeric import p_from_t, p_from_z
+from .gee import GEE
+from .numeric import p_from_t
 
 
 def _two_sided_ci(est, se, df, ci_level):
@@ -220,118 +217,8 @@ def _size_weighted_arm(data, a):
     return float(fit.params[0]), k / (k - 1.0) * float(fit.bse[0]) ** 2
 
 
-# -- GEE ----------------------------------------------------------------------
-def _default_design(df: pd.DataFrame) -> tuple[pd.DataFrame, str]:
-    """Intercept + arm (cluster data), or visit x arm with the final visit as reference (repeated data)."""
-    X = pd.DataFrame({"Intercept": 1.0, "arm": df["arm"].astype(float)}, index=df.index)
-    if "visit" in df and df["visit"].nunique() > 1:
-        last = df["visit"].max()
-        for v in sorted(df["visit"].unique()):
-            if v == last:
-                continue
-            ind = (df["visit"] == v).astype(float)
-            X[f"visit[{v}]"] = ind
-            X[f"arm:visit[{v}]"] = ind * X["arm"]
-    return X, "arm"
-
-
-class GEE(Analysis):
-    """Gaussian GEE with robust SEs (statsmodels), groups = cluster (or subject).
-
-    Parameters
-    ----------
-    formula : str, optional
-        The mean model, e.g. ``"y ~ arm + baseline"``, in the grammar of
-        :mod:`simpower.formula` (checked at construction: column names,
-        ``C(column)``, ``a:b``, ``a*b``; nothing that runs code).
-        Default: ``y ~ arm`` for cluster data; for repeated data (a ``visit``
-        column) visit as a factor crossed with arm, with the final visit as
-        the reference level, so the ``arm`` coefficient is the treatment
-        difference at the final visit.
-    term : str
-        The coefficient tested and reported (default ``"arm"``).
-    cov_struct : {"exchangeable", "independence"}
-        Working correlation within groups.
-    cov_type : {"robust", "bias_reduced"}
-        Sandwich SEs, or the Mancl-DeRouen bias-reduced sandwich (fewer clusters).
-    distribution : {"normal", "t"}
-        Reference distribution of the Wald statistic: normal (statsmodels'
-        default) or t with (groups - coefficients) df, safer with few groups.
-    maxiter : int >= 1
-        Iteration limit of the GEE fit; hitting it warns (recorded per replicate).
-    alternative, ci_level
-        As elsewhere; H1 "greater": coefficient > 0.
-
-    Notes
-    -----
-    H0: the ``term`` coefficient is 0 (for the defaults, no difference between
-    arms, at the final visit for repeated data). Groups are ``cluster`` when
-    the table has that column, else ``subject``. Rows with missing ``y`` are
-    dropped: valid under missingness completely at random only. Fit warnings
-    (``ConvergenceWarning``, ...) are not silenced.
-    """
-
-    name = "gee"
-    null_hypothesis = "the coefficient of `term` (default: arm, at the final visit for repeated data) is 0"
-    params = {"formula": FormulaText(optional=True), "term": Anything(),
-              "cov_struct": Choice(("exchangeable", "independence")),
-              "cov_type": Choice(("robust", "bias_reduced")), "distribution": Choice(("normal", "t")),
-              "maxiter": Int(low=1), "alternative": ALTERNATIVE, "ci_level": CI_LEVEL}
-    defaults = {"formula": None, "term": "arm", "cov_struct": "exchangeable", "cov_type": "robust",
-                "distribution": "normal", "maxiter": 60, "alternative": "two-sided", "ci_level": 0.95}
-
-    def _check(self):
-        if not isinstance(self.term, str) or not self.term:
-            raise ParameterError(f"`term` must be a coefficient name such as 'arm'; got {self.term!r}.")
-
-    def _structure(self):
-        from statsmodels.genmod import cov_struct
-
-        return cov_struct.Exchangeable() if self.cov_struct == "exchangeable" else cov_struct.Independence()
-
-    def fit(self, data):
-        """The statsmodels GEE results object for one long table."""
-        import statsmodels.api as sm
-
-        df = pd.DataFrame({k: np.asarray(v) for k, v in dict(data).items()})
-        group_col = "cluster" if "cluster" in df else "subject" if "subject" in df else None
-        if group_col is None:
-            raise ValueError("gee needs a 'cluster' or 'subject' column to define groups")
-        df = df[np.isfinite(df["y"].to_numpy(float))]
-        family = sm.families.Gaussian()
-        if self.formula is None:
-            X, _ = _default_design(df)
-            model = sm.GEE(df["y"].astype(float), X, groups=df[group_col].to_numpy(), family=family,
-                           cov_struct=self._structure())
-        else:
-            require_columns(self.formula, df.columns, "gee")
-            model = sm.GEE.from_formula(self.formula, groups=group_col, data=df, family=family,
-                                        cov_struct=self._structure())
-        res = model.fit(maxiter=self.maxiter, cov_type=self.cov_type)
-        if res is None:  # statsmodels warned (singular covariance...) and gave up
-            raise ValueError("the GEE fit returned no estimates (singular covariance of the estimates)")
-        return res
-
-    def __call__(self, data) -> TestResult:
-        res = self.fit(data)
-        names = list(res.model.exog_names)
-        if self.term not in names:
-            from ..errors import nearest
-
-            raise ValueError(f"`term` {self.term!r} is not a coefficient of the GEE model.{nearest(self.term, names)}")
-        j = names.index(self.term)
-        est, se = float(res.params.iloc[j]), float(res.bse.iloc[j])
-        z = est / se
-        if self.distribution == "normal":
-            p = float(p_from_z(z, self.alternative))
-            crit = stats.norm.ppf(0.5 + self.ci_level / 2)
-            df = math.inf
-        else:
-            df = float(len(np.unique(res.model.groups)) - len(names))
-            p = float(p_from_t(z, df, self.alternative))
-            crit = stats.t.ppf(0.5 + self.ci_level / 2, df)
-        return TestResult(pvalue=p, estimate=est, se=se, ci_low=float(est - crit * se),
-                          ci_high=float(est + crit * se), statistic=z, df=df)
+# -- GEE: simpower/analyses/gee.py (re-exported here, where it used to live) ----------
+Gee = GEE
 
 
 # -- final visit ----------------------------------------------------------------
