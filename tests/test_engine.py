@@ -271,3 +271,29 @@ def test_an_analysis_that_cannot_read_the_design_is_refused_before_running():
     with pytest.raises(sp.ParameterError, match="analysis `t_test` cannot analyse the data of process "
                                                 "`survival_two_arm`: it raised KeyError"):
         sp.run(sc, reps=100, seed=1, n_jobs=1)
+
+
+def test_a_cheap_per_replicate_run_stays_in_this_process_and_an_expensive_one_starts_workers(monkeypatch):
+    # the preflight times one warm replicate; when workers cannot save more than they cost to start
+    # (runner.HEAVY_POOL_START_SECONDS), an explicit n_jobs = 2 still runs here -- numbers unchanged
+    from simpower.engine import executor, runner
+
+    started = []
+    real = executor._loky_results
+
+    def counting(fn, tasks, jobs, fallback):
+        started.append(jobs)
+        return real(fn, tasks, jobs, fallback)
+
+    monkeypatch.setattr(executor, "_loky_results", counting)
+    monkeypatch.setattr(type(sp.TTest()), "has_batch", property(lambda self: False))
+    sc = sp.Scenario(sp.NormalTwoArm(n=20, effect=0.5), sp.TTest())
+    here = sp.run(sc, reps=200, seed=3, n_jobs=2, progress=False)
+    assert started == []
+    monkeypatch.setattr(runner, "HEAVY_POOL_START_SECONDS", -1.0)   # workers now always "pay"
+    monkeypatch.setattr(executor, "_last_pool", None)
+    there = sp.run(sc, reps=200, seed=3, n_jobs=2, progress=False)
+    assert started == [2]
+    # the workers do not see this test's patch, so they take the t-test's batch path: the same p-values to
+    # rounding (the two paths are checked bit for bit elsewhere without the patch)
+    np.testing.assert_allclose(here.pvalues, there.pvalues, rtol=1e-12)

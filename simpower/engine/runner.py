@@ -66,7 +66,7 @@ from ..summaries import WARNING_PREFIX, PointStats
 from .chunk import ChunkOutput, run_chunk
 from .collect import CauseBook, RecordCollector
 from . import guard
-from .executor import context_backend, effective_jobs, execute
+from .executor import context_backend, effective_jobs, execute, pool_start_seconds
 from .progress import display as progress_display
 from .spool import RecordSpool
 
@@ -516,20 +516,34 @@ def preflight(scenario, label: str = "") -> None:
     a t-test on survival data, not an occasional failure -- is the run
     refused, with one line naming the analysis and its first error. A process
     that raises is left to the run, which counts it by cause.
+
+    Returns the seconds the analyses without a batch path took on one
+    replicate (a second, warm call each), or None when the process raised:
+    the runner's estimate of a per-replicate run's cost.
     """
     data = trial_data(scenario, PREFLIGHT_REPLICATES)
     if data is None:
-        return
+        return None
+    cost = 0.0
     for name, analysis in scenario.analyses.items():
         errors = []
         with warnings.catch_warnings(record=True):   # recorded, never printed (see planning.search)
             warnings.simplefilter("ignore")
-            for d in data:
+            for i, d in enumerate(data):
                 try:
                     analysis(d)
                 except Exception as exc:
                     errors.append(exc)
                 else:
+                    if scenario.process.has_batch and analysis.has_batch:
+                        break  # its chunks take the batch path: no per-replicate cost to estimate
+                    # a second, warm call (imports done) times the analysis on one replicate
+                    t0 = time.perf_counter()
+                    try:
+                        analysis(data[(i + 1) % len(data)])
+                    except Exception:
+                        pass
+                    cost += time.perf_counter() - t0
                     break
         if len(errors) == len(data):
             exc = errors[0]
@@ -538,6 +552,7 @@ def preflight(scenario, label: str = "") -> None:
                 f"it raised {type(exc).__name__}: {exc} on every trial replicate{f' at {label}' if label else ''}; "
                 f"check that the analysis fits the design (columns {', '.join(sorted(map(str, data[0])))})"
                 f"{' and data of that shape' if label else ''}.")
+    return cost
 
 
 def _preflight_isolated(sc, label: str = "") -> None:
@@ -589,8 +604,32 @@ def _isolation(scenarios, backend, jobs) -> tuple[bool, str | None]:
     return isolating, backend
 
 
-def _chunk_results(tasks, n_tasks, scenarios, isolating, run_backend, n_jobs, address, max_failure_rate):
-    """The executor's generator of chunk outputs (see :func:`run_many` for where chunks run)."""
+#: estimated cost (seconds) of starting local workers for a per-replicate run (each imports simpower and the
+#: libraries its analyses fit with, e.g. statsmodels)
+HEAVY_POOL_START_SECONDS = 2.0
+
+
+def _serial_estimate(scenarios, reps_list, points, costs) -> float | None:
+    """Seconds the remaining replicates would take in this process, from the preflight's warm per-replicate
+    timings; None when unknown (user code run in isolation, a process that raised)."""
+    total = 0.0
+    for sc, pt in zip(scenarios, points):
+        kind = (type(sc.process).__name__, tuple((n, type(a).__name__) for n, a in sc.analyses.items()))
+        cost = costs.get(kind)
+        if cost is None:
+            return None
+        total += cost * max(pt.reps - pt.done, 0)
+    return total
+
+
+def _chunk_results(tasks, n_tasks, scenarios, isolating, run_backend, n_jobs, address, max_failure_rate,
+                   serial: float | None = None):
+    """The executor's generator of chunk outputs (see :func:`run_many` for where chunks run).
+
+    A per-replicate run on local workers whose estimated cost in this process (``serial``, from the
+    preflight) is below what starting workers would save runs here instead: where chunks run never
+    changes their numbers.
+    """
     if not n_tasks:
         return iter(())
     fallback = partial(guard.run_isolated, run_chunk, jobs=min(effective_jobs(n_jobs), n_tasks),
@@ -599,6 +638,12 @@ def _chunk_results(tasks, n_tasks, scenarios, isolating, run_backend, n_jobs, ad
         return fallback(tasks)  # user code: every chunk in a forked worker of the helper
     fast = all(sc.process.has_batch and all(a.has_batch for a in sc.analyses.values()) for sc in scenarios)
     probe = fast and run_backend is None  # an explicit --jobs 2 too: workers must pay for their start
+    jobs = min(effective_jobs(n_jobs), n_tasks)
+    if not fast and run_backend is None and serial is not None and jobs > 1:
+        warm = pool_start_seconds(jobs)  # small when the previous run's workers are still alive
+        start = warm if warm < 1.0 else HEAVY_POOL_START_SECONDS
+        if serial <= start + serial / jobs:
+            n_jobs = 1
     return execute(run_chunk, tasks, n_jobs=n_jobs, backend=run_backend, address=address, probe=probe,
                    n_tasks=n_tasks, fallback=fallback)
 
@@ -611,15 +656,15 @@ def _run(scenarios, reps_list, keys, entropy, ex: Execution, store, desc, labels
     isolating, run_backend = _isolation(scenarios, backend, jobs)
     for sc, r in zip(scenarios, reps_list):
         check_memory(sc, int(r), chunk_size, jobs if backend != "dask" else 1, keep_records)
-    seen = set()
+    costs: dict = {}
     for sc, key in zip(scenarios, keys):  # one trial per kind of scenario (the grid points of a sweep share theirs)
         kind = (type(sc.process).__name__, tuple((n, type(a).__name__) for n, a in sc.analyses.items()))
-        if kind not in seen:
-            seen.add(kind)
+        if kind not in costs:
             if isolating and guard.has_user_code(sc):
                 _preflight_isolated(sc, str(labels.get(key, "")))
+                costs[kind] = None
             else:
-                preflight(sc, str(labels.get(key, "")))
+                costs[kind] = preflight(sc, str(labels.get(key, "")))
     sizes = [int(chunk_size or default_chunk_size(s)) for s in scenarios]
     points = _make_points(scenarios, reps_list, keys, sizes, keep_records, fit_trouble)
     for pt in points:
@@ -639,7 +684,9 @@ def _run(scenarios, reps_list, keys, entropy, ex: Execution, store, desc, labels
     tasks = _tasks(points, plans, done, entropy, timeout)
     t0 = time.perf_counter()
     bar = progress_display(total + reused, progress, desc, initial=reused)
-    gen = _chunk_results(tasks, n_tasks, scenarios, isolating, run_backend, n_jobs, address, max_failure_rate)
+    serial = _serial_estimate(scenarios, reps_list, points, costs)
+    gen = _chunk_results(tasks, n_tasks, scenarios, isolating, run_backend, n_jobs, address, max_failure_rate,
+                         serial)
     unenforced = False
     try:
         for out in gen:
