@@ -286,6 +286,7 @@ def test_a_cheap_per_replicate_run_stays_in_this_process_and_an_expensive_one_st
         return real(fn, tasks, jobs, fallback)
 
     monkeypatch.setattr(executor, "_loky_results", counting)
+    monkeypatch.setattr(executor, "_last_pool", None)  # no warm workers from earlier tests
     monkeypatch.setattr(type(sp.TTest()), "has_batch", property(lambda self: False))
     sc = sp.Scenario(sp.NormalTwoArm(n=20, effect=0.5), sp.TTest())
     here = sp.run(sc, reps=200, seed=3, n_jobs=2, progress=False)
