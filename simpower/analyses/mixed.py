@@ -22,6 +22,19 @@ once; when the derivative at 0 is >= 0 the estimate is the boundary,
 the observed Hessian of the profiled REML log-likelihood in (beta, gamma);
 at the boundary, where that Hessian need not be definite, the fixed-effect
 block alone (``sigma_e^2 (X'X)^-1``, the OLS standard error).
+
+A second batch path covers any formula whose design is the same in every
+replicate up to the observed rows: the outcome per replicate, the groups and
+every formula column shared (repeated measures: ``y ~ C(arm) * C(visit,
+Treatment(3))`` with groups = ``subject``). The design is the one statsmodels
+builds for the full table; groups with the same type (full design) and the
+same observed rows form a *pattern* sharing ``m``, ``X_j' 1`` and
+``X_j' X_j``, so the criterion, its derivative and the observed Hessian above
+need only per-pattern sums (count, sum of ``1' y_j``, sum of ``(1' y_j)^2``)
+plus ``X'X``, ``X'y`` and ``y'y``; the same solver and boundary convention
+apply. A replicate where some level is never observed (``X'X`` singular;
+statsmodels then builds a smaller design or fails) goes to the per-replicate
+path.
 A REML estimate on the boundary (cluster variance 0) is a valid answer, not fit
 trouble: statsmodels' warning "The MLE may be on the boundary of the parameter
 space", which it raises below an *absolute* variance of 0.01 (so whether a
@@ -702,7 +715,9 @@ class MixedModel(Analysis):
     -----
     Rows with a missing outcome are dropped (complete cases). The batch path
     applies to ``y ~ C(arm)`` (or ``y ~ arm``) with ``groups = "cluster"`` and
-    arm coded 0/1; other formulas are fitted replicate by replicate.
+    arm coded 0/1, and to any formula whose columns and groups are the same in
+    every replicate (repeated measures); other cases are fitted replicate by
+    replicate.
 
     Examples
     --------
@@ -780,7 +795,8 @@ class MixedModel(Analysis):
         return out
 
     # -- batch ---------------------------------------------------------------
-    layouts = ("clustered",)  # the formula and column checks below are its own
+    # cluster trials; repeated measures (any shared design); the formula and column checks below are its own
+    layouts = ("clustered", "longitudinal")
 
     def supports_batch(self, batch):
         return self._cluster_batch(batch) or self._design_batch(batch) is not None
