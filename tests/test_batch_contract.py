@@ -424,7 +424,7 @@ def test_mixed_model_declares_its_layout():
     # optimiser's tolerance); here only the declaration
     mm = sp.MixedModel()
     assert mm.supports_batch(batch_of("clusters")) and mm.supports_batch(batch_of("clusters_variable_missing"))
-    assert mm.layouts == ("clustered",)
+    assert mm.layouts == ("clustered", "longitudinal")
     assert not mm.supports_batch(batch_of("two_arm"))  # no clusters: no clustered layout
 
 

@@ -129,6 +129,10 @@ PAIRS = [
     ({"type": "mixed_model"}, CLUSTERS, {"atol": 1e-4, "rtol": 0.0}),
     # the same with other data: replicates whose REML estimate is on the boundary (see KNOWN)
     ({"type": "mixed_model"}, CLUSTERS, {"atol": 1e-4, "rtol": 0.0, "seed": 2, "size": 8}),
+    # repeated measures: the batch path for a design shared by the replicates (tests/test_mixed_repeated_batch.py)
+    ({"type": "mixed_model", "formula": "y ~ C(arm) * C(visit, Treatment(2))", "groups": "subject"},
+     ("repeated_measures", {"n": 8, "visits": 3, "rho": 0.5, "effect": 0.5, "dropout_rate": 0.2}),
+     {"atol": 1e-4, "rtol": 0.0}),
     ({"type": "multiple", "tests": [{"type": "t_test"}], "comparisons": "each_vs_control"},
      ("multi_arm", {"effects": [0.0, 0.3, 0.6], "n": 8})),
     ({"type": "dunnett"}, ("multi_arm", {"effects": [0.0, 0.3, 0.6], "n": 8})),

@@ -22,6 +22,19 @@ once; when the derivative at 0 is >= 0 the estimate is the boundary,
 the observed Hessian of the profiled REML log-likelihood in (beta, gamma);
 at the boundary, where that Hessian need not be definite, the fixed-effect
 block alone (``sigma_e^2 (X'X)^-1``, the OLS standard error).
+
+A second batch path covers any formula whose design is the same in every
+replicate up to the observed rows: the outcome per replicate, the groups and
+every formula column shared (repeated measures: ``y ~ C(arm) * C(visit,
+Treatment(3))`` with groups = ``subject``). The design is the one statsmodels
+builds for the full table; groups with the same type (full design) and the
+same observed rows form a *pattern* sharing ``m``, ``X_j' 1`` and
+``X_j' X_j``, so the criterion, its derivative and the observed Hessian above
+need only per-pattern sums (count, sum of ``1' y_j``, sum of ``(1' y_j)^2``)
+plus ``X'X``, ``X'y`` and ``y'y``; the same solver and boundary convention
+apply. A replicate where some level is never observed (``X'X`` singular;
+statsmodels then builds a smaller design or fails) goes to the per-replicate
+path.
 A REML estimate on the boundary (cluster variance 0) is a valid answer, not fit
 trouble: statsmodels' warning "The MLE may be on the boundary of the parameter
 space", which it raises below an *absolute* variance of 0.01 (so whether a
@@ -61,8 +74,8 @@ from scipy import stats
 
 from .._validation import Anything, Choice
 from ..errors import ParameterError
-from ..formula import FormulaText, require_columns
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from ..formula import FormulaText, parse_formula, require_columns
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
 from .numeric import p_from_t, p_from_z
 
 DF_METHODS = ("wald", "between-within", "satterthwaite")
@@ -128,7 +141,7 @@ def _inv(M):
 # ---------------------------------------------------------------------------
 # Satterthwaite df of a random-intercept model from per-group sums (any X)
 # ---------------------------------------------------------------------------
-def satterthwaite(m, u, S, sb2, se2, k):
+def satterthwaite(m, u, S, sb2, se2, k, n=None):
     """Model-based variance of coefficient ``k`` and its Satterthwaite df.
 
     Parameters
@@ -143,6 +156,9 @@ def satterthwaite(m, u, S, sb2, se2, k):
         Between-group and residual variances.
     k : int
         Column of X under test.
+    n : array (..., G), optional
+        Multiplicity of each group (groups with the same ``m``, ``u``, ``S``
+        pooled: observed patterns); default one each.
 
     Returns
     -------
@@ -156,8 +172,14 @@ def satterthwaite(m, u, S, sb2, se2, k):
     lam = se2 + m * sb2                      # eigenvalue of V_j along the ones vector
     c = sb2 / lam / se2                      # V_j^-1 = I/se2 - c J
     uu = u[..., :, None] * u[..., None, :]
-    W = lambda w: np.einsum("...g,...gij->...ij", w, uu)  # noqa: E731  sum_j w_j u_j u_j'
-    Ssum = S.sum(axis=-3)
+    if n is None:
+        W = lambda w: np.einsum("...g,...gij->...ij", w, uu)  # noqa: E731  sum_j w_j u_j u_j'
+        Ssum = S.sum(axis=-3)
+        tot = lambda v: v.sum(-1)  # noqa: E731
+    else:
+        W = lambda w: np.einsum("...g,...gij->...ij", w * n, uu)  # noqa: E731
+        Ssum = np.einsum("...g,...gij->...ij", n, S)
+        tot = lambda v: (n * v).sum(-1)  # noqa: E731
     A = Ssum / se2[..., None] - W(c)
     # X'V^-1 D V^-1 X for D = J (b) and D = I (e)
     Mb = W(1.0 / lam**2)
@@ -168,9 +190,9 @@ def satterthwaite(m, u, S, sb2, se2, k):
     Nbb = W(m / lam**3)
     Nbe = W(1.0 / lam**3)
     Nee = Ssum / se2[..., None] ** 3 - W(inv_m * (1.0 / se2**3 - 1.0 / lam**3))
-    T = {("b", "b"): ((m / lam) ** 2).sum(-1),
-         ("b", "e"): (m / lam**2).sum(-1),
-         ("e", "e"): (np.where(m > 0, (m - 1) / se2**2 + 1.0 / lam**2, 0.0)).sum(-1)}
+    T = {("b", "b"): tot((m / lam) ** 2),
+         ("b", "e"): tot(m / lam**2),
+         ("e", "e"): tot(np.where(m > 0, (m - 1) / se2**2 + 1.0 / lam**2, 0.0))}
     Ai = _inv(A)
     M = {"b": Mb, "e": Me}
     Nm = {("b", "b"): Nbb, ("b", "e"): Nbe, ("e", "e"): Nee}
@@ -237,6 +259,8 @@ def _profile(g, st: _Sums, derivative: bool = True):
 
     ``g`` has shape (R,) or (R, K) (K trial values per replicate).
     """
+    if isinstance(st, _PatternSums):
+        return _profile_design(g, st, derivative)
     extra = g.ndim == 2
     m, a, s, sa = (x[:, None, :] if extra else x for x in (st.m, st.a, st.s, st.sa))
     gg = g[..., None]
@@ -275,7 +299,7 @@ def _solve_gamma(st: _Sums):
     the rare replicate whose bracket shows no sign change). A minimum at
     rho = 0 with a derivative >= 0 there is the boundary estimate 0.
     """
-    R = st.m.shape[0]
+    R = st.yy.shape[0]
     rho = np.broadcast_to(GRID, (R, GRID.size))
     with np.errstate(all="ignore"):
         f, _, _ = _profile(rho / (1.0 - rho), st, derivative=False)
@@ -347,6 +371,8 @@ def _golden(st, lo, hi, steps: int = 60):
 
 
 def _subset(st: _Sums, sel) -> _Sums:
+    if isinstance(st, _PatternSums):
+        return st.take(sel)
     return _Sums(*(getattr(st, k)[sel] for k in ("m", "a", "s", "sa", "yy", "shift", "n_obs", "n_groups",
                                                 "arm_within")))
 
@@ -455,6 +481,210 @@ def fit_batch(batch):
 
 
 # ---------------------------------------------------------------------------
+# the batched REML solver for a general design shared by the replicates
+# ---------------------------------------------------------------------------
+#: most rows a group may have on the general batch path (its observed rows are a bit mask)
+MAX_GROUP_ROWS = 16
+
+
+class _PatternSums:
+    """Sums of a batch whose design ``X`` (N, p) is the same in every replicate up to the observed rows.
+
+    Groups with the same full design (their *type*) and the same observed rows share ``m``
+    (observed rows), ``U = X_j' 1`` and ``X_j' X_j``; such a *pattern* k is shared by all
+    replicates (arrays ``m`` (K,), ``U`` (K, p), ``S`` (K, p, p)), and per replicate only its
+    count ``n`` (R, K), the sum over its groups of ``1' y_j`` (``s``) and of ``(1' y_j)^2``
+    (``t``) vary, plus ``X'X``, ``X'y`` and ``y'y`` (y centred per replicate when the ones
+    vector is in the column space of X).
+    """
+
+    FIELDS = ("n", "s", "t", "XtX", "Xty", "yy", "shift", "n_obs", "n_groups", "fac", "between")
+
+    def __init__(self, m, U, S, **per_rep):
+        self.m, self.U, self.S = m, U, S
+        self.UU = U[:, :, None] * U[:, None, :]
+        for k in self.FIELDS:
+            setattr(self, k, per_rep[k])
+
+    def take(self, sel) -> "_PatternSums":
+        return _PatternSums(self.m, self.U, self.S, **{k: getattr(self, k)[sel] for k in self.FIELDS})
+
+
+def _profile_design(g, st: _PatternSums, derivative: bool = True):
+    """:func:`_profile` for :class:`_PatternSums` (any X): criterion, d/dgamma, (beta, Q, A, log|A|)."""
+    extra = g.ndim == 2
+    n, s, t = (x[:, None, :] if extra else x for x in (st.n, st.s, st.t))
+    XtX, Xty = (st.XtX[:, None], st.Xty[:, None]) if extra else (st.XtX, st.Xty)
+    yy = st.yy[:, None] if extra else st.yy
+    fac = st.fac[:, None] if extra else st.fac
+    gg = g[..., None]
+    h = 1.0 / (1.0 + st.m * gg)
+    c = gg * h
+    A = XtX - np.einsum("...k,kij->...ij", c * n, st.UU)
+    w = Xty - np.einsum("...k,ki->...i", c * s, st.U)
+    b = np.linalg.solve(A, w[..., None])[..., 0]
+    _, logdet = np.linalg.slogdet(A)
+    Q = yy - (c * t).sum(-1) - (b * w).sum(-1)
+    f = fac * np.log(Q) + (n * np.log1p(st.m * gg)).sum(-1) + logdet
+    if not derivative:
+        return f, None, (b, Q, A)
+    tb = np.einsum("...i,ki->...k", b, st.U)
+    E = t - 2.0 * s * tb + n * tb * tb          # sum over the pattern's groups of (1' e_j)^2
+    h2 = h * h
+    tr = np.einsum("...ij,...ji->...", _inv(A), np.einsum("...k,kij->...ij", h2 * n, st.UU))
+    df = -fac * (h2 * E).sum(-1) / Q + (n * st.m * h).sum(-1) - tr
+    return f, df, (b, Q, A)
+
+
+def _observed_cov_design(g, st: _PatternSums, fit):
+    """:func:`_observed_cov` for :class:`_PatternSums`: inverse of minus the Hessian in (beta, gamma)."""
+    b, Q, A = fit
+    R, p = b.shape
+    gg = g[:, None]
+    h = 1.0 / (1.0 + st.m * gg)
+    c1 = h * h
+    c2 = -2.0 * st.m * h**3
+    tb = b @ st.U.T
+    res = st.s - st.n * tb                      # sum over the pattern's groups of 1' e_j
+    E = st.t - 2.0 * st.s * tb + st.n * tb * tb
+    fac = st.fac
+    H = np.empty((R, p + 1, p + 1))
+    H[:, :p, :p] = -fac[:, None, None] * A / Q[:, None, None]
+    H[:, :p, p] = H[:, p, :p] = -fac[:, None] * ((c1 * res) @ st.U) / Q[:, None]
+    qg = (c1 * E).sum(-1)
+    Ai = _inv(A)
+    A1 = -np.einsum("rk,kij->rij", c1 * st.n, st.UU)
+    A2 = -np.einsum("rk,kij->rij", c2 * st.n, st.UU)
+    AiA1 = Ai @ A1
+    tr_ld2 = np.einsum("rii->r", Ai @ A2) - np.einsum("rij,rji->r", AiA1, AiA1)
+    H[:, p, p] = (0.5 * fac * ((c2 * E).sum(-1) / Q + qg**2 / Q**2)
+                  + 0.5 * (st.n * st.m * st.m * h * h).sum(-1) - 0.5 * tr_ld2)
+    at_bound = g == 0
+    H[at_bound, :p, p] = H[at_bound, p, :p] = 0.0
+    H[at_bound, p, p] = -1.0
+    with np.errstate(all="ignore"):
+        ok = np.all(np.isfinite(H), axis=(1, 2))
+        H[~ok] = -np.eye(p + 1)
+        not_pd = np.linalg.eigvalsh(H).max(-1) >= 0
+        cov = _inv(-H)
+        cov[~ok] = np.nan
+        cov[at_bound, p, p] = np.nan
+    return cov, not_pd | ~ok
+
+
+def shared_design(formula, groups, shared):
+    """The fixed-effects design of ``formula`` on the shared columns, as statsmodels builds it.
+
+    Returns ``(X, names)``: the (N, p) matrix and column names of ``statsmodels``'
+    ``MixedLM`` for the full table (every row observed).
+    """
+    import pandas as pd
+    import statsmodels.formula.api as smf
+
+    f = parse_formula(formula)
+    frame = pd.DataFrame({c: np.asarray(shared[c]) for c in f.columns[1:]})
+    frame[f.outcome] = 0.0
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        model = smf.mixedlm(formula, frame, groups=np.asarray(shared[groups]))
+    return np.asarray(model.exog, float), list(model.exog_names)
+
+
+def design_sums(y, ok, X, groups) -> tuple[_PatternSums, np.ndarray]:
+    """:class:`_PatternSums` of outcomes ``y`` (R, N) observed where ``ok``, shared design ``X`` and groups.
+
+    Also returns the replicates whose ``X'X`` over the observed rows is singular (a
+    column never observed, e.g. no outcome at some visit in one arm).
+    """
+    R, N = y.shape
+    p = X.shape[1]
+    gid, G = _ids(groups)
+    order = np.argsort(gid, kind="stable")
+    size = np.bincount(gid, minlength=G)
+    start = np.concatenate([[0], np.cumsum(size)[:-1]])
+    pos = np.empty(N, np.int64)
+    pos[order] = np.arange(N) - start[gid[order]]
+    L = int(size.max())
+    cells, cell = np.unique(X, axis=0, return_inverse=True)
+    cell = cell.reshape(-1)
+    C = cells.shape[0]
+    full = np.full((G, L), -1, np.int64)
+    full[gid, pos] = cell
+    types, gtype = np.unique(full, axis=0, return_inverse=True)
+    gtype = gtype.reshape(-1)
+    w = ok.astype(float)
+    flat = (gid + G * np.arange(R)[:, None]).ravel()
+    bits = np.bincount(flat, (w * (2.0 ** pos)).ravel(), R * G).reshape(R, G).astype(np.int64)
+    key = gtype[None, :] * (2**L) + bits
+    ukeys, inv = np.unique(key, return_inverse=True)
+    inv = inv.reshape(R, G)
+    K = ukeys.size
+    ktype, kbits = ukeys // (2**L), ukeys % (2**L)
+    seen = ((kbits[:, None] >> np.arange(L)) & 1).astype(bool) & (types[ktype] >= 0)   # (K, L)
+    kcells = np.where(seen, types[ktype], 0)
+    m = seen.sum(1).astype(float)
+    U = np.einsum("kl,klp->kp", seen.astype(float), cells[kcells])
+    S = np.einsum("kl,klp,klq->kpq", seen.astype(float), cells[kcells], cells[kcells])
+    kflat = (inv + K * np.arange(R)[:, None]).ravel()
+    n = np.bincount(kflat, minlength=R * K).reshape(R, K).astype(float)
+    n_obs = w.sum(1)
+    # centre y when the ones vector is a combination of the columns (then only that combination moves)
+    delta = np.linalg.lstsq(cells, np.ones(C), rcond=None)[0]
+    centre = bool(np.allclose(cells @ delta, 1.0, rtol=0, atol=1e-10))
+    y0 = np.where(ok, y, 0.0)
+    with np.errstate(all="ignore"):
+        shift = y0.sum(1) / n_obs if centre else np.zeros(R)
+    yc = np.where(ok, y - shift[:, None], 0.0)
+    ysum = np.bincount(flat, yc.ravel(), R * G).reshape(R, G)
+    s = np.bincount(kflat, ysum.ravel(), R * K).reshape(R, K)
+    t = np.bincount(kflat, (ysum * ysum).ravel(), R * K).reshape(R, K)
+    onehot = np.zeros((N, C))
+    onehot[np.arange(N), cell] = 1.0
+    ncell = w @ onehot
+    XtX = np.einsum("rc,cp,cq->rpq", ncell, cells, cells)
+    Xty = (yc @ onehot) @ cells
+    # a column is "between groups" in a replicate when it is constant over every group's observed rows
+    vals = np.where(seen[:, :, None], cells[kcells], np.nan)
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        spread = np.nanmax(vals, 1) - np.nanmin(vals, 1)
+    const = ~(spread > 1e-12 * max(1.0, float(np.abs(cells).max())))   # (K, p); empty patterns count as constant
+    between = np.all(const[None, :, :] | (n[:, :, None] == 0), axis=1)
+    n_groups = (n * (m > 0)).sum(1)
+    scale = np.maximum(np.einsum("rii->r", XtX), 1.0)
+    singular = ~(np.linalg.eigvalsh(XtX / scale[:, None, None]).min(-1) > 1e-10)
+    st = _PatternSums(m, U, S, n=n, s=s, t=t, XtX=XtX, Xty=Xty, yy=(yc * yc).sum(1), shift=shift,
+                      n_obs=n_obs, n_groups=n_groups, fac=n_obs - p, between=between)
+    st.delta = delta if centre else np.zeros(p)
+    return st, singular
+
+
+def fit_design_batch(y, ok, X, groups):
+    """Batched REML fit with a shared design: dict of arrays ``beta`` (R, p), ``cov`` (R, p+1, p+1), ...
+
+    Replicates with a singular ``X'X`` (``singular``) are not fitted (NaN).
+    """
+    st, singular = design_sums(y, ok, X, groups)
+    R, p = y.shape[0], X.shape[1]
+    beta = np.full((R, p), np.nan)
+    cov = np.full((R, p + 1, p + 1), np.nan)
+    gamma, scale = np.full(R, np.nan), np.full(R, np.nan)
+    not_pd = np.zeros(R, bool)
+    good = ~singular
+    if good.any():
+        sub = st.take(good) if not good.all() else st
+        g = _solve_gamma(sub)
+        with np.errstate(all="ignore"):
+            _, _, fit = _profile_design(g, sub, derivative=False)
+            c, bad = _observed_cov_design(g, sub, fit)
+        beta[good] = fit[0] + sub.shift[:, None] * st.delta
+        cov[good], not_pd[good] = c, bad
+        gamma[good], scale[good] = g, fit[1] / sub.fac
+    return {"beta": beta, "cov": cov, "gamma": gamma, "sigma_e2": scale, "sigma_b2": gamma * scale,
+            "not_pd": not_pd, "singular": singular, "sums": st}
+
+
+# ---------------------------------------------------------------------------
 # the analysis
 # ---------------------------------------------------------------------------
 class MixedModel(Analysis):
@@ -485,7 +715,9 @@ class MixedModel(Analysis):
     -----
     Rows with a missing outcome are dropped (complete cases). The batch path
     applies to ``y ~ C(arm)`` (or ``y ~ arm``) with ``groups = "cluster"`` and
-    arm coded 0/1; other formulas are fitted replicate by replicate.
+    arm coded 0/1, and to any formula whose columns and groups are the same in
+    every replicate (repeated measures); other cases are fitted replicate by
+    replicate.
 
     Examples
     --------
@@ -563,9 +795,44 @@ class MixedModel(Analysis):
         return out
 
     # -- batch ---------------------------------------------------------------
-    layouts = ("clustered",)  # the formula and column checks below are its own
+    # cluster trials; repeated measures (any shared design); the formula and column checks below are its own
+    layouts = ("clustered", "longitudinal")
 
     def supports_batch(self, batch):
+        return self._cluster_batch(batch) or self._design_batch(batch) is not None
+
+    def _design_batch(self, batch):
+        """``(X, names, k)`` when the general batch path applies (else None): the outcome per
+        replicate, the groups and every column of the formula shared by the replicates (so the
+        design is the same up to the observed rows), at most :data:`MAX_GROUP_ROWS` rows a group,
+        a design of full column rank and ``term`` one of its coefficients."""
+        if self._cluster_batch(batch):
+            return None
+        f = parse_formula(self.formula)
+        y = batch.per_rep.get(f.outcome)
+        if y is None or y.ndim != 2 or y.shape[0] != batch.size or self.groups not in batch.shared:
+            return None
+        N = y.shape[1]
+        for col in [self.groups] + f.columns[1:]:
+            v = batch.shared.get(col)
+            if v is None or v.shape != (N,) or not np.issubdtype(np.asarray(v).dtype, np.number):
+                return None
+        present = batch.per_rep.get("present")
+        if present is not None and np.shape(present) != y.shape:
+            return None
+        gid, G = _ids(batch.shared[self.groups])
+        if np.bincount(gid.ravel(), minlength=G).max() > MAX_GROUP_ROWS:
+            return None
+        try:
+            X, names = shared_design(self.formula, self.groups, batch.shared)
+            k = self._term_index(names)
+        except (ParameterError, ValueError, np.linalg.LinAlgError):
+            return None
+        if X.shape[1] == 0 or np.linalg.matrix_rank(X) < X.shape[1]:
+            return None
+        return X, names, k
+
+    def _cluster_batch(self, batch):
         if self.formula.replace(" ", "") not in BATCH_FORMULAS or self.groups != "cluster":
             return False
         if self.term not in (None, "C(arm)[T.1]" if "C(" in self.formula else "arm"):
@@ -592,6 +859,8 @@ class MixedModel(Analysis):
         return bool(np.issubdtype(cl.dtype, np.integer))
 
     def batch(self, batch):
+        if not self._cluster_batch(batch):
+            return self._batch_design(batch)
         fit = fit_batch(batch)
         st = fit["sums"]
         est, se = fit["b1"], fit["se"]
@@ -612,3 +881,32 @@ class MixedModel(Analysis):
         out.trouble = {"warning:ConvergenceWarning": np.asarray(fit["not_pd"], bool) & interior}
         out.trouble_messages = {"warning:ConvergenceWarning": TROUBLE_MESSAGE}
         return out
+
+    def _batch_design(self, batch):
+        X, _, k = self._design_batch(batch)
+        f = parse_formula(self.formula)
+        y = np.asarray(batch.per_rep[f.outcome], float)
+        ok = np.isfinite(y)
+        if "present" in batch.per_rep:
+            ok &= np.asarray(batch.per_rep["present"], bool)
+        fit = fit_design_batch(y, ok, X, np.asarray(batch.shared[self.groups]))
+        st = fit["sums"]
+        est = fit["beta"][:, k]
+        se = np.sqrt(fit["cov"][:, k, k])
+        df = None
+        if self.df == "between-within":
+            between = st.between
+            nb = between.sum(1)
+            df = np.where(between[:, k], st.n_groups - nb, st.n_obs - st.n_groups - (X.shape[1] - nb))
+        elif self.df == "satterthwaite":
+            with np.errstate(all="ignore"):
+                var, df = satterthwaite(st.m, st.U, st.S, fit["sigma_b2"], fit["sigma_e2"], k, n=st.n)
+            se = np.sqrt(var)
+        out = BatchResult(**self._result(est, se, df))
+        interior = np.asarray(fit["gamma"]) > 0
+        singular = fit["singular"]
+        out.trouble = {"warning:ConvergenceWarning": np.asarray(fit["not_pd"], bool) & interior & ~singular}
+        out.trouble_messages = {"warning:ConvergenceWarning": TROUBLE_MESSAGE}
+        # a level never observed (e.g. no outcome at a visit in one arm): statsmodels builds a smaller
+        # design from the observed rows, so those replicates go to the per-replicate path
+        return hand_over(self, batch, out, singular)
