@@ -313,7 +313,7 @@ def test_report_without_matplotlib_is_one_line_naming_the_fix(tmp_path):
 BUNDLED = sorted((__import__("pathlib").Path(__file__).resolve().parents[1] / "scenarios").glob("*.toml"))
 #: per-replicate model fits (a mixed model, a negative binomial GLM): seconds even with few replicates;
 #: the value is the replicates per chunk (and per pilot point) the test uses
-SLOW_BUNDLED = {"repeated_mar_dropout.toml": 4, "overdispersed_counts.toml": 10}
+SLOW_BUNDLED = {"overdispersed_counts.toml": 10}
 
 
 @pytest.mark.parametrize("path", [pytest.param(p, id=p.stem, marks=[pytest.mark.slow] if p.name in SLOW_BUNDLED

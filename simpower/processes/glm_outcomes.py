@@ -50,7 +50,7 @@ from scipy.special import expit, logit
 from .._validation import Choice, Real
 from ..components import Component
 from ..errors import ParameterError
-from .binary import EFFECTS, risk_from_effect
+from .binary import OneBinaryEffect
 
 POSITIVE = Real(0.0, low_open=True)
 PROBABILITY = Real(0.0, 1.0, low_open=True, high_open=True)
@@ -163,7 +163,7 @@ class GLMOutcome(Component):
         raise NotImplementedError
 
 
-class BinaryOutcome(GLMOutcome):
+class BinaryOutcome(OneBinaryEffect, GLMOutcome):
     """A binary outcome (1 = event) with a logit link.
 
     Parameters
@@ -194,28 +194,7 @@ class BinaryOutcome(GLMOutcome):
                 "icc_scale": "latent", "estimand": "risk_difference"}
 
     def _check(self):
-        given = [k for k in EFFECTS if self._p[k] is not None]
-        if len(given) != 1:
-            got = "none" if not given else " and ".join(f"`{k}`" for k in given)
-            raise ParameterError(f"`odds_ratio`, `risk_ratio`, `risk_difference`: give exactly one effect; got {got}.")
-        p1 = self.nominal_p1
-        if not 0.0 < p1 < 1.0:
-            k = given[0]
-            raise ParameterError(f"`{k}` = {self._p[k]:g} with p0 = {self.p0:g} gives a treatment risk of {p1:g}; "
-                                 f"it must be in (0, 1).")
-
-    @property
-    def effect_param(self) -> str:  # type: ignore[override]
-        return next(k for k in EFFECTS if self._p[k] is not None)
-
-    def null_value(self) -> float:
-        return 0.0 if self.effect_param == "risk_difference" else 1.0
-
-    @property
-    def nominal_p1(self) -> float:
-        """The treatment risk the effect gives at p0 with no cluster variation (``binary_two_arm``'s p1)."""
-        return risk_from_effect(self.p0, odds_ratio=self._p["odds_ratio"], risk_ratio=self._p["risk_ratio"],
-                                risk_difference=self._p["risk_difference"])
+        self._check_effect()
 
     def sigma_for(self, icc: float) -> float:
         return latent_sigma(icc) if self.icc_scale == "latent" else sigma_for_proportion_icc(icc, self.p0)
