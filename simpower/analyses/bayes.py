@@ -33,6 +33,8 @@ from .._validation import Choice, Real
 from ..errors import ParameterError
 from ..analytic.bayes import beta_difference_probability, normal_posterior
 from .base import CI_LEVEL, Analysis, BatchResult, NullBoundary, TestResult, result_from_fields
+from .binary import batch_two_by_two
+from .numeric import masked_arms
 
 POSITIVE = Real(0.0, low_open=True)
 
@@ -140,23 +142,14 @@ class PosteriorProbability(Analysis):
         return True
 
     def batch(self, batch):
-        layout = batch.layout("two_arm")
-        y = layout.y
-        arm = np.broadcast_to(layout.arm, y.shape)
-        ok = layout.observed
-        yy = np.where(ok, y, 0.0)
-        is1 = arm == 1
-        n1 = np.sum(ok & is1, axis=1).astype(float)
-        n0 = np.sum(ok, axis=1) - n1
-        s1 = np.sum(yy * is1, axis=1)
-        s0 = np.sum(yy, axis=1) - s1
         if self.model == "beta_binomial":
-            out = self._fields(*self._beta(n0, n1, s0, s1))
+            x0, n0, x1, n1 = batch_two_by_two(batch)
+            out = self._fields(*self._beta(n0, n1, x0, x1))
         else:
+            (n0, m0, v0), (n1, m1, v1) = masked_arms(batch.layout("two_arm"))
+            n0, n1 = n0.astype(float), n1.astype(float)
             with np.errstate(all="ignore"):
-                m0, m1 = s0 / n0, s1 / n1
-                dev = np.where(ok, yy - np.where(is1, m1[:, None], m0[:, None]), 0.0)
-                ss = np.sum(dev * dev, axis=1)
+                ss = np.where(n0 > 1, v0 * (n0 - 1), 0.0) + np.where(n1 > 1, v1 * (n1 - 1), 0.0)
             out = self._fields(*self._normal(n0, n1, m0, m1, ss))
             few = (n0 < 1) | (n1 < 1) | ((n0 + n1 < 3) if self.sd is None else False)
             for k in out:
