@@ -26,7 +26,7 @@ from .._validation import Choice, Real
 from ..errors import ParameterError
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, NullBoundary, TestResult, hand_over
 from .mixed import BOUNDARY_WARNING, between_within_df, satterthwaite
-from .numeric import p_from_t, p_from_z
+from .numeric import p_and_crit, p_from_t
 
 SCALE = Choice(("additive", "log"))
 DF_METHODS = ("satterthwaite", "between-within", "wald")
@@ -457,10 +457,7 @@ class CrossoverMixed(Analysis):
         se = np.sqrt(var)
         with np.errstate(all="ignore"):
             stat = est / se
-            if df is None:
-                p, crit = p_from_z(stat, self.alternative), stats.norm.ppf(0.5 + self.ci_level / 2)
-            else:
-                p, crit = p_from_t(stat, df, self.alternative), stats.t.ppf(0.5 + self.ci_level / 2, df)
+            p, crit = p_and_crit(stat, df, self.alternative, self.ci_level)
             e, s, lo, hi = _on_scale(est, se, crit, self.scale)
         return p, e, s, lo, hi
 

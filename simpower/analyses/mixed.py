@@ -70,13 +70,12 @@ import re
 import warnings
 
 import numpy as np
-from scipy import stats
 
 from .._validation import Anything, Choice
 from ..errors import ParameterError
 from ..formula import FormulaText, parse_formula, require_columns
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
-from .numeric import p_from_t, p_from_z
+from .numeric import p_and_crit
 
 DF_METHODS = ("wald", "between-within", "satterthwaite")
 
@@ -116,13 +115,6 @@ class _Text(Anything):
 # ---------------------------------------------------------------------------
 # p-values and intervals
 # ---------------------------------------------------------------------------
-def _p_and_crit(stat, df, alternative, ci_level):
-    """p-value of ``stat`` and the CI multiplier, normal when ``df`` is None (arrays allowed)."""
-    if df is None:
-        return p_from_z(stat, alternative), stats.norm.ppf(0.5 + ci_level / 2)
-    return p_from_t(stat, df, alternative), stats.t.ppf(0.5 + ci_level / 2, df)
-
-
 def _inv(M):
     """Inverse of a stack of square matrices; NaN for the singular ones (never raises)."""
     try:
@@ -787,7 +779,7 @@ class MixedModel(Analysis):
     def _result(self, est, se, df, scalar=False):
         with np.errstate(all="ignore"):
             z = est / se
-            p, crit = _p_and_crit(z, df, self.alternative, self.ci_level)
+            p, crit = p_and_crit(z, df, self.alternative, self.ci_level)
         out = {"pvalue": p, "estimate": est, "se": se, "ci_low": est - crit * se, "ci_high": est + crit * se}
         if scalar:
             return TestResult(**{k: float(v) for k, v in out.items()}, statistic=float(z),

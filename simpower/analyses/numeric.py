@@ -47,6 +47,14 @@ def wald(est, se, alternative: str, ci_level: float) -> dict:
                 "ci_low": est - crit * se, "ci_high": est + crit * se}
 
 
+def p_and_crit(stat, df, alternative: str, ci_level: float):
+    """(p-value of ``stat``, the CI multiplier): normal when ``df`` is None, else Student's t on ``df``
+    (scalars or arrays); the reference of the Wald tests of the mixed models."""
+    if df is None:
+        return p_from_z(stat, alternative), stats.norm.ppf(0.5 + ci_level / 2)
+    return p_from_t(stat, df, alternative), stats.t.ppf(0.5 + ci_level / 2, df)
+
+
 def two_sample_se_df(n0, n1, v0, v1, equal_var: bool):
     """SE of the difference in arm means and its df, from arm sizes and variances (scalars or arrays).
 

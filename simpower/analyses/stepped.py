@@ -52,11 +52,10 @@ import math
 import warnings
 
 import numpy as np
-from scipy import stats
 
 from .._validation import Choice
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
-from .numeric import p_from_t, p_from_z
+from .numeric import p_and_crit
 
 #: statsmodels' warning at a small variance estimate: a boundary fit is an answer, not fit trouble
 BOUNDARY_WARNING = r".*on the boundary of the parameter space"
@@ -421,10 +420,7 @@ class SteppedMixed(Analysis):
     def _result(self, est, se, df, scalar=False):
         with np.errstate(all="ignore"):
             stat = est / se
-            if df is None:
-                p, crit = p_from_z(stat, self.alternative), stats.norm.ppf(0.5 + self.ci_level / 2)
-            else:
-                p, crit = p_from_t(stat, df, self.alternative), stats.t.ppf(0.5 + self.ci_level / 2, df)
+            p, crit = p_and_crit(stat, df, self.alternative, self.ci_level)
         out = {"pvalue": p, "estimate": est, "se": se, "ci_low": est - crit * se, "ci_high": est + crit * se}
         if scalar:
             return TestResult(**{k: float(v) for k, v in out.items()}, statistic=float(stat),
