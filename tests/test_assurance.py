@@ -143,3 +143,13 @@ def test_the_assurance_command(tmp_path, capsys):
     rc = main(["assurance", str(BUNDLED), "--draws", "1", "--jobs", "1", "-q"])
     err = capsys.readouterr().err
     assert rc == 2 and err.count("\n") == 1 and "draws" in err
+
+
+def test_the_assurance_figure_marks_the_assurance_and_the_ceiling(tmp_path):
+    res = assurance(_scenario(), PRIOR, draws=60, reps_per_draw=4, seed=6, n_jobs=1, progress=False)
+    fig = res.plot(stem=tmp_path / "a")
+    ax = fig.axes[0]
+    xs = sorted(float(ln.get_xdata()[0]) for ln in ax.get_lines())
+    assert xs == sorted([res.assurance, res.ceiling])
+    assert sum(p.get_height() for p in ax.patches) == 60  # every draw in the histogram
+    assert (tmp_path / "a.png").exists()

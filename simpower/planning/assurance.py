@@ -204,6 +204,31 @@ class AssuranceResult:
         """Quantiles of the conditional power over the prior (see ``conditional_power`` for its source)."""
         return self.draws["conditional_power"].quantile(list(q))
 
+    def plot(self, stem=None, title: str = ""):
+        """The conditional power over the prior (histogram), with the assurance and the ceiling marked.
+
+        ``stem`` writes ``stem.png`` and ``stem.svg``. Returns the matplotlib Figure.
+        """
+        from ..report import plots
+
+        fig, ax = plots.new_figure(7.5, 4.2)
+        cp = self.draws["conditional_power"].to_numpy(float)
+        cp = cp[np.isfinite(cp)]
+        ax.hist(cp, bins=np.linspace(0, 1, 21), color=plots.COLORS[0], alpha=0.7,
+                label=f"conditional power at each of {len(cp)} prior draws")
+        ax.axvline(self.assurance, color="#000", lw=1.2, ls="-.", label=f"assurance {self.assurance:.2f}")
+        if self.ceiling is not None:
+            ax.axvline(self.ceiling, color=plots.COLORS[1], lw=1, ls=":",
+                       label=f"ceiling (P(effect favourable)) {self.ceiling:.2f}")
+        ax.set_xlabel("power at the drawn parameter values (" + self.conditional_power.split(":")[0] + ")")
+        ax.set_ylabel("prior draws")
+        ax.set_xlim(0, 1)
+        ax.set_title(title or f"Power over the prior ({self.analysis})")
+        ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0, frameon=False)
+        if stem is not None:
+            plots.save(fig, stem)
+        return fig
+
     def summary(self) -> str:
         lo, hi = self.interval
         lines = [f"Assurance ({self.analysis}): {self.assurance:.3f} (MCSE {self.mcse:.3f}; {self.level:.0%} "

@@ -212,6 +212,10 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
         lines = assurance.summary().splitlines()
         doc.para(literal(lines[0]))
         doc.bullets([literal(ln.strip()) for ln in lines[1:]])
+        if hasattr(assurance, "plot"):
+            png, svg = plots.save(assurance.plot(), out / "assurance")
+            doc.figure(png, svg, "Power at each prior draw: its distribution over the prior, the assurance and "
+                                 "the ceiling")
         doc.para("Assurance is the probability of success (a rejection with the estimate on the favourable side) "
                  "averaged over the prior on the parameters (O'Hagan, Stevens & Campbell 2005); its MCSE counts "
                  "the prior's spread and the replicates' noise. The table of draws is in assurance.csv.")
