@@ -241,6 +241,18 @@ class RunResult:
 
         return justification(self, null=null)
 
+    def plot(self, stem=None, title: str = ""):
+        """Each analysis's power with its 95% Wilson interval and the closed form beside it.
+
+        ``stem`` writes ``stem.png`` and ``stem.svg``. Returns the matplotlib Figure.
+        """
+        from .report import plots
+
+        fig = plots.run_plot(self, title=title)
+        if stem is not None:
+            plots.save(fig, stem)
+        return fig
+
     def _repr_html_(self) -> str:
         from .answer import run_block
         from .labels import frame_html, readable

@@ -194,3 +194,19 @@ def test_markdown_escapes_without_a_renderer(nasty_report):
     title = md.splitlines()[0]
     assert title == r"# Trial \<b\>bold\</b\> \*star\* \_under\_ \[link\](http://example.org) \& \`tick\` \\ \| \~\~x\~\~"
     assert r"\# not a heading \<script\>alert(1)\</script\> - not a list 1. not numbered" in md
+
+
+def test_a_plain_run_report_has_a_figure_and_the_estimate_performance(tmp_path):
+    # a plain run's report shows each analysis's power with its interval (a figure) and how it estimates
+    # the effect: bias, SEs and coverage with their MCSE (Morris, White & Crowther 2019)
+    import simpower as sp
+    from simpower.report import make_report
+
+    sc = sp.Scenario(sp.NormalTwoArm(n=30, effect=0.5), analyses=[sp.TTest(), sp.WelchT()])
+    res = sp.run(sc, reps=400, seed=2, n_jobs=1, progress=False)
+    paths = make_report(sc, tmp_path, seed=2, run=res, formats=("md",))
+    md = paths["md"].read_text()
+    assert "run_power.png" in md and (tmp_path / "run_power.svg").exists()
+    assert "| Analysis | True effect | Mean estimate | Bias | Empirical SE | Model SE | Coverage |" in md
+    fig = res.plot()
+    assert [t.get_text() for t in fig.axes[0].get_yticklabels()] == ["welch_t", "t_test"]

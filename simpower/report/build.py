@@ -9,7 +9,7 @@ import pandas as pd
 
 from ..textout import CAUTION
 from . import plots
-from ..answer import answer_block, justification
+from ..answer import answer_block, justification, round_to_mcse
 from .document import Document, code, literal
 from ..labels import readable
 from ..planning.sweepresult import required_by_curve
@@ -116,6 +116,31 @@ def _looks(doc: Document, run, out: Path) -> None:
         doc.figure(png, svg, literal(f"Boundaries and the share of replicates stopping at each look ({name})"))
 
 
+def _estimate_performance(run) -> pd.DataFrame | None:
+    """Bias, empirical SE, model SE and coverage per analysis with a known true effect (None: none has one)."""
+    t = run.summary()
+    rows = []
+    for _, r in t.iterrows():
+        truth = r.get("true_effect")
+        if truth is None or truth != truth or not r.get("n_estimate"):
+            continue
+
+        def cell(v, m, digits=3):
+            if v is None or v != v:
+                return "-"
+            if m is None or m != m or m <= 0:
+                return f"{v:.{digits}g}"
+            return f"{round_to_mcse(float(v), float(m))} ({float(f'{m:.2g}'):g})"
+
+        rows.append({"Analysis": r["analysis"], "True effect": f"{truth:.4g}",
+                     "Mean estimate": cell(r["mean_estimate"], r["mean_estimate_mcse"], 4),
+                     "Bias": cell(r["bias"], r["bias_mcse"]),
+                     "Empirical SE": cell(r["empirical_se"], r["empirical_se_mcse"]),
+                     "Model SE": cell(r.get("model_se"), r.get("model_se_mcse")),
+                     "Coverage": cell(r.get("coverage"), r.get("coverage_mcse"))})
+    return pd.DataFrame(rows) if rows else None
+
+
 def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, Any], sweep: pd.DataFrame | None = None,
                       search=None, null: pd.DataFrame | None = None, run=None, x: str | None = None,
                       target: float | None = None, notes: list[str] | None = None, labels=None,
@@ -199,6 +224,12 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
         doc.table(readable(run.summary(), "power", ("analysis", "power", "mcse", "ci_low", "ci_high", "reps",
                                                     "n_failed", "analytic_power")),
                   "Simulated power at the scenario as given")
+        png, svg = plots.save(plots.run_plot(run), out / "run_power")
+        doc.figure(png, svg, "Power of each analysis with its 95% Wilson interval; open circles: closed form")
+        perf = _estimate_performance(run)
+        if perf is not None:
+            doc.table(perf, "How each analysis estimates the effect: bias, empirical and model SE, coverage of its "
+                            "confidence interval (MCSE in brackets; Morris, White & Crowther 2019)")
         seq = run.extra.get("sequential")
         if seq:
             doc.para(f"Sequential stopping: the run went on until the MCSE of the power was at most "

@@ -179,6 +179,29 @@ def type1_plot(table: pd.DataFrame, x: str, alpha: float, title: str = "", label
     return fig
 
 
+def run_plot(result, title: str = ""):
+    """A plain run: each analysis's power with its 95% Wilson interval, the closed form (open circle) beside it."""
+    t = result.summary()
+    fig, ax = new_figure(7.5, 1.2 + 0.55 * len(t))
+    ys = np.arange(len(t))[::-1]
+    for y, (_, r) in zip(ys, t.iterrows()):
+        c = COLORS[0]
+        ax.plot([r["ci_low"], r["ci_high"]], [y, y], color=c, lw=2.5, alpha=0.5)
+        ax.plot([r["power"]], [y], "o", color=c, ms=7, label="simulated (95% Wilson interval)" if y == ys[0] else None)
+        a = r.get("analytic_power")
+        if a is not None and a == a:
+            ax.plot([a], [y], "o", mfc="none", mec=COLORS[1], ms=9, mew=1.5,
+                    label="closed form" if not any(ln.get_label() == "closed form" for ln in ax.get_lines()) else None)
+    ax.set_yticks(ys, [str(a) for a in t["analysis"]])
+    ax.set_xlim(0, 1)
+    ax.set_ylim(-0.7, len(t) - 0.3)
+    ax.set_xlabel("power (share of trials rejecting H0)")
+    ax.grid(alpha=0.3, axis="x")
+    ax.set_title(title or f"Power at the planned design ({result.reps} simulated trials)")
+    ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0, frameon=False)
+    return fig
+
+
 def search_plot(result, title: str = "", labels=None):
     """A search: evaluated values with Wilson intervals, fitted curve and band, target, answer and interval."""
     fig, ax = new_figure()
