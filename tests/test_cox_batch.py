@@ -124,7 +124,7 @@ def test_small_trials_agree_with_the_per_replicate_path_replicate_by_replicate()
     # 6 per arm, strong effect, short follow-up: many replicates without events in an arm or with a
     # monotone likelihood, and some without any event (statsmodels raises); every field and
     # every trouble flag must be those of the per-replicate path
-    b = SurvivalTwoArm(n=6, median=1.0, hazard_ratio=0.3, follow_up=0.7).draw_batch(np.random.default_rng(6), 300)
+    b = SurvivalTwoArm(n=6, median=1.0, hazard_ratio=0.3, follow_up=0.7).draw_batch(np.random.default_rng(6), 100)
     for ties in ("breslow", "efron"):
         an = Cox(ties=ties, alternative="less")
         res = an.batch(b)
