@@ -32,7 +32,7 @@ _BLOCK_CELLS = 1_000_000
 #: Newton steps of the batch Cox fit before a replicate goes to the per-replicate path, and the
 #: relative step size taken as settled
 _COX_MAX_ITER = 100
-_COX_TOL = 1e-12
+_COX_TOL = 1e-10
 
 
 def survival_columns(data):
