@@ -98,6 +98,7 @@ PAIRS = [
         "type": "clusters", "clusters": 5, "cluster_size": 8, "cluster_size_cv": 0.5, "icc": 0.05},
         "outcome": {"type": "binary", "p0": 0.3, "odds_ratio": 2.0}})),
     ({"type": "cox"}, SURVIVAL),
+    ({"type": "cox", "ties": "efron"}, ("survival_two_arm", {**SURVIVAL[1], "time_resolution": 0.25})),
     ({"type": "crossover_t"}, CROSSOVER),
     ({"type": "crossover_t", "scale": "log", "alternative": "less"}, CROSSOVER_LOG),
     ({"type": "crossover_tost", "margin": 0.5}, CROSSOVER),

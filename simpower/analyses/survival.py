@@ -23,12 +23,16 @@ import numpy as np
 from scipy import special
 
 from .._validation import Choice
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
 from .numeric import p_from_z, wald
 
 
 #: replicate-by-row cells handled at once by the batch log-rank path
 _BLOCK_CELLS = 1_000_000
+#: Newton steps of the batch Cox fit before a replicate goes to the per-replicate path, and the
+#: relative step size taken as settled
+_COX_MAX_ITER = 100
+_COX_TOL = 1e-10
 
 
 def survival_columns(data):
@@ -160,16 +164,112 @@ class LogRank(Analysis):
         return BatchResult(**{k: x for k, x in self._out(u, v).items() if k != "statistic"})
 
 
+def _cox_event_terms(time, event, arm, ties: str):
+    """Per-event constants of the Cox partial likelihood with one binary covariate, over replicates.
+
+    Rows of ``time``, ``event`` (R, N) are replicates; ``arm`` (N,) is shared. Each row is sorted
+    by time once; a run of equal times is one tie group with ``r0``, ``r1`` at risk (censored rows
+    at that time included) and ``d0``, ``d1`` events in arms 0 and 1. The ``k``-th event of a
+    group (k = 0 .. d - 1) contributes ``p_k = A e^b / (B + A e^b)`` to the expected number of
+    arm-1 events, with ``A = r1 - f d1``, ``B = r0 - f d0``; ``f = 0`` (Breslow) or ``k / d``
+    (Efron). Returns ``q = log A - log B`` (R, N), the event weights ``w`` (R, N) (0 off events,
+    where ``q`` is 0), arm-1 events ``d1`` (R,), and the counts of events with ``r1 > 0`` and
+    with ``r0 = 0`` (R,), which tell whether the estimate is finite (see :func:`_cox_newton`).
+    """
+    size, m = time.shape
+    order = np.argsort(time, axis=1, kind="stable")
+    t = np.take_along_axis(time, order, axis=1)
+    d = np.take_along_axis(np.asarray(event, float), order, axis=1)
+    a = np.asarray(arm, float)[order]
+    start = np.ones((size, m), bool)
+    start[:, 1:] = t[:, 1:] != t[:, :-1]
+    label = (np.cumsum(start, axis=1) - 1 + m * np.arange(size)[:, None]).ravel()
+    nbin = size * m
+
+    def per_group(values):  # a group's value, read back on each of its rows
+        return np.bincount(label, weights=values.ravel(), minlength=nbin)[label].reshape(size, m)
+
+    pos = np.arange(m)
+    before = np.cumsum(d, axis=1) - d  # events on earlier rows of the sorted replicate
+    r = per_group(np.where(start, m - pos, 0.0))
+    r1 = per_group(np.where(start, a.sum(axis=1, keepdims=True) - (np.cumsum(a, axis=1) - a), 0.0))
+    dg = per_group(d)
+    d1 = per_group(d * a)
+    r0, d0 = r - r1, dg - d1
+    if ties == "efron":
+        k = before - per_group(np.where(start, before, 0.0))  # rank of an event within its group
+        with np.errstate(all="ignore"):
+            f = np.where(d > 0, k / dg, 0.0)
+    else:
+        f = np.zeros_like(d)
+    ev = d > 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        q = np.where(ev, np.log(r1 - f * d1) - np.log(r0 - f * d0), 0.0)
+    n1 = np.sum(ev & (r1 > 0), axis=1)
+    n0 = np.sum(ev & (r0 == 0), axis=1)
+    return q, d, (d * a).sum(axis=1), n1, n0
+
+
+def _cox_score_info(beta, q, w, d1):
+    """Score ``U(b)`` and observed information ``I(b)`` of the log partial likelihood (arrays (R,))."""
+    p = special.expit(beta[:, None] + q)
+    return d1 - np.sum(w * p, axis=1), np.sum(w * p * (1.0 - p), axis=1)
+
+
+def _cox_newton(q, w, d1, n1, n0, max_iter: int = _COX_MAX_ITER, tol: float = _COX_TOL):
+    """Newton-Raphson from b = 0 on every replicate at once: ``(beta, info, ok)``.
+
+    The score ``U(b) = d1 - sum p_k(b)`` decreases in b from ``U(-inf) = d1 - n0`` to
+    ``U(+inf) = d1 - n1`` (``p_k`` tends to 1 or 0 by whether ``B`` or ``A`` is 0), so a finite
+    estimate exists exactly when ``d1 - n1 < 0 < d1 - n0``; other replicates (an arm without
+    events, or all of one arm's events while no one of the other arm was at risk) are not
+    ``ok``, nor are those whose plain Newton steps (statsmodels' method, no step halving) do not
+    settle within ``max_iter`` steps.
+    """
+    finite = (d1 - n1 < 0) & (d1 - n0 > 0)
+    beta = np.zeros(d1.shape)
+    active = finite.copy()
+    done = np.zeros(d1.shape, bool)
+    for _ in range(max_iter):
+        idx = np.flatnonzero(active)
+        if idx.size == 0:
+            break
+        u, info = _cox_score_info(beta[idx], q[idx], w[idx], d1[idx])
+        with np.errstate(all="ignore"):
+            step = u / info
+        bad = ~np.isfinite(step)
+        beta[idx] = np.where(bad, beta[idx], beta[idx] + step)
+        settled = ~bad & (np.abs(step) <= tol * np.maximum(1.0, np.abs(beta[idx])))
+        done[idx[settled]] = True
+        active[idx[settled | bad]] = False
+    ok = finite & done
+    info = np.full(d1.shape, np.nan)
+    if np.any(ok):
+        info[ok] = _cox_score_info(beta[ok], q[ok], w[ok], d1[ok])[1]
+    ok &= np.isfinite(beta) & (info > 0)
+    return beta, info, ok
+
+
 class Cox(Analysis):
     """Cox proportional hazards regression on the arm (statsmodels ``PHReg``); Wald test.
 
     H0: the hazard ratio (arm 1 vs arm 0) is 1. The estimate is the log
-    hazard ratio with its model SE and Wald CI; ``ties`` is 'breslow'
-    (statsmodels' default) or 'efron'. An arm without events makes the
-    partial likelihood monotone (no finite estimate): the analysis warns
-    :class:`PerfectSeparationWarning` before fitting so the engine counts
-    the replicate as fit trouble; the fit's own warnings and errors
-    propagate. Per replicate only.
+    hazard ratio with its model SE (observed information at the estimate)
+    and Wald CI; ``ties`` is 'breslow' (statsmodels' default) or 'efron'.
+    An arm without events makes the partial likelihood monotone (no finite
+    estimate): the per-replicate path warns :class:`PerfectSeparationWarning`
+    before fitting so the engine counts the replicate as fit trouble; the
+    fit's own warnings and errors propagate.
+
+    The batch path (layout ``survival``, no padding, arm shared by the
+    replicates) sorts each replicate's times once, reduces every event to one
+    constant of the partial likelihood (:func:`_cox_event_terms`: risk sets
+    by reversed cumulative counts per arm, Efron's correction within tie
+    groups), and takes plain Newton-Raphson steps from 0 for all replicates
+    at once, as statsmodels does for one. Replicates without a finite
+    estimate (decided exactly from the event counts, see :func:`_cox_newton`)
+    or whose steps do not settle are handed to the per-replicate path, so
+    their fields and trouble are the same as there.
     """
 
     name = "cox"
@@ -191,3 +291,28 @@ class Cox(Analysis):
         fit = PHReg(time, arm[:, None], status=event, ties=self.ties).fit()
         out = wald(float(fit.params[0]), float(fit.bse[0]), self.alternative, self.ci_level)
         return TestResult(**{k: float(v) for k, v in out.items()})
+
+    layouts = ("survival",)
+
+    def _supports(self, layout):
+        """No padding or missing outcomes; both arms present, in a design shared by all replicates."""
+        return layout.complete and "arm" in layout.shared and layout.labels == (0, 1)
+
+    def batch(self, batch):
+        layout = self.batch_layout(batch)
+        time, event, arm = layout.time, layout.event, np.asarray(layout.shared["arm"])
+        event = np.asarray(event, float)
+        beta, info = np.empty(batch.size), np.empty(batch.size)
+        ok = np.empty(batch.size, bool)
+        step = max(1, _BLOCK_CELLS // max(arm.size, 1))
+        for s in range(0, batch.size, step):
+            sl = slice(s, s + step)
+            beta[sl], info[sl], ok[sl] = _cox_newton(*_cox_event_terms(time[sl], event[sl], arm, self.ties))
+        # rows the per-replicate path would reject (it raises on them) go to it as well
+        valid = np.all(np.isfinite(time) & (time >= 0) & ((event == 0) | (event == 1)), axis=1)
+        ok &= valid
+        with np.errstate(all="ignore"):
+            se = 1.0 / np.sqrt(info)
+        res = BatchResult(**wald(np.where(ok, beta, np.nan), np.where(ok, se, np.nan),
+                                 self.alternative, self.ci_level))
+        return hand_over(self, batch, res, ~ok)
