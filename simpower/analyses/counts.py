@@ -183,11 +183,12 @@ class NegBinGLM(Analysis):
         y = layout.y
         shape = y.shape
         x = np.broadcast_to(np.asarray(layout.arm, float), shape)
-        expo = np.broadcast_to(layout.column("exposure"), shape) if "exposure" in batch else np.ones(shape)
         ok = layout.observed
         w = ok.astype(float)
         yy = np.where(ok, y, 0.0)
-        off = np.where(ok, np.log(np.where(ok, expo, 1.0)), 0.0)
+        with np.errstate(all="ignore"):
+            off = np.where(ok, np.broadcast_to(np.log(layout.column("exposure")), shape), 0.0) \
+                if "exposure" in batch else np.zeros(shape)
         is1 = (x == 1) & ok
         y1 = np.sum(yy * is1, axis=1)
         y0 = np.sum(yy, axis=1) - y1
@@ -221,26 +222,23 @@ class _NB2Data:
     def __init__(self, y, x, off, w):
         R = y.shape[0]
         # equal exposure within each arm (among observed rows): one cell per arm
-        big = np.finfo(float).max
-        o1 = np.where(w * x > 0, off, np.nan)
-        o0 = np.where(w * (1 - x) > 0, off, np.nan)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            same = (np.all(np.isnan(o1) | (o1 == np.nanmax(np.where(np.isnan(o1), -big, o1), 1, keepdims=True)), 1)
-                    & np.all(np.isnan(o0) | (o0 == np.nanmax(np.where(np.isnan(o0), -big, o0), 1, keepdims=True)),
-                             1))
-        if np.all(same):
-            n1, n0 = np.sum(w * x, 1), np.sum(w * (1 - x), 1)
+        m1, m0 = (w > 0) & (x == 1), (w > 0) & (x == 0)
+        hi1, lo1 = np.max(off, 1, initial=-np.inf, where=m1), np.min(off, 1, initial=np.inf, where=m1)
+        hi0, lo0 = np.max(off, 1, initial=-np.inf, where=m0), np.min(off, 1, initial=np.inf, where=m0)
+        if np.all(((hi1 == lo1) | ~np.isfinite(hi1)) & ((hi0 == lo0) | ~np.isfinite(hi0))):
+            n1, n0 = np.sum(m1, 1), np.sum(m0, 1)
             with np.errstate(all="ignore"):
-                ybar = np.stack([np.sum(w * (1 - x) * y, 1) / n0, np.sum(w * x * y, 1) / n1], 1)
-                oc = np.stack([np.nanmax(np.where(np.isnan(o0), -big, o0), 1),
-                               np.nanmax(np.where(np.isnan(o1), -big, o1), 1)], 1)
-            wc = np.stack([n0, n1], 1)
+                y1, q1 = np.sum(y * w * x, 1), np.sum(y * y * w * x, 1)
+                ybar = np.stack([(np.sum(y * w, 1) - y1) / n0, y1 / n1], 1)
+                y2 = np.stack([(np.sum(y * y * w, 1) - q1) / n0, q1 / n1], 1)
+            wc = np.stack([n0, n1], 1).astype(float)
             good = wc > 0
             self.cells = (np.where(good, ybar, 0.0), np.broadcast_to([0.0, 1.0], (R, 2)).copy(),
-                          np.where(good, oc, 0.0), wc)
+                          np.where(good, np.stack([hi0, hi1], 1), 0.0), wc)
+            self.y2 = np.where(good, y2, 0.0)        # cell means of y^2 (start values only)
         else:
             self.cells = (y, x, off, w)
+            self.y2 = y * y
         ok = w > 0
         ymax = float(np.max(y, initial=0.0, where=ok))
         integer = bool(np.all(y[ok] == np.floor(y[ok])))
@@ -327,22 +325,24 @@ def _nb2_ml(y, x, off, w, skip):
     ``_ALPHA_FLOOR``, information not positive definite).
     """
     R = y.shape[0]
-    e = np.exp(off) * w
-    is1 = x * w
+    data = _NB2Data(y, x, off, w)
+    yc, xc, oc, wc = data.cells
+    e = np.exp(oc) * wc
     with np.errstate(all="ignore"):
-        r1 = np.sum(y * is1, 1) / np.sum(e * x, 1)
-        r0 = np.sum(y * (w - is1), 1) / np.sum(e * (1 - x), 1)
+        r1 = np.sum(yc * wc * xc, 1) / np.sum(e * xc, 1)
+        r0 = np.sum(yc * wc * (1 - xc), 1) / np.sum(e * (1 - xc), 1)
         b0, b1 = np.log(r0), np.log(r1) - np.log(r0)
-        mu = np.exp(b0[:, None] + b1[:, None] * x + off)
-        n = w.sum(1)
-        amom = np.sum(w * ((y - mu) ** 2 - mu) / np.where(w > 0, mu, 1.0) ** 2, 1) / (n - 2)
+        mu = np.where(wc > 0, np.exp(b0[:, None] + b1[:, None] * xc + oc), 1.0)
+        n = wc.sum(1)
+        # sum over a cell of (y - mu)^2 = w (mean of y^2 - 2 mu mean y + mu^2)
+        ss = wc * (data.y2 - 2 * mu * yc + mu**2)
+        amom = np.sum((ss - wc * mu) / mu**2, 1) / (n - 2)
     s = np.log(np.clip(amom, 0.05, 1e3))
     theta = np.stack([b0, b1, s], 1)
     bad = skip | ~np.all(np.isfinite(theta), 1)
     theta[bad] = 0.0
     active = ~bad
     conv = np.zeros(R, bool)
-    data = _NB2Data(y, x, off, w)
     floor = np.log(NegBinGLM._ALPHA_FLOOR)
     for _ in range(NegBinGLM._MAXITER):
         idx = np.flatnonzero(active)
