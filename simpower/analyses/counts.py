@@ -201,8 +201,8 @@ class NegBinGLM(Analysis):
         layout = self.batch_layout(batch)
         y = layout.y
         shape = y.shape
-        x = np.broadcast_to(np.asarray(layout.arm, float), shape)
         ok = layout.observed
+        x = np.where(ok, np.asarray(layout.arm, float), 0.0)  # padding may hold any label
         w = ok.astype(float)
         yy = np.where(ok, y, 0.0)
         with np.errstate(all="ignore"):
