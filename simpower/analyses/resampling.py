@@ -14,6 +14,30 @@ data set: a run gives the same numbers for any number of jobs or executor,
 two analyses with the same ``seed`` on one data set use the same resamples,
 and different data sets (replicates) get unrelated streams. Change ``seed`` to
 get another set of resamples.
+
+Batch paths (two independent arms)
+----------------------------------
+``permutation_test`` and ``bootstrap_ci`` also run on a batch of replicates
+(the ``two_arm`` layout, arms not paired) and give the very numbers of the
+per-replicate path, bit for bit: each replicate still gets its own generator
+``data_rng(seed, ...)`` and draws the same random numbers in the same order as
+scipy does with it -- the permutation test ``n_resamples`` calls of
+``Generator.permutation(n)`` (scipy's ``permutation_type='independent'``
+loop), the bootstrap one ``Generator.integers(0, n_j, (n_resamples, n_j))``
+per arm -- while the statistic of every resample of every replicate, the
+p-values, the bootstrap quantiles and the BCa jackknife are computed as whole
+arrays (replicates with the same observed arm sizes together, in blocks of at
+most about 2e6 resampled values). The permutations come from a compiled
+Fisher-Yates kernel reading the generator's raw 64-bit stream as numpy's
+``Generator.shuffle`` does (bounded integers by masked rejection on 32-bit
+halves); on first use it is checked against ``Generator.permutation`` and,
+where numba is missing or the check fails, the per-replicate
+``Generator.permutation`` loop is used instead (same numbers, slower).
+Replicates the batch path does not compute are handed to the per-replicate
+path: an arm with fewer than two observed outcomes or a label missing (scipy
+raises), an exact permutation test (``comb(n0 + n1, n1) <= n_resamples``:
+scipy enumerates every split), and a BCa interval or p-value that is not finite
+(scipy warns).
 """
 
 from __future__ import annotations
@@ -112,6 +136,44 @@ class PermutationTest(Analysis):
                                    n_resamples=self.n_resamples, alternative=self.alternative, rng=rng)
         return TestResult(pvalue=float(r.pvalue), estimate=float(r.statistic) + self.null_value,
                           statistic=float(r.statistic))
+
+    layouts = ("two_arm",)
+
+    def _supports(self, layout):
+        """Two independent arms (any missing outcomes or padding); pairs run per replicate."""
+        return _two_arm_supported(layout)
+
+    def batch(self, batch):
+        """Every replicate's scipy permutation test, with its own draws, the statistics as arrays."""
+        layout = self.batch_layout(batch)
+        groups, bad = _arm_groups(layout)
+        R, B = batch.size, self.n_resamples
+        loc = _LOCATION[self.statistic]
+        pvalue, estimate = np.full(R, np.nan), np.full(R, np.nan)
+        exact = bad.copy()
+        eps = np.finfo(np.float64).eps * 100  # scipy's tolerance for ties with the observed statistic
+        for (n0, n1), (rows, Y0, Y1) in groups.items():
+            n = n0 + n1
+            if math.comb(n, n1) <= B:  # scipy enumerates every split: the per-replicate path
+                exact[rows] = True
+                continue
+            X = np.concatenate([Y1 - self.null_value, Y0], axis=1)  # scipy's data: (arm 1 - null, arm 0)
+            observed = loc(X[:, :n1], axis=-1) - loc(X[:, n1:], axis=-1)
+            for blk in _blocks(rows.size, B * n):
+                Xb = X[blk]
+                idx = np.stack([_permutations(data_rng(self.seed, x[:n1], x[n1:]), n, B) for x in Xb])
+                perm = Xb[np.arange(Xb.shape[0])[:, None, None], idx]
+                null = loc(perm[..., :n1], axis=-1) - loc(perm[..., n1:], axis=-1)
+                obs = observed[blk][:, None]
+                gamma = np.abs(eps * obs)
+                p_less = (np.count_nonzero(null <= obs + gamma, axis=-1) + 1).astype(float) / (B + 1)
+                p_greater = (np.count_nonzero(null >= obs - gamma, axis=-1) + 1).astype(float) / (B + 1)
+                p = {"less": p_less, "greater": p_greater}.get(self.alternative)
+                if p is None:
+                    p = np.minimum(p_less, p_greater) * 2
+                pvalue[rows[blk]] = np.clip(p, 0.0, 1.0)
+            estimate[rows] = observed + self.null_value
+        return hand_over(self, batch, BatchResult(pvalue=pvalue, estimate=estimate), exact)
 
 
 class BootstrapCI(Analysis):
@@ -223,6 +285,128 @@ def acceleration(samples, stat) -> float:
         num += np.sum(u**3) / n**3
         den += np.sum(u**2) / n**2
     return float(num / (6.0 * den**1.5)) if den > 0 else 0.0
+
+
+# --- batch paths (two independent arms) -------------------------------------------------------------
+
+#: resampled values formed at once (replicates x resamples x observations), to bound memory
+_BLOCK_VALUES = 2_000_000
+
+
+def _arm_groups(layout):
+    """Observed arm outcomes per replicate, grouped by arm sizes.
+
+    Returns ``(groups, bad)``: ``groups`` maps ``(n0, n1)`` to ``(rows, Y0, Y1)`` (rows (g,), outcomes
+    (g, n0) and (g, n1) in table order, as :func:`split_arms` gives them), ``bad`` (R,) marks the
+    replicates whose table lacks an arm label or has fewer than two observed outcomes in an arm.
+    """
+    y = np.asarray(layout.y, dtype=float)
+    obs = layout.observed
+    arm = np.broadcast_to(np.asarray(layout.arm), y.shape)
+    present = layout.present if layout.present is not None else np.ones(y.shape, bool)
+    in0, in1 = arm == 0, arm == 1
+    bad = ~(np.any(present & in0, axis=1) & np.any(present & in1, axis=1))
+    o0, o1 = obs & in0, obs & in1
+    n0, n1 = np.count_nonzero(o0, axis=1), np.count_nonzero(o1, axis=1)
+    bad |= (n0 < 2) | (n1 < 2)
+    groups = {}
+    for key in sorted(set(zip(n0[~bad].tolist(), n1[~bad].tolist()))):
+        rows = np.flatnonzero(~bad & (n0 == key[0]) & (n1 == key[1]))
+        sub = y[rows]
+        groups[key] = (rows, sub[o0[rows]].reshape(rows.size, key[0]), sub[o1[rows]].reshape(rows.size, key[1]))
+    return groups, bad
+
+
+def _blocks(count, per_row):
+    """Slices of ``range(count)`` holding about ``_BLOCK_VALUES / per_row`` rows each."""
+    step = max(1, _BLOCK_VALUES // max(1, per_row))
+    return [slice(i, min(count, i + step)) for i in range(0, count, step)]
+
+
+def _two_arm_supported(layout) -> bool:
+    """Two independent arms (paired data take the per-replicate path, which analyses differences)."""
+    return "pair" not in layout
+
+
+def _fisher_yates(words, n, out):
+    """Permutations of ``range(n)`` into the rows of ``out`` from a stream of 32-bit words.
+
+    numpy's ``Generator.permutation(n)`` shuffles ``arange(n)``: for i = n-1 .. 1 it swaps
+    position i with j drawn uniformly from [0, i] by masked rejection (the smallest mask
+    2^k - 1 >= i applied to the next 32-bit word until the value is <= i). Returns the words
+    used, or -1 when ``words`` ran out.
+    """
+    k = 0
+    m = words.size
+    for p in range(out.shape[0]):
+        for j in range(n):
+            out[p, j] = j
+        for i in range(n - 1, 0, -1):
+            mask = i
+            mask |= mask >> 1
+            mask |= mask >> 2
+            mask |= mask >> 4
+            mask |= mask >> 8
+            mask |= mask >> 16
+            while True:
+                if k >= m:
+                    return -1
+                v = words[k] & mask
+                k += 1
+                if v <= i:
+                    break
+            t = out[p, i]
+            out[p, i] = out[p, v]
+            out[p, v] = t
+    return k
+
+
+_KERNEL: list = []
+
+
+def _words(rng, count):
+    """The next ``2 count`` 32-bit words of a fresh generator (low half of each 64-bit output first)."""
+    raw = rng.bit_generator.random_raw(count)
+    out = np.empty(2 * count, dtype=np.int64)
+    out[0::2] = raw & np.uint64(0xFFFFFFFF)
+    out[1::2] = raw >> np.uint64(32)
+    return out
+
+
+def _compiled_permuter():
+    """The compiled kernel when numba is there and it reproduces ``Generator.permutation``, else None."""
+    if not _KERNEL:
+        fn = None
+        try:
+            import numba
+
+            fn = numba.njit(cache=True)(_fisher_yates)
+            for n in (2, 3, 17, 64, 300):
+                expect = np.random.default_rng(n).permutation  # a fresh generator, as data_rng gives
+                want = np.stack([expect(n) for _ in range(4)])
+                if not np.array_equal(_permute_with(fn, np.random.default_rng(n), n, 4), want):
+                    fn = None
+                    break
+        except Exception:  # numba missing or the kernel differs: the Generator.permutation loop
+            fn = None
+        _KERNEL.append(fn)
+    return _KERNEL[0]
+
+
+def _permute_with(fn, rng, n, count):
+    out = np.empty((count, n), dtype=np.intp)
+    words = _words(rng, count * n)
+    while fn(words, n, out) < 0:  # rare: more rejections than words drawn; the stream continues
+        words = np.concatenate([words, _words(rng, count * n)])
+    return out
+
+
+def _permutations(rng, n, count):
+    """``np.stack([rng.permutation(n) for _ in range(count)])`` (scipy's draws), compiled when possible."""
+    fn = _compiled_permuter()
+    if fn is None:
+        return np.stack([rng.permutation(n) for _ in range(count)])
+    return _permute_with(fn, rng, n, count)
 
 
 class LogT(Analysis):
