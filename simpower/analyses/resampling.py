@@ -162,7 +162,7 @@ class PermutationTest(Analysis):
             for blk in _blocks(rows.size, B * n):
                 Xb = X[blk]
                 idx = np.stack([_permutations(data_rng(self.seed, x[:n1], x[n1:]), n, B) for x in Xb])
-                perm = Xb[np.arange(Xb.shape[0])[:, None, None], idx]
+                perm = np.ascontiguousarray(Xb[np.arange(Xb.shape[0])[:, None, None], idx])
                 null = loc(perm[..., :n1], axis=-1) - loc(perm[..., n1:], axis=-1)
                 obs = observed[blk][:, None]
                 gamma = np.abs(eps * obs)
@@ -270,6 +270,83 @@ class BootstrapCI(Analysis):
             return float(v > 0)
         return float(special.ndtr(v / denom - z0))
 
+    layouts = ("two_arm",)
+
+    def _supports(self, layout):
+        """Two independent arms (any missing outcomes or padding); pairs run per replicate."""
+        return _two_arm_supported(layout)
+
+    def batch(self, batch):
+        """Every replicate's scipy bootstrap, with its own draws, the statistics and intervals as arrays."""
+        layout = self.batch_layout(batch)
+        groups, bad = _arm_groups(layout)
+        R, B = batch.size, self.n_resamples
+        out = {f: np.full(R, np.nan) for f in ("pvalue", "estimate", "se", "ci_low", "ci_high")}
+        loc = _LOCATION[self.statistic]
+        alpha = (1 - self.ci_level) / 2  # scipy's, two-sided
+        handover = bad.copy()
+        with np.errstate(all="ignore"):
+            for (n0, n1), (rows, Y0, Y1) in groups.items():
+                theta = loc(Y1, axis=-1) - loc(Y0, axis=-1)
+                boot = np.empty((rows.size, B))
+                for blk in _blocks(rows.size, B * (n0 + n1)):
+                    i0, i1 = [], []
+                    for a, b in zip(Y0[blk], Y1[blk]):
+                        rng = data_rng(self.seed, a, b)
+                        i0.append(rng.integers(0, n0, (B, n0)))  # scipy draws arm 0's resamples, then arm 1's
+                        i1.append(rng.integers(0, n1, (B, n1)))
+                        # (scipy: rng_integers(rng, 0, n, (B, n)) = Generator.integers(0, n, size, int64))
+                    r_ = np.arange(len(i0))[:, None, None]
+                    r1 = np.ascontiguousarray(Y1[blk][r_, np.stack(i1)])  # C order, as scipy's (B, n) resamples
+                    r0 = np.ascontiguousarray(Y0[blk][r_, np.stack(i0)])
+                    boot[blk] = loc(r1, axis=-1) - loc(r0, axis=-1)
+                se = np.std(boot, ddof=1, axis=-1)
+                G = _scores(boot)
+                if self.method == "bca":
+                    z0 = special.ndtri(G(theta))
+                    jack = [loc(Y1, axis=-1)[:, None] - loc(_jackknife(Y0), axis=-1),
+                            loc(_jackknife(Y1), axis=-1) - loc(Y0, axis=-1)[:, None]]
+                    a_scipy, a_ours, den = _accelerations(jack)
+                    z_alpha = float(special.ndtri(alpha))
+                    num1 = z0 + z_alpha
+                    num2 = z0 - z_alpha
+                    interval = np.stack([special.ndtr(z0 + num1 / (1 - a_scipy * num1)),
+                                         special.ndtr(z0 + num2 / (1 - a_scipy * num2))], axis=-1)
+                else:
+                    a = np.asarray(alpha, dtype=float)
+                    interval = np.broadcast_to(np.stack([a, 1 - a]), (rows.size, 2))
+                ci = stats.quantile(boot, interval, axis=-1)
+                lo, hi = ci[:, 0], ci[:, 1]
+                if self.method == "basic":
+                    lo, hi = 2 * theta - hi, 2 * theta - lo
+                pg = self._p_greater_rows(G, theta, z0 if self.method == "bca" else None,
+                                          a_ours if self.method == "bca" else None)
+                p = {"greater": pg, "less": 1.0 - pg}.get(self.alternative)
+                if p is None:
+                    p = np.minimum(1.0, 2.0 * np.minimum(pg, 1.0 - pg))
+                for f, v in (("pvalue", p), ("estimate", theta), ("se", se), ("ci_low", lo), ("ci_high", hi)):
+                    out[f][rows] = v
+                # scipy warns (degenerate data) where the interval is NaN; the scalar BCa arithmetic may
+                # warn where z0 or the acceleration is not finite: those replicates run per replicate
+                trouble = np.isnan(ci).any(axis=-1)
+                if self.method == "bca":
+                    trouble |= ~np.isfinite(z0) | ~np.isfinite(a_scipy) | ~(den > 0) | ~np.isfinite(pg)
+                handover[rows[trouble]] = True
+        return hand_over(self, batch, BatchResult(**out), handover)
+
+    def _p_greater_rows(self, G, theta, z0, a):
+        """:meth:`_p_greater` for many replicates (``G`` the bootstrap distribution functions)."""
+        if self.method == "percentile":
+            return G(np.full(theta.shape, self.null_value))
+        if self.method == "basic":
+            return 1.0 - G(2.0 * theta - self.null_value)
+        q = G(np.full(theta.shape, self.null_value))
+        v = special.ndtri(q) - z0
+        denom = 1.0 + a * v
+        p = special.ndtr(v / denom - z0)
+        p = np.where(denom <= 0.0, (v > 0).astype(float), p)
+        return np.where((q <= 0.0) | (q >= 1.0), (q >= 1.0).astype(float), p)
+
 
 def acceleration(samples, stat) -> float:
     """Jackknife acceleration of the BCa interval, pooled over samples (Efron & Tibshirani 1993, eq. 14.15)."""
@@ -315,6 +392,42 @@ def _arm_groups(layout):
         sub = y[rows]
         groups[key] = (rows, sub[o0[rows]].reshape(rows.size, key[0]), sub[o1[rows]].reshape(rows.size, key[1]))
     return groups, bad
+
+
+def _scores(boot):
+    """x (R,) -> (#{t* < x} + #{t* <= x}) / 2B per row of ``boot`` (R, B): scipy's percentile of score."""
+    def g(x):
+        x = np.asarray(x, float)[:, None]
+        return (np.count_nonzero(boot < x, axis=-1) + np.count_nonzero(boot <= x, axis=-1)) / (2.0 * boot.shape[1])
+    return g
+
+
+def _jackknife(Y):
+    """(R, n) -> (R, n, n - 1): row i of each replicate leaves out observation i (scipy's order)."""
+    n = Y.shape[1]
+    keep = ~np.eye(n, dtype=bool)
+    idx = np.broadcast_to(np.arange(n), (n, n))[keep].reshape(n, n - 1)
+    return np.ascontiguousarray(Y[:, idx])  # C order: row reductions then sum as scipy's 2-d arrays do
+
+
+def _accelerations(jack):
+    """BCa acceleration per replicate from the jackknife statistics (list of (R, n_j) per sample).
+
+    Returns scipy's (``1/6 * sum(nums) / sum(dens)**1.5``, for the interval), this module's
+    (:func:`acceleration`, for the p-value; 0 where the denominator is 0) and scipy's denominator.
+    """
+    nums, dens, num, den = [], [], 0.0, 0.0
+    for t in jack:
+        n = t.shape[1]
+        u_scipy = (float(n) - 1) * (np.mean(t, axis=-1, keepdims=True) - t)
+        nums.append(np.sum(u_scipy**3, axis=-1) / float(n) ** 3)
+        dens.append(np.sum(u_scipy**2, axis=-1) / float(n) ** 2)
+        u = (n - 1) * (t.mean(axis=-1, keepdims=True) - t)
+        num = num + np.sum(u**3, axis=-1) / n**3
+        den = den + np.sum(u**2, axis=-1) / n**2
+    a_scipy = 1 / 6 * sum(nums) / sum(dens) ** (3 / 2)
+    a_ours = np.where(den > 0, num / (6.0 * den**1.5), 0.0)
+    return a_scipy, a_ours, sum(dens)
 
 
 def _blocks(count, per_row):
