@@ -73,8 +73,10 @@ def test_permutations_are_those_of_generator_permutation(n):
     # reference: numpy's Generator.permutation, called as scipy's independent-sample loop calls it
     rng = np.random.default_rng(n + 7)
     want = np.stack([rng.permutation(n) for _ in range(25)])
-    got = resampling._permutations(np.random.default_rng(n + 7), n, 25)
-    np.testing.assert_array_equal(got, want)
+    x = np.random.default_rng(n).normal(size=n)
+    got = np.empty((25, n))
+    resampling._permuted(np.random.default_rng(n + 7), x, got)
+    np.testing.assert_array_equal(got, x[want])
 
 
 def test_kernel_is_compiled_where_numba_is_installed():

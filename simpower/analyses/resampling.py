@@ -44,6 +44,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import sys
 
 import numpy as np
 from scipy import special, stats
@@ -161,8 +162,9 @@ class PermutationTest(Analysis):
             observed = loc(X[:, :n1], axis=-1) - loc(X[:, n1:], axis=-1)
             for blk in _blocks(rows.size, B * n):
                 Xb = X[blk]
-                idx = np.stack([_permutations(data_rng(self.seed, x[:n1], x[n1:]), n, B) for x in Xb])
-                perm = np.ascontiguousarray(Xb[np.arange(Xb.shape[0])[:, None, None], idx])
+                perm = np.empty((Xb.shape[0], B, n))  # C order, rows as scipy's (B, n) resamples
+                for x, out in zip(Xb, perm):
+                    _permuted(data_rng(self.seed, x[:n1], x[n1:]), x, out)
                 null = loc(perm[..., :n1], axis=-1) - loc(perm[..., n1:], axis=-1)
                 obs = observed[blk][:, None]
                 gamma = np.abs(eps * obs)
@@ -290,15 +292,14 @@ class BootstrapCI(Analysis):
                 theta = loc(Y1, axis=-1) - loc(Y0, axis=-1)
                 boot = np.empty((rows.size, B))
                 for blk in _blocks(rows.size, B * (n0 + n1)):
-                    i0, i1 = [], []
-                    for a, b in zip(Y0[blk], Y1[blk]):
+                    y0s, y1s = Y0[blk], Y1[blk]
+                    r0, r1 = np.empty((len(y0s), B, n0)), np.empty((len(y0s), B, n1))  # C order, as scipy's
+                    for a, b, o0, o1 in zip(y0s, y1s, r0, r1):
                         rng = data_rng(self.seed, a, b)
-                        i0.append(rng.integers(0, n0, (B, n0)))  # scipy draws arm 0's resamples, then arm 1's
-                        i1.append(rng.integers(0, n1, (B, n1)))
-                        # (scipy: rng_integers(rng, 0, n, (B, n)) = Generator.integers(0, n, size, int64))
-                    r_ = np.arange(len(i0))[:, None, None]
-                    r1 = np.ascontiguousarray(Y1[blk][r_, np.stack(i1)])  # C order, as scipy's (B, n) resamples
-                    r0 = np.ascontiguousarray(Y0[blk][r_, np.stack(i0)])
+                        # scipy draws arm 0's resamples, then arm 1's:
+                        # rng_integers(rng, 0, n, (B, n)) = Generator.integers(0, n, (B, n), int64)
+                        np.take(a, rng.integers(0, n0, (B, n0)), out=o0)
+                        np.take(b, rng.integers(0, n1, (B, n1)), out=o1)
                     boot[blk] = loc(r1, axis=-1) - loc(r0, axis=-1)
                 se = np.std(boot, ddof=1, axis=-1)
                 G = _scores(boot)
@@ -441,19 +442,21 @@ def _two_arm_supported(layout) -> bool:
     return "pair" not in layout
 
 
-def _fisher_yates(words, n, out):
-    """Permutations of ``range(n)`` into the rows of ``out`` from a stream of 32-bit words.
+def _fisher_yates(words, x, out):
+    """Rows of ``out`` (B, n): ``x`` permuted as ``x[Generator.permutation(n)]``, from a stream of 32-bit words.
 
     numpy's ``Generator.permutation(n)`` shuffles ``arange(n)``: for i = n-1 .. 1 it swaps
     position i with j drawn uniformly from [0, i] by masked rejection (the smallest mask
-    2^k - 1 >= i applied to the next 32-bit word until the value is <= i). Returns the words
-    used, or -1 when ``words`` ran out.
+    2^k - 1 >= i applied to the next 32-bit word until the value is <= i). Shuffling the values
+    themselves by the same swaps gives the permuted data at once. Returns the words used, or -1
+    when ``words`` ran out.
     """
     k = 0
     m = words.size
+    n = x.size
     for p in range(out.shape[0]):
         for j in range(n):
-            out[p, j] = j
+            out[p, j] = x[j]
         for i in range(n - 1, 0, -1):
             mask = i
             mask |= mask >> 1
@@ -480,7 +483,9 @@ _KERNEL: list = []
 def _words(rng, count):
     """The next ``2 count`` 32-bit words of a fresh generator (low half of each 64-bit output first)."""
     raw = rng.bit_generator.random_raw(count)
-    out = np.empty(2 * count, dtype=np.int64)
+    if sys.byteorder == "little":
+        return raw.view(np.uint32)
+    out = np.empty(2 * count, dtype=np.uint32)
     out[0::2] = raw & np.uint64(0xFFFFFFFF)
     out[1::2] = raw >> np.uint64(32)
     return out
@@ -495,9 +500,11 @@ def _compiled_permuter():
 
             fn = numba.njit(cache=True)(_fisher_yates)
             for n in (2, 3, 17, 64, 300):
-                expect = np.random.default_rng(n).permutation  # a fresh generator, as data_rng gives
-                want = np.stack([expect(n) for _ in range(4)])
-                if not np.array_equal(_permute_with(fn, np.random.default_rng(n), n, 4), want):
+                rng = np.random.default_rng(n)  # a fresh generator, as data_rng gives
+                want = np.stack([rng.permutation(n) for _ in range(4)]).astype(float)
+                got = np.empty((4, n))
+                _permute_with(fn, np.random.default_rng(n), np.arange(n, dtype=float), got)
+                if not np.array_equal(got, want):
                     fn = None
                     break
         except Exception:  # numba missing or the kernel differs: the Generator.permutation loop
@@ -506,20 +513,19 @@ def _compiled_permuter():
     return _KERNEL[0]
 
 
-def _permute_with(fn, rng, n, count):
-    out = np.empty((count, n), dtype=np.intp)
-    words = _words(rng, count * n)
-    while fn(words, n, out) < 0:  # rare: more rejections than words drawn; the stream continues
-        words = np.concatenate([words, _words(rng, count * n)])
-    return out
+def _permute_with(fn, rng, x, out):
+    words = _words(rng, out.size)
+    while fn(words, x, out) < 0:  # rare: more rejections than words drawn; the stream continues
+        words = np.concatenate([words, _words(rng, out.size)])
 
 
-def _permutations(rng, n, count):
-    """``np.stack([rng.permutation(n) for _ in range(count)])`` (scipy's draws), compiled when possible."""
+def _permuted(rng, x, out):
+    """``out[:] = x[np.stack([rng.permutation(n) for _ in range(len(out))])]``: scipy's draws, compiled when possible."""
     fn = _compiled_permuter()
     if fn is None:
-        return np.stack([rng.permutation(n) for _ in range(count)])
-    return _permute_with(fn, rng, n, count)
+        out[...] = x[np.stack([rng.permutation(x.size) for _ in range(out.shape[0])])]
+    else:
+        _permute_with(fn, rng, x, out)
 
 
 class LogT(Analysis):
