@@ -298,8 +298,8 @@ class BootstrapCI(Analysis):
                         rng = data_rng(self.seed, a, b)
                         # scipy draws arm 0's resamples, then arm 1's:
                         # rng_integers(rng, 0, n, (B, n)) = Generator.integers(0, n, (B, n), int64)
-                        np.take(a, rng.integers(0, n0, (B, n0)), out=o0)
-                        np.take(b, rng.integers(0, n1, (B, n1)), out=o1)
+                        np.take(a, rng.integers(0, n0, (B, n0)), out=o0, mode="clip")  # in range: unbuffered
+                        np.take(b, rng.integers(0, n1, (B, n1)), out=o1, mode="clip")
                     boot[blk] = loc(r1, axis=-1) - loc(r0, axis=-1)
                 se = np.std(boot, ddof=1, axis=-1)
                 G = _scores(boot)
