@@ -203,3 +203,15 @@ def test_run_takes_the_batch_path_and_keeps_the_numbers(monkeypatch):
             np.testing.assert_array_equal(getattr(f, field), getattr(w, field))
         assert f.causes == w.causes
         assert np.isfinite(f.pvalue).mean() > 0.9
+
+
+@pytest.mark.parametrize("an", [PermutationTest(n_resamples=99, statistic="median"),
+                                BootstrapCI(n_resamples=99, method="bca")], ids=["permutation", "bca"])
+def test_small_memory_blocks_give_the_same_numbers(monkeypatch, an):
+    # blocks of a few replicates (down to one) bound the memory; the numbers must not depend on them
+    batch = arms_batch(13, reps=7, missing=True)
+    monkeypatch.setattr(resampling, "_BLOCK_VALUES", 500)
+    got, got_trouble = batch_path(an, batch)
+    want, want_trouble = per_replicate(an, batch)
+    np.testing.assert_array_equal(got, want)
+    assert got_trouble == want_trouble

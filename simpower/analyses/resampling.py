@@ -305,8 +305,11 @@ class BootstrapCI(Analysis):
                 G = _scores(boot)
                 if self.method == "bca":
                     z0 = special.ndtri(G(theta))
-                    jack = [loc(Y1, axis=-1)[:, None] - loc(_jackknife(Y0), axis=-1),
-                            loc(_jackknife(Y1), axis=-1) - loc(Y0, axis=-1)[:, None]]
+                    jack = [np.empty((rows.size, n0)), np.empty((rows.size, n1))]  # leave one out of arm 0, 1
+                    m0, m1 = loc(Y0, axis=-1), loc(Y1, axis=-1)
+                    for blk in _blocks(rows.size, n0 * n0 + n1 * n1):
+                        jack[0][blk] = m1[blk, None] - loc(_jackknife(Y0[blk]), axis=-1)
+                        jack[1][blk] = loc(_jackknife(Y1[blk]), axis=-1) - m0[blk, None]
                     a_scipy, a_ours, den = _accelerations(jack)
                     z_alpha = float(special.ndtri(alpha))
                     num1 = z0 + z_alpha
