@@ -262,6 +262,11 @@ CASES = [
     ({"type": "log_t"}, "lognormal_missing", True),
     ({"type": "log_t", "equal_var": True}, "paired_missing", True),  # negatives: error rows; complete pairs
     ({"type": "log_t"}, "one_sample_sparse", True),
+    ({"type": "permutation_test", "n_resamples": 99}, "two_arm_sparse", True),  # exact / <2 values: per replicate
+    ({"type": "permutation_test", "n_resamples": 99, "statistic": "median"}, "two_arm_missing", True),
+    ({"type": "permutation_test", "n_resamples": 99}, "paired", False),       # pairs: sign flips, per replicate
+    ({"type": "bootstrap_ci", "n_resamples": 99}, "two_arm_sparse", True),
+    ({"type": "bootstrap_ci", "n_resamples": 99, "method": "basic"}, "two_arm_missing", True),
     ({"type": "welch_t", "alternative": "greater"}, "two_arm", True),
     ({"type": "welch_t"}, "one_sample", False),
     ({"type": "paired_t", "alternative": "less"}, "paired", True),
@@ -351,7 +356,8 @@ CASES = [
 ]
 
 #: cases whose batch result marks some replicates as failed
-WITH_TROUBLE = {("logistic", "binary_small"), ("logistic", "binary_missing"), ("poisson_glm", "counts_small"), ("log_t", "paired"),
+WITH_TROUBLE = {("permutation_test", "two_arm_sparse"), ("bootstrap_ci", "two_arm_sparse"),  # < 2 values: scipy raises
+                ("logistic", "binary_small"), ("logistic", "binary_missing"), ("poisson_glm", "counts_small"), ("log_t", "paired"),
                 ("log_t", "one_sample"), ("cluster_means_t", "clusters_individual"), ("multiple", "binary_small"),
                 # sparse replicates handed to the per-replicate path: an empty arm raises ZeroDivisionError
                 # there (Student's and the z-test's SE); Welch's and the one-sample paths give NaN instead

@@ -148,6 +148,10 @@ PAIRS = [
     ({"type": "ols"}, TWO_ARM),
     ({"type": "paired_t"}, PAIRED),
     ({"type": "permutation_test", "n_resamples": 199}, TWO_ARM),
+    ({"type": "permutation_test", "n_resamples": 199, "statistic": "median", "alternative": "less"},
+     ("two_arm", {"n": 10, "effect": 0.5, "missing": {"type": "mcar", "rate": 0.2}})),
+    ({"type": "bootstrap_ci", "n_resamples": 199, "method": "percentile", "statistic": "median"},
+     ("two_arm", {"n": 10, "effect": 0.5, "missing": {"type": "mcar", "rate": 0.2}})),
     ({"type": "poisson_glm"}, COUNTS),
     # the GLMM's two paths are two optimisers of one likelihood (tests/test_glmm.py: agreement to 1e-6)
     ({"type": "glmm"}, ("trial", {"design": {"type": "clusters", "clusters": 5, "cluster_size": 8,

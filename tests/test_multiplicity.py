@@ -9,6 +9,7 @@ from statsmodels.stats.multitest import multipletests
 
 import simpower as sp
 from simpower._validation import Int, Real
+from simpower.analyses.base import Analysis
 from simpower.analyses.multiplicity import METHODS, Multiple, adjust
 from simpower.analyses.resampling import PermutationTest
 from simpower.errors import ParameterError, UnknownNameError
@@ -78,8 +79,14 @@ def test_batch_equals_per_replicate(comparisons, method):
     np.testing.assert_allclose(out["estimate"], [r.estimate for r in per], rtol=1e-10)
 
 
+class PerReplicatePermutation(PermutationTest):
+    """The permutation test without its batch path: a component that runs per replicate only."""
+
+    batch = Analysis.batch
+
+
 def test_falls_back_to_per_replicate_when_a_component_cannot_batch():
-    sc = sp.Scenario(ArmsEndpoints(n=8, arms=2), Multiple(tests=[sp.TTest(), PermutationTest(n_resamples=49)]))
+    sc = sp.Scenario(ArmsEndpoints(n=8, arms=2), Multiple(tests=[sp.TTest(), PerReplicatePermutation(n_resamples=49)]))
     res = sp.run(sc, reps=30, seed=1, n_jobs=1)
     assert res.paths["multiple"] == "per-replicate"
     assert res.records["multiple"].hypotheses == ["t_test", "permutation_test"]
