@@ -273,6 +273,22 @@ def _mmrm(a, f: RepeatedFacts, alpha):
                                alternative=a.alternative, ratio=f.ratio)
 
 
+def _group_sequential(a, f: NormalFacts, alpha):
+    """A z-test at group-sequential looks (z scale, the inner test's known SDs are the process's): the design's
+    rejection probability under drift = theta / SE(final look) (Jennison & Turnbull 2000, ch. 19)."""
+    inner = a.inner
+    if getattr(inner, "name", None) != "z_test" or a.scale != "z" or f.design != "two-sample":
+        return None
+    sd1 = inner.sd if inner.sd1 is None else inner.sd1
+    if f.sd0 is None or not (math.isclose(f.sd0, inner.sd) and math.isclose(f.sd1, sd1)):
+        return None
+    se = math.sqrt(inner.sd**2 / f.n + sd1**2 / (f.n * f.ratio))
+    drift = (f.effect - inner.null_mean) / se
+    if inner.alternative == "less":
+        drift = -drift
+    return analytic.crossing_probabilities(a.design(), drift).rejection
+
+
 def _pooled(a) -> bool:
     return bool(a.equal_var)  # the Welch variant's closed form is an approximation
 
@@ -317,6 +333,11 @@ _ENTRIES = (
     # t(clusters - 2) reference; the Wald test's level and power differ with few clusters)
     ClosedForm("sw_mixed", SteppedFacts, _stepped_wedge, False,
                "GLS variance with known variance components (Hussey & Hughes 2007; Hooper et al. 2016)"),
+    # not exact: look k analyses round(t_k n) per arm, so the information fractions differ slightly from the
+    # planned ones unless every t_k n is whole
+    ClosedForm("group_sequential", NormalFacts, _group_sequential, False,
+               "exit probabilities by recursive integration at the planned fractions (Armitage, McPherson & Rowe "
+               "1969; Jennison & Turnbull 2000, ch. 19)"),
     ClosedForm("mmrm", RepeatedFacts, _mmrm, False,
                "normal approximation with the MMRM variance inflation under monotone dropout (Lu, Luo & Chen 2008)"),
 )

@@ -308,7 +308,24 @@ def _cases():
     out.append(Case("mmrm", build("analysis", {"type": "mmrm"}), p, ("mmrm", RepeatedFacts),
                     lambda f, al: analytic.mmrm_power(0.8, 50, cov=cov_m, retention=ret, alpha=al),
                     lambda: z_power(0.8 / se_m, ALPHA, "two-sided"), tol=1e-9))
+    # a z-test at two looks (t = 0.5, 1) with O'Brien-Fleming-type spending: the rejection probability by
+    # scipy's bivariate normal cdf, corr sqrt(t1/t2), means drift sqrt(t_k) (Jennison & Turnbull 2000, ch. 19)
+    gs_an = build("analysis", {"type": "group_sequential", "inner": {"type": "z_test", "alternative": "greater"},
+                               "fractions": [0.5, 1.0]})
+    p = sp.NormalTwoArm(n=40, effect=0.5)
+    out.append(Case("group_sequential z", gs_an, p, ("group_sequential", NormalFacts),
+                    lambda f, al: analytic.crossing_probabilities(gs_an.design(), 0.5 / math.sqrt(2 / 40)).rejection,
+                    lambda: _two_look_rejection(gs_an.design().efficacy, 0.5 / math.sqrt(2 / 40)), tol=1e-5))
     return out
+
+
+def _two_look_rejection(bounds, drift):
+    from scipy.stats import multivariate_normal
+
+    r = math.sqrt(0.5)
+    mean = [drift * math.sqrt(0.5), drift]
+    stay = multivariate_normal(mean=mean, cov=[[1, r], [r, 1]], abseps=1e-10, releps=1e-10).cdf(list(bounds))
+    return 1.0 - stay
 
 
 def _beta_rule_direct(p0, p1, n, eta):
