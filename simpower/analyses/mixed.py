@@ -75,7 +75,7 @@ from .._validation import Anything, Choice
 from ..errors import ParameterError
 from ..formula import FormulaText, parse_formula, require_columns
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
-from .numeric import p_and_crit
+from .numeric import wald_fields
 
 DF_METHODS = ("wald", "between-within", "satterthwaite")
 
@@ -777,10 +777,7 @@ class MixedModel(Analysis):
         return self._result(np.asarray(est), np.asarray(se), df, scalar=True)
 
     def _result(self, est, se, df, scalar=False):
-        with np.errstate(all="ignore"):
-            z = est / se
-            p, crit = p_and_crit(z, df, self.alternative, self.ci_level)
-        out = {"pvalue": p, "estimate": est, "se": se, "ci_low": est - crit * se, "ci_high": est + crit * se}
+        out, z = wald_fields(est, se, df, self.alternative, self.ci_level)
         if scalar:
             return TestResult(**{k: float(v) for k, v in out.items()}, statistic=float(z),
                               df=math.inf if df is None else float(df))

@@ -55,6 +55,15 @@ def p_and_crit(stat, df, alternative: str, ci_level: float):
     return p_from_t(stat, df, alternative), stats.t.ppf(0.5 + ci_level / 2, df)
 
 
+def wald_fields(est, se, df, alternative: str, ci_level: float) -> tuple[dict, object]:
+    """(fields, statistic) of the Wald test of ``est = 0`` with a normal (``df`` None) or t reference: the
+    ``pvalue``, ``estimate``, ``se``, ``ci_low``, ``ci_high`` of a batch result (scalars or arrays)."""
+    with np.errstate(all="ignore"):
+        stat = est / se
+        p, crit = p_and_crit(stat, df, alternative, ci_level)
+    return {"pvalue": p, "estimate": est, "se": se, "ci_low": est - crit * se, "ci_high": est + crit * se}, stat
+
+
 def two_sample_se_df(n0, n1, v0, v1, equal_var: bool):
     """SE of the difference in arm means and its df, from arm sizes and variances (scalars or arrays).
 

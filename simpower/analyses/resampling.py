@@ -81,6 +81,16 @@ def _layout(data):
 _LOCATION = {"mean": np.mean, "median": np.median}
 
 
+def _two_arm_supported(layout) -> bool:
+    """Two independent arms (paired data take the per-replicate path, which analyses differences)."""
+    return "pair" not in layout
+
+
+#: the batch layouts of the resampling tests: two independent arms (any missing outcomes or padding);
+#: pairs run per replicate
+_TWO_ARMS = (("two_arm",), staticmethod(_two_arm_supported))
+
+
 class PermutationTest(Analysis):
     """Permutation test of a difference in location (``scipy.stats.permutation_test``).
 
@@ -138,11 +148,7 @@ class PermutationTest(Analysis):
         return TestResult(pvalue=float(r.pvalue), estimate=float(r.statistic) + self.null_value,
                           statistic=float(r.statistic))
 
-    layouts = ("two_arm",)
-
-    def _supports(self, layout):
-        """Two independent arms (any missing outcomes or padding); pairs run per replicate."""
-        return _two_arm_supported(layout)
+    layouts, _supports = _TWO_ARMS
 
     def batch(self, batch):
         """Every replicate's scipy permutation test, with its own draws, the statistics as arrays."""
@@ -272,11 +278,7 @@ class BootstrapCI(Analysis):
             return float(v > 0)
         return float(special.ndtr(v / denom - z0))
 
-    layouts = ("two_arm",)
-
-    def _supports(self, layout):
-        """Two independent arms (any missing outcomes or padding); pairs run per replicate."""
-        return _two_arm_supported(layout)
+    layouts, _supports = _TWO_ARMS
 
     def batch(self, batch):
         """Every replicate's scipy bootstrap, with its own draws, the statistics and intervals as arrays."""
@@ -438,11 +440,6 @@ def _blocks(count, per_row):
     """Slices of ``range(count)`` holding about ``_BLOCK_VALUES / per_row`` rows each."""
     step = max(1, _BLOCK_VALUES // max(1, per_row))
     return [slice(i, min(count, i + step)) for i in range(0, count, step)]
-
-
-def _two_arm_supported(layout) -> bool:
-    """Two independent arms (paired data take the per-replicate path, which analyses differences)."""
-    return "pair" not in layout
 
 
 def _fisher_yates(words, x, out):

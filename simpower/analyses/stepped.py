@@ -55,7 +55,7 @@ import numpy as np
 
 from .._validation import Choice
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
-from .numeric import p_and_crit
+from .numeric import wald_fields
 
 #: statsmodels' warning at a small variance estimate: a boundary fit is an answer, not fit trouble
 BOUNDARY_WARNING = r".*on the boundary of the parameter space"
@@ -418,10 +418,7 @@ class SteppedMixed(Analysis):
         return self._result(np.asarray(est), np.asarray(se), df, scalar=True)
 
     def _result(self, est, se, df, scalar=False):
-        with np.errstate(all="ignore"):
-            stat = est / se
-            p, crit = p_and_crit(stat, df, self.alternative, self.ci_level)
-        out = {"pvalue": p, "estimate": est, "se": se, "ci_low": est - crit * se, "ci_high": est + crit * se}
+        out, stat = wald_fields(est, se, df, self.alternative, self.ci_level)
         if scalar:
             return TestResult(**{k: float(v) for k, v in out.items()}, statistic=float(stat),
                               df=math.inf if df is None else float(df))
