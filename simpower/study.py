@@ -58,7 +58,7 @@ DEFAULT_REPS = 2000
 #: replicates of the type I error check by default
 DEFAULT_NULL_REPS = 10_000
 #: the parts of a plan that run, in the order they run (each may have its own run store)
-PARTS = ("search", "sweep", "run", "null_check")
+PARTS = ("search", "sweep", "run", "null_check", "assurance")
 
 
 @dataclass(frozen=True)
@@ -316,7 +316,7 @@ def execute(plan: StudyPlan, echo=None) -> PlanResult:
     if plan.assurance is not None:
         from .planning.assurance import run_block
 
-        out.assurance = run_block(plan.scenario, plan.assurance, ex)
+        out.assurance = run_block(plan.scenario, plan.assurance, ex.replace(store=plan.stores.get("assurance")))
         out.settings["assurance"] = {k: v for k, v in plan.assurance.items() if k != "prior"}
         say(out.assurance.summary())
     if plan.search is None and plan.sweep is None and plan.assurance is None:

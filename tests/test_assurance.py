@@ -153,3 +153,18 @@ def test_the_assurance_figure_marks_the_assurance_and_the_ceiling(tmp_path):
     assert xs == sorted([res.assurance, res.ceiling])
     assert sum(p.get_height() for p in ax.patches) == 60  # every draw in the histogram
     assert (tmp_path / "a.png").exists()
+
+
+def test_the_assurance_command_keeps_its_trials_in_a_store(tmp_path, capsys):
+    from simpower.cli.main import main
+
+    store = tmp_path / "a.sqlite"
+    argv = ["assurance", str(BUNDLED), "--draws", "30", "--reps-per-draw", "4", "--jobs", "1", "-q",
+            "--store", str(store)]
+    assert main(argv) == 0
+    first = capsys.readouterr().out.splitlines()[0]
+    assert store.exists()
+    assert main(argv) == 0  # the second run reads the finished trials back: the same numbers
+    assert capsys.readouterr().out.splitlines()[0] == first
+    assert main(["assurance", str(BUNDLED), "--reps", "5", "-q"]) == 2
+    assert "--reps-per-draw" in capsys.readouterr().err

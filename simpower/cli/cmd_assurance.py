@@ -17,7 +17,7 @@ favourable effect and the spread of the conditional power over the prior; with
 from __future__ import annotations
 
 from ..errors import ParameterError
-from .common import add_run_options, execution_of, load_scenario
+from .common import add_run_options, execution_of, load_scenario, store_of
 from .steps import seed_of
 
 
@@ -61,14 +61,22 @@ def main(args) -> int:
     from ..textout import CAUTION
     from .steps import announce
 
+    if args.reps is not None:
+        raise ParameterError("`--reps` does not apply to assurance: give --draws (prior draws) and --reps-per-draw "
+                             "(simulated trials at each).")
     sf = load_scenario(args)
     seed = seed_of(sf, args)
     block = block_of(sf, args)
-    plan = StudyPlan(scenario=sf.scenario, execution=execution_of(sf, args).replace(seed=seed), assurance=block,
-                     path=sf.path)
+    from ..components import fingerprint
+
+    store = store_of(args, fingerprint([sf.scenario.fingerprint(), "assurance"]), sf)
+    ex = execution_of(sf, args).replace(seed=seed)
+    plan = StudyPlan(scenario=sf.scenario, execution=ex, assurance=block, stores={"assurance": store}, path=sf.path)
     announce(plan, "assurance", args)
     res = execute(plan).assurance
     print(res.summary())
+    if store:
+        print(f"\nRun store: {store} (run the same command again to reuse its finished trials)")
     if args.csv:
         (res.table if hasattr(res, "table") else res.draws).to_csv(args.csv, index=False)
         print(f"CSV written to {args.csv}")

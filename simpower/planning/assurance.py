@@ -294,6 +294,8 @@ def _check(scenario, prior, draws, reps_per_draw, favourable, analysis):
 
 
 def _evaluate(scenario, prior, params, analysis, reps_per_draw, ex: Execution, favourable) -> pd.DataFrame:
+    # each draw's records are needed (the side of each rejection), and they are small: keep them
+    ex = ex.replace(keep_records=None)
     scs = [s.only(analysis) for s in _scenarios(scenario, params)]
     keys = [_draw_key(s, i) for i, s in enumerate(scs)]
     labels = {k: f"prior draw {i}" for i, k in enumerate(keys)}
