@@ -35,3 +35,15 @@ def cranky(data):
     d = y[data["arm"] == 1].mean() - y[data["arm"] == 0].mean()
     return {"pvalue": float(min(1.0, abs(d))), "estimate": float(d), "se": 0.4, "ci_low": d - 0.8,
             "ci_high": d + 0.8}
+
+
+def nct_power(ncp, df, alpha, alternative):
+    """Rejection probability of a t-test whose statistic is noncentral t(df, ncp) (Cohen 1988, ch. 2;
+    scipy.stats.nct): the independent reference of the closed-form checks."""
+    from scipy import stats
+
+    if alternative == "two-sided":
+        c = stats.t.ppf(1 - alpha / 2, df)
+        return stats.nct.sf(c, df, ncp) + stats.nct.cdf(-c, df, ncp)
+    c = stats.t.ppf(1 - alpha, df)
+    return stats.nct.sf(c, df, ncp) if alternative == "greater" else stats.nct.cdf(-c, df, ncp)

@@ -44,6 +44,7 @@ import pytest
 from scipy import integrate, stats
 
 import simpower as sp
+from _helpers import nct_power
 from simpower import analytic, crosscheck
 from simpower.facts import (FACT_TYPES, BinaryFacts, ClusterBinaryFacts, ClusterFacts, CrossoverFacts,
                             MultiArmFacts, NormalFacts, OrdinalFacts, RepeatedFacts, SteppedFacts, SurvivalFacts)
@@ -53,13 +54,6 @@ from simpower.registry import build
 
 
 # -- independent computations of the published formulas ------------------------------------
-def nct_power(ncp, df, alpha, alternative):
-    """Rejection probability of a t-test with noncentral t(df, ncp) statistic (Cohen 1988, ch. 2)."""
-    if alternative == "two-sided":
-        c = stats.t.ppf(1 - alpha / 2, df)
-        return stats.nct.sf(c, df, ncp) + stats.nct.cdf(-c, df, ncp)
-    c = stats.t.ppf(1 - alpha, df)
-    return stats.nct.sf(c, df, ncp) if alternative == "greater" else stats.nct.cdf(-c, df, ncp)
 
 
 def satterthwaite(n0, n1, sd0, sd1):

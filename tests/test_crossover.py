@@ -29,6 +29,7 @@ import pytest
 from scipy import integrate, stats
 
 import simpower as sp
+from _helpers import nct_power
 from simpower import analytic
 from simpower.analyses.crossover import CrossoverMixed, CrossoverT, CrossoverTOST, fit_crossover_batch, periods
 from simpower.errors import ParameterError
@@ -261,13 +262,6 @@ def test_mixed_uses_the_incomplete_subjects():
 
 
 # -- closed forms ------------------------------------------------------------------------------
-def nct_power(ncp, df, alpha, alternative):
-    """Cohen (1988), ch. 2: rejection probability of a noncentral t(df, ncp) statistic (scipy.stats.nct)."""
-    if alternative == "two-sided":
-        c = stats.t.ppf(1 - alpha / 2, df)
-        return stats.nct.sf(c, df, ncp) + stats.nct.cdf(-c, df, ncp)
-    c = stats.t.ppf(1 - alpha, df)
-    return stats.nct.sf(c, df, ncp) if alternative == "greater" else stats.nct.cdf(-c, df, ncp)
 
 
 @pytest.mark.parametrize("effect, n, sdw, ratio, alternative", [

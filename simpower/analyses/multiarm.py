@@ -56,6 +56,10 @@ def _sorted_blocks(layout):
     return sizes
 
 
+#: the batch layout of the multi-arm tests: a complete table whose shared arm labels are sorted blocks 0..K-1
+_ARMS_IN_BLOCKS = (("table",), staticmethod(lambda layout: _sorted_blocks(layout) is not None))
+
+
 def _block_stats(y, sizes):
     """Per-arm means (R, K) and the within-arm sum of squares (R,) of contiguous blocks."""
     edges = np.concatenate([[0], np.cumsum(sizes)])
@@ -118,10 +122,7 @@ class Dunnett(Analysis):
         return {"pvalue": primary, "pvalues": adj, "estimate": est, "se": se1, "ci_low": est - crit * se1,
                 "ci_high": est + crit * se1, "t": t}
 
-    layouts = ("table",)
-
-    def _supports(self, layout):
-        return _sorted_blocks(layout) is not None
+    layouts, _supports = _ARMS_IN_BLOCKS
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
@@ -164,10 +165,7 @@ class AnovaF(Analysis):
         return TestResult(pvalue=float(r.pvalue), statistic=float(r.statistic),
                           df=float(sum(g.size for g in groups) - len(groups)))
 
-    layouts = ("table",)
-
-    def _supports(self, layout):
-        return _sorted_blocks(layout) is not None
+    layouts, _supports = _ARMS_IN_BLOCKS
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
