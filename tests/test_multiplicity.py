@@ -178,3 +178,23 @@ def test_missing_endpoint_or_arm_is_an_error_per_replicate():
         a({"y": np.arange(6.0), "arm": np.repeat([0, 1], 3)})
     with pytest.raises(ValueError, match="arm"):
         Multiple(tests=[sp.TTest()], comparisons="each_vs_control")({"y": np.arange(6.0)})
+
+
+def test_time_to_event_components_without_endpoints():
+    """With no ``endpoints`` the data go through as they are, so survival analyses (``time``, ``event``, no ``y``)
+    can be wrapped. Bonferroni's adjusted p-value is min(1, k p) (Bonferroni; statsmodels' multipletests agrees),
+    and the batch path equals the per-replicate one."""
+    proc = build("process", {"type": "survival_two_arm", "n": 40, "median": 12, "hazard_ratio": 0.6,
+                             "accrual": 12, "follow_up": 12})
+    b = proc.draw_batch(np.random.default_rng(5), 20)
+    assert "y" not in b.per_rep
+    a = Multiple(tests=[{"type": "logrank"}, {"type": "cox"}], method="bonferroni")
+    assert a.supports_batch(b)
+    out = a.batch(b)
+    per = [a(b.replicate(i)) for i in range(b.size)]
+    lr = build("analysis", {"type": "logrank"})
+    cx = build("analysis", {"type": "cox"})
+    raw = np.array([[lr(b.replicate(i)).pvalue, cx(b.replicate(i)).pvalue] for i in range(b.size)])
+    np.testing.assert_allclose([r.pvalues for r in per], np.minimum(2 * raw, 1.0), rtol=1e-9)
+    np.testing.assert_allclose(out["pvalues"], [r.pvalues for r in per], rtol=1e-8, atol=1e-12)
+    assert list(out["names"]) == ["logrank", "cox"]

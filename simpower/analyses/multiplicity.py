@@ -3,7 +3,9 @@
 :class:`Multiple` runs component analyses over every combination of
 
 * ``tests``: analyses (objects or ``{type = ...}`` tables),
-* ``endpoints``: outcome columns (each becomes ``y`` for the component),
+* ``endpoints``: outcome columns (each becomes ``y`` for the component; by
+  default the data go to the components as they are, so a time-to-event
+  table with ``time`` and ``event`` and no ``y`` can be wrapped too),
 * ``comparisons``: the data as given, each arm against the control (arm 0), or
   all pairs of arms (each pair relabelled 0/1 for the component),
 
@@ -138,11 +140,12 @@ def _arm_pairs(levels, comparisons):
 
 
 def _subset(table: dict, endpoint: str, pair):
-    """Component input: ``endpoint`` as ``y``, and only arms ``pair`` relabelled 0/1."""
-    if endpoint not in table:
+    """Component input: ``endpoint`` as ``y`` (None: the data as they are), and only arms ``pair`` relabelled 0/1."""
+    if endpoint is not None and endpoint not in table:
         raise ValueError(f"endpoint column {endpoint!r} not in the data (columns: {sorted(table)})")
     out = dict(table)
-    out["y"] = table[endpoint]
+    if endpoint is not None:
+        out["y"] = table[endpoint]
     if pair is None:
         return out
     arm = np.asarray(table["arm"])
@@ -167,7 +170,8 @@ class Multiple(Analysis):
         functions ``data -> p-value | result``).
     endpoints : list of str, optional
         Outcome columns to test; each is passed to the components as ``y``.
-        Default: ``["y"]``.
+        Default: the data as they are (the components read ``y``, or
+        ``time`` and ``event`` for a survival analysis).
     comparisons : {'single', 'each_vs_control', 'all_pairs'}, default 'single'
         'single' passes the data unchanged; 'each_vs_control' tests each arm
         1, 2, ... against arm 0; 'all_pairs' every pair of arms (i < j, arm j
@@ -195,7 +199,8 @@ class Multiple(Analysis):
     # -- plan ------------------------------------------------------------
     @property
     def _endpoints(self):
-        return self.endpoints or ["y"]
+        """The endpoint columns; ``[None]`` (the data as they are) when none is given."""
+        return self.endpoints or [None]
 
     def _labels(self):
         names = [t.name or getattr(t, "label", "analysis") for t in self.tests]
@@ -243,7 +248,7 @@ class Multiple(Analysis):
         if self.comparisons != "single" and "arm" not in batch.shared:
             return None
         for e in self._endpoints:
-            if e not in batch.per_rep:
+            if e is not None and e not in batch.per_rep:
                 return None
         arm = batch.shared.get("arm")
         plan = self._plan(self._levels(arm) if self.comparisons != "single" else [])
@@ -275,9 +280,10 @@ class Multiple(Analysis):
 
 
 def _sub_batch(batch, endpoint, pair):
-    """A batch of the same type with ``endpoint`` as ``y`` and only arms ``pair`` (relabelled 0/1)."""
+    """A batch of the same type with ``endpoint`` as ``y`` (None: as it is) and only arms ``pair`` (relabelled 0/1)."""
     per_rep = dict(batch.per_rep)
-    per_rep["y"] = batch.per_rep[endpoint]
+    if endpoint is not None:
+        per_rep["y"] = batch.per_rep[endpoint]
     shared = dict(batch.shared)
     info = dict(batch.info)
     if pair is not None:
