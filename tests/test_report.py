@@ -213,3 +213,30 @@ def test_a_plain_run_report_has_a_figure_and_the_estimate_performance(tmp_path):
 
     ticks, names = ax.get_yticks(), [t.get_text() for t in ax.get_yticklabels()]
     assert names[int(np.argmax(ticks))] == "t_test"  # the primary analysis on top
+
+
+def test_a_pilot_run_report_shows_the_pilot_and_its_cautions(tmp_path):
+    # the pilot's summary in the report: the SD of the pooled (centred) pilot, Browne's (1995) upper 80% limit
+    # sd * sqrt((m - 1) / chi2_{0.2, m-1}) computed here with scipy, the power at both SDs from the noncentral t
+    # (tests/_helpers.nct_power), and Teare et al.'s (2014) caution for fewer than 35 units per arm
+    import numpy as np
+    from scipy import stats
+
+    from simpower.report import make_report
+    from _helpers import nct_power
+
+    rng = np.random.default_rng(8)
+    y = np.round(rng.normal(50, 10, 24), 1)
+    arm = np.repeat([0, 1], 12)
+    proc = sp.PilotResample(values=y.tolist(), arm_values=arm.tolist(), n=40, effect=6.0)
+    sc = sp.Scenario(proc, analyses=[sp.TTest()])
+    res = sp.run(sc, reps=100, seed=2, n_jobs=1, progress=False)
+    md = make_report(sc, tmp_path, seed=2, run=res, formats=("md",))["md"].read_text()
+    pooled = np.concatenate([y[arm == k] - y[arm == k].mean() for k in (0, 1)]) + y.mean()
+    sd = pooled.std(ddof=1)
+    upper = sd * np.sqrt(23 / stats.chi2.ppf(0.2, 23))
+    assert "## Pilot data" in md
+    assert f"| SD | {sd:.4g} |" in md
+    assert f"| Upper 80% confidence limit of the SD (Browne 1995) | {upper:.4g} |" in md
+    assert f"at the SD's upper 80% confidence limit: {nct_power(6.0 / upper * np.sqrt(20), 78, 0.05, 'two-sided'):.3f}" in md
+    assert "12 pilot units per arm is fewer than 35" in md

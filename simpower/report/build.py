@@ -116,6 +116,36 @@ def _looks(doc: Document, run, out: Path) -> None:
         doc.figure(png, svg, literal(f"Boundaries and the share of replicates stopping at each look ({name})"))
 
 
+_PILOT_LABELS = {"units": "Pilot units", "units_per_arm": "Units per arm (control, treatment)", "mean": "Mean",
+                 "sd": "SD", "sd_upper_80": "Upper 80% confidence limit of the SD (Browne 1995)"}
+
+
+def _pilot(doc: Document, scenario) -> None:
+    """The pilot data's summary, when the process resamples a pilot: its size, mean and SD, Browne's upper
+    limit of the SD, the power at both SDs (shift effects), and the small-pilot caution."""
+    process = scenario.process
+    summary = getattr(process, "pilot_summary", None)
+    if not callable(summary):
+        return
+    s = summary()
+    rows = [{"Quantity": _PILOT_LABELS.get(k, k.replace("_", " ")),
+             "Value": ", ".join(str(x) for x in v) if isinstance(v, (list, tuple)) else v}
+            for k, v in s.items() if k != "small"]
+    doc.heading("Pilot data")
+    doc.table(pd.DataFrame(rows), literal("The pilot the trials are resampled from (SD and mean of the pool the "
+                                          "control arm is drawn from)"))
+    at_upper = getattr(process, "power_at_upper_sd", None)
+    powers = at_upper(scenario.alpha) if callable(at_upper) else None
+    if powers is not None:
+        doc.para(literal(f"Normal-theory t-test power at the pilot SD: {powers[0]:.3f}; at the SD's upper 80% "
+                         f"confidence limit: {powers[1]:.3f}. A true SD that large would cost that much power "
+                         f"(Browne 1995)."))
+    if s.get("small"):
+        per_arm = s.get("units_per_arm") or [s.get("units")]
+        doc.para(literal(f"Caution: {min(per_arm)} pilot units per arm is fewer than 35, too few to estimate an "
+                         f"SD well (Teare et al. 2014); the simulated power inherits the pilot's uncertainty."))
+
+
 def _estimate_performance(run) -> pd.DataFrame | None:
     """Bias, empirical SE, model SE and coverage per analysis with a known true effect (None: none has one)."""
     t = run.summary()
@@ -169,6 +199,7 @@ def planning_document(scenario, *, title: str = "", outdir, manifest: dict[str, 
     doc.bullets(_describe(at))
     doc.table(_plain_params(at), literal(f"Every parameter of the scenario {where}")
               + (" (a sweep varies the grid's parameters)" if sweep is not None else ""))
+    _pilot(doc, at)
     paths: dict[str, str] = {}
 
     if search is not None:
