@@ -306,7 +306,7 @@ class PilotUnits(Process):
             np.maximum.at(hi, unit, a)
             mixed = np.flatnonzero(lo != hi)
             if mixed.size:
-                raise ParameterError(f"unit {labels[mixed[0]]!r} of the `unit` column has rows in both arms "
+                raise ParameterError(f"unit {str(labels[mixed[0]])!r} of the `unit` column has rows in both arms "
                                      f"({mixed.size} unit(s) mixed); every cluster or participant must lie in one arm.")
             unit_arm = hi
         else:
@@ -487,7 +487,7 @@ class PilotUnits(Process):
         flat = unit * k + vis
         if np.unique(flat).size != flat.size:
             dup = np.flatnonzero(np.bincount(flat, minlength=units * k) > 1)[0]
-            raise ParameterError(f"participant {labels[dup // k]!r} has two rows at visit "
+            raise ParameterError(f"participant {str(labels[dup // k])!r} has two rows at visit "
                                  f"{_plain(vlabels[dup % k])!r}; give one row per participant and visit.")
         grid = np.full((units, k), np.nan)
         grid[unit, vis] = y
@@ -500,7 +500,7 @@ class PilotUnits(Process):
             bad = np.flatnonzero(lo != hi)
             if bad.size:
                 raise ParameterError(f"the `baseline` column differs between the rows of participant "
-                                     f"{labels[bad[0]]!r}; give one baseline value per participant.")
+                                     f"{str(labels[bad[0]])!r}; give one baseline value per participant.")
             base = lo
         if self.effect_from is not None:
             if not np.any(vlabels == self.effect_from):
