@@ -377,6 +377,11 @@ def test_bad_pilots_are_one_line_errors(frame, kw, match):
     assert "\n" not in str(err.value)
 
 
+def test_pilot_resample_with_a_unit_points_to_pilot_units():
+    with pytest.raises(sp.ParameterError, match="use type = \"pilot_units\""):
+        build("process", {"type": "pilot_resample", "n": 10, "values": [1.0, 2.0, 3.0], "unit": "clinic"})
+
+
 def test_bad_files_are_one_line_errors_on_the_command_line(tmp_path, capsys):
     from simpower.cli.main import main
 
