@@ -294,6 +294,19 @@ def test_the_process_passes_the_conformance_kit(kind):
     check_process(_process(kind))
 
 
+@pytest.mark.parametrize("kind", ["clusters", "visits"])
+def test_a_worker_copy_draws_the_same_numbers(kind):
+    # workers get the process pickled (parameters only); the pools are rebuilt from the pilot on first use
+    import cloudpickle
+
+    proc = _process(kind)
+    copy = cloudpickle.loads(cloudpickle.dumps(proc))
+    assert "_pilot_state" not in copy.__dict__
+    a, b = proc.draw_batch(np.random.default_rng(4), 5), copy.draw_batch(np.random.default_rng(4), 5)
+    np.testing.assert_array_equal(a.per_rep["y"], b.per_rep["y"])
+    assert copy.true_effect() == proc.true_effect() and copy.describe() == proc.describe()
+
+
 def test_runs_take_the_batch_paths_and_the_search_varies_the_clusters():
     proc = _process("clusters")
     res = sp.run(sp.Scenario(proc, analyses=[sp.ClusterMeansT(), build("analysis", {"type": "gee"})]), reps=400, seed=1,
