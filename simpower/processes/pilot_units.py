@@ -522,7 +522,7 @@ class PilotUnits(Process):
             seen = np.isfinite(g)
             count = seen.sum(axis=0)
             if np.any(count == 0):
-                gap = self.__dict__["_pilot_state"]["visits_missing"] = _plain(vlabels[np.flatnonzero(count == 0)[0]])
+                gap = _plain(vlabels[np.flatnonzero(count == 0)[0]])
                 raise ParameterError(f"no {label}-arm participant of the pilot has an outcome at visit {gap!r}; "
                                      f"drop that visit from the pilot or use `arms` = 'pool'.")
             mean = np.where(seen, g, 0.0).sum(axis=0) / count
