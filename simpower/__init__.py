@@ -36,6 +36,7 @@ from .processes.normal import NormalOneSample, NormalPaired, NormalTwoArm
 from .processes.outcomes import (ContaminatedNormal, Fleishman, Gamma, Lognormal, Normal, ScipyOutcome,
                                  SkewNormal, StudentT)
 from .processes.pilot import PilotResample
+from .processes.pilot_units import PilotUnits
 from .processes.repeated import RepeatedMeasures
 from .processes.survival import SurvivalTwoArm
 from .result import Records, RunResult
@@ -73,7 +74,7 @@ __all__ = [
     "as_batch_result",
     # processes
     "NormalOneSample", "NormalPaired", "NormalTwoArm", "TwoArm", "MultiArm", "ClusterTrial", "RepeatedMeasures",
-    "BinaryTwoArm", "CountTwoArm", "SurvivalTwoArm", "PilotResample",
+    "BinaryTwoArm", "CountTwoArm", "SurvivalTwoArm", "PilotResample", "PilotUnits",
     # outcomes and missingness
     "Normal", "Lognormal", "Gamma", "SkewNormal", "Fleishman", "StudentT", "ContaminatedNormal", "ScipyOutcome",
     "MCAR", "MAR", "MNAR",

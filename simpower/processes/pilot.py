@@ -136,6 +136,13 @@ class PilotResample(TwoArms, Process):
                              "arms": "pool", "effect": 0.0, "effect_type": "shift", "spread": "none",
                              "missing": None})
 
+    def __init__(self, **kwargs):
+        if "unit" in kwargs:  # the whole-unit sibling: name it rather than the nearest parameter
+            raise ParameterError("`unit` is not a parameter of pilot_resample, which resamples single rows; to "
+                                 "resample whole clusters or participants use type = \"pilot_units\" "
+                                 "(docs/pilot-data.md).")
+        super().__init__(**kwargs)
+
     def _check(self):
         p = dict(self._p)
         if p["values"] is None:
