@@ -127,7 +127,7 @@ class GaussianOutcome(GLMOutcome):
         """The draws made before the design assigns the arms: the scores, and the cluster slopes."""
         e = rng.standard_normal((size, width))
         if design.name == "arms":
-            return {"y": e, "clustered": False}
+            return {"y": e, "clustered": False, "n0": design.n0}
         y = (self.sd * math.sqrt(1.0 - design.icc)) * e  # the within-cluster SD times the scores
         b_rows = None
         if design.randomise == "individual":
@@ -138,7 +138,7 @@ class GaussianOutcome(GLMOutcome):
     def draw(self, rng, lin, arm, u_rows, size, width, early=None):
         y = early["y"]
         if not early["clustered"]:
-            return self._two_arms(y, arm), {}, {}, {}
+            return self._two_arms(y, early["n0"]), {}, {}, {}
         if u_rows is not None:
             y += lin.sigma * u_rows
         if self.mean0:
@@ -149,11 +149,8 @@ class GaussianOutcome(GLMOutcome):
             y += arm * early["b_rows"]
         return y, {}, {}, {}
 
-    def _two_arms(self, y, arm):
-        """Independent arms (control rows first, as the arms design lays them out): each arm's SD, then its mean."""
-        n0 = int(np.count_nonzero(arm == 0))
-        if not (arm.ndim == 1 and np.all(arm[:n0] == 0) and np.all(arm[n0:] == 1)):
-            raise ValueError("the gaussian layer expects the arms design's layout: control rows first")
+    def _two_arms(self, y, n0):
+        """Independent arms, control rows ``[0, n0)`` first (the arms design's layout): each arm's SD, then its mean."""
         sd1 = self.sd * self.sd_ratio
         if self.sd != 1:
             y[:, :n0] *= self.sd
