@@ -15,7 +15,8 @@ Designs (kind ``design``):
   (:class:`~simpower.processes.design.TwoArms`: ``n`` with ``ratio`` or
   ``n1``; ``sizes``, ``allocation``). Outcomes are independent draws of
   ``outcome``: ``trial`` with ``arms`` draws exactly what ``two_arm`` draws
-  with the same fields (without ``baseline_corr``), replicate for replicate.
+  with the same fields, replicate for replicate; ``baseline_corr`` adds
+  ``two_arm``'s baseline covariate (a Gaussian copula with the outcome).
 * ``clusters``: ``clusters`` per arm of mean size ``cluster_size`` (sizes
   vary with ``cluster_size_cv``, see :func:`~simpower.processes.clusters.size_law`),
   randomised by cluster or individually within clusters. Outcomes share a
@@ -39,6 +40,10 @@ log link), which carries its own effect (``outcome.odds_ratio``,
 on the link scale, eta = beta0 + beta1 arm + sigma_b u_c, with sigma_b from the
 design's ``icc`` on the layer's ``icc_scale``; under ``arms`` the layer draws
 exactly what ``binary_two_arm`` / ``count_two_arm`` draw with the same fields.
+The ``gaussian`` layer (:mod:`simpower.processes.gaussian_outcome`, identity
+link) draws what ``normal_two_arm`` (arms) and ``cluster_trial`` (clusters)
+draw. Those older names are factories over this process
+(:mod:`simpower.processes.factories`).
 """
 
 from __future__ import annotations
@@ -229,7 +234,8 @@ class Trial(Process):
         (left at their defaults with a layer).
     missing : missingness, optional
         Applied once after the outcomes; a MAR mechanism may use the design's
-        columns (``arm``; ``cluster`` for clusters; ``exposure`` for counts).
+        columns (``arm``; ``cluster`` for clusters; ``baseline`` with
+        ``design.baseline_corr``; ``exposure`` for counts).
 
     Notes
     -----
