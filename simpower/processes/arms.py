@@ -26,153 +26,22 @@ import math
 import numbers
 
 import numpy as np
-from numpy.polynomial.hermite_e import hermegauss
-from scipy import optimize
 
-from .._validation import Anything, Choice, Int, Real
+from .._validation import Anything, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
-from ..facts import MultiArmFacts, NormalFacts
-from .base import Batch, Process, check_missing_columns
+from ..facts import MultiArmFacts
+from .base import Batch, Process
+from .composed import Arms
 from .design import TwoArms, Vocabulary, apply_missing, arm_defaults, arm_params
+from .effects import (  # noqa: F401 - the effect layer's helpers, importable from here as before
+    CORR, EFFECT_TYPE, POSITIVE, _check_missing, _check_outcome_for, _describe_effect, _effect_values,
+    _outcome_rules, copula_correlation, copula_series, latent_correlation)
+from .factories import TrialFactory
 from .outcomes import Described, Normal
 
-POSITIVE = Real(0.0, low_open=True)
-EFFECT_TYPE = Choice(("shift", "ratio", "d"))
-CORR = Real(-1.0, 1.0, low_open=True, high_open=True, optional=True)
 
-_NODES, _TERMS = 120, 60
-
-
-# -- the baseline covariate: a Gaussian copula with a calibrated latent correlation ---------
-
-def copula_series(outcome) -> tuple[np.ndarray, float]:
-    """Hermite coefficients of the outcome's normal-scores transform g(z) = F^{-1}(Phi(z)).
-
-    Returns (c, v): with Z1, Z2 standard bivariate normal with correlation r,
-    Cov(g(Z1), g(Z2)) = sum_k c[k-1] r^k (Mehler's formula; c_k = E[g(Z) He_k(Z)]^2 / k!)
-    and v = Var g(Z). Computed by Gauss-Hermite quadrature on 120 nodes, 60 terms.
-    """
-    x, w = hermegauss(_NODES)
-    w = w / w.sum()
-    g = np.asarray(outcome.from_normal(x), dtype=float)
-    bad = ~np.isfinite(g)
-    if bad.any():  # quantiles that overflow far out in the tails, where the weights are negligible
-        if np.any(w[bad] > 1e-30):
-            return np.full(_TERMS, np.nan), math.nan
-        g, w = np.where(bad, 0.0, g), np.where(bad, 0.0, w)
-        w = w / w.sum()
-    m = w @ g
-    v = float(w @ (g - m) ** 2)
-    h_prev, h = np.ones_like(x), x.copy()
-    c = np.empty(_TERMS)
-    for k in range(1, _TERMS + 1):
-        c[k - 1] = (w @ (g * h)) ** 2
-        h_prev, h = h, (x * h - math.sqrt(k) * h_prev) / math.sqrt(k + 1)
-    return c, v
-
-
-def copula_correlation(outcome, latent: float) -> float:
-    """Pearson correlation of g(Z1) and g(Z2) when Z1, Z2 are normal with correlation ``latent``."""
-    c, v = copula_series(outcome)
-    k = np.arange(1, c.size + 1)
-    return float(np.sum(c * latent**k) / v)
-
-
-def latent_correlation(outcome, rho: float, field: str = "baseline_corr") -> float:
-    """The normal-scores correlation that gives Pearson correlation ``rho`` between baseline and outcome.
-
-    Exact (= ``rho``) for a normal outcome; otherwise the root of the Mehler
-    series (:func:`copula_series`) in [-1, 1]. A ``rho`` outside the reachable
-    range [corr at -1, corr at +1] is a ParameterError naming ``field``.
-    """
-    if rho == 0:
-        return 0.0
-    if isinstance(outcome, Normal):
-        return rho
-    if not hasattr(outcome, "from_normal"):
-        raise ParameterError(f"`{field}` needs an outcome with a quantile function (from_normal); "
-                             f"{type(outcome).__name__} has none.")
-    try:
-        sd = float(outcome.sd)
-    except ParameterError as exc:
-        raise ParameterError(f"`{field}` needs an outcome with a finite SD: {exc}") from None
-    if not math.isfinite(sd):
-        raise ParameterError(f"`{field}` needs an outcome with a finite SD.")
-    c, v = copula_series(outcome)
-    if not (np.all(np.isfinite(c)) and math.isfinite(v) and v > 0):
-        raise ParameterError(f"`{field}` cannot be set for this outcome: its quantiles or SD are not finite "
-                             "(a baseline correlation needs a finite SD).")
-    k = np.arange(1, c.size + 1)
-
-    def pearson(r):
-        return float(np.sum(c * r**k) / v)
-
-    low, high = pearson(-1.0), pearson(1.0)
-    if not (low < rho < high) and not math.isclose(rho, high, abs_tol=1e-9):
-        raise ParameterError(f"`{field}` = {rho:g} cannot be reached with this outcome through a Gaussian copula; "
-                             f"the reachable Pearson correlations are ({low:.3f}, {high:.3f}).")
-    if rho >= high:
-        return 1.0
-    return float(optimize.brentq(lambda r: pearson(r) - rho, -1.0, 1.0, xtol=1e-13))
-
-
-# -- shared pieces --------------------------------------------------------------------------
-
-def _effect_values(x, outcome, effect, effect_type, sd_factor):
-    """Apply an effect and an SD factor to draws ``x`` of ``outcome`` (one arm)."""
-    centre = outcome.center if hasattr(outcome, "center") else outcome.mean
-    if effect_type == "ratio":
-        y, m = x * effect, centre * effect
-    else:
-        shift = effect * outcome.sd if effect_type == "d" else effect
-        y, m = x + shift, centre + shift
-    if sd_factor != 1:
-        y = m + sd_factor * (y - m)
-    return y
-
-
-def _check_outcome_for(outcome, effect_type, needs_centre: bool):
-    """Cross-field checks between an outcome and the effect type / SD changes."""
-    try:
-        _outcome_rules(outcome, effect_type, needs_centre)
-    except ParameterError as exc:
-        msg = str(exc)
-        if msg.startswith("`") and not msg.startswith("`effect"):
-            msg = "`outcome." + msg[1:]
-        raise ParameterError(msg) from None
-
-
-def _outcome_rules(outcome, effect_type, needs_centre):
-    if effect_type == "ratio":
-        low = getattr(outcome, "lower_bound", -math.inf)
-        if not low >= 0:
-            raise ParameterError(
-                f"`effect_type` = 'ratio' needs an outcome that cannot be negative; {outcome.describe()} can "
-                f"(lower bound {low:g}): use 'shift' or 'd', or a positive outcome such as lognormal or gamma.")
-        if not outcome.mean > 0:
-            raise ParameterError(f"`effect_type` = 'ratio' needs an outcome with a positive mean; got {outcome.mean:g}.")
-    if effect_type == "d":
-        outcome.sd  # noqa: B018 - raises a ParameterError when the SD does not exist
-    if needs_centre:
-        outcome.center if hasattr(outcome, "center") else outcome.mean  # noqa: B018
-
-
-def _check_missing(missing, available, owner):
-    needs_baseline = "baseline" in getattr(missing, "requires", ()) and "baseline" not in available
-    hint = "; set `baseline_corr` to add a baseline column" if needs_baseline else ""
-    check_missing_columns(missing, available, owner, hint)
-
-
-def _describe_effect(effect, effect_type, outcome):
-    if effect_type == "shift":
-        return f"treatment adds {effect:g} to the outcome"
-    if effect_type == "d":
-        return f"treatment adds {effect:g} SD ({effect * outcome.sd:.4g}) to the outcome"
-    return f"treatment multiplies the outcome by {effect:g}"
-
-
-class TwoArm(TwoArms, Process):
+class TwoArm(TwoArms, TrialFactory):
     """Two independent arms with any outcome distribution, effect type, SDs, baseline and missingness.
 
     Parameters
@@ -217,6 +86,10 @@ class TwoArm(TwoArms, Process):
     estimate: ``effect`` for ``shift``, ``effect * sd`` for ``d``, and
     ``mean0 * (effect - 1)`` for ``ratio`` (the ratio itself is ``effect``).
     The null (``null()``) sets ``effect`` to 0, or to 1 for ``ratio``.
+
+    A factory over ``trial``: ``design = arms(n, ratio, n1, baseline_corr)``,
+    ``outcome``, ``effect``, ``effect_type``, ``sd_ratio``, ``missing`` (see
+    :attr:`trial`).
     """
 
     name = "two_arm"
@@ -226,60 +99,15 @@ class TwoArm(TwoArms, Process):
     defaults = arm_defaults({"ratio": 1.0, "outcome": Normal(), "effect": 0.0, "effect_type": "shift",
                              "sd_ratio": 1.0, "baseline_corr": None, "missing": None})
 
-    def __setstate__(self, state):
-        super().__setstate__(state)
-        self._check()
-
-    def _check(self):
-        self._check_arms()
-        if self.effect_type == "ratio" and not self.effect > 0:
-            raise ParameterError(f"`effect` must be > 0 when `effect_type` = 'ratio'; got {self.effect:g}.")
-        _check_outcome_for(self.outcome, self.effect_type, self.sd_ratio != 1)
-        available = {"arm"} | ({"baseline"} if self.baseline_corr is not None else set())
-        _check_missing(self.missing, available, self.name)
-        latent = None if self.baseline_corr is None else latent_correlation(self.outcome, self.baseline_corr)
-        object.__setattr__(self, "_latent", latent)
+    def layers(self):
+        return {"design": Arms(n=self.n, ratio=self.ratio, n1=self._p["n1"], baseline_corr=self.baseline_corr),
+                "outcome": self.outcome, "effect": self.effect, "effect_type": self.effect_type,
+                "sd_ratio": self.sd_ratio, "missing": self.missing}
 
     @property
     def latent_corr(self) -> float | None:
         """Correlation of the normal scores of baseline and outcome (None without a baseline)."""
-        return self._latent
-
-    def null_value(self):
-        return 1.0 if self.effect_type == "ratio" else 0.0
-
-    def draw_batch(self, rng, size):
-        n0, n1 = self.n, self.n1
-        shape = (size, n0 + n1)
-        per_rep = {}
-        if self._latent is None:
-            x = np.asarray(self.outcome.sample(rng, shape), dtype=float)
-        else:
-            z_base = rng.standard_normal(shape)
-            z = self._latent * z_base + math.sqrt(1.0 - self._latent**2) * rng.standard_normal(shape)
-            x = np.asarray(self.outcome.from_normal(z), dtype=float)
-            per_rep["baseline"] = np.asarray(self.outcome.from_normal(z_base), dtype=float)
-        x[:, n0:] = _effect_values(x[:, n0:], self.outcome, self.effect, self.effect_type, self.sd_ratio)
-        per_rep["y"] = x
-        arm = self.arm_labels()
-        info = self.arm_info()
-        covariates = {"arm": arm}
-        if "baseline" in per_rep:
-            covariates["baseline"] = per_rep["baseline"]
-        apply_missing(self.missing, rng, x, covariates, per_rep, info)
-        return Batch(size, per_rep, {"arm": arm}, info)
-
-    def estimand_aliases(self):
-        """Under a pure shift (no ratio effect, equal spread) the mean difference is also the location shift."""
-        pure_shift = self.effect_type in ("shift", "d") and self.sd_ratio == 1 and self.missing is None
-        return {"location shift"} if pure_shift else set()
-
-    def true_effect(self):
-        if self.effect_type == "shift":
-            return float(self.effect)
-        if self.effect_type == "d":
-            return float(self.effect * self.outcome.sd)
-        return float(self.outcome.mean * (self.effect - 1.0))
+        return self._trial.latent_corr
 
     def describe(self):
         parts = [f"two independent arms of {self.n0} (control) and {self.n1} (treatment)",
@@ -289,18 +117,11 @@ class TwoArm(TwoArms, Process):
             parts.append(f"treatment-arm deviations around its mean scaled by {self.sd_ratio:g}")
         if self.baseline_corr is not None:
             parts.append(f"a baseline covariate with the outcome's distribution, correlation {self.baseline_corr:g} "
-                         f"with the outcome (Gaussian copula, normal-scores correlation {self._latent:.3f})")
+                         f"with the outcome (Gaussian copula, normal-scores correlation {self.latent_corr:.3f})")
         if self.missing is not None:
             parts.append(self.missing.describe())
         parts.append(f"estimand: treatment minus control difference in mean outcome = {self.true_effect():.4g}")
         return "; ".join(parts)
-
-    def facts(self):
-        if not isinstance(self.outcome, Normal) or self.missing is not None or self.baseline_corr is not None:
-            return ()
-        sd0 = self.outcome.sd
-        return (NormalFacts("two-sample", effect=self.true_effect(), n=self.n, sd0=sd0, sd1=sd0 * self.sd_ratio,
-                            ratio=self.n1 / self.n),)
 
 
 def _numbers(field, value, k=None, positive=False):

@@ -15,7 +15,8 @@ Designs (kind ``design``):
   (:class:`~simpower.processes.design.TwoArms`: ``n`` with ``ratio`` or
   ``n1``; ``sizes``, ``allocation``). Outcomes are independent draws of
   ``outcome``: ``trial`` with ``arms`` draws exactly what ``two_arm`` draws
-  with the same fields (without ``baseline_corr``), replicate for replicate.
+  with the same fields, replicate for replicate; ``baseline_corr`` adds
+  ``two_arm``'s baseline covariate (a Gaussian copula with the outcome).
 * ``clusters``: ``clusters`` per arm of mean size ``cluster_size`` (sizes
   vary with ``cluster_size_cv``, see :func:`~simpower.processes.clusters.size_law`),
   randomised by cluster or individually within clusters. Outcomes share a
@@ -39,6 +40,10 @@ log link), which carries its own effect (``outcome.odds_ratio``,
 on the link scale, eta = beta0 + beta1 arm + sigma_b u_c, with sigma_b from the
 design's ``icc`` on the layer's ``icc_scale``; under ``arms`` the layer draws
 exactly what ``binary_two_arm`` / ``count_two_arm`` draw with the same fields.
+The ``gaussian`` layer (:mod:`simpower.processes.gaussian_outcome`, identity
+link) draws what ``normal_two_arm`` (arms) and ``cluster_trial`` (clusters)
+draw. Those older names are factories over this process
+(:mod:`simpower.processes.factories`).
 """
 
 from __future__ import annotations
@@ -52,10 +57,11 @@ from ..components import Component, Nested
 from ..errors import ParameterError, UnknownNameError, nearest
 from .. import registry
 from ..facts import BinaryFacts, ClusterBinaryFacts, ClusterFacts, NormalFacts
-from .arms import EFFECT_TYPE, POSITIVE, _check_missing, _check_outcome_for, _describe_effect, _effect_values
-from .base import Batch, Process
-from .clusters import _within_cluster_arms, draw_clusters, size_law
+from .base import Batch, Process, check_missing_columns
+from .cluster_sizes import _within_cluster_arms, draw_clusters, size_law
 from .design import ARM_DEFAULTS, ARM_PARAMS, TwoArms, apply_missing
+from .effects import (CORR, EFFECT_TYPE, POSITIVE, _check_outcome_for, _describe_effect, _effect_values,
+                      latent_correlation)
 from .glm_outcomes import BinaryOutcome, GLMOutcome, Linear, proportion_icc
 from .outcomes import Normal
 
@@ -76,27 +82,43 @@ class Design(Component):
     #: design columns a MAR mechanism may use
     columns: frozenset[str] = frozenset({"arm"})
 
-    def draw(self, rng: np.random.Generator, size: int, latent: bool = True) -> dict:
+    def draw(self, rng: np.random.Generator, size: int, latent: bool = True, early=None) -> dict:
         """The layout of ``size`` replicates; ``latent = False``: no normal scores ``z`` (an outcome layer
         with a linear predictor draws its own), only the cluster effects ``u`` (standard normal, one
-        per cluster) and ``cluster``."""
+        per cluster) and ``cluster``. ``early(rng, size, width, design, cluster)``, given by an outcome
+        layer that draws before the arms are assigned, is called after the cluster effects; its value
+        is returned as ``"early"``."""
         raise NotImplementedError
 
 
 class Arms(TwoArms, Design):
-    """Two independent arms: ``n`` (control), with ``ratio`` or ``n1`` (see :class:`TwoArms`)."""
+    """Two independent arms: ``n`` (control), with ``ratio`` or ``n1`` (see :class:`TwoArms`).
+
+    ``baseline_corr`` (in (-1, 1), optional) adds a ``baseline`` column: a
+    pre-randomisation measurement with the control-arm outcome's distribution
+    whose Pearson correlation with the outcome is ``baseline_corr`` in each arm,
+    joined to it by a Gaussian copula (as ``two_arm``; an outcome distribution
+    only, not a layer).
+    """
 
     name = "arms"
-    params = dict(ARM_PARAMS)
-    defaults = dict(ARM_DEFAULTS)
+    params = {**ARM_PARAMS, "baseline_corr": CORR}
+    defaults = {**ARM_DEFAULTS, "baseline_corr": None}
 
     def _check(self):
         self._check_arms()
 
-    def draw(self, rng, size, latent=True):
+    @property
+    def columns(self) -> frozenset[str]:  # type: ignore[override]
+        return frozenset({"arm", "baseline"} if self.baseline_corr is not None else {"arm"})
+
+    def draw(self, rng, size, latent=True, early=None):
         arm = self.arm_labels()
-        return {"z": None, "width": self.total, "arm": arm, "shared": {"arm": arm}, "per_rep": {},
-                "present": None, "info": self.arm_info()}
+        lay = {"z": None, "width": self.total, "arm": arm, "shared": {"arm": arm}, "per_rep": {},
+               "present": None, "info": self.arm_info()}
+        if early is not None:
+            lay["early"] = early(rng, size, self.total, self, None)
+        return lay
 
     def describe(self):
         return f"{self.arms_text()}, participants independent"
@@ -132,7 +154,7 @@ class Clusters(Design):
                                  f"clusters); got {self.cluster_size:g}.")
         size_law(self.cluster_size, self.cluster_size_cv)  # raises for an unreachable CV
 
-    def draw(self, rng, size, latent=True):
+    def draw(self, rng, size, latent=True, early=None):
         n_clusters = 2 * self.clusters
         sizes, u, cluster, present, start = draw_clusters(rng, n_clusters, self.cluster_size, self.cluster_size_cv,
                                                           size)
@@ -143,6 +165,7 @@ class Clusters(Design):
             z += math.sqrt(self.icc) * u_rows
         else:
             z = None
+        drawn_early = None if early is None else early(rng, size, width, self, cluster)
         if self.randomise == "cluster":
             arm = (cluster >= self.clusters).astype(np.int8)
         else:
@@ -157,8 +180,11 @@ class Clusters(Design):
             per_rep["present"] = present
         info = {"clusters_per_arm": self.clusters, "n_clusters": n_clusters, "randomise": self.randomise,
                 "equal_sizes": self.cluster_size_cv == 0}
-        return {"z": z, "width": width, "arm": arm, "shared": shared, "per_rep": per_rep, "present": present,
-                "info": info, "covariates": {"arm": arm, "cluster": cluster}, "u_rows": u_rows}
+        lay = {"z": z, "width": width, "arm": arm, "shared": shared, "per_rep": per_rep, "present": present,
+               "info": info, "covariates": {"arm": arm, "cluster": cluster}, "u_rows": u_rows}
+        if early is not None:
+            lay["early"] = drawn_early
+        return lay
 
     def describe(self, scale: str = "of the normal scores"):
         sizes = (f"{int(self.cluster_size)} members each" if self.cluster_size_cv == 0 else
@@ -208,7 +234,8 @@ class Trial(Process):
         (left at their defaults with a layer).
     missing : missingness, optional
         Applied once after the outcomes; a MAR mechanism may use the design's
-        columns (``arm``; ``cluster`` for clusters; ``exposure`` for counts).
+        columns (``arm``; ``cluster`` for clusters; ``baseline`` with
+        ``design.baseline_corr``; ``exposure`` for counts).
 
     Notes
     -----
@@ -229,7 +256,15 @@ class Trial(Process):
 
     def _check(self):
         columns = set(self.design.columns)
+        latent = None
         if isinstance(self.outcome, GLMOutcome):
+            if getattr(self.design, "baseline_corr", None) is not None:
+                raise ParameterError(f"`design.baseline_corr` needs an outcome distribution (the baseline has the "
+                                     f"outcome's distribution); a {self.outcome.name} outcome layer has none: "
+                                     "remove it.")
+            check_design = getattr(self.outcome, "check_design", None)
+            if check_design is not None:
+                check_design(self.design)
             for field, default in (("effect", 0.0), ("effect_type", "shift"), ("sd_ratio", 1.0)):
                 if self._p[field] != default:
                     raise ParameterError(f"`{field}` does not apply to a {self.outcome.name} outcome, which carries "
@@ -244,7 +279,14 @@ class Trial(Process):
             if not isinstance(self.design, Arms) and not hasattr(self.outcome, "from_normal"):
                 raise ParameterError(f"`outcome` needs a quantile function (from_normal) for a {self.design.name} "
                                      f"design; {type(self.outcome).__name__} has none.")
-        _check_missing(self.missing, columns, self.name)
+            rho = getattr(self.design, "baseline_corr", None)
+            if rho is not None:
+                latent = latent_correlation(self.outcome, rho, field="design.baseline_corr")
+        object.__setattr__(self, "_latent", latent)
+        baseline_possible = isinstance(self.design, Arms) and not self.layered
+        needs_baseline = "baseline" in getattr(self.missing, "requires", ()) and "baseline" not in columns
+        hint = "; set `design.baseline_corr` to add a baseline column" if baseline_possible and needs_baseline else ""
+        check_missing_columns(self.missing, columns, self.name, hint)
 
     @property
     def layered(self) -> bool:
@@ -255,6 +297,11 @@ class Trial(Process):
     def linear(self) -> Linear | None:
         """The solved linear predictor of a layer (beta0, beta1, cluster SD, marginal means), else None."""
         return self._lin if self.layered else None
+
+    @property
+    def latent_corr(self) -> float | None:
+        """Correlation of the normal scores of baseline and outcome (None without ``design.baseline_corr``)."""
+        return self._latent
 
     @property
     def size_param(self) -> str:  # type: ignore[override]
@@ -292,10 +339,17 @@ class Trial(Process):
         if self.layered:
             return self._draw_layer(rng, size)
         lay = self.design.draw(rng, size)
+        baseline = None
+        if self._latent is not None:  # arms with a baseline: scores correlated through the copula, as two_arm
+            shape = (size, lay["width"])
+            z_base = rng.standard_normal(shape)
+            lay["z"] = self._latent * z_base + math.sqrt(1.0 - self._latent**2) * rng.standard_normal(shape)
         if lay["z"] is None:
             y = np.asarray(self.outcome.sample(rng, (size, lay["width"])), dtype=float)
         else:
             y = np.asarray(self.outcome.from_normal(lay["z"]), dtype=float)
+        if self._latent is not None:
+            baseline = np.asarray(self.outcome.from_normal(z_base), dtype=float)
         arm = lay["arm"]
         if arm.ndim == 1:
             treated = arm == 1
@@ -304,19 +358,24 @@ class Trial(Process):
             treated = arm == 1
             y[treated] = _effect_values(y[treated], self.outcome, self.effect, self.effect_type, self.sd_ratio)
         per_rep = {"y": y, **lay["per_rep"]}
+        covariates = dict(lay.get("covariates", {"arm": arm}))
+        if baseline is not None:
+            per_rep = {"baseline": baseline, **per_rep}
+            covariates["baseline"] = baseline
         info = dict(lay["info"])
-        apply_missing(self.missing, rng, y, lay.get("covariates", {"arm": arm}), per_rep, info,
-                      present=lay["present"])
+        apply_missing(self.missing, rng, y, covariates, per_rep, info, present=lay["present"])
         return Batch(size, per_rep, lay["shared"], info)
 
     def _draw_layer(self, rng, size):
         """A layer's outcomes from the linear predictor; with ``arms`` the draws of ``binary_two_arm`` /
         ``count_two_arm`` (same fields, same numbers)."""
-        lay = self.design.draw(rng, size, latent=False)
+        early = getattr(self.outcome, "early", None)  # a layer that draws before the arms are assigned
+        lay = self.design.draw(rng, size, latent=False, **({"early": early} if early is not None else {}))
         lin = self._lin
         u_rows = lay.get("u_rows") if lin.sigma > 0 else None
         arm = lay["arm"]
-        y, shared, per_rep, cov = self.outcome.draw(rng, lin, arm, u_rows, size, lay["width"])
+        y, shared, per_rep, cov = self.outcome.draw(rng, lin, arm, u_rows, size, lay["width"],
+                                                    **({"early": lay["early"]} if "early" in lay else {}))
         per_rep = {**per_rep, "y": y, **lay["per_rep"]}
         shared = {**lay["shared"], **shared}
         info = dict(lay["info"])
@@ -326,7 +385,10 @@ class Trial(Process):
 
     def estimand_aliases(self):
         if self.layered:
-            return self.outcome.estimand_aliases(self._lin)
+            aliases = set(self.outcome.estimand_aliases(self._lin))
+            if getattr(self.outcome, "shifts_only", False) and isinstance(self.design, Arms) and self.missing is None:
+                aliases.add("location shift")  # an identity-link layer whose arms differ by a shift alone
+            return aliases
         pure_shift = (isinstance(self.design, Arms) and self.effect_type in ("shift", "d") and self.sd_ratio == 1
                       and self.missing is None)
         return {"location shift"} if pure_shift else set()
@@ -340,9 +402,11 @@ class Trial(Process):
     def facts(self):
         """Normal outcomes without missing data: :class:`NormalFacts` (arms) or :class:`ClusterFacts` (clusters);
         a binary layer without missing data: :class:`BinaryFacts` (arms) or :class:`ClusterBinaryFacts`."""
-        if self.missing is not None:
+        if self.missing is not None or self._latent is not None:
             return ()
         d = self.design
+        if self.layered and hasattr(self.outcome, "facts"):  # a layer that states its own (gaussian)
+            return self.outcome.facts(self._lin, d)
         if isinstance(self.outcome, BinaryOutcome):
             lin = self._lin
             if isinstance(d, Arms):
@@ -378,6 +442,10 @@ class Trial(Process):
                  _describe_effect(self.effect, self.effect_type, self.outcome)]
         if self.sd_ratio != 1:
             parts.append(f"treatment-arm deviations around its mean scaled by {self.sd_ratio:g}")
+        if self._latent is not None:
+            parts.append(f"a baseline covariate with the outcome's distribution, correlation "
+                         f"{self.design.baseline_corr:g} with the outcome (Gaussian copula, normal-scores correlation "
+                         f"{self._latent:.3f})")
         if self.missing is not None:
             parts.append(self.missing.describe())
         parts.append(f"estimand: treatment minus control difference in mean outcome = {self.true_effect():.4g}")

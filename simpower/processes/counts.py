@@ -19,19 +19,19 @@ mechanism, hidden counts are NaN and an ``observed`` column (1/0) is added.
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 
 from .._validation import Int, Real
 from ..components import Nested
-from .base import Batch, Process, check_missing_columns
-from .design import TwoArms, apply_missing, arm_defaults, arm_params
+from .composed import Arms
+from .design import TwoArms, arm_defaults, arm_params
+from .factories import TrialFactory
+from .glm_outcomes import CountOutcome
 
 POSITIVE = Real(0.0, low_open=True)
 
 
-class CountTwoArm(TwoArms, Process):
+class CountTwoArm(TwoArms, TrialFactory):
     """Two independent arms with count outcomes over an exposure time.
 
     Parameters
@@ -69,6 +69,10 @@ class CountTwoArm(TwoArms, Process):
     missingness mask); with ``exposure_cv = 0`` no exposure is drawn, without
     ``dispersion`` no multiplier and without ``missing`` no mask.
 
+    A factory over ``trial``: ``design = arms(n, ratio, n1)``, ``outcome =
+    count(rate0, rate_ratio, dispersion, exposure, exposure_cv)``, ``missing``
+    (see :attr:`trial`).
+
     Examples
     --------
     With k = 2 a mean count of 4 has variance 4 + 16/2 = 12:
@@ -93,47 +97,18 @@ class CountTwoArm(TwoArms, Process):
                              "ratio": 1.0, "missing": None})
     effect_param = "rate_ratio"
     size_param = "n"
+    unprefixed = ("design.", "outcome.")
 
-    def _check(self):
-        self._check_arms()
-        check_missing_columns(self.missing, {"arm", "exposure"}, self.name)
-
-    def null_value(self) -> float:
-        return 1.0
-
-    estimand_label = "log rate ratio"
-
-    def true_effect(self) -> float:
-        return math.log(self.rate_ratio)
+    def layers(self):
+        return {"design": Arms(n=self.n, ratio=self.ratio, n1=self._p["n1"]),
+                "outcome": CountOutcome(rate0=self.rate0, rate_ratio=self.rate_ratio, dispersion=self.dispersion,
+                                        exposure=self.exposure, exposure_cv=self.exposure_cv),
+                "missing": self.missing}
 
     def variance(self, mu):
         """Variance of a count with mean ``mu`` given exposure: mu (+ mu^2 / k)."""
         mu = np.asarray(mu, float)
         return mu if self.dispersion is None else mu + mu * mu / self.dispersion
-
-    def draw_batch(self, rng, size):
-        n0, n1 = self.n, self.n1
-        m = n0 + n1
-        arm = self.arm_labels()
-        rate = np.where(arm == 1, self.rate0 * self.rate_ratio, self.rate0)
-        if self.exposure_cv > 0:
-            shape = 1.0 / self.exposure_cv**2
-            expo = rng.gamma(shape, self.exposure / shape, (size, m))
-            per_rep = {"exposure": expo}
-            shared = {"arm": arm}
-        else:
-            expo = np.full(m, self.exposure)
-            per_rep = {}
-            shared = {"arm": arm, "exposure": expo}
-        mu = rate * expo
-        if self.dispersion is not None:
-            k = self.dispersion
-            mu = mu * rng.gamma(k, 1.0 / k, (size, m))
-        y = rng.poisson(np.broadcast_to(mu, (size, m))).astype(float)
-        per_rep["y"] = y
-        info = self.arm_info()
-        apply_missing(self.missing, rng, y, {"arm": arm, "exposure": expo}, per_rep, info)
-        return Batch(size, per_rep, shared, info=info)
 
     def describe(self):
         dist = ("Poisson counts" if self.dispersion is None else

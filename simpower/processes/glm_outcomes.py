@@ -50,7 +50,7 @@ from scipy.special import expit, logit
 from .._validation import Choice, Real
 from ..components import Component
 from ..errors import ParameterError
-from .binary import OneBinaryEffect
+from .risks import OneBinaryEffect
 
 POSITIVE = Real(0.0, low_open=True)
 PROBABILITY = Real(0.0, 1.0, low_open=True, high_open=True)
@@ -222,8 +222,10 @@ class BinaryOutcome(OneBinaryEffect, GLMOutcome):
     def true_values(self, lin: Linear) -> dict[str, float]:
         """Every estimand's true value: marginal risk difference, log risk ratio, log odds ratio; conditional log OR."""
         p0, p1 = lin.mean0, lin.mean1
+        # log odds as log(p / (1 - p)), the arithmetic of binary_two_arm (scipy's logit differs in the last bit)
         return {"risk_difference": p1 - p0, "log_risk_ratio": math.log(p1 / p0),
-                "log_odds_ratio": float(logit(p1) - logit(p0)), "conditional_log_odds_ratio": lin.beta1}
+                "log_odds_ratio": math.log(p1 / (1 - p1)) - math.log(p0 / (1 - p0)),
+                "conditional_log_odds_ratio": lin.beta1}
 
     def true_effect(self, lin: Linear) -> float:
         return self.true_values(lin)[self.estimand]

@@ -14,7 +14,10 @@ from .._validation import Int, Real
 from ..components import Nested
 from ..facts import NormalFacts
 from .base import Batch, Process, check_missing_columns
+from .composed import Arms
 from .design import TwoArms, apply_missing, arm_defaults, arm_params
+from .factories import TrialFactory
+from .gaussian_outcome import GaussianOutcome
 
 POSITIVE = Real(0.0, low_open=True)
 MISSING = Nested("missingness", optional=True)
@@ -112,7 +115,7 @@ class NormalPaired(Process):
         return (NormalFacts("paired", effect=self.effect, n=self.n, sd0=sd, sd1=sd),)
 
 
-class NormalTwoArm(TwoArms, Process):
+class NormalTwoArm(TwoArms, TrialFactory):
     """Two independent arms, normal outcomes, possibly unequal SDs and allocation.
 
     Parameters
@@ -140,6 +143,9 @@ class NormalTwoArm(TwoArms, Process):
 
     The long table has columns ``y`` and ``arm`` (0 = control, 1 = treatment),
     control rows first.
+
+    A factory over ``trial``: ``design = arms(n, ratio, n1)``, ``outcome =
+    gaussian(mean0, sd, effect, sd_ratio)``, ``missing`` (see :attr:`trial`).
     """
 
     name = "normal_two_arm"
@@ -147,39 +153,18 @@ class NormalTwoArm(TwoArms, Process):
                          "ratio": POSITIVE, "mean0": Real(), "missing": MISSING})
     defaults = arm_defaults({"effect": 0.0, "sd": 1.0, "sd_ratio": 1.0, "ratio": 1.0, "mean0": 0.0,
                              "missing": None})
+    unprefixed = ("design.", "outcome.")
 
-    def _check(self):
-        self._check_arms()
-        check_missing_columns(self.missing, {"arm"}, self.name)
-
-    def estimand_aliases(self):
-        return {"location shift"} if self.sd_ratio == 1 and self.missing is None else set()
+    def layers(self):
+        return {"design": Arms(n=self.n, ratio=self.ratio, n1=self._p["n1"]),
+                "outcome": GaussianOutcome(mean0=self.mean0, sd=self.sd, effect=self.effect, sd_ratio=self.sd_ratio),
+                "missing": self.missing}
 
     @property
     def sd1(self) -> float:
         return self.sd * self.sd_ratio
 
-    def draw_batch(self, rng, size):
-        n0, n1 = self.n, self.n1
-        y = rng.standard_normal((size, n0 + n1))
-        if self.sd != 1:
-            y[:, :n0] *= self.sd
-        if self.sd1 != 1:
-            y[:, n0:] *= self.sd1
-        if self.mean0:
-            y[:, :n0] += self.mean0
-        y[:, n0:] += self.mean0 + self.effect
-        arm, per_rep, info = self.arm_labels(), {"y": y}, self.arm_info()
-        apply_missing(self.missing, rng, y, {"arm": arm}, per_rep, info)
-        return Batch(size, per_rep, {"arm": arm}, info=info)
-
     def describe(self):
         sds = f"SD {self.sd:g}" if self.sd_ratio == 1 else f"SDs {self.sd:g} (control) and {self.sd1:g} (treatment)"
         return (f"{self.arms_text()}, normal outcomes with {sds}; "
                 f"treatment minus control mean difference {self.effect:g}{_missing_text(self.missing)}")
-
-    def facts(self):
-        if self.missing is not None:
-            return ()
-        return (NormalFacts("two-sample", effect=self.effect, n=self.n, sd0=self.sd, sd1=self.sd1,
-                            ratio=self.n1 / self.n),)
