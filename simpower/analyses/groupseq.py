@@ -68,6 +68,8 @@ from ..errors import ParameterError
 from ..registry import build, wrap_callable
 from .base import Analysis, BatchResult, TestResult, as_batch_result, as_test_result
 
+_NO_EVENTS = "no events in the data set: a look at an event count cannot be placed"
+
 #: columns that mean the rows are not one participant each: slicing rows would cut clusters or visits
 _NOT_PARTICIPANTS = ("cluster", "visit", "subject")
 
@@ -403,7 +405,7 @@ class GroupSequential(Analysis):
         entry = np.asarray(data["entry"], float)
         calendar = np.sort((entry + time)[event])
         if calendar.size == 0:
-            raise ValueError("no events in the data set: a look at an event count cannot be placed")
+            raise ValueError(_NO_EVENTS)
         d = int(np.clip(np.floor(t * calendar.size + 0.5 + 1e-9), 1, calendar.size))
         c = calendar[d - 1]
         keep = entry <= c
@@ -437,6 +439,9 @@ class GroupSequential(Analysis):
     # -- batch -------------------------------------------------------------------------------------
     def _sub_batches(self, batch):
         """One batch per look (the look's participants), or None when the batch does not fit."""
+        if _is_time_to_event(batch):
+            got = self._event_batches(batch)
+            return None if got is None else got[0]
         if any(c in batch for c in _NOT_PARTICIPANTS) or "y" not in batch.per_rep:
             return None
         y = batch.per_rep["y"]
@@ -468,6 +473,46 @@ class GroupSequential(Analysis):
                 subs.append(type(batch)(batch.size, per_rep, dict(batch.shared), dict(batch.info)))
         return subs
 
+    def _event_batches(self, batch):
+        """Time-to-event looks for every replicate at once: one batch per look, and the replicates that fail.
+
+        As :meth:`_event_slice`, vectorised: per replicate the calendar time ``c`` of its d_k-th
+        event; the rows that had not entered by then are masked out through ``present``, the others
+        get follow-up ``min(time, c - entry)`` and an event only if it happened by ``c``. Returns
+        ``(subs, fails)`` with ``fails`` (R,) the replicates without any event (the per-replicate path
+        raises on them at the first interim look), or None when the batch has no ``entry`` column.
+        """
+        if "entry" not in batch or any(c in batch for c in _NOT_PARTICIPANTS):
+            return None
+        time = np.asarray(batch.per_rep["time"], float)
+        if time.ndim != 2:
+            return None
+        event_col = np.asarray(batch.per_rep["event"])
+        event = event_col > 0
+        entry = np.broadcast_to(np.asarray(batch["entry"], float), time.shape)
+        present = batch.present
+        seen = event if present is None else event & present
+        calendar = np.sort(np.where(seen, entry + time, np.inf), axis=1)
+        n_events = np.count_nonzero(seen, axis=1)
+        fails = n_events == 0
+        subs = []
+        for t in self.design().fractions:
+            if t >= 1.0:
+                subs.append(batch)
+                continue
+            d = np.clip(np.floor(float(t) * n_events + 0.5 + 1e-9).astype(np.int64), 1, np.maximum(n_events, 1))
+            c = np.take_along_axis(calendar, (d - 1)[:, None], axis=1)  # (R, 1); inf without events
+            keep = entry <= c
+            if present is not None:
+                keep &= present
+            per_rep = dict(batch.per_rep)
+            with np.errstate(invalid="ignore"):
+                per_rep["time"] = np.minimum(time, c - entry)
+            per_rep["event"] = (event & (entry + time <= c)).astype(event_col.dtype)
+            per_rep["present"] = keep
+            subs.append(type(batch)(batch.size, per_rep, dict(batch.shared), dict(batch.info)))
+        return subs, fails
+
     def supports_batch(self, batch):
         if not self.has_batch:
             return False
@@ -482,7 +527,11 @@ class GroupSequential(Analysis):
         return isinstance(self.inner, Analysis) and self.inner.has_batch
 
     def batch(self, batch):
-        subs = self._sub_batches(batch)
+        no_events = None  # time-to-event looks: replicates without events fail at the first interim look
+        if _is_time_to_event(batch):
+            subs, no_events = self._event_batches(batch)
+        else:
+            subs = self._sub_batches(batch)
         r = batch.size
         k_max = self.looks
         names = self.hypothesis_names()
@@ -502,8 +551,15 @@ class GroupSequential(Analysis):
             z = np.broadcast_to(self._statistic(field["pvalue"], field["estimate"] if field["estimate"] is not None
                                                 else nan, field["se"] if field["se"] is not None else nan), (r,))
             failed = np.zeros(r, bool)
+            if no_events is not None and self.design().fractions[k] < 1.0:
+                # the per-replicate path raises before the inner analysis runs: only this cause, no fields
+                failed = no_events & active
+                if failed.any():
+                    errors.append(("error:ValueError", failed.copy(), "ValueError: " + _NO_EVENTS))
+                    field = {f: (None if v is None else np.where(failed, np.nan, v)) for f, v in field.items()}
+                no_events = None
             for cause, mask in res.trouble.items():
-                m = np.asarray(mask, bool) & active
+                m = np.asarray(mask, bool) & active & ~failed
                 if cause.startswith("warning:"):
                     warns.append((cause, m, res.trouble_messages.get(cause, "")))
                 else:
@@ -527,6 +583,11 @@ class GroupSequential(Analysis):
             if m.any():
                 res.mark(cause, m, msg)
         return res
+
+
+def _is_time_to_event(batch) -> bool:
+    """Time-to-event data (``time`` and ``event`` per replicate, no outcome ``y``): looks at event counts."""
+    return "y" not in batch.per_rep and "time" in batch.per_rep and "event" in batch.per_rep
 
 
 def _nominal(looks, alpha: float, sides: int) -> gs.Boundaries:
