@@ -57,16 +57,21 @@ analysis fails at a look the trial reached.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+import warnings
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import special
 
 from .._validation import Anything, Bool, Choice, Int, Real
+from ..analytic import futility as frules
 from ..analytic import groupseq as gs
 from ..errors import ParameterError
 from ..registry import build, wrap_callable
 from .base import Analysis, BatchResult, TestResult, as_batch_result, as_test_result
+
+#: the indicator of a replicate that stopped for futility but, run on, would have crossed an efficacy boundary
+LOST = "futility lost"
 
 _NO_EVENTS = "no events in the data set: a look at an event count cannot be placed"
 
@@ -139,14 +144,16 @@ class Futility(Anything):
     optional: bool = True
 
     def describe(self) -> str:
-        return ("a z value per interim look (e.g. [0.0, 0.5]) or a beta-spending table "
-                "{kind = \"obf\", beta = 0.1}")
+        return ("a z value per interim look (e.g. [0.0, 0.5]), a beta-spending table "
+                "{kind = \"obf\", beta = 0.1}, or a probability rule {rule = \"predictive\", threshold = 0.1}")
 
     def clean(self, name, value):
         if value is None:
             return None
         if isinstance(value, gs.BetaSpending):
             value = {"kind": value.kind, "beta": value.beta, "param": value.param}
+        if isinstance(value, dict) and "rule" in value:
+            return _probability_rule(name, value)
         if isinstance(value, dict):
             extra = set(value) - {"kind", "beta", "param"}
             if extra:
@@ -164,6 +171,53 @@ class Futility(Anything):
             return [float(v) for v in value]
         except (TypeError, ValueError):
             raise ParameterError(f"`{name}` must be {self.describe()}; got {value!r}.") from None
+
+
+#: the fields of a probability futility rule (predictive probability or conditional power)
+_RULE_FIELDS = ("rule", "threshold", "prior_mean", "prior_information", "drift")
+
+
+def _probability_rule(name: str, value: dict) -> dict:
+    """A futility rule ``{rule, threshold, ...}`` checked field by field (one line naming the field)."""
+    extra = sorted(set(value) - set(_RULE_FIELDS))
+    if extra:
+        raise ParameterError(f"`{name}.{extra[0]}` is not a field of a probability futility rule (fields: "
+                             f"{', '.join(_RULE_FIELDS)}).")
+    rule = Choice(frules.RULES).clean(f"{name}.rule", value["rule"])
+    if "threshold" not in value:
+        raise ParameterError(f"`{name}.threshold` is required: the probability at or below which the trial stops "
+                             f"for futility, in (0, 1), e.g. 0.1.")
+    out = {"rule": rule,
+           "threshold": Real(0.0, 1.0, low_open=True, high_open=True).clean(f"{name}.threshold", value["threshold"])}
+    has_mean, has_info = value.get("prior_mean") is not None, value.get("prior_information") is not None
+    if rule == "predictive":
+        if has_mean != has_info:
+            raise ParameterError(f"`{name}.prior_mean` and `prior_information`: give both (a normal prior on the "
+                                 f"drift) or neither (a flat prior).")
+        if has_mean:
+            out["prior_mean"] = Real().clean(f"{name}.prior_mean", value["prior_mean"])
+            out["prior_information"] = Real(0.0, low_open=True).clean(f"{name}.prior_information",
+                                                                       value["prior_information"])
+        if value.get("drift") is not None:
+            raise ParameterError(f"`{name}.drift` belongs to rule = 'conditional'; a predictive rule takes "
+                                 f"prior_mean and prior_information.")
+    else:
+        if has_mean or has_info:
+            raise ParameterError(f"`{name}.prior_mean` and `prior_information` belong to rule = 'predictive'; "
+                                 f"conditional power takes `drift` (omit it for the current trend).")
+        if value.get("drift") is not None:
+            out["drift"] = Real().clean(f"{name}.drift", value["drift"])
+    return out
+
+
+def _rule_text(rule: dict) -> str:
+    """The rule in words, for the design's method line."""
+    if rule["rule"] == "conditional":
+        under = "the current trend" if "drift" not in rule else f"drift {rule['drift']:g}"
+        return f"conditional power under {under} <= {rule['threshold']:g}"
+    prior = "flat prior" if "prior_mean" not in rule else \
+        f"normal prior on the drift, mean {rule['prior_mean']:g}, information {rule['prior_information']:g}"
+    return f"predictive probability <= {rule['threshold']:g} ({prior})"
 
 
 def look_sizes(fraction: float, n: np.ndarray) -> np.ndarray:
@@ -266,8 +320,9 @@ class GroupSequential(Analysis):
             return got
         looks = self.fractions
         fut = self.futility
+        rule = fut if isinstance(fut, dict) and "rule" in fut else None
         if isinstance(fut, dict):
-            fut = gs.BetaSpending(fut["kind"], fut["beta"], fut.get("param"))
+            fut = rule or gs.BetaSpending(fut["kind"], fut["beta"], fut.get("param"))
         try:
             if self.boundary != "spending" and self.binding:
                 raise ParameterError(f"`binding` must be false with boundary = {self.boundary!r} (it has no "
@@ -287,6 +342,8 @@ class GroupSequential(Analysis):
                     raise ParameterError("`futility` and `param` must be None with boundary = 'nominal' (the "
                                          "unadjusted level at every look).")
                 b = _nominal(looks, self.alpha, self._side_count())
+            elif rule is not None:
+                b = self._probability_design(looks, rule)
             else:
                 b = gs.boundaries(looks, self.alpha, self._side_count(), self.spending, self.param, fut,
                                   self.binding)
@@ -297,6 +354,40 @@ class GroupSequential(Analysis):
             raise ParameterError(text) from None
         object.__setattr__(self, "_design", b)
         return b
+
+    def _probability_design(self, looks, rule: dict) -> gs.Boundaries:
+        """Spending boundaries with a predictive-probability or conditional-power futility rule.
+
+        The rule is a z boundary per interim look (:func:`~simpower.analytic.futility.futility_z`),
+        computed from the final efficacy boundary ``c``. Non-binding: the efficacy boundaries are
+        those of the design without the rule. Binding: they are recomputed on the paths the rule lets
+        through, which moves ``c`` and so the rule's z boundaries; the two are iterated to a fixed point.
+        """
+        if self._side_count() == 2:
+            raise ParameterError("`futility` must be None for a two-sided design (futility rules are for "
+                                 "one-sided designs); set the inner analysis's alternative to 'greater' or 'less'.")
+        plain = gs.boundaries(looks, self.alpha, 1, self.spending, self.param)
+        t = plain.fractions[:-1]
+        extra = {k: rule[k] for k in ("prior_mean", "prior_information", "drift") if k in rule}
+        b, c = plain, float(plain.efficacy[-1])
+        for _ in range(100):
+            lower = np.atleast_1d(frules.futility_z(rule["rule"], rule["threshold"], t, c, **extra)) if t.size \
+                else np.empty(0)
+            above = np.flatnonzero(lower >= b.efficacy[:-1])
+            if above.size:
+                k = int(above[0])
+                raise ParameterError(f"`futility.threshold` {rule['threshold']:g} puts the futility boundary at look "
+                                     f"{k + 1} (z {lower[k]:.3f}) at or above the efficacy boundary "
+                                     f"({b.efficacy[k]:.3f}); lower the threshold.")
+            b = gs.boundaries(looks, self.alpha, 1, self.spending, self.param, list(lower), self.binding)
+            if not self.binding or abs(float(b.efficacy[-1]) - c) <= 1e-12:
+                break
+            c = float(b.efficacy[-1])
+        return replace(b, method=f"{b.method}; futility {_rule_text(rule)}")
+
+    def _tracks_lost(self) -> bool:
+        """Whether a probability futility rule is set: its replicates record the power it took away."""
+        return isinstance(self.futility, dict) and "rule" in self.futility
 
     def _side_count(self) -> int:
         """1 or 2: ``sides``, else from the inner analysis's ``alternative`` (computed, not stored: a
@@ -317,6 +408,8 @@ class GroupSequential(Analysis):
         names = [f"look {j + 1} efficacy" for j in range(k)]
         if self.design().futility is not None:
             names += [f"look {j + 1} futility" for j in range(k - 1)]
+        if self._tracks_lost():
+            names.append(LOST)
         return tuple(names)
 
     @property
@@ -432,9 +525,30 @@ class GroupSequential(Analysis):
                     ind[k] = 0.0
                 elif d == -1:
                     ind[k_max + k] = 0.0
+                    if self._tracks_lost() and self._run_on(data, k):
+                        ind[-1] = 0.0
                 return TestResult(pvalue=0.0 if d == 1 else 1.0, estimate=r.estimate, se=r.se, ci_low=r.ci_low,
                                   ci_high=r.ci_high, statistic=z, pvalues=ind, names=names)
         raise AssertionError("unreachable")  # pragma: no cover
+
+    def _run_on(self, data, k: int) -> bool:
+        """After a futility stop at look k: whether a later look's statistic would have crossed the efficacy
+        boundary (the non-binding design run on). A look the inner analysis fails at (raises, or no finite
+        statistic) ends the run without a crossing; its warnings are not the trial's."""
+        eff = self.design().efficacy
+        for j in range(k + 1, self.looks):
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                try:
+                    r = as_test_result(self.inner(self._slice(data, j)))
+                except Exception:
+                    return False
+            z = float(self._statistic(r.pvalue, r.estimate, r.se))
+            if not math.isfinite(z):
+                return False
+            if z >= eff[j]:
+                return True
+        return False
 
     # -- batch -------------------------------------------------------------------------------------
     def _sub_batches(self, batch):
@@ -541,8 +655,11 @@ class GroupSequential(Analysis):
         active = np.ones(r, bool)
         errors: list[tuple[str, np.ndarray, str]] = []
         warns: list[tuple[str, np.ndarray, str]] = []
+        track = self._tracks_lost()
+        running_on = np.zeros(r, bool)  # stopped for futility, run on to see whether they would have rejected
+        eff = self.design().efficacy
         for k, sub in enumerate(subs):
-            if not active.any():
+            if not (active.any() or running_on.any()):
                 break
             res = as_batch_result(self.inner.batch(sub))
             field = {f: (None if getattr(res, f) is None else np.broadcast_to(np.asarray(getattr(res, f), float), (r,)))
@@ -565,6 +682,15 @@ class GroupSequential(Analysis):
                 else:
                     errors.append((cause, m, res.trouble_messages.get(cause, "")))
                     failed |= m
+            if running_on.any():  # as _run_on: a look the inner analysis fails at ends the run without a crossing
+                err = np.zeros(r, bool)
+                for cause, mask in res.trouble.items():
+                    if not cause.startswith("warning:"):
+                        err |= np.asarray(mask, bool)
+                going = running_on & ~err & np.isfinite(z)
+                hit = going & (np.where(going, z, -np.inf) >= eff[k])
+                ind[hit, -1] = 0.0
+                running_on = going & ~hit
             bad = active & (failed | ~np.isfinite(z))
             d = np.where(np.isfinite(z), self._decide(k, np.where(np.isfinite(z), z, 0.0)), 0)
             stop = active & ~bad & ((d != 0) | (k == k_max - 1))
@@ -577,6 +703,8 @@ class GroupSequential(Analysis):
             if len(names) > k_max and k < k_max - 1:
                 ind[stop & (d == -1), k_max + k] = 0.0
             ind[bad] = np.nan
+            if track and k < k_max - 1:
+                running_on |= stop & (d == -1)
             active &= ~ends
         res = BatchResult(pvalue=pvalue, pvalues=ind, names=names, **out)
         for cause, m, msg in errors + warns:
@@ -631,7 +759,7 @@ def stop_of(pvalues: np.ndarray, looks: int) -> tuple[np.ndarray, np.ndarray]:
     decision = np.full(r, "", dtype=object)
     ok = np.all(np.isfinite(p), axis=1)
     eff = p[:, :looks] == 0
-    fut = p[:, looks:] == 0
+    fut = p[:, looks:2 * looks - 1] == 0  # a last column past them is the power-lost indicator (LOST)
     for k in range(looks):
         m = ok & eff[:, k]
         look[m], decision[m] = k + 1, "efficacy"
@@ -662,7 +790,10 @@ def looks_table(analysis: GroupSequential, summary, arm_sizes=None):
         One row per look (fraction, efficacy boundary on the z and p scale,
         futility boundary, cumulative alpha spent, participants, proportion
         stopping for efficacy / futility with MCSE), and the overall figures
-        (rejection rate and MCSE, expected sample size and MCSE, replicates).
+        (rejection rate and MCSE, expected sample size and MCSE, replicates; with a probability
+        futility rule ``power_lost`` and its MCSE: the share of replicates that stopped for futility
+        but would have crossed an efficacy boundary had they run on, which is the rejection rate
+        the non-binding rule costs; None otherwise).
     """
     b = analysis.design()
     k_max = len(b.fractions)
@@ -693,6 +824,9 @@ def looks_table(analysis: GroupSequential, summary, arm_sizes=None):
                "expected_n_unit": "participants" if sizes is not None else "fraction of the maximum",
                "max_n": totals[-1], "reps": n_ok, "method": b.method,
                "bias": summary.get("bias"), "bias_mcse": summary.get("bias_mcse")}
+    lost = per.get(LOST)
+    overall["power_lost"] = None if lost is None else lost["power"]
+    overall["power_lost_mcse"] = None if lost is None else lost["mcse"]
     return rows, overall
 
 
@@ -710,6 +844,14 @@ def arm_sizes_of(process) -> list[int] | None:
         return None
 
 
+def lost_text(overall) -> str:
+    """"; power lost to futility x (MCSE y)" when the run tracked it, else ""."""
+    if overall.get("power_lost") is None:
+        return ""
+    return (f"; power lost to futility {overall['power_lost']:.4f} (MCSE {overall['power_lost_mcse']:.4f}: "
+            f"stopped for futility, would have rejected had they run on)")
+
+
 def format_looks(name: str, rows, overall) -> list[str]:
     """The per-look table as text lines (for the terminal and the report)."""
     unit = overall["expected_n_unit"]
@@ -718,7 +860,7 @@ def format_looks(name: str, rows, overall) -> list[str]:
              f"{overall['expected_n']:.4g} (MCSE {overall['expected_n_mcse']:.2g}) of {overall['max_n']:g} "
              f"{unit}" + ("" if overall.get("bias") is None else
                           f"; bias of the estimate at stopping {overall['bias']:.4g} "
-                          f"(MCSE {overall['bias_mcse']:.2g})")]
+                          f"(MCSE {overall['bias_mcse']:.2g})") + lost_text(overall)]
     head = f"{'look':>4} {'fraction':>8} {'n':>6} {'eff. z':>7} {'nominal p':>9} {'fut. z':>7} {'alpha spent':>11} " \
            f"{'stop eff.':>9} {'MCSE':>6} {'stop fut.':>9} {'MCSE':>6}"
     lines.append(head)
