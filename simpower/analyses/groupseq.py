@@ -24,8 +24,12 @@ Boundaries are computed once, at the planned fractions, by
 type, Pocock type, power and gamma families) or
 :func:`~simpower.analytic.classical` (Pocock 1977; O'Brien & Fleming 1979).
 Futility (one-sided designs only, as the analytic core): a fixed z value per
-interim look, or beta-spending (:class:`~simpower.analytic.BetaSpending`),
-binding or non-binding.
+interim look, beta-spending (:class:`~simpower.analytic.BetaSpending`), or a
+probability rule ``{rule = "predictive" | "conditional", threshold}``: stop
+when the predictive probability of success at the final analysis, or the
+conditional power, is at or below the threshold
+(:mod:`simpower.analytic.futility`; a z boundary per look); binding or
+non-binding.
 
 What a replicate records (the run's usual fields):
 
@@ -43,12 +47,17 @@ What a replicate records (the run's usual fields):
   proportions per look, each with its MCSE; the look where a replicate
   stopped, its decision and its sample size follow from them
   (:func:`stop_of`), and the expected sample size from their rates
-  (:func:`looks_table`).
+  (:func:`looks_table`). A probability futility rule adds a last column
+  ``"futility lost"``: 0 where the trial stopped for futility but, run on
+  without the rule, would have crossed an efficacy boundary (its rate is the
+  power the non-binding rule costs).
 
 Time-to-event data (``time``, ``event``, no ``y``) are looked at event
 counts instead: look k comes at the calendar time (``entry + time``) of the
 ``round(t_k D)``-th of the D events of the full data set and sees the data as
 they stood then; this needs an ``entry`` column (calendar time of enrolment).
+The batch path does this for every replicate at once, the participants not
+yet enrolled masked out as padding (``present``).
 
 A replicate fails (counted by cause, as every failure) when the inner
 analysis fails at a look the trial reached.
@@ -281,7 +290,12 @@ class GroupSequential(Analysis):
         from the inner analysis's ``alternative`` (two-sided -> 2, else 1).
     futility : list of float or table, optional
         One-sided designs: a z value per interim look (stop for futility when
-        the statistic is at or below it), or beta-spending ``{kind, beta, param}``.
+        the statistic is at or below it), beta-spending ``{kind, beta, param}``,
+        or a probability rule ``{rule, threshold, ...}``: ``rule = "predictive"``
+        (predictive probability of success at the final analysis; flat prior on
+        the drift, or normal with ``prior_mean`` and ``prior_information``) or
+        ``"conditional"`` (conditional power under the current trend, or under
+        ``drift``); stop when it is at or below ``threshold`` in (0, 1).
     binding : bool, default False
         Whether the efficacy boundaries assume the futility rule is obeyed.
     scale : {"z", "p"}, default "z"
