@@ -1140,12 +1140,46 @@ def bench_pilot_units(quick, repeats):
         r["meets"] = bool(r["meets"] and ok)
         rows.append(r)
     return rows
+# -- (q) group-sequential looks at event counts -------------------------------------------------
+def _logrank_less(data):
+    """The log-rank test as a user function (no batch path): reports the control-over-treatment log HR so its
+    z counts upwards as `logrank` with alternative 'less' does."""
+    from simpower.analyses.base import TestResult
+
+    r = sp.LogRank(alternative="less")(data)
+    return TestResult(pvalue=r.pvalue, estimate=-r.estimate, se=r.se)
+
+
+def bench_groupseq_events(quick, repeats):
+    from simpower.analyses.groupseq import GroupSequential
+
+    reps, loop = (200, 40) if quick else (4_000, 400)
+    proc = sp.SurvivalTwoArm(n=150, median=12.0, hazard_ratio=0.75, accrual=24.0, follow_up=12.0)
+    common = {"fractions": [0.4, 0.7, 1.0], "spending": "obf", "futility": {"rule": "predictive", "threshold": 0.1}}
+    batch_gs = GroupSequential(inner={"type": "logrank", "alternative": "less"}, **common)
+    loop_gs = GroupSequential(inner=_logrank_less, **common)
+    name = "group-sequential log-rank at event-count looks: batch vs per replicate"
+    a = sp.Scenario(proc, analyses={"gs": batch_gs}, alpha=0.025)
+    b = sp.Scenario(proc, analyses={"gs": loop_gs}, alpha=0.025)
+    ours = best_rate(lambda: sp.run(a, reps=reps, seed=1, n_jobs=1, progress=False), reps, repeats)
+    theirs = best_rate(lambda: sp.run(b, reps=loop, seed=1, n_jobs=1, progress=False), loop, repeats)
+    both = sp.run(sp.Scenario(proc, analyses={"batch": batch_gs, "loop": loop_gs}, alpha=0.025), reps=loop, seed=2,
+                  n_jobs=1, progress=False)  # one scenario: the same data sets for both paths
+    ok = both.paths["batch"] == "batch" and bool(np.array_equal(both.records["batch"].pvalues,
+                                                                both.records["loop"].pvalues))
+    note = (f"150 per arm, HR 0.75, looks at 40/70/100% of the events, predictive-probability futility; {reps} reps "
+            f"batch, {loop} per replicate; stopping records {'identical' if ok else 'DIFFER'} on {loop} replicates")
+    out = row("q", name, ours, theirs, 2.0, note=note, answers_agree=ok)
+    out["meets"] = bool(out["meets"] and ok)
+    return [out]
 
 
 ROWS = {"a": bench_ttest, "b": bench_mixed, "c": bench_mann_whitney, "d": bench_jobs, "e": bench_memory,
         "m": bench_missing, "x": bench_crossover, "o": bench_ordinal, "h": bench_glmm, "s": bench_stepped,
         "i": bench_mmrm, "g": bench_gee, "k": bench_cox, "n": bench_negbin, "r": bench_resampling,
         "u": bench_pilot_units}
+        "i": bench_mmrm, "g": bench_gee, "k": bench_cox, "n": bench_negbin, "r": bench_resampling}
+ROWS["q"] = bench_groupseq_events
 
 
 def machine():

@@ -353,6 +353,11 @@ CASES = [
      "two_arm", True),
     ({"type": "group_sequential", "inner": {"type": "welch_t"}, "fractions": [0.5, 1.0], "scale": "p",
       "alpha": 0.05}, "two_arm_missing", True),
+    ({"type": "group_sequential", "inner": {"type": "t_test", "alternative": "greater"},
+      "futility": {"rule": "predictive", "threshold": 0.2}}, "two_arm", True),
+    # looks at event counts: later entrants masked as padding rows of the inner log-rank's batch
+    ({"type": "group_sequential", "inner": {"type": "logrank", "alternative": "less"}, "fractions": [0.5, 1.0]},
+     "survival", True),
 ]
 
 #: cases whose batch result marks some replicates as failed

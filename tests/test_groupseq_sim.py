@@ -348,9 +348,15 @@ def test_a_user_function_inner_analysis_runs_per_replicate_with_the_same_decisio
     assert np.array_equal(res.records["user"].pvalues, res.records["builtin"].pvalues)
 
 
+def _survival_without_entry(rng, n=30):
+    """Time-to-event data with no calendar time of enrolment (no `entry` column)."""
+    data = staggered_survival(rng, n)
+    del data["entry"]
+    return data
+
+
 def test_time_to_event_data_without_entry_times_are_refused_in_one_line():
-    sc = sp.Scenario(build("process", {"type": "survival_two_arm", "n": 30, "median": 1.0, "hazard_ratio": 0.6,
-                                       "follow_up": 2.0}),
+    sc = sp.Scenario(_survival_without_entry, params={"n": 30},
                      analyses={"gs": GroupSequential(inner={"type": "logrank"}, fractions=2, alpha=0.05)})
     with pytest.raises(Exception, match="need an `entry` column"):
         sp.run(sc, reps=50, execution=SERIAL)

@@ -24,8 +24,12 @@ Boundaries are computed once, at the planned fractions, by
 type, Pocock type, power and gamma families) or
 :func:`~simpower.analytic.classical` (Pocock 1977; O'Brien & Fleming 1979).
 Futility (one-sided designs only, as the analytic core): a fixed z value per
-interim look, or beta-spending (:class:`~simpower.analytic.BetaSpending`),
-binding or non-binding.
+interim look, beta-spending (:class:`~simpower.analytic.BetaSpending`), or a
+probability rule ``{rule = "predictive" | "conditional", threshold}``: stop
+when the predictive probability of success at the final analysis, or the
+conditional power, is at or below the threshold
+(:mod:`simpower.analytic.futility`; a z boundary per look); binding or
+non-binding.
 
 What a replicate records (the run's usual fields):
 
@@ -43,12 +47,17 @@ What a replicate records (the run's usual fields):
   proportions per look, each with its MCSE; the look where a replicate
   stopped, its decision and its sample size follow from them
   (:func:`stop_of`), and the expected sample size from their rates
-  (:func:`looks_table`).
+  (:func:`looks_table`). A probability futility rule adds a last column
+  ``"futility lost"``: 0 where the trial stopped for futility but, run on
+  without the rule, would have crossed an efficacy boundary (its rate is the
+  power the non-binding rule costs).
 
 Time-to-event data (``time``, ``event``, no ``y``) are looked at event
 counts instead: look k comes at the calendar time (``entry + time``) of the
 ``round(t_k D)``-th of the D events of the full data set and sees the data as
 they stood then; this needs an ``entry`` column (calendar time of enrolment).
+The batch path does this for every replicate at once, the participants not
+yet enrolled masked out as padding (``present``).
 
 A replicate fails (counted by cause, as every failure) when the inner
 analysis fails at a look the trial reached.
@@ -57,16 +66,23 @@ analysis fails at a look the trial reached.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+import warnings
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import special
 
 from .._validation import Anything, Bool, Choice, Int, Real
+from ..analytic import futility as frules
 from ..analytic import groupseq as gs
 from ..errors import ParameterError
 from ..registry import build, wrap_callable
 from .base import Analysis, BatchResult, TestResult, as_batch_result, as_test_result
+
+#: the indicator of a replicate that stopped for futility but, run on, would have crossed an efficacy boundary
+LOST = "futility lost"
+
+_NO_EVENTS = "no events in the data set: a look at an event count cannot be placed"
 
 #: columns that mean the rows are not one participant each: slicing rows would cut clusters or visits
 _NOT_PARTICIPANTS = ("cluster", "visit", "subject")
@@ -137,14 +153,16 @@ class Futility(Anything):
     optional: bool = True
 
     def describe(self) -> str:
-        return ("a z value per interim look (e.g. [0.0, 0.5]) or a beta-spending table "
-                "{kind = \"obf\", beta = 0.1}")
+        return ("a z value per interim look (e.g. [0.0, 0.5]), a beta-spending table "
+                "{kind = \"obf\", beta = 0.1}, or a probability rule {rule = \"predictive\", threshold = 0.1}")
 
     def clean(self, name, value):
         if value is None:
             return None
         if isinstance(value, gs.BetaSpending):
             value = {"kind": value.kind, "beta": value.beta, "param": value.param}
+        if isinstance(value, dict) and "rule" in value:
+            return _probability_rule(name, value)
         if isinstance(value, dict):
             extra = set(value) - {"kind", "beta", "param"}
             if extra:
@@ -162,6 +180,53 @@ class Futility(Anything):
             return [float(v) for v in value]
         except (TypeError, ValueError):
             raise ParameterError(f"`{name}` must be {self.describe()}; got {value!r}.") from None
+
+
+#: the fields of a probability futility rule (predictive probability or conditional power)
+_RULE_FIELDS = ("rule", "threshold", "prior_mean", "prior_information", "drift")
+
+
+def _probability_rule(name: str, value: dict) -> dict:
+    """A futility rule ``{rule, threshold, ...}`` checked field by field (one line naming the field)."""
+    extra = sorted(set(value) - set(_RULE_FIELDS))
+    if extra:
+        raise ParameterError(f"`{name}.{extra[0]}` is not a field of a probability futility rule (fields: "
+                             f"{', '.join(_RULE_FIELDS)}).")
+    rule = Choice(frules.RULES).clean(f"{name}.rule", value["rule"])
+    if "threshold" not in value:
+        raise ParameterError(f"`{name}.threshold` is required: the probability at or below which the trial stops "
+                             f"for futility, in (0, 1), e.g. 0.1.")
+    out = {"rule": rule,
+           "threshold": Real(0.0, 1.0, low_open=True, high_open=True).clean(f"{name}.threshold", value["threshold"])}
+    has_mean, has_info = value.get("prior_mean") is not None, value.get("prior_information") is not None
+    if rule == "predictive":
+        if has_mean != has_info:
+            raise ParameterError(f"`{name}.prior_mean` and `prior_information`: give both (a normal prior on the "
+                                 f"drift) or neither (a flat prior).")
+        if has_mean:
+            out["prior_mean"] = Real().clean(f"{name}.prior_mean", value["prior_mean"])
+            out["prior_information"] = Real(0.0, low_open=True).clean(f"{name}.prior_information",
+                                                                       value["prior_information"])
+        if value.get("drift") is not None:
+            raise ParameterError(f"`{name}.drift` belongs to rule = 'conditional'; a predictive rule takes "
+                                 f"prior_mean and prior_information.")
+    else:
+        if has_mean or has_info:
+            raise ParameterError(f"`{name}.prior_mean` and `prior_information` belong to rule = 'predictive'; "
+                                 f"conditional power takes `drift` (omit it for the current trend).")
+        if value.get("drift") is not None:
+            out["drift"] = Real().clean(f"{name}.drift", value["drift"])
+    return out
+
+
+def _rule_text(rule: dict) -> str:
+    """The rule in words, for the design's method line."""
+    if rule["rule"] == "conditional":
+        under = "the current trend" if "drift" not in rule else f"drift {rule['drift']:g}"
+        return f"conditional power under {under} <= {rule['threshold']:g}"
+    prior = "flat prior" if "prior_mean" not in rule else \
+        f"normal prior on the drift, mean {rule['prior_mean']:g}, information {rule['prior_information']:g}"
+    return f"predictive probability <= {rule['threshold']:g} ({prior})"
 
 
 def look_sizes(fraction: float, n: np.ndarray) -> np.ndarray:
@@ -225,7 +290,12 @@ class GroupSequential(Analysis):
         from the inner analysis's ``alternative`` (two-sided -> 2, else 1).
     futility : list of float or table, optional
         One-sided designs: a z value per interim look (stop for futility when
-        the statistic is at or below it), or beta-spending ``{kind, beta, param}``.
+        the statistic is at or below it), beta-spending ``{kind, beta, param}``,
+        or a probability rule ``{rule, threshold, ...}``: ``rule = "predictive"``
+        (predictive probability of success at the final analysis; flat prior on
+        the drift, or normal with ``prior_mean`` and ``prior_information``) or
+        ``"conditional"`` (conditional power under the current trend, or under
+        ``drift``); stop when it is at or below ``threshold`` in (0, 1).
     binding : bool, default False
         Whether the efficacy boundaries assume the futility rule is obeyed.
     scale : {"z", "p"}, default "z"
@@ -264,8 +334,9 @@ class GroupSequential(Analysis):
             return got
         looks = self.fractions
         fut = self.futility
+        rule = fut if isinstance(fut, dict) and "rule" in fut else None
         if isinstance(fut, dict):
-            fut = gs.BetaSpending(fut["kind"], fut["beta"], fut.get("param"))
+            fut = rule or gs.BetaSpending(fut["kind"], fut["beta"], fut.get("param"))
         try:
             if self.boundary != "spending" and self.binding:
                 raise ParameterError(f"`binding` must be false with boundary = {self.boundary!r} (it has no "
@@ -285,6 +356,8 @@ class GroupSequential(Analysis):
                     raise ParameterError("`futility` and `param` must be None with boundary = 'nominal' (the "
                                          "unadjusted level at every look).")
                 b = _nominal(looks, self.alpha, self._side_count())
+            elif rule is not None:
+                b = self._probability_design(looks, rule)
             else:
                 b = gs.boundaries(looks, self.alpha, self._side_count(), self.spending, self.param, fut,
                                   self.binding)
@@ -295,6 +368,40 @@ class GroupSequential(Analysis):
             raise ParameterError(text) from None
         object.__setattr__(self, "_design", b)
         return b
+
+    def _probability_design(self, looks, rule: dict) -> gs.Boundaries:
+        """Spending boundaries with a predictive-probability or conditional-power futility rule.
+
+        The rule is a z boundary per interim look (:func:`~simpower.analytic.futility.futility_z`),
+        computed from the final efficacy boundary ``c``. Non-binding: the efficacy boundaries are
+        those of the design without the rule. Binding: they are recomputed on the paths the rule lets
+        through, which moves ``c`` and so the rule's z boundaries; the two are iterated to a fixed point.
+        """
+        if self._side_count() == 2:
+            raise ParameterError("`futility` must be None for a two-sided design (futility rules are for "
+                                 "one-sided designs); set the inner analysis's alternative to 'greater' or 'less'.")
+        plain = gs.boundaries(looks, self.alpha, 1, self.spending, self.param)
+        t = plain.fractions[:-1]
+        extra = {k: rule[k] for k in ("prior_mean", "prior_information", "drift") if k in rule}
+        b, c = plain, float(plain.efficacy[-1])
+        for _ in range(100):
+            lower = np.atleast_1d(frules.futility_z(rule["rule"], rule["threshold"], t, c, **extra)) if t.size \
+                else np.empty(0)
+            above = np.flatnonzero(lower >= b.efficacy[:-1])
+            if above.size:
+                k = int(above[0])
+                raise ParameterError(f"`futility.threshold` {rule['threshold']:g} puts the futility boundary at look "
+                                     f"{k + 1} (z {lower[k]:.3f}) at or above the efficacy boundary "
+                                     f"({b.efficacy[k]:.3f}); lower the threshold.")
+            b = gs.boundaries(looks, self.alpha, 1, self.spending, self.param, list(lower), self.binding)
+            if not self.binding or abs(float(b.efficacy[-1]) - c) <= 1e-12:
+                break
+            c = float(b.efficacy[-1])
+        return replace(b, method=f"{b.method}; futility {_rule_text(rule)}")
+
+    def _tracks_lost(self) -> bool:
+        """Whether a probability futility rule is set: its replicates record the power it took away."""
+        return isinstance(self.futility, dict) and "rule" in self.futility
 
     def _side_count(self) -> int:
         """1 or 2: ``sides``, else from the inner analysis's ``alternative`` (computed, not stored: a
@@ -315,6 +422,8 @@ class GroupSequential(Analysis):
         names = [f"look {j + 1} efficacy" for j in range(k)]
         if self.design().futility is not None:
             names += [f"look {j + 1} futility" for j in range(k - 1)]
+        if self._tracks_lost():
+            names.append(LOST)
         return tuple(names)
 
     @property
@@ -403,7 +512,7 @@ class GroupSequential(Analysis):
         entry = np.asarray(data["entry"], float)
         calendar = np.sort((entry + time)[event])
         if calendar.size == 0:
-            raise ValueError("no events in the data set: a look at an event count cannot be placed")
+            raise ValueError(_NO_EVENTS)
         d = int(np.clip(np.floor(t * calendar.size + 0.5 + 1e-9), 1, calendar.size))
         c = calendar[d - 1]
         keep = entry <= c
@@ -430,13 +539,37 @@ class GroupSequential(Analysis):
                     ind[k] = 0.0
                 elif d == -1:
                     ind[k_max + k] = 0.0
+                    if self._tracks_lost() and self._run_on(data, k):
+                        ind[-1] = 0.0
                 return TestResult(pvalue=0.0 if d == 1 else 1.0, estimate=r.estimate, se=r.se, ci_low=r.ci_low,
                                   ci_high=r.ci_high, statistic=z, pvalues=ind, names=names)
         raise AssertionError("unreachable")  # pragma: no cover
 
+    def _run_on(self, data, k: int) -> bool:
+        """After a futility stop at look k: whether a later look's statistic would have crossed the efficacy
+        boundary (the non-binding design run on). A look the inner analysis fails at (raises, or no finite
+        statistic) ends the run without a crossing; its warnings are not the trial's."""
+        eff = self.design().efficacy
+        for j in range(k + 1, self.looks):
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                try:
+                    r = as_test_result(self.inner(self._slice(data, j)))
+                except Exception:
+                    return False
+            z = float(self._statistic(r.pvalue, r.estimate, r.se))
+            if not math.isfinite(z):
+                return False
+            if z >= eff[j]:
+                return True
+        return False
+
     # -- batch -------------------------------------------------------------------------------------
     def _sub_batches(self, batch):
         """One batch per look (the look's participants), or None when the batch does not fit."""
+        if _is_time_to_event(batch):
+            got = self._event_batches(batch)
+            return None if got is None else got[0]
         if any(c in batch for c in _NOT_PARTICIPANTS) or "y" not in batch.per_rep:
             return None
         y = batch.per_rep["y"]
@@ -468,6 +601,46 @@ class GroupSequential(Analysis):
                 subs.append(type(batch)(batch.size, per_rep, dict(batch.shared), dict(batch.info)))
         return subs
 
+    def _event_batches(self, batch):
+        """Time-to-event looks for every replicate at once: one batch per look, and the replicates that fail.
+
+        As :meth:`_event_slice`, vectorised: per replicate the calendar time ``c`` of its d_k-th
+        event; the rows that had not entered by then are masked out through ``present``, the others
+        get follow-up ``min(time, c - entry)`` and an event only if it happened by ``c``. Returns
+        ``(subs, fails)`` with ``fails`` (R,) the replicates without any event (the per-replicate path
+        raises on them at the first interim look), or None when the batch has no ``entry`` column.
+        """
+        if "entry" not in batch or any(c in batch for c in _NOT_PARTICIPANTS):
+            return None
+        time = np.asarray(batch.per_rep["time"], float)
+        if time.ndim != 2:
+            return None
+        event_col = np.asarray(batch.per_rep["event"])
+        event = event_col > 0
+        entry = np.broadcast_to(np.asarray(batch["entry"], float), time.shape)
+        present = batch.present
+        seen = event if present is None else event & present
+        calendar = np.sort(np.where(seen, entry + time, np.inf), axis=1)
+        n_events = np.count_nonzero(seen, axis=1)
+        fails = n_events == 0
+        subs = []
+        for t in self.design().fractions:
+            if t >= 1.0:
+                subs.append(batch)
+                continue
+            d = np.clip(np.floor(float(t) * n_events + 0.5 + 1e-9).astype(np.int64), 1, np.maximum(n_events, 1))
+            c = np.take_along_axis(calendar, (d - 1)[:, None], axis=1)  # (R, 1); inf without events
+            keep = entry <= c
+            if present is not None:
+                keep &= present
+            per_rep = dict(batch.per_rep)
+            with np.errstate(invalid="ignore"):
+                per_rep["time"] = np.minimum(time, c - entry)
+            per_rep["event"] = (event & (entry + time <= c)).astype(event_col.dtype)
+            per_rep["present"] = keep
+            subs.append(type(batch)(batch.size, per_rep, dict(batch.shared), dict(batch.info)))
+        return subs, fails
+
     def supports_batch(self, batch):
         if not self.has_batch:
             return False
@@ -482,7 +655,11 @@ class GroupSequential(Analysis):
         return isinstance(self.inner, Analysis) and self.inner.has_batch
 
     def batch(self, batch):
-        subs = self._sub_batches(batch)
+        no_events = None  # time-to-event looks: replicates without events fail at the first interim look
+        if _is_time_to_event(batch):
+            subs, no_events = self._event_batches(batch)
+        else:
+            subs = self._sub_batches(batch)
         r = batch.size
         k_max = self.looks
         names = self.hypothesis_names()
@@ -492,8 +669,11 @@ class GroupSequential(Analysis):
         active = np.ones(r, bool)
         errors: list[tuple[str, np.ndarray, str]] = []
         warns: list[tuple[str, np.ndarray, str]] = []
+        track = self._tracks_lost()
+        running_on = np.zeros(r, bool)  # stopped for futility, run on to see whether they would have rejected
+        eff = self.design().efficacy
         for k, sub in enumerate(subs):
-            if not active.any():
+            if not (active.any() or running_on.any()):
                 break
             res = as_batch_result(self.inner.batch(sub))
             field = {f: (None if getattr(res, f) is None else np.broadcast_to(np.asarray(getattr(res, f), float), (r,)))
@@ -502,13 +682,29 @@ class GroupSequential(Analysis):
             z = np.broadcast_to(self._statistic(field["pvalue"], field["estimate"] if field["estimate"] is not None
                                                 else nan, field["se"] if field["se"] is not None else nan), (r,))
             failed = np.zeros(r, bool)
+            if no_events is not None and self.design().fractions[k] < 1.0:
+                # the per-replicate path raises before the inner analysis runs: only this cause, no fields
+                failed = no_events & active
+                if failed.any():
+                    errors.append(("error:ValueError", failed.copy(), "ValueError: " + _NO_EVENTS))
+                    field = {f: (None if v is None else np.where(failed, np.nan, v)) for f, v in field.items()}
+                no_events = None
             for cause, mask in res.trouble.items():
-                m = np.asarray(mask, bool) & active
+                m = np.asarray(mask, bool) & active & ~failed
                 if cause.startswith("warning:"):
                     warns.append((cause, m, res.trouble_messages.get(cause, "")))
                 else:
                     errors.append((cause, m, res.trouble_messages.get(cause, "")))
                     failed |= m
+            if running_on.any():  # as _run_on: a look the inner analysis fails at ends the run without a crossing
+                err = np.zeros(r, bool)
+                for cause, mask in res.trouble.items():
+                    if not cause.startswith("warning:"):
+                        err |= np.asarray(mask, bool)
+                going = running_on & ~err & np.isfinite(z)
+                hit = going & (np.where(going, z, -np.inf) >= eff[k])
+                ind[hit, -1] = 0.0
+                running_on = going & ~hit
             bad = active & (failed | ~np.isfinite(z))
             d = np.where(np.isfinite(z), self._decide(k, np.where(np.isfinite(z), z, 0.0)), 0)
             stop = active & ~bad & ((d != 0) | (k == k_max - 1))
@@ -521,12 +717,19 @@ class GroupSequential(Analysis):
             if len(names) > k_max and k < k_max - 1:
                 ind[stop & (d == -1), k_max + k] = 0.0
             ind[bad] = np.nan
+            if track and k < k_max - 1:
+                running_on |= stop & (d == -1)
             active &= ~ends
         res = BatchResult(pvalue=pvalue, pvalues=ind, names=names, **out)
         for cause, m, msg in errors + warns:
             if m.any():
                 res.mark(cause, m, msg)
         return res
+
+
+def _is_time_to_event(batch) -> bool:
+    """Time-to-event data (``time`` and ``event`` per replicate, no outcome ``y``): looks at event counts."""
+    return "y" not in batch.per_rep and "time" in batch.per_rep and "event" in batch.per_rep
 
 
 def _nominal(looks, alpha: float, sides: int) -> gs.Boundaries:
@@ -570,7 +773,7 @@ def stop_of(pvalues: np.ndarray, looks: int) -> tuple[np.ndarray, np.ndarray]:
     decision = np.full(r, "", dtype=object)
     ok = np.all(np.isfinite(p), axis=1)
     eff = p[:, :looks] == 0
-    fut = p[:, looks:] == 0
+    fut = p[:, looks:2 * looks - 1] == 0  # a last column past them is the power-lost indicator (LOST)
     for k in range(looks):
         m = ok & eff[:, k]
         look[m], decision[m] = k + 1, "efficacy"
@@ -601,7 +804,10 @@ def looks_table(analysis: GroupSequential, summary, arm_sizes=None):
         One row per look (fraction, efficacy boundary on the z and p scale,
         futility boundary, cumulative alpha spent, participants, proportion
         stopping for efficacy / futility with MCSE), and the overall figures
-        (rejection rate and MCSE, expected sample size and MCSE, replicates).
+        (rejection rate and MCSE, expected sample size and MCSE, replicates; with a probability
+        futility rule ``power_lost`` and its MCSE: the share of replicates that stopped for futility
+        but would have crossed an efficacy boundary had they run on, which is the rejection rate
+        the non-binding rule costs; None otherwise).
     """
     b = analysis.design()
     k_max = len(b.fractions)
@@ -632,6 +838,9 @@ def looks_table(analysis: GroupSequential, summary, arm_sizes=None):
                "expected_n_unit": "participants" if sizes is not None else "fraction of the maximum",
                "max_n": totals[-1], "reps": n_ok, "method": b.method,
                "bias": summary.get("bias"), "bias_mcse": summary.get("bias_mcse")}
+    lost = per.get(LOST)
+    overall["power_lost"] = None if lost is None else lost["power"]
+    overall["power_lost_mcse"] = None if lost is None else lost["mcse"]
     return rows, overall
 
 
@@ -649,6 +858,14 @@ def arm_sizes_of(process) -> list[int] | None:
         return None
 
 
+def lost_text(overall) -> str:
+    """"; power lost to futility x (MCSE y)" when the run tracked it, else ""."""
+    if overall.get("power_lost") is None:
+        return ""
+    return (f"; power lost to futility {overall['power_lost']:.4f} (MCSE {overall['power_lost_mcse']:.4f}: "
+            f"stopped for futility, would have rejected had they run on)")
+
+
 def format_looks(name: str, rows, overall) -> list[str]:
     """The per-look table as text lines (for the terminal and the report)."""
     unit = overall["expected_n_unit"]
@@ -657,7 +874,7 @@ def format_looks(name: str, rows, overall) -> list[str]:
              f"{overall['expected_n']:.4g} (MCSE {overall['expected_n_mcse']:.2g}) of {overall['max_n']:g} "
              f"{unit}" + ("" if overall.get("bias") is None else
                           f"; bias of the estimate at stopping {overall['bias']:.4g} "
-                          f"(MCSE {overall['bias_mcse']:.2g})")]
+                          f"(MCSE {overall['bias_mcse']:.2g})") + lost_text(overall)]
     head = f"{'look':>4} {'fraction':>8} {'n':>6} {'eff. z':>7} {'nominal p':>9} {'fut. z':>7} {'alpha spent':>11} " \
            f"{'stop eff.':>9} {'MCSE':>6} {'stop fut.':>9} {'MCSE':>6}"
     lines.append(head)

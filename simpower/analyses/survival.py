@@ -97,6 +97,24 @@ def batch_logrank_terms(time, event, arm):
     return u, v
 
 
+def absent_first(time, event, present, arm):
+    """Padding rows moved before every time, without an event; and the replicates an arm has no row in.
+
+    A row at ``-inf`` without an event sorts first, opens no event time and has left every risk
+    set before the first real time, so the risk-set sums of :func:`batch_logrank_terms` and
+    :func:`_cox_event_terms` are those of the present rows alone. Returns ``(time, event, empty)``;
+    without padding the arrays themselves and ``empty = None`` (complete data: unchanged arithmetic).
+    ``empty`` (R,) marks the replicates with no present row in an arm: the per-replicate path
+    refuses them (:func:`survival_columns`), so the batch path hands them over.
+    """
+    if present is None:
+        return time, event, None
+    present = np.asarray(present, bool)
+    arm = np.broadcast_to(np.asarray(arm), present.shape)
+    empty = ~np.any(present & (arm == 0), axis=1) | ~np.any(present & (arm == 1), axis=1)
+    return np.where(present, time, -np.inf), np.where(present, event, 0), empty
+
+
 class LogRank(Analysis):
     """Log-rank test comparing the survival of two arms.
 
@@ -151,17 +169,19 @@ class LogRank(Analysis):
     layouts = ("survival",)
 
     def _supports(self, layout):
-        """No padding; both arms present, in a design shared by all replicates."""
-        return layout.present is None and "arm" in layout.shared and layout.labels == (0, 1)
+        """Both arms in a design shared by all replicates (padding rows, if any, are left out)."""
+        return "arm" in layout.shared and layout.labels == (0, 1)
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
-        time, event, arm = layout.time, layout.event, layout.shared["arm"]
+        arm = layout.shared["arm"]
+        time, event, empty = absent_first(layout.time, layout.event, layout.present, arm)
         u, v = np.empty(batch.size), np.empty(batch.size)
         step = max(1, _BLOCK_CELLS // max(arm.size, 1))  # bounds the memory of the sort-and-count arrays
         for s in range(0, batch.size, step):
             u[s:s + step], v[s:s + step] = batch_logrank_terms(time[s:s + step], event[s:s + step], arm)
-        return BatchResult(**{k: x for k, x in self._out(u, v).items() if k != "statistic"})
+        res = BatchResult(**{k: x for k, x in self._out(u, v).items() if k != "statistic"})
+        return res if empty is None else hand_over(self, batch, res, empty)
 
 
 def _cox_event_terms(time, event, arm, ties: str):
@@ -295,12 +315,13 @@ class Cox(Analysis):
     layouts = ("survival",)
 
     def _supports(self, layout):
-        """No padding or missing outcomes; both arms present, in a design shared by all replicates."""
-        return layout.complete and "arm" in layout.shared and layout.labels == (0, 1)
+        """No missing outcomes; both arms in a design shared by all replicates (padding rows are left out)."""
+        return not layout.missing and "arm" in layout.shared and layout.labels == (0, 1)
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
-        time, event, arm = layout.time, layout.event, np.asarray(layout.shared["arm"])
+        arm = np.asarray(layout.shared["arm"])
+        time, event, empty = absent_first(layout.time, layout.event, layout.present, arm)
         event = np.asarray(event, float)
         beta, info = np.empty(batch.size), np.empty(batch.size)
         ok = np.empty(batch.size, bool)
@@ -310,6 +331,10 @@ class Cox(Analysis):
             beta[sl], info[sl], ok[sl] = _cox_newton(*_cox_event_terms(time[sl], event[sl], arm, self.ties))
         # rows the per-replicate path would reject (it raises on them) go to it as well
         valid = np.all(np.isfinite(time) & (time >= 0) & ((event == 0) | (event == 1)), axis=1)
+        if empty is not None:  # padding rows sit at -inf (see absent_first): only present rows are checked
+            present = layout.present
+            valid = np.all(~present | (np.isfinite(layout.time) & (layout.time >= 0)), axis=1) & ~empty & \
+                np.all((event == 0) | (event == 1), axis=1)
         ok &= valid
         with np.errstate(all="ignore"):
             se = 1.0 / np.sqrt(info)

@@ -93,7 +93,7 @@ def _mc_error(frames: list[tuple[str, pd.DataFrame, str]]) -> list[str]:
 
 def _looks(doc: Document, run, out: Path) -> None:
     """A section per group-sequential analysis: its per-look table and a plot of boundaries and stopping."""
-    from ..analyses.groupseq import arm_sizes_of, looks_table
+    from ..analyses.groupseq import arm_sizes_of, looks_table, lost_text
 
     for name, an in run.scenario.analyses.items():
         if not getattr(an, "stopping_indicators", False) or name not in run.summaries:
@@ -105,7 +105,7 @@ def _looks(doc: Document, run, out: Path) -> None:
                 f"{overall['expected_n_mcse']:.2g}) of {overall['max_n']:g} {overall['expected_n_unit']}")
         if overall.get("bias") is not None:
             line += f"; bias of the naive estimate at stopping {overall['bias']:.4g} (MCSE {overall['bias_mcse']:.2g})"
-        doc.para(literal(line + "."))
+        doc.para(literal(line + lost_text(overall) + "."))
         doc.table(pd.DataFrame(rows).rename(columns={
             "look": "Look", "fraction": "Information fraction", "n": "Participants", "efficacy_z": "Efficacy z",
             "nominal_p": "Nominal p", "futility_z": "Futility z", "alpha_spent": "Alpha spent (cumulative)",
