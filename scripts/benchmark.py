@@ -1177,9 +1177,7 @@ def bench_groupseq_events(quick, repeats):
 ROWS = {"a": bench_ttest, "b": bench_mixed, "c": bench_mann_whitney, "d": bench_jobs, "e": bench_memory,
         "m": bench_missing, "x": bench_crossover, "o": bench_ordinal, "h": bench_glmm, "s": bench_stepped,
         "i": bench_mmrm, "g": bench_gee, "k": bench_cox, "n": bench_negbin, "r": bench_resampling,
-        "u": bench_pilot_units}
-        "i": bench_mmrm, "g": bench_gee, "k": bench_cox, "n": bench_negbin, "r": bench_resampling}
-ROWS["q"] = bench_groupseq_events
+        "u": bench_pilot_units, "q": bench_groupseq_events}
 
 
 def machine():
