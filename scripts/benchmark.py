@@ -67,6 +67,15 @@ k. Cox proportional hazards (Breslow ties), survival_two_arm with 100 per arm, c
    status=event).fit()`` on tables drawn before timing (fit time only). Checks on the loop's
    replicates that the estimates agree to 1e-6 relative and the decisions at 0.05 on >= 99.9%.
    Target >= 50 x.
+l. log-rank (survival_two_arm, 100 per arm, control median 10, hazard ratio 0.7, follow-up 16): the
+   batch path (each arm's sorted time-event keys merged by a compiled walk) through ``simpower.run``
+   with one job against a plain loop of statsmodels ``survdiff`` on the complete cases of tables drawn
+   before timing; l1 complete, l2 with 20% of the times missing completely at random. Interleaved
+   rounds, median rates; decisions at 0.05 checked on the loop's replicates. Target >= 50 x.
+q. 2x2 tables and GLMs, 100 per arm, complete (q1-q4) and 20% MCAR (q1m-q4m): chi_square and
+   fisher_exact against ``scipy.stats.chi2_contingency`` / ``fisher_exact`` on the observed 2x2 table,
+   logistic and poisson_glm against statsmodels ``GLM`` (binomial; Poisson with the log-exposure
+   offset) on the observed rows. Same timing and checks as row l. Target >= 50 x.
 e. peak memory (RSS) of a whole t-test run in a fresh subprocess for growing
    reps: the RSS the run adds (peak during the run minus RSS before it), and
    the bytes added per extra replicate (shown in the ratio column), for the
@@ -1283,7 +1292,7 @@ def print_table(rows, stream=sys.stdout):
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--quick", action="store_true", help="small sizes (a smoke run, not a measurement)")
-    ap.add_argument("--only", default="a,b,c,d,e,m,o,x,h,i,g,k,n", help="comma-separated rows to run, from " + ",".join(ROWS))
+    ap.add_argument("--only", default="a,b,c,d,e,m,o,x,h,i,g,k,n,l,q", help="comma-separated rows to run, from " + ",".join(ROWS))
     ap.add_argument("--json", default=None, help="write the rows and machine facts to this JSON file")
     ap.add_argument("--repeats", type=int, default=None, help="timing repeats per rate (best is kept)")
     args = ap.parse_args(argv)
