@@ -73,6 +73,15 @@ u. pilot data resampled whole units at a time (``pilot_units``; invented pilots 
    ``simpower.run`` with one job (the batch path) against the same analysis's per-replicate path
    called in a plain loop on tables drawn before timing; checks on the loop's replicates that the two
    paths agree (u1 to 1e-9, u2 to 1e-6 relative). Target >= 20 x (chosen here).
+l. log-rank (survival_two_arm, 100 per arm, control median 10, hazard ratio 0.7, follow-up 16): the
+   batch path (each arm's sorted time-event keys merged by a compiled walk) through ``simpower.run``
+   with one job against a plain loop of statsmodels ``survdiff`` on the complete cases of tables drawn
+   before timing; l1 complete, l2 with 20% of the times missing completely at random. Interleaved
+   rounds, median rates; decisions at 0.05 checked on the loop's replicates. Target >= 50 x.
+q. 2x2 tables and GLMs, 100 per arm, complete (q1-q4) and 20% MCAR (q1m-q4m): chi_square and
+   fisher_exact against ``scipy.stats.chi2_contingency`` / ``fisher_exact`` on the observed 2x2 table,
+   logistic and poisson_glm against statsmodels ``GLM`` (binomial; Poisson with the log-exposure
+   offset) on the observed rows. Same timing and checks as row l. Target >= 50 x.
 e. peak memory (RSS) of a whole t-test run in a fresh subprocess for growing
    reps: the RSS the run adds (peak during the run minus RSS before it), and
    the bytes added per extra replicate (shown in the ratio column), for the
@@ -1140,7 +1149,7 @@ def bench_pilot_units(quick, repeats):
         r["meets"] = bool(r["meets"] and ok)
         rows.append(r)
     return rows
-# -- (q) group-sequential looks at event counts -------------------------------------------------
+# -- (t) group-sequential looks at event counts -------------------------------------------------
 def _logrank_less(data):
     """The log-rank test as a user function (no batch path): reports the control-over-treatment log HR so its
     z counts upwards as `logrank` with alternative 'less' does."""
@@ -1169,15 +1178,171 @@ def bench_groupseq_events(quick, repeats):
                                                                 both.records["loop"].pvalues))
     note = (f"150 per arm, HR 0.75, looks at 40/70/100% of the events, predictive-probability futility; {reps} reps "
             f"batch, {loop} per replicate; stopping records {'identical' if ok else 'DIFFER'} on {loop} replicates")
-    out = row("q", name, ours, theirs, 2.0, note=note, answers_agree=ok)
+    out = row("t", name, ours, theirs, 2.0, note=note, answers_agree=ok)
     out["meets"] = bool(out["meets"] and ok)
     return [out]
+# -- (l) log-rank, (q) 2x2 tables and GLMs: engine vs the library loop, complete and 20% MCAR -----------
+def _interleaved(engine, loop, rounds):
+    """Median seconds of ``engine()`` and ``loop()`` over ``rounds`` interleaved calls (engine, loop, ...)."""
+    import statistics
+
+    times = {"engine": [], "loop": []}
+    for _ in range(rounds):
+        for key, fn in (("engine", engine), ("loop", loop)):
+            t0 = time.perf_counter()
+            fn()
+            times[key].append(time.perf_counter() - t0)
+    return statistics.median(times["engine"]), statistics.median(times["loop"])
+
+
+def _survival_mcar(rate):
+    """survival_two_arm (100 per arm, control median 10, HR 0.7, follow-up 16) with ``rate`` of the times
+    missing completely at random (NaN): the process has no ``missing`` field, so the benchmark hides them."""
+    from simpower.processes.design import apply_missing
+    from simpower.processes.survival import SurvivalTwoArm
+
+    class SurvivalMCAR(SurvivalTwoArm):  # no ``name``: not registered, the benchmark's own
+        def draw_batch(self, rng, size):
+            b = super().draw_batch(rng, size)
+            if rate > 0:
+                apply_missing(sp.MCAR(rate=rate), rng, b.per_rep["time"], {}, b.per_rep, b.info)
+            return b
+
+    return SurvivalMCAR(n=100, median=10.0, hazard_ratio=0.7, follow_up=16.0)
+
+
+def _library_rows(cases, reps, rounds):
+    """One row per case ``(key, label, process, analysis, loop size, library function table -> (p, estimate))``:
+    the engine (``simpower.run``, one job) against the plain loop of the library call on tables drawn
+    before timing; on the loop's replicates the decisions at 0.05 must agree on >= 99.9% and the
+    estimates (where the library gives one) to 1e-6 relative."""
+    from simpower.analyses.base import as_batch_result
+
+    # in-process and serial, as a registered scenario runs with one job (a process defined in this
+    # script would otherwise count as user code and run in a forked worker)
+    run = dict(reps=reps, seed=1, n_jobs=1, progress=False, backend="serial")
+    rows = []
+    for key, label, proc, an, loop, lib in cases:
+        sc = sp.Scenario(proc, an)
+        res = sp.run(sc, **run)
+        if res.paths[sc.primary] != "batch":
+            rows.append({"row": key, "measure": label, "ratio": None, "target": 50.0, "meets": None,
+                         "note": f"not available (the engine took the {res.paths[sc.primary]} path)"})
+            continue
+        batch = proc.draw_batch(np.random.default_rng(7), loop)
+        tables = [batch.replicate(i) for i in range(loop)]
+        ref = []
+
+        def library_loop():
+            ref.clear()
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                for tab in tables:
+                    ref.append(lib(tab))
+
+        t_engine, t_loop = _interleaved(lambda: sp.run(sc, **run),
+                                        library_loop, rounds)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            ours = as_batch_result(an.batch(batch))
+        p_lib = np.array([r[0] for r in ref], float)
+        same = float(np.mean((np.asarray(ours.pvalue) <= 0.05) == (p_lib <= 0.05)))
+        d_p = float(np.nanmax(np.abs(ours.pvalue - p_lib) / np.maximum(p_lib, 1e-300)))
+        if ref[0][1] is not None:
+            est_lib = np.array([r[1] for r in ref], float)
+            fin = np.isfinite(est_lib) & np.isfinite(ours.estimate)
+            d_est = float(np.max(np.abs(ours.estimate[fin] - est_lib[fin]) / np.maximum(np.abs(est_lib[fin]), 1e-3)))
+            est_note = f"max rel. estimate difference {d_est:.1e}"
+        else:
+            d_est, est_note = None, "no library estimate"
+        ok = same >= 0.999 and (d_est is None or d_est < 1e-6)
+        note = (f"{reps} reps, loop {loop}, median of {rounds} interleaved rounds; power {res.power:.3f}; on the loop's "
+                f"replicates: same decision {same:.2%}, max rel. p-value difference {d_p:.1e}, {est_note}; "
+                f"{'answers agree' if ok else 'ANSWERS DIFFER'}")
+        out = row(key, label, reps / t_engine, loop / t_loop, 50.0, note=note, decision_agreement=same,
+                  max_rel_pvalue_difference=d_p, max_rel_estimate_difference=d_est, answers_agree=ok)
+        out["meets"] = bool(out["meets"] and ok)
+        rows.append(out)
+    return rows
+
+
+def bench_logrank(quick, repeats):
+    """logrank's batch path against a loop of statsmodels ``survdiff`` (complete cases), 100 per arm."""
+    from statsmodels.duration.survfunc import survdiff
+
+    from simpower.registry import build
+
+    reps, loop = (2_000, 100) if quick else (20_000, 1_000)
+
+    def lib(tab):
+        ok = np.isfinite(tab["time"])  # the user's complete cases
+        return survdiff(tab["time"][ok], tab["event"][ok], tab["arm"][ok])[1], None
+
+    an = build("analysis", {"type": "logrank"})
+    complete = build("process", {"type": "survival_two_arm", "n": 100, "median": 10.0, "hazard_ratio": 0.7,
+                                 "follow_up": 16.0})
+    cases = [("l1", "log-rank (complete): batch vs survdiff loop", complete, an, loop, lib),
+             ("l2", "log-rank (20% MCAR): batch vs survdiff loop", _survival_mcar(0.2), an, loop, lib)]
+    return _library_rows(cases, reps, max(repeats, 3))
+
+
+def bench_tables_glm(quick, repeats):
+    """chi_square, fisher_exact, logistic and poisson_glm (100 per arm), complete and 20% MCAR,
+    against the loop a user writes: scipy ``chi2_contingency`` / ``fisher_exact`` on the 2x2 table,
+    statsmodels ``GLM`` (binomial; Poisson with the log-exposure offset) on the observed rows."""
+    import statsmodels.api as sm
+    from scipy import stats
+
+    from simpower.registry import build
+
+    reps = 4_000 if quick else 40_000
+    small, large = (40, 200) if quick else (300, 2_000)
+
+    def table(tab):
+        ok = np.isfinite(tab["y"])
+        y, arm = tab["y"][ok], tab["arm"][ok]
+        x1, n1 = y[arm == 1].sum(), np.sum(arm == 1)
+        x0, n0 = y[arm == 0].sum(), np.sum(arm == 0)
+        return [[x1, n1 - x1], [x0, n0 - x0]]
+
+    def chi2(tab):
+        return stats.chi2_contingency(table(tab)).pvalue, None
+
+    def fisher(tab):
+        return stats.fisher_exact(table(tab)).pvalue, None
+
+    def glm(family, offset=False):
+        def f(tab):
+            ok = np.isfinite(tab["y"])
+            exog = sm.add_constant(np.asarray(tab["arm"], float)[ok])
+            kw = {"offset": np.log(tab["exposure"][ok])} if offset else {}
+            fit = sm.GLM(tab["y"][ok], exog, family=family, **kw).fit()
+            return fit.pvalues[1], fit.params[1]
+        return f
+
+    mcar = {"missing": {"type": "mcar", "rate": 0.2}}
+    binary = {"type": "binary_two_arm", "n": 100, "p0": 0.3, "odds_ratio": 1.8}
+    count = {"type": "count_two_arm", "n": 100, "rate0": 1.2, "rate_ratio": 0.8}
+    cases = []
+    for suffix, label, extra in (("", "complete", {}), ("m", "20% MCAR", mcar)):
+        b, c = build("process", {**binary, **extra}), build("process", {**count, **extra})
+        cases += [
+            (f"q1{suffix}", f"chi-square ({label}): batch vs chi2_contingency", b,
+             build("analysis", {"type": "chi_square"}), large, chi2),
+            (f"q2{suffix}", f"Fisher exact ({label}): batch vs fisher_exact", b,
+             build("analysis", {"type": "fisher_exact"}), large, fisher),
+            (f"q3{suffix}", f"logistic ({label}): batch vs statsmodels GLM", b,
+             build("analysis", {"type": "logistic"}), small, glm(sm.families.Binomial())),
+            (f"q4{suffix}", f"Poisson GLM ({label}): batch vs statsmodels GLM", c,
+             build("analysis", {"type": "poisson_glm"}), small, glm(sm.families.Poisson(), offset=True)),
+        ]
+    return _library_rows(cases, reps, max(repeats, 3))
 
 
 ROWS = {"a": bench_ttest, "b": bench_mixed, "c": bench_mann_whitney, "d": bench_jobs, "e": bench_memory,
         "m": bench_missing, "x": bench_crossover, "o": bench_ordinal, "h": bench_glmm, "s": bench_stepped,
         "i": bench_mmrm, "g": bench_gee, "k": bench_cox, "n": bench_negbin, "r": bench_resampling,
-        "u": bench_pilot_units, "q": bench_groupseq_events}
+        "u": bench_pilot_units, "t": bench_groupseq_events, "l": bench_logrank, "q": bench_tables_glm}
 
 
 def machine():
@@ -1225,7 +1390,7 @@ def print_table(rows, stream=sys.stdout):
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--quick", action="store_true", help="small sizes (a smoke run, not a measurement)")
-    ap.add_argument("--only", default="a,b,c,d,e,m,o,x,h,i,g,k,n", help="comma-separated rows to run, from " + ",".join(ROWS))
+    ap.add_argument("--only", default="a,b,c,d,e,m,o,x,h,i,g,k,n,l,q", help="comma-separated rows to run, from " + ",".join(ROWS))
     ap.add_argument("--json", default=None, help="write the rows and machine facts to this JSON file")
     ap.add_argument("--repeats", type=int, default=None, help="timing repeats per rate (best is kept)")
     args = ap.parse_args(argv)

@@ -41,9 +41,10 @@ def two_by_two(data) -> tuple[int, int, int, int]:
 
 def _binary_outcomes(layout) -> bool:
     """The two-arm layout's finite outcomes are all 0 or 1 (padding and missing values allowed)."""
-    y = layout.y
-    ok = np.isfinite(y)
-    return bool(np.all((y[ok] == 0) | (y[ok] == 1)))
+    y = np.asarray(layout.y)
+    with np.errstate(all="ignore"):
+        square = y * y == y  # True exactly at 0, 1 and +inf (False at NaN); values not finite are ignored
+    return bool(square.all() or not np.any(~square & np.isfinite(y)))
 
 
 class _Binary(Analysis):
@@ -57,10 +58,21 @@ def batch_two_by_two(batch):
     """Arrays ``(x0, n0, x1, n1)`` over the replicates of a batch (padding and NaN dropped)."""
     layout = batch.layout("two_arm")
     y = layout.y
-    arm = np.broadcast_to(layout.arm, y.shape)
     ok = layout.observed
-    yy = np.where(ok, y, 0.0)
-    is1 = arm == 1
+    every = bool(ok.all())
+    yy = y if every else np.where(ok, y, 0.0)
+    if np.ndim(layout.arm) == 1:  # shared arms: sums as products with the arm indicator (exact: 0/1 counts)
+        w1 = (np.asarray(layout.arm) == 1).astype(float)
+        x1 = yy @ w1
+        x0 = yy.sum(axis=1) - x1
+        if every:
+            n1 = np.full(y.shape[0], w1.sum())
+            n0 = np.full(y.shape[0], float(y.shape[1])) - n1
+        else:
+            n1 = ok.astype(float) @ w1
+            n0 = np.count_nonzero(ok, axis=1) - n1
+        return x0, n0, x1, n1
+    is1 = np.asarray(layout.arm) == 1
     x1 = np.sum(yy * is1, axis=1)
     n1 = np.sum(ok & is1, axis=1)
     x0 = np.sum(yy, axis=1) - x1
@@ -205,6 +217,16 @@ def _log_choose(n, k):
     return special.gammaln(n + 1) - special.gammaln(k + 1) - special.gammaln(n - k + 1)
 
 
+def _log_choose_table(lf, n, k):
+    """``_log_choose(n, k)`` for whole numbers ``0 <= k <= n`` from ``lf[j] = gammaln(j + 1)``: the same
+    three log-gamma values, looked up instead of computed, subtracted in the same order (same floats).
+    Entries outside that range are arbitrary (the caller masks them)."""
+    n = n.astype(np.intp)
+    k = k.astype(np.intp)
+    top = lf.size - 1
+    return lf[np.clip(n, 0, top)] - lf[np.clip(k, 0, top)] - lf[np.clip(n - k, 0, top)]
+
+
 def fisher_pvalues(x0, n0, x1, n1, alternative):
     """Exact conditional p-values of 2x2 tables, vectorised; NaN marks near-ties left to scipy.
 
@@ -224,14 +246,16 @@ def fisher_pvalues(x0, n0, x1, n1, alternative):
     width = int(n1.max()) + 1
     step = max(1, _GRID_CELLS // width)
     grid = np.arange(width, dtype=float)
+    lf = special.gammaln(np.arange(int(total.max()) + 1 if total.size else 1, dtype=float) + 1)
     for s in range(0, x0.size, step):
         sl = slice(s, s + step)
         kk, aa, bb, xo = k[sl, None], n1[sl, None], n0[sl, None], x1[sl, None]
         inside = (grid <= aa) & (grid <= kk) & (kk - grid <= bb)
         with np.errstate(all="ignore"):
-            logp = _log_choose(aa, grid) + _log_choose(bb, kk - grid) - _log_choose(aa + bb, kk)
+            whole = _log_choose_table(lf, aa + bb, kk)
+            logp = _log_choose_table(lf, aa, grid) + _log_choose_table(lf, bb, kk - grid) - whole
             logp = np.where(inside, logp, -np.inf)
-            lobs = _log_choose(aa, xo) + _log_choose(bb, kk - xo) - _log_choose(aa + bb, kk)
+            lobs = _log_choose_table(lf, aa, xo) + _log_choose_table(lf, bb, kk - xo) - whole
             prob = np.exp(logp)
             if alternative == "less":
                 p = np.sum(prob * (grid <= xo), axis=1)

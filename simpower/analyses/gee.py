@@ -89,6 +89,15 @@ def _mean_parts(family: str, eta):
     return mu, mu, np.abs(mu)
 
 
+def _mean(family: str, eta):
+    """``mu`` alone, computed exactly as :func:`_mean_parts` computes it."""
+    if family == "gaussian":
+        return eta
+    if family == "binomial":
+        return 1.0 / (1.0 + np.exp(-eta))
+    return np.exp(eta)
+
+
 def _irls_parts(family: str, mu):
     """IRLS weights ``1 / (g'(mu)^2 v(mu))`` and ``g'(mu)`` of statsmodels' GLM (clipped as there)."""
     if family == "binomial":
@@ -107,16 +116,18 @@ def _link(family: str, mu):
 
 
 def _deviance(family: str, y, mu, obs):
-    """Deviance per replicate (statsmodels' ``_resid_dev`` with its clipping), observed rows only."""
+    """Deviance per replicate (statsmodels' ``_resid_dev`` with its clipping), observed rows only (``obs``
+    None: every row)."""
     if family == "binary":             # 0/1 outcomes: the same terms, one log per value
-        return -2.0 * np.where(obs, np.log(np.where(y > 0.5, mu + 1e-20, 1.0 - mu + 1e-20)), 0.0).sum(axis=1)
+        terms = np.log(np.where(y > 0.5, mu + 1e-20, 1.0 - mu + 1e-20))
+        return -2.0 * (terms if obs is None else np.where(obs, terms, 0.0)).sum(axis=1)
     if family == "binomial":
         a = np.clip(y / (mu + 1e-20), EPS, np.inf)
         b = np.clip((1.0 - y) / (1.0 - mu + 1e-20), EPS, np.inf)
         d = y * np.log(a) + (1 - y) * np.log(b)
     else:
         d = y * np.log(np.clip(y / mu, EPS, np.inf)) - (y - mu)
-    return 2.0 * np.where(obs, d, 0.0).sum(axis=1)
+    return 2.0 * (d if obs is None else np.where(obs, d, 0.0)).sum(axis=1)
 
 
 # -- designs: the sums the fit needs, for shared or per-replicate design columns ----------------
@@ -492,6 +503,7 @@ class _GeeBatch:
     def __init__(self, family, cov_struct, design, y, obs, maxiter):
         self.family, self.exchangeable, self.maxiter = family, cov_struct == "exchangeable", maxiter
         self.design, self.obs = design, obs
+        self.every = bool(obs.all())  # every row observed: masks need not be applied
         self.y = np.where(obs, y, 0.0)
         R = y.shape[0]
         self.p = design.p
@@ -539,23 +551,31 @@ class _GeeBatch:
         kind = "binary" if self.family == "binomial" and np.all((y == 0) | (y == 1)) else self.family
         dev_old = _deviance(kind, y, mu, obs)
         done = np.zeros(R, bool)
+        every = self.every  # no masking needed: np.where(obs, x, 0) is x itself
         for _ in range(GLM_MAXITER):
             idx = np.flatnonzero(~done & ~self.bad)
             if idx.size == 0:
                 break
-            w, d = _irls_parts(self.family, mu[idx])
-            z = eta[idx] + d * (y[idx] - mu[idx])
-            beta, ok = self._wls(idx, np.where(obs[idx], w, 0.0), np.where(obs[idx], z, 0.0))
+            sel = slice(None) if idx.size == R else idx  # all replicates: views instead of copies
+            y_s, mu_s, obs_s = y[sel], mu[sel], obs[sel]
+            w, d = _irls_parts(self.family, mu_s)
+            z = eta[sel] + d * (y_s - mu_s)
+            if not every:
+                w, z = np.where(obs_s, w, 0.0), np.where(obs_s, z, 0.0)
+            beta, ok = self._wls(idx, w, z)
             self.bad[idx[~ok]] = True
-            self.beta[idx] = beta
-            eta[idx] = self._eta(idx, beta)
-            mu[idx] = _mean_parts(self.family, eta[idx])[0]
-            dev = _deviance(kind, y[idx], mu[idx], obs[idx])
+            self.beta[sel] = beta
+            eta_s = self._eta(idx, beta)
+            eta[sel] = eta_s
+            mu_s = _mean(self.family, eta_s)
+            mu[sel] = mu_s
+            dev = _deviance(kind, y_s, mu_s, None if every else obs_s)
             # statsmodels warns of perfect separation when every fitted mean is within 1e-8 of its outcome
-            sep = ~np.any(obs[idx] & (np.abs(mu[idx] - y[idx]) > 1e-8), axis=1)
+            far = np.abs(mu_s - y_s) > 1e-8
+            sep = ~np.any(far if every else obs_s & far, axis=1)
             self.bad[idx[sep]] = True
-            conv = np.abs(dev - dev_old[idx]) <= GLM_TOL
-            dev_old[idx] = dev
+            conv = np.abs(dev - dev_old[sel]) <= GLM_TOL
+            dev_old[sel] = dev
             done[idx[conv]] = True
         self.bad |= ~done
 
@@ -566,12 +586,13 @@ class _GeeBatch:
         ``update`` (mask over ``rows``): first re-estimate the exchangeable correlation of those
         replicates at these means (written to ``self.alpha``), as statsmodels does between steps.
         """
-        obs = self.obs[rows]
         eta = self._eta(rows, beta)
         mu, dmu, v = _mean_parts(self.family, eta)
         sd = np.sqrt(v)
-        w = np.where(obs, dmu / sd, 0.0)                             # rows of D scaled by 1 / sd
-        r1 = np.where(obs, (self.y[rows] - mu) / sd, 0.0)            # Pearson residuals
+        w, r1 = dmu / sd, (self.y[rows] - mu) / sd                  # rows of D scaled by 1 / sd; Pearson residuals
+        if not self.every:
+            obs = self.obs[rows]
+            w, r1 = np.where(obs, w, 0.0), np.where(obs, r1, 0.0)
         d = self.design
         sD = d.gx(w, rows)                                           # (r, G, p)
         sr = d.gsum(r1, rows)                                        # (r, G)

@@ -17,6 +17,7 @@ events out of ``r_j`` at risk (``d1_j``, ``r1_j`` in arm 1):
 from __future__ import annotations
 
 import math
+import os
 import warnings
 
 import numpy as np
@@ -36,10 +37,16 @@ _COX_TOL = 1e-10
 
 
 def survival_columns(data):
-    """``time``, ``event`` (0/1 float) and ``arm`` (0/1 float) of one replicate."""
+    """``time``, ``event`` (0/1 float) and ``arm`` (0/1 float) of one replicate's participants with a time.
+
+    Rows whose ``time`` is missing (NaN) are left out; other bad values raise ``ValueError``.
+    """
     time = np.asarray(data["time"], float)
     event = np.asarray(data["event"], float)
     arm = np.asarray(data["arm"])
+    seen = ~np.isnan(time)  # a missing follow-up time (NaN): that participant is left out (complete cases)
+    if not seen.all():
+        time, event, arm = time[seen], event[seen], arm[seen]
     levels = set(np.unique(arm).tolist())
     if levels != {0, 1}:
         raise ValueError(f"two-arm analyses need arm labels 0 and 1; got {sorted(levels)}")
@@ -66,16 +73,22 @@ def logrank_terms(time, event, arm) -> tuple[float, float]:
     return u, v
 
 
-def batch_logrank_terms(time, event, arm):
-    """``(U, V)`` arrays over replicates (rows of ``time``, ``event``), vectorised.
+def batch_logrank_terms(time, event, arm, observed=None):
+    """``(U, V)`` arrays over replicates (rows of ``time``, ``event``), vectorised with numpy.
 
-    Each row is sorted by time; a run of equal times is one risk-set time,
-    whose number at risk is the count of rows from the run's first position
-    on. Event counts per run come from ``bincount`` over (row, run) labels.
+    ``arm`` is shared (N,) or per replicate (R, N); ``observed`` (R, N) marks the rows that
+    take part (None: all). Unobserved rows are moved to the end of each row (time +inf) and
+    count neither at risk nor as events. Each row is sorted by time; a run of equal times is
+    one risk-set time, whose numbers at risk are the observed rows from the run's first
+    position on. Event counts per run come from ``bincount`` over (row, run) labels.
     """
     size, m = time.shape
-    order = np.argsort(time, axis=1, kind="stable")
-    t = np.take_along_axis(time, order, axis=1)
+    if observed is None:
+        t_in, w = time, None
+    else:
+        t_in, w = np.where(observed, time, np.inf), np.asarray(observed, float)
+    order = np.argsort(t_in, axis=1, kind="stable")
+    t = np.take_along_axis(t_in, order, axis=1)
     d = np.take_along_axis(np.asarray(event, float), order, axis=1)
     a = np.broadcast_to(np.asarray(arm, float), time.shape)
     a = np.take_along_axis(a, order, axis=1)
@@ -84,12 +97,17 @@ def batch_logrank_terms(time, event, arm):
     run = np.cumsum(start, axis=1) - 1
     label = (run + m * np.arange(size)[:, None]).ravel()
     nbin = size * m
+    if w is None:
+        at_risk = m - np.broadcast_to(np.arange(m), (size, m))
+    else:
+        ws = np.take_along_axis(w, order, axis=1)
+        d, a = d * ws, a * ws
+        at_risk = ws.sum(axis=1, keepdims=True) - (np.cumsum(ws, axis=1) - ws)
     dj = np.bincount(label, weights=d.ravel(), minlength=nbin).reshape(size, m)
     d1j = np.bincount(label, weights=(d * a).ravel(), minlength=nbin).reshape(size, m)
-    pos = np.broadcast_to(np.arange(m), (size, m))
     before1 = np.cumsum(a, axis=1) - a
     total1 = a.sum(axis=1, keepdims=True)
-    rj = np.bincount(label, weights=np.where(start, m - pos, 0).ravel(), minlength=nbin).reshape(size, m)
+    rj = np.bincount(label, weights=np.where(start, at_risk, 0).ravel(), minlength=nbin).reshape(size, m)
     r1j = np.bincount(label, weights=np.where(start, total1 - before1, 0).ravel(), minlength=nbin).reshape(size, m)
     with np.errstate(all="ignore"):
         u = np.sum(np.where(rj > 0, d1j - r1j * dj / rj, 0.0), axis=1)
@@ -113,6 +131,55 @@ def absent_first(time, event, present, arm):
     arm = np.broadcast_to(np.asarray(arm), present.shape)
     empty = ~np.any(present & (arm == 0), axis=1) | ~np.any(present & (arm == 1), axis=1)
     return np.where(present, time, -np.inf), np.where(present, event, 0), empty
+
+
+def logrank_backend() -> str:
+    """Which path computes the batch log-rank sums now: 'numba' (the sorted-arms merge) or 'numpy'.
+
+    'numba' when numba is importable and ``SIMPOWER_NO_NUMBA`` is unset (or 0, false, no); read
+    at each call. The two paths agree to rounding (about 1e-15 relative).
+    """
+    if os.environ.get("SIMPOWER_NO_NUMBA", "").strip().lower() not in ("", "0", "false", "no"):
+        return "numpy"
+    from . import _survival_kernels  # imports numba (if there) on first use only
+
+    return "numba" if _survival_kernels.HAVE_NUMBA else "numpy"
+
+
+def merged_logrank_terms(time, event, arm, observed=None):
+    """``(U, V)`` arrays over replicates by the compiled merge of each arm's sorted keys.
+
+    Same inputs as :func:`batch_logrank_terms` (times finite and >= 0 and events 0/1 where
+    observed); see :mod:`simpower.analyses._survival_kernels`.
+    """
+    from . import _survival_kernels as kern
+
+    size = time.shape[0]
+    arm = np.asarray(arm)
+    if arm.ndim == 1:  # shared design: each arm's columns, sorted apart
+        cols = (np.flatnonzero(arm == 0), np.flatnonzero(arm == 1))
+        keys, counts = [], []
+        for c in cols:
+            take = None if observed is None else observed[:, c]
+            keys.append(np.sort(kern.time_event_keys(time[:, c], event[:, c], take), axis=1))
+            counts.append(np.full(size, c.size, np.int64) if take is None else take.sum(axis=1))
+    else:  # arms per replicate: the other arm's rows take no part in an arm's keys
+        keys, counts = [], []
+        for label in (0, 1):
+            take = arm == label if observed is None else (arm == label) & observed
+            keys.append(np.sort(kern.time_event_keys(time, event, take), axis=1))
+            counts.append(take.sum(axis=1))
+    u, v = np.empty(size), np.empty(size)
+    kern.merge_terms(keys[0], keys[1], counts[0].astype(np.int64), counts[1].astype(np.int64), u, v)
+    return u, v
+
+
+def _plain(time, event) -> bool:
+    """Every time finite and >= 0 and every event 0 or 1 (whole-array reductions, no per-row masks)."""
+    with np.errstate(invalid="ignore"):
+        if time.size == 0 or not (time.min() >= 0 and np.isfinite(time.max())):
+            return False
+    return bool(event.min() >= 0 and event.max() <= 1 and (event.dtype.kind in "iub" or np.all(event == np.round(event))))
 
 
 class LogRank(Analysis):
@@ -169,19 +236,40 @@ class LogRank(Analysis):
     layouts = ("survival",)
 
     def _supports(self, layout):
-        """Both arms in a design shared by all replicates (padding rows, if any, are left out)."""
-        return "arm" in layout.shared and layout.labels == (0, 1)
+        """Both arm labels in the design (shared or per replicate); padding and missing times are honoured."""
+        return layout.labels == (0, 1)
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
-        arm = layout.shared["arm"]
-        time, event, empty = absent_first(layout.time, layout.event, layout.present, arm)
+        time, arm = np.asarray(layout.time, float), np.asarray(layout.arm)
+        event = np.asarray(layout.event)
+        observed = None if layout.complete else layout.observed
+        # replicates the per-replicate path refuses (it raises): a bad time or event among the rows
+        # it keeps (present, time not NaN), or an arm without any such row; they are handed to it
+        if observed is None and arm.ndim == 1 and _plain(time, event):  # complete, shared arms, values fine
+            refused, take = np.zeros(batch.size, bool), None
+        else:
+            keep = ~np.isnan(time) if layout.present is None else layout.present & ~np.isnan(time)
+            with np.errstate(invalid="ignore"):
+                good = np.isfinite(time) & (time >= 0) & ((event == 0) | (event == 1))
+            refused = np.any(keep & ~good, axis=1)
+            for label in (0, 1):
+                refused |= ~np.any(keep & (arm == label), axis=1)
+            take = keep & good & ~refused[:, None]
+        terms = merged_logrank_terms if logrank_backend() == "numba" else batch_logrank_terms
         u, v = np.empty(batch.size), np.empty(batch.size)
-        step = max(1, _BLOCK_CELLS // max(arm.size, 1))  # bounds the memory of the sort-and-count arrays
+        step = max(1, _BLOCK_CELLS // max(time.shape[1], 1))  # bounds the memory of the sort-and-count arrays
         for s in range(0, batch.size, step):
-            u[s:s + step], v[s:s + step] = batch_logrank_terms(time[s:s + step], event[s:s + step], arm)
-        res = BatchResult(**{k: x for k, x in self._out(u, v).items() if k != "statistic"})
-        return res if empty is None else hand_over(self, batch, res, empty)
+            sl = slice(s, s + step)
+            u[sl], v[sl] = terms(time[sl], event[sl], arm if arm.ndim == 1 else arm[sl],
+                                 None if take is None else take[sl])
+        out = self._out(u, v)
+        none = ~(v > 0)  # no event, or none with two at risk: the per-replicate path gives p = NaN only
+        if none.any():
+            for k in out:
+                out[k] = np.where(none, np.nan, out[k])
+        res = BatchResult(**{k: x for k, x in out.items() if k != "statistic"})
+        return hand_over(self, batch, res, refused)
 
 
 def _cox_event_terms(time, event, arm, ties: str):
