@@ -39,6 +39,12 @@ log link), which carries its own effect (``outcome.odds_ratio``,
 on the link scale, eta = beta0 + beta1 arm + sigma_b u_c, with sigma_b from the
 design's ``icc`` on the layer's ``icc_scale``; under ``arms`` the layer draws
 exactly what ``binary_two_arm`` / ``count_two_arm`` draw with the same fields.
+Two more layers: ``time_to_event`` (:mod:`simpower.processes.event_outcomes`:
+Weibull proportional hazards, a log-normal frailty on the log hazard under
+``clusters``; under ``arms`` the draws of ``survival_two_arm``) and
+``ordinal`` (:mod:`simpower.processes.ordinal_outcomes`: proportional odds, a
+random intercept on the latent logit scale; under ``arms`` the draws of
+``ordinal_two_arm``).
 """
 
 from __future__ import annotations
@@ -177,7 +183,8 @@ class OutcomeOrLayer(Nested):
         super().__init__("outcome")
 
     def describe(self) -> str:
-        return "an outcome (object or {type = ...} table), or a `binary` / `count` outcome layer"
+        return ("an outcome (object or {type = ...} table), or an outcome layer (`binary`, `count`, `time_to_event`, "
+                "`ordinal`)")
 
     def clean(self, name, value):
         if isinstance(value, GLMOutcome):
@@ -234,6 +241,9 @@ class Trial(Process):
                 if self._p[field] != default:
                     raise ParameterError(f"`{field}` does not apply to a {self.outcome.name} outcome, which carries "
                                          f"its effect (`outcome.{self.outcome.effect_param}`): remove `{field}`.")
+            if self.missing is not None and not self.outcome.takes_missing:
+                raise ParameterError(f"`missing` does not apply to a {self.outcome.name} outcome, which is censored "
+                                     "instead (loss to follow-up: `outcome.dropout_rate`): remove `missing`.")
             sigma = self.outcome.sigma_for(self.design.icc) if isinstance(self.design, Clusters) else 0.0
             object.__setattr__(self, "_lin", self.outcome.solve(sigma))
             columns |= set(self.outcome.columns)
@@ -266,7 +276,7 @@ class Trial(Process):
 
     @property
     def estimand_label(self) -> str:  # type: ignore[override]
-        return self.outcome.estimand_label if self.layered else "mean difference"
+        return self.outcome.label_for(self._lin) if self.layered else "mean difference"
 
     def null_value(self):
         if self.layered:
@@ -275,7 +285,8 @@ class Trial(Process):
 
     def true_effect(self):
         if self.layered:
-            return float(self.outcome.true_effect(self._lin))
+            value = self.outcome.true_effect(self._lin)
+            return None if value is None else float(value)
         if self.effect_type == "shift":
             return float(self.effect)
         if self.effect_type == "d":
@@ -317,7 +328,7 @@ class Trial(Process):
         u_rows = lay.get("u_rows") if lin.sigma > 0 else None
         arm = lay["arm"]
         y, shared, per_rep, cov = self.outcome.draw(rng, lin, arm, u_rows, size, lay["width"])
-        per_rep = {**per_rep, "y": y, **lay["per_rep"]}
+        per_rep = {**per_rep, **({} if y is None else {"y": y}), **lay["per_rep"]}
         shared = {**lay["shared"], **shared}
         info = dict(lay["info"])
         covariates = {**lay.get("covariates", {"arm": arm}), **cov}
@@ -343,6 +354,9 @@ class Trial(Process):
         if self.missing is not None:
             return ()
         d = self.design
+        own = self.outcome.facts_for(self._lin, d) if self.layered else None
+        if own is not None:
+            return own
         if isinstance(self.outcome, BinaryOutcome):
             lin = self._lin
             if isinstance(d, Arms):
@@ -372,7 +386,8 @@ class Trial(Process):
             parts = [design, f"outcome: {self.outcome.describe(lin)}"]
             if self.missing is not None:
                 parts.append(self.missing.describe())
-            parts.append(f"estimand: {self.estimand_label} = {self.true_effect():.4g}")
+            if self.true_effect() is not None:
+                parts.append(f"estimand: {self.estimand_label} = {self.true_effect():.4g}")
             return "; ".join(parts)
         parts = [self.design.describe(), f"outcome {self.outcome.describe()}",
                  _describe_effect(self.effect, self.effect_type, self.outcome)]

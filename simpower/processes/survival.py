@@ -14,8 +14,9 @@ loses ``dropout_fraction`` of participants by ``dropout_time``:
 ``-log(1 - fraction) / time``).
 
 The long table has columns ``time`` (from entry to event or censoring),
-``event`` (1 event, 0 censored) and ``arm`` (0 control, 1 treatment, control
-rows first).
+``event`` (1 event, 0 censored), ``entry`` (calendar time of enrolment,
+``accrual`` times the uniform entry variate) and ``arm`` (0 control, 1
+treatment, control rows first).
 """
 
 from __future__ import annotations
@@ -208,7 +209,8 @@ class SurvivalTwoArm(TwoArms, Process):
         time = np.minimum(t, cens)
         if self.time_resolution is not None:
             time = np.ceil(time / self.time_resolution) * self.time_resolution
-        return Batch(size, {"time": time, "event": event}, {"arm": arm}, info=self.arm_info())
+        return Batch(size, {"time": time, "event": event, "entry": self.accrual * u_entry}, {"arm": arm},
+                     info=self.arm_info())
 
     def describe(self):
         dist = "exponential" if self.shape == 1 else f"Weibull (shape {self.shape:g})"
