@@ -298,3 +298,29 @@ def test_ordinal_null_with_treated_probabilities_and_the_search_size():
     null = proc.null()
     assert list(null.outcome.p1) == [0.3, 0.4, 0.3] and null.true_values()["probability_index"] == pytest.approx(0.5)
     assert sp.Scenario(proc, sp.MannWhitney()).with_params(**{"design.clusters": 9}).process.design.clusters == 9
+
+
+# -- the reference page and the docstrings --------------------------------------------------------------
+def test_reference_page_examples_load_and_its_numbers_hold():
+    import re
+    from pathlib import Path
+
+    text = (Path(__file__).resolve().parents[1] / "docs" / "reference-event-ordinal-layers.md").read_text()
+    blocks = re.findall(r"^```toml\n(.*?)^```$", text, re.S | re.M)
+    assert len(blocks) == 2
+    tte = loads(blocks[0] + '\n[analysis]\ntype = "logrank"\n').scenario.process
+    assert tte.outcome.name == "time_to_event" and tte.linear.sigma == pytest.approx(0.294, abs=5e-4)
+    assert math.sqrt(0.2 / 0.8 * math.pi**2 / 6) == pytest.approx(0.641, abs=5e-4)
+    ordinal = loads(blocks[1]).scenario.process
+    assert ordinal.linear.sigma == pytest.approx(0.605, abs=5e-4)
+    assert np.allclose(ordinal.linear.probs1, [0.114, 0.231, 0.331, 0.324], atol=5e-4)
+    assert ordinal.true_values()["probability_index"] == pytest.approx(0.599, abs=5e-4)
+
+
+def test_the_docstring_examples_hold():
+    import doctest
+
+    import simpower.processes.event_outcomes
+
+    result = doctest.testmod(simpower.processes.event_outcomes, optionflags=doctest.NORMALIZE_WHITESPACE)
+    assert result.attempted > 0 and result.failed == 0

@@ -123,10 +123,10 @@ class TimeToEventOutcome(GLMOutcome):
 
     Examples
     --------
-    A latent ICC of 0.05 is a frailty SD of 0.295 on the log-hazard scale:
+    A latent ICC of 0.05 is a frailty SD of 0.294 on the log-hazard scale:
 
     >>> round(frailty_sigma(0.05), 3)
-    0.295
+    0.294
     """
 
     name = "time_to_event"
