@@ -324,3 +324,24 @@ def test_the_docstring_examples_hold():
 
     result = doctest.testmod(simpower.processes.event_outcomes, optionflags=doctest.NORMALIZE_WHITESPACE)
     assert result.attempted > 0 and result.failed == 0
+
+
+@pytest.mark.parametrize("outcome", [{"type": "time_to_event", "median": 2.0, "hazard_ratio": 0.5},
+                                     {"type": "ordinal", "p0": [0.3, 0.4, 0.3], "odds_ratio": 3.0}])
+def test_individual_randomisation_without_cluster_variation(outcome):
+    # icc = 0 with arms varying by replicate: no cluster effect, the treated rows still get the effect
+    proc = trial({"type": "clusters", "clusters": 10, "cluster_size": 20, "icc": 0.0, "randomise": "individual"},
+                 outcome)
+    b = proc.draw_batch(np.random.default_rng(59), 200)
+    assert b["arm"].ndim == 2
+    col = "event" if outcome["type"] == "time_to_event" else "y"
+    treated = b["arm"] == 1
+    # exponential, no censoring: P(T1 > T0) = 1 / (1 + HR); ordinal: the mean category moves up
+    if col == "event":
+        assert np.all(b["event"] == 1)
+        t0 = np.where(~treated, b["time"], 0).sum(axis=1) / (~treated).sum(axis=1)
+        t1 = np.where(treated, b["time"], 0).sum(axis=1) / treated.sum(axis=1)
+        within_4_mcse(t1 / t0, 2.0 * (200 / 199))  # mean ratio 1/HR; E[1/mean of n exponentials] = n/(n-1)
+    else:
+        shares = (np.where(treated, b["y"], 0).sum(axis=1) / treated.sum(axis=1))
+        within_4_mcse(shares, float(np.arange(3) @ proc.linear.probs1))

@@ -220,10 +220,10 @@ class TimeToEventOutcome(GLMOutcome):
         u_entry = rng.random((size, width))
         e_loss = rng.standard_exponential((size, width))
         lam = self.rate0
-        if u_rows is None:  # independent participants: survival_two_arm's arithmetic, step for step
+        if u_rows is None and arm.ndim == 1:  # independent participants: survival_two_arm's arithmetic
             e_event[:, arm == 1] /= self.hazard_ratio
         else:
-            e_event /= np.exp(lin.beta0 + lin.beta1 * arm + lin.sigma * u_rows)
+            e_event /= np.exp(lin.beta0 + lin.beta1 * arm + (0.0 if u_rows is None else lin.sigma * u_rows))
         t = e_event if self.shape == 1 else e_event ** (1.0 / self.shape)
         t /= lam
         cens = np.full((size, width), math.inf)

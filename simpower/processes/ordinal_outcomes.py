@@ -202,7 +202,7 @@ class OrdinalOutcome(GLMOutcome):
     # -- drawing ------------------------------------------------------------------------
     def draw(self, rng, lin, arm, u_rows, size, width):
         u = rng.random((size, width))
-        if u_rows is None:  # independent participants: ordinal_two_arm's arithmetic (category = cuts at or below u)
+        if u_rows is None and arm.ndim == 1:  # independent participants: ordinal_two_arm's arithmetic
             y = np.empty(u.shape)
             for label, probs in ((0, self.p0_probs), (1, self.nominal_p1)):
                 rows = arm == label
@@ -210,7 +210,7 @@ class OrdinalOutcome(GLMOutcome):
             return y, {}, {}, {}
         y = np.zeros(u.shape)
         treated = np.broadcast_to(arm == 1, u.shape)
-        shift = lin.sigma * u_rows
+        shift = 0.0 if u_rows is None else lin.sigma * u_rows
         for c0, c1 in zip(lin.cuts0, lin.cuts1):
             y += u >= expit(np.where(treated, c1, c0) - shift)
         return y, {}, {}, {}
