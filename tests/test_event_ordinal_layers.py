@@ -105,6 +105,16 @@ def test_schoenfeld_cross_check_applies_under_arms():
     assert abs(res.power - power) < 4 * math.sqrt(power * (1 - power) / 1000), (res.power, power)
 
 
+def inverse_cdf_draws(rng, size, n0, n1, p0, p1):
+    """The draws of ordinal_two_arm before it became a factory over trial (simpower 2026-12-02, ddb4b80): one
+    uniform per participant, the category = the number of inner cumulative probabilities at or below it."""
+    u = rng.random((size, n0 + n1))
+    y = np.empty(u.shape)
+    for sl, probs in ((slice(0, n0), np.asarray(p0) / math.fsum(p0)), (slice(n0, n0 + n1), p1)):
+        y[:, sl] = np.searchsorted(np.cumsum(probs)[:-1], u[:, sl], side="right")
+    return y
+
+
 @pytest.mark.parametrize("effect", [{"odds_ratio": 1.8}, {"p1": [0.1, 0.2, 0.3, 0.4]}])
 def test_arms_ordinal_is_ordinal_two_arm_replicate_for_replicate(effect):
     missing = {"type": "mcar", "rate": 0.2}
@@ -114,6 +124,15 @@ def test_arms_ordinal_is_ordinal_two_arm_replicate_for_replicate(effect):
                             "missing": missing, **effect})
     same_batches(proc.draw_batch(np.random.default_rng(9), 50), ref.draw_batch(np.random.default_rng(9), 50))
     assert proc.replace(missing=None).facts() == ref.replace(missing=None).facts()
+    # and what ordinal_two_arm drew before it was a factory over trial
+    p1 = ref.p1_probs
+    if "odds_ratio" in effect:   # McCullagh (1980): logit P(Y1 <= k) = logit P(Y0 <= k) - log(OR)
+        cum0 = np.cumsum([0.2, 0.3, 0.3])
+        cum1 = 1 / (1 + np.exp(-(np.log(cum0 / (1 - cum0)) - math.log(1.8))))
+        assert np.allclose(p1, np.diff(np.concatenate([[0.0], cum1, [1.0]])), atol=1e-12)
+    old = inverse_cdf_draws(np.random.default_rng(9), 50, 25, 31, [0.2, 0.3, 0.3, 0.2], p1)
+    clean = ref.replace(missing=None).draw_batch(np.random.default_rng(9), 50)
+    assert np.array_equal(clean["y"], old) and set(clean.per_rep) == {"y"}
     assert proc.true_effect() == ref.true_effect() and proc.estimand_label == ref.estimand_label
     assert proc.null().true_effect() in (0.0, None) and proc.effect_param == f"outcome.{ref.effect_param}"
 

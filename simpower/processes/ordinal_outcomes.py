@@ -41,6 +41,7 @@ distributions (what ``mann_whitney`` with ``estimand = "probability"`` estimates
 from __future__ import annotations
 
 import math
+import numbers
 from dataclasses import dataclass
 
 import numpy as np
@@ -50,8 +51,49 @@ from .._validation import Choice, Real
 from ..errors import ParameterError
 from ..facts import OrdinalFacts
 from .glm_outcomes import EFFECT_SCALE, SIGMA_MAX, GLMOutcome, Linear, intercept_for, latent_sigma, marginal_risk
-from .ordinal import _probabilities, probability_index, proportional_odds_shift
 from .outcomes import Described
+
+
+#: how far the listed probabilities may sum from 1 (typing 0.1 + 0.2 + ... rounds)
+SUM_TOL = 1e-6
+
+
+def _probabilities(field: str, value) -> tuple[float, ...]:
+    """A list of K >= 2 category probabilities, each in (0, 1), summing to 1 (one-line error otherwise)."""
+    fix = "list K >= 2 category probabilities, lowest category first, each > 0, summing to 1 (e.g. [0.2, 0.5, 0.3])"
+    if isinstance(value, (str, bytes)) or not hasattr(value, "__len__"):
+        raise ParameterError(f"`{field}` must {fix}; got {value!r}.")
+    vals = list(value)
+    if len(vals) < 2:
+        raise ParameterError(f"`{field}` must {fix}; got {len(vals)} categor{'y' if len(vals) == 1 else 'ies'}.")
+    for v in vals:
+        if isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(v) or not 0 < v < 1:
+            raise ParameterError(f"`{field}` must {fix}; got {v!r} among {vals!r}.")
+    total = math.fsum(vals)
+    if abs(total - 1.0) > SUM_TOL:
+        raise ParameterError(f"`{field}` must {fix}; its entries sum to {total:.6g}.")
+    return tuple(float(v) for v in vals)
+
+
+def proportional_odds_shift(p0, odds_ratio: float) -> np.ndarray:
+    """Treated-arm category probabilities under proportional odds from control ``p0`` and ``odds_ratio``.
+
+    ``logit P(Y1 <= k) = logit P(Y0 <= k) - log(odds_ratio)`` for k = 0..K-2
+    (McCullagh 1980, J R Stat Soc B 42:109-142): the odds of being above any
+    cut are multiplied by ``odds_ratio``.
+    """
+    p0 = np.asarray(p0, float) / math.fsum(p0)
+    cum0 = np.cumsum(p0)[:-1]
+    odds = cum0 / (1.0 - cum0) / odds_ratio
+    cum1 = np.concatenate([[0.0], odds / (1.0 + odds), [1.0]])
+    return np.diff(cum1)
+
+
+def probability_index(p0, p1) -> float:
+    """``P(Y1 > Y0) + P(Y1 = Y0) / 2`` for independent categorical Y0 ~ p0, Y1 ~ p1 (1/2: no effect)."""
+    p0, p1 = np.asarray(p0, float), np.asarray(p1, float)
+    below0 = np.concatenate([[0.0], np.cumsum(p0)[:-1]])   # P(Y0 < k)
+    return float(np.sum(p1 * (below0 + 0.5 * p0)))
 
 
 @dataclass(frozen=True)
