@@ -207,9 +207,11 @@ class Trial(Process):
     design : design
         ``{type = "arms", ...}`` or ``{type = "clusters", ...}`` (see the module).
     outcome : outcome or outcome layer, default normal(0, 1)
-        The control-arm distribution of a continuous outcome, or a ``binary``
-        / ``count`` layer with a linear predictor (which carries its own
-        effect; see :mod:`simpower.processes.glm_outcomes`).
+        The control-arm distribution of a continuous outcome, or a layer
+        with a linear predictor, which carries its own effect: ``binary``,
+        ``count`` (:mod:`simpower.processes.glm_outcomes`), ``time_to_event``
+        (:mod:`simpower.processes.event_outcomes`; censored, so ``missing``
+        does not apply) or ``ordinal`` (:mod:`simpower.processes.ordinal_outcomes`).
     effect, effect_type, sd_ratio
         The treatment effect on a continuous outcome, as for ``two_arm``
         (left at their defaults with a layer).
