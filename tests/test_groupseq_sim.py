@@ -348,12 +348,19 @@ def test_a_user_function_inner_analysis_runs_per_replicate_with_the_same_decisio
     assert np.array_equal(res.records["user"].pvalues, res.records["builtin"].pvalues)
 
 
+def _no_entry(rng, n=30):
+    """Time-to-event data without entry times (survival_two_arm now has them: its `entry` column)."""
+    return {"time": rng.exponential(1.0, 2 * n), "event": np.ones(2 * n, np.int8), "arm": np.repeat([0, 1], n)}
+
+
 def test_time_to_event_data_without_entry_times_are_refused_in_one_line():
-    sc = sp.Scenario(build("process", {"type": "survival_two_arm", "n": 30, "median": 1.0, "hazard_ratio": 0.6,
-                                       "follow_up": 2.0}),
-                     analyses={"gs": GroupSequential(inner={"type": "logrank"}, fractions=2, alpha=0.05)})
+    gs = GroupSequential(inner={"type": "logrank"}, fractions=2, alpha=0.05)
+    sc = sp.Scenario(_no_entry, analyses={"gs": gs})
     with pytest.raises(Exception, match="need an `entry` column"):
         sp.run(sc, reps=50, execution=SERIAL)
+    proc = build("process", {"type": "survival_two_arm", "n": 30, "median": 1.0, "hazard_ratio": 0.6,
+                             "accrual": 1.0, "follow_up": 2.0})
+    assert "entry" in proc.draw_batch(np.random.default_rng(1), 2)
 
 
 def test_a_pickled_copy_decides_as_the_original():
