@@ -360,6 +360,9 @@ def test_time_to_event_data_without_entry_times_are_refused_in_one_line():
                      analyses={"gs": GroupSequential(inner={"type": "logrank"}, fractions=2, alpha=0.05)})
     with pytest.raises(Exception, match="need an `entry` column"):
         sp.run(sc, reps=50, execution=SERIAL)
+    proc = build("process", {"type": "survival_two_arm", "n": 30, "median": 1.0, "hazard_ratio": 0.6,
+                             "accrual": 1.0, "follow_up": 2.0})
+    assert "entry" in proc.draw_batch(np.random.default_rng(1), 2)
 
 
 def test_a_pickled_copy_decides_as_the_original():

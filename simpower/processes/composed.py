@@ -44,6 +44,12 @@ The ``gaussian`` layer (:mod:`simpower.processes.gaussian_outcome`, identity
 link) draws what ``normal_two_arm`` (arms) and ``cluster_trial`` (clusters)
 draw. Those older names are factories over this process
 (:mod:`simpower.processes.factories`).
+Two more layers: ``time_to_event`` (:mod:`simpower.processes.event_outcomes`:
+Weibull proportional hazards, a log-normal frailty on the log hazard under
+``clusters``; under ``arms`` the draws of ``survival_two_arm``) and
+``ordinal`` (:mod:`simpower.processes.ordinal_outcomes`: proportional odds, a
+random intercept on the latent logit scale; under ``arms`` the draws of
+``ordinal_two_arm``).
 """
 
 from __future__ import annotations
@@ -203,7 +209,8 @@ class OutcomeOrLayer(Nested):
         super().__init__("outcome")
 
     def describe(self) -> str:
-        return "an outcome (object or {type = ...} table), or a `binary` / `count` outcome layer"
+        return ("an outcome (object or {type = ...} table), or an outcome layer (`binary`, `count`, `time_to_event`, "
+                "`ordinal`)")
 
     def clean(self, name, value):
         if isinstance(value, GLMOutcome):
@@ -226,9 +233,11 @@ class Trial(Process):
     design : design
         ``{type = "arms", ...}`` or ``{type = "clusters", ...}`` (see the module).
     outcome : outcome or outcome layer, default normal(0, 1)
-        The control-arm distribution of a continuous outcome, or a ``binary``
-        / ``count`` layer with a linear predictor (which carries its own
-        effect; see :mod:`simpower.processes.glm_outcomes`).
+        The control-arm distribution of a continuous outcome, or a layer
+        with a linear predictor, which carries its own effect: ``binary``,
+        ``count`` (:mod:`simpower.processes.glm_outcomes`), ``time_to_event``
+        (:mod:`simpower.processes.event_outcomes`; censored, so ``missing``
+        does not apply) or ``ordinal`` (:mod:`simpower.processes.ordinal_outcomes`).
     effect, effect_type, sd_ratio
         The treatment effect on a continuous outcome, as for ``two_arm``
         (left at their defaults with a layer).
@@ -269,6 +278,9 @@ class Trial(Process):
                 if self._p[field] != default:
                     raise ParameterError(f"`{field}` does not apply to a {self.outcome.name} outcome, which carries "
                                          f"its effect (`outcome.{self.outcome.effect_param}`): remove `{field}`.")
+            if self.missing is not None and not self.outcome.takes_missing:
+                raise ParameterError(f"`missing` does not apply to a {self.outcome.name} outcome, which is censored "
+                                     "instead (loss to follow-up: `outcome.dropout_rate`): remove `missing`.")
             sigma = self.outcome.sigma_for(self.design.icc) if isinstance(self.design, Clusters) else 0.0
             object.__setattr__(self, "_lin", self.outcome.solve(sigma))
             columns |= set(self.outcome.columns)
@@ -313,7 +325,7 @@ class Trial(Process):
 
     @property
     def estimand_label(self) -> str:  # type: ignore[override]
-        return self.outcome.estimand_label if self.layered else "mean difference"
+        return self.outcome.label_for(self._lin) if self.layered else "mean difference"
 
     def null_value(self):
         if self.layered:
@@ -322,7 +334,8 @@ class Trial(Process):
 
     def true_effect(self):
         if self.layered:
-            return float(self.outcome.true_effect(self._lin))
+            value = self.outcome.true_effect(self._lin)
+            return None if value is None else float(value)
         if self.effect_type == "shift":
             return float(self.effect)
         if self.effect_type == "d":
@@ -376,7 +389,7 @@ class Trial(Process):
         arm = lay["arm"]
         y, shared, per_rep, cov = self.outcome.draw(rng, lin, arm, u_rows, size, lay["width"],
                                                     **({"early": lay["early"]} if "early" in lay else {}))
-        per_rep = {**per_rep, "y": y, **lay["per_rep"]}
+        per_rep = {**per_rep, **({} if y is None else {"y": y}), **lay["per_rep"]}
         shared = {**lay["shared"], **shared}
         info = dict(lay["info"])
         covariates = {**lay.get("covariates", {"arm": arm}), **cov}
@@ -405,8 +418,9 @@ class Trial(Process):
         if self.missing is not None or self._latent is not None:
             return ()
         d = self.design
-        if self.layered and hasattr(self.outcome, "facts"):  # a layer that states its own (gaussian)
-            return self.outcome.facts(self._lin, d)
+        own = self.outcome.facts_for(self._lin, d) if self.layered else None
+        if own is not None:
+            return own
         if isinstance(self.outcome, BinaryOutcome):
             lin = self._lin
             if isinstance(d, Arms):
@@ -436,7 +450,8 @@ class Trial(Process):
             parts = [design, f"outcome: {self.outcome.describe(lin)}"]
             if self.missing is not None:
                 parts.append(self.missing.describe())
-            parts.append(f"estimand: {self.estimand_label} = {self.true_effect():.4g}")
+            if self.true_effect() is not None:
+                parts.append(f"estimand: {self.estimand_label} = {self.true_effect():.4g}")
             return "; ".join(parts)
         parts = [self.design.describe(), f"outcome {self.outcome.describe()}",
                  _describe_effect(self.effect, self.effect_type, self.outcome)]

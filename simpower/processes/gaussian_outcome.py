@@ -113,7 +113,7 @@ class GaussianOutcome(GLMOutcome):
     def estimand_aliases(self, lin: Linear) -> set[str]:
         return set()
 
-    def facts(self, lin: Linear, design) -> tuple:
+    def facts_for(self, lin: Linear, design) -> tuple:
         """:class:`NormalFacts` (arms) or :class:`ClusterFacts` (clusters); ``trial`` gives none with missingness."""
         if design.name == "arms":
             return (NormalFacts("two-sample", effect=self.effect, n=design.n0, sd0=self.sd,

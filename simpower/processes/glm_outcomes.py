@@ -159,8 +159,21 @@ class GLMOutcome(Component):
         raise NotImplementedError
 
     def draw(self, rng, lin: Linear, arm, u_rows, size: int, width: int):
-        """Outcomes (size, width), extra shared / per-replicate columns and covariates for missingness."""
+        """Outcomes (size, width), extra shared / per-replicate columns and covariates for missingness.
+
+        A layer whose outcome columns are not ``y`` (``time_to_event``) returns None for the outcomes."""
         raise NotImplementedError
+
+    #: whether ``trial``'s ``missing`` applies (False for censored outcomes)
+    takes_missing: bool = True
+
+    def label_for(self, lin: Linear) -> str | None:
+        """The estimand label for this linear predictor (a layer whose label depends on the clustering overrides it)."""
+        return self.estimand_label
+
+    def facts_for(self, lin: Linear, design):
+        """The layer's facts for ``design`` (a tuple), or None to let ``trial`` state them."""
+        return None
 
 
 class BinaryOutcome(OneBinaryEffect, GLMOutcome):

@@ -16,13 +16,16 @@ probabilities are ``p0``. The treatment arm's follow from exactly one of:
 
 The long table has columns ``y`` (category 0..K-1 as a float; NaN where a
 ``missing`` mechanism hid it), ``arm`` (0 control, 1 treatment, control rows
-first) and, with missingness, ``observed``.
+first) and, with missingness, ``observed``. The process is a thin factory over
+the composed ``trial``: it draws what ``trial`` with the ``arms`` design, the
+``ordinal`` layer (:mod:`simpower.processes.ordinal_outcomes`) and the same
+``missing`` draws (:meth:`OrdinalTwoArm.as_trial`), and keeps its own name,
+fields, spec, description and facts.
 """
 
 from __future__ import annotations
 
 import math
-import numbers
 
 import numpy as np
 
@@ -30,50 +33,12 @@ from .._validation import Int, Real
 from ..components import Nested
 from ..errors import ParameterError
 from ..facts import OrdinalFacts
-from .base import Batch, Process, check_missing_columns
-from .design import TwoArms, apply_missing, arm_defaults, arm_params
+from .base import Process, check_missing_columns
+from .composed import Arms, Trial
+from .design import TwoArms, arm_defaults, arm_params
+from .ordinal_outcomes import (SUM_TOL, OrdinalOutcome, _probabilities, probability_index,  # noqa: F401 (re-exported)
+                               proportional_odds_shift)
 from .outcomes import Described
-
-#: how far the listed probabilities may sum from 1 (typing 0.1 + 0.2 + ... rounds)
-SUM_TOL = 1e-6
-
-
-def _probabilities(field: str, value) -> tuple[float, ...]:
-    """A list of K >= 2 category probabilities, each in (0, 1), summing to 1 (one-line error otherwise)."""
-    fix = "list K >= 2 category probabilities, lowest category first, each > 0, summing to 1 (e.g. [0.2, 0.5, 0.3])"
-    if isinstance(value, (str, bytes)) or not hasattr(value, "__len__"):
-        raise ParameterError(f"`{field}` must {fix}; got {value!r}.")
-    vals = list(value)
-    if len(vals) < 2:
-        raise ParameterError(f"`{field}` must {fix}; got {len(vals)} categor{'y' if len(vals) == 1 else 'ies'}.")
-    for v in vals:
-        if isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(v) or not 0 < v < 1:
-            raise ParameterError(f"`{field}` must {fix}; got {v!r} among {vals!r}.")
-    total = math.fsum(vals)
-    if abs(total - 1.0) > SUM_TOL:
-        raise ParameterError(f"`{field}` must {fix}; its entries sum to {total:.6g}.")
-    return tuple(float(v) for v in vals)
-
-
-def proportional_odds_shift(p0, odds_ratio: float) -> np.ndarray:
-    """Treated-arm category probabilities under proportional odds from control ``p0`` and ``odds_ratio``.
-
-    ``logit P(Y1 <= k) = logit P(Y0 <= k) - log(odds_ratio)`` for k = 0..K-2
-    (McCullagh 1980, J R Stat Soc B 42:109-142): the odds of being above any
-    cut are multiplied by ``odds_ratio``.
-    """
-    p0 = np.asarray(p0, float) / math.fsum(p0)
-    cum0 = np.cumsum(p0)[:-1]
-    odds = cum0 / (1.0 - cum0) / odds_ratio
-    cum1 = np.concatenate([[0.0], odds / (1.0 + odds), [1.0]])
-    return np.diff(cum1)
-
-
-def probability_index(p0, p1) -> float:
-    """``P(Y1 > Y0) + P(Y1 = Y0) / 2`` for independent categorical Y0 ~ p0, Y1 ~ p1 (1/2: no effect)."""
-    p0, p1 = np.asarray(p0, float), np.asarray(p1, float)
-    below0 = np.concatenate([[0.0], np.cumsum(p0)[:-1]])   # P(Y0 < k)
-    return float(np.sum(p1 * (below0 + 0.5 * p0)))
 
 
 class OrdinalTwoArm(TwoArms, Process):
@@ -200,18 +165,14 @@ class OrdinalTwoArm(TwoArms, Process):
                              n=self.n, ratio=self.n1 / self.n),)
 
     # -- drawing -----------------------------------------------------------
+    def as_trial(self) -> Trial:
+        """The same draws as a composed ``trial``: the ``arms`` design times the ``ordinal`` layer times ``missing``."""
+        effect = {"odds_ratio": self.odds_ratio} if self.proportional_odds else {"p1": self._p["p1"]}
+        return Trial(design=Arms(n=self.n, ratio=self.ratio, n1=self._p["n1"]),
+                     outcome=OrdinalOutcome(p0=self.p0, **effect), missing=self.missing)
+
     def draw_batch(self, rng, size):
-        n0, n1 = self.n0, self.n1
-        u = rng.random((size, n0 + n1))
-        y = np.empty(u.shape)
-        # category = number of cumulative probabilities at or below u (the K-1 inner cuts)
-        for sl, probs in ((slice(0, n0), self.p0_probs), (slice(n0, n0 + n1), self.p1_probs)):
-            cuts = np.cumsum(probs)[:-1]
-            y[:, sl] = np.searchsorted(cuts, u[:, sl], side="right")
-        arm = self.arm_labels()
-        per_rep, info = {"y": y}, self.arm_info()
-        apply_missing(self.missing, rng, y, {"arm": arm}, per_rep, info)
-        return Batch(size, per_rep, {"arm": arm}, info)
+        return self.as_trial().draw_batch(rng, size)
 
     def describe(self):
         p0 = ", ".join(f"{v:g}" for v in self.p0)
