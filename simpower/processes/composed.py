@@ -76,11 +76,34 @@ class Design(Component):
     #: design columns a MAR mechanism may use
     columns: frozenset[str] = frozenset({"arm"})
 
+    #: whether participants are measured at several visits (``visit``, ``subject`` columns; see
+    #: :mod:`simpower.processes.visits`): such a design takes no outcome layer and no ``sd_ratio``
+    has_visits: bool = False
+
     def draw(self, rng: np.random.Generator, size: int, latent: bool = True) -> dict:
         """The layout of ``size`` replicates; ``latent = False``: no normal scores ``z`` (an outcome layer
         with a linear predictor draws its own), only the cluster effects ``u`` (standard normal, one
-        per cluster) and ``cluster``."""
+        per cluster) and ``cluster``. Optional entries: ``covariates`` (what a MAR mechanism may read),
+        ``effect_weight`` (rows,): the share of ``effect`` each row gets (absent: all of it), and
+        ``missing_rows`` (rows,): the rows a missingness mechanism sees (absent: all)."""
         raise NotImplementedError
+
+    @property
+    def final_weight(self) -> float | None:
+        """The ``effect_weight`` of the rows the estimand refers to; None: every row gets the whole effect."""
+        return None
+
+    def outcome_columns(self, y: np.ndarray) -> dict[str, np.ndarray]:
+        """Design columns computed from the complete outcomes (e.g. a baseline visit's value); none by default."""
+        return {}
+
+    def bind_missing(self, missing, trial):
+        """The missingness step ``trial`` applies (a mechanism bound to this design's model, e.g. dropout)."""
+        return missing
+
+    def trial_facts(self, trial) -> tuple | None:
+        """The analytic facts of ``trial`` with this design, or None to let ``trial`` state them."""
+        return None
 
 
 class Arms(TwoArms, Design):
@@ -234,6 +257,9 @@ class Trial(Process):
                 if self._p[field] != default:
                     raise ParameterError(f"`{field}` does not apply to a {self.outcome.name} outcome, which carries "
                                          f"its effect (`outcome.{self.outcome.effect_param}`): remove `{field}`.")
+            if self.design.has_visits:
+                raise ParameterError(f"`outcome`: a {self.outcome.name} layer is not available with the "
+                                     f"{self.design.name} design; give a continuous outcome distribution.")
             sigma = self.outcome.sigma_for(self.design.icc) if isinstance(self.design, Clusters) else 0.0
             object.__setattr__(self, "_lin", self.outcome.solve(sigma))
             columns |= set(self.outcome.columns)
@@ -244,7 +270,13 @@ class Trial(Process):
             if not isinstance(self.design, Arms) and not hasattr(self.outcome, "from_normal"):
                 raise ParameterError(f"`outcome` needs a quantile function (from_normal) for a {self.design.name} "
                                      f"design; {type(self.outcome).__name__} has none.")
+        if self.design.has_visits and self.sd_ratio != 1:
+            raise ParameterError(f"`sd_ratio` does not apply to the {self.design.name} design: remove it.")
+        if getattr(self.missing, "needs_visits", False) and not self.design.has_visits:
+            raise ParameterError(f"`missing`: {self.missing.name} needs a design with visits (`visits`); the "
+                                 f"{self.design.name} design has none: use mcar, mar or mnar.")
         _check_missing(self.missing, columns, self.name)
+        object.__setattr__(self, "_missing_step", self.design.bind_missing(self.missing, self))
 
     @property
     def layered(self) -> bool:
@@ -276,6 +308,9 @@ class Trial(Process):
     def true_effect(self):
         if self.layered:
             return float(self.outcome.true_effect(self._lin))
+        weight = self.design.final_weight
+        if weight is not None:
+            return self.design.true_effect_at(weight, self.outcome, self.effect, self.effect_type)
         if self.effect_type == "shift":
             return float(self.effect)
         if self.effect_type == "d":
@@ -297,7 +332,12 @@ class Trial(Process):
         else:
             y = np.asarray(self.outcome.from_normal(lay["z"]), dtype=float)
         arm = lay["arm"]
-        if arm.ndim == 1:
+        weight = lay.get("effect_weight")
+        if weight is not None:  # an effect that differs by row (visits): shared arms, no sd_ratio
+            treated = arm == 1
+            y[:, treated] = self.design.effect_rows(y[:, treated], weight[treated], self.outcome, self.effect,
+                                                    self.effect_type)
+        elif arm.ndim == 1:
             treated = arm == 1
             y[:, treated] = _effect_values(y[:, treated], self.outcome, self.effect, self.effect_type, self.sd_ratio)
         else:
@@ -305,8 +345,14 @@ class Trial(Process):
             y[treated] = _effect_values(y[treated], self.outcome, self.effect, self.effect_type, self.sd_ratio)
         per_rep = {"y": y, **lay["per_rep"]}
         info = dict(lay["info"])
-        apply_missing(self.missing, rng, y, lay.get("covariates", {"arm": arm}), per_rep, info,
-                      present=lay["present"])
+        covariates = lay.get("covariates", {"arm": arm})
+        extra = self.design.outcome_columns(y)
+        if extra:
+            per_rep.update(extra)
+            covariates = {**covariates, **extra}
+        step = self._missing_step
+        rows = None if getattr(step, "whole_series", False) else lay.get("missing_rows")
+        apply_missing(step, rng, y, covariates, per_rep, info, rows=rows, present=lay["present"])
         return Batch(size, per_rep, lay["shared"], info)
 
     def _draw_layer(self, rng, size):
@@ -340,9 +386,12 @@ class Trial(Process):
     def facts(self):
         """Normal outcomes without missing data: :class:`NormalFacts` (arms) or :class:`ClusterFacts` (clusters);
         a binary layer without missing data: :class:`BinaryFacts` (arms) or :class:`ClusterBinaryFacts`."""
+        d = self.design
+        own = d.trial_facts(self)
+        if own is not None:
+            return own
         if self.missing is not None:
             return ()
-        d = self.design
         if isinstance(self.outcome, BinaryOutcome):
             lin = self._lin
             if isinstance(d, Arms):
