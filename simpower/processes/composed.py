@@ -27,6 +27,12 @@ Designs (kind ``design``):
   scores; for a normal outcome it is the ICC of the outcomes themselves (as
   in ``cluster_trial``), for a skewed one the outcome-scale Pearson ICC is
   somewhat smaller.
+* ``visits`` (:mod:`simpower.processes.visits`): two arms, every participant
+  measured at the same visits, with exchangeable or AR(1) correlated normal
+  scores turned into outcomes the same way; the effect builds over the visits
+  (the design's ``effect_shape``), and the ``dropout`` missingness
+  (:mod:`simpower.processes.dropout`) applies. ``repeated_measures`` is this
+  design with a normal outcome.
 
 The effect (``effect``, ``effect_type``, ``sd_ratio``) acts on the treatment
 rows as in ``two_arm``; then the missingness step
@@ -216,12 +222,12 @@ class OutcomeOrLayer(Nested):
 
 
 class Trial(Process):
-    """A design (``arms``, ``clusters``) times an outcome times an optional missingness.
+    """A design (``arms``, ``clusters``, ``visits``) times an outcome times an optional missingness.
 
     Parameters
     ----------
     design : design
-        ``{type = "arms", ...}`` or ``{type = "clusters", ...}`` (see the module).
+        ``{type = "arms", ...}``, ``{type = "clusters", ...}`` or ``{type = "visits", ...}`` (see the module).
     outcome : outcome or outcome layer, default normal(0, 1)
         The control-arm distribution of a continuous outcome, or a ``binary``
         / ``count`` layer with a linear predictor (which carries its own
@@ -231,7 +237,9 @@ class Trial(Process):
         (left at their defaults with a layer).
     missing : missingness, optional
         Applied once after the outcomes; a MAR mechanism may use the design's
-        columns (``arm``; ``cluster`` for clusters; ``exposure`` for counts).
+        columns (``arm``; ``cluster`` for clusters; ``exposure`` for counts;
+        ``subject``, ``visit``, ``baseline`` for visits). ``dropout`` needs a
+        design with visits.
 
     Notes
     -----
