@@ -99,6 +99,14 @@ class Design(Component):
         """The ``effect_weight`` of the rows the estimand refers to; None: every row gets the whole effect."""
         return None
 
+    def effect_rows(self, x, weight, outcome, effect, effect_type):
+        """The treated rows ``x`` with the effect scaled by each row's ``effect_weight`` (designs that give one)."""
+        raise NotImplementedError
+
+    def true_effect_at(self, weight, outcome, effect, effect_type) -> float:
+        """The difference in mean outcome where the effect's weight is ``weight`` (designs with a ``final_weight``)."""
+        raise NotImplementedError
+
     def outcome_columns(self, y: np.ndarray) -> dict[str, np.ndarray]:
         """Design columns computed from the complete outcomes (e.g. a baseline visit's value); none by default."""
         return {}
