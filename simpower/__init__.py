@@ -31,6 +31,7 @@ from .processes.base import Missingness, Outcome, Process
 from .processes.binary import BinaryTwoArm
 from .processes.clusters import ClusterTrial
 from .processes.counts import CountTwoArm
+from .processes.dropout import Dropout
 from .processes.missing import MAR, MCAR, MNAR
 from .processes.normal import NormalOneSample, NormalPaired, NormalTwoArm
 from .processes.outcomes import (ContaminatedNormal, Fleishman, Gamma, Lognormal, Normal, ScipyOutcome,
@@ -77,7 +78,7 @@ __all__ = [
     "BinaryTwoArm", "CountTwoArm", "SurvivalTwoArm", "PilotResample", "PilotUnits",
     # outcomes and missingness
     "Normal", "Lognormal", "Gamma", "SkewNormal", "Fleishman", "StudentT", "ContaminatedNormal", "ScipyOutcome",
-    "MCAR", "MAR", "MNAR",
+    "MCAR", "MAR", "MNAR", "Dropout",
     # analyses
     "ZTest", "TTest", "WelchT", "PairedT", "ClusterMeansT", "GEE", "FinalVisitT", "TwoProportions", "ChiSquare",
     "FisherExact", "Logistic", "PoissonGLM", "NegBinGLM", "LogRank", "Cox", "MannWhitney", "WilcoxonSignedRank",

@@ -244,6 +244,9 @@ def check_component(obj, *, size: int = 50, seed: int = 20261202) -> None:
     if isinstance(obj, Missingness):
         y = np.random.default_rng(seed).standard_normal((2, size))
         cov = {"baseline": y + 0.5, "arm": np.tile(np.repeat([0, 1], size // 2 + 1)[:size], (2, 1))}
+        if size % 5 == 0:  # rows as participants x 5 visits, for mechanisms over visits (dropout)
+            cov.update(visit=np.tile(np.arange(5), (2, size // 5)), subject=np.tile(np.repeat(np.arange(size // 5), 5),
+                                                                                  (2, 1)))
         got = rep.guard("mask(rng, y, covariates)", draws, lambda rng: obj.mask(rng, y, cov))
         if got is not None:
             a, b, c = got

@@ -64,6 +64,11 @@ PROCESSES = {
     "repeated_dropout_mcar": lambda: sp.RepeatedMeasures(n=8, visits=3, rho=0.5, effect=0.5, dropout_rate=0.2,
                                                          missing=sp.MCAR(rate=0.1)),
     "repeated_dropout": lambda: sp.RepeatedMeasures(n=8, visits=3, rho=0.5, effect=0.5, dropout_rate=0.3),
+    # trial with the visits design: a skewed outcome, MAR dropout and intermittent MCAR
+    "visits_dropout": lambda: build("process", {
+        "type": "trial", "design": {"type": "visits", "n": 8, "visits": 4, "correlation": "ar1", "rho": 0.5},
+        "outcome": {"type": "gamma", "mean": 2.0, "cv": 0.6}, "effect": 0.5,
+        "missing": {"type": "dropout", "rate": 0.3, "mar_slope": 1.0, "intermittent": {"type": "mcar", "rate": 0.1}}}),
     "survival": lambda: sp.SurvivalTwoArm(n=12, median=1.0, hazard_ratio=0.6, follow_up=2.0),
     "ordinal_missing": lambda: build("process", {"type": "ordinal_two_arm", "n": 15, "p0": [0.2, 0.3, 0.3, 0.2],
                                                  "odds_ratio": 2.0, "missing": {"type": "mcar", "rate": 0.2}}),
@@ -91,6 +96,7 @@ def batch_of(process: str) -> Batch:
     ("clusters", {"table", "two_arm", "clustered"}),
     ("clusters_variable_missing", {"table", "two_arm", "clustered"}),
     ("repeated_dropout", {"table", "two_arm", "longitudinal"}),
+    ("visits_dropout", {"table", "two_arm", "longitudinal"}),
     ("survival", {"survival"}),                  # no outcome y: time and event
 ])
 def test_which_layouts_a_batch_has(process, kinds):
@@ -313,6 +319,8 @@ CASES = [
     ({"type": "final_visit_t"}, "repeated", True),
     ({"type": "final_visit_t", "welch": True}, "repeated_dropout", True),
     ({"type": "final_visit_t"}, "repeated_dropout_mcar", True),  # dropout, then intermittent MCAR
+    ({"type": "final_visit_t"}, "visits_dropout", True),
+    ({"type": "mann_whitney"}, "visits_dropout", True),
     ({"type": "cluster_means_t"}, "clusters_mnar", True),
     ({"type": "t_test"}, "clusters_mnar", True),
     ({"type": "ols", "cov_type": "cluster"}, "clusters_mnar", True),

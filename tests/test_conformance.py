@@ -95,6 +95,10 @@ PROCESSES = {
                       "missing": {"type": "mcar", "rate": 0.2}},
     "trial/ordinal_p1": {"design": {"type": "clusters", "clusters": 4, "cluster_size": 5, "icc": 0.1},
                          "outcome": {"type": "ordinal", "p0": [0.3, 0.4, 0.3], "p1": [0.2, 0.2, 0.6]}},
+    "trial/visits": {"design": {"type": "visits", "n": 6, "visits": 3, "correlation": "ar1", "rho": 0.4},
+                     "outcome": {"type": "lognormal", "median": 1.0, "cv": 0.5}, "effect": 0.3,
+                     "missing": {"type": "dropout", "rate": 0.2, "mar_slope": 1.0,
+                                 "intermittent": {"type": "mcar", "rate": 0.1}}},
     "two_arm": {"n": 10, "effect": 0.5, "baseline_corr": 0.5},
     "two_arm/lognormal": {"n": 10, "outcome": {"type": "lognormal", "median": 1.0, "cv": 0.5}, "effect": 1.3,
                           "effect_type": "ratio", "missing": {"type": "mcar", "rate": 0.2}},
@@ -158,6 +162,8 @@ PAIRS = [
      {"rtol": 1e-6, "atol": 1e-9}),
     ({"type": "mmrm", "covariance": "toeplitz", "baseline": True}, ("repeated_measures", {"n": 8, "visits": 4,
      "rho": 0.5, "effect": 0.5, "dropout_rate": 0.2}), {"rtol": 1e-6, "atol": 1e-9}),
+    ({"type": "mmrm", "baseline": True}, ("trial", {"design": {"type": "visits", "n": 8, "visits": 4, "rho": 0.5},
+     "effect": 0.5, "missing": {"type": "dropout", "hazard": 0.15}}), {"rtol": 1e-6, "atol": 1e-9}),
     # statsmodels' default optimiser stops within about 1e-4 of the REML optimum the batch path finds
     # (tests/test_mixed.py checks both against statsmodels at that tolerance and at 1e-7 with gtol 1e-10)
     ({"type": "mixed_model"}, CLUSTERS, {"atol": 1e-4, "rtol": 0.0}),
@@ -237,6 +243,7 @@ NESTED = {
     ("glm_outcome", "ordinal"): {"p0": [0.2, 0.5, 0.3], "odds_ratio": 2.0, "effect_scale": "marginal"},
     ("glm_outcome", "time_to_event"): {"median": 12.0, "hazard_ratio": 0.7, "shape": 1.2, "accrual": 6.0,
                                        "follow_up": 12.0, "dropout_fraction": 0.1, "dropout_time": 12.0},
+    ("missingness", "dropout"): {"rate": 0.2},
     ("missingness", "mar"): {"rate": 0.2},
     ("missingness", "mcar"): {"rate": 0.2},
     ("missingness", "mnar"): {"rate": 0.2},

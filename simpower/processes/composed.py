@@ -28,6 +28,12 @@ Designs (kind ``design``):
   scores; for a normal outcome it is the ICC of the outcomes themselves (as
   in ``cluster_trial``), for a skewed one the outcome-scale Pearson ICC is
   somewhat smaller.
+* ``visits`` (:mod:`simpower.processes.visits`): two arms, every participant
+  measured at the same visits, with exchangeable or AR(1) correlated normal
+  scores turned into outcomes the same way; the effect builds over the visits
+  (the design's ``effect_shape``), and the ``dropout`` missingness
+  (:mod:`simpower.processes.dropout`) applies. ``repeated_measures`` is this
+  design with a normal outcome.
 
 The effect (``effect``, ``effect_type``, ``sd_ratio``) acts on the treatment
 rows as in ``two_arm``; then the missingness step
@@ -88,13 +94,44 @@ class Design(Component):
     #: design columns a MAR mechanism may use
     columns: frozenset[str] = frozenset({"arm"})
 
+    #: whether participants are measured at several visits (``visit``, ``subject`` columns; see
+    #: :mod:`simpower.processes.visits`): such a design takes no outcome layer and no ``sd_ratio``
+    has_visits: bool = False
+
     def draw(self, rng: np.random.Generator, size: int, latent: bool = True, early=None) -> dict:
         """The layout of ``size`` replicates; ``latent = False``: no normal scores ``z`` (an outcome layer
         with a linear predictor draws its own), only the cluster effects ``u`` (standard normal, one
         per cluster) and ``cluster``. ``early(rng, size, width, design, cluster)``, given by an outcome
         layer that draws before the arms are assigned, is called after the cluster effects; its value
-        is returned as ``"early"``."""
+        is returned as ``"early"``. Optional entries: ``covariates`` (what a MAR mechanism may read),
+        ``effect_weight`` (rows,): the share of ``effect`` each row gets (absent: all of it), and
+        ``missing_rows`` (rows,): the rows a missingness mechanism sees (absent: all)."""
         raise NotImplementedError
+
+    @property
+    def final_weight(self) -> float | None:
+        """The ``effect_weight`` of the rows the estimand refers to; None: every row gets the whole effect."""
+        return None
+
+    def effect_rows(self, x, weight, outcome, effect, effect_type):
+        """The treated rows ``x`` with the effect scaled by each row's ``effect_weight`` (designs that give one)."""
+        raise NotImplementedError
+
+    def true_effect_at(self, weight, outcome, effect, effect_type) -> float:
+        """The difference in mean outcome where the effect's weight is ``weight`` (designs with a ``final_weight``)."""
+        raise NotImplementedError
+
+    def outcome_columns(self, y: np.ndarray) -> dict[str, np.ndarray]:
+        """Design columns computed from the complete outcomes (e.g. a baseline visit's value); none by default."""
+        return {}
+
+    def bind_missing(self, missing, trial):
+        """The missingness step ``trial`` applies (a mechanism bound to this design's model, e.g. dropout)."""
+        return missing
+
+    def trial_facts(self, trial) -> tuple | None:
+        """The analytic facts of ``trial`` with this design, or None to let ``trial`` state them."""
+        return None
 
 
 class Arms(TwoArms, Design):
@@ -226,12 +263,12 @@ class OutcomeOrLayer(Nested):
 
 
 class Trial(Process):
-    """A design (``arms``, ``clusters``) times an outcome times an optional missingness.
+    """A design (``arms``, ``clusters``, ``visits``) times an outcome times an optional missingness.
 
     Parameters
     ----------
     design : design
-        ``{type = "arms", ...}`` or ``{type = "clusters", ...}`` (see the module).
+        ``{type = "arms", ...}``, ``{type = "clusters", ...}`` or ``{type = "visits", ...}`` (see the module).
     outcome : outcome or outcome layer, default normal(0, 1)
         The control-arm distribution of a continuous outcome, or a layer
         with a linear predictor, which carries its own effect: ``binary``,
@@ -244,7 +281,9 @@ class Trial(Process):
     missing : missingness, optional
         Applied once after the outcomes; a MAR mechanism may use the design's
         columns (``arm``; ``cluster`` for clusters; ``baseline`` with
-        ``design.baseline_corr``; ``exposure`` for counts).
+        ``design.baseline_corr``; ``exposure`` for counts; ``subject``,
+        ``visit``, ``baseline`` for visits). ``dropout`` needs a design with
+        visits.
 
     Notes
     -----
@@ -281,6 +320,9 @@ class Trial(Process):
             if self.missing is not None and not self.outcome.takes_missing:
                 raise ParameterError(f"`missing` does not apply to a {self.outcome.name} outcome, which is censored "
                                      "instead (loss to follow-up: `outcome.dropout_rate`): remove `missing`.")
+            if self.design.has_visits:
+                raise ParameterError(f"`outcome`: a {self.outcome.name} layer is not available with the "
+                                     f"{self.design.name} design; give a continuous outcome distribution.")
             sigma = self.outcome.sigma_for(self.design.icc) if isinstance(self.design, Clusters) else 0.0
             object.__setattr__(self, "_lin", self.outcome.solve(sigma))
             columns |= set(self.outcome.columns)
@@ -298,7 +340,13 @@ class Trial(Process):
         baseline_possible = isinstance(self.design, Arms) and not self.layered
         needs_baseline = "baseline" in getattr(self.missing, "requires", ()) and "baseline" not in columns
         hint = "; set `design.baseline_corr` to add a baseline column" if baseline_possible and needs_baseline else ""
+        if self.design.has_visits and self.sd_ratio != 1:
+            raise ParameterError(f"`sd_ratio` does not apply to the {self.design.name} design: remove it.")
+        if getattr(self.missing, "needs_visits", False) and not self.design.has_visits:
+            raise ParameterError(f"`missing`: {self.missing.name} needs a design with visits (`visits`); the "
+                                 f"{self.design.name} design has none: use mcar, mar or mnar.")
         check_missing_columns(self.missing, columns, self.name, hint)
+        object.__setattr__(self, "_missing_step", self.design.bind_missing(self.missing, self))
 
     @property
     def layered(self) -> bool:
@@ -336,6 +384,9 @@ class Trial(Process):
         if self.layered:
             value = self.outcome.true_effect(self._lin)
             return None if value is None else float(value)
+        weight = self.design.final_weight
+        if weight is not None:
+            return self.design.true_effect_at(weight, self.outcome, self.effect, self.effect_type)
         if self.effect_type == "shift":
             return float(self.effect)
         if self.effect_type == "d":
@@ -364,7 +415,12 @@ class Trial(Process):
         if self._latent is not None:
             baseline = np.asarray(self.outcome.from_normal(z_base), dtype=float)
         arm = lay["arm"]
-        if arm.ndim == 1:
+        weight = lay.get("effect_weight")
+        if weight is not None:  # an effect that differs by row (visits): shared arms, no sd_ratio
+            treated = arm == 1
+            y[:, treated] = self.design.effect_rows(y[:, treated], weight[treated], self.outcome, self.effect,
+                                                    self.effect_type)
+        elif arm.ndim == 1:
             treated = arm == 1
             y[:, treated] = _effect_values(y[:, treated], self.outcome, self.effect, self.effect_type, self.sd_ratio)
         else:
@@ -376,7 +432,13 @@ class Trial(Process):
             per_rep = {"baseline": baseline, **per_rep}
             covariates["baseline"] = baseline
         info = dict(lay["info"])
-        apply_missing(self.missing, rng, y, covariates, per_rep, info, present=lay["present"])
+        extra = self.design.outcome_columns(y)
+        if extra:
+            per_rep.update(extra)
+            covariates = {**covariates, **extra}
+        step = self._missing_step
+        rows = None if getattr(step, "whole_series", False) else lay.get("missing_rows")
+        apply_missing(step, rng, y, covariates, per_rep, info, rows=rows, present=lay["present"])
         return Batch(size, per_rep, lay["shared"], info)
 
     def _draw_layer(self, rng, size):
@@ -415,9 +477,12 @@ class Trial(Process):
     def facts(self):
         """Normal outcomes without missing data: :class:`NormalFacts` (arms) or :class:`ClusterFacts` (clusters);
         a binary layer without missing data: :class:`BinaryFacts` (arms) or :class:`ClusterBinaryFacts`."""
+        d = self.design
+        own = d.trial_facts(self)
+        if own is not None:
+            return own
         if self.missing is not None or self._latent is not None:
             return ()
-        d = self.design
         own = self.outcome.facts_for(self._lin, d) if self.layered else None
         if own is not None:
             return own

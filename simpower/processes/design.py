@@ -16,9 +16,10 @@ each is written once:
 * :func:`apply_missing`, which applies a :class:`~simpower.processes.base.Missingness`
   component once, after the complete outcomes are drawn, for every design:
   it sets hidden outcomes to NaN, adds the ``observed`` column (1/0) and sets
-  ``info["missing"]``. A design with a missingness of its own (monotone
-  dropout in repeated measures) hands its ``observed`` mask in, and the two
-  are combined.
+  ``info["missing"]``. A design with a missingness of its own (period-2
+  dropout in ``crossover``) hands its ``observed`` mask in, and the two are
+  combined; monotone dropout over visits is a mechanism of its own
+  (:mod:`simpower.processes.dropout`).
 
 The names used across processes are listed in DEVELOPERS.md ("Design
 vocabulary").

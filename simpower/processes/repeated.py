@@ -13,46 +13,35 @@ function of the subject's last observed outcome,
 that the expected share missing at the final visit (both arms pooled) is
 ``dropout_rate``. That share is an integral over the normal visits, computed
 deterministically with unscrambled Sobol points (no random numbers involved).
+
+The process is a name over the composed layers: ``trial`` with the ``visits``
+design (:mod:`simpower.processes.visits`), a normal outcome (mean 0, SD
+``sd``) and the ``dropout`` mechanism (:mod:`simpower.processes.dropout`,
+``dropout_rate`` -> ``rate``, ``dropout_hazard`` -> ``hazard``,
+``dropout_mar_slope`` -> ``mar_slope``, ``missing`` -> ``intermittent``). It
+keeps its fields, defaults, spec, description and facts, and draws the same
+numbers as before the layers existed (:meth:`RepeatedMeasures.composed` gives
+the equivalent ``trial``).
 """
 
 from __future__ import annotations
 
-
 import numpy as np
-from scipy import optimize, special, stats
 
 from .._validation import Bool, Choice, Int, Real
 from ..components import Nested
 from ..errors import ParameterError
 from ..facts import RepeatedFacts
-from .base import Batch, Process, check_missing_columns
-from .design import TwoArms, apply_missing, arm_defaults, arm_params
+from .base import Process, check_missing_columns
+from .composed import Trial
+from .design import TwoArms, arm_defaults, arm_params
+from .dropout import CALIBRATION_LOG2 as _CALIBRATION_LOG2  # noqa: F401 - kept importable
+from .dropout import Dropout
+from .outcomes import Normal
+from .visits import Visits, correlation_matrix, effect_profile  # noqa: F401 - kept importable from here
 
 POSITIVE = Real(0.0, low_open=True)
 RATE = Real(0.0, 1.0, high_open=True, optional=True)
-
-#: Sobol points (2^13) used to calibrate the MAR dropout intercept
-_CALIBRATION_LOG2 = 13
-
-
-def correlation_matrix(kind: str, rho: float, k: int) -> np.ndarray:
-    """The k x k exchangeable or AR(1) correlation matrix."""
-    if kind == "exchangeable":
-        r = np.full((k, k), rho)
-        np.fill_diagonal(r, 1.0)
-        return r
-    lag = np.abs(np.subtract.outer(np.arange(k), np.arange(k)))
-    return rho**lag
-
-
-def effect_profile(shape: str, k: int, baseline: bool) -> np.ndarray:
-    """Multipliers g_j of ``effect`` at visits 0..k-1 (time since randomisation t_j = j, or j + 1 without baseline)."""
-    t = np.arange(k, dtype=float) + (0.0 if baseline else 1.0)
-    if shape == "final":
-        return t / t[-1]
-    if shape == "constant":
-        return (t > 0).astype(float)
-    return t
 
 
 class RepeatedMeasures(TwoArms, Process):
@@ -138,20 +127,8 @@ class RepeatedMeasures(TwoArms, Process):
     def _check(self):
         cols = {"arm", "subject", "visit"} | ({"baseline"} if self.baseline else set())
         check_missing_columns(self.missing, cols, self.name)
-        k = self.visits
-        if self.correlation == "exchangeable" and self.rho <= -1.0 / (k - 1):
-            raise ParameterError(
-                f"`rho` must be > -1/(visits - 1) = {-1.0 / (k - 1):.4g} for an exchangeable correlation over "
-                f"{k} visits (else the correlation matrix is not positive definite); got {self.rho:g}."
-            )
-        try:
-            np.linalg.cholesky(self.corr_matrix)
-        except np.linalg.LinAlgError:
-            raise ParameterError(
-                f"`rho` = {self.rho:g} gives a correlation matrix that is not numerically positive definite; "
-                "move it away from the boundary."
-            ) from None
-        self._check_arms()
+        design = Visits(n=self.n, ratio=self.ratio, n1=self._p["n1"], visits=self.visits, correlation=self.correlation,
+                        rho=self.rho, baseline=self.baseline, effect_shape=self.effect_shape)
         if self.dropout_rate is not None and self.dropout_hazard is not None:
             raise ParameterError("`dropout_hazard` and `dropout_rate` both given: give one of them.")
         if self.dropout_mar_slope != 0 and self.dropout_rate is None and self.dropout_hazard is None:
@@ -159,17 +136,29 @@ class RepeatedMeasures(TwoArms, Process):
                 "`dropout_mar_slope` needs `dropout_rate` (share missing at the final visit) or "
                 "`dropout_hazard` (hazard at the control mean) to fix the amount of dropout."
             )
-        if self.mar and self.dropout_rate is not None and self.dropout_rate > 0:
-            object.__setattr__(self, "_intercept", self._calibrate())
+        missing = self.missing
+        if self.has_dropout:
+            missing = Dropout(rate=self.dropout_rate, hazard=self.dropout_hazard, mar_slope=self.dropout_mar_slope,
+                              intermittent=self.missing)
+        trial = Trial(design=design, outcome=Normal(mean=0.0, sd=self.sd), effect=self.effect, missing=missing)
+        object.__setattr__(self, "_trial", trial)
+
+    def __setstate__(self, state):
+        super().__setstate__(state)
+        self._check()
+
+    def composed(self) -> Trial:
+        """The equivalent ``trial``: the ``visits`` design, a normal outcome, the ``dropout`` mechanism."""
+        return self._trial
 
     # -- facts -------------------------------------------------------------
     @property
     def corr_matrix(self) -> np.ndarray:
-        return correlation_matrix(self.correlation, self.rho, self.visits)
+        return self._trial.design.corr_matrix
 
     @property
     def profile(self) -> np.ndarray:
-        return effect_profile(self.effect_shape, self.visits, self.baseline)
+        return self._trial.design.profile
 
     @property
     def mar(self) -> bool:
@@ -178,6 +167,11 @@ class RepeatedMeasures(TwoArms, Process):
     @property
     def has_dropout(self) -> bool:
         return bool(self.dropout_rate) or bool(self.dropout_hazard)
+
+    @property
+    def _dropout(self):
+        """The bound dropout step of the composed trial (None without dropout)."""
+        return self._trial._missing_step if self.has_dropout else None
 
     @property
     def hazard(self) -> float:
@@ -191,46 +185,20 @@ class RepeatedMeasures(TwoArms, Process):
     @property
     def mar_intercept(self) -> float:
         """``a0`` of the MAR dropout hazard logit h_j = a0 + slope * y_{j-1} / sd."""
-        if self.__dict__.get("_intercept") is None and self.dropout_rate is not None and self.dropout_rate > 0:
-            object.__setattr__(self, "_intercept", self._calibrate())
-        if self.__dict__.get("_intercept") is not None:
-            return self.__dict__["_intercept"]
+        step = self._dropout
+        if step is not None and step.intercept is not None:
+            return step.intercept
+        if step is not None and self.dropout_rate:  # dropout completely at random: the same calibration, slope 0
+            return step._calibrate(self.dropout_rate)
+        from scipy import special
+
         return float(special.logit(self.dropout_hazard or 0.0))
 
     def expected_final_missing(self, intercept: float | None = None) -> float:
         """Expected share of subjects (both arms) missing at the final visit through dropout."""
         if not self.has_dropout:
             return 0.0
-        if not self.mar:
-            return 1.0 - (1.0 - self.hazard) ** (self.visits - 1)
-        a0 = self.mar_intercept if intercept is None else intercept
-        return self._mar_missing(a0)
-
-    def _calibration_points(self) -> np.ndarray:
-        """Deterministic standard-normal points (visits 0..k-2, correlated) for the dropout integral."""
-        z = self.__dict__.get("_points")
-        if z is None:
-            k = self.visits
-            u = stats.qmc.Sobol(k - 1, scramble=False).random_base2(_CALIBRATION_LOG2)[1:]  # drop the point 0
-            z = stats.norm.ppf(u) @ np.linalg.cholesky(self.corr_matrix[: k - 1, : k - 1]).T
-            object.__setattr__(self, "_points", z)
-        return z
-
-    def _mar_missing(self, a0: float) -> float:
-        k = self.visits
-        z = self._calibration_points()
-        share = 0.0
-        for weight, arm in ((self.n, 0), (self.n1, 1)):
-            standardised = z + arm * self.effect * self.profile[: k - 1] / self.sd
-            stay = special.expit(-(a0 + self.dropout_mar_slope * standardised))  # 1 - h
-            share += weight * (1.0 - np.prod(stay, axis=1).mean())
-        return share / (self.n + self.n1)
-
-    def _calibrate(self) -> float:
-        target = self.dropout_rate
-        f = lambda a0: self._mar_missing(a0) - target  # noqa: E731
-        lo, hi = -40.0, 40.0
-        return float(optimize.brentq(f, lo, hi, xtol=1e-10))
+        return self._dropout.expected_final_missing(intercept)
 
     def facts(self):
         """:class:`~simpower.facts.RepeatedFacts` with dropout completely at random (or none); else none."""
@@ -245,37 +213,7 @@ class RepeatedMeasures(TwoArms, Process):
 
     # -- draws ---------------------------------------------------------------
     def draw_batch(self, rng, size):
-        n0, n1, k = self.n, self.n1, self.visits
-        n_sub = n0 + n1
-        z = rng.standard_normal((size, n_sub, k)) @ np.linalg.cholesky(self.corr_matrix).T
-        arm_sub = self.arm_labels()
-        y = self.sd * z
-        y[:, n0:, :] += self.effect * self.profile
-        observed = None
-        if self.has_dropout:
-            u = rng.random((size, n_sub, k - 1))
-            if self.mar:
-                hazard = special.expit(self.mar_intercept + self.dropout_mar_slope * y[:, :, :-1] / self.sd)
-            else:
-                hazard = self.hazard
-            stays = np.cumprod(u >= hazard, axis=2, dtype=np.int8)
-            observed = np.concatenate([np.ones((size, n_sub, 1), bool), stays.astype(bool)], axis=2)
-        shared = {"arm": np.repeat(arm_sub, k), "subject": np.repeat(np.arange(n_sub), k),
-                  "visit": np.tile(np.arange(k), n_sub)}
-        y = y.reshape(size, n_sub * k)
-        per_rep = {}
-        if observed is not None:
-            observed = observed.reshape(size, n_sub * k)
-        if self.baseline:
-            per_rep["baseline"] = np.repeat(y[:, ::k], k, axis=1)
-        info = {**self.arm_info(), "visits": k}
-        # the ``missing`` component sees the post-baseline rows (all rows without a baseline visit);
-        # visit 0 is always observed, so is the baseline column
-        rows = shared["visit"] > 0 if self.baseline else np.ones(y.shape[1], bool)
-        covariates = {**shared, **({"baseline": per_rep["baseline"]} if self.baseline else {})}
-        apply_missing(self.missing, rng, y, covariates, per_rep, info, rows=rows, observed=observed)
-        per_rep["y"] = y
-        return Batch(size, per_rep, shared, info)
+        return self._trial.draw_batch(rng, size)
 
     # -- words -----------------------------------------------------------
     def true_effect(self):
