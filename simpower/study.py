@@ -19,6 +19,13 @@ result), so ``execute(load_plan("trial.toml"))`` gives the numbers
 ``simpower report trial.toml`` gives. The command line only parses, builds or
 overrides a plan, executes it and prints.
 
+A plan is also data: :meth:`StudyPlan.to_data` gives the resolved plan as
+JSON-able tables (the scenario's specs, the blocks, the settings that shape the
+numbers; never a folder, a store or an output path), and
+:meth:`StudyPlan.from_data` checks such data with the validators of
+:func:`load_plan` and rebuilds the plan. A command-line run records it in its
+run store, and ``simpower resume`` executes it again from there.
+
 Examples
 --------
 >>> import simpower as sp, tempfile, pathlib

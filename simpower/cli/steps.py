@@ -2,8 +2,9 @@
 
 How a command builds its part of the study plan from the file and its options (the run
 stores, the seed, the search options, the type I error check), the plot axis, and the
-report. They live here, not in one of the commands, so that no command imports another;
-every command runs its plan with :func:`simpower.execute`.
+report, and :func:`start` (seed fixed, plan recorded in the run stores, announced). They live
+here, not in one of the commands, so that no command imports another; every command runs its
+plan with :func:`simpower.execute`.
 """
 
 from __future__ import annotations
