@@ -118,8 +118,9 @@ def test_the_plan_is_the_resolved_study_as_data_without_command_line_folder_or_p
 
 def test_resume_from_another_folder_is_bit_identical_and_writes_only_the_store(project, monkeypatch, capsys):
     tmp, store = project
-    before = _files(tmp)
+    before, plan = _files(tmp), _plan(store)
     assert _cli(["resume", str(store), "-q", "--jobs", "1"], tmp / "elsewhere", monkeypatch) == 0
+    assert _plan(store) == plan     # resume adds chunks; the plan stays as recorded
     ref = _reference()
     with open_store(store) as st:
         assert len(st.done_chunks()) == 8

@@ -151,7 +151,8 @@ def main(args) -> int:
         check = getattr(ns, "check", None)
         if check is not None:
             check(study, ns)   # the outputs named here, before anything runs
-        study = start(study, command, ns, {p: args.store for p in parts})
+        # a version-1 plan is replaced by the plan it stands for; a version-2 plan stays as recorded
+        study = start(study, command, ns, {p: args.store for p in parts}, record_plan=plan["version"] == 1)
         try:
             out = execute(study, echo=print if getattr(ns, "echo", False) else None)
         except RunInterrupted:

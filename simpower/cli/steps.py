@@ -30,7 +30,7 @@ def stores_of(sf, args, parts) -> dict:
     return {kind: store_of(args, fingerprint([sf.scenario.fingerprint(), kind]), sf) for kind in parts}
 
 
-def start(plan, command: str, args, stores: dict | None = None):
+def start(plan, command: str, args, stores: dict | None = None, record_plan: bool = True):
     """Before anything runs: the plan with its run stores and its seed fixed, recorded in its stores, announced.
 
     The seed is the plan's (the command line's or the file's), else the one its
@@ -45,7 +45,8 @@ def start(plan, command: str, args, stores: dict | None = None):
         plan = plan.replace(stores=stores)
     plan = plan.replace(execution=plan.execution.replace(seed=resolve_seed(plan)))
     resumed = getattr(args, "resumed_from", None)
-    record(command, plan, resumed.scenario_file if resumed is not None else getattr(args, "scenario", ""))
+    if record_plan:
+        record(command, plan, resumed.scenario_file if resumed is not None else getattr(args, "scenario", ""))
     announce(plan, command, args)
     return plan
 
