@@ -14,8 +14,8 @@ design, is applied to the scenario's analyses when the file is read) and how to 
 * and the type I error check at each analysis's H0 boundary when it is on
   (on unless ``[null_check] enabled = false``).
 
-All parts share one seed (the plan's, else fresh entropy, recorded in the
-result), so ``execute(load_plan("trial.toml"))`` gives the numbers
+All parts share one seed (the plan's, else the one its run stores already
+hold, else fresh entropy; recorded in the result), so ``execute(load_plan("trial.toml"))`` gives the numbers
 ``simpower report trial.toml`` gives. The command line only parses, builds or
 overrides a plan, executes it and prints.
 
