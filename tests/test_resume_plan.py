@@ -161,6 +161,9 @@ def _study(p, **changes):
     # an output path smuggled into the plan
     (lambda p, evil: _study(p, json=str(evil)), "`plan.json` is not a field"),
     (lambda p, evil: {**p, "stores": ["run", str(evil)]}, "`stores` must list parts"),
+    (lambda p, evil: {**p, "stores": []}, "`stores` must list parts"),
+    # a command that does not print what the plan computes
+    (lambda p, evil: {**p, "command": "sweep"}, "a sweep plan computes a sweep, this one a run"),
     # a store path, a report folder, a scheduler or a worker count inside the data
     (lambda p, evil: _study(p, scenario={**p["study"]["scenario"], "store": {"path": str(evil)}}),
      "`scenario.store` is not a field"),

@@ -44,6 +44,8 @@ COMMANDS = ("run", "sweep", "samplesize", "report", "assurance")
 COMMANDS_V1 = ("run", "sweep", "samplesize", "report")
 #: the parts of a study that may run into a store
 PARTS = ("search", "sweep", "run", "null_check", "assurance")
+#: what each command's plan computes first (``StudyPlan.kind``; a report computes whatever its file plans)
+KINDS = {"run": "run", "sweep": "sweep", "samplesize": "search", "assurance": "assurance"}
 
 # kinds of option values
 INT, FLOAT, BOOL, TEXT, TEXTS = "int", "float", "bool", "text", "texts"
@@ -173,8 +175,8 @@ def validate(plan: Any, where: str) -> dict:
         bad(f"command {command!r} is not one of {', '.join(COMMANDS)}")
     if not isinstance(plan.get("scenario_file", ""), str):
         bad("`scenario_file` is not text")
-    stores = plan.get("stores", [])
-    if not isinstance(stores, list) or any(p not in PARTS for p in stores):
+    stores = plan.get("stores")
+    if not isinstance(stores, list) or not stores or any(p not in PARTS for p in stores):
         bad(f"`stores` must list parts of {', '.join(PARTS)}; got {stores!r}")
     code = names_user_code(plan.get("study"))
     if code is not None:
@@ -184,6 +186,9 @@ def validate(plan: Any, where: str) -> dict:
             study = StudyPlan.from_data(plan.get("study"), where)
     except (ParameterError, SimpowerError) as exc:
         bad(str(exc).removeprefix(f"{where}: ").rstrip("."))
+    kind = KINDS.get(command)
+    if kind is not None and study.kind != kind:
+        bad(f"a {command} plan computes a {kind}, this one a {study.kind}")
     return {"version": VERSION, "command": command, "scenario_file": plan.get("scenario_file", ""),
             "stores": list(stores), "study": study}
 
