@@ -14,10 +14,17 @@ design, is applied to the scenario's analyses when the file is read) and how to 
 * and the type I error check at each analysis's H0 boundary when it is on
   (on unless ``[null_check] enabled = false``).
 
-All parts share one seed (the plan's, else fresh entropy, recorded in the
-result), so ``execute(load_plan("trial.toml"))`` gives the numbers
+All parts share one seed (the plan's, else the one its run stores already
+hold, else fresh entropy; recorded in the result), so ``execute(load_plan("trial.toml"))`` gives the numbers
 ``simpower report trial.toml`` gives. The command line only parses, builds or
 overrides a plan, executes it and prints.
+
+A plan is also data: :meth:`StudyPlan.to_data` gives the resolved plan as
+JSON-able tables (the scenario's specs, the blocks, the settings that shape the
+numbers; never a folder, a store or an output path), and
+:meth:`StudyPlan.from_data` checks such data with the validators of
+:func:`load_plan` and rebuilds the plan. A command-line run records it in its
+run store, and ``simpower resume`` executes it again from there.
 
 Examples
 --------
@@ -116,6 +123,22 @@ class StudyPlan:
     def replace(self, **changes) -> "StudyPlan":
         """A copy with ``changes`` applied (e.g. ``plan.replace(null_check=None)``)."""
         return dataclasses.replace(self, **changes)
+
+    def to_data(self) -> dict[str, Any]:
+        """The plan as data (JSON-able): what :meth:`from_data` rebuilds into the same computation.
+
+        Holds the scenario as resolved (every parameter, after overrides; the analyses a
+        ``[looks]`` block names already wrapped), the blocks, and the execution settings that
+        shape the numbers (:data:`RECORDED_EXECUTION`: seed, chunk size, fit-trouble policy,
+        failure limit, time limit, record keeping). Never the run stores, the file's folder,
+        the report's output folder, workers, executor or scheduler address.
+        """
+        return plan_to_data(self)
+
+    @classmethod
+    def from_data(cls, data: Any, where: str = "the plan") -> "StudyPlan":
+        """A plan rebuilt from :meth:`to_data`'s data, checked by the validators of :func:`load_plan`."""
+        return plan_from_data(data, where)
 
     @property
     def kind(self) -> str:
@@ -230,6 +253,170 @@ def load_plan(path: str | Path, overrides: Mapping[str, Any] | None = None,
     return plan_from_file(sf)
 
 
+#: the execution settings a plan's data keeps (the ones that shape the numbers, and record keeping)
+RECORDED_EXECUTION = ("seed", "chunk_size", "fit_trouble", "max_failure_rate", "timeout", "keep_records")
+#: the fields of a scenario in a plan's data (a scenario file's fields, blocks and run settings excluded)
+SCENARIO_DATA = ("name", "description", "alpha", "true_effect", "true_effects", "process", "analyses")
+#: the fields of a plan's data
+PLAN_DATA = ("scenario", "execution", "reps", "search", "sweep", "sequential", "null_check", "report", "assurance",
+             "looks")
+#: the [report] fields a plan's data keeps (``out`` names a place to write to)
+REPORT_DATA = ("title", "formats", "labels")
+#: the sweep part's settings besides its grid
+SWEEP_DATA = ("reps", "target_mcse", "max_reps", "min_reps", "chunk_size", "x")
+
+
+def _plain(value: Any) -> Any:
+    import json
+
+    from .components import to_plain
+
+    return json.loads(json.dumps(to_plain(value), default=str))
+
+
+def scenario_to_data(scenario) -> dict[str, Any]:
+    """A Scenario as a scenario file's fields: name, description, alpha, the process and analyses as their specs."""
+    spec = scenario.spec()
+    out: dict[str, Any] = {"name": scenario.name, "description": scenario.description, "alpha": spec["alpha"],
+                           "process": spec["process"], "analyses": spec["analyses"]}
+    if spec.get("true_effect") is not None:
+        out["true_effect"] = spec["true_effect"]
+    if spec.get("true_effects"):
+        out["true_effects"] = spec["true_effects"]
+    return _plain(out)
+
+
+def plan_to_data(plan: StudyPlan) -> dict[str, Any]:
+    """See :meth:`StudyPlan.to_data`."""
+    from .engine import normalize_seed
+    from .planning.sweep import grid_to_data
+
+    ex = plan.execution
+    execution = {k: getattr(ex, k) for k in RECORDED_EXECUTION if getattr(ex, k) is not None}
+    if "seed" in execution:
+        execution["seed"] = normalize_seed(execution["seed"])
+    out: dict[str, Any] = {"scenario": scenario_to_data(plan.scenario), "execution": execution}
+    if plan.reps is not None:
+        out["reps"] = plan.reps
+    if plan.search is not None:
+        out["search"] = _plain(plan.search)
+    if plan.sweep is not None:
+        out["sweep"] = {**_plain({k: v for k, v in plan.sweep.items() if k in SWEEP_DATA}),
+                        "grid": grid_to_data(plan.sweep["grid"])}
+    if plan.sequential:
+        out["sequential"] = _plain(plan.sequential)
+    if plan.null_check is not None:
+        out["null_check"] = _plain(plan.null_check)
+    report = {k: v for k, v in plan.report.items() if k in REPORT_DATA}
+    if report:
+        out["report"] = _plain(report)
+    if plan.assurance is not None:
+        a = dict(plan.assurance)
+        a["prior"] = {k: (v.to_data() if hasattr(v, "to_data") else v) for k, v in a["prior"].items()}
+        out["assurance"] = _plain(a)
+    if plan.looks:
+        out["looks"] = _plain(plan.looks)
+    return out
+
+
+def _table(data: Any, where: str) -> dict:
+    if not isinstance(data, dict):
+        raise ParameterError(f"`{where}` must be a table; got {type(data).__name__}.")
+    return data
+
+
+def _only(data: dict, allowed, where: str) -> None:
+    from .errors import nearest
+
+    for key in data:
+        if key not in allowed:
+            raise ParameterError(f"`{where}.{key}` is not a field of a recorded plan's {where}.{nearest(key, allowed)}")
+
+
+def plan_from_data(data: Any, where: str = "the plan") -> StudyPlan:
+    """See :meth:`StudyPlan.from_data`: every field checked by the validators of :func:`load_plan`.
+
+    The scenario goes through the scenario-file loader (its process and analyses through the
+    registry, every parameter against its constraints), each block through its declared
+    fields (:func:`simpower.blocks.read_block`), the execution settings through
+    :class:`~simpower.execution.Execution`; the grid's names, the null-check boundaries and
+    the assurance prior are checked against the scenario, as when a file is loaded. Unknown
+    fields are refused. References to user code resolve as in a file without a folder (the
+    current one); ``simpower resume`` refuses them before this is called.
+    """
+    from ._validation import Int
+    from .blocks import BLOCK_FIELDS, read_block
+    from .scenario_files import from_data
+
+    data = _table(data, "plan")
+    _only(data, PLAN_DATA, "plan")
+    if "scenario" not in data or "execution" not in data:
+        raise ParameterError("a recorded plan needs `scenario` and `execution`.")
+    scen = _table(data["scenario"], "scenario")
+    _only(scen, SCENARIO_DATA, "scenario")
+    sf = from_data(scen, f"{where}: scenario")
+    ex = _table(data["execution"], "execution")
+    _only(ex, RECORDED_EXECUTION, "execution")
+    if "seed" not in ex:
+        raise ParameterError("`execution.seed` is missing: a recorded plan names its seed.")
+    execution = Execution(**{k: v for k, v in ex.items()})
+    reps = Int(low=1, optional=True).clean("reps", data.get("reps"))
+    search = None
+    if data.get("search") is not None:
+        search = read_block("search", data["search"])
+        search.setdefault("find", "size")
+    sweep = None
+    if data.get("sweep") is not None:
+        from .planning.sweep import check_names, grid_from_data
+
+        block = dict(_table(data["sweep"], "sweep"))
+        grid = grid_from_data(block.pop("grid", None))
+        sweep = read_block("sweep", block, {k: BLOCK_FIELDS["sweep"][k] for k in SWEEP_DATA})
+        check_names(sf.scenario, grid.names)
+        sweep["grid"] = grid
+    null = None
+    if data.get("null_check") is not None:
+        from .planning.nullpoints import null_points
+
+        null = read_block("null_check", data["null_check"], {k: BLOCK_FIELDS["null_check"][k]
+                                                             for k in ("reps", "at_grid")})
+        null = {"reps": null.get("reps", DEFAULT_NULL_REPS), "at_grid": null.get("at_grid", False)}
+        null_points(sf.scenario)
+    report = read_block("report", data.get("report") or {}, {k: BLOCK_FIELDS["report"][k] for k in REPORT_DATA})
+    assurance = None
+    if data.get("assurance") is not None:
+        from .planning.assurance import check_block
+
+        assurance = check_block(sf.scenario, read_block("assurance", data["assurance"]))
+    return StudyPlan(scenario=sf.scenario, execution=execution, reps=reps, search=search, sweep=sweep,
+                     sequential=read_block("sequential", data.get("sequential") or {}), null_check=null,
+                     report=report, assurance=assurance, looks=read_block("looks", data.get("looks") or {}))
+
+
+def resolve_seed(plan: StudyPlan) -> int:
+    """The plan's seed; without one, the seed its run stores already hold (a rerun continues them), else fresh
+    entropy."""
+    from .engine import normalize_seed
+
+    if plan.execution.seed is not None:
+        return normalize_seed(plan.execution.seed)
+    for store in plan.stores.values():
+        if store is None:
+            continue
+        if isinstance(store, (str, Path)) or hasattr(store, "__fspath__"):
+            if not Path(store).is_file():
+                continue
+            from .engine.store import open_store
+
+            with open_store(store) as st:
+                seed = st.seed
+        else:
+            seed = getattr(store, "seed", None)
+        if seed is not None:
+            return int(seed)
+    return normalize_seed(None)
+
+
 def _search(plan: StudyPlan, ex: Execution):
     from .planning.search import SEARCH_CHUNK, search
 
@@ -293,13 +480,11 @@ def execute(plan: StudyPlan, echo=None) -> PlanResult:
         not run), the ``seed`` they share, the plot axis ``x`` of a sweep, and
         the ``settings`` each part ran with (for the report's manifest).
     """
-    from .engine import normalize_seed
-
     if not isinstance(plan, StudyPlan):
         raise ParameterError(f"`plan` must be a StudyPlan (simpower.load_plan('x.toml')); got "
                              f"{type(plan).__name__}.")
     say = echo or (lambda line: None)
-    seed = normalize_seed(plan.execution.seed)
+    seed = resolve_seed(plan)
     ex = plan.execution.replace(seed=seed)
     out = PlanResult(seed=seed)
     if plan.search is not None:

@@ -177,7 +177,7 @@ def test_ctrl_c_saves_finished_chunks_and_says_how_to_resume(project, monkeypatc
     printed = capsys.readouterr().out
     assert "To reproduce these numbers exactly: simpower run s.toml --store int.sqlite" in printed
     # the store keeps a data-only plan: no command line, no folder
-    assert plan["command"] == "run" and plan["scenario"]["process"]["type"] == "helpers.py:slow_two_arm"
+    assert plan["command"] == "run" and plan["study"]["scenario"]["process"]["type"] == "helpers.py:slow_two_arm"
     with open_store(store) as st:
         assert not {"command", "cwd"} & set(st.meta())
 

@@ -96,3 +96,52 @@ def test_execute_a_search_plan_matches_the_samplesize_command(tmp_path, capsys):
 def test_execute_takes_only_a_plan():
     with pytest.raises(sp.ParameterError, match=r"`plan` must be a StudyPlan"):
         sp.execute("trial.toml")
+
+
+@pytest.mark.parametrize("name", sorted(p.name for p in (ROOT / "scenarios").glob("*.toml")))
+def test_a_plan_as_data_rebuilds_the_same_computation(name):
+    # every bundled scenario: to_data -> JSON -> from_data gives the same scenario fingerprint (and so the same
+    # seeds: SeedSequence(seed, spawn_key=(point key from the fingerprint, chunk))), the same grid points and
+    # the same data again
+    plan = sp.load_plan(ROOT / "scenarios" / name)
+    data = json.loads(json.dumps(plan.to_data()))
+    again = sp.StudyPlan.from_data(data)
+    assert again.scenario.fingerprint() == plan.scenario.fingerprint()
+    assert again.to_data() == data
+    assert again.execution.seed == plan.execution.seed and again.execution.chunk_size == plan.execution.chunk_size
+    if plan.sweep is not None:
+        assert again.sweep["grid"].settings(again.scenario) == plan.sweep["grid"].settings(plan.scenario)
+    for part in ("search", "null_check", "sequential", "looks"):
+        assert (getattr(again, part) or None) == (getattr(plan, part) or None), part
+    assert "out" not in again.report and again.path is None and not again.stores
+
+
+def test_a_plan_as_data_holds_no_place_and_no_executor(tmp_path):
+    path = _copy(tmp_path, "sweep_reading_clusters.toml",
+                 lambda t: t + '\n[store]\npath = "runs/"\n[execution]\nbackend = "serial"\ntimeout = 30\n')
+    plan = sp.load_plan(path).replace(stores={"sweep": str(tmp_path / "runs" / "x.sqlite")})
+    data = plan.to_data()
+    text = json.dumps(data)
+    assert str(tmp_path) not in text and "serial" not in text and "runs" not in text
+    assert data["execution"] == {"seed": 20261202, "fit_trouble": "failure", "max_failure_rate": 0.5, "timeout": 30}
+    with pytest.raises(sp.ParameterError, match=r"`execution.backend` is not a field"):
+        sp.StudyPlan.from_data({**data, "execution": {**data["execution"], "backend": "dask"}})
+    with pytest.raises(sp.ParameterError, match=r"`sweep.reps` must be an integer >= 1; got -5"):
+        sp.StudyPlan.from_data({**data, "sweep": {**data["sweep"], "reps": -5}})
+    with pytest.raises(sp.ParameterError, match=r"grid parameter `schools` is not a parameter"):
+        sp.StudyPlan.from_data({**data, "sweep": {**data["sweep"], "grid": [{"schools": [4, 8]}]}})
+
+
+def test_a_rerun_without_a_seed_continues_its_store(tmp_path, monkeypatch, capsys):
+    # documented in docs/overnight.md: the first run draws a seed and stores it, the rerun (no seed either)
+    # reuses it -- also for the planning commands, whose plan fixes the seed before the engine sees the store
+    path = _copy(tmp_path, "two_arm_normal.toml", lambda t: "\n".join(
+        ln for ln in t.splitlines() if not ln.startswith("seed")))
+    monkeypatch.chdir(tmp_path)
+    argv = ["sweep", str(path), "--vary", "n=20,30", "--reps", "200", "--jobs", "1", "-q", "--store", "s.sqlite"]
+    assert main([*argv, "--csv", "a.csv"]) == 0
+    assert main([*argv, "--csv", "b.csv"]) == 0
+    a, b = pd.read_csv("a.csv"), pd.read_csv("b.csv")
+    assert a["power"].tolist() == b["power"].tolist()
+    with sp.open_store("s.sqlite") as st:
+        assert st.plan["study"]["execution"]["seed"] == st.seed

@@ -18,7 +18,6 @@ from __future__ import annotations
 
 from ..errors import ParameterError
 from .common import add_run_options, execution_of, load_scenario, store_of
-from .steps import seed_of
 
 
 def register(sub) -> None:
@@ -33,7 +32,7 @@ def register(sub) -> None:
     p.add_argument("--target", type=float, help="find the size whose assurance reaches this")
     p.add_argument("--range", metavar="LOW:HIGH", help="the size range for --target")
     p.add_argument("--csv", metavar="PATH", help="write the draws (or the evaluated sizes) as CSV")
-    p.set_defaults(func=main)
+    p.set_defaults(func=main, build=build, show=show)
 
 
 def block_of(sf, args) -> dict:
@@ -56,24 +55,37 @@ def block_of(sf, args) -> dict:
     return check_block(sf.scenario, block)
 
 
-def main(args) -> int:
-    from ..study import StudyPlan, execute
-    from ..textout import CAUTION
-    from .steps import announce
+def build(sf, args):
+    """The assurance's study plan: the [assurance] block with the options above."""
+    from ..study import StudyPlan
 
     if args.reps is not None:
         raise ParameterError("`--reps` does not apply to assurance: give --draws (prior draws) and --reps-per-draw "
                              "(simulated trials at each).")
-    sf = load_scenario(args)
-    seed = seed_of(sf, args)
-    block = block_of(sf, args)
-    from ..components import fingerprint
+    return StudyPlan(scenario=sf.scenario, execution=execution_of(sf, args), assurance=block_of(sf, args),
+                     report=dict(sf.blocks.get("report", {})), path=sf.path)
 
+
+def main(args) -> int:
+    from ..components import fingerprint
+    from ..study import execute
+    from .steps import start
+
+    if args.reps is not None:
+        build(None, args)  # refused before the file is read
+    sf = load_scenario(args)
+    plan = build(sf, args)
     store = store_of(args, fingerprint([sf.scenario.fingerprint(), "assurance"]), sf)
-    ex = execution_of(sf, args).replace(seed=seed)
-    plan = StudyPlan(scenario=sf.scenario, execution=ex, assurance=block, stores={"assurance": store}, path=sf.path)
-    announce(plan, "assurance", args)
-    res = execute(plan).assurance
+    plan = start(plan, "assurance", args, {"assurance": store})
+    return show(plan, execute(plan), args)
+
+
+def show(plan, out, args) -> int:
+    """Print the assurance (and write --csv, --json)."""
+    from ..textout import CAUTION
+
+    res = out.assurance
+    store = plan.stores.get("assurance")
     print(res.summary())
     if store:
         print(f"\nRun store: {store} (run the same command again to reuse its finished trials)")

@@ -24,7 +24,7 @@ def register(sub) -> None:
                         "or non-inferiority margin) and report the type I error with Bradley's (1978) liberal "
                         "criterion; also [null_check] enabled = true")
     p.add_argument("--null-reps", type=int, help="replicates of the null check (default 10000)")
-    p.set_defaults(func=main)
+    p.set_defaults(func=main, build=build, show=show)
 
 
 def _sequential(sf, args) -> dict:
@@ -55,40 +55,46 @@ def _null_reps(sf, args) -> int | None:
     return reps
 
 
-def plan_of(sf, args):
+def build(sf, args):
     """The run's study plan: the scenario as given (to a target MCSE with --target-mcse / [sequential]),
-    and the type I check when asked."""
+    and the type I check when asked (without run stores: :func:`main` adds them)."""
     from ..study import StudyPlan
 
     ex = execution_of(sf, args)
     if args.fit_trouble:
         ex = ex.replace(fit_trouble=args.fit_trouble)
-    store = store_of(args, sf.scenario.fingerprint(), sf)
     null_reps = _null_reps(sf, args)
     return StudyPlan(scenario=sf.scenario, execution=ex, reps=sf.run.get("reps", DEFAULT_REPS),
-                     sequential=_sequential(sf, args), stores={"run": store},
+                     sequential=_sequential(sf, args),
                      null_check=None if null_reps is None else {"reps": null_reps, "at_grid": False}, path=sf.path)
 
 
 def main(args) -> int:
     from ..study import execute
-    from .steps import announce, null_lines
+    from .steps import start
 
     sf = load_scenario(args)
-    plan = plan_of(sf, args)
-    store = plan.stores["run"]
+    plan = build(sf, args)
+    store = store_of(args, sf.scenario.fingerprint(), sf)
+    plan = start(plan, "run", args, {"run": store})
     try:
-        announce(plan, 'run', args)
         out = execute(plan)
     except RunInterrupted:
         raise RunInterrupted(f"interrupted; {resume_hint(store, sf)}.") from None
+    return show(plan, out, args)
+
+
+def show(plan, out, args) -> int:
+    """Print the run's result (and write --json)."""
+    from ..textout import format_result
+    from .steps import null_lines
+
     res = out.run
+    store = plan.stores.get("run")
     null_text = "\n".join(null_lines(out.null)) if out.null is not None else None
     res.extra["command"] = command_line(res.seed, args)
     if store:
         res.extra["store"] = store
-    from ..textout import format_result
-
     print(format_result(res, verbose=getattr(args, "verbose", False)))
     seq = res.extra.get("sequential")
     if seq:

@@ -20,7 +20,7 @@ from __future__ import annotations
 
 from .common import add_run_options, load_scenario
 from .common import execution_of
-from .steps import announce, null_lines, null_settings, search_options, seed_of, stores_of, write_outputs
+from .steps import null_lines, null_settings, search_options, start, stores_of, write_outputs
 
 
 def register(sub) -> None:
@@ -44,30 +44,34 @@ def register(sub) -> None:
     p.add_argument("--null-check", action="store_true", help="also the type I error under the null")
     p.add_argument("--null-reps", type=int, help="replicates of the type I error check (default 10000)")
     p.add_argument("--report", metavar="DIR", help="also write the Markdown + HTML report into DIR")
-    p.set_defaults(func=main)
+    p.set_defaults(func=main, build=build, show=show)
 
 
-def plan_of(sf, args, seed):
+def build(sf, args):
     """The search's study plan: the file's [search] with the options above, and the type I check when asked."""
     from ..study import StudyPlan
 
     ns = null_settings(sf, args, default_on=False) if args.null_check else None
-    ex = execution_of(sf, args).replace(seed=seed)
-    parts = ["search"] + (["null_check"] if ns is not None else [])
-    return StudyPlan(scenario=sf.scenario, execution=ex, reps=sf.run.get("reps"), search=search_options(sf, args),
-                     null_check=ns, stores=stores_of(sf, args, parts), path=sf.path)
+    return StudyPlan(scenario=sf.scenario, execution=execution_of(sf, args), reps=sf.run.get("reps"),
+                     search=search_options(sf, args), null_check=ns, report=dict(sf.blocks.get("report", {})),
+                     path=sf.path)
 
 
 def main(args) -> int:
     from ..study import execute
-    from ..textout import CAUTION
 
     sf = load_scenario(args)
-    seed = seed_of(sf, args)
-    plan = plan_of(sf, args, seed)
-    announce(plan, 'samplesize', args)
-    out = execute(plan)
-    res = out.search
+    plan = build(sf, args)
+    parts = ["search"] + (["null_check"] if plan.null_check is not None else [])
+    plan = start(plan, "samplesize", args, stores_of(sf, args, parts))
+    return show(plan, execute(plan), args)
+
+
+def show(plan, out, args) -> int:
+    """Print the search's answer (and write --csv, --json, --plot, --report); exit code 1 if it did not converge."""
+    from ..textout import CAUTION
+
+    res, seed = out.search, out.seed
     print(res.summary())
     print(f"  Seed: {seed}" + (f"  chunk size: {res.chunk_size}" if getattr(args, "verbose", False) else ""))
     null = out.null
@@ -88,7 +92,7 @@ def main(args) -> int:
         png, svg = plots.save(plots.search_plot(res), args.plot)
         print(f"plots written to {png} and {svg}")
     if args.report:
-        paths = write_outputs(sf, args, seed, args.report, search=res, null=null,
+        paths = write_outputs(plan, args, seed, args.report, search=res, null=null,
                               settings={"search": res.settings, "set": list(args.set)})
         print(f"report written to {paths.get('html') or paths.get('md')}")
     print("\nCaution: " + CAUTION)

@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from ..errors import ParameterError
 from .common import add_run_options, execution_of, load_scenario
-from .steps import announce, null_lines, null_settings, plot_axis, seed_of, stores_of, write_outputs
+from .steps import null_lines, null_settings, plot_axis, start, stores_of, write_outputs
 
 SHOWN = ("analysis", "power", "mcse", "ci_low", "ci_high", "reps", "failures", "analytic_power", "path")
 
@@ -39,7 +39,7 @@ def register(sub) -> None:
                                                              "scenario; at every point with [null_check] at_grid)")
     p.add_argument("--null-reps", type=int, help="replicates of the type I error check (default 10000)")
     p.add_argument("--report", metavar="DIR", help="also write the Markdown + HTML report into DIR")
-    p.set_defaults(func=main)
+    p.set_defaults(func=main, build=build, check=check, show=show)
 
 
 def grid_of(sf, args, block):
@@ -73,39 +73,50 @@ def format_table(table, verbose: bool = False) -> str:
     return shown.to_string(index=False, float_format=lambda v: f"{v:.4f}", na_rep="-")
 
 
-def plan_of(sf, args, block, grid):
-    """The sweep's study plan: the grid (from --vary/--together or the file), its replicates or target MCSE,
-    and the type I check when asked."""
+def build(sf, args):
+    """The sweep's study plan: the grid (from --vary/--together, which replace the file's, or the file's), its
+    replicates or target MCSE, the plot axis of [sweep] x, and the type I check when asked."""
     from ..study import StudyPlan, sweep_part
 
+    block = sf.blocks.get("sweep", {})
+    grid = grid_of(sf, args, block)
     part = sweep_part(block, grid)
+    if (args.vary or args.together) and part.get("x") not in grid.names:
+        part.pop("x", None)  # the file's axis counts only if the command line's grid sweeps it
     for key, value in (("reps", args.reps), ("target_mcse", args.target_mcse), ("max_reps", args.max_reps)):
         if value:
             part[key] = value  # the command line wins over [sweep]
     ex = execution_of(sf, args)
     ns = null_settings(sf, args, default_on=False) if (args.null_check or block.get("null_check")) else None
-    parts = ["sweep"] + (["null_check"] if ns is not None else [])
     return StudyPlan(scenario=sf.scenario, execution=ex, reps=sf.run.get("reps"), sweep=part, null_check=ns,
-                     stores=stores_of(sf, args, parts), path=sf.path)
+                     report=dict(sf.blocks.get("report", {})), path=sf.path)
+
+
+def check(plan, args):
+    """The plot axis (for --plot and --report), checked before anything runs; None without either."""
+    return plot_axis(plan, args, bool(args.plot)) if (args.plot or args.report) else None
 
 
 def main(args) -> int:
     from ..study import execute
-    from ..textout import CAUTION
 
     sf = load_scenario(args)
-    block = sf.blocks.get("sweep", {})
-    grid = grid_of(sf, args, block)
-    x = plot_axis(sf, args, block, grid, bool(args.plot)) if (args.plot or args.report) else None
-    seed = seed_of(sf, args)
-    plan = plan_of(sf, args, block, grid)
-    plan = plan.replace(execution=plan.execution.replace(seed=seed))
-    announce(plan, 'sweep', args)
-    out = execute(plan)
-    table, null, ns = out.sweep, out.null, plan.null_check
+    plan = build(sf, args)
+    check(plan, args)
+    parts = ["sweep"] + (["null_check"] if plan.null_check is not None else [])
+    plan = start(plan, "sweep", args, stores_of(sf, args, parts))
+    return show(plan, execute(plan), args)
+
+
+def show(plan, out, args) -> int:
+    """Print the sweep table (and write --csv, --parquet, --json, --plot, --report)."""
+    from ..textout import CAUTION
+
+    x = check(plan, args)
+    table, null, ns, seed = out.sweep, out.null, plan.null_check, out.seed
     print(format_table(table, verbose=getattr(args, "verbose", False)))
     chunk = f"  chunk size: {table.attrs['chunk_size']}" if getattr(args, "verbose", False) else ""
-    print(f"\nseed: {seed}{chunk}  points: {len(table) // len(sf.scenario.analyses)}")
+    print(f"\nseed: {seed}{chunk}  points: {len(table) // len(plan.scenario.analyses)}")
     if ns is not None:
         cols = [c for c in table.attrs.get("grid", []) if c in null.columns and ns["at_grid"]]
         print("\n" + "\n".join(null_lines(null, cols)))
@@ -121,12 +132,11 @@ def main(args) -> int:
     if args.plot:
         from ..report import plots
 
-        labels = sf.blocks.get("report", {}).get("labels")
-        png, svg = plots.save(table.plot(x, target=args.target, labels=labels), args.plot)
+        png, svg = plots.save(table.plot(x, target=args.target, labels=plan.report.get("labels")), args.plot)
         print(f"plots written to {png} and {svg}")
     if args.report:
-        paths = write_outputs(sf, args, seed, args.report, sweep=table, null=null, x=x,
-                              settings={"sweep": {"grid": grid.describe()}, "set": list(args.set)})
+        paths = write_outputs(plan, args, seed, args.report, sweep=table, null=null, x=x,
+                              settings={"sweep": {"grid": plan.sweep["grid"].describe()}, "set": list(args.set)})
         print(f"report written to {paths.get('html') or paths.get('md')}")
     print("\nCaution: " + CAUTION)
     return 0

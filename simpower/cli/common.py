@@ -64,10 +64,10 @@ def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | No
 
     A folder (a path ending in '/' or an existing directory) gets the file
     ``run-<fingerprint>.sqlite``; give the fingerprint of what the command
-    runs (a sweep: of the whole grid). The store is created if absent, and
-    the command's data-only plan (:mod:`simpower.cli.plan`: the scenario and
-    the settings, never a command line, folder or output path) is recorded in
-    it for ``simpower resume``.
+    runs (a sweep: of the whole grid). The store is created if absent; the
+    command's data-only plan (:mod:`simpower.cli.plan`: the resolved study
+    plan, never a command line, folder or output path) is recorded in it by
+    :func:`simpower.cli.steps.start` for ``simpower resume``.
     """
     from pathlib import Path
 
@@ -85,13 +85,8 @@ def store_of(args, fingerprint: str, sf: ScenarioFile | None = None) -> str | No
         return None
     if raw.endswith(("/", "\\")) or path.is_dir():
         path = path / f"run-{fingerprint}.sqlite"
-    sync = block.get("sync")
-    from .plan import plan_of
-
-    plan = plan_of(args, sf) if sf is not None else None
-    with RunStore(path, sync=sync, background=False) as st:
-        if plan is not None:
-            st.record_plan(plan)
+    with RunStore(path, sync=block.get("sync"), background=False):
+        pass  # created now, so an unwritable place is refused before anything runs
     return str(path)
 
 
@@ -161,9 +156,9 @@ def load_scenario(args) -> ScenarioFile:
 
 
 def argv_of(args=None) -> list[str]:
-    """This command's arguments as typed (without the program name); resuming, the plan's equivalent."""
+    """This command's arguments as typed (without the program name); resuming, ``resume STORE``."""
     resumed = getattr(args, "resumed_from", None) if args is not None else None
-    return list(resumed.argv) if resumed is not None else list(sys.argv[1:])
+    return ["resume", str(resumed.store)] if resumed is not None else list(sys.argv[1:])
 
 
 def jobs_of(sf: ScenarioFile, args) -> int:
@@ -175,10 +170,15 @@ def progress_of(args) -> bool | None:
 
 
 def command_line(seed: int | None = None, args=None) -> str:
-    """This command as typed; with ``seed``, pinned to that seed (added when no --seed was given)."""
+    """This command as typed; with ``seed``, pinned to that seed (added when no --seed was given).
+
+    A resumed command is ``simpower resume STORE``: the store's plan names the seed.
+    """
     import shlex
 
     argv = argv_of(args)
+    if getattr(args, "resumed_from", None) is not None:
+        return "simpower " + shlex.join(argv)
     if seed is not None and not any(a == "--seed" or a.startswith("--seed=") for a in argv):
         argv += ["--seed", str(seed)]
     return "simpower " + " ".join(shlex.quote(a) for a in argv)

@@ -1,23 +1,32 @@
 """The data-only plan a command records in its run store, and its validation for ``simpower resume``.
 
 A run store is data, never a program: it records *what* to compute, not a
-command line or a folder to run it in. The plan is JSON::
+command line or a folder to run it in. The plan (version 2) is JSON::
 
-    {"version": 1, "command": "run" | "sweep" | "samplesize" | "report",
-     "scenario": {... the scenario file's fields as data ...},
+    {"version": 2, "command": "run" | "sweep" | "samplesize" | "report" | "assurance",
      "scenario_file": "trial.toml",          # shown in messages only, never opened
-     "options": {"reps": 4000, "seed": 7, "set": ["n=80"], ...}}
+     "stores": ["run"],                      # the parts of the plan that ran into a store
+     "study": {... the resolved StudyPlan as data: simpower.StudyPlan.to_data() ...}}
 
-Recorded: the scenario file's data without the fields that name places to
-write to or connect to or the executor (``[store]``; of ``[report]`` only
-``title`` and ``formats``, of ``[execution]`` only ``timeout`` and
-``summaries_only`` are kept) and the command's options that shape the
-numbers (an allow-list per command). Never recorded: output paths (``--json``, ``--csv``, ``--out``...),
-``--store``, ``--jobs``, the working folder. :func:`validate` checks a plan
-read back from a store against the same allow-lists; ``simpower resume`` then
-rebuilds the run from it with user code refused
-(:func:`simpower.functions.no_user_code`) and takes output options from its
-own command line only.
+``study`` is the plan the command executed: the scenario after ``--set`` and
+the blocks (sweep grid, search, sequential, null check, assurance, looks,
+report title/formats/labels) with the command line's overrides applied, and
+the execution settings that shape the numbers (seed, chunk size, fit-trouble
+policy, failure limit, time limit, record keeping). Never recorded: output
+paths (``--json``, ``--csv``, ``--out``, ``[report] out``...), run store
+paths, ``--jobs``, the executor and scheduler address, the working folder.
+``command`` only says how ``resume`` prints the result and which outputs it
+takes from its own command line.
+
+:func:`validate` checks a plan read back from a store: the envelope against
+allow-lists, no reference to user code anywhere, then the study through
+:meth:`simpower.StudyPlan.from_data` (the validators :func:`simpower.load_plan`
+uses); ``simpower resume`` runs it with :func:`simpower.execute`.
+
+Stores written before (version 1) recorded the scenario file's fields and the
+command's options instead; :func:`validate_v1` checks those against the
+allow-lists below, and ``resume`` builds the StudyPlan from them with the
+command's own plan builder, so they resume to the same numbers.
 """
 
 from __future__ import annotations
@@ -28,8 +37,15 @@ from typing import Any
 
 from ..errors import StoreError
 
-VERSION = 1
-COMMANDS = ("run", "sweep", "samplesize", "report")
+VERSION = 2
+#: the commands whose plan a store records (version 2)
+COMMANDS = ("run", "sweep", "samplesize", "report", "assurance")
+#: the commands a version-1 plan could name
+COMMANDS_V1 = ("run", "sweep", "samplesize", "report")
+#: the parts of a study that may run into a store
+PARTS = ("search", "sweep", "run", "null_check", "assurance")
+#: what each command's plan computes first (``StudyPlan.kind``; a report computes whatever its file plans)
+KINDS = {"run": "run", "sweep": "sweep", "samplesize": "search", "assurance": "assurance"}
 
 # kinds of option values
 INT, FLOAT, BOOL, TEXT, TEXTS = "int", "float", "bool", "text", "texts"
@@ -50,6 +66,7 @@ OUTPUTS: dict[str, tuple[str, ...]] = {
     "sweep": ("csv", "parquet", "json", "plot", "x", "target", "report"),
     "samplesize": ("csv", "json", "plot", "report"),
     "report": ("out", "formats"),
+    "assurance": ("csv", "json"),
 }
 #: the fields a plan keeps of the scenario's blocks that say where and how to run (the rest name
 #: places to write to or connect to -- ``[store]``, ``[report] out``, ``[execution] address`` -- or
@@ -81,10 +98,10 @@ def _without_places(raw: dict) -> dict:
     return data
 
 
-def plan_of(args, sf) -> dict | None:
-    """The plan of this command line (None for a command that records none)."""
+def plan_v1(args, sf) -> dict | None:
+    """The version-1 plan of this command line (what stores recorded before version 2; kept to test compatibility)."""
     command = getattr(args, "command", None)
-    if command not in COMMANDS:
+    if command not in COMMANDS_V1:
         return None
     options = {}
     for name in OPTIONS[command]:
@@ -92,15 +109,95 @@ def plan_of(args, sf) -> dict | None:
         if v is None or v is False or v == []:
             continue
         options[name] = list(v) if isinstance(v, (list, tuple)) else v
-    return {"version": VERSION, "command": command, "scenario": _without_places(sf.raw),
+    return {"version": 1, "command": command, "scenario": _without_places(sf.raw),
             "scenario_file": str(getattr(args, "scenario", "") or ""), "options": options}
 
 
+def plan_of(command: str, study, scenario_file: str = "") -> dict:
+    """The plan a store records for ``command`` executing ``study`` (a StudyPlan with its stores)."""
+    return {"version": VERSION, "command": command, "scenario_file": str(scenario_file or ""),
+            "stores": [p for p in PARTS if study.stores.get(p)], "study": study.to_data()}
+
+
+def record(command: str, study, scenario_file: str = "") -> None:
+    """Record the plan in every run store of ``study`` (each file once)."""
+    from ..engine.store import RunStore
+
+    plan = plan_of(command, study, scenario_file)
+    for path in dict.fromkeys(str(s) for s in study.stores.values() if s):
+        with RunStore(path, background=False) as st:
+            st.record_plan(plan)
+
+
+def again(plan: Any, where: str) -> str:
+    """The original command, as far as a plan says it, for messages: ``simpower run trial.toml --store STORE``."""
+    if isinstance(plan, dict) and plan.get("command") in COMMANDS and isinstance(plan.get("scenario_file"), str):
+        return shlex.join(["simpower", plan["command"], plan["scenario_file"] or "SCENARIO.toml", "--store", where])
+    return ""
+
+
+def refuse(plan: Any, where: str, what: str):
+    cmd = again(plan, where)
+    raise StoreError(f"{where}: the recorded plan is refused: {what}. A store is data: re-run the original command"
+                     f"{f' ({cmd})' if cmd else ''} to continue it.")
+
+
 def validate(plan: Any, where: str) -> dict:
-    """``plan`` checked against the allow-lists, or StoreError (one line) saying what is wrong."""
+    """``plan`` checked (envelope, user code, the study's validators), or StoreError (one line) saying what is wrong.
+
+    Returns ``{"version", "command", "scenario_file", "stores", "study"}`` with ``study`` a
+    :class:`~simpower.StudyPlan` (its ``stores`` empty: the caller gives them); a
+    version-1 plan is returned as :func:`validate_v1` returns it.
+    """
+    from ..errors import ParameterError, SimpowerError
+    from ..functions import no_user_code
+    from ..study import StudyPlan
+
+    if isinstance(plan, dict) and plan.get("version") == 1:
+        return validate_v1(plan, where)
+
+    def bad(what: str):
+        refuse(plan, where, what)
+
+    if plan is None:
+        raise StoreError(f"{where}: the store holds no plan (written from Python, or by an older simpower that "
+                         f"recorded a command line): re-run the original command or run(...) call with this store "
+                         f"to continue it.")
+    if not isinstance(plan, dict):
+        bad("not a table")
+    extra = sorted(set(plan) - {"version", "command", "scenario_file", "stores", "study"})
+    if extra:
+        bad(f"unknown field {extra[0]!r}")
+    if plan.get("version") != VERSION:
+        bad(f"plan version {plan.get('version')!r}, this simpower reads versions 1 and {VERSION}")
+    command = plan.get("command")
+    if command not in COMMANDS:
+        bad(f"command {command!r} is not one of {', '.join(COMMANDS)}")
+    if not isinstance(plan.get("scenario_file", ""), str):
+        bad("`scenario_file` is not text")
+    stores = plan.get("stores")
+    if not isinstance(stores, list) or not stores or any(p not in PARTS for p in stores):
+        bad(f"`stores` must list parts of {', '.join(PARTS)}; got {stores!r}")
+    code = names_user_code(plan.get("study"))
+    if code is not None:
+        bad(f"the scenario names user code {code!r}, and resume never runs code named by a store")
+    try:
+        with no_user_code("a store is data."):
+            study = StudyPlan.from_data(plan.get("study"), where)
+    except (ParameterError, SimpowerError) as exc:
+        bad(str(exc).removeprefix(f"{where}: ").rstrip("."))
+    kind = KINDS.get(command)
+    if kind is not None and study.kind != kind:
+        bad(f"a {command} plan computes a {kind}, this one a {study.kind}")
+    return {"version": VERSION, "command": command, "scenario_file": plan.get("scenario_file", ""),
+            "stores": list(stores), "study": study}
+
+
+def validate_v1(plan: Any, where: str) -> dict:
+    """A version-1 ``plan`` checked against the allow-lists, or StoreError (one line) saying what is wrong."""
     def bad(what: str):
         again = "the original command"
-        if isinstance(plan, dict) and plan.get("command") in COMMANDS and isinstance(plan.get("scenario_file"), str):
+        if isinstance(plan, dict) and plan.get("command") in COMMANDS_V1 and isinstance(plan.get("scenario_file"), str):
             again += f" ({shlex.join(reproduce_argv({**plan, 'options': {}}, where, prog=True))})"
         raise StoreError(f"{where}: the recorded plan is refused: {what}. A store is data: re-run {again} to "
                          f"continue it.")
@@ -114,11 +211,11 @@ def validate(plan: Any, where: str) -> dict:
     extra = sorted(set(plan) - {"version", "command", "scenario", "scenario_file", "options"})
     if extra:
         bad(f"unknown field {extra[0]!r}")
-    if plan.get("version") != VERSION:
-        bad(f"plan version {plan.get('version')!r}, this simpower reads version {VERSION}")
+    if plan.get("version") != 1:
+        bad(f"plan version {plan.get('version')!r}, this simpower reads versions 1 and {VERSION}")
     command = plan.get("command")
-    if command not in COMMANDS:
-        bad(f"command {command!r} is not one of {', '.join(COMMANDS)}")
+    if command not in COMMANDS_V1:
+        bad(f"command {command!r} is not one of {', '.join(COMMANDS_V1)}")
     scenario = plan.get("scenario")
     if not isinstance(scenario, dict):
         bad("the scenario is not a table")
@@ -151,7 +248,7 @@ def validate(plan: Any, where: str) -> dict:
         code = names_user_code([_assigned(text)])
         if code is not None:
             bad(f"`set {text}` names user code {code!r}, and resume never runs code named by a store")
-    return {"version": VERSION, "command": command, "scenario": scenario,
+    return {"version": 1, "command": command, "scenario": scenario,
             "scenario_file": plan.get("scenario_file", ""), "options": dict(options)}
 
 

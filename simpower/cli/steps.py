@@ -2,8 +2,9 @@
 
 How a command builds its part of the study plan from the file and its options (the run
 stores, the seed, the search options, the type I error check), the plot axis, and the
-report. They live here, not in one of the commands, so that no command imports another;
-every command runs its plan with :func:`simpower.execute`.
+report, and :func:`start` (seed fixed, plan recorded in the run stores, announced). They live
+here, not in one of the commands, so that no command imports another; every command runs its
+plan with :func:`simpower.execute`.
 """
 
 from __future__ import annotations
@@ -29,11 +30,34 @@ def stores_of(sf, args, parts) -> dict:
     return {kind: store_of(args, fingerprint([sf.scenario.fingerprint(), kind]), sf) for kind in parts}
 
 
-def seed_of(sf, args) -> int:
-    """The seed to use: the command line's, the file's, else fresh entropy (printed, and kept in the manifest)."""
-    from ..engine import normalize_seed
+def start(plan, command: str, args, stores: dict | None = None, record_plan: bool = True):
+    """Before anything runs: the plan with its run stores and its seed fixed, recorded in its stores, announced.
 
-    return normalize_seed(sf.run.get("seed"))
+    The seed is the plan's (the command line's or the file's), else the one its
+    stores already hold (a rerun continues them), else fresh entropy; the store
+    records the plan with that seed (:func:`simpower.cli.plan.record`), so
+    ``simpower resume`` computes the same numbers.
+    """
+    from ..study import resolve_seed
+    from .plan import record
+
+    if stores is not None:
+        plan = plan.replace(stores=stores)
+    plan = plan.replace(execution=plan.execution.replace(seed=resolve_seed(plan)))
+    resumed = getattr(args, "resumed_from", None)
+    if record_plan:
+        record(command, plan, resumed.scenario_file if resumed is not None else getattr(args, "scenario", ""))
+    announce(plan, command, args)
+    return plan
+
+
+def stored_parts(command: str, plan) -> list[str]:
+    """The parts of ``plan`` that ``command`` runs into a run store (``run`` keeps its type I check out of it)."""
+    if command == "run":
+        return ["run"]
+    return [p for p, on in (("search", plan.search is not None), ("sweep", plan.sweep is not None),
+                            ("assurance", plan.assurance is not None), ("run", plan.kind == "run"),
+                            ("null_check", plan.null_check is not None)) if on]
 
 
 def null_settings(sf, args, default_on: bool) -> dict | None:
@@ -60,39 +84,39 @@ def null_lines(table, grid_cols=()) -> list[str]:
     return lines
 
 
-def write_outputs(sf, args, seed, outdir, *, sweep=None, search=None, null=None, run=None, x=None, formats=None,
+def write_outputs(plan, args, seed, outdir, *, sweep=None, search=None, null=None, run=None, x=None, formats=None,
                   settings=None, assurance=None) -> dict:
+    """The report of ``plan``'s results into ``outdir`` (title, formats and labels from its ``[report]``)."""
     from ..report import make_report
     from ..report.manifest import reproduce_command
+    from .common import argv_of, command_line
 
-    block = sf.blocks.get("report", {})
+    resumed = getattr(args, "resumed_from", None) is not None
+    command = command_line(seed, args) if resumed else reproduce_command(argv_of(args), seed)
+    block = plan.report
     fm = formats or block.get("formats") or ("md", "html")
     if isinstance(fm, str):
         fm = [f.strip() for f in fm.split(",") if f.strip()]
-    from .common import argv_of
-
-    return make_report(sf.scenario, outdir, seed=seed, command=reproduce_command(argv_of(args), seed), sweep=sweep,
+    return make_report(plan.scenario, outdir, seed=seed, command=command, sweep=sweep,
                        search=search, null=null, run=run, title=str(block.get("title", "")), x=x,
-                       scenario_file=sf.path, settings=settings, formats=tuple(fm), labels=block.get("labels"),
+                       scenario_file=plan.path, settings=settings, formats=tuple(fm), labels=block.get("labels"),
                        assurance=assurance)
 
 
-def plot_axis(sf, args, block, grid, plot: bool) -> str:
-    """The plot's x axis, checked before anything runs: a swept parameter (with numbers, for ``--plot``).
+def plot_axis(plan, args, plot: bool) -> str:
+    """The plot's x axis of a sweep plan, checked before anything runs: a swept parameter (with numbers, for
+    ``--plot``).
 
-    Taken from ``--x``, else ``[sweep] x``, else the first swept parameter; an
-    error names where the value came from. A grid given by ``--vary`` /
-    ``--together`` replaces the file's, so the file's ``x`` then counts only
-    if it is swept. The report leaves out the power curve of a non-numeric
-    axis, so only ``--plot`` needs numbers.
+    Taken from ``--x``, else the plan's (``[sweep] x``), else the first swept
+    parameter; an error names where the value came from. The report leaves
+    out the power curve of a non-numeric axis, so only ``--plot`` needs numbers.
     """
     from ..planning.sweep import check_names
 
-    check_names(sf.scenario, grid.names)
-    from_file = block.get("x")
-    if (args.vary or args.together) and from_file not in grid.names:
-        from_file = None
-    if args.x:
+    grid = plan.sweep["grid"]
+    check_names(plan.scenario, grid.names)
+    from_file = plan.sweep.get("x")
+    if getattr(args, "x", None):
         x, source = args.x, "`--x`"
     elif from_file is not None:
         x, source = from_file, "`[sweep] x`"
@@ -101,7 +125,7 @@ def plot_axis(sf, args, block, grid, plot: bool) -> str:
     if not isinstance(x, str) or x not in grid.names:
         raise ParameterError(f"{source} {x!r} is not a swept parameter; swept: {', '.join(grid.names)}.")
     if plot:
-        points = grid.settings(sf.scenario)
+        points = grid.settings(plan.scenario)
         numeric = [n for n in grid.names
                    if all(isinstance(p[n], (int, float)) and not isinstance(p[n], bool) for p in points)]
         if x not in numeric:

@@ -115,6 +115,19 @@ class PriorDistribution:
             return self.sample[rng.integers(0, self.sample.size, m)]
         return np.asarray(self.frozen.rvs(size=m, random_state=rng), dtype=float)
 
+    def to_data(self) -> dict:
+        """The prior as data (``{"sample": [...]}`` or ``{"dist": name, keyword: value...}``) that rebuilds it.
+
+        A frozen scipy distribution given positional arguments has no table form and is refused.
+        """
+        if self.sample is not None:
+            return {"sample": [float(v) for v in self.sample]}
+        d = self.frozen
+        if d.args:
+            raise ParameterError(f"`prior.{self.name}`: give scipy.stats.{d.dist.name} its arguments by keyword "
+                                 f"(e.g. loc=..., scale=...) so the prior can be recorded as data.")
+        return {"dist": d.dist.name, **{k: (v.item() if isinstance(v, np.generic) else v) for k, v in d.kwds.items()}}
+
     def describe(self) -> str:
         if self.sample is not None:
             return f"resampled from {self.sample.size} values (mean {self.sample.mean():.4g})"

@@ -526,6 +526,40 @@ def grid_from_block(block: Mapping[str, Any]) -> Grid | None:
 
 
 
+def grid_to_data(grid: Grid) -> list[dict[str, Any]]:
+    """The grid as data: one table per axis, parameter -> a list of values or a range table
+    ``{from, to, step | count, scale}`` (several parameters in one table vary together).
+
+    :func:`grid_from_data` rebuilds the same grid (same axes, same order, same points).
+    """
+    from ..components import to_plain
+
+    def values(v):
+        if isinstance(v, Range):
+            out = {"from": v.start, "to": v.stop}
+            out.update({"step": v.step} if v.step is not None else {"count": v.count, "scale": v.scale})
+            return out
+        return [to_plain(x) for x in v]
+
+    return [{n: values(vals[n] if isinstance(vals, dict) else vals) for n in names} for names, vals in grid.axes]
+
+
+def grid_from_data(data: Any, where: str = "sweep.grid") -> Grid:
+    """The :class:`Grid` of :func:`grid_to_data`'s tables, each checked (a list of values or a range table)."""
+    if not isinstance(data, list) or not data:
+        raise ParameterError(f"`{where}` must be a non-empty list of axes (tables of parameter = values).")
+    axes = []
+    for i, axis in enumerate(data):
+        if not isinstance(axis, dict) or not axis or not all(isinstance(k, str) for k in axis):
+            raise ParameterError(f"`{where}[{i}]` must be a table of parameter = values.")
+        for k, v in axis.items():
+            if not isinstance(v, (list, dict)):
+                raise ParameterError(f"`{where}[{i}].{k}` must be a list of values or a range table; got {v!r}.")
+        vals = {k: _values_from_toml(k, v) for k, v in axis.items()}
+        axes.append((tuple(vals), vals) if len(vals) > 1 else ((next(iter(vals)),), next(iter(vals.values()))))
+    return Grid(axes)
+
+
 def parse_axis(text: str) -> tuple[str, Any]:
     """A command-line axis ``name=values``: ``40,60,80`` (a list), ``20:100:10`` (from:to:step),
     ``20:100/5`` (5 evenly spaced values), ``10:1000//7`` (7 log-spaced values)."""
