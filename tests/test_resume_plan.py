@@ -178,6 +178,9 @@ def _study(p, **changes):
     (lambda p, evil: _study(p, scenario={**p["study"]["scenario"], "process": {"type": "two_arm", "n": 1}}),
      "`process.n` must be"),
     (lambda p, evil: {**p, "cwd": str(evil.parent)}, "unknown field 'cwd'"),
+    # a pilot process without its values, pointed at a file to read
+    (lambda p, evil: _study(p, scenario={**p["study"]["scenario"], "process": {
+        "type": "pilot_resample", "n": 20, "data": "/etc/hostname"}}), "would read the data file '/etc/hostname'"),
     (lambda p, evil: {**p, "version": 0}, "plan version 0"),
     (lambda p, evil: [p], "not a table"),
     # a version-1 plan is held to its own allow-lists

@@ -181,6 +181,10 @@ def validate(plan: Any, where: str) -> dict:
     code = names_user_code(plan.get("study"))
     if code is not None:
         bad(f"the scenario names user code {code!r}, and resume never runs code named by a store")
+    path = names_data_file(plan.get("study"))
+    if path is not None:
+        bad(f"the scenario would read the data file {path!r} (a pilot without its values), and resume never reads "
+            f"files named by a store")
     try:
         with no_user_code("a store is data."):
             study = StudyPlan.from_data(plan.get("study"), where)
@@ -276,6 +280,25 @@ def names_user_code(data: Any) -> str | None:
         return None
     for v in items:
         found = names_user_code(v)
+        if found is not None:
+            return found
+    return None
+
+
+def names_data_file(data: Any) -> str | None:
+    """The first ``data = "file.csv"`` of a component that does not carry the file's content
+    (``values`` / ``table``: what a recorded pilot process holds), else None."""
+    if isinstance(data, dict):
+        path = data.get("data")
+        if isinstance(path, str) and data.get("values") is None and data.get("table") is None:
+            return path
+        items = data.values()
+    elif isinstance(data, list):
+        items = data
+    else:
+        return None
+    for v in items:
+        found = names_data_file(v)
         if found is not None:
             return found
     return None
