@@ -293,7 +293,7 @@ def execute(plan: StudyPlan, echo=None) -> PlanResult:
         not run), the ``seed`` they share, the plot axis ``x`` of a sweep, and
         the ``settings`` each part ran with (for the report's manifest).
     """
-    from .engine import normalize_seed
+    from .engine.runner import normalize_seed
 
     if not isinstance(plan, StudyPlan):
         raise ParameterError(f"`plan` must be a StudyPlan (simpower.load_plan('x.toml')); got "

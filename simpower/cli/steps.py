@@ -31,7 +31,7 @@ def stores_of(sf, args, parts) -> dict:
 
 def seed_of(sf, args) -> int:
     """The seed to use: the command line's, the file's, else fresh entropy (printed, and kept in the manifest)."""
-    from ..engine import normalize_seed
+    from ..engine.runner import normalize_seed
 
     return normalize_seed(sf.run.get("seed"))
 
