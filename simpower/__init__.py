@@ -5,61 +5,82 @@ thousands of times, and read power, type I error, bias and coverage with their
 Monte Carlo error.
 """
 
+# The public names are loaded on first use (PEP 562): ``import simpower`` costs almost nothing, and a
+# worker process that unpickles a chunk (``simpower.engine.chunk.run_chunk`` and the scenario's
+# components) imports only the modules that chunk uses, not the planning, report or command-line
+# layers, nor every analysis and its libraries. ``_PUBLIC`` maps each module to the names it lends
+# the package ("public=inner" where the module calls it otherwise); matplotlib, for one, is imported
+# only when a report is made.
+
+import importlib
+import importlib.util
+
 from ._version import __version__
 
-from . import analytic
-from .analyses.base import Analysis, BatchResult, TestResult, as_batch_result, as_test_result
-from .analyses.bayes import PosteriorProbability
-from .analyses.binary import ChiSquare, FisherExact, Logistic, TwoProportions
-from .analyses.clustered import GEE, ClusterMeansT, FinalVisitT
-from .analyses.counts import NegBinGLM, PoissonGLM
-from .analyses.equivalence import TOST, NonInferiority
-from .analyses.mixed import MixedModel
-from .analyses.multiarm import AnovaF, Dunnett
-from .analyses.multiplicity import Multiple
-from .analyses.nonparametric import MannWhitney, WilcoxonSignedRank
-from .analyses.regression import OLS, Ancova
-from .analyses.resampling import BootstrapCI, LogT, PermutationTest
-from .analyses.survival import Cox, LogRank
-from .analyses.ttests import PairedT, TTest, WelchT, ZTest
-from .engine import RunInterrupted, run, run_many
-from .engine.store import RunStore, open_store
-from .errors import ParameterError, RunError, ScenarioFileError, SimpowerError, StoreError, UnknownNameError
-from .processes.arms import MultiArm, TwoArm
-from .batch import Batch
-from .processes.base import Missingness, Outcome, Process
-from .processes.binary import BinaryTwoArm
-from .processes.clusters import ClusterTrial
-from .processes.counts import CountTwoArm
-from .processes.dropout import Dropout
-from .processes.missing import MAR, MCAR, MNAR
-from .processes.normal import NormalOneSample, NormalPaired, NormalTwoArm
-from .processes.outcomes import (ContaminatedNormal, Fleishman, Gamma, Lognormal, Normal, ScipyOutcome,
-                                 SkewNormal, StudentT)
-from .processes.pilot import PilotResample
-from .processes.pilot_units import PilotUnits
-from .processes.repeated import RepeatedMeasures
-from .processes.survival import SurvivalTwoArm
-from .result import Records, RunResult
-from .planning.assurance import AssuranceResult, assurance, required_n_for_assurance
-from .planning.search import SearchResult, detectable_effect, required_n
-from .planning.sequential import MemoryStore, point_key, run_many_to_mcse, run_to_mcse
-from .planning.sweep import Grid, Range, null_check, sweep
-from .scenario import Scenario
-from .scenario_files import load as load_scenario
-from .execution import Execution
-from .study import PlanResult, StudyPlan, execute, load_plan
-from .summaries import bradley_liberal, paired_difference, wilson_interval
+_PUBLIC = {
+    "analyses.base": "Analysis BatchResult TestResult as_batch_result as_test_result",
+    "analyses.bayes": "PosteriorProbability",
+    "analyses.binary": "ChiSquare FisherExact Logistic TwoProportions",
+    "analyses.clustered": "GEE ClusterMeansT FinalVisitT",
+    "analyses.counts": "NegBinGLM PoissonGLM",
+    "analyses.equivalence": "TOST NonInferiority",
+    "analyses.mixed": "MixedModel",
+    "analyses.multiarm": "AnovaF Dunnett",
+    "analyses.multiplicity": "Multiple",
+    "analyses.nonparametric": "MannWhitney WilcoxonSignedRank",
+    "analyses.regression": "OLS Ancova",
+    "analyses.resampling": "BootstrapCI LogT PermutationTest",
+    "analyses.survival": "Cox LogRank",
+    "analyses.ttests": "PairedT TTest WelchT ZTest",
+    "engine": "RunInterrupted run run_many",
+    "engine.store": "RunStore open_store",
+    "errors": "ParameterError RunError ScenarioFileError SimpowerError StoreError UnknownNameError",
+    "processes.arms": "MultiArm TwoArm",
+    "batch": "Batch",
+    "processes.base": "Missingness Outcome Process",
+    "processes.binary": "BinaryTwoArm",
+    "processes.clusters": "ClusterTrial",
+    "processes.counts": "CountTwoArm",
+    "processes.dropout": "Dropout",
+    "processes.missing": "MAR MCAR MNAR",
+    "processes.normal": "NormalOneSample NormalPaired NormalTwoArm",
+    "processes.outcomes": "ContaminatedNormal Fleishman Gamma Lognormal Normal ScipyOutcome SkewNormal StudentT",
+    "processes.pilot": "PilotResample",
+    "processes.pilot_units": "PilotUnits",
+    "processes.repeated": "RepeatedMeasures",
+    "processes.survival": "SurvivalTwoArm",
+    "result": "Records RunResult",
+    "planning.assurance": "AssuranceResult assurance required_n_for_assurance",
+    "planning.search": "SearchResult detectable_effect required_n",
+    "planning.sequential": "MemoryStore point_key run_many_to_mcse run_to_mcse",
+    "planning.sweep": "Grid Range null_check sweep",
+    "scenario": "Scenario",
+    "scenario_files": "load_scenario=load",
+    "execution": "Execution",
+    "study": "PlanResult StudyPlan execute load_plan",
+    "summaries": "bradley_liberal paired_difference wilson_interval",
+    "report": "make_report",
+}
 
+#: public name -> (module, name in the module)
+_WHERE = {public: (module, inner or public) for module, names in _PUBLIC.items()
+          for public, _, inner in (item.partition("=") for item in names.split())}
 
 
 def __getattr__(name):
-    # matplotlib is imported only when a report is made (keeps `import simpower` and workers light)
-    if name == "make_report":
-        from .report import make_report
+    where = _WHERE.get(name)
+    if where is not None:
+        value = getattr(importlib.import_module(f"{__name__}.{where[0]}"), where[1])
+    elif not name.startswith("_") and importlib.util.find_spec(f"{__name__}.{name}") is not None:
+        value = importlib.import_module(f"{__name__}.{name}")  # a subpackage: simpower.analytic, simpower.engine
+    else:
+        raise AttributeError(f"module 'simpower' has no attribute {name!r}")
+    globals()[name] = value  # later look-ups skip this function
+    return value
 
-        return make_report
-    raise AttributeError(f"module 'simpower' has no attribute {name!r}")
+
+def __dir__():
+    return sorted(set(globals()) | set(__all__))
 
 
 __all__ = [

@@ -288,7 +288,7 @@ def scenario_to_data(scenario) -> dict[str, Any]:
 
 def plan_to_data(plan: StudyPlan) -> dict[str, Any]:
     """See :meth:`StudyPlan.to_data`."""
-    from .engine import normalize_seed
+    from .engine.runner import normalize_seed
     from .planning.sweep import grid_to_data
 
     ex = plan.execution
@@ -396,7 +396,7 @@ def plan_from_data(data: Any, where: str = "the plan") -> StudyPlan:
 def resolve_seed(plan: StudyPlan) -> int:
     """The plan's seed; without one, the seed its run stores already hold (a rerun continues them), else fresh
     entropy."""
-    from .engine import normalize_seed
+    from .engine.runner import normalize_seed
 
     if plan.execution.seed is not None:
         return normalize_seed(plan.execution.seed)

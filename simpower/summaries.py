@@ -30,7 +30,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import stats
 
 #: cause prefixes, see :mod:`simpower.engine.chunk`
 WARNING_PREFIX = "warning:"
@@ -47,6 +46,8 @@ def wilson_interval(successes: float, n: float, level: float = 0.95) -> tuple[fl
     """
     if n <= 0:
         return (math.nan, math.nan)
+    from scipy import stats  # here: workers reduce chunks without scipy.stats
+
     z = stats.norm.ppf(0.5 + level / 2)
     p = successes / n
     denom = 1 + z * z / n

@@ -25,7 +25,7 @@ from scipy import stats
 
 import simpower as sp
 from simpower.analyses.base import IGNORED_WARNINGS, Analysis, BatchResult, as_batch_result
-from simpower.analyses.numeric import p_from_t, p_from_z, two_sample_se_df
+from simpower.analyses.numeric import normal_ppf, p_from_t, p_from_z, t_cdf, t_ppf, t_sf, two_sample_se_df
 from simpower.batch import LAYOUTS, Batch
 from simpower.engine.chunk import chunk_seed, run_chunk
 from simpower.registry import build, load_builtins, lookup, names
@@ -526,6 +526,36 @@ def test_numeric_helpers_against_scipy():
         assert (y1.mean() - y0.mean()) / se == pytest.approx(r.statistic, rel=1e-12)
         assert df == pytest.approx(r.df, rel=1e-12)
 
+
+
+def test_t_and_normal_helpers_equal_scipy_stats_bit_for_bit():
+    # numeric's t_sf / t_cdf / t_ppf / normal_ppf call scipy.special directly so that a worker running a
+    # batch of t-tests needs no scipy.stats; they must give scipy.stats.t's and norm's numbers bit for bit
+    # (records of the bundled scenarios stay identical), edge cases included: df <= 0, NaN or infinite,
+    # t infinite or NaN, q at 0 and 1 or outside [0, 1]
+    rng = np.random.default_rng(12)
+    t = np.concatenate([rng.normal(0, 4, 300), [0.0, -0.0, 1e-300, 40.0, -40.0, 1e300, -1e300, np.inf, -np.inf,
+                                                np.nan]])
+    df = np.array([-1.0, 0.0, 1e-300, 0.3, 1.0, 2.0, 2.5, 7.0, 30.0, 126.0, 1e6, 1e300, np.inf, np.nan])
+    tt, dd = np.meshgrid(t, df)
+    q = np.concatenate([rng.uniform(0, 1, 100), [0.0, 1e-300, 0.025, 0.5, 0.975, 0.995, 1.0, 1.2, -0.1, np.nan]])
+    qq, dq = np.meshgrid(q, df)
+    with np.errstate(all="ignore"):
+        np.testing.assert_array_equal(t_sf(tt, dd), stats.t.sf(tt, dd))
+        np.testing.assert_array_equal(t_cdf(tt, dd), stats.t.cdf(tt, dd))
+        np.testing.assert_array_equal(t_ppf(qq, dq), stats.t.ppf(qq, dq))
+        np.testing.assert_array_equal(normal_ppf(q), stats.norm.ppf(q))
+        for alt in ("two-sided", "greater", "less"):
+            ref = {"two-sided": 2.0 * stats.t.sf(np.abs(tt), dd), "greater": stats.t.sf(tt, dd),
+                   "less": stats.t.cdf(tt, dd)}[alt]
+            np.testing.assert_array_equal(p_from_t(tt, dd, alt), ref)
+    # scalars in, numpy scalars out, as scipy.stats gives them (the per-replicate paths call float() on them)
+    for got, ref in ((t_sf(1.3, 9), stats.t.sf(1.3, 9)), (t_ppf(0.975, 9), stats.t.ppf(0.975, 9)),
+                     (normal_ppf(0.975), stats.norm.ppf(0.975))):
+        assert type(got) is type(ref) and got == ref
+    # and the values are the t distribution's: the 97.5% point on 10 df is 2.228 (Student's t tables, e.g.
+    # Fisher & Yates 1963, Table III; from memory)
+    assert round(float(t_ppf(0.975, 10)), 3) == 2.228
 
 # -- the batch result and the engine -------------------------------------------------------------
 class _DictT(sp.TTest):

@@ -23,7 +23,6 @@ from typing import Any
 
 import numpy as np
 
-from .. import crosscheck
 from .._validation import Choice, Real
 from ..components import Component
 
@@ -333,6 +332,8 @@ class Analysis(Component):
         Read from the cross-check table (:mod:`simpower.crosscheck`); a subclass that
         overrides :meth:`analytic_power` may set ``analytic_exact = False`` as a class attribute.
         """
+        from .. import crosscheck  # here: a worker running a chunk never needs the closed forms
+
         return crosscheck.is_exact(self)
 
     def analytic_exact_for(self, process) -> bool:
@@ -341,6 +342,8 @@ class Analysis(Component):
         sets ``analytic_exact`` as an attribute keeps it."""
         if not isinstance(getattr(type(self), "analytic_exact", None), property):
             return bool(self.analytic_exact)
+        from .. import crosscheck
+
         return crosscheck.is_exact(self, process)
 
     def analytic_power(self, process, alpha: float) -> float | None:
@@ -349,6 +352,8 @@ class Analysis(Component):
         Looked up in :data:`simpower.crosscheck.TABLE` by this analysis's name and the
         process's :meth:`~simpower.processes.base.Process.facts`; None when no entry covers them.
         """
+        from .. import crosscheck
+
         return crosscheck.power(self, process, alpha)
 
     #: parameters that hold the estimand's value under a point H0 (t-tests' ``null_mean``, the rank,

@@ -343,7 +343,7 @@ class Logistic(_Binary):
         return wald(est, se, self.alternative, self.ci_level)
 
     def __call__(self, data):
-        import statsmodels.api as sm
+        from statsmodels.discrete.discrete_model import Logit  # not statsmodels.api: it loads every model
         from statsmodels.tools.sm_exceptions import PerfectSeparationWarning
 
         x0, n0, x1, n1 = two_by_two(data)
@@ -355,7 +355,7 @@ class Logistic(_Binary):
         arm = np.asarray(data["arm"], float)
         ok = np.isfinite(y)
         exog = np.column_stack([np.ones(int(ok.sum())), arm[ok]])
-        fit = sm.Logit(y[ok], exog).fit(disp=0)
+        fit = Logit(y[ok], exog).fit(disp=0)
         return result_from_fields(self._wald(float(fit.params[1]), float(fit.bse[1])))
 
     def batch(self, batch):

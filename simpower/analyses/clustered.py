@@ -204,7 +204,7 @@ def _weighted_arm(means, counts, mask):
 
 def _size_weighted_arm(data, a):
     """Individual-level mean of arm ``a`` and k/(k-1) times its cluster-robust variance (statsmodels OLS)."""
-    import statsmodels.api as sm
+    from statsmodels.regression.linear_model import OLS  # not statsmodels.api: it loads every model
 
     y = np.asarray(data["y"], float)
     sel = (np.asarray(data["arm"]) == a) & np.isfinite(y)
@@ -212,7 +212,7 @@ def _size_weighted_arm(data, a):
     k = int(groups.max()) + 1 if groups.size else 0
     if k < 2:  # no variance estimate from fewer than two clusters
         return (float(y[sel].mean()) if k else math.nan), math.nan
-    fit = sm.OLS(y[sel], np.ones(sel.sum())).fit(cov_type="cluster",
+    fit = OLS(y[sel], np.ones(sel.sum())).fit(cov_type="cluster",
                                                  cov_kwds={"groups": groups, "use_correction": False})
     return float(fit.params[0]), k / (k - 1.0) * float(fit.bse[0]) ** 2
 

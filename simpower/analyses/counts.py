@@ -82,12 +82,13 @@ class PoissonGLM(Analysis):
     defaults = {"alternative": "two-sided", "ci_level": 0.95, "scale": "model"}
 
     def __call__(self, data):
-        import statsmodels.api as sm
+        from statsmodels.genmod import families  # not statsmodels.api: it loads every model
+        from statsmodels.genmod.generalized_linear_model import GLM
 
         y, arm, expo = count_columns(data)
         if _warn_empty_arm(y, arm):
             return TestResult(pvalue=math.nan)
-        model = sm.GLM(y, _design(arm), family=sm.families.Poisson(), offset=np.log(expo))
+        model = GLM(y, _design(arm), family=families.Poisson(), offset=np.log(expo))
         fit = model.fit(method="newton", scale="X2" if self.scale == "pearson" else None)
         return result_from_fields(wald(float(fit.params[1]), float(fit.bse[1]), self.alternative, self.ci_level))
 
@@ -168,17 +169,19 @@ class NegBinGLM(Analysis):
     defaults = {"alternative": "two-sided", "ci_level": 0.95, "dispersion": None}
 
     def __call__(self, data):
-        import statsmodels.api as sm
+        from statsmodels.discrete.discrete_model import NegativeBinomial  # not statsmodels.api
+        from statsmodels.genmod import families
+        from statsmodels.genmod.generalized_linear_model import GLM
 
         y, arm, expo = count_columns(data)
         if _warn_empty_arm(y, arm):
             return TestResult(pvalue=math.nan)
         exog, offset = _design(arm), np.log(expo)
         if self.dispersion is None:
-            fit = sm.NegativeBinomial(y, exog, loglike_method="nb2", offset=offset).fit(disp=0)
+            fit = NegativeBinomial(y, exog, loglike_method="nb2", offset=offset).fit(disp=0)
         else:
-            family = sm.families.NegativeBinomial(alpha=1.0 / self.dispersion)
-            fit = sm.GLM(y, exog, family=family, offset=offset).fit()
+            family = families.NegativeBinomial(alpha=1.0 / self.dispersion)
+            fit = GLM(y, exog, family=family, offset=offset).fit()
         return result_from_fields(wald(float(fit.params[1]), float(fit.bse[1]), self.alternative, self.ci_level))
 
     # -- batch path ------------------------------------------------------------------------------

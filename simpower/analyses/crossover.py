@@ -462,7 +462,7 @@ class CrossoverMixed(Analysis):
         return p, e, s, lo, hi
 
     def __call__(self, data):
-        import statsmodels.api as sm
+        from statsmodels.regression.mixed_linear_model import MixedLM  # not statsmodels.api: it loads every model
 
         y1, y2, seq = periods(data, self.scale)
         _differences(data, self.scale)  # the same minimum of complete subjects as the batch path
@@ -472,7 +472,7 @@ class CrossoverMixed(Analysis):
         groups = np.tile(np.arange(seq.size), 2)
         keep = np.isfinite(y)
         y, X, groups = y[keep], X[keep], groups[keep]
-        model = sm.MixedLM(y, X, groups=groups)
+        model = MixedLM(y, X, groups=groups)
         with warnings.catch_warnings():
             warnings.filterwarnings("ignore", message=BOUNDARY_WARNING)
             warnings.filterwarnings("ignore", message=SINGULAR_WARNING)

@@ -571,14 +571,14 @@ def shared_design(formula, groups, shared):
     ``MixedLM`` for the full table (every row observed).
     """
     import pandas as pd
-    import statsmodels.formula.api as smf
+    from statsmodels.regression.mixed_linear_model import MixedLM  # smf.mixedlm is MixedLM.from_formula
 
     f = parse_formula(formula)
     frame = pd.DataFrame({c: np.asarray(shared[c]) for c in f.columns[1:]})
     frame[f.outcome] = 0.0
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        model = smf.mixedlm(formula, frame, groups=np.asarray(shared[groups]))
+        model = MixedLM.from_formula(formula, frame, groups=np.asarray(shared[groups]))
     return np.asarray(model.exog, float), list(model.exog_names)
 
 
@@ -750,7 +750,7 @@ class MixedModel(Analysis):
 
     def __call__(self, data):
         import pandas as pd
-        import statsmodels.formula.api as smf
+        from statsmodels.regression.mixed_linear_model import MixedLM  # smf.mixedlm is MixedLM.from_formula
 
         frame = pd.DataFrame({k: np.asarray(v) for k, v in dict(data).items()}) if not isinstance(data, pd.DataFrame) else data
         if self.groups not in frame:
@@ -758,7 +758,7 @@ class MixedModel(Analysis):
         outcome = require_columns(self.formula, frame.columns, "mixed_model").outcome
         if outcome in frame:
             frame = frame[np.isfinite(frame[outcome].to_numpy(float))]
-        model = smf.mixedlm(self.formula, frame, groups=frame[self.groups])
+        model = MixedLM.from_formula(self.formula, frame, groups=frame[self.groups])
         with warnings.catch_warnings():
             # a boundary fit is an answer (see the module notes); every other warning reaches the engine
             warnings.filterwarnings("ignore", message=BOUNDARY_WARNING)

@@ -122,7 +122,7 @@ class OLS(Analysis):
     # -- per replicate ---------------------------------------------------------
     def __call__(self, data):
         import pandas as pd
-        import statsmodels.formula.api as smf
+        from statsmodels.regression import linear_model  # smf.ols is linear_model.OLS.from_formula
 
         f = self.parsed
         cols = f.columns + (["cluster"] if self.cov_type == "cluster" else [])
@@ -134,7 +134,7 @@ class OLS(Analysis):
         kw = {"cov_type": self.cov_type, "use_t": self.use_t}
         if self.cov_type == "cluster":
             kw["cov_kwds"] = {"groups": frame["cluster"].to_numpy()}
-        fit = smf.ols(self.formula, frame).fit(**kw)
+        fit = linear_model.OLS.from_formula(self.formula, frame).fit(**kw)
         term = self.coefficient
         if term not in fit.params.index:
             raise ValueError(f"ols: no coefficient {term!r}; coefficients: {list(fit.params.index)}."

@@ -396,7 +396,7 @@ class SteppedMixed(Analysis):
     # -- per replicate -------------------------------------------------------
     def __call__(self, data):
         import pandas as pd
-        import statsmodels.formula.api as smf
+        from statsmodels.regression.mixed_linear_model import MixedLM  # smf.mixedlm is MixedLM.from_formula
 
         frame = data if isinstance(data, pd.DataFrame) else pd.DataFrame(
             {k: np.asarray(v) for k, v in dict(data).items()})
@@ -405,7 +405,7 @@ class SteppedMixed(Analysis):
                 raise ValueError(f"sw_mixed needs a {col!r} column (a stepped-wedge long table)")
         frame = frame[np.isfinite(frame["y"].to_numpy(float))]
         extra = ({"re_formula": "1", "vc_formula": {"period": "0 + C(period)"}} if self.structure == "nested" else {})
-        model = smf.mixedlm("y ~ C(period) + treat", frame, groups=frame["cluster"], **extra)
+        model = MixedLM.from_formula("y ~ C(period) + treat", frame, groups=frame["cluster"], **extra)
         with warnings.catch_warnings():
             warnings.filterwarnings("ignore", message=BOUNDARY_WARNING)
             try:

@@ -10,9 +10,9 @@ with missing outcomes (padded or not), whose observed values are summed under th
 (complete cases, as the per-replicate paths); a replicate with fewer than two
 observed values in a sample is handed to the per-replicate path.
 
-The per-replicate paths call :mod:`scipy.stats`; the batch paths compute the
-same statistics with numpy over a chunk of replicates, and the tests check the
-two agree to floating-point tolerance.
+The per-replicate paths call :mod:`scipy.stats` (imported when first called); the
+batch paths compute the same statistics with numpy and :mod:`scipy.special` over
+a chunk of replicates, and the tests check the two agree to floating-point tolerance.
 """
 
 from __future__ import annotations
@@ -20,11 +20,11 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import stats
 
 from .._validation import Real
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
-from .numeric import masked_t_parts, mean_var, p_from_t, p_from_z, paired_differences, split_arms, two_sample_se_df
+from .numeric import (masked_t_parts, mean_var, normal_ppf, p_from_t, p_from_z, paired_differences, split_arms, t_ppf,
+                      two_sample_se_df)
 
 POSITIVE = Real(0.0, low_open=True)
 
@@ -41,13 +41,13 @@ class _TBase(Analysis):
     defaults = {"alternative": "two-sided", "ci_level": 0.95, "null_mean": 0.0}
 
     def _two_sided_ci(self, est, se, df):
-        crit = float(stats.t.ppf(0.5 + self.ci_level / 2, df))
+        crit = float(t_ppf(0.5 + self.ci_level / 2, df))
         return est - crit * se, est + crit * se
 
     def _result(self, est, se, df):
         t = (est - self.null_mean) / se
         p = p_from_t(t, df, self.alternative)
-        crit = stats.t.ppf(0.5 + self.ci_level / 2, df)
+        crit = t_ppf(0.5 + self.ci_level / 2, df)
         lo, hi = _ci(est, se, crit)
         return BatchResult(pvalue=p, estimate=est, se=se, ci_low=lo, ci_high=hi)
 
@@ -83,6 +83,8 @@ class TTest(_TBase):
     null_hypothesis = "the mean difference (or the mean) equals null_mean, assuming equal variances"
 
     def __call__(self, data):
+        from scipy import stats
+
         if "arm" not in data:
             y = np.asarray(data["y"], float)
             y = y[np.isfinite(y)]
@@ -130,6 +132,8 @@ class WelchT(_TBase):
     null_hypothesis = "the two arm means differ by null_mean (variances may differ)"
 
     def __call__(self, data):
+        from scipy import stats
+
         if "arm" not in data:
             raise ValueError("welch_t needs two arms (an 'arm' column)")
         y0, y1 = split_arms(data)
@@ -169,6 +173,8 @@ class PairedT(_TBase):
     _differences = staticmethod(paired_differences)
 
     def __call__(self, data):
+        from scipy import stats
+
         d = self._differences(data)
         r = stats.ttest_1samp(d, self.null_mean, alternative=self.alternative)
         est, se = float(d.mean()), float(d.std(ddof=1) / math.sqrt(d.size))
@@ -208,7 +214,7 @@ class ZTest(Analysis):
 
     def _out(self, est, se):
         z = (est - self.null_mean) / se
-        crit = stats.norm.ppf(0.5 + self.ci_level / 2)
+        crit = normal_ppf(0.5 + self.ci_level / 2)
         lo, hi = _ci(est, se, crit)
         return BatchResult(pvalue=p_from_z(z, self.alternative), estimate=est, se=se, ci_low=lo, ci_high=hi)
 

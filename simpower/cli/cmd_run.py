@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ..engine import RunInterrupted
+from ..engine.runner import RunInterrupted
 from ..errors import ParameterError
 from .common import add_run_options, command_line, execution_of, load_scenario, resume_hint, store_of
 

@@ -101,7 +101,7 @@ def _main(argv: list[str] | None) -> int:
         print("simpower: interrupted.", file=sys.stderr)
         return EXIT_INTERRUPTED
     except SimpowerError as exc:
-        from ..engine import RunInterrupted
+        from ..engine.runner import RunInterrupted
 
         print(f"simpower: error: {exc}", file=sys.stderr)
         return EXIT_INTERRUPTED if isinstance(exc, RunInterrupted) else EXIT_BAD_INPUT

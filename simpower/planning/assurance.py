@@ -44,7 +44,7 @@ import pandas as pd
 
 from .._validation import Int, Real
 from ..components import fingerprint
-from ..engine import normalize_seed
+from ..engine.runner import normalize_seed
 from ..engine.progress import session as progress_session, status
 from ..engine.runner import run_points
 from ..errors import ParameterError, nearest

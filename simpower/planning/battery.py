@@ -27,7 +27,7 @@ import math
 import pandas as pd
 
 from ..analyses.ttests import TTest, WelchT, ZTest, PairedT
-from ..engine import run_many
+from ..engine.runner import run_many
 from ..processes.normal import NormalOneSample, NormalPaired, NormalTwoArm
 from ..scenario import Scenario
 

@@ -128,7 +128,7 @@ def as_memory_store(store) -> MemoryStore:
 
 def seed_with_store(seed, mem: MemoryStore) -> int:
     """The run's entropy: ``seed``, else the backing store's (resuming), else fresh."""
-    from ..engine import normalize_seed
+    from ..engine.runner import normalize_seed
 
     return normalize_seed(seed if seed is not None or mem.seed is None else int(mem.seed))
 

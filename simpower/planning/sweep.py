@@ -28,7 +28,7 @@ from typing import Any, Iterable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from ..engine import normalize_seed
+from ..engine.runner import normalize_seed
 from ..engine.progress import session as progress_session
 from ..engine.runner import point_labels, run_points
 from ..execution import Execution
