@@ -33,15 +33,16 @@ from .._validation import Int, Real
 from ..components import Nested
 from ..errors import ParameterError
 from ..facts import OrdinalFacts
-from .base import Process, check_missing_columns
+from .base import check_missing_columns
 from .composed import Arms, Trial
 from .design import TwoArms, arm_defaults, arm_params
+from .factories import TrialFactory
 from .ordinal_outcomes import (SUM_TOL, OrdinalOutcome, _probabilities, probability_index,  # noqa: F401 (re-exported)
                                proportional_odds_shift)
 from .outcomes import Described
 
 
-class OrdinalTwoArm(TwoArms, Process):
+class OrdinalTwoArm(TwoArms, TrialFactory):
     """Two independent arms with an ordered categorical outcome (categories 0..K-1).
 
     Parameters
@@ -112,6 +113,7 @@ class OrdinalTwoArm(TwoArms, Process):
         check_missing_columns(p["missing"], {"arm"}, self.name)
         self._set_params(p)
         self._check_arms()
+        super()._check()  # TrialFactory: the trial it draws through
 
     # -- derived ---------------------------------------------------------
     @property
@@ -164,15 +166,16 @@ class OrdinalTwoArm(TwoArms, Process):
         return (OrdinalFacts(p0=tuple(self.p0_probs), p1=tuple(self.p1_probs), odds_ratio=float(self.odds_ratio),
                              n=self.n, ratio=self.n1 / self.n),)
 
-    # -- drawing -----------------------------------------------------------
-    def as_trial(self) -> Trial:
-        """The same draws as a composed ``trial``: the ``arms`` design times the ``ordinal`` layer times ``missing``."""
+    # -- drawing: through the trial (TrialFactory) ----------------------------
+    def layers(self):
+        """The ``arms`` design times the ``ordinal`` layer times ``missing``."""
         effect = {"odds_ratio": self.odds_ratio} if self.proportional_odds else {"p1": self._p["p1"]}
-        return Trial(design=Arms(n=self.n, ratio=self.ratio, n1=self._p["n1"]),
-                     outcome=OrdinalOutcome(p0=self.p0, **effect), missing=self.missing)
+        return {"design": Arms(n=self.n, ratio=self.ratio, n1=self._p["n1"]),
+                "outcome": OrdinalOutcome(p0=self.p0, **effect), "missing": self.missing}
 
-    def draw_batch(self, rng, size):
-        return self.as_trial().draw_batch(rng, size)
+    def as_trial(self) -> Trial:
+        """The composed ``trial`` this process draws through (:attr:`trial`)."""
+        return self.trial
 
     def describe(self):
         p0 = ", ".join(f"{v:g}" for v in self.p0)
