@@ -142,6 +142,21 @@ def refuse(plan: Any, where: str, what: str):
                      f"{f' ({cmd})' if cmd else ''} to continue it.")
 
 
+def _envelope(plan: Any, where: str, bad, fields: set, version: int) -> None:
+    """The plan's outer table: present, a table, only ``fields``, of ``version``; else one line (``bad``)."""
+    if plan is None:
+        raise StoreError(f"{where}: the store holds no plan (written from Python, or by an older simpower that "
+                         f"recorded a command line): re-run the original command or run(...) call with this store "
+                         f"to continue it.")
+    if not isinstance(plan, dict):
+        bad("not a table")
+    extra = sorted(set(plan) - fields)
+    if extra:
+        bad(f"unknown field {extra[0]!r}")
+    if plan.get("version") != version:
+        bad(f"plan version {plan.get('version')!r}, this simpower reads versions 1 and {VERSION}")
+
+
 def validate(plan: Any, where: str) -> dict:
     """``plan`` checked (envelope, user code, the study's validators), or StoreError (one line) saying what is wrong.
 
@@ -159,17 +174,7 @@ def validate(plan: Any, where: str) -> dict:
     def bad(what: str):
         refuse(plan, where, what)
 
-    if plan is None:
-        raise StoreError(f"{where}: the store holds no plan (written from Python, or by an older simpower that "
-                         f"recorded a command line): re-run the original command or run(...) call with this store "
-                         f"to continue it.")
-    if not isinstance(plan, dict):
-        bad("not a table")
-    extra = sorted(set(plan) - {"version", "command", "scenario_file", "stores", "study"})
-    if extra:
-        bad(f"unknown field {extra[0]!r}")
-    if plan.get("version") != VERSION:
-        bad(f"plan version {plan.get('version')!r}, this simpower reads versions 1 and {VERSION}")
+    _envelope(plan, where, bad, {"version", "command", "scenario_file", "stores", "study"}, VERSION)
     command = plan.get("command")
     if command not in COMMANDS:
         bad(f"command {command!r} is not one of {', '.join(COMMANDS)}")
@@ -206,17 +211,7 @@ def validate_v1(plan: Any, where: str) -> dict:
         raise StoreError(f"{where}: the recorded plan is refused: {what}. A store is data: re-run {again} to "
                          f"continue it.")
 
-    if plan is None:
-        raise StoreError(f"{where}: the store holds no plan (written from Python, or by an older simpower that "
-                         f"recorded a command line): re-run the original command or run(...) call with this store "
-                         f"to continue it.")
-    if not isinstance(plan, dict):
-        bad("not a table")
-    extra = sorted(set(plan) - {"version", "command", "scenario", "scenario_file", "options"})
-    if extra:
-        bad(f"unknown field {extra[0]!r}")
-    if plan.get("version") != 1:
-        bad(f"plan version {plan.get('version')!r}, this simpower reads versions 1 and {VERSION}")
+    _envelope(plan, where, bad, {"version", "command", "scenario", "scenario_file", "options"}, 1)
     command = plan.get("command")
     if command not in COMMANDS_V1:
         bad(f"command {command!r} is not one of {', '.join(COMMANDS_V1)}")

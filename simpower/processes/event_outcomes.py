@@ -60,7 +60,7 @@ from scipy import optimize
 from .._validation import Choice, Real
 from ..errors import ParameterError
 from .glm_outcomes import SIGMA_MAX, GLMOutcome, Linear
-from .survival import SurvivalTwoArm
+from .survival import SurvivalTwoArm, censor
 
 POSITIVE = Real(0.0, low_open=True)
 OPT_POSITIVE = Real(0.0, low_open=True, optional=True)
@@ -226,16 +226,8 @@ class TimeToEventOutcome(GLMOutcome):
             e_event /= np.exp(lin.beta0 + lin.beta1 * arm + (0.0 if u_rows is None else lin.sigma * u_rows))
         t = e_event if self.shape == 1 else e_event ** (1.0 / self.shape)
         t /= lam
-        cens = np.full((size, width), math.inf)
-        if self.follow_up is not None:
-            cens = self.accrual + self.follow_up - self.accrual * u_entry
-        if self.loss_rate > 0:
-            np.minimum(cens, e_loss / self.loss_rate, out=cens)
-        event = (t <= cens).astype(np.int8)
-        time = np.minimum(t, cens)
-        if self.time_resolution is not None:
-            time = np.ceil(time / self.time_resolution) * self.time_resolution
-        return None, {}, {"time": time, "event": event, "entry": self.accrual * u_entry}, {}
+        time, event, entry = censor(t, u_entry, e_loss, self)
+        return None, {}, {"time": time, "event": event, "entry": entry}, {}
 
     def describe(self, lin: Linear | None = None) -> str:
         dist = "exponential" if self.shape == 1 else f"Weibull (shape {self.shape:g})"

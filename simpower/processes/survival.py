@@ -36,6 +36,26 @@ POSITIVE = Real(0.0, low_open=True)
 OPT_POSITIVE = Real(0.0, low_open=True, optional=True)
 
 
+def censor(t, u_entry, e_loss, spec):
+    """Event times ``t`` censored at the end of follow-up and by loss to follow-up: ``(time, event, entry)``.
+
+    ``u_entry`` are the uniform entry variates and ``e_loss`` the standard exponential loss variates
+    (same shape as ``t``); ``spec`` gives ``accrual``, ``follow_up``, ``loss_rate`` and
+    ``time_resolution`` (:class:`SurvivalTwoArm`, or the ``time_to_event`` layer). ``entry`` is the
+    calendar time of enrolment (the group-sequential looks at event counts need it).
+    """
+    cens = np.full(t.shape, math.inf)
+    if spec.follow_up is not None:
+        cens = spec.accrual + spec.follow_up - spec.accrual * u_entry
+    if spec.loss_rate > 0:
+        np.minimum(cens, e_loss / spec.loss_rate, out=cens)
+    event = (t <= cens).astype(np.int8)
+    time = np.minimum(t, cens)
+    if spec.time_resolution is not None:
+        time = np.ceil(time / spec.time_resolution) * spec.time_resolution
+    return time, event, spec.accrual * u_entry
+
+
 class SurvivalTwoArm(TwoArms, Process):
     """Two arms with right-censored event times under proportional hazards.
 
@@ -200,16 +220,7 @@ class SurvivalTwoArm(TwoArms, Process):
         e_event[:, n0:] /= self.hazard_ratio
         t = e_event if self.shape == 1 else e_event ** (1.0 / self.shape)
         t /= self.rate0
-        cens = np.full((size, m), math.inf)
-        if self.follow_up is not None:
-            cens = self.accrual + self.follow_up - self.accrual * u_entry
-        if self.loss_rate > 0:
-            np.minimum(cens, e_loss / self.loss_rate, out=cens)
-        event = (t <= cens).astype(np.int8)
-        time = np.minimum(t, cens)
-        if self.time_resolution is not None:
-            time = np.ceil(time / self.time_resolution) * self.time_resolution
-        entry = self.accrual * u_entry  # calendar time of enrolment (looks at event counts need it)
+        time, event, entry = censor(t, u_entry, e_loss, self)
         return Batch(size, {"time": time, "event": event, "entry": entry}, {"arm": arm}, info=self.arm_info())
 
     def describe(self):
