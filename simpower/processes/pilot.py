@@ -69,6 +69,25 @@ def _numbers(name, values, integer=False):
     return arr
 
 
+def check_pilot_effect(spec, y) -> None:
+    """The planned effect fits the pilot outcomes ``y``: a ratio needs y >= 0, an odds ratio 0/1 values and no
+    spread correction (``spec``: ``effect``, ``effect_type``, ``spread``); else a one-line ParameterError."""
+    if spec.effect_type == "ratio":
+        if not spec.effect > 0:
+            raise ParameterError(f"`effect` must be > 0 when `effect_type` = 'ratio'; got {spec.effect:g}.")
+        if np.any(y < 0):
+            raise ParameterError("`effect_type` = 'ratio' needs a non-negative outcome; the pilot has negative "
+                                 "values: use 'shift'.")
+    if spec.effect_type == "odds_ratio":
+        if not np.all((y == 0) | (y == 1)):
+            raise ParameterError("`effect_type` = 'odds_ratio' needs a 0/1 pilot outcome.")
+        if not spec.effect > 0:
+            raise ParameterError(f"`effect` must be > 0 (an odds ratio) when `effect_type` = 'odds_ratio'; got "
+                                 f"{spec.effect:g}.")
+        if spec.spread != "none":
+            raise ParameterError("`spread` must be 'none' for a 0/1 outcome (a correction would leave 0/1).")
+
+
 def read_pilot(path, outcome: str = "y", arm: str | None = "arm") -> tuple[list[float], list[int] | None]:
     """(outcome values, arm labels or None) of a pilot CSV file; rows with a missing outcome are dropped."""
     import pandas as pd
@@ -166,20 +185,7 @@ class PilotResample(TwoArms, Process):
             if pool.size < 2:
                 raise ParameterError(f"the pilot has {pool.size} usable value(s) for the {label}; at least 2 are "
                                      f"needed to resample.")
-        if self.effect_type == "ratio":
-            if not self.effect > 0:
-                raise ParameterError(f"`effect` must be > 0 when `effect_type` = 'ratio'; got {self.effect:g}.")
-            if np.any(y < 0):
-                raise ParameterError("`effect_type` = 'ratio' needs a non-negative outcome; the pilot has negative "
-                                     "values: use 'shift'.")
-        if self.effect_type == "odds_ratio":
-            if not np.all((y == 0) | (y == 1)):
-                raise ParameterError("`effect_type` = 'odds_ratio' needs a 0/1 pilot outcome.")
-            if not self.effect > 0:
-                raise ParameterError(f"`effect` must be > 0 (an odds ratio) when `effect_type` = 'odds_ratio'; got "
-                                     f"{self.effect:g}.")
-            if self.spread != "none":
-                raise ParameterError("`spread` must be 'none' for a 0/1 outcome (a correction would leave 0/1).")
+        check_pilot_effect(self, y)
 
     # -- the pilot ----------------------------------------------------------------
     def _pools(self) -> dict[str, np.ndarray]:

@@ -88,6 +88,7 @@ from .base import Batch, Process
 from .clusters import _layout
 from .design import apply_missing
 from .normal import MISSING
+from .pilot import check_pilot_effect
 
 #: fewer pilot units per arm than this: the spread is poorly estimated (Teare et al. 2014)
 SMALL_PILOT = 35
@@ -320,20 +321,7 @@ class PilotUnits(Process):
         self._check_effect(y)
 
     def _check_effect(self, y):
-        if self.effect_type == "ratio":
-            if not self.effect > 0:
-                raise ParameterError(f"`effect` must be > 0 when `effect_type` = 'ratio'; got {self.effect:g}.")
-            if np.any(y < 0):
-                raise ParameterError("`effect_type` = 'ratio' needs a non-negative outcome; the pilot has negative "
-                                     "values: use 'shift'.")
-        if self.effect_type == "odds_ratio":
-            if not np.all((y == 0) | (y == 1)):
-                raise ParameterError("`effect_type` = 'odds_ratio' needs a 0/1 pilot outcome.")
-            if not self.effect > 0:
-                raise ParameterError(f"`effect` must be > 0 (an odds ratio) when `effect_type` = 'odds_ratio'; got "
-                                     f"{self.effect:g}.")
-            if self.spread != "none":
-                raise ParameterError("`spread` must be 'none' for a 0/1 outcome (a correction would leave 0/1).")
+        check_pilot_effect(self, y)
 
     def _arm_units(self, unit_arm, units) -> dict[str, np.ndarray]:
         """Unit indices each trial arm resamples from."""
