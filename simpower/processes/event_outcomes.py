@@ -60,7 +60,7 @@ from scipy import optimize
 from .._validation import Choice, Real
 from ..errors import ParameterError
 from .glm_outcomes import SIGMA_MAX, GLMOutcome, Linear
-from .survival import SurvivalTwoArm, censor
+from .survival_rules import SurvivalRules, censor
 
 POSITIVE = Real(0.0, low_open=True)
 OPT_POSITIVE = Real(0.0, low_open=True, optional=True)
@@ -104,7 +104,7 @@ def _median_eta(sigma: float) -> float:
     return float(optimize.brentq(f, lo, hi, xtol=1e-14, rtol=1e-14))
 
 
-class TimeToEventOutcome(GLMOutcome):
+class TimeToEventOutcome(SurvivalRules, GLMOutcome):
     """Time to event under Weibull proportional hazards, censored by accrual, follow-up and loss.
 
     Parameters
@@ -143,25 +143,11 @@ class TimeToEventOutcome(GLMOutcome):
     outcome_columns = ("time", "event", "entry")
 
     def _check(self):
-        self.two_arm_equivalent(2, 2)  # the same rules and messages as survival_two_arm
-
-    def two_arm_equivalent(self, n0: int, n1: int) -> SurvivalTwoArm:
-        """The ``survival_two_arm`` with these fields and arm sizes (what the ``arms`` design draws)."""
-        return SurvivalTwoArm(n=n0, n1=n1, **{k: self._p[k] for k in SURVIVAL_FIELDS})
+        self._check_survival()  # the same rules and messages as survival_two_arm
 
     @property
     def effect_param(self) -> str:  # type: ignore[override]
         return "hazard_ratio"
-
-    @property
-    def rate0(self) -> float:
-        """``lam`` of the baseline cumulative hazard (lam t) ** shape (as ``survival_two_arm``)."""
-        return self.two_arm_equivalent(2, 2).rate0
-
-    @property
-    def loss_rate(self) -> float:
-        """Exponential loss-to-follow-up rate per unit time."""
-        return self.two_arm_equivalent(2, 2).loss_rate
 
     def sigma_for(self, icc: float) -> float:
         return frailty_sigma(icc)
@@ -210,7 +196,7 @@ class TimeToEventOutcome(GLMOutcome):
     def facts_for(self, lin: Linear, design):
         """Under ``arms``: the facts of the equivalent ``survival_two_arm`` (Schoenfeld's events); none under clusters."""
         if lin.sigma == 0 and design.name == "arms":
-            return self.two_arm_equivalent(design.n0, design.n1).facts()
+            return self.survival_facts(design.n0, design.n1)
         return ()
 
     # -- drawing ------------------------------------------------------------------------
@@ -231,7 +217,6 @@ class TimeToEventOutcome(GLMOutcome):
 
     def describe(self, lin: Linear | None = None) -> str:
         dist = "exponential" if self.shape == 1 else f"Weibull (shape {self.shape:g})"
-        ref = self.two_arm_equivalent(2, 2)
         cens = []
         if self.accrual > 0:
             cens.append(f"uniform accrual over {self.accrual:g}")
@@ -241,7 +226,7 @@ class TimeToEventOutcome(GLMOutcome):
             cens.append(f"exponential loss to follow-up at rate {self.loss_rate:.4g} per unit time")
         tail = ", ".join(cens) if cens else "no censoring"
         if lin is None or lin.sigma == 0:
-            return (f"{dist} event times with control median {ref.median0:.4g}, proportional hazards with hazard "
+            return (f"{dist} event times with control median {self.median0:.4g}, proportional hazards with hazard "
                     f"ratio {self.hazard_ratio:g}; {tail}")
         base = (f"control median {lin.mean0:.4g} (population-averaged)" if self.median is not None else
                 f"mean cluster cumulative hazard ({self.rate0:.4g} t)^{self.shape:g} in the control arm")

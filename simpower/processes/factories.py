@@ -1,7 +1,7 @@
 """The older process names as thin factories over ``trial``.
 
 ``normal_two_arm``, ``two_arm``, ``binary_two_arm``, ``count_two_arm``,
-``cluster_trial`` and ``ordinal_two_arm`` keep their names, TOML ``type``, parameters, defaults,
+``cluster_trial``, ``ordinal_two_arm`` and ``survival_two_arm`` keep their names, TOML ``type``, parameters, defaults,
 aliases, specs and words; each builds one :class:`~simpower.processes.composed.Trial`
 from its parameters at construction (:meth:`TrialFactory.layers`: a design, an
 outcome or outcome layer, the effect, the missingness) and hands drawing, true

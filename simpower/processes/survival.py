@@ -23,40 +23,16 @@ from __future__ import annotations
 
 import math
 
-import numpy as np
-from scipy import integrate
-
 from .._validation import Int, Real
-from ..errors import ParameterError
-from ..facts import SurvivalFacts
-from .base import Batch, Process
 from .design import TwoArms, arm_defaults, arm_params
+from .factories import TrialFactory
+from .survival_rules import SurvivalRules
 
 POSITIVE = Real(0.0, low_open=True)
 OPT_POSITIVE = Real(0.0, low_open=True, optional=True)
 
 
-def censor(t, u_entry, e_loss, spec):
-    """Event times ``t`` censored at the end of follow-up and by loss to follow-up: ``(time, event, entry)``.
-
-    ``u_entry`` are the uniform entry variates and ``e_loss`` the standard exponential loss variates
-    (same shape as ``t``); ``spec`` gives ``accrual``, ``follow_up``, ``loss_rate`` and
-    ``time_resolution`` (:class:`SurvivalTwoArm`, or the ``time_to_event`` layer). ``entry`` is the
-    calendar time of enrolment (the group-sequential looks at event counts need it).
-    """
-    cens = np.full(t.shape, math.inf)
-    if spec.follow_up is not None:
-        cens = spec.accrual + spec.follow_up - spec.accrual * u_entry
-    if spec.loss_rate > 0:
-        np.minimum(cens, e_loss / spec.loss_rate, out=cens)
-    event = (t <= cens).astype(np.int8)
-    time = np.minimum(t, cens)
-    if spec.time_resolution is not None:
-        time = np.ceil(time / spec.time_resolution) * spec.time_resolution
-    return time, event, spec.accrual * u_entry
-
-
-class SurvivalTwoArm(TwoArms, Process):
+class SurvivalTwoArm(TwoArms, SurvivalRules, TrialFactory):
     """Two arms with right-censored event times under proportional hazards.
 
     Parameters
@@ -136,38 +112,17 @@ class SurvivalTwoArm(TwoArms, Process):
     size_param = "n"
 
     def _check(self):
-        if (self.median is None) == (self.hazard0 is None):
-            raise ParameterError("`median`, `hazard0`: give exactly one (the control-arm median survival or hazard).")
-        if self.dropout_fraction is not None:
-            if self.dropout_time is None:
-                raise ParameterError("`dropout_time` is required with `dropout_fraction`: give the time (> 0) "
-                                     "by which that fraction is lost.")
-            if self.dropout_rate > 0:
-                raise ParameterError("`dropout_rate`, `dropout_fraction`: give one way of stating loss to "
-                                     "follow-up, not both.")
-        elif self.dropout_time is not None:
-            raise ParameterError("`dropout_time` needs `dropout_fraction` (in [0, 1)); or give `dropout_rate`.")
+        self._check_survival()
         self._check_arms()
+        TrialFactory._check(self)  # the trial it draws through: arms x the time_to_event layer
 
-    # -- derived ---------------------------------------------------------
-    @property
-    def rate0(self) -> float:
-        """Control-arm rate ``lam`` of ``H0(t) = (lam t) ** shape``."""
-        if self.hazard0 is not None:
-            return self.hazard0
-        return math.log(2.0) ** (1.0 / self.shape) / self.median
+    def layers(self):
+        """The ``arms`` design times the ``time_to_event`` layer with these fields."""
+        from .composed import Arms
+        from .event_outcomes import SURVIVAL_FIELDS, TimeToEventOutcome
 
-    @property
-    def median0(self) -> float:
-        """Control-arm median survival time."""
-        return math.log(2.0) ** (1.0 / self.shape) / self.rate0
-
-    @property
-    def loss_rate(self) -> float:
-        """Exponential loss-to-follow-up rate per unit time."""
-        if self.dropout_fraction is not None:
-            return -math.log1p(-self.dropout_fraction) / self.dropout_time
-        return self.dropout_rate
+        return {"design": Arms(n=self.n, ratio=self.ratio, n1=self._p["n1"]),
+                "outcome": TimeToEventOutcome(**{k: self._p[k] for k in SURVIVAL_FIELDS})}
 
     def null_value(self) -> float:
         return 1.0
@@ -177,51 +132,13 @@ class SurvivalTwoArm(TwoArms, Process):
     def true_effect(self) -> float:
         return math.log(self.hazard_ratio)
 
-    def event_probability(self, arm: int) -> float:
-        """Probability that a participant of ``arm`` is seen to have the event.
-
-        ``integral f(t) exp(-eta t) P(C >= t) dt`` with ``f`` the event
-        density, ``eta`` the loss rate and ``C`` the administrative
-        censoring time (uniform on [follow_up, accrual + follow_up]),
-        computed by quadrature.
-        """
-        hr = self.hazard_ratio if arm == 1 else 1.0
-        lam, k, eta = self.rate0, self.shape, self.loss_rate
-
-        def dens(t):
-            h = hr * k * lam * (lam * t) ** (k - 1.0) if t > 0 or k >= 1 else 0.0
-            return h * math.exp(-hr * (lam * t) ** k - eta * t)
-
-        if self.follow_up is None:
-            return integrate.quad(dens, 0.0, math.inf, limit=200)[0]
-        f, a = self.follow_up, self.accrual
-        p = integrate.quad(dens, 0.0, f, limit=200)[0]
-        if a > 0:
-            p += integrate.quad(lambda t: dens(t) * (a + f - t) / a, f, a + f, limit=200)[0]
-        return p
-
     def expected_events(self) -> float:
         """Expected number of observed events, both arms together."""
         return self.n * self.event_probability(0) + self.n1 * self.event_probability(1)
 
     def facts(self):
         """:class:`~simpower.facts.SurvivalFacts`: the hazard ratio at the expected number of events."""
-        return (SurvivalFacts(hazard_ratio=self.hazard_ratio, events=self.expected_events(), n=self.n,
-                              ratio=self.n1 / self.n),)
-
-    # -- drawing -----------------------------------------------------------
-    def draw_batch(self, rng, size):
-        n0, n1 = self.n, self.n1
-        m = n0 + n1
-        arm = self.arm_labels()
-        e_event = rng.standard_exponential((size, m))
-        u_entry = rng.random((size, m))
-        e_loss = rng.standard_exponential((size, m))
-        e_event[:, n0:] /= self.hazard_ratio
-        t = e_event if self.shape == 1 else e_event ** (1.0 / self.shape)
-        t /= self.rate0
-        time, event, entry = censor(t, u_entry, e_loss, self)
-        return Batch(size, {"time": time, "event": event, "entry": entry}, {"arm": arm}, info=self.arm_info())
+        return self.survival_facts(self.n, self.n1)
 
     def describe(self):
         dist = "exponential" if self.shape == 1 else f"Weibull (shape {self.shape:g})"
