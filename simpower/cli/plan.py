@@ -261,42 +261,39 @@ def _assigned(text: str) -> Any:
         return None
 
 
-def names_user_code(data: Any) -> str | None:
-    """The first ``type = "module:function"`` (or file) reference anywhere in ``data``, else None."""
-    from ..registry import is_reference
-
+def _first(data: Any, found) -> str | None:
+    """The first non-None ``found(table)`` over every table nested in ``data`` (tables and lists), else None."""
     if isinstance(data, dict):
-        if is_reference(data.get("type")):
-            return data["type"]
+        hit = found(data)
+        if hit is not None:
+            return hit
         items = data.values()
     elif isinstance(data, list):
         items = data
     else:
         return None
     for v in items:
-        found = names_user_code(v)
-        if found is not None:
-            return found
+        hit = _first(v, found)
+        if hit is not None:
+            return hit
     return None
+
+
+def names_user_code(data: Any) -> str | None:
+    """The first ``type = "module:function"`` (or file) reference anywhere in ``data``, else None."""
+    from ..registry import is_reference
+
+    return _first(data, lambda t: t["type"] if is_reference(t.get("type")) else None)
 
 
 def names_data_file(data: Any) -> str | None:
     """The first ``data = "file.csv"`` of a component that does not carry the file's content
     (``values`` / ``table``: what a recorded pilot process holds), else None."""
-    if isinstance(data, dict):
-        path = data.get("data")
-        if isinstance(path, str) and data.get("values") is None and data.get("table") is None:
-            return path
-        items = data.values()
-    elif isinstance(data, list):
-        items = data
-    else:
-        return None
-    for v in items:
-        found = names_data_file(v)
-        if found is not None:
-            return found
-    return None
+    def reads(t):
+        path = t.get("data")
+        return path if isinstance(path, str) and t.get("values") is None and t.get("table") is None else None
+
+    return _first(data, reads)
 
 
 def reproduce_argv(plan: dict, store: str, prog: bool = False) -> list[str]:

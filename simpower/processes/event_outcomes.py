@@ -216,15 +216,7 @@ class TimeToEventOutcome(SurvivalRules, GLMOutcome):
         return None, {}, {"time": time, "event": event, "entry": entry}, {}
 
     def describe(self, lin: Linear | None = None) -> str:
-        dist = "exponential" if self.shape == 1 else f"Weibull (shape {self.shape:g})"
-        cens = []
-        if self.accrual > 0:
-            cens.append(f"uniform accrual over {self.accrual:g}")
-        if self.follow_up is not None:
-            cens.append(f"administrative censoring {self.follow_up:g} after accrual closes")
-        if self.loss_rate > 0:
-            cens.append(f"exponential loss to follow-up at rate {self.loss_rate:.4g} per unit time")
-        tail = ", ".join(cens) if cens else "no censoring"
+        dist, tail = self.distribution_text(), self.censoring_text()
         if lin is None or lin.sigma == 0:
             return (f"{dist} event times with control median {self.median0:.4g}, proportional hazards with hazard "
                     f"ratio {self.hazard_ratio:g}; {tail}")

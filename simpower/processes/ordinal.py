@@ -31,14 +31,13 @@ import numpy as np
 
 from .._validation import Int, Real
 from ..components import Nested
-from ..errors import ParameterError
 from ..facts import OrdinalFacts
 from .base import check_missing_columns
 from .composed import Arms, Trial
 from .design import TwoArms, arm_defaults, arm_params
 from .factories import TrialFactory
-from .ordinal_outcomes import (SUM_TOL, OrdinalOutcome, _probabilities, probability_index,  # noqa: F401 (re-exported)
-                               proportional_odds_shift)
+from .ordinal_outcomes import (SUM_TOL, OrdinalOutcome, _probabilities, check_ordinal_effect,  # noqa: F401
+                               probability_index, proportional_odds_shift)  # (SUM_TOL, _probabilities: re-exported)
 from .outcomes import Described
 
 
@@ -99,17 +98,7 @@ class OrdinalTwoArm(TwoArms, TrialFactory):
 
     def _check(self):
         p = dict(self._p)
-        p["p0"] = _probabilities("p0", p["p0"])
-        if p["p1"] is not None:
-            if p["odds_ratio"] is not None:
-                raise ParameterError("`odds_ratio`, `p1`: give the proportional-odds effect or the treated arm's "
-                                     "probabilities, not both.")
-            p["p1"] = _probabilities("p1", p["p1"])
-            if len(p["p1"]) != len(p["p0"]):
-                raise ParameterError(f"`p1` must have one probability per category of `p0` ({len(p['p0'])}); "
-                                     f"got {len(p['p1'])}.")
-        elif p["odds_ratio"] is None:
-            p["odds_ratio"] = 1.0
+        check_ordinal_effect(p)
         check_missing_columns(p["missing"], {"arm"}, self.name)
         self._set_params(p)
         self._check_arms()

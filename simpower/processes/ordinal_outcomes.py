@@ -119,6 +119,22 @@ def _cuts_for(probs, sigma: float) -> tuple[float, ...]:
     return tuple(intercept_for(float(c), sigma) for c in cum)
 
 
+def check_ordinal_effect(p: dict) -> None:
+    """``p0`` and the effect (``odds_ratio`` or ``p1``) of an ordinal outcome, checked and cleaned in place:
+    probabilities normalised, one category count, odds ratio 1 when neither is given."""
+    p["p0"] = _probabilities("p0", p["p0"])
+    if p["p1"] is not None:
+        if p["odds_ratio"] is not None:
+            raise ParameterError("`odds_ratio`, `p1`: give the proportional-odds effect or the treated arm's "
+                                 "probabilities, not both.")
+        p["p1"] = _probabilities("p1", p["p1"])
+        if len(p["p1"]) != len(p["p0"]):
+            raise ParameterError(f"`p1` must have one probability per category of `p0` ({len(p['p0'])}); "
+                                 f"got {len(p['p1'])}.")
+    elif p["odds_ratio"] is None:
+        p["odds_ratio"] = 1.0
+
+
 class OrdinalOutcome(GLMOutcome):
     """An ordered categorical outcome (categories 0..K-1) from a latent logistic variable.
 
@@ -146,17 +162,7 @@ class OrdinalOutcome(GLMOutcome):
 
     def _check(self):
         p = dict(self._p)
-        p["p0"] = _probabilities("p0", p["p0"])
-        if p["p1"] is not None:
-            if p["odds_ratio"] is not None:
-                raise ParameterError("`odds_ratio`, `p1`: give the proportional-odds effect or the treated arm's "
-                                     "probabilities, not both.")
-            p["p1"] = _probabilities("p1", p["p1"])
-            if len(p["p1"]) != len(p["p0"]):
-                raise ParameterError(f"`p1` must have one probability per category of `p0` ({len(p['p0'])}); "
-                                     f"got {len(p['p1'])}.")
-        elif p["odds_ratio"] is None:
-            p["odds_ratio"] = 1.0
+        check_ordinal_effect(p)
         self._set_params(p)
 
     # -- the parts ------------------------------------------------------------------------

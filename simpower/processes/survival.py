@@ -141,14 +141,6 @@ class SurvivalTwoArm(TwoArms, SurvivalRules, TrialFactory):
         return self.survival_facts(self.n, self.n1)
 
     def describe(self):
-        dist = "exponential" if self.shape == 1 else f"Weibull (shape {self.shape:g})"
-        cens = []
-        if self.accrual > 0:
-            cens.append(f"uniform accrual over {self.accrual:g}")
-        if self.follow_up is not None:
-            cens.append(f"administrative censoring {self.follow_up:g} after accrual closes")
-        if self.loss_rate > 0:
-            cens.append(f"exponential loss to follow-up at rate {self.loss_rate:.4g} per unit time")
-        tail = "; " + ", ".join(cens) if cens else "; no censoring"
+        dist, tail = self.distribution_text(), "; " + self.censoring_text()
         return (f"{self.arms_text()}, {dist} event times with control "
                 f"median {self.median0:.4g}, proportional hazards with hazard ratio {self.hazard_ratio:g}{tail}")

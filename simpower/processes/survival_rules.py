@@ -98,6 +98,21 @@ class SurvivalRules:
             p += integrate.quad(lambda t: dens(t) * (a + f - t) / a, f, a + f, limit=200)[0]
         return p
 
+    def distribution_text(self) -> str:
+        """The event-time distribution in words."""
+        return "exponential" if self.shape == 1 else f"Weibull (shape {self.shape:g})"
+
+    def censoring_text(self) -> str:
+        """Accrual and censoring in words ("no censoring" when there is none)."""
+        cens = []
+        if self.accrual > 0:
+            cens.append(f"uniform accrual over {self.accrual:g}")
+        if self.follow_up is not None:
+            cens.append(f"administrative censoring {self.follow_up:g} after accrual closes")
+        if self.loss_rate > 0:
+            cens.append(f"exponential loss to follow-up at rate {self.loss_rate:.4g} per unit time")
+        return ", ".join(cens) if cens else "no censoring"
+
     def survival_facts(self, n0: int, n1: int) -> tuple:
         """:class:`~simpower.facts.SurvivalFacts` for arms of ``n0`` and ``n1``: the hazard ratio at the expected
         number of events."""
