@@ -27,8 +27,6 @@ from __future__ import annotations
 
 import math
 
-import numpy as np
-
 from .._validation import Int, Real
 from ..components import Nested
 from ..facts import OrdinalFacts
@@ -36,12 +34,12 @@ from .base import check_missing_columns
 from .composed import Arms, Trial
 from .design import TwoArms, arm_defaults, arm_params
 from .factories import TrialFactory
-from .ordinal_outcomes import (SUM_TOL, OrdinalOutcome, _probabilities, check_ordinal_effect,  # noqa: F401
-                               probability_index, proportional_odds_shift)  # (SUM_TOL, _probabilities: re-exported)
+from .ordinal_outcomes import (SUM_TOL, OrdinalEffect, OrdinalOutcome, _probabilities,  # noqa: F401 (re-exported:
+                               check_ordinal_effect, probability_index, proportional_odds_shift)  # SUM_TOL, ...)
 from .outcomes import Described
 
 
-class OrdinalTwoArm(TwoArms, TrialFactory):
+class OrdinalTwoArm(TwoArms, OrdinalEffect, TrialFactory):
     """Two independent arms with an ordered categorical outcome (categories 0..K-1).
 
     Parameters
@@ -104,36 +102,11 @@ class OrdinalTwoArm(TwoArms, TrialFactory):
         self._check_arms()
         super()._check()  # TrialFactory: the trial it draws through
 
-    # -- derived ---------------------------------------------------------
-    @property
-    def effect_param(self) -> str:  # type: ignore[override]
-        """``odds_ratio`` (null 1), or ``p1`` (null: ``p0``) when the treated arm was given outright."""
-        return "p1" if self._p["p1"] is not None else "odds_ratio"
-
-    def null_value(self):
-        return list(self.p0) if self.effect_param == "p1" else 1.0
-
-    @property
-    def proportional_odds(self) -> bool:
-        """Whether the arms differ by a proportional-odds shift (``odds_ratio`` given)."""
-        return self._p["p1"] is None
-
+    # -- derived (the effect's fields: OrdinalEffect) -------------------
     @property
     def k(self) -> int:
         """Number of categories."""
         return len(self.p0)
-
-    @property
-    def p0_probs(self) -> np.ndarray:
-        """Control-arm probabilities (normalised to sum to 1 exactly)."""
-        return np.asarray(self.p0, float) / math.fsum(self.p0)
-
-    @property
-    def p1_probs(self) -> np.ndarray:
-        """Treated-arm probabilities: ``p1`` normalised, or the proportional-odds shift of ``p0``."""
-        if self._p["p1"] is not None:
-            return np.asarray(self._p["p1"], float) / math.fsum(self._p["p1"])
-        return proportional_odds_shift(self.p0, self.odds_ratio)
 
     @property
     def probability_index(self) -> float:

@@ -135,7 +135,37 @@ def check_ordinal_effect(p: dict) -> None:
         p["odds_ratio"] = 1.0
 
 
-class OrdinalOutcome(GLMOutcome):
+class OrdinalEffect:
+    """What ``ordinal_two_arm`` and the ``ordinal`` layer share: the effect given as ``odds_ratio`` (proportional
+    odds, null 1) or as the treated arm's probabilities ``p1`` (null: ``p0``), and the arms' probabilities."""
+
+    @property
+    def effect_param(self) -> str:  # type: ignore[override]
+        """``odds_ratio`` (null 1), or ``p1`` (null: ``p0``) when the treated arm was given outright."""
+        return "p1" if self._p["p1"] is not None else "odds_ratio"
+
+    def null_value(self):
+        return list(self.p0) if self.effect_param == "p1" else 1.0
+
+    @property
+    def proportional_odds(self) -> bool:
+        """Whether the arms differ by a proportional-odds shift (``odds_ratio`` given)."""
+        return self._p["p1"] is None
+
+    @property
+    def p0_probs(self) -> np.ndarray:
+        """Control-arm probabilities (normalised to sum to 1 exactly)."""
+        return np.asarray(self.p0, float) / math.fsum(self.p0)
+
+    @property
+    def p1_probs(self) -> np.ndarray:
+        """Treated-arm probabilities: ``p1`` normalised, or the proportional-odds shift of ``p0``."""
+        if self._p["p1"] is not None:
+            return np.asarray(self._p["p1"], float) / math.fsum(self._p["p1"])
+        return proportional_odds_shift(self.p0, self.odds_ratio)
+
+
+class OrdinalOutcome(OrdinalEffect, GLMOutcome):
     """An ordered categorical outcome (categories 0..K-1) from a latent logistic variable.
 
     Parameters
@@ -167,27 +197,9 @@ class OrdinalOutcome(GLMOutcome):
 
     # -- the parts ------------------------------------------------------------------------
     @property
-    def effect_param(self) -> str:  # type: ignore[override]
-        return "p1" if self._p["p1"] is not None else "odds_ratio"
-
-    def null_value(self):
-        return list(self.p0) if self.effect_param == "p1" else 1.0
-
-    @property
-    def proportional_odds(self) -> bool:
-        return self._p["p1"] is None
-
-    @property
-    def p0_probs(self) -> np.ndarray:
-        """Control-arm probabilities normalised to sum to 1 exactly (as ``ordinal_two_arm``)."""
-        return np.asarray(self.p0, float) / math.fsum(self.p0)
-
-    @property
     def nominal_p1(self) -> np.ndarray:
         """The treated probabilities without clustering: ``p1`` normalised, or the proportional-odds shift of ``p0``."""
-        if self._p["p1"] is not None:
-            return np.asarray(self._p["p1"], float) / math.fsum(self._p["p1"])
-        return proportional_odds_shift(self.p0, self.odds_ratio)
+        return self.p1_probs
 
     def sigma_for(self, icc: float) -> float:
         return latent_sigma(icc)

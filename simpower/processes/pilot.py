@@ -88,6 +88,18 @@ def check_pilot_effect(spec, y) -> None:
             raise ParameterError("`spread` must be 'none' for a 0/1 outcome (a correction would leave 0/1).")
 
 
+def planned_difference(spec, m0: float, m1: float) -> float:
+    """Treatment minus control mean outcome when the planned effect (``spec.effect``, ``spec.effect_type``) is
+    imposed on a treatment pool of mean ``m1`` against a control pool of mean ``m0``: a shift adds it, a ratio
+    multiplies, an odds ratio moves the proportion m1 to OR m1 / (1 - m1 + OR m1)."""
+    if spec.effect_type == "shift":
+        return m1 + spec.effect - m0
+    if spec.effect_type == "ratio":
+        return m1 * spec.effect - m0
+    p1 = spec.effect * m1 / (1 - m1 + spec.effect * m1)
+    return p1 - m0
+
+
 def read_pilot(path, outcome: str = "y", arm: str | None = "arm") -> tuple[list[float], list[int] | None]:
     """(outcome values, arm labels or None) of a pilot CSV file; rows with a missing outcome are dropped."""
     import pandas as pd
@@ -253,13 +265,7 @@ class PilotResample(TwoArms, Process):
     # -- what it simulates ----------------------------------------------------------
     def true_effect(self):
         pools = self._pools()
-        m0, m1 = float(pools["control"].mean()), float(pools["treatment"].mean())
-        if self.effect_type == "shift":
-            return m1 + self.effect - m0
-        if self.effect_type == "ratio":
-            return m1 * self.effect - m0
-        p1 = self.effect * m1 / (1 - m1 + self.effect * m1)
-        return p1 - m0
+        return planned_difference(self, float(pools["control"].mean()), float(pools["treatment"].mean()))
 
     def null_value(self):
         return 1.0 if self.effect_type in ("ratio", "odds_ratio") else 0.0

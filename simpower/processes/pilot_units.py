@@ -88,7 +88,7 @@ from .base import Batch, Process
 from .clusters import _layout
 from .design import apply_missing
 from .normal import MISSING
-from .pilot import check_pilot_effect
+from .pilot import check_pilot_effect, planned_difference
 
 #: fewer pilot units per arm than this: the spread is poorly estimated (Teare et al. 2014)
 SMALL_PILOT = 35
@@ -607,12 +607,7 @@ class PilotUnits(Process):
             m0, m1 = float(pc["mean"][-1]), float(pt["mean"][-1])
         else:
             m0, m1 = pc["row_mean"], pt["row_mean"]
-        if self.effect_type == "shift":
-            return m1 + self.effect - m0
-        if self.effect_type == "ratio":
-            return m1 * self.effect - m0
-        p1 = self.effect * m1 / (1 - m1 + self.effect * m1)
-        return p1 - m0
+        return planned_difference(self, m0, m1)
 
     def null_value(self):
         return 1.0 if self.effect_type in ("ratio", "odds_ratio") else 0.0
