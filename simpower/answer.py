@@ -459,6 +459,15 @@ def _sided(scenario, name: str) -> str:
     return ""
 
 
+def _level(scenario, name: str) -> str:
+    """'at a one-sided significance level of 0.025', or the analysis's own decision rule when it has one."""
+    a = scenario.analyses.get(name) if hasattr(scenario.analyses, "get") else None
+    rule = a.decision_rule() if hasattr(a, "decision_rule") else None
+    if rule:
+        return f"deciding by {rule}"
+    return f"at a {_sided(scenario, name)}significance level of {scenario.alpha:g}"
+
+
 def _analysis_words(scenario, name: str) -> str:
     """A built-in analysis by the first line of its docstring ("Welch's t-test for two arms (...)"), else in words."""
     a = scenario.analyses.get(name) if hasattr(scenario.analyses, "get") else None
@@ -530,8 +539,7 @@ def justification(result, *, null=None, scenario=None, target=None, x=None) -> J
         rec = recruitment(_process_at(at))
         lo, hi = res.interval
         first = [_design_sentence(at),
-                 f"Primary analysis: {_analysis_words(sc, name)}, at a {_sided(sc, name)}significance level "
-                 f"of {sc.alpha:g}."]
+                 f"Primary analysis: {_analysis_words(sc, name)}, {_level(sc, name)}."]
         if res.kind == "size":
             first.append(f"For {_pct(res.target)} power, {recruitment_phrase(rec) or f'{res.parameter} = {_num(res.value)}'} "
                          f"are required ({res.parameter} = {_num(res.value)}; {res.level:.0%} Monte Carlo interval "
@@ -559,8 +567,7 @@ def justification(result, *, null=None, scenario=None, target=None, x=None) -> J
         rec = recruitment(_process_at(sc))
         m = s["mcse"]
         first = [_design_sentence(sc),
-                 f"Primary analysis: {_analysis_words(sc, name)}, at a {_sided(sc, name)}significance level "
-                 f"of {sc.alpha:g}.",
+                 f"Primary analysis: {_analysis_words(sc, name)}, {_level(sc, name)}.",
                  f"With {recruitment_phrase(rec) or 'the planned size'}, the simulated power is "
                  f"{round_to_mcse(s['power'], m)} (MCSE {m:.1g}; 95% interval {round_to_mcse(s['ci_low'], m)} to "
                  f"{round_to_mcse(s['ci_high'], m)}; {run.reps} simulated trials)."]
@@ -576,8 +583,7 @@ def justification(result, *, null=None, scenario=None, target=None, x=None) -> J
         block = sweep_block(result, scenario, target=target, x=x)
         rec = recruitment(_process_at(scenario))
         first = [f"Sample size. {block.heading}: {block.answer}.",
-                 f"Primary analysis: {_analysis_words(sc, name)}, at a {_sided(sc, name)}significance level "
-                 f"of {sc.alpha:g}."] + [f"{k}: {v}." for k, v in block.rows]
+                 f"Primary analysis: {_analysis_words(sc, name)}, {_level(sc, name)}."] + [f"{k}: {v}." for k, v in block.rows]
         seed = result.attrs.get("seed", "")
     where = _null_where(null, result) if hasattr(result, "estimate_interval") else ""
     null_text, used = _null_sentence(null, name, where)

@@ -286,7 +286,12 @@ class Scenario:
         for n, a in self.analyses.items():
             h0 = getattr(a, "null_hypothesis", "")
             lines.append(f"Analysis `{n}`: {a.describe()}" + (f"; H0: {h0}." if h0 else "."))
-        lines.append(f"A replicate rejects H0 when its p-value is at most alpha = {self.alpha:g}.")
+        own = {n: r for n, a in self.analyses.items() if (r := a.decision_rule())}
+        if len(own) < len(self.analyses):
+            lines.append(f"A replicate rejects H0 when its p-value is at most alpha = {self.alpha:g}"
+                         + (" (the analyses deciding by their own rule excepted)." if own else "."))
+        for n, rule in own.items():
+            lines.append(f"Analysis `{n}` decides by its own rule, not by the scenario's alpha: {rule}.")
         return lines
 
     def __repr__(self):

@@ -95,3 +95,22 @@ def test_bad_settings_are_one_line_errors():
         PosteriorProbability(eta=1.0)
     with pytest.raises(sp.ParameterError, match="threshold"):
         PosteriorProbability(model="beta_binomial", threshold=1.5)
+
+
+def test_scenario_alpha_does_not_move_a_rule_that_decides_itself_and_the_description_says_so():
+    """The rule's decision is coded as its p-value (0 / 1), so the scenario's alpha cannot move it, while the
+    z-test's decisions move with alpha; the description and the justification name the rule instead of the
+    scenario's alpha (the design of this analysis: FDA 2010, from memory; common practice for Bayesian rules)."""
+    rule = PosteriorProbability(sd=1.0, eta=0.9)
+    sc = sp.Scenario(sp.NormalTwoArm(n=30, effect=0.3), analyses={"rule": rule, "z": sp.ZTest()}, alpha=0.2)
+    res = sp.run(sc, reps=1000, seed=5, n_jobs=1, progress=False)
+    post = res.records["rule"]  # posterior mean and SD: P(difference > 0 | data) = Phi(mean / sd)
+    assert res.summaries["rule"]["power"] == np.mean(stats.norm.cdf(post.estimate / post.se) > 0.9)
+    assert res.summaries["z"]["power"] == np.mean(res.records["z"].pvalue <= 0.2)
+    lines = sc.describe()
+    assert any("`rule` decides by its own rule" in line and "eta = 0.9" in line for line in lines)
+    assert any("at most alpha = 0.2 (the analyses deciding by their own rule excepted)" in line for line in lines)
+    from simpower.answer import justification
+
+    text = str(justification(res))
+    assert "eta = 0.9" in text and "significance level of 0.2" not in text

@@ -356,6 +356,17 @@ class Analysis(Component):
 
         return crosscheck.power(self, process, alpha)
 
+    def decision_rule(self) -> str | None:
+        """How the analysis decides, when it decides by its own rule rather than by p <= alpha.
+
+        None (the default): a replicate rejects H0 when its p-value is at most the
+        scenario's alpha. Analyses that return their decision coded as the p-value
+        (0 rejects, 1 does not), such as group-sequential designs and Bayesian rules,
+        return one phrase naming the rule, and the scenario's description says that
+        its alpha does not apply to them.
+        """
+        return None
+
     #: parameters that hold the estimand's value under a point H0 (t-tests' ``null_mean``, the rank,
     #: permutation, bootstrap and regression analyses' ``null_value``) with the value meaning "no effect"
     NULL_PARAMS = (("null_mean", 0.0), ("null_value", 0.0), ("null_ratio", 1.0))

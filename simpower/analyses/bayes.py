@@ -80,6 +80,10 @@ class PosteriorProbability(Analysis):
     def null_boundary(self) -> NullBoundary:
         return NullBoundary(float(self.threshold), "`threshold`")
 
+    def decision_rule(self) -> str:
+        side = ">" if self.direction == "greater" else "<"
+        return f"success when P(difference {side} {self.threshold:g} | data) > eta = {self.eta:g}"
+
     # -- the computation, for arrays of replicates ---------------------------------------------
     def _normal(self, n0, n1, m0, m1, ss):
         d = m1 - m0

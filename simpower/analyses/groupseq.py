@@ -438,6 +438,10 @@ class GroupSequential(Analysis):
         nb = self.null_boundary()
         return 0.0 if nb is None else float(nb.value)
 
+    def decision_rule(self) -> str:
+        sides = "one" if self._side_count() == 1 else "two"
+        return f"its group-sequential boundaries at its own alpha {self.alpha:g} ({sides}-sided)"
+
     def describe(self) -> str:
         b = self.design()
         fut = "" if b.futility is None else (" with a binding" if self.binding else " with a non-binding") + \
