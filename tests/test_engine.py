@@ -258,6 +258,9 @@ def test_probe_starts_workers_only_when_it_pays(monkeypatch):
 
     monkeypatch.setattr(executor, "_loky_results", counting)
     monkeypatch.setattr(executor, "effective_jobs", lambda n: 2)
+    # a cold start each time: a warm pool left by an earlier test would be counted as nearly free, and under load
+    # time.sleep(0) can then take long enough for workers to look worth it
+    monkeypatch.setattr(executor, "pool_start_seconds", lambda jobs: executor.POOL_START_SECONDS)
     # tiny tasks: 1 s of pool start-up cannot pay for itself
     assert list(executor.execute(time.sleep, [(0.0,)] * 6, n_jobs=-1, probe=True)) == [None] * 6
     assert started == []
