@@ -16,8 +16,10 @@ from __future__ import annotations
 
 import math
 import numbers
+import threading
 import warnings
 from collections.abc import Mapping
+from contextlib import contextmanager
 from dataclasses import dataclass, field, fields
 from typing import Any
 
@@ -209,6 +211,23 @@ def as_batch_result(obj: Any) -> BatchResult:
     return BatchResult(**kw)
 
 
+
+#: Before Python 3.14 the warning filters and ``catch_warnings``' recorder are process-wide, so two
+#: threads recording at once (the threading backend, a dask worker with several threads) lose or swap
+#: each other's warnings, and a replicate's ``warning:<Type>`` cause would depend on the executor.
+#: Every per-replicate call whose warnings are recorded holds this lock: under threads such calls run
+#: one at a time (they hold the GIL most of the time anyway); processes are unaffected.
+WARNINGS_LOCK = threading.RLock()
+
+
+@contextmanager
+def recording_warnings():
+    """Record every warning raised inside the block (filter "always"), safely under threads."""
+    with WARNINGS_LOCK, warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        yield caught
+
+
 def rowwise(analysis, batch, rows) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray], dict[str, str]]:
     """Run ``analysis`` per replicate on ``rows`` of a batch, the way the engine would.
 
@@ -227,8 +246,7 @@ def rowwise(analysis, batch, rows) -> tuple[dict[str, np.ndarray], dict[str, np.
         messages.setdefault(cause, msg[:500])
 
     for j, i in enumerate(rows):
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always")
+        with recording_warnings() as caught:
             try:
                 res = analysis(batch.replicate(int(i)))
             except Exception as exc:

@@ -77,7 +77,7 @@ from ..analytic import futility as frules
 from ..analytic import groupseq as gs
 from ..errors import ParameterError
 from ..registry import build, wrap_callable
-from .base import Analysis, BatchResult, TestResult, as_batch_result, as_test_result
+from .base import Analysis, BatchResult, TestResult, as_batch_result, as_test_result, WARNINGS_LOCK
 
 #: the indicator of a replicate that stopped for futility but, run on, would have crossed an efficacy boundary
 LOST = "futility lost"
@@ -555,7 +555,7 @@ class GroupSequential(Analysis):
         statistic) ends the run without a crossing; its warnings are not the trial's."""
         eff = self.design().efficacy
         for j in range(k + 1, self.looks):
-            with warnings.catch_warnings():
+            with WARNINGS_LOCK, warnings.catch_warnings():
                 warnings.simplefilter("ignore")
                 try:
                     r = as_test_result(self.inner(self._slice(data, j)))

@@ -74,7 +74,7 @@ import numpy as np
 from .._validation import Anything, Choice
 from ..errors import ParameterError
 from ..formula import FormulaText, parse_formula, require_columns
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, WARNINGS_LOCK, hand_over
 from .numeric import wald_fields
 
 DF_METHODS = ("wald", "between-within", "satterthwaite")
@@ -576,7 +576,7 @@ def shared_design(formula, groups, shared):
     f = parse_formula(formula)
     frame = pd.DataFrame({c: np.asarray(shared[c]) for c in f.columns[1:]})
     frame[f.outcome] = 0.0
-    with warnings.catch_warnings():
+    with WARNINGS_LOCK, warnings.catch_warnings():
         warnings.simplefilter("ignore")
         model = MixedLM.from_formula(formula, frame, groups=np.asarray(shared[groups]))
     return np.asarray(model.exog, float), list(model.exog_names)
@@ -637,7 +637,7 @@ def design_sums(y, ok, X, groups) -> tuple[_PatternSums, np.ndarray]:
     Xty = (yc @ onehot) @ cells
     # a column is "between groups" in a replicate when it is constant over every group's observed rows
     vals = np.where(seen[:, :, None], cells[kcells], np.nan)
-    with np.errstate(all="ignore"), warnings.catch_warnings():
+    with np.errstate(all="ignore"), WARNINGS_LOCK, warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         spread = np.nanmax(vals, 1) - np.nanmin(vals, 1)
     const = ~(spread > 1e-12 * max(1.0, float(np.abs(cells).max())))   # (K, p); empty patterns count as constant

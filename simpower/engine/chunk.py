@@ -50,12 +50,11 @@ import signal
 import socket
 import threading
 import time
-import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..analyses.base import FIELDS, IGNORED_WARNINGS, as_batch_result, as_test_result
+from ..analyses.base import FIELDS, IGNORED_WARNINGS, as_batch_result, as_test_result, recording_warnings
 from ..summaries import chunk_statistics
 TIMEOUT = "timeout"
 CRASH = "crash"
@@ -184,8 +183,7 @@ def _apply_one(analysis, data, rec, i, causes: _Causes, hyp: dict, name: str, li
         return
     if mark is not None:
         mark(i, name)
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
+    with recording_warnings() as caught:
         try:
             res = as_test_result(limit.call(analysis, data))
         except ReplicateTimeout:
