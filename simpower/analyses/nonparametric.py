@@ -7,8 +7,13 @@ scipy, and the batch paths sort every replicate of a chunk at once
 (:func:`rank_rows`) and agree with scipy to about 1e-10. The Mann-Whitney batch
 sorts the pooled arms once: the rank sum, the tie term and the placement values of
 the probability index all come from that one sort (with the numba kernel and the
-default shift estimand it sorts each arm instead, and takes U and the tie term from
-staircase counts of the two sorted arms; both are integer counts, the same floats).
+shift estimand or 'none' it sorts each arm instead and runs one compiled kernel over the
+rows, :func:`simpower.analyses._rank_kernels.rank_test_rows`: U and the tie term by one merge
+of the two sorted arms -- integer counts, so the same floats -- and the Hodges-Lehmann order
+statistics; the signed-rank test likewise). With missing outcomes the kernel takes ragged rows
+(each row's observed values sorted first, the unobserved cells set to +inf); without numba the
+replicates are grouped by their observed counts and compacted (:func:`_by_counts`). Both give
+the same floats as the per-replicate path's arithmetic on the observed values.
 
 Estimates are Hodges-Lehmann estimates (Hodges & Lehmann 1963, Ann Math Stat
 34:598-611): the median of the pairwise differences between arms (a location
