@@ -82,6 +82,16 @@ q. 2x2 tables and GLMs, 100 per arm, complete (q1-q4) and 20% MCAR (q1m-q4m): ch
    fisher_exact against ``scipy.stats.chi2_contingency`` / ``fisher_exact`` on the observed 2x2 table,
    logistic and poisson_glm against statsmodels ``GLM`` (binomial; Poisson with the log-exposure
    offset) on the observed rows. Same timing and checks as row l. Target >= 50 x.
+w. rank tests, 100 per arm (one sample of 100 for the signed rank), complete and with 20% MCAR
+   outcomes: w1/w2 ``mann_whitney`` (estimand 'none': U and p, like scipy), w3/w4 ``mann_whitney``
+   (default: + Hodges-Lehmann shift and CI), w5/w6 ``wilcoxon_signed_rank`` (+ pseudo-median and
+   CI), each through ``simpower.run`` with one job against a plain loop of
+   ``scipy.stats.mannwhitneyu`` / ``wilcoxon`` (asymptotic) on the observed values of tables drawn
+   before timing (scipy gives U and p only, so w3-w6 do more than the loop). Interleaved rounds,
+   median rates. The ceiling column: the process's bare draw rate (``draw_batch`` in the engine's
+   chunk sizes) over the loop rate, the ratio the engine would reach if the analysis cost nothing.
+   Checks on the loop's replicates: decisions at 0.05 agree on >= 99.9%; the estimates equal the
+   median of all pairwise differences / Walsh averages (numpy, untimed) to 1e-12. Target >= 50 x.
 e. peak memory (RSS) of a whole t-test run in a fresh subprocess for growing
    reps: the RSS the run adds (peak during the run minus RSS before it), and
    the bytes added per extra replicate (shown in the ratio column), for the
@@ -157,6 +167,8 @@ SIZES = {
     "r_loop": (40, 200),
     "u_reps": (1_000, 10_000),
     "u_loop": (20, 200),
+    "w_reps": (4_000, 40_000),
+    "w_loop": (200, 2_000),
 }
 
 
@@ -1339,10 +1351,95 @@ def bench_tables_glm(quick, repeats):
     return _library_rows(cases, reps, max(repeats, 3))
 
 
+def bench_rank_tests(quick, repeats):
+    """Rank tests complete and with 20% MCAR outcomes, against the scipy loop, with the draw-only ceiling."""
+    from scipy import stats
+
+    from simpower.analyses.base import as_batch_result
+
+    reps, loop = (SIZES["w_reps"][0], SIZES["w_loop"][0]) if quick else (SIZES["w_reps"][1], SIZES["w_loop"][1])
+    rounds = max(repeats, 3)
+    run = dict(reps=reps, seed=1, n_jobs=1, progress=False)
+
+    def mw(tab):
+        y0, y1 = _observed_arms(tab)
+        return stats.mannwhitneyu(y1, y0, method="asymptotic").pvalue
+
+    def wsr(tab):
+        return stats.wilcoxon(tab["y"][np.isfinite(tab["y"])], method="asymptotic").pvalue
+
+    def shift(tab):
+        y0, y1 = _observed_arms(tab)
+        return np.median(np.subtract.outer(y1, y0))
+
+    def pseudo_median(tab):
+        y = tab["y"][np.isfinite(tab["y"])]
+        i, j = np.triu_indices(y.size)
+        return np.median(0.5 * (y[i] + y[j]))
+
+    rows = []
+    for rate, suffix in ((0.0, "complete"), (0.2, "20% MCAR")):
+        miss = {"missing": sp.MCAR(rate=rate)} if rate else {}
+        two, one = sp.TwoArm(n=100, effect=0.3, **miss), sp.NormalOneSample(n=100, effect=0.2, **miss)
+        odd = 0 if rate == 0 else 1
+        cases = [(f"w{1 + odd}", "mann_whitney (U and p, like scipy)", two, sp.MannWhitney(estimand="none"), mw, None),
+                 (f"w{3 + odd}", "mann_whitney (+ Hodges-Lehmann shift, CI)", two, sp.MannWhitney(), mw, shift),
+                 (f"w{5 + odd}", "wilcoxon_signed_rank (+ pseudo-median, CI)", one, sp.WilcoxonSignedRank(), wsr,
+                  pseudo_median)]
+        for key, label, proc, an, lib, est_ref in cases:
+            sc = sp.Scenario(proc, an)
+            name = f"{label}, {suffix}"
+            res = sp.run(sc, **run)   # warm-up: numba compile or cache load
+            if res.paths[sc.primary] != "batch":
+                rows.append({"row": key, "measure": name, "ratio": None, "target": 50.0, "meets": None,
+                             "note": f"not available (the engine took the {res.paths[sc.primary]} path)"})
+                continue
+            batch = proc.draw_batch(np.random.default_rng(7), loop)
+            tables = [batch.replicate(i) for i in range(loop)]
+            ref = []
+
+            def library_loop():
+                ref.clear()
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")
+                    for tab in tables:
+                        ref.append(lib(tab))
+
+            def draw_only():
+                rng = np.random.default_rng(1)
+                for size in chunks(reps):
+                    proc.draw_batch(rng, size)
+
+            t_engine, t_loop = _interleaved(lambda: sp.run(sc, **run), library_loop, rounds)
+            draw_rate = best_rate(draw_only, reps, rounds)
+            ours = as_batch_result(an.batch(batch))
+            p_lib = np.array(ref, float)
+            same = float(np.mean((np.asarray(ours.pvalue) <= 0.05) == (p_lib <= 0.05)))
+            d_p = float(np.nanmax(np.abs(ours.pvalue - p_lib) / np.maximum(p_lib, 1e-300)))
+            d_est = None
+            if est_ref is not None:
+                want = np.array([est_ref(t) for t in tables])
+                d_est = float(np.max(np.abs(ours.estimate - want)))
+            ok = same >= 0.999 and (d_est is None or d_est <= 1e-12)
+            loop_rate = loop / t_loop
+            note = (f"{reps} reps, loop {loop}, median of {rounds} interleaved rounds; draw only {draw_rate:,.0f}/s "
+                    f"(ceiling {draw_rate / loop_rate:.0f} x); on the loop's replicates: same decision {same:.2%}, "
+                    f"max rel. p-value difference {d_p:.1e}"
+                    + ("" if d_est is None else f", max abs. estimate difference {d_est:.1e}")
+                    + f"; {'answers agree' if ok else 'ANSWERS DIFFER'}")
+            out = row(key, name, reps / t_engine, loop_rate, 50.0, note=note, decision_agreement=same,
+                      draw_only_per_s=draw_rate, ceiling=draw_rate / loop_rate, max_abs_estimate_difference=d_est,
+                      answers_agree=ok)
+            out["meets"] = bool(out["meets"] and ok)
+            rows.append(out)
+    return rows
+
+
 ROWS = {"a": bench_ttest, "b": bench_mixed, "c": bench_mann_whitney, "d": bench_jobs, "e": bench_memory,
         "m": bench_missing, "x": bench_crossover, "o": bench_ordinal, "h": bench_glmm, "s": bench_stepped,
         "i": bench_mmrm, "g": bench_gee, "k": bench_cox, "n": bench_negbin, "r": bench_resampling,
-        "u": bench_pilot_units, "t": bench_groupseq_events, "l": bench_logrank, "q": bench_tables_glm}
+        "u": bench_pilot_units, "t": bench_groupseq_events, "l": bench_logrank, "q": bench_tables_glm,
+        "w": bench_rank_tests}
 
 
 def machine():
@@ -1390,7 +1487,7 @@ def print_table(rows, stream=sys.stdout):
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--quick", action="store_true", help="small sizes (a smoke run, not a measurement)")
-    ap.add_argument("--only", default="a,b,c,d,e,m,o,x,h,i,g,k,n,l,q", help="comma-separated rows to run, from " + ",".join(ROWS))
+    ap.add_argument("--only", default="a,b,c,d,e,m,o,x,h,i,g,k,n,l,q,w", help="comma-separated rows to run, from " + ",".join(ROWS))
     ap.add_argument("--json", default=None, help="write the rows and machine facts to this JSON file")
     ap.add_argument("--repeats", type=int, default=None, help="timing repeats per rate (best is kept)")
     args = ap.parse_args(argv)

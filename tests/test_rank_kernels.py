@@ -313,3 +313,98 @@ def test_heap_sort_sorts():
         ref = np.sort(a[:n])
         rk._heap_sort(a, n)
         np.testing.assert_array_equal(a[:n], ref)
+
+
+# -- the compiled whole-test kernel on ragged rows (missing outcomes) ----------------------------------
+def ragged_two_arm(rng, reps, n0, n1, rate, interleave, decimals=None):
+    """Two arms with ``rate`` of the outcomes missing (NaN); arms in blocks or interleaved (no split)."""
+    y = rng.normal(size=(reps, n0 + n1))
+    arm = np.repeat(np.array([0, 1], np.int8), [n0, n1])
+    if interleave:
+        arm = rng.permutation(arm)
+    y[:, arm == 1] += 0.4
+    if decimals is not None:
+        y = np.round(y, decimals)
+    y[rng.random(y.shape) < rate] = np.nan
+    y[0, arm == 0] = np.nan               # a replicate with no arm-0 value: handed to the per-replicate path
+    y[1, np.flatnonzero(arm == 1)[1:]] = np.nan   # one arm-1 value left: handed over too
+    return Batch(reps, {"y": y}, {"arm": arm}, info={"missing": True})
+
+
+@pytest.mark.parametrize("interleave", [False, True])
+@pytest.mark.parametrize("decimals", [None, 0, 1])
+@pytest.mark.parametrize("estimand", ["shift", "none"])
+def test_mann_whitney_missing_outcomes_same_floats_on_both_paths(monkeypatch, interleave, decimals, estimand):
+    # the compiled kernel takes each replicate's observed values as they are (ragged rows); the numpy
+    # path groups replicates by their observed counts and compacts them: the same floats
+    rng = np.random.default_rng(40 + 3 * interleave + (decimals or 0))
+    b = ragged_two_arm(rng, 60, 14, 19, 0.3, interleave, decimals)
+    an = MannWhitney(estimand=estimand, alternative="less", null_value=-0.2)
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        ref, new = both_paths(monkeypatch, lambda: an.batch(b))
+    assert set(ref) == set(new)
+    for f in set(ref) - {"trouble", "trouble_messages"}:
+        np.testing.assert_array_equal(new[f], ref[f], err_msg=f)
+    assert ref.trouble.keys() == new.trouble.keys()   # replicate 0 (no arm-0 value) fails on both
+    for cause in ref.trouble:
+        np.testing.assert_array_equal(new.trouble[cause], ref.trouble[cause])
+    # and each replicate as scipy sees its observed values (scipy's asymptotic method, to 1e-12)
+    for i in (2, 3, 4):
+        t = b.replicate(i)
+        ok = np.isfinite(t["y"])
+        y0, y1 = t["y"][ok & (t["arm"] == 0)], t["y"][ok & (t["arm"] == 1)]
+        p = stats.mannwhitneyu(y1 + 0.2, y0, alternative="less", method="asymptotic").pvalue
+        assert new["pvalue"][i] == pytest.approx(p, rel=1e-12)
+        if estimand == "shift":
+            assert new["estimate"][i] == pytest.approx(np.median(np.subtract.outer(y1, y0)), abs=1e-12)
+
+
+@pytest.mark.parametrize("paired", [False, True])
+@pytest.mark.parametrize("decimals", [None, 0, 1])
+def test_signed_rank_missing_outcomes_same_floats_on_both_paths(monkeypatch, paired, decimals):
+    rng = np.random.default_rng(50 + paired + (decimals or 0))
+    reps, n = 50, 23
+    y = rng.normal(size=(reps, 2 * n if paired else n)) + 0.3
+    if decimals is not None:
+        y = np.round(y, decimals)            # ties and exact zeros (differences too)
+    y[rng.random(y.shape) < 0.25] = np.nan
+    y[0, 1:] = np.nan                        # one value (pair) left: handed over
+    if paired:
+        b = Batch(reps, {"y": y}, {"arm": np.repeat(np.array([0, 1], np.int8), n),
+                                   "pair": np.tile(np.arange(n), 2)}, info={"missing": True})
+    else:
+        b = Batch(reps, {"y": y}, info={"missing": True})
+    an = WilcoxonSignedRank(null_value=0.1 if decimals != 0 else 0.0, continuity=True)
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        ref, new = both_paths(monkeypatch, lambda: an.batch(b))
+    for f in ("estimate", "ci_low", "ci_high", "pvalue"):
+        np.testing.assert_array_equal(new[f], ref[f], err_msg=f)
+    for i in (1, 2):                         # against scipy's asymptotic method (zeros dropped, as Wilcoxon)
+        d = y[i, n:] - y[i, :n] if paired else y[i]
+        d = d[np.isfinite(d)] - an.null_value
+        p = stats.wilcoxon(d, correction=True, method="asymptotic").pvalue
+        assert new["pvalue"][i] == pytest.approx(p, rel=1e-12)
+
+
+def test_tie_merge_and_signed_rank_terms_against_scipy_ranks():
+    # U, the tie term and the signed-rank sum by the definitions (ranks by scipy.stats.rankdata;
+    # tie term sum(t^3 - t), Lehmann 1975, Nonparametrics, eq. 1.45 -- from memory), with exact zeros
+    rng = np.random.default_rng(8)
+    for n0, n1 in ((1, 1), (5, 3), (17, 24)):
+        for _ in range(20):
+            a = np.sort(np.round(rng.normal(size=n0), 1))
+            b = np.sort(np.round(rng.normal(size=n1), 1))
+            twice, tie = rk._tie_merge(a, n0, b, n1)
+            r = stats.rankdata(np.concatenate([b, a]))
+            assert twice / 2.0 == r[:n1].sum() - n1 * (n1 + 1) / 2.0
+            _, t = np.unique(np.concatenate([a, b]), return_counts=True)
+            assert tie == float(np.sum(t**3 - t))
+            x = np.sort(np.concatenate([a, -b, np.zeros(2)]))
+            twice, tie, nz = rk._signed_rank_terms(x, x.size)
+            nzx = x[x != 0]
+            rr = stats.rankdata(np.abs(nzx))
+            assert nz == np.count_nonzero(x == 0) >= 2 and twice / 2.0 == rr[nzx > 0].sum()
+            _, t = np.unique(np.abs(nzx), return_counts=True)
+            assert tie == float(np.sum(t**3 - t))

@@ -106,15 +106,15 @@ def _count_many(u, v, ts, owner, nq, lo_c, out, ii, jj):
 
 
 @_jit
-def _valid_total(c, tri):
-    """Number of valid entries (columns j >= i when ``tri``) below the row counts ``c``."""
+def _valid_total(c, nr, tri):
+    """Number of valid entries (columns j >= i when ``tri``) below the row counts ``c[:nr]``."""
     total = 0
     if tri:
-        for i in range(c.size):
+        for i in range(nr):
             x = c[i] - i
             total += x if x > 0 else 0
     else:
-        for i in range(c.size):
+        for i in range(nr):
             total += c[i]
     return total
 
@@ -441,7 +441,7 @@ def _select_one(u, v, tri, k1s, k2s, zs, m, res1, res2, w_int, lo_c, hi_c, out, 
             if state[p] != 0:
                 continue
             t = ts[q]
-            n = _valid_total(out[q], tri)
+            n = _valid_total(out[q], nr, tri)
             if n <= k1s[p]:
                 if t > t_lo[p]:
                     if n > n_lo[p]:
@@ -519,7 +519,245 @@ def _count_rows(u, v, ts, out):
         vpad[:nc] = v[r]
         _count_many(u[r], vpad, ts, owner, nq, lo, counts, ii, jj)
         for q in range(nq):
-            out[r, q] = _valid_total(counts[q], False)
+            out[r, q] = _valid_total(counts[q], nr, False)
+
+
+# -- whole rank tests, row by row: rank sums, tie terms and Hodges-Lehmann order statistics ------
+@_jit
+def _tie_merge(a, na, b, nb):
+    """Twice U and the tie term of the sorted samples ``a[:na]`` and ``b[:nb]``, by one merge.
+
+    Twice U: 2 #(b_j > a_i) + #(b_j = a_i) over all pairs (an integer, so U is exact);
+    the tie term: sum over groups of tied pooled values of t^3 - t (t the group size),
+    summed as floats of integers (exact), as :func:`~simpower.analyses.nonparametric.rank_rows`.
+    """
+    i = 0
+    j = 0
+    twice = 0
+    tie = 0.0
+    while i < na or j < nb:
+        if j >= nb:
+            w = a[i]
+        elif i >= na:
+            w = b[j]
+        else:
+            w = a[i] if a[i] < b[j] else b[j]
+        c0 = 0
+        while i < na and a[i] == w:
+            i += 1
+            c0 += 1
+        c1 = 0
+        while j < nb and b[j] == w:
+            j += 1
+            c1 += 1
+        twice += c1 * (2 * (i - c0) + c0)
+        t = c0 + c1
+        if t > 1:
+            tie += t * (t * t - 1.0)
+    return twice, tie
+
+
+@_jit
+def _signed_rank_terms(x, n):
+    """Twice the positive rank sum, the tie term (zeros' group left out) and the zeros of sorted ``x[:n]``.
+
+    Ranks are those of ``|x|`` among all n values, ties averaged, zeros first; the
+    rank sum of the positive values counts each rank less the number of zeros
+    (Wilcoxon's method: zeros dropped). Integers throughout (exact).
+    """
+    q = 0
+    while q < n and x[q] < 0.0:
+        q += 1
+    p = q
+    while p < n and x[p] == 0.0:
+        p += 1
+    nz = p - q
+    i = q - 1       # negatives, largest first: |x| ascending
+    j = p           # positives ascending
+    pos = nz        # ranks given so far
+    twice = 0
+    tie = 0.0
+    while i >= 0 or j < n:
+        if j >= n:
+            w = -x[i]
+        elif i < 0:
+            w = x[j]
+        else:
+            a = -x[i]
+            w = a if a < x[j] else x[j]
+        cn = 0
+        while i >= 0 and -x[i] == w:
+            i -= 1
+            cn += 1
+        cp = 0
+        while j < n and x[j] == w:
+            j += 1
+            cp += 1
+        t = cn + cp
+        # each positive of the group: rank pos + (t + 1) / 2, less nz
+        twice += cp * (2 * (pos - nz) + t + 1)
+        if t > 1:
+            tie += t * (t * t - 1.0)
+        pos += t
+    return twice, tie, nz
+
+
+@_jit
+def _pairs_of(ks, nk, zk, k1s, k2s, zs):
+    """Sort the ranks ``ks[:nk]`` (with their guesses ``zk``), drop repeats, pair neighbours as
+    :func:`_target_pairs` does; writes the pairs to ``k1s``, ``k2s`` (the guess of each pair:
+    that of its first rank) and returns their number."""
+    for p in range(1, nk):
+        x = ks[p]
+        zx = zk[p]
+        q = p - 1
+        while q >= 0 and ks[q] > x:
+            ks[q + 1] = ks[q]
+            zk[q + 1] = zk[q]
+            q -= 1
+        ks[q + 1] = x
+        zk[q + 1] = zx
+    u = 0
+    for p in range(nk):
+        if u == 0 or ks[p] != ks[u - 1]:
+            ks[u] = ks[p]
+            zk[u] = zk[p]
+            u += 1
+    npairs = 0
+    i = 0
+    while i < u:
+        k1s[npairs] = ks[i]
+        zs[npairs] = zk[i]
+        if i + 1 < u and ks[i + 1] == ks[i] + 1:
+            k2s[npairs] = ks[i + 1]
+            i += 2
+        else:
+            k2s[npairs] = ks[i]
+            i += 1
+        npairs += 1
+    return npairs
+
+
+@_jit
+def _select_ranks(u, v, tri, scale, m, kq, zq, est, res1, res2, w_int, lo_c, hi_c, out, ts, t_lo, t_hi,
+                  slope, buf, ext, ks, zk, k1s, k2s, zs):
+    """The ranks ``kq`` (0-based; -1: none, NaN) of ``scale * (u[i] + v[j])`` of one replicate, into ``est``.
+
+    ``v`` ends with _PAD values of +inf; ``zq``: the normal model's guess for each rank
+    (speed only). The rest are work arrays of :func:`_select_one`.
+    """
+    nk = 0
+    for q in range(kq.size):
+        if kq[q] >= 0:
+            ks[nk] = kq[q]
+            zk[nk] = zq[q]
+            nk += 1
+    npairs = _pairs_of(ks, nk, zk, k1s, k2s, zs)
+    if npairs > 0:
+        _select_one(u, v, tri, k1s[:npairs], k2s[:npairs], zs[:npairs], m, res1, res2, w_int, lo_c, hi_c,
+                    out, ts, t_lo, t_hi, slope, buf, ext)
+    for q in range(kq.size):
+        k = kq[q]
+        est[q] = np.nan
+        if k < 0:
+            continue
+        for p in range(npairs):
+            if k2s[p] == k:
+                est[q] = scale * res2[p]
+                break
+            if k1s[p] == k:
+                est[q] = scale * res1[p]
+                break
+
+
+@_jit
+def _rank_test_rows(a, na, b, nb, kind, kq, zq, stat, tie, zeros, est):
+    """Rank statistics and Hodges-Lehmann order statistics of each row r.
+
+    ``kind`` 0 (two samples): ``a[r, :na[r]]`` arm 0 and ``b[r, :nb[r]]`` arm 1, sorted;
+    ``stat`` twice U1, order statistics of the differences b_j - a_i. ``kind`` 1 (one
+    sample): ``a[r, :na[r]]`` sorted (``b`` unused); ``stat`` twice the signed-rank sum
+    of the positive values, ``zeros`` their number, order statistics of the Walsh averages.
+    ``kq`` (R, K) 0-based ranks (all -1: no order statistics for that row), ``zq`` their
+    guesses; ``est`` (R, K) the order statistics (NaN where the rank is -1).
+    """
+    reps, wa = a.shape
+    wb = b.shape[1]
+    nt = kq.shape[1]
+    wr = wa
+    wc = wa if kind == 1 else wb
+    ub = np.empty(wr)
+    vb = np.full(wc + _PAD, np.inf)
+    res1 = np.empty(nt)
+    res2 = np.empty(nt)
+    w_int = np.empty((7, 2 * nt), np.int64)
+    lo_c = np.empty((nt, wr), np.int64)
+    hi_c = np.empty((nt, wr), np.int64)
+    out = np.empty((2 * nt, wr), np.int64)
+    ts = np.empty(2 * nt)
+    t_lo = np.empty(nt)
+    t_hi = np.empty(nt)
+    slope = np.empty(nt)
+    buf = np.empty((_FLAT + 1) * (wr + wc) + _PAD)
+    ext = np.empty(_FEW + 1)
+    ks = np.empty(nt, np.int64)
+    zk = np.empty(nt)
+    k1s = np.empty(nt, np.int64)
+    k2s = np.empty(nt, np.int64)
+    zs = np.empty(nt)
+    for r in range(reps):
+        n0 = na[r]
+        if kind == 0:
+            n1 = nb[r]
+            tw, tt = _tie_merge(a[r], n0, b[r], n1)
+            zeros[r] = 0
+            m = n0 * n1
+        else:
+            n1 = n0
+            tw, tt, nz = _signed_rank_terms(a[r], n0)
+            zeros[r] = nz
+            m = n0 * (n0 + 1) // 2
+        stat[r] = tw
+        tie[r] = tt
+        if m == 0 or kq[r, 0] < 0:
+            for q in range(nt):
+                est[r, q] = np.nan
+            continue
+        if kind == 0:
+            for i in range(n0):
+                ub[i] = -a[r, n0 - 1 - i]
+            for j in range(n1):
+                vb[j] = b[r, j]
+        else:
+            for i in range(n0):
+                ub[i] = a[r, i]
+                vb[i] = a[r, i]
+        for j in range(n1, n1 + _PAD):
+            vb[j] = np.inf
+        _select_ranks(ub[:n0], vb[:n1 + _PAD], kind == 1, 1.0 if kind == 0 else 0.5, m, kq[r], zq[r], est[r],
+                      res1, res2, w_int, lo_c, hi_c, out, ts, t_lo, t_hi, slope, buf, ext, ks, zk, k1s, k2s, zs)
+
+
+def rank_test_rows(a, na, b, nb, kind, kq, zq):
+    """:func:`_rank_test_rows` with its outputs allocated: (stat, tie, zeros, est).
+
+    ``a`` (R, Wa) and ``b`` (R, Wb) sorted rows whose first ``na[r]`` / ``nb[r]`` values
+    are the sample (finite); ``kind`` 'two' or 'one'; ``kq`` (R, K) int ranks, ``zq`` (R, K).
+    """
+    a = np.ascontiguousarray(a, float)
+    b = np.ascontiguousarray(b, float)
+    reps = a.shape[0]
+    kq = np.ascontiguousarray(kq, np.int64)
+    zq = np.ascontiguousarray(zq, float)
+    stat = np.zeros(reps, np.int64)
+    tie = np.zeros(reps)
+    zeros = np.zeros(reps, np.int64)
+    est = np.empty(kq.shape)
+    if reps:
+        with _compile_notice("rank-test"):
+            _rank_test_rows(a, np.ascontiguousarray(na, np.int64), b, np.ascontiguousarray(nb, np.int64),
+                            0 if kind == "two" else 1, kq, zq, stat, tie, zeros, est)
+    return stat, tie, zeros, est
 
 
 #: seconds a first kernel call may take before the user is told it is compiling

@@ -7,8 +7,13 @@ scipy, and the batch paths sort every replicate of a chunk at once
 (:func:`rank_rows`) and agree with scipy to about 1e-10. The Mann-Whitney batch
 sorts the pooled arms once: the rank sum, the tie term and the placement values of
 the probability index all come from that one sort (with the numba kernel and the
-default shift estimand it sorts each arm instead, and takes U and the tie term from
-staircase counts of the two sorted arms; both are integer counts, the same floats).
+shift estimand or 'none' it sorts each arm instead and runs one compiled kernel over the
+rows, :func:`simpower.analyses._rank_kernels.rank_test_rows`: U and the tie term by one merge
+of the two sorted arms -- integer counts, so the same floats -- and the Hodges-Lehmann order
+statistics; the signed-rank test likewise). With missing outcomes the kernel takes ragged rows
+(each row's observed values sorted first, the unobserved cells set to +inf); without numba the
+replicates are grouped by their observed counts and compacted (:func:`_by_counts`). Both give
+the same floats as the per-replicate path's arithmetic on the observed values.
 
 Estimates are Hodges-Lehmann estimates (Hodges & Lehmann 1963, Ann Math Stat
 34:598-611): the median of the pairwise differences between arms (a location
@@ -364,6 +369,55 @@ def _by_counts(analysis, batch, samples, dense) -> BatchResult:
     return hand_over(analysis, batch, BatchResult(**out), few)
 
 
+# -- the compiled whole-test path (numba): ragged rows, no grouping -----------------------------
+def _sorted_observed(y: np.ndarray, mask):
+    """Rows of ``y`` sorted with the unobserved cells (``mask`` False) set to +inf, and the observed counts.
+
+    The first ``counts[r]`` values of row r are its observed values, sorted: the same
+    numbers as sorting the compacted values (observed values are finite).
+    """
+    if mask is None:
+        return np.sort(y, axis=1), np.full(y.shape[0], y.shape[1], np.int64)
+    return np.sort(np.where(mask, y, np.inf), axis=1), np.count_nonzero(mask, axis=1).astype(np.int64)
+
+
+def _hl_rank_table(m: np.ndarray, sd0: np.ndarray, ci_level: float, use: np.ndarray):
+    """Per row: the 0-based ranks [(m-1)//2, m//2, k-1, m-k] (the last two -1 when k < 1; all -1
+    where not ``use``), the normal model's guess of each (speed only) and k.
+
+    k is :func:`_ci_index` row by row (the same floating-point operations), so the ranks
+    are those of :func:`_hl_ranks`.
+    """
+    z = stats.norm.ppf(0.5 + ci_level / 2)
+    k = np.floor(m / 2.0 - z * sd0 + 0.5).astype(np.int64)
+    a, b = (m - 1) // 2, m // 2
+    has = k >= 1
+    c = np.where(has, k - 1, -1)
+    d = np.where(has, m - k, -1)
+    kq = np.column_stack([a, b, c, d])
+    kq[~use] = -1
+    with np.errstate(divide="ignore", invalid="ignore"):
+        zm = special.ndtri((0.5 * (a + b + 1)) / m)   # as select_sorted_sums: the pair's middle
+        zq = np.column_stack([zm, zm, special.ndtri((0.5 * (2 * c + 1)) / m), special.ndtri((0.5 * (2 * d + 1)) / m)])
+    zq[~np.isfinite(zq)] = 0.0
+    return kq, zq, k
+
+
+def _hl_from_table(est: np.ndarray, k: np.ndarray):
+    """Median and interval from the order statistics of :func:`_hl_rank_table`'s ranks (as _hl_from_order_stats)."""
+    has = k >= 1
+    return (0.5 * (est[:, 0] + est[:, 1]), np.where(has, est[:, 2], -np.inf), np.where(has, est[:, 3], np.inf))
+
+
+def _nan_rows(res: BatchResult, rows: np.ndarray) -> BatchResult:
+    """Fields of ``res`` set to NaN on ``rows`` (replicates handed over to the per-replicate path)."""
+    for f, v in res.items():
+        if f in ("trouble", "trouble_messages", "names", "pvalues"):
+            continue
+        v[rows] = np.nan
+    return res
+
+
 # -- Mann-Whitney ------------------------------------------------------------------------
 class MannWhitney(Analysis):
     """Mann-Whitney (Wilcoxon rank-sum) test of two arms, normal approximation.
@@ -463,24 +517,43 @@ class MannWhitney(Analysis):
 
     def batch(self, batch):
         layout = self.batch_layout(batch)
-        if not layout.complete:  # complete cases, grouped by the observed counts of the two arms
+        # the compiled path: U, the tie term and the shift by one kernel, row by row (ragged rows)
+        compiled = self.estimand != "probability" and order_statistic_backend() == "numba"
+        if not layout.complete:  # complete cases
             obs = layout.observed
             masks = (obs & (layout.arm == 0), obs & (layout.arm == 1))
+            if compiled:
+                few = (np.count_nonzero(masks[0], axis=1) < 2) | (np.count_nonzero(masks[1], axis=1) < 2)
+                if not few.all():
+                    s, y = layout.split, layout.y
+                    parts = ((y, masks[0], y, masks[1]) if s is None else
+                             (y[:, :s], masks[0][:, :s], y[:, s:], masks[1][:, s:]))
+                    return hand_over(self, batch, _nan_rows(self._compiled(*parts), few), few)
+            # grouped by the observed counts of the two arms
             return _by_counts(self, batch, [(layout.y, masks[0]), (layout.y, masks[1])], self._dense)
         y0, y1 = layout.arms()
+        if compiled and np.isfinite(y0).all() and np.isfinite(y1).all():
+            return self._compiled(y0, None, y1, None)
         return self._dense(y0, y1)
 
-    def _dense(self, y0, y1):
-        """The batch statistics of dense arms ``y0`` (R, n0) and ``y1`` (R, n1)."""
-        x1 = y1 - self.null_value
-        n0, n1 = y0.shape[1], x1.shape[1]
+    def _compiled(self, y0, mask0, y1, mask1):
+        """The batch statistics by the compiled kernel: arms ``y0``, ``y1`` (R, W) with their observed
+        masks (None: every value); the same floats as :meth:`_dense` on each replicate's observed values."""
+        from . import _rank_kernels
+
+        y0s, n0 = _sorted_observed(y0, mask0)
+        x1s, n1 = _sorted_observed(y1 - self.null_value, mask1)
+        m = n0 * n1
+        use = (n0 >= 1) & (n1 >= 1) & (self.estimand == "shift")
+        kq, zq, k = _hl_rank_table(m, np.sqrt(m * (n0 + n1 + 1) / 12.0), self.ci_level, use)
+        twice, tie, _, est = _rank_kernels.rank_test_rows(y0s, n0, x1s, n1, "two", kq, zq)
+        fields = self._shift_fields(*_hl_from_table(est, k)) if self.estimand == "shift" else {}
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return BatchResult(pvalue=self._pvalue(twice / 2.0, tie, n0, n1), **fields)
+
+    def _pvalue(self, u1, tie, n0, n1):
+        """p-value of U1 with the tie term (scipy's asymptotic method); ``n0``, ``n1`` ints or arrays."""
         n = n0 + n1
-        pooled = shift = None
-        if self.estimand == "shift" and order_statistic_backend() == "numba":
-            u1, tie, shift = _shift_test_sorted(y0, x1, self.ci_level)
-        else:
-            pooled = _PooledRanking(np.concatenate([x1, y0], axis=1), n1)
-            u1, tie = pooled.rank_sum1 - n1 * (n1 + 1) / 2.0, pooled.tie
         u0 = n0 * n1 - u1
         u = {"greater": u1, "less": u0}.get(self.alternative)
         if u is None:
@@ -490,8 +563,20 @@ class MannWhitney(Analysis):
         with np.errstate(divide="ignore", invalid="ignore"):
             z = num / s
         p = special.ndtr(-z) * (2.0 if self.alternative == "two-sided" else 1.0)
+        return np.clip(p, 0.0, 1.0)
+
+    def _dense(self, y0, y1):
+        """The batch statistics of dense arms ``y0`` (R, n0) and ``y1`` (R, n1)."""
+        x1 = y1 - self.null_value
+        n0, n1 = y0.shape[1], x1.shape[1]
+        pooled = shift = None
+        if self.estimand == "shift" and order_statistic_backend() == "numba":
+            u1, tie, shift = _shift_test_sorted(y0, x1, self.ci_level)
+        else:
+            pooled = _PooledRanking(np.concatenate([x1, y0], axis=1), n1)
+            u1, tie = pooled.rank_sum1 - n1 * (n1 + 1) / 2.0, pooled.tie
         fields = self._estimates(y0, x1, u1, pooled) if shift is None else self._shift_fields(*shift)
-        return BatchResult(pvalue=np.clip(p, 0.0, 1.0), **fields)
+        return BatchResult(pvalue=self._pvalue(u1, tie, n0, n1), **fields)
 
 
 # -- Wilcoxon signed rank ---------------------------------------------------------------------
@@ -546,10 +631,47 @@ class WilcoxonSignedRank(Analysis):
     def batch(self, batch):
         layout = self.batch_layout(batch)
         d = layout.y if layout.kind == "one_sample" else layout.y1 - layout.y0
-        if not layout.complete:  # complete cases (pairs), grouped by their observed count
+        compiled = order_statistic_backend() == "numba"   # ranks and pseudo-median by one kernel, row by row
+        if not layout.complete:  # complete cases (pairs)
             mask = layout.observed if layout.kind == "one_sample" else layout.pair_observed
+            if compiled:
+                few = np.count_nonzero(mask, axis=1) < 2
+                if not few.all():
+                    return hand_over(self, batch, _nan_rows(self._compiled(d, mask), few), few)
+            # grouped by their observed count
             return _by_counts(self, batch, [(d, mask)], self._dense)
+        if compiled and np.isfinite(d).all():
+            return self._compiled(d, None)
         return self._dense(d)
+
+    def _compiled(self, d, mask):
+        """The batch statistics by the compiled kernel: values ``d`` (R, W) with their observed mask
+        (None: every value); the same floats as :meth:`_dense` on each replicate's observed values."""
+        from . import _rank_kernels
+
+        xs, n = _sorted_observed(d - self.null_value, mask)
+        mm = n * (n + 1) // 2
+        kq, zq, k = _hl_rank_table(mm, np.sqrt(n * (n + 1) * (2 * n + 1) / 24.0), self.ci_level, n >= 1)
+        twice, tie, nz, est = _rank_kernels.rank_test_rows(xs, n, xs, n, "one", kq, zq)
+        nz = nz.astype(float)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            z = self._z(twice / 2.0, tie, nz, n)
+        est, lo, hi = _hl_from_table(est, k)
+        nv = self.null_value
+        return BatchResult(pvalue=p_from_z(z, self.alternative), estimate=est + nv, ci_low=lo + nv,
+                           ci_high=hi + nv)
+
+    def _z(self, r_plus, tie, nz, n):
+        """z statistic of the positive rank sum (zeros dropped), tie-corrected, with the continuity option."""
+        c = n - nz
+        mn = c * (c + 1) / 4.0
+        with np.errstate(divide="ignore", invalid="ignore"):
+            se = np.sqrt((c * (c + 1) * (2 * c + 1) - tie / 2.0) / 24.0)
+            z = (r_plus - mn) / se
+            if self.continuity:
+                sign = {"greater": 1.0, "less": -1.0}.get(self.alternative)
+                z = z - (np.sign(z) if sign is None else sign) * 0.5 / se
+        return z
 
     def _dense(self, d):
         """The batch statistics of dense values (or within-pair differences) ``d`` (R, n)."""
@@ -560,14 +682,7 @@ class WilcoxonSignedRank(Analysis):
         # zeros share the lowest ranks: dropping them lowers the other ranks by their count
         r_plus = np.where(x > 0, ranks - nz[:, None], 0.0).sum(axis=1)
         tie = tie - (nz**3 - nz)
-        c = x.shape[1] - nz
-        mn = c * (c + 1) / 4.0
-        with np.errstate(divide="ignore", invalid="ignore"):
-            se = np.sqrt((c * (c + 1) * (2 * c + 1) - tie / 2.0) / 24.0)
-            z = (r_plus - mn) / se
-            if self.continuity:
-                sign = {"greater": 1.0, "less": -1.0}.get(self.alternative)
-                z = z - (np.sign(z) if sign is None else sign) * 0.5 / se
+        z = self._z(r_plus, tie, nz, x.shape[1])
         est, lo, hi = pseudo_median(x, self.ci_level)
         nv = self.null_value
         return BatchResult(pvalue=p_from_z(z, self.alternative), estimate=est + nv, ci_low=lo + nv,
