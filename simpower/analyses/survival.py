@@ -24,6 +24,7 @@ import numpy as np
 from scipy import special
 
 from .._validation import Bool, Choice
+from ..errors import ParameterError
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
 from .numeric import p_from_z, wald
 
@@ -464,8 +465,6 @@ class Cox(Analysis):
                 "small_sample": None}
 
     def _check(self):
-        from ..errors import ParameterError
-
         if self.cov_type != "cluster":
             if self.test == "score":
                 raise ParameterError("`test` = 'score' is the cluster-robust score test: set `cov_type` = 'cluster' "
