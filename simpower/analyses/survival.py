@@ -370,7 +370,7 @@ def _cox_score_residuals(beta, t, d, a):
 
         L_i = delta_i (a_i - xbar(t_i)) - e_i sum_{t_j <= t_i} (d_j / S0_j) (a_i - xbar_j)
 
-    (Lin & Wei 1989; Therneau & Grambsch 2000, sec. 7.3 -- from memory): what statsmodels
+    (Lin & Wei 1989, JASA 84:1074-1078 -- from memory): what statsmodels
     ``PHReg.score_residuals`` computes for either ``ties`` (a row censored before the first event
     gets 0 here, NaN there). Their sum is the Breslow score at ``beta``; at 0 it is the log-rank
     ``U = O1 - E1``.
