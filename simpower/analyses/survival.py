@@ -595,8 +595,8 @@ class Cox(Analysis):
                 out["u0"][sl] = resid.sum(axis=1)
                 out["meat0"][sl] = _cluster_sums_squared(resid, c, n_codes)
         ok &= ~refused
-        factor = g / (g - 1.0) if self.small_sample else 1.0
-        with np.errstate(all="ignore"):
+        with np.errstate(all="ignore"):  # G < 2 (refused, handed over) would divide by 0
+            factor = g / (g - 1.0) if self.small_sample else 1.0
             se = np.sqrt(factor * out["meat"]) / out["info"]
             res = wald(np.where(ok, out["beta"], np.nan), np.where(ok, se, np.nan), self.alternative, self.ci_level)
             if self.test == "score":
