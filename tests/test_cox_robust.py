@@ -58,7 +58,7 @@ def _reference(r, ties):
 @pytest.mark.parametrize("ties", ["breslow", "efron"])
 @pytest.mark.parametrize("cv,resolution", [(0.0, None), (0.5, 0.25)])
 def test_robust_variance_is_statsmodels_sandwich(ties, cv, resolution):
-    b = _clustered(cv=cv, resolution=resolution).draw_batch(np.random.default_rng(1989), 30)
+    b = _clustered(cv=cv, resolution=resolution).draw_batch(np.random.default_rng(1989), 15)
     res = Cox(ties=ties, cov_type="cluster").batch(b)
     assert not res.trouble
     if resolution is not None and ties == "efron":  # tied event times: Efron's fit differs from Breslow's
@@ -146,7 +146,7 @@ def test_small_sample_factor_counts_the_clusters_in_the_fit():
 @pytest.mark.parametrize("cv,resolution", [(0.0, None), (0.5, 0.25)])
 def test_batch_equals_per_replicate_with_padding_and_missing_times(spec, cv, resolution):
     an = Cox(**spec)
-    b = _clustered(clusters=4, size=6, cv=cv, resolution=resolution).draw_batch(np.random.default_rng(5), 40)
+    b = _clustered(clusters=4, size=6, cv=cv, resolution=resolution).draw_batch(np.random.default_rng(5), 20)
     # 20% of the times missing (NaN): both paths leave those participants out
     time = np.array(b.per_rep["time"], float)
     time[np.random.default_rng(6).random(time.shape) < 0.2] = np.nan
