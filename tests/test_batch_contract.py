@@ -70,6 +70,12 @@ PROCESSES = {
         "outcome": {"type": "gamma", "mean": 2.0, "cv": 0.6}, "effect": 0.5,
         "missing": {"type": "dropout", "rate": 0.3, "mar_slope": 1.0, "intermittent": {"type": "mcar", "rate": 0.1}}}),
     "survival": lambda: sp.SurvivalTwoArm(n=12, median=1.0, hazard_ratio=0.6, follow_up=2.0),
+    # event times in clusters of unequal sizes (padding, arms and clusters per replicate), tied times
+    "survival_clusters": lambda: build("process", {
+        "type": "trial", "design": {"type": "clusters", "clusters": 4, "cluster_size": 5, "cluster_size_cv": 0.5,
+                                    "icc": 0.2},
+        "outcome": {"type": "time_to_event", "median": 1.0, "hazard_ratio": 0.6, "follow_up": 2.0,
+                    "time_resolution": 0.25}}),
     "ordinal_missing": lambda: build("process", {"type": "ordinal_two_arm", "n": 15, "p0": [0.2, 0.3, 0.3, 0.2],
                                                  "odds_ratio": 2.0, "missing": {"type": "mcar", "rate": 0.2}}),
 }
@@ -326,6 +332,11 @@ CASES = [
     ({"type": "ols", "cov_type": "cluster"}, "clusters_mnar", True),
     ({"type": "mann_whitney"}, "repeated_dropout", True),        # the two-arm view of the long table
     ({"type": "logrank"}, "survival", True),
+    # cluster-robust Cox (Lin-Wei sandwich; statsmodels PHReg fit(groups=) per replicate)
+    ({"type": "cox", "cov_type": "cluster"}, "survival_clusters", True),
+    ({"type": "cox", "cov_type": "cluster", "ties": "efron", "test": "score", "small_sample": True},
+     "survival_clusters", True),
+    ({"type": "cox"}, "survival_clusters", False),     # the model-based batch path needs arms shared by the replicates
     ({"type": "logrank", "alternative": "greater"}, "survival", True),
     ({"type": "ols"}, "two_arm", True),
     ({"type": "ancova", "cov_type": "HC3"}, "two_arm_baseline", True),

@@ -23,7 +23,8 @@ import warnings
 import numpy as np
 from scipy import special
 
-from .._validation import Choice
+from .._validation import Bool, Choice
+from ..errors import ParameterError
 from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
 from .numeric import p_from_z, wald
 
@@ -275,7 +276,7 @@ class LogRank(Analysis):
 def _cox_event_terms(time, event, arm, ties: str):
     """Per-event constants of the Cox partial likelihood with one binary covariate, over replicates.
 
-    Rows of ``time``, ``event`` (R, N) are replicates; ``arm`` (N,) is shared. Each row is sorted
+    Rows of ``time``, ``event`` (R, N) are replicates; ``arm`` (N,) is shared or (R, N) per replicate. Each row is sorted
     by time once; a run of equal times is one tie group with ``r0``, ``r1`` at risk (censored rows
     at that time included) and ``d0``, ``d1`` events in arms 0 and 1. The ``k``-th event of a
     group (k = 0 .. d - 1) contributes ``p_k = A e^b / (B + A e^b)`` to the expected number of
@@ -288,7 +289,8 @@ def _cox_event_terms(time, event, arm, ties: str):
     order = np.argsort(time, axis=1, kind="stable")
     t = np.take_along_axis(time, order, axis=1)
     d = np.take_along_axis(np.asarray(event, float), order, axis=1)
-    a = np.asarray(arm, float)[order]
+    a = np.asarray(arm, float)
+    a = a[order] if a.ndim == 1 else np.take_along_axis(a, order, axis=1)  # shared (N,) or per replicate
     start = np.ones((size, m), bool)
     start[:, 1:] = t[:, 1:] != t[:, :-1]
     label = (np.cumsum(start, axis=1) - 1 + m * np.arange(size)[:, None]).ravel()
@@ -358,6 +360,57 @@ def _cox_newton(q, w, d1, n1, n0, max_iter: int = _COX_MAX_ITER, tol: float = _C
     return beta, info, ok
 
 
+def _cox_score_residuals(beta, t, d, a):
+    """Score residuals of every row at ``beta`` (R,): Breslow's form, rows already sorted by time.
+
+    ``t``, ``d``, ``a`` (R, N): times sorted ascending within each row (rows taking no part at
+    ``-inf`` with no event, so before every risk set), events, arm. With ``e = exp(beta a)``, the
+    risk-set sums ``S0``, ``S1`` of ``e`` and ``e a`` over the rows with a time >= ``t_j`` (censored
+    rows at ``t_j`` included), ``xbar_j = S1 / S0`` and ``d_j`` events at ``t_j``, row i's residual is
+
+        L_i = delta_i (a_i - xbar(t_i)) - e_i sum_{t_j <= t_i} (d_j / S0_j) (a_i - xbar_j)
+
+    (Lin & Wei 1989, JASA 84:1074-1078 -- from memory): what statsmodels
+    ``PHReg.score_residuals`` computes for either ``ties`` (a row censored before the first event
+    gets 0 here, NaN there). Their sum is the Breslow score at ``beta``; at 0 it is the log-rank
+    ``U = O1 - E1``.
+    """
+    size, m = t.shape
+    start = np.ones((size, m), bool)
+    start[:, 1:] = t[:, 1:] != t[:, :-1]
+    e = np.exp(beta[:, None] * a)
+    s0 = np.cumsum(e[:, ::-1], axis=1)[:, ::-1]  # sum over this row and the later ones
+    s1 = np.cumsum((e * a)[:, ::-1], axis=1)[:, ::-1]
+    first = np.maximum.accumulate(np.where(start, np.arange(m), 0), axis=1)  # each row's tie group start
+    big0, big1 = np.take_along_axis(s0, first, axis=1), np.take_along_axis(s1, first, axis=1)
+    xbar = big1 / big0
+    label = (np.cumsum(start, axis=1) - 1 + m * np.arange(size)[:, None]).ravel()
+    dg = np.bincount(label, weights=d.ravel(), minlength=size * m)[label].reshape(size, m)
+    h = np.where(start & (dg > 0), dg / big0, 0.0)  # the hazard increment, once per tie group
+    h0, h1 = np.cumsum(h, axis=1), np.cumsum(h * xbar, axis=1)
+    return d * (a - xbar) - e * (a * h0 - h1)
+
+
+def _cluster_sums_squared(resid, codes, n_codes):
+    """``sum_g (sum_{i in g} resid_i)^2`` per replicate; ``codes`` (R, N) in 0 .. n_codes - 1."""
+    size = resid.shape[0]
+    label = (codes + n_codes * np.arange(size)[:, None]).ravel()
+    sums = np.bincount(label, weights=resid.ravel(), minlength=size * n_codes).reshape(size, n_codes)
+    return np.sum(sums**2, axis=1)
+
+
+def _cluster_codes(cluster, take):
+    """Cluster ids as codes 0 .. K - 1 (R, N), K, and the clusters with a row in the fit per replicate."""
+    cluster = np.asarray(cluster)
+    uniq, inv = np.unique(cluster, return_inverse=True)
+    codes = np.broadcast_to(inv.reshape(cluster.shape), take.shape)
+    k = uniq.size
+    size = take.shape[0]
+    label = (codes + k * np.arange(size)[:, None])[take]
+    seen = np.bincount(label, minlength=size * k).reshape(size, k) > 0
+    return codes, k, seen.sum(axis=1)
+
+
 class Cox(Analysis):
     """Cox proportional hazards regression on the arm (statsmodels ``PHReg``); Wald test.
 
@@ -378,35 +431,108 @@ class Cox(Analysis):
     estimate (decided exactly from the event counts, see :func:`_cox_newton`)
     or whose steps do not settle are handed to the per-replicate path, so
     their fields and trouble are the same as there.
+
+    Clustered data (``cov_type = 'cluster'``, grouping by the ``cluster``
+    column): the estimate is the same, its variance the robust sandwich of
+    Lin & Wei (1989), ``I^-1 (sum_g L_g^2) I^-1`` with ``I`` the observed
+    information and ``L_g`` the sum of the score residuals of cluster g at
+    the estimate (:func:`_cox_score_residuals`), which is what statsmodels
+    ``PHReg(...).fit(groups=cluster)`` computes (its ``robust_covariance``;
+    with ``ties = 'efron'`` it uses Efron's information and Breslow's score
+    residuals, and so does this option). ``small_sample = true`` multiplies
+    the robust variances by ``G / (G - 1)``, G the clusters with a
+    participant in the fit (common practice, as the CR1 factor of
+    cluster-robust regression). ``test = 'score'`` replaces the Wald p-value
+    by the robust score test at beta = 0: ``Z = U / sqrt(sum_g L_g(0)^2)``
+    with ``U = O1 - E1`` the log-rank numerator and ``L_g(0)`` the clusters'
+    summed score residuals at 0 (the log-rank test for clustered data; Lin &
+    Wei 1989), whatever ``ties``; the estimate, SE and CI stay the robust
+    Wald ones. The batch path (layout ``survival`` with a ``cluster``
+    column; arms and clusters shared or per replicate, padding and missing
+    times left out as the per-replicate path leaves them out) computes the
+    residuals for all replicates at once.
     """
 
     name = "cox"
     estimand_label = "log hazard ratio"
     null_hypothesis = "the hazard ratio (treatment vs control) is 1"
-    params = {"alternative": ALTERNATIVE, "ci_level": CI_LEVEL, "ties": Choice(("breslow", "efron"))}
-    defaults = {"alternative": "two-sided", "ci_level": 0.95, "ties": "breslow"}
+    # cov_type, test and small_sample are optional (unset = 'nonrobust', 'wald', false), so the specs,
+    # fingerprints and seeds of the analyses written before them stay the same
+    params = {"alternative": ALTERNATIVE, "ci_level": CI_LEVEL, "ties": Choice(("breslow", "efron")),
+              "cov_type": Choice(("nonrobust", "cluster"), optional=True),
+              "test": Choice(("wald", "score"), optional=True), "small_sample": Bool(optional=True)}
+    defaults = {"alternative": "two-sided", "ci_level": 0.95, "ties": "breslow", "cov_type": None, "test": None,
+                "small_sample": None}
+
+    def _check(self):
+        if self.cov_type != "cluster":
+            if self.test == "score":
+                raise ParameterError("`test` = 'score' is the cluster-robust score test: set `cov_type` = 'cluster' "
+                                     "(the model-based score test is the `logrank` analysis).")
+            if self.small_sample:
+                raise ParameterError("`small_sample` corrects the cluster-robust variance: set `cov_type` = "
+                                     "'cluster', or leave `small_sample` out.")
+
+    @property
+    def _robust(self) -> bool:
+        return self.cov_type == "cluster"
 
     def __call__(self, data):
         from statsmodels.duration.hazard_regression import PHReg
         from statsmodels.tools.sm_exceptions import PerfectSeparationWarning
 
         time, event, arm = survival_columns(data)
+        if self._robust:
+            cluster = _cluster_column(data)
         for a in (0, 1):
             if not np.any(event[arm == a] > 0):
                 warnings.warn(PerfectSeparationWarning(
                     f"no events in arm {a}: the log hazard ratio has no finite maximum partial likelihood estimate"))
                 break
+        if self._robust:
+            return self._robust_fit(time, event, arm, cluster)
         fit = PHReg(time, arm[:, None], status=event, ties=self.ties).fit()
         out = wald(float(fit.params[0]), float(fit.bse[0]), self.alternative, self.ci_level)
         return TestResult(**{k: float(v) for k, v in out.items()})
 
+    def _robust_fit(self, time, event, arm, cluster):
+        """The per-replicate path with ``cov_type = 'cluster'``: statsmodels ``PHReg.fit(groups=)``."""
+        from statsmodels.duration.hazard_regression import PHReg
+
+        g = np.unique(cluster).size
+        if g < 2:
+            raise ValueError(f"cox with cov_type = 'cluster' needs at least 2 clusters; got {g}")
+        factor = g / (g - 1.0) if self.small_sample else 1.0
+        # rows censored before the first event are in no risk set: PHReg leaves them out of the fit
+        # and gives them a NaN score residual (so a NaN robust variance); their residual is 0
+        keep = time >= time[event == 1].min() if np.any(event == 1) else np.ones(time.size, bool)
+        model = PHReg(time[keep], arm[keep][:, None], status=event[keep], ties=self.ties)
+        fit = model.fit(groups=cluster[keep])
+        se = math.sqrt(factor * float(fit.cov_params()[0, 0]))
+        out = {k: float(v) for k, v in wald(float(fit.params[0]), se, self.alternative, self.ci_level).items()}
+        if self.test == "score":
+            resid = model.score_residuals(np.zeros(1))[:, 0]
+            sums = np.bincount(np.unique(cluster[keep], return_inverse=True)[1], weights=resid)
+            with np.errstate(all="ignore"):
+                z = np.sum(resid) / np.sqrt(factor * np.sum(sums**2))
+            out["pvalue"] = float(p_from_z(z, self.alternative))
+        return TestResult(**out)
+
     layouts = ("survival",)
 
     def _supports(self, layout):
-        """No missing outcomes; both arms in a design shared by all replicates (padding rows are left out)."""
+        """No missing outcomes; both arms in a design shared by all replicates (padding rows are left out).
+
+        With ``cov_type = 'cluster'``: a ``cluster`` column and both arm labels (shared or per replicate;
+        padding and missing times are left out).
+        """
+        if self._robust:
+            return "cluster" in layout and layout.labels == (0, 1)
         return not layout.missing and "arm" in layout.shared and layout.labels == (0, 1)
 
     def batch(self, batch):
+        if self._robust:
+            return self._robust_batch(batch)
         layout = self.batch_layout(batch)
         arm = np.asarray(layout.shared["arm"])
         time, event, empty = absent_first(layout.time, layout.event, layout.present, arm)
@@ -429,3 +555,60 @@ class Cox(Analysis):
         res = BatchResult(**wald(np.where(ok, beta, np.nan), np.where(ok, se, np.nan),
                                  self.alternative, self.ci_level))
         return hand_over(self, batch, res, ~ok)
+
+    def _robust_batch(self, batch):
+        """The batch path with ``cov_type = 'cluster'`` (see the class docstring)."""
+        layout = self.batch_layout(batch)
+        time = np.asarray(layout.time, float)
+        event = np.asarray(layout.event)
+        arm = np.broadcast_to(np.asarray(layout.column("arm")), time.shape)
+        keep = ~np.isnan(time) if layout.present is None else layout.present & ~np.isnan(time)
+        with np.errstate(invalid="ignore"):
+            good = np.isfinite(time) & (time >= 0) & ((event == 0) | (event == 1))
+        # replicates the per-replicate path refuses (a bad time or event, an arm without a row, fewer
+        # than 2 clusters) go to it, as do those without a finite estimate
+        refused = np.any(keep & ~good, axis=1)
+        for label in (0, 1):
+            refused |= ~np.any(keep & (arm == label), axis=1)
+        take = keep & good & ~refused[:, None]
+        codes, n_codes, g = _cluster_codes(layout.column("cluster"), take)
+        refused |= g < 2
+        take &= ~refused[:, None]
+        out = {k: np.full(batch.size, np.nan) for k in ("beta", "info", "meat", "u0", "meat0")}
+        ok = np.zeros(batch.size, bool)
+        step = max(1, _BLOCK_CELLS // max(time.shape[1], 1))
+        for s in range(0, batch.size, step):
+            sl = slice(s, s + step)
+            tk = take[sl]
+            t = np.where(tk, time[sl], -np.inf)  # rows taking no part sort first, in no risk set
+            order = np.argsort(t, axis=1, kind="stable")
+            t = np.take_along_axis(t, order, axis=1)
+            d = np.take_along_axis(np.where(tk, event[sl], 0).astype(float), order, axis=1)
+            a = np.take_along_axis(np.where(tk, arm[sl], 0).astype(float), order, axis=1)
+            c = np.take_along_axis(codes[sl], order, axis=1)
+            beta, info, ok[sl] = _cox_newton(*_cox_event_terms(t, d, a, self.ties))
+            out["beta"][sl], out["info"][sl] = beta, info
+            fin = np.where(ok[sl], beta, 0.0)
+            out["meat"][sl] = _cluster_sums_squared(_cox_score_residuals(fin, t, d, a), c, n_codes)
+            if self.test == "score":
+                resid = _cox_score_residuals(np.zeros(t.shape[0]), t, d, a)
+                out["u0"][sl] = resid.sum(axis=1)
+                out["meat0"][sl] = _cluster_sums_squared(resid, c, n_codes)
+        ok &= ~refused
+        with np.errstate(all="ignore"):  # G < 2 (refused, handed over) would divide by 0
+            factor = g / (g - 1.0) if self.small_sample else 1.0
+            se = np.sqrt(factor * out["meat"]) / out["info"]
+            res = wald(np.where(ok, out["beta"], np.nan), np.where(ok, se, np.nan), self.alternative, self.ci_level)
+            if self.test == "score":
+                res["pvalue"] = np.where(ok, p_from_z(out["u0"] / np.sqrt(factor * out["meat0"]), self.alternative),
+                                         np.nan)
+        return hand_over(self, batch, BatchResult(**res), ~ok)
+
+
+def _cluster_column(data):
+    """The ``cluster`` ids of the rows :func:`survival_columns` keeps (those with a time)."""
+    if "cluster" not in data:
+        raise ValueError("cox with cov_type = 'cluster' needs a 'cluster' column (the cluster ids)")
+    time = np.asarray(data["time"], float)
+    cluster = np.asarray(data["cluster"])
+    return cluster[~np.isnan(time)]
