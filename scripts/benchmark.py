@@ -88,12 +88,6 @@ e. peak memory (RSS) of a whole t-test run in a fresh subprocess for growing
    default run (e1: records spooled to disk above 25,000 replicates) and
    ``keep_records=False`` (e2). Target: flat in reps, taken as under 4 bytes
    per replicate.
-e. peak memory (RSS) of a whole t-test run in a fresh subprocess for growing
-   reps: the RSS the run adds (peak during the run minus RSS before it), and
-   the bytes added per extra replicate (shown in the ratio column), for the
-   default run (e1: records spooled to disk above 25,000 replicates) and
-   ``keep_records=False`` (e2). Target: flat in reps, taken as under 4 bytes
-   per replicate.
 h. random-intercept GLMM (binary, logit link, adaptive Gauss-Hermite quadrature with 10 nodes),
    10 + 10 clusters of 20, complete (h1) and with 20% of outcomes missing (h2): the batch path
    (Newton across replicates) through ``simpower.run`` against the analysis's own per-replicate
@@ -101,6 +95,33 @@ h. random-intercept GLMM (binary, logit link, adaptive Gauss-Hermite quadrature 
    tables drawn before timing. Each row checks, on the loop's replicates, that the estimates
    agree (largest relative difference reported, replicates without fit trouble) and the
    decisions at 0.05 are identical. Target >= 50 x.
+r. permutation_test and bootstrap_ci (percentile, BCa), 1999 resamples, 50 per arm: the batch path through
+   ``simpower.run`` against the loop of ``scipy.stats.permutation_test`` / ``bootstrap`` seeded as the
+   analysis seeds each replicate, so the answers are identical (checked). Reproducing scipy's draws bounds
+   the speed: r1c-r3c time numpy drawing those resampling indices alone (no statistic) against the same
+   scipy loop, the ceiling of any path that gives scipy's answers. Target >= 50 x.
+f, p, v, y, z. the analyses the rows above left out, each through ``simpower.run`` (one job, serial) against
+   the plain per-replicate loop a user writes, on tables drawn before timing, complete and with 20% MCAR
+   outcomes (suffix ``m``); interleaved rounds, median rates. Each row checks on the loop's replicates that
+   the decisions at 0.05 agree (>= 99.9%; 99.5% against statsmodels' iterative fits, as x2) and the
+   estimates (1e-6 relative; 1e-4 absolute for mixed models, on the fits statsmodels did not warn about).
+   Where the engine has no batch path for a case it takes the per-replicate path and the note says so.
+   f: two_proportions and dichotomised (cut at 2 of an ordinal outcome) vs statsmodels
+   ``proportions_ztest`` on the observed counts; posterior_probability, beta-binomial (``integrate.quad``
+   of the two ``stats.beta`` posteriors) and normal (the conjugate update with ``stats.norm``).
+   p: anova_f vs ``scipy.stats.f_oneway``; dunnett vs ``scipy.stats.dunnett`` (3 arms of 60), whose
+   p-values come from randomised quasi-Monte Carlo (``multivariate_t.cdf``, abs. tolerance 1e-5): library
+   p-values within 1e-4 of 0.05 are left out of the decision check and counted in the note.
+   v: final_visit_t (4 visits, 100 per arm) and cluster_means_t (10 + 10 clusters of 20) vs
+   ``ttest_ind`` on the last visit's observed values / the observed cluster means; crossover_tost (log
+   scale, 0.80-1.25) vs two one-sided ``ttest_ind`` on the period differences; crossover_t and
+   crossover_mixed without dropout (v4, v5; row x has 10% dropout); mixed_model, sw_mixed and cox with 20%
+   MCAR outcomes (v6m-v8m) vs statsmodels ``MixedLM`` / ``PHReg``.
+   y: group_sequential with z-test looks (100 per arm, 3 looks, O'Brien-Fleming-type spending) vs a loop
+   computing each look's z and its p-value with ``scipy.stats.norm`` against the same nominal levels.
+   z: the analyses of row m on the same processes without missingness (z01-z14), same library loops.
+   ``COVERAGE`` (below ``ROWS``) maps every registered analysis to its rows; tests/test_benchmark_coverage.py
+   fails when a registered analysis has none. Target >= 50 x.
 """
 
 from __future__ import annotations
