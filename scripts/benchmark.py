@@ -811,7 +811,6 @@ def bench_resampling(quick, repeats):
         sc = sp.Scenario(proc, an)
         res = sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False)
         assert res.paths[an.name] == "batch"
-        ours = best_rate(lambda: sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False), reps, repeats)
         ref = np.empty((loop, 3))
         if an.name == "permutation_test":
             def library_loop():
@@ -827,7 +826,6 @@ def bench_resampling(quick, repeats):
                                         n_resamples=1999, vectorized=True, method=an.method, rng=data_rng(0, y0, y1))
                     ref[i] = np.nan, r.confidence_interval.low, r.confidence_interval.high
 
-        theirs = best_rate(library_loop, loop, repeats)
         buf = np.empty((1999, 100))
 
         def draws_only():  # the random numbers scipy draws per replicate, nothing else: the ceiling
@@ -840,12 +838,16 @@ def bench_resampling(quick, repeats):
                     rng.integers(0, 50, (1999, 50))
                     rng.integers(0, 50, (1999, 50))
 
-        ceiling = best_rate(draws_only, loop, repeats)
+        # batch, scipy loop and the draws alone timed in interleaved rounds (median), so all three bear the same load
+        t_ours, t_theirs, t_draws = _medians([lambda: sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False),
+                                              library_loop, draws_only], max(repeats, 3))
+        ours, theirs, ceiling = reps / t_ours, loop / t_theirs, loop / t_draws
         out = an.batch(first)
         got = (np.column_stack([out.pvalue, out.estimate, np.full(loop, np.nan)]) if an.name == "permutation_test"
                else np.column_stack([np.full(loop, np.nan), out.ci_low, out.ci_high]))
         ok = bool(np.array_equal(got, ref, equal_nan=True))
-        note = (f"{reps} reps through simpower.run (batch, chunks of {BATCH_CHUNK}), scipy loop {loop}; on the "
+        note = (f"{reps} reps through simpower.run (batch, chunks of {BATCH_CHUNK}), scipy loop {loop}, median of "
+                f"{max(repeats, 3)} interleaved rounds (batch, loop, draws alone); on the "
                 f"loop's replicates the {'p-values and estimates' if an.name == 'permutation_test' else 'CIs'} "
                 f"are {'identical' if ok else 'DIFFERENT'}; power {res.power:.3f}; the same random draws alone "
                 f"(each replicate's own stream, as scipy draws them) run at {ceiling:,.0f}/s, a ceiling of "
@@ -1395,10 +1397,17 @@ def _answers(an, batch):
     return np.array([r.pvalue for r in res], float), np.array(est, float), "per-replicate"
 
 
-def _timed(fn):
-    t0 = time.perf_counter()
-    fn()
-    return time.perf_counter() - t0
+def _medians(fns, rounds):
+    """Median seconds of each of ``fns`` over ``rounds`` interleaved rounds (each round calls every one once)."""
+    import statistics
+
+    times = [[] for _ in fns]
+    for _ in range(rounds):
+        for fn, t in zip(fns, times):
+            t0 = time.perf_counter()
+            fn()
+            t.append(time.perf_counter() - t0)
+    return [statistics.median(t) for t in times]
 
 
 def _gap_rows(cases, reps, rounds, target=50.0):
@@ -1439,10 +1448,10 @@ def _gap_rows(cases, reps, rounds, target=50.0):
         def engine():
             res["r"] = sp.run(sc, reps=n_engine, **run)
 
-        t_engine, t_loop = _interleaved(engine, library_loop, rounds)
         # what bounds a fast loop's ratio: drawing the engine's data alone, in its chunk sizes (no analysis)
-        t_draw = min(_timed(lambda: [proc.draw_batch(np.random.default_rng(1), n) for n in chunks(n_engine)])
-                     for _ in range(rounds))
+        t_engine, t_loop, t_draw = _medians(
+            [engine, library_loop, lambda: [proc.draw_batch(np.random.default_rng(1), n) for n in chunks(n_engine)]],
+            rounds)
         p_ours, est_ours, checked_path = _answers(an, batch)
         p_lib = np.array([r[0] for r in ref], float)
         band = case.get("band", 0.0)
