@@ -1413,8 +1413,8 @@ def _medians(fns, rounds):
 def _gap_rows(cases, reps, rounds, target=50.0):
     """One row per case: ``simpower.run`` (one job, serial) against the plain library loop on tables drawn
     before timing, interleaved rounds, median times. A case is a dict with ``key``, ``label``, ``process``,
-    ``analysis``, ``loop`` (its size), ``lib`` (table -> (p-value, estimate or None[, whether the library's fit ran clean,
-    i.e. without warnings: estimates are compared on clean fits only, as row b does])) and optionally
+    ``analysis``, ``loop`` (its size), ``lib`` (table -> (p-value, estimate or None[, whether the library's fit
+    ran clean, i.e. without warnings: estimates are compared on clean fits only, as row b does])) and optionally
     ``band`` (library p-values within ``band`` of 0.05 may decide otherwise: a library whose p-value is
     itself an approximation, e.g. scipy's randomised quasi-Monte Carlo in ``dunnett``), ``est_tol``
     (relative, default 1e-6; absolute with ``est_abs``), ``est_map`` (maps our estimate to the library's
@@ -1716,7 +1716,8 @@ def bench_visits_clusters(quick, repeats):
         dict(key="v5", label="crossover_mixed (complete): vs statsmodels MixedLM", process=build("process", xo),
              analysis=build("analysis", {"type": "crossover_mixed", "scale": "log", "df": "wald"}), loop=fits,
              lib=cross_mixed, est_map=np.log, est_tol=1e-4, est_abs=True, min_agree=0.995),
-        dict(key="v6m", label="mixed_model (20% MCAR): vs statsmodels MixedLM", process=build("process", {**ct, **mcar}),
+        dict(key="v6m", label="mixed_model (20% MCAR): vs statsmodels MixedLM",
+             process=build("process", {**ct, **mcar}),
              analysis=build("analysis", {"type": "mixed_model"}), loop=fits, lib=mixed, est_tol=1e-4, est_abs=True,
              min_agree=0.995),
         dict(key="v7m", label="sw_mixed (20% MCAR): vs statsmodels MixedLM", process=build("process", {**sw, **mcar}),
