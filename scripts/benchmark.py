@@ -106,12 +106,6 @@ e. peak memory (RSS) of a whole t-test run in a fresh subprocess for growing
    default run (e1: records spooled to disk above 25,000 replicates) and
    ``keep_records=False`` (e2). Target: flat in reps, taken as under 4 bytes
    per replicate.
-e. peak memory (RSS) of a whole t-test run in a fresh subprocess for growing
-   reps: the RSS the run adds (peak during the run minus RSS before it), and
-   the bytes added per extra replicate (shown in the ratio column), for the
-   default run (e1: records spooled to disk above 25,000 replicates) and
-   ``keep_records=False`` (e2). Target: flat in reps, taken as under 4 bytes
-   per replicate.
 h. random-intercept GLMM (binary, logit link, adaptive Gauss-Hermite quadrature with 10 nodes),
    10 + 10 clusters of 20, complete (h1) and with 20% of outcomes missing (h2): the batch path
    (Newton across replicates) through ``simpower.run`` against the analysis's own per-replicate
@@ -119,6 +113,35 @@ h. random-intercept GLMM (binary, logit link, adaptive Gauss-Hermite quadrature 
    tables drawn before timing. Each row checks, on the loop's replicates, that the estimates
    agree (largest relative difference reported, replicates without fit trouble) and the
    decisions at 0.05 are identical. Target >= 50 x.
+r. permutation_test and bootstrap_ci (percentile, BCa), 1999 resamples, 50 per arm: the batch path through
+   ``simpower.run`` against the loop of ``scipy.stats.permutation_test`` / ``bootstrap`` seeded as the
+   analysis seeds each replicate, so the answers are identical (checked). Reproducing scipy's draws bounds
+   the speed: r1c-r3c time numpy drawing those resampling indices alone (no statistic) against the same
+   scipy loop, the ceiling of any path that gives scipy's answers. Target >= 50 x.
+f, p, v, y, z. the analyses the rows above left out, each through ``simpower.run`` (one job, serial) against
+   the plain per-replicate loop a user writes, on tables drawn before timing, complete and with 20% MCAR
+   outcomes (suffix ``m``); interleaved rounds, median rates. Each row checks on the loop's replicates that
+   the decisions at 0.05 agree (>= 99.9%; 99.5% against statsmodels' iterative fits, as x2) and the
+   estimates (1e-6 relative; 1e-4 absolute for mixed models, on the fits statsmodels did not warn about).
+   Where the engine has no batch path for a case it takes the per-replicate path and the note says so.
+   Each note also gives the rate of drawing the engine's data alone (its chunk sizes, no analysis): the
+   ceiling of the ratio against a cheap loop.
+   f: two_proportions and dichotomised (cut at 2 of an ordinal outcome) vs statsmodels
+   ``proportions_ztest`` on the observed counts; posterior_probability, beta-binomial (``integrate.quad``
+   of the two ``stats.beta`` posteriors) and normal (the conjugate update with ``stats.norm``).
+   p: anova_f vs ``scipy.stats.f_oneway``; dunnett vs ``scipy.stats.dunnett`` (3 arms of 60), whose
+   p-values come from randomised quasi-Monte Carlo (``multivariate_t.cdf``, abs. tolerance 1e-5): library
+   p-values within 1e-4 of 0.05 are left out of the decision check and counted in the note.
+   v: final_visit_t (4 visits, 100 per arm) and cluster_means_t (10 + 10 clusters of 20) vs
+   ``ttest_ind`` on the last visit's observed values / the observed cluster means; crossover_tost (log
+   scale, 0.80-1.25) vs two one-sided ``ttest_ind`` on the period differences; crossover_t and
+   crossover_mixed without dropout (v4, v5; row x has 10% dropout); mixed_model, sw_mixed and cox with 20%
+   MCAR outcomes (v6m-v8m) vs statsmodels ``MixedLM`` / ``PHReg``.
+   y: group_sequential with z-test looks (100 per arm, 3 looks, O'Brien-Fleming-type spending) vs a loop
+   computing each look's z and its p-value with ``scipy.stats.norm`` against the same nominal levels.
+   z: the analyses of row m on the same processes without missingness (z01-z14), same library loops.
+   ``COVERAGE`` (below ``ROWS``) maps every registered analysis to its rows; tests/test_benchmark_coverage.py
+   fails when a registered analysis has none. Target >= 50 x.
 """
 
 from __future__ import annotations
@@ -179,6 +202,17 @@ SIZES = {
     "u_loop": (20, 200),
     "w_reps": (4_000, 40_000),
     "w_loop": (200, 2_000),
+    "f_reps": (4_000, 40_000),
+    "f_loop": (200, 2_000),
+    "p_reps": (4_000, 40_000),
+    "p_loop": (200, 2_000),
+    "v_reps": (2_000, 20_000),
+    "v_loop": (200, 2_000),
+    "v_fits": (20, 200),
+    "y_reps": (4_000, 40_000),
+    "y_loop": (200, 2_000),
+    "z_reps": (4_000, 40_000),
+    "z_loop": (200, 2_000),
 }
 
 
@@ -799,7 +833,6 @@ def bench_resampling(quick, repeats):
         sc = sp.Scenario(proc, an)
         res = sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False)
         assert res.paths[an.name] == "batch"
-        ours = best_rate(lambda: sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False), reps, repeats)
         ref = np.empty((loop, 3))
         if an.name == "permutation_test":
             def library_loop():
@@ -815,7 +848,6 @@ def bench_resampling(quick, repeats):
                                         n_resamples=1999, vectorized=True, method=an.method, rng=data_rng(0, y0, y1))
                     ref[i] = np.nan, r.confidence_interval.low, r.confidence_interval.high
 
-        theirs = best_rate(library_loop, loop, repeats)
         buf = np.empty((1999, 100))
 
         def draws_only():  # the random numbers scipy draws per replicate, nothing else: the ceiling
@@ -828,12 +860,16 @@ def bench_resampling(quick, repeats):
                     rng.integers(0, 50, (1999, 50))
                     rng.integers(0, 50, (1999, 50))
 
-        ceiling = best_rate(draws_only, loop, repeats)
+        # batch, scipy loop and the draws alone timed in interleaved rounds (median), so all three bear the same load
+        t_ours, t_theirs, t_draws = _medians([lambda: sp.run(sc, reps=reps, seed=1, n_jobs=1, progress=False),
+                                              library_loop, draws_only], max(repeats, 3))
+        ours, theirs, ceiling = reps / t_ours, loop / t_theirs, loop / t_draws
         out = an.batch(first)
         got = (np.column_stack([out.pvalue, out.estimate, np.full(loop, np.nan)]) if an.name == "permutation_test"
                else np.column_stack([np.full(loop, np.nan), out.ci_low, out.ci_high]))
         ok = bool(np.array_equal(got, ref, equal_nan=True))
-        note = (f"{reps} reps through simpower.run (batch, chunks of {BATCH_CHUNK}), scipy loop {loop}; on the "
+        note = (f"{reps} reps through simpower.run (batch, chunks of {BATCH_CHUNK}), scipy loop {loop}, median of "
+                f"{max(repeats, 3)} interleaved rounds (batch, loop, draws alone); on the "
                 f"loop's replicates the {'p-values and estimates' if an.name == 'permutation_test' else 'CIs'} "
                 f"are {'identical' if ok else 'DIFFERENT'}; power {res.power:.3f}; the same random draws alone "
                 f"(each replicate's own stream, as scipy draws them) run at {ceiling:,.0f}/s, a ceiling of "
@@ -841,6 +877,11 @@ def bench_resampling(quick, repeats):
         r = row(key, f"{label}: batch vs scipy loop", ours, theirs, 50.0, note=note, answers_agree=ok)
         r["meets"] = bool(r["meets"] and ok)
         rows.append(r)
+        # the bound as a row of its own: no path that gives scipy's answers can beat drawing scipy's numbers
+        rows.append(row(f"{key}c", f"{key}'s ceiling: numpy draws alone vs scipy loop", ceiling, theirs, None,
+                        note=(f"numpy alone drawing the resampling indices scipy draws per replicate (its own "
+                              f"stream, same calls and sizes), no statistic: {ceiling:,.0f}/s against the scipy "
+                              f"loop's {theirs:,.0f}/s; the batch path runs at {ours / ceiling:.0%} of it")))
     return rows
 
 
@@ -1504,11 +1545,458 @@ def bench_rank_tests(quick, repeats):
     return rows
 
 
+
+
+# -- (f, p, v, y, z) the analyses the rows above leave out: engine vs the plain library loop -----------
+def _answers(an, batch):
+    """The analysis's answers on ``batch``: its batch path where it has one for this batch, else its
+    per-replicate path replicate by replicate (p-value and estimate arrays, and which path)."""
+    from simpower.analyses.base import as_batch_result, as_test_result
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        if an.supports_batch(batch):
+            out = as_batch_result(an.batch(batch))
+            est = out.estimate if out.estimate is not None else np.full(batch.size, np.nan)
+            return np.asarray(out.pvalue, float), np.asarray(est, float), "batch"
+        res = [as_test_result(an(batch.replicate(i))) for i in range(batch.size)]
+    est = [np.nan if r.estimate is None else r.estimate for r in res]
+    return np.array([r.pvalue for r in res], float), np.array(est, float), "per-replicate"
+
+
+def _medians(fns, rounds):
+    """Median seconds of each of ``fns`` over ``rounds`` interleaved rounds (each round calls every one once)."""
+    import statistics
+
+    times = [[] for _ in fns]
+    for _ in range(rounds):
+        for fn, t in zip(fns, times):
+            t0 = time.perf_counter()
+            fn()
+            t.append(time.perf_counter() - t0)
+    return [statistics.median(t) for t in times]
+
+
+def _gap_rows(cases, reps, rounds, target=50.0):
+    """One row per case: ``simpower.run`` (one job, serial) against the plain library loop on tables drawn
+    before timing, interleaved rounds, median times. A case is a dict with ``key``, ``label``, ``process``,
+    ``analysis``, ``loop`` (its size), ``lib`` (table -> (p-value, estimate or None[, whether the library's fit
+    ran clean, i.e. without warnings: estimates are compared on clean fits only, as row b does])) and optionally
+    ``band`` (library p-values within ``band`` of 0.05 may decide otherwise: a library whose p-value is
+    itself an approximation, e.g. scipy's randomised quasi-Monte Carlo in ``dunnett``), ``est_tol``
+    (relative, default 1e-6; absolute with ``est_abs``), ``est_map`` (maps our estimate to the library's
+    scale) and ``min_agree`` (default 0.999; 0.995 where the library stops an iterative fit at its own
+    default tolerance, as in row x2).
+
+    On the loop's replicates the decisions at 0.05 must agree on >= ``min_agree`` (outside ``band``) and the
+    estimates to ``est_tol``. When the engine has no batch path for the case (it then takes the
+    per-replicate path), the engine runs as many replicates as the loop and the note says so."""
+    run = dict(seed=1, n_jobs=1, progress=False, backend="serial")
+    rows = []
+    for case in cases:
+        key, label, proc, an, loop, lib = (case[k] for k in ("key", "label", "process", "analysis", "loop", "lib"))
+        sc = sp.Scenario(proc, an)
+        first = sp.run(sc, reps=min(reps, 200), **run)
+        path = first.paths[sc.primary]
+        n_engine = reps if path == "batch" else loop
+        batch = proc.draw_batch(np.random.default_rng(7), loop)
+        tables = [batch.replicate(i) for i in range(loop)]
+        ref = []
+
+        def library_loop():
+            ref.clear()
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                for tab in tables:
+                    ref.append(lib(tab))
+
+        res = {}
+
+        def engine():
+            res["r"] = sp.run(sc, reps=n_engine, **run)
+
+        # what bounds a fast loop's ratio: drawing the engine's data alone, in its chunk sizes (no analysis)
+        t_engine, t_loop, t_draw = _medians(
+            [engine, library_loop, lambda: [proc.draw_batch(np.random.default_rng(1), n) for n in chunks(n_engine)]],
+            rounds)
+        p_ours, est_ours, checked_path = _answers(an, batch)
+        p_lib = np.array([r[0] for r in ref], float)
+        band = case.get("band", 0.0)
+        outside = ~(np.abs(p_lib - 0.05) < band)
+        agree = (p_ours <= 0.05) == (p_lib <= 0.05)
+        same = float(np.mean(agree[outside]))
+        near = int(np.sum(~agree & ~outside))
+        fin = np.isfinite(p_lib) & np.isfinite(p_ours)
+        d_p = float(np.max(np.abs(p_ours[fin] - p_lib[fin]))) if fin.any() else math.nan
+        tol = case.get("est_tol", 1e-6)
+        if ref[0][1] is not None:
+            est_lib = np.array([r[1] for r in ref], float)
+            mine = case.get("est_map", lambda v: v)(est_ours)
+            clean = np.array([len(r) < 3 or bool(r[2]) for r in ref])  # a third item: the library's fit was clean
+            fe = np.isfinite(est_lib) & np.isfinite(mine) & clean
+            if case.get("est_abs"):
+                d_est = float(np.max(np.abs(mine[fe] - est_lib[fe])))
+                est_note = f"max |estimate difference| {d_est:.1e} (outcome SD 1)"
+            if not clean.all():
+                est_note += f" on the {int(fe.sum())} fits the library did not warn about"
+            else:
+                d_est = float(np.max(np.abs(mine[fe] - est_lib[fe]) / np.maximum(np.abs(est_lib[fe]), 1e-3)))
+                est_note = f"max rel. estimate difference {d_est:.1e}"
+        else:
+            d_est, est_note = None, "no library estimate (decisions only)"
+        ok = same >= case.get("min_agree", 0.999) and (d_est is None or d_est < tol)
+        band_note = (f" ({int((~outside).sum())} library p-values within {band:g} of 0.05 left out of the "
+                     f"decision check, {near} of them decided otherwise)" if band else "")
+        path_note = ("" if path == "batch" else
+                     f"; the engine has no batch path here and took the {path} path ({n_engine} reps)")
+        draw_rate = n_engine / t_draw
+        note = (f"{n_engine} reps, loop {loop}, median of {rounds} interleaved rounds; power "
+                f"{res['r'].power:.3f}{path_note}; drawing the data alone runs at {draw_rate:,.0f}/s, a ceiling "
+                f"of {draw_rate * t_loop / loop:.3g} x (the engine reaches {n_engine / t_engine / draw_rate:.0%} "
+                f"of it); on the loop's replicates ({checked_path} path): same decision "
+                f"{same:.2%}{band_note}, max |p-value difference| {d_p:.1e}, {est_note}; "
+                f"{'answers agree' if ok else 'ANSWERS DIFFER'}")
+        out = row(key, label, n_engine / t_engine, loop / t_loop, target, note=note, decision_agreement=same,
+                  max_abs_pvalue_difference=d_p, max_rel_estimate_difference=d_est, answers_agree=ok, path=path,
+                  draw_only_per_s=draw_rate)
+        out["meets"] = bool(out["meets"] and ok)
+        rows.append(out)
+    return rows
+
+
+def _sizes(key, quick):
+    return SIZES[key][0 if quick else 1]
+
+
+def _arms_observed(tab, y=None):
+    y = tab["y"] if y is None else y
+    ok = np.isfinite(y)
+    return y[ok & (tab["arm"] == 0)], y[ok & (tab["arm"] == 1)]
+
+
+def bench_binary_bayes(quick, repeats):
+    """two_proportions, dichotomised and posterior_probability (beta-binomial and normal), 100 per arm, complete
+    and 20% MCAR, against the loop a user writes: statsmodels ``proportions_ztest`` on the observed counts; the
+    same on the outcomes cut at 2; a scipy ``integrate.quad`` of the two Beta posteriors (``stats.beta``) and the
+    conjugate normal posterior with ``stats.norm``, per replicate."""
+    from scipy import integrate, stats
+    from statsmodels.stats.proportion import proportions_ztest
+
+    from simpower.registry import build
+
+    reps, loop = _sizes("f_reps", quick), _sizes("f_loop", quick)
+
+    def ztest(y0, y1):
+        z, p = proportions_ztest([y1.sum(), y0.sum()], [y1.size, y0.size])  # pooled SE under H0
+        return p, y1.mean() - y0.mean()
+
+    def two_props(tab):
+        return ztest(*_arms_observed(tab))
+
+    def dichot(tab):
+        y0, y1 = _arms_observed(tab)
+        return ztest((y0 >= 2).astype(float), (y1 >= 2).astype(float))
+
+    beta_an = build("analysis", {"type": "posterior_probability", "model": "beta_binomial", "eta": 0.95})
+    normal_an = build("analysis", {"type": "posterior_probability", "model": "normal", "eta": 0.975,
+                                   "prior_mean": 0.0, "prior_sd": 1.0})
+
+    def beta_post(tab):  # P(p1 - p0 > 0 | data), uniform priors: the integral a user writes
+        y0, y1 = _arms_observed(tab)
+        a0, b0, a1, b1 = 1 + y0.sum(), 1 + y0.size - y0.sum(), 1 + y1.sum(), 1 + y1.size - y1.sum()
+        prob = integrate.quad(lambda p: stats.beta.pdf(p, a0, b0) * stats.beta.sf(p, a1, b1), 0.0, 1.0)[0]
+        return (0.0 if prob > 0.95 else 1.0), a1 / (a1 + b1) - a0 / (a0 + b0)
+
+    def normal_post(tab):  # conjugate normal update of the mean difference (pooled SD plugged in), prior N(0, 1)
+        y0, y1 = _arms_observed(tab)
+        d = y1.mean() - y0.mean()
+        s2 = (((y0 - y0.mean()) ** 2).sum() + ((y1 - y1.mean()) ** 2).sum()) / (y0.size + y1.size - 2)
+        v = 1.0 / (1.0 + 1.0 / (s2 * (1 / y0.size + 1 / y1.size)))
+        mean = v * d / (s2 * (1 / y0.size + 1 / y1.size))
+        prob = stats.norm.sf(0.0, loc=mean, scale=math.sqrt(v))
+        return (0.0 if prob > 0.975 else 1.0), mean
+
+    mcar = {"type": "mcar", "rate": 0.2}
+    cases = []
+    for sfx, what, extra in (("", "complete", {}), ("m", "20% MCAR", {"missing": mcar})):
+        binary = build("process", {"type": "binary_two_arm", "n": 100, "p0": 0.3, "odds_ratio": 1.8, **extra})
+        ordinal = build("process", {"type": "ordinal_two_arm", "n": 100, "p0": [0.2, 0.3, 0.3, 0.2],
+                                    "odds_ratio": 1.6, **extra})
+        normal = build("process", {"type": "normal_two_arm", "n": 100, "effect": 0.3, **extra})
+        cases += [
+            dict(key=f"f1{sfx}", label=f"two_proportions ({what}): vs proportions_ztest", process=binary,
+                 analysis=build("analysis", {"type": "two_proportions"}), loop=loop, lib=two_props),
+            dict(key=f"f2{sfx}", label=f"dichotomised at 2 ({what}): vs proportions_ztest", process=ordinal,
+                 analysis=build("analysis", {"type": "dichotomised", "cut": 2}), loop=loop, lib=dichot),
+            dict(key=f"f3{sfx}", label=f"posterior prob., beta ({what}): vs quad of beta", process=binary,
+                 analysis=beta_an, loop=max(loop // 5, 20), lib=beta_post),
+            dict(key=f"f4{sfx}", label=f"posterior prob., normal ({what}): vs stats.norm", process=normal,
+                 analysis=normal_an, loop=loop, lib=normal_post),
+        ]
+    return _gap_rows(cases, reps, max(repeats, 3))
+
+
+def bench_multi_arm(quick, repeats):
+    """anova_f and dunnett, 3 arms of 60 (effects 0, 0.3, 0.5), complete and 20% MCAR, against
+    ``scipy.stats.f_oneway`` and ``scipy.stats.dunnett`` (smallest adjusted p-value) on the observed values.
+
+    scipy's ``dunnett`` evaluates the multivariate t by randomised quasi-Monte Carlo (``multivariate_t.cdf``,
+    absolute error tolerance 1e-5 by default), so its p-values carry that error; library p-values within 1e-4
+    of 0.05 are left out of the decision check (the note counts them). simpower evaluates the same probability
+    by deterministic quadrature."""
+    from scipy import stats
+
+    from simpower.registry import build
+
+    reps, loop = _sizes("p_reps", quick), _sizes("p_loop", quick)
+
+    def groups(tab):
+        ok = np.isfinite(tab["y"])
+        return [tab["y"][ok & (tab["arm"] == k)] for k in range(3)]
+
+    def anova(tab):
+        return stats.f_oneway(*groups(tab)).pvalue, None
+
+    def dunnett(tab):
+        g = groups(tab)
+        r = stats.dunnett(g[1], g[2], control=g[0], rng=np.random.default_rng(0))
+        return float(np.min(r.pvalue)), g[1].mean() - g[0].mean()
+
+    cases = []
+    for sfx, what, extra in (("", "complete", {}), ("m", "20% MCAR", {"missing": {"type": "mcar", "rate": 0.2}})):
+        proc = build("process", {"type": "multi_arm", "effects": [0.0, 0.3, 0.5], "n": 60, **extra})
+        cases += [
+            dict(key=f"p1{sfx}", label=f"anova_f ({what}): vs scipy f_oneway", process=proc,
+                 analysis=build("analysis", {"type": "anova_f"}), loop=loop, lib=anova),
+            dict(key=f"p2{sfx}", label=f"dunnett ({what}): vs scipy dunnett (QMC)", process=proc,
+                 analysis=build("analysis", {"type": "dunnett"}), loop=max(loop // 10, 20), lib=dunnett,
+                 band=1e-4),
+        ]
+    return _gap_rows(cases, reps, max(repeats, 3))
+
+
+def bench_visits_clusters(quick, repeats):
+    """final_visit_t, cluster_means_t, crossover_tost, crossover_t / crossover_mixed without dropout, and
+    mixed_model, sw_mixed and cox with 20% MCAR outcomes, against the plain library loop (see the module notes)."""
+    import statsmodels.api as sm
+    from scipy import stats
+
+    from simpower.analyses.crossover import periods
+    from simpower.registry import build
+
+    reps, loop, fits = _sizes("v_reps", quick), _sizes("v_loop", quick), _sizes("v_fits", quick)
+    mcar = {"missing": {"type": "mcar", "rate": 0.2}}
+
+    def final_visit(tab):
+        last = tab["visit"] == tab["visit"].max()
+        ok = last & np.isfinite(tab["y"])
+        y0, y1 = tab["y"][ok & (tab["arm"] == 0)], tab["y"][ok & (tab["arm"] == 1)]
+        return stats.ttest_ind(y1, y0).pvalue, y1.mean() - y0.mean()
+
+    def cluster_means(tab):
+        ok = np.isfinite(tab["y"])
+        ids, inv = np.unique(tab["cluster"][ok], return_inverse=True)
+        means = np.bincount(inv, tab["y"][ok]) / np.bincount(inv)
+        arm = np.zeros(ids.size, int)
+        arm[inv] = tab["arm"][ok]
+        m0, m1 = means[arm == 0], means[arm == 1]
+        return stats.ttest_ind(m1, m0).pvalue, m1.mean() - m0.mean()
+
+    def cross_diffs(tab):
+        y1, y2, seq = periods(tab, "log")
+        d = y2 - y1
+        ok = np.isfinite(d)
+        return d[ok & (seq == 0)], d[ok & (seq == 1)]
+
+    lo, hi = math.log(0.8), math.log(1.25)
+
+    def cross_tost(tab):  # Schuirmann (1987): two one-sided t-tests on the period differences (B - A = half)
+        d0, d1 = cross_diffs(tab)
+        p = max(stats.ttest_ind(d0 - 2 * lo, d1, alternative="greater").pvalue,
+                stats.ttest_ind(d0 - 2 * hi, d1, alternative="less").pvalue)
+        return p, (d0.mean() - d1.mean()) / 2
+
+    def cross_t(tab):
+        d0, d1 = cross_diffs(tab)
+        return stats.ttest_ind(d0, d1).pvalue, (d0.mean() - d1.mean()) / 2
+
+    def cross_mixed(tab):
+        y1, y2, seq = periods(tab, "log")
+        X = np.concatenate([np.stack([np.ones_like(y1), 0 * y1, seq], 1),
+                            np.stack([np.ones_like(y1), 1 + 0 * y1, 1 - seq], 1)])
+        y, g = np.concatenate([y1, y2]), np.tile(np.arange(y1.size), 2)
+        k = np.isfinite(y)
+        with warnings.catch_warnings(record=True) as w:
+            warnings.simplefilter("always")
+            fit = sm.MixedLM(y[k], X[k], groups=g[k]).fit(reml=True)
+        return fit.pvalues[2], fit.fe_params[2], not w
+
+    def mixed(tab):
+        ok = np.isfinite(tab["y"])
+        X = sm.add_constant(tab["arm"][ok].astype(float))
+        with warnings.catch_warnings(record=True) as w:
+            warnings.simplefilter("always")
+            fit = sm.MixedLM(tab["y"][ok], X, groups=tab["cluster"][ok]).fit(reml=True)
+        return fit.pvalues[1], fit.fe_params[1], not w
+
+    def stepped(tab):
+        ok = np.isfinite(tab["y"])
+        period = tab["period"][ok]
+        X = np.column_stack([np.ones(ok.sum())] + [(period == t).astype(float) for t in range(1, period.max() + 1)]
+                            + [tab["treat"][ok].astype(float)])
+        with warnings.catch_warnings(record=True) as w:
+            warnings.simplefilter("always")
+            fit = sm.MixedLM(tab["y"][ok], X, groups=tab["cluster"][ok]).fit(reml=True, method="powell", ftol=1e-12,
+                                                                             maxiter=5000)
+        k = X.shape[1] - 1  # the treatment's coefficient (MixedLM's pvalues end with the variance's)
+        return fit.pvalues[k], fit.fe_params[k], not w
+
+    def cox(tab):
+        from statsmodels.duration.hazard_regression import PHReg
+
+        ok = np.isfinite(tab["time"])
+        fit = PHReg(tab["time"][ok], tab["arm"][ok].astype(float), status=tab["event"][ok], ties="breslow").fit()
+        return fit.pvalues[0], fit.params[0]
+
+    rm = {"type": "repeated_measures", "n": 100, "visits": 4, "rho": 0.5, "effect": 0.3}
+    ct = {"type": "cluster_trial", "clusters": 10, "cluster_size": 20, "icc": 0.05, "effect": 0.3}
+    xo = {"type": "crossover", "n": 12, "scale": "log", "cv_within": 0.25, "effect": 0.95}
+    sw = {"type": "stepped_wedge", "steps": 5, "clusters_per_step": 3, "m": 15, "icc": 0.05, "effect": 0.3}
+    cases = []
+    for sfx, what, extra in (("", "complete", {}), ("m", "20% MCAR", mcar)):
+        cases += [
+            dict(key=f"v1{sfx}", label=f"final_visit_t ({what}): vs scipy ttest_ind",
+                 process=build("process", {**rm, **extra}), analysis=build("analysis", {"type": "final_visit_t"}),
+                 loop=loop, lib=final_visit),
+            dict(key=f"v2{sfx}", label=f"cluster_means_t ({what}): vs ttest_ind of means",
+                 process=build("process", {**ct, **extra}), analysis=build("analysis", {"type": "cluster_means_t"}),
+                 loop=loop, lib=cluster_means),
+            dict(key=f"v3{sfx}", label=f"crossover_tost ({what}): vs two ttest_ind",
+                 process=build("process", {**xo, **extra}),
+                 analysis=build("analysis", {"type": "crossover_tost", "scale": "log"}), loop=loop, lib=cross_tost,
+                 est_map=np.log, est_tol=1e-9),
+        ]
+    cases += [
+        dict(key="v4", label="crossover_t (complete): vs scipy ttest_ind", process=build("process", xo),
+             analysis=build("analysis", {"type": "crossover_t", "scale": "log"}), loop=loop, lib=cross_t,
+             est_map=np.log, est_tol=1e-9),
+        dict(key="v5", label="crossover_mixed (complete): vs statsmodels MixedLM", process=build("process", xo),
+             analysis=build("analysis", {"type": "crossover_mixed", "scale": "log", "df": "wald"}), loop=fits,
+             lib=cross_mixed, est_map=np.log, est_tol=1e-4, est_abs=True, min_agree=0.995),
+        dict(key="v6m", label="mixed_model (20% MCAR): vs statsmodels MixedLM",
+             process=build("process", {**ct, **mcar}),
+             analysis=build("analysis", {"type": "mixed_model"}), loop=fits, lib=mixed, est_tol=1e-4, est_abs=True,
+             min_agree=0.995),
+        dict(key="v7m", label="sw_mixed (20% MCAR): vs statsmodels MixedLM", process=build("process", {**sw, **mcar}),
+             analysis=build("analysis", {"type": "sw_mixed"}), loop=fits, lib=stepped, est_tol=1e-4, est_abs=True,
+             min_agree=0.995),
+        dict(key="v8m", label="cox (20% MCAR times): vs statsmodels PHReg", process=_survival_mcar(0.2),
+             analysis=build("analysis", {"type": "cox"}), loop=fits, lib=cox),
+    ]
+    return _gap_rows(cases, reps, max(repeats, 3))
+
+
+def bench_groupseq_z(quick, repeats):
+    """group_sequential with z-test looks (normal_two_arm, 100 per arm, 3 looks, O'Brien-Fleming-type spending,
+    one-sided alpha 0.025), complete and 20% MCAR, against the loop a user writes: at each look the first n_k
+    participants of each arm, z from their observed values, its one-sided p-value from ``scipy.stats.norm``
+    compared with the look's nominal level (the same boundaries, computed once)."""
+    from scipy import stats
+
+    from simpower.analyses.groupseq import GroupSequential, look_sizes
+    from simpower.registry import build
+
+    reps, loop = _sizes("y_reps", quick), _sizes("y_loop", quick)
+    an = GroupSequential(inner={"type": "z_test", "alternative": "greater"}, fractions=3, spending="obf",
+                         alpha=0.025)
+    design = an.design()
+    nominal = stats.norm.sf(np.asarray(design.efficacy, float))
+    sizes = [int(look_sizes(float(t), np.asarray(100))) for t in design.fractions]
+
+    def looks(tab):
+        y, arm = tab["y"], tab["arm"]
+        y0, y1 = y[arm == 0], y[arm == 1]
+        for k, n in enumerate(sizes):
+            a, b = y0[:n], y1[:n]
+            a, b = a[np.isfinite(a)], b[np.isfinite(b)]
+            d = b.mean() - a.mean()
+            p = stats.norm.sf(d / math.sqrt(1 / a.size + 1 / b.size))
+            if p <= nominal[k] or k == len(sizes) - 1:
+                return (0.0 if p <= nominal[k] else 1.0), d
+
+    cases = []
+    for sfx, what, extra in (("", "complete", {}), ("m", "20% MCAR", {"missing": {"type": "mcar", "rate": 0.2}})):
+        cases.append(dict(key=f"y1{sfx}", label=f"group_sequential z looks ({what}): vs scipy loop",
+                          process=build("process", {"type": "normal_two_arm", "n": 100, "effect": 0.3, **extra}),
+                          analysis=an, loop=loop, lib=looks))
+    return _gap_rows(cases, reps, max(repeats, 3))
+
+
+def bench_complete_twins(quick, repeats):
+    """The analyses row m measures with 20% MCAR outcomes, on the same processes without missingness (z01-z14),
+    against the same library loops (``_missing_cases``)."""
+    reps, loop = _sizes("z_reps", quick), _sizes("z_loop", quick)
+    cases = []
+    for key, label, proc, an, lib in (case[:5] for case in _missing_cases()):
+        cases.append(dict(key="z" + key[1:], label=f"complete: {label}", process=proc.replace(missing=None),
+                          analysis=an, loop=loop, lib=lib, est_tol=1e-9))
+    return _gap_rows(cases, reps, max(repeats, 3))
+
+
 ROWS = {"a": bench_ttest, "b": bench_mixed, "c": bench_mann_whitney, "d": bench_jobs, "e": bench_memory,
         "m": bench_missing, "x": bench_crossover, "o": bench_ordinal, "h": bench_glmm, "s": bench_stepped,
         "i": bench_mmrm, "g": bench_gee, "k": bench_cox, "k3": bench_cox_robust, "n": bench_negbin,
         "r": bench_resampling, "u": bench_pilot_units, "t": bench_groupseq_events, "l": bench_logrank,
-        "q": bench_tables_glm, "w": bench_rank_tests}
+        "q": bench_tables_glm, "w": bench_rank_tests, "f": bench_binary_bayes, "p": bench_multi_arm, "v": bench_visits_clusters, "y": bench_groupseq_z,
+        "z": bench_complete_twins}
+
+#: Which rows measure each built-in analysis: ``complete`` data and ``missing`` outcomes (20% MCAR unless the row
+#: says otherwise), as the row ids the rows report (their first letter is the ``ROWS`` key). ``note`` says why a
+#: side has no row. tests/test_benchmark_coverage.py fails when a registered analysis is missing here.
+COVERAGE = {
+    "ancova": {"complete": ("z12",), "missing": ("m12",)},
+    "anova_f": {"complete": ("p1",), "missing": ("p1m",)},
+    "bootstrap_ci": {"complete": ("r2", "r3"), "missing": (),
+                     "note": "row r only: complete data (scipy's draws reproduced exactly need the whole sample)"},
+    "chi_square": {"complete": ("q1",), "missing": ("q1m",)},
+    "cluster_means_t": {"complete": ("v2", "u1"), "missing": ("v2m",)},
+    "cox": {"complete": ("k", "k3a"), "missing": ("v8m", "k3b")},
+    "crossover_mixed": {"complete": ("v5",), "missing": ("x2",)},   # x2: 10% dropout after period 1
+    "crossover_t": {"complete": ("v4",), "missing": ("x1",)},       # x1: 10% dropout after period 1
+    "crossover_tost": {"complete": ("v3",), "missing": ("v3m",)},
+    "dichotomised": {"complete": ("f2",), "missing": ("f2m",)},
+    "dunnett": {"complete": ("p2",), "missing": ("p2m",)},
+    "final_visit_t": {"complete": ("v1",), "missing": ("v1m",)},
+    "fisher_exact": {"complete": ("q2",), "missing": ("q2m",)},
+    "gee": {"complete": ("g1", "g3"), "missing": ("g2", "g4")},
+    "glmm": {"complete": ("h1",), "missing": ("h2",)},
+    "group_sequential": {"complete": ("y1", "t"), "missing": ("y1m",)},
+    "log_t": {"complete": ("z04",), "missing": ("m04",)},
+    "logistic": {"complete": ("q3",), "missing": ("q3m",)},
+    "logrank": {"complete": ("l1",), "missing": ("l2",)},
+    "mann_whitney": {"complete": ("c0", "c1", "c2", "z08", "z09", "w1", "w3"), "missing": ("m08", "m09", "w2", "w4")},
+    "mixed_model": {"complete": ("b",), "missing": ("v6m",)},
+    "mmrm": {"complete": (), "missing": ("i1", "i2", "u2"),   # i: 20% monotone dropout; u2: a pilot's gaps
+             "note": "rows i and u2 measure MMRM with missing visits only; no library fits the unstructured "
+                     "MMRM to compare a complete-data row with"},
+    "multiple": {"complete": ("z14",), "missing": ("m14",)},
+    "negbin_glm": {"complete": ("n1",), "missing": ("n2",)},
+    "non_inferiority": {"complete": ("z07",), "missing": ("m07",)},
+    "ols": {"complete": ("z11", "z13"), "missing": ("m11", "m13")},
+    "paired_t": {"complete": ("z05",), "missing": ("m05",)},
+    "permutation_test": {"complete": ("r1",), "missing": (),
+                         "note": "row r only: complete data (scipy's draws reproduced exactly need the whole sample)"},
+    "poisson_glm": {"complete": ("q4",), "missing": ("q4m",)},
+    "posterior_probability": {"complete": ("f3", "f4"), "missing": ("f3m", "f4m")},
+    "proportional_odds": {"complete": ("o1",), "missing": ("o2",)},
+    "sw_mixed": {"complete": ("s",), "missing": ("v7m",)},
+    "t_test": {"complete": ("a1", "z01"), "missing": ("m01",)},
+    "tost": {"complete": ("z06",), "missing": ("m06",)},
+    "two_proportions": {"complete": ("f1",), "missing": ("f1m",)},
+    "welch_t": {"complete": ("z02",), "missing": ("m02",)},
+    "wilcoxon_signed_rank": {"complete": ("z10", "w5"), "missing": ("m10", "w6")},
+    "z_test": {"complete": ("z03",), "missing": ("m03",)},
+}
 
 
 def machine():
@@ -1545,6 +2033,8 @@ def print_table(rows, stream=sys.stdout):
             ours_s, ref_s = fmt_rate(r.get("ours_per_s")), fmt_rate(r.get("reference_per_s"))
         meets = r.get("meets")
         verdict = "not available" if meets is None and ratio is None else ("meets" if meets else "MISSES")
+        if tgt is None and ratio is not None:
+            verdict = "(a bound)"
         print(f"{r['row']:<4} {r['measure']:<54} {ours_s:>13} {ref_s:>13} {ratio_s:>9} {tgt_s:>8}  {verdict}",
               file=stream)
     print(file=stream)
