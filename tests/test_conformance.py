@@ -187,6 +187,8 @@ PAIRS = [
     ({"type": "dunnett"}, ("multi_arm", {"effects": [0.0, 0.3, 0.6], "n": 8})),
     ({"type": "dunnett", "alternative": "greater"}, ("multi_arm", {"effects": [0.0, 0.3, 0.6], "n": [8, 5, 11]})),
     ({"type": "anova_f"}, ("multi_arm", {"effects": [0.0, 0.3, 0.6], "n": 8, "allocation": [2, 1, 1]})),
+    ({"type": "dunnett"}, ("multi_arm", {"effects": [0.0, 0.3, 0.6], "n": 8, "missing": {"type": "mcar", "rate": 0.2}})),
+    ({"type": "anova_f"}, ("multi_arm", {"effects": [0.0, 0.3, 0.6], "n": 8, "missing": {"type": "mcar", "rate": 0.2}})),
     # statsmodels' default NegativeBinomial fit (bfgs, gtol 1e-5 on the mean log-likelihood) leaves alpha, hence
     # the SE, off by up to ~4e-5 relative; the batch Newton agrees with statsmodels' Newton at tol 1e-14 to
     # 1e-9 (tests/test_negbin_batch.py). At a fixed dispersion both are IRLS and agree to rounding.

@@ -219,15 +219,16 @@ def test_no_closed_form_without_a_common_sd_or_with_missing_outcomes():
         assert sp.AnovaF().analytic_power(proc, 0.05) is None
 
 
-def test_missing_outcomes_run_per_replicate():
+def test_missing_outcomes_take_the_batch_path_and_match_scipy_on_the_observed_values():
     proc = sp.MultiArm(effects=[0, 0.3, 0.6], n=10, missing=sp.MCAR(rate=0.2))
     b = proc.draw_batch(np.random.default_rng(4), 3)
-    assert not sp.Dunnett().supports_batch(b) and not sp.AnovaF().supports_batch(b)
+    assert sp.Dunnett().supports_batch(b) and sp.AnovaF().supports_batch(b)
     d = b.replicate(0)
     ok = np.isfinite(d["y"])
     groups = [d["y"][ok & (d["arm"] == j)] for j in range(3)]
     ref = stats.dunnett(*groups[1:], control=groups[0], rng=np.random.default_rng(0))
     np.testing.assert_allclose(sp.Dunnett()(d).pvalues, ref.pvalue, atol=SCIPY_DUNNETT_ATOL)
+    np.testing.assert_allclose(sp.Dunnett().batch(b).pvalues[0], ref.pvalue, atol=SCIPY_DUNNETT_ATOL)
 
 
 def test_a_table_without_control_is_an_error():
@@ -236,3 +237,39 @@ def test_a_table_without_control_is_an_error():
         sp.Dunnett()(data)
     with pytest.raises(ValueError, match="arm"):
         sp.AnovaF()({"y": np.arange(6.0)})
+
+
+@pytest.mark.parametrize("spec", [{"type": "dunnett"}, {"type": "dunnett", "alternative": "greater"},
+                                  {"type": "anova_f"}])
+def test_missing_outcomes_keep_the_batch_path_and_equal_the_per_replicate_path(spec):
+    """Complete cases per replicate, arm sizes differing between replicates; the reference on each replicate is
+    the per-replicate path: scipy.stats.f_oneway, and Dunnett's p-values by the same quadrature (which the
+    tests above check against scipy.stats.dunnett). Small arms and 30% missing: some arms end up empty."""
+    from simpower.analyses.base import as_batch_result
+
+    from simpower.registry import build
+
+    proc = build("process", {"type": "multi_arm", "effects": [0.0, 0.3, 0.6], "n": [6, 4, 5],
+                             "missing": {"type": "mcar", "rate": 0.3}})
+    an = build("analysis", spec)
+    sc = sp.Scenario(proc, an)
+    assert sp.run(sc, reps=50, seed=1, n_jobs=1, progress=False).paths[sc.primary] == "batch"
+    batch = proc.draw_batch(np.random.default_rng(11), 400)
+    res = as_batch_result(an.batch(batch))
+    failed = 0
+    for i in range(batch.size):
+        try:
+            want = an(batch.replicate(i))
+        except ValueError:
+            failed += 1
+            assert np.isnan(res.pvalue[i]) and res.trouble and any(m[i] for m in res.trouble.values())
+            continue
+        assert math.isclose(res.pvalue[i], want.pvalue, rel_tol=1e-10, abs_tol=1e-14)
+        if want.pvalues is not None:
+            np.testing.assert_allclose(res.pvalues[i], want.pvalues, rtol=1e-10, atol=1e-14)
+            assert math.isclose(res.estimate[i], want.estimate, rel_tol=1e-12)
+        else:
+            y, arm = batch.replicate(i)["y"], batch.replicate(i)["arm"]
+            groups = [y[(arm == j) & np.isfinite(y)] for j in range(3)]
+            assert math.isclose(res.pvalue[i], stats.f_oneway(*groups).pvalue, rel_tol=1e-10)
+    assert 0 < failed < 40   # empty arms happened, and were handed to the per-replicate path

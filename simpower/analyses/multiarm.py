@@ -2,10 +2,13 @@
 
 Both read a long table with ``y`` and ``arm`` (0 = control, 1, 2, ... the
 other arms); missing outcomes (NaN) are dropped. The batch paths take the
-``table`` layout of a complete batch (no padding, no missingness) whose shared
-``arm`` labels are sorted and run 0, 1, ..., K - 1 (what ``multi_arm`` draws);
-they compute the same statistics with numpy and agree with the per-replicate
-paths to floating-point tolerance.
+``table`` layout whose shared ``arm`` labels are sorted and run 0, 1, ..., K - 1
+(what ``multi_arm`` draws), with or without missing outcomes: only observed
+outcomes count (complete cases, as on the per-replicate path), so the arm sizes
+and the df may differ between replicates. They compute the same statistics with
+numpy and agree with the per-replicate paths to floating-point tolerance; a
+replicate with an arm left without observed outcomes, or with no residual df,
+goes to the per-replicate path (which refuses it, as before).
 
 :class:`Dunnett` returns one adjusted p-value per comparison with control
 (``pvalues``, named ``"1-0"``, ``"2-0"``, ...; the run result reports
@@ -22,7 +25,8 @@ import numpy as np
 from scipy import stats
 
 from .. import analytic
-from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult
+from .base import ALTERNATIVE, CI_LEVEL, Analysis, BatchResult, TestResult, hand_over
+from .numeric import masked_mean_var
 
 
 def _arm_groups(data):
@@ -42,8 +46,9 @@ def _arm_groups(data):
 
 
 def _sorted_blocks(layout):
-    """Sizes of the arms 0..K-1 when the layout is complete and its shared arm labels are sorted blocks."""
-    if not layout.complete or "arm" not in layout.shared or "arm" in layout.per_rep:
+    """Sizes of the arms 0..K-1 (rows, padding and missing outcomes included) when the shared arm labels
+    are sorted blocks."""
+    if "arm" not in layout.shared or "arm" in layout.per_rep:
         return None
     arm = np.asarray(layout.shared["arm"])
     if arm.ndim != 1 or arm.size != layout.width or not np.issubdtype(arm.dtype, np.integer):
@@ -71,6 +76,19 @@ def _block_stats(y, sizes):
         means.append(m)
         ss = ss + np.einsum("ij,ij->i", d, d)
     return np.column_stack(means), ss
+
+
+def _masked_block_stats(layout, sizes):
+    """Observed counts (R, K), means (R, K) and within-arm sum of squares (R,) of contiguous blocks."""
+    edges = np.concatenate([[0], np.cumsum(sizes)])
+    y, obs = layout.y, layout.observed
+    counts, means, ss = [], [], 0.0
+    for a, b in zip(edges[:-1], edges[1:]):
+        n, m, v = masked_mean_var(y[:, a:b], obs[:, a:b])
+        counts.append(n)
+        means.append(m)
+        ss = ss + np.where(n > 1, v * (n - 1), 0.0)
+    return np.column_stack(counts), np.column_stack(means), ss
 
 
 class Dunnett(Analysis):
@@ -127,12 +145,31 @@ class Dunnett(Analysis):
     def batch(self, batch):
         layout = self.batch_layout(batch)
         sizes = _sorted_blocks(layout)
-        with np.errstate(all="ignore"):
-            means, ss = _block_stats(layout.y, sizes)
-        f = self._fields(means, ss, sizes.astype(float), float(sizes.sum() - sizes.size))
-        return BatchResult(pvalue=f["pvalue"], estimate=f["estimate"], se=f["se"], ci_low=f["ci_low"],
-                           ci_high=f["ci_high"], pvalues=f["pvalues"],
-                           names=tuple(f"{j}-0" for j in range(1, sizes.size)))
+        names = tuple(f"{j}-0" for j in range(1, sizes.size))
+        if layout.complete:
+            with np.errstate(all="ignore"):
+                means, ss = _block_stats(layout.y, sizes)
+            f = self._fields(means, ss, sizes.astype(float), float(sizes.sum() - sizes.size))
+            return BatchResult(pvalue=f["pvalue"], estimate=f["estimate"], se=f["se"], ci_low=f["ci_low"],
+                               ci_high=f["ci_high"], pvalues=f["pvalues"], names=names)
+        # observed outcomes only: replicates with the same observed arm sizes share the many-to-one
+        # correlation and the df, so the quadrature runs once per distinct size vector
+        counts, means, ss = _masked_block_stats(layout, sizes)
+        R, k = layout.size, sizes.size
+        out = {key: np.full(R, np.nan) for key in ("pvalue", "estimate", "se", "ci_low", "ci_high")}
+        pvalues = np.full((R, k - 1), np.nan)
+        bad = np.any(counts == 0, axis=1) | (counts.sum(axis=1) <= k)
+        good = np.flatnonzero(~bad)
+        if good.size:
+            keys, inverse = np.unique(counts[good], axis=0, return_inverse=True)
+            for g, key in enumerate(keys):
+                rows = good[inverse.reshape(-1) == g]
+                f = self._fields(means[rows], ss[rows], key.astype(float), float(key.sum() - k))
+                for name in out:
+                    out[name][rows] = f[name]
+                pvalues[rows] = f["pvalues"]
+        res = BatchResult(pvalues=pvalues, names=names, **out)
+        return hand_over(self, batch, res, bad)
 
     def power_parts(self, process, alpha) -> dict | None:
         """Exact per-comparison, any- and all-rejection power (:func:`simpower.analytic.dunnett_power`).
@@ -171,11 +208,21 @@ class AnovaF(Analysis):
         layout = self.batch_layout(batch)
         sizes = _sorted_blocks(layout)
         k, n = sizes.size, int(sizes.sum())
+        if layout.complete:
+            with np.errstate(all="ignore"):
+                means, ss_within = _block_stats(layout.y, sizes)
+                grand = means @ sizes / n
+                ss_between = ((means - grand[:, None]) ** 2) @ sizes
+                f = (ss_between / (k - 1)) / (ss_within / (n - k))
+            return BatchResult(pvalue=stats.f.sf(f, k - 1, n - k))
+        counts, means, ss_within = _masked_block_stats(layout, sizes)
+        n_obs = counts.sum(axis=1)
+        bad = np.any(counts == 0, axis=1) | (n_obs <= k)
         with np.errstate(all="ignore"):
-            means, ss_within = _block_stats(layout.y, sizes)
-            grand = means @ sizes / n
-            ss_between = ((means - grand[:, None]) ** 2) @ sizes
-            f = (ss_between / (k - 1)) / (ss_within / (n - k))
-        return BatchResult(pvalue=stats.f.sf(f, k - 1, n - k))
+            grand = np.einsum("rk,rk->r", means, counts) / n_obs
+            ss_between = np.einsum("rk,rk->r", (means - grand[:, None]) ** 2, counts)
+            f = (ss_between / (k - 1)) / (ss_within / (n_obs - k))
+            p = stats.f.sf(f, k - 1, n_obs - k)
+        return hand_over(self, batch, BatchResult(pvalue=np.where(bad, np.nan, p)), bad)
 
 
