@@ -30,6 +30,8 @@ from .numeric import p_from_z, wald
 
 #: replicate-by-row cells handled at once by the batch log-rank path
 _BLOCK_CELLS = 1_000_000
+#: replicate-by-row cells per block of the compiled log-rank merge (its keys stay in cache)
+_MERGE_BLOCK_CELLS = 1 << 15
 #: Newton steps of the batch Cox fit before a replicate goes to the per-replicate path, and the
 #: relative step size taken as settled
 _COX_MAX_ITER = 100
@@ -146,31 +148,51 @@ def logrank_backend() -> str:
     return "numba" if _survival_kernels.HAVE_NUMBA else "numpy"
 
 
+def _columns(mask: np.ndarray):
+    """The columns where ``mask`` (1-D) is True: a slice when they are one run (indexing gives views), else indices."""
+    idx = np.flatnonzero(mask)
+    if idx.size and idx[-1] - idx[0] + 1 == idx.size:
+        return slice(int(idx[0]), int(idx[-1]) + 1)
+    return idx
+
+
 def merged_logrank_terms(time, event, arm, observed=None):
     """``(U, V)`` arrays over replicates by the compiled merge of each arm's sorted keys.
 
     Same inputs as :func:`batch_logrank_terms` (times finite and >= 0 and events 0/1 where
-    observed); see :mod:`simpower.analyses._survival_kernels`.
+    observed); see :mod:`simpower.analyses._survival_kernels`. Runs over blocks of
+    :data:`_MERGE_BLOCK_CELLS` cells, whose keys are built in place in two scratch arrays
+    (one per arm) and sorted there.
     """
     from . import _survival_kernels as kern
 
-    size = time.shape[0]
+    size, width = time.shape
     arm = np.asarray(arm)
+    u, v = np.empty(size), np.empty(size)
+    rows = max(1, min(size, _MERGE_BLOCK_CELLS // max(width, 1)))
     if arm.ndim == 1:  # shared design: each arm's columns, sorted apart
-        cols = (np.flatnonzero(arm == 0), np.flatnonzero(arm == 1))
-        keys, counts = [], []
-        for c in cols:
-            take = None if observed is None else observed[:, c]
-            keys.append(np.sort(kern.time_event_keys(time[:, c], event[:, c], take), axis=1))
-            counts.append(np.full(size, c.size, np.int64) if take is None else take.sum(axis=1))
+        cols = (_columns(arm == 0), _columns(arm == 1))
+        bufs = [np.empty((rows, np.arange(width)[c].size), np.uint64) for c in cols]
     else:  # arms per replicate: the other arm's rows take no part in an arm's keys
+        bufs = [np.empty((rows, width), np.uint64) for _ in (0, 1)]
+    full = [np.full(rows, b.shape[1], np.int64) for b in bufs]
+    for r0 in range(0, size, rows):
+        sl = slice(r0, min(size, r0 + rows))
+        k = sl.stop - r0
         keys, counts = [], []
         for label in (0, 1):
-            take = arm == label if observed is None else (arm == label) & observed
-            keys.append(np.sort(kern.time_event_keys(time, event, take), axis=1))
-            counts.append(take.sum(axis=1))
-    u, v = np.empty(size), np.empty(size)
-    kern.merge_terms(keys[0], keys[1], counts[0].astype(np.int64), counts[1].astype(np.int64), u, v)
+            if arm.ndim == 1:
+                c = cols[label]
+                t, e = time[sl, c], event[sl, c]
+                take = None if observed is None else observed[sl, c]
+            else:
+                t, e = time[sl], event[sl]
+                take = arm[sl] == label if observed is None else (arm[sl] == label) & observed[sl]
+            key = kern.time_event_keys(t, e, take, out=bufs[label][:k])
+            key.sort(axis=1)
+            keys.append(key)
+            counts.append(full[label][:k] if take is None else take.sum(axis=1, dtype=np.int64))
+        kern.merge_terms(keys[0], keys[1], counts[0], counts[1], u[sl], v[sl])
     return u, v
 
 
