@@ -203,7 +203,7 @@ class TimeToEventOutcome(SurvivalRules, GLMOutcome):
     def draw(self, rng, lin, arm, u_rows, size, width):
         # the order of survival_two_arm: event variates, entry variates, loss variates (censor_drawn draws those)
         t = rng.standard_exponential((size, width))
-        u_entry = rng.random((size, width))
+        u_entry = rng.random((size, width)) if self.accrual > 0 else None  # else censor_drawn draws them
         lam, power = self.rate0, (None if self.shape == 1 else 1.0 / self.shape)
         if u_rows is None and arm.ndim == 1:  # independent participants: survival_two_arm's arithmetic
             treated, hr = contiguous(arm == 1), self.hazard_ratio

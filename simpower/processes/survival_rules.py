@@ -37,9 +37,10 @@ def censor_drawn(t, u_entry, rng, spec, scale=None):
     """Censor event times in place, drawing the loss variates as it goes: ``(time, event, entry)``.
 
     ``t`` holds the standard exponential event variates and ``u_entry`` the uniform entry variates
-    (both (R, N), drawn before; they become ``time`` and ``entry``); this draws the (R, N) standard
-    exponential loss variates from ``rng`` next, always (so the stream does not depend on the
-    censoring settings). ``scale(block, rows)`` turns a block of event variates (rows ``rows`` of
+    (both (R, N), drawn before; they become ``time`` and ``entry``); ``u_entry`` None (only when
+    ``accrual`` is 0) has this draw them in blocks and throw them away, since every entry is then 0.
+    Then it draws the (R, N) standard exponential loss variates from ``rng``, always (so the stream
+    does not depend on the censoring settings). ``scale(block, rows)`` turns a block of event variates (rows ``rows`` of
     ``t``) into event times in place. ``spec`` gives ``accrual``, ``follow_up``, ``loss_rate``
     and ``time_resolution`` (:class:`SurvivalTwoArm`, or the ``time_to_event`` layer).
 
@@ -54,11 +55,16 @@ def censor_drawn(t, u_entry, rng, spec, scale=None):
     """
     size, width = t.shape
     accrual, follow_up, rate, res = spec.accrual, spec.follow_up, spec.loss_rate, spec.time_resolution
-    entry = np.multiply(u_entry, accrual, out=u_entry)
-    end = None if follow_up is None else accrual + follow_up  # the study's end: cens = end - entry
-    event = np.empty((size, width), bool)
     rows = max(1, CENSOR_BLOCK_CELLS // max(width, 1))
     loss = np.empty((min(rows, size), width))
+    if u_entry is None:  # no accrual: the entry variates are drawn (the stream) but every entry is 0 * u = 0
+        for r0 in range(0, size, rows):
+            rng.random(out=loss[: min(size, r0 + rows) - r0])
+        entry = np.zeros((size, width)) if math.copysign(1.0, accrual) > 0 else np.full((size, width), -0.0)
+    else:
+        entry = np.multiply(u_entry, accrual, out=u_entry)
+    end = None if follow_up is None else accrual + follow_up  # the study's end: cens = end - entry
+    event = np.empty((size, width), bool)
     cens = np.empty_like(loss) if end is not None and rate > 0 and accrual > 0 else None
     for r0 in range(0, size, rows):
         r1 = min(size, r0 + rows)
