@@ -198,3 +198,18 @@ def test_interleaved_arm_columns_give_the_sums_of_the_sorted_layout():
         u1, v1 = surv.merged_logrank_terms(t[:, perm], e[:, perm], a[perm], None if obs is None else obs[:, perm])
         np.testing.assert_array_equal(u1, u0)
         np.testing.assert_array_equal(v1, v0)
+
+
+def test_the_whole_array_value_check_passes_over_missing_times_only_when_asked():
+    # the batch path skips its per-cell checks when this holds; any bad kept value must make it False
+    t = np.array([[1.0, np.nan, 2.0], [0.0, 3.0, np.nan]])
+    e = np.array([[1, 0, 1], [0, 1, 1]], np.int8)
+    assert surv._plain(t, e, nan_ok=True) and not surv._plain(t, e)
+    for bad in (-1.0, np.inf, -np.inf):
+        t2 = t.copy()
+        t2[1, 1] = bad
+        assert not surv._plain(t2, e, nan_ok=True)
+    assert not surv._plain(np.full((2, 3), np.nan), e, nan_ok=True)
+    e2 = e.copy()
+    e2[0, 1] = 2  # an event code other than 0/1, even beside a missing time
+    assert not surv._plain(t, e2, nan_ok=True)

@@ -196,10 +196,19 @@ def merged_logrank_terms(time, event, arm, observed=None):
     return u, v
 
 
-def _plain(time, event) -> bool:
-    """Every time finite and >= 0 and every event 0 or 1 (whole-array reductions, no per-row masks)."""
+def _plain(time, event, nan_ok: bool = False) -> bool:
+    """Every time finite and >= 0 and every event 0 or 1 (whole-array reductions, no per-row masks).
+
+    ``nan_ok``: missing times (NaN) are allowed (every time that is not NaN is checked).
+    """
+    if time.size == 0:
+        return False
     with np.errstate(invalid="ignore"):
-        if time.size == 0 or not (time.min() >= 0 and np.isfinite(time.max())):
+        if nan_ok:  # fmin / fmax pass over NaN (all NaN: NaN, and False below)
+            low, high = np.fmin.reduce(time, axis=None), np.fmax.reduce(time, axis=None)
+        else:
+            low, high = time.min(), time.max()
+        if not (low >= 0 and np.isfinite(high)):
             return False
     return bool(event.min() >= 0 and event.max() <= 1 and (event.dtype.kind in "iub" or np.all(event == np.round(event))))
 
@@ -265,19 +274,27 @@ class LogRank(Analysis):
         layout = self.batch_layout(batch)
         time, arm = np.asarray(layout.time, float), np.asarray(layout.arm)
         event = np.asarray(layout.event)
-        observed = None if layout.complete else layout.observed
         # replicates the per-replicate path refuses (it raises): a bad time or event among the rows
         # it keeps (present, time not NaN), or an arm without any such row; they are handed to it
-        if observed is None and arm.ndim == 1 and _plain(time, event):  # complete, shared arms, values fine
+        if layout.complete and arm.ndim == 1 and _plain(time, event):  # complete, shared arms, values fine
             refused, take = np.zeros(batch.size, bool), None
         else:
-            keep = ~np.isnan(time) if layout.present is None else layout.present & ~np.isnan(time)
-            with np.errstate(invalid="ignore"):
-                good = np.isfinite(time) & (time >= 0) & ((event == 0) | (event == 1))
-            refused = np.any(keep & ~good, axis=1)
-            for label in (0, 1):
-                refused |= ~np.any(keep & (arm == label), axis=1)
-            take = keep & good & ~refused[:, None]
+            keep = np.isnan(time)
+            np.logical_not(keep, out=keep)
+            if layout.present is not None:
+                keep &= layout.present
+            if _plain(time, event, nan_ok=True):  # every time that is there fine, every event 0/1: take = keep
+                refused, take = np.zeros(batch.size, bool), keep
+            else:
+                with np.errstate(invalid="ignore"):
+                    good = np.isfinite(time) & (time >= 0) & ((event == 0) | (event == 1))
+                refused = np.any(keep & ~good, axis=1)
+                take = keep & good
+            for label in (0, 1):  # an arm without a kept row (shared arms: that arm's columns)
+                seen = keep[:, _columns(arm == label)] if arm.ndim == 1 else keep & (arm == label)
+                refused |= ~np.any(seen, axis=1)
+            if refused.any():
+                take = take & ~refused[:, None]
         terms = merged_logrank_terms if logrank_backend() == "numba" else batch_logrank_terms
         u, v = np.empty(batch.size), np.empty(batch.size)
         step = max(1, _BLOCK_CELLS // max(time.shape[1], 1))  # bounds the memory of the sort-and-count arrays
