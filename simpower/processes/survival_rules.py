@@ -40,9 +40,10 @@ def censor_drawn(t, u_entry, rng, spec, scale=None):
     (both (R, N), drawn before; they become ``time`` and ``entry``); ``u_entry`` None (only when
     ``accrual`` is 0) has this draw them in blocks and throw them away, since every entry is then 0.
     Then it draws the (R, N) standard exponential loss variates from ``rng``, always (so the stream
-    does not depend on the censoring settings). ``scale(block, rows)`` turns a block of event variates (rows ``rows`` of
-    ``t``) into event times in place. ``spec`` gives ``accrual``, ``follow_up``, ``loss_rate``
-    and ``time_resolution`` (:class:`SurvivalTwoArm`, or the ``time_to_event`` layer).
+    does not depend on the censoring settings). ``scale(block, rows)`` (optional) turns a block of
+    event variates (rows ``rows`` of ``t``) into event times in place. ``spec`` gives ``accrual``,
+    ``follow_up``, ``loss_rate`` and ``time_resolution`` (:class:`SurvivalTwoArm`, or the
+    ``time_to_event`` layer).
 
     Element by element this is the arithmetic of the whole-array form (and its numbers, bit for
     bit): ``entry = accrual * u``; ``cens = accrual + follow_up - entry`` (inf without follow-up),
