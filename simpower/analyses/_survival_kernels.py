@@ -40,13 +40,24 @@ def _jit(fn):
     return numba.njit(cache=True)(fn) if HAVE_NUMBA else fn
 
 
-def time_event_keys(time: np.ndarray, event: np.ndarray, take: np.ndarray | None) -> np.ndarray:
+def time_event_keys(time: np.ndarray, event: np.ndarray, take: np.ndarray | None, out: np.ndarray | None = None
+                    ) -> np.ndarray:
     """Keys ``2 * bits(time) + event`` (uint64), :data:`NO_KEY` where ``take`` is False.
 
     ``time`` must be finite and >= 0 where taken (-0.0 gives the key of 0.0), ``event`` 0 or 1.
+    ``out`` (uint64, the shape of ``time``) receives the keys (else a new array). A float64
+    ``time`` is read in place (a view of its bits, any strides), a one-byte ``event`` too.
     """
-    bits = np.ascontiguousarray(time, dtype=np.float64).view(np.uint64)
-    key = (bits << _ONE) | np.asarray(event).astype(np.uint64)
+    time = np.asarray(time)
+    bits = (time if time.dtype == np.float64 else time.astype(np.float64)).view(np.uint64)
+    key = np.left_shift(bits, _ONE, out=out)
+    event = np.asarray(event)
+    if event.dtype.itemsize == 1 and event.dtype.kind in "biu":
+        ev = event.view(np.uint8)
+    else:
+        with np.errstate(invalid="ignore"):  # a bad value lies in a row not taken (its key is replaced)
+            ev = event.astype(np.uint8)
+    np.bitwise_or(key, ev, out=key)
     if take is not None:
         key[~take] = NO_KEY
     return key
@@ -60,29 +71,39 @@ def merge_terms(k0, k1, c0, c1, u, v):  # pragma: no cover - compiled; its Pytho
     its sorted keys). Writes ``u[i]`` and ``v[i]``.
     """
     for i in range(k0.shape[0]):
+        a = k0[i]
+        b = k1[i]
         n0 = c0[i]
         n1 = c1[i]
         p0 = 0
         p1 = 0
         uu = 0.0
         vv = 0.0
-        while p0 < n0 or p1 < n1:
-            if p1 >= n1 or (p0 < n0 and (k0[i, p0] >> _ONE) <= (k1[i, p1] >> _ONE)):
-                t = k0[i, p0] >> _ONE
+        while True:
+            if p0 < n0:  # t: the next distinct time (the smaller of the two arms' next keys)
+                t = a[p0] >> _ONE
+                if p1 < n1:
+                    t1 = b[p1] >> _ONE
+                    if t1 < t:
+                        t = t1
+            elif p1 < n1:
+                t = b[p1] >> _ONE
             else:
-                t = k1[i, p1] >> _ONE
-            r = float(n0 - p0 + n1 - p1)  # at risk at time t, censored ones at t included
-            r1 = float(n1 - p1)
+                break
+            m0 = n0 - p0  # at risk at time t in each arm, censored ones at t included
+            m1 = n1 - p1
             e0 = _ZERO
             e1 = _ZERO
-            while p0 < n0 and (k0[i, p0] >> _ONE) == t:
-                e0 += k0[i, p0] & _ONE
+            while p0 < n0 and (a[p0] >> _ONE) == t:
+                e0 += a[p0] & _ONE
                 p0 += 1
-            while p1 < n1 and (k1[i, p1] >> _ONE) == t:
-                e1 += k1[i, p1] & _ONE
+            while p1 < n1 and (b[p1] >> _ONE) == t:
+                e1 += b[p1] & _ONE
                 p1 += 1
-            d = float(e0 + e1)
-            if d > 0:
+            if e0 + e1 > _ZERO:
+                r = float(m0 + m1)
+                r1 = float(m1)
+                d = float(e0 + e1)
                 d1 = float(e1)
                 uu += d1 - r1 * d / r
                 if r > 1:

@@ -31,6 +31,8 @@ from .numeric import p_from_z, wald
 
 #: replicate-by-row cells handled at once by the batch log-rank path
 _BLOCK_CELLS = 1_000_000
+#: replicate-by-row cells per block of the compiled log-rank merge (its keys stay in cache)
+_MERGE_BLOCK_CELLS = 1 << 15
 #: Newton steps of the batch Cox fit before a replicate goes to the per-replicate path, and the
 #: relative step size taken as settled
 _COX_MAX_ITER = 100
@@ -147,38 +149,67 @@ def logrank_backend() -> str:
     return "numba" if _survival_kernels.HAVE_NUMBA else "numpy"
 
 
+def _columns(mask: np.ndarray):
+    """The columns where ``mask`` (1-D) is True: a slice when they are one run (indexing gives views), else indices."""
+    idx = np.flatnonzero(mask)
+    if idx.size and idx[-1] - idx[0] + 1 == idx.size:
+        return slice(int(idx[0]), int(idx[-1]) + 1)
+    return idx
+
+
 def merged_logrank_terms(time, event, arm, observed=None):
     """``(U, V)`` arrays over replicates by the compiled merge of each arm's sorted keys.
 
     Same inputs as :func:`batch_logrank_terms` (times finite and >= 0 and events 0/1 where
-    observed); see :mod:`simpower.analyses._survival_kernels`.
+    observed); see :mod:`simpower.analyses._survival_kernels`. Runs over blocks of
+    :data:`_MERGE_BLOCK_CELLS` cells, whose keys are built in place in two scratch arrays
+    (one per arm) and sorted there.
     """
     from . import _survival_kernels as kern
 
-    size = time.shape[0]
+    size, width = time.shape
     arm = np.asarray(arm)
+    u, v = np.empty(size), np.empty(size)
+    rows = max(1, min(size, _MERGE_BLOCK_CELLS // max(width, 1)))
     if arm.ndim == 1:  # shared design: each arm's columns, sorted apart
-        cols = (np.flatnonzero(arm == 0), np.flatnonzero(arm == 1))
-        keys, counts = [], []
-        for c in cols:
-            take = None if observed is None else observed[:, c]
-            keys.append(np.sort(kern.time_event_keys(time[:, c], event[:, c], take), axis=1))
-            counts.append(np.full(size, c.size, np.int64) if take is None else take.sum(axis=1))
+        cols = (_columns(arm == 0), _columns(arm == 1))
+        bufs = [np.empty((rows, np.arange(width)[c].size), np.uint64) for c in cols]
     else:  # arms per replicate: the other arm's rows take no part in an arm's keys
+        bufs = [np.empty((rows, width), np.uint64) for _ in (0, 1)]
+    full = [np.full(rows, b.shape[1], np.int64) for b in bufs]
+    for r0 in range(0, size, rows):
+        sl = slice(r0, min(size, r0 + rows))
+        k = sl.stop - r0
         keys, counts = [], []
         for label in (0, 1):
-            take = arm == label if observed is None else (arm == label) & observed
-            keys.append(np.sort(kern.time_event_keys(time, event, take), axis=1))
-            counts.append(take.sum(axis=1))
-    u, v = np.empty(size), np.empty(size)
-    kern.merge_terms(keys[0], keys[1], counts[0].astype(np.int64), counts[1].astype(np.int64), u, v)
+            if arm.ndim == 1:
+                c = cols[label]
+                t, e = time[sl, c], event[sl, c]
+                take = None if observed is None else observed[sl, c]
+            else:
+                t, e = time[sl], event[sl]
+                take = arm[sl] == label if observed is None else (arm[sl] == label) & observed[sl]
+            key = kern.time_event_keys(t, e, take, out=bufs[label][:k])
+            key.sort(axis=1)
+            keys.append(key)
+            counts.append(full[label][:k] if take is None else take.sum(axis=1, dtype=np.int64))
+        kern.merge_terms(keys[0], keys[1], counts[0], counts[1], u[sl], v[sl])
     return u, v
 
 
-def _plain(time, event) -> bool:
-    """Every time finite and >= 0 and every event 0 or 1 (whole-array reductions, no per-row masks)."""
+def _plain(time, event, nan_ok: bool = False) -> bool:
+    """Every time finite and >= 0 and every event 0 or 1 (whole-array reductions, no per-row masks).
+
+    ``nan_ok``: missing times (NaN) are allowed (every time that is not NaN is checked).
+    """
+    if time.size == 0:
+        return False
     with np.errstate(invalid="ignore"):
-        if time.size == 0 or not (time.min() >= 0 and np.isfinite(time.max())):
+        if nan_ok:  # fmin / fmax pass over NaN (all NaN: NaN, and False below)
+            low, high = np.fmin.reduce(time, axis=None), np.fmax.reduce(time, axis=None)
+        else:
+            low, high = time.min(), time.max()
+        if not (low >= 0 and np.isfinite(high)):
             return False
     return bool(event.min() >= 0 and event.max() <= 1 and (event.dtype.kind in "iub" or np.all(event == np.round(event))))
 
@@ -244,19 +275,27 @@ class LogRank(Analysis):
         layout = self.batch_layout(batch)
         time, arm = np.asarray(layout.time, float), np.asarray(layout.arm)
         event = np.asarray(layout.event)
-        observed = None if layout.complete else layout.observed
         # replicates the per-replicate path refuses (it raises): a bad time or event among the rows
         # it keeps (present, time not NaN), or an arm without any such row; they are handed to it
-        if observed is None and arm.ndim == 1 and _plain(time, event):  # complete, shared arms, values fine
+        if layout.complete and arm.ndim == 1 and _plain(time, event):  # complete, shared arms, values fine
             refused, take = np.zeros(batch.size, bool), None
         else:
-            keep = ~np.isnan(time) if layout.present is None else layout.present & ~np.isnan(time)
-            with np.errstate(invalid="ignore"):
-                good = np.isfinite(time) & (time >= 0) & ((event == 0) | (event == 1))
-            refused = np.any(keep & ~good, axis=1)
-            for label in (0, 1):
-                refused |= ~np.any(keep & (arm == label), axis=1)
-            take = keep & good & ~refused[:, None]
+            keep = np.isnan(time)
+            np.logical_not(keep, out=keep)
+            if layout.present is not None:
+                keep &= layout.present
+            if _plain(time, event, nan_ok=True):  # every time that is there fine, every event 0/1: take = keep
+                refused, take = np.zeros(batch.size, bool), keep
+            else:
+                with np.errstate(invalid="ignore"):
+                    good = np.isfinite(time) & (time >= 0) & ((event == 0) | (event == 1))
+                refused = np.any(keep & ~good, axis=1)
+                take = keep & good
+            for label in (0, 1):  # an arm without a kept row (shared arms: that arm's columns)
+                seen = keep[:, _columns(arm == label)] if arm.ndim == 1 else keep & (arm == label)
+                refused |= ~np.any(seen, axis=1)
+            if refused.any():
+                take = take & ~refused[:, None]
         terms = merged_logrank_terms if logrank_backend() == "numba" else batch_logrank_terms
         u, v = np.empty(batch.size), np.empty(batch.size)
         step = max(1, _BLOCK_CELLS // max(time.shape[1], 1))  # bounds the memory of the sort-and-count arrays

@@ -60,7 +60,7 @@ from scipy import optimize
 from .._validation import Choice, Real
 from ..errors import ParameterError
 from .glm_outcomes import SIGMA_MAX, GLMOutcome, Linear
-from .survival_rules import SurvivalRules, censor
+from .survival_rules import SurvivalRules, censor_drawn, contiguous
 
 POSITIVE = Real(0.0, low_open=True)
 OPT_POSITIVE = Real(0.0, low_open=True, optional=True)
@@ -201,18 +201,26 @@ class TimeToEventOutcome(SurvivalRules, GLMOutcome):
 
     # -- drawing ------------------------------------------------------------------------
     def draw(self, rng, lin, arm, u_rows, size, width):
-        # the order of survival_two_arm: event variates, entry variates, loss variates
-        e_event = rng.standard_exponential((size, width))
-        u_entry = rng.random((size, width))
-        e_loss = rng.standard_exponential((size, width))
-        lam = self.rate0
+        # the order of survival_two_arm: event variates, entry variates, loss variates (censor_drawn draws those)
+        t = rng.standard_exponential((size, width))
+        u_entry = rng.random((size, width)) if self.accrual > 0 else None  # else censor_drawn draws them
+        lam, power = self.rate0, (None if self.shape == 1 else 1.0 / self.shape)
         if u_rows is None and arm.ndim == 1:  # independent participants: survival_two_arm's arithmetic
-            e_event[:, arm == 1] /= self.hazard_ratio
+            treated, hr = contiguous(arm == 1), self.hazard_ratio
+
+            def scale(tb, rows):
+                tb[:, treated] /= hr
+                if power is not None:
+                    tb **= power
+                tb /= lam
         else:
-            e_event /= np.exp(lin.beta0 + lin.beta1 * arm + (0.0 if u_rows is None else lin.sigma * u_rows))
-        t = e_event if self.shape == 1 else e_event ** (1.0 / self.shape)
-        t /= lam
-        time, event, entry = censor(t, u_entry, e_loss, self)
+            def scale(tb, rows):
+                a = arm if arm.ndim == 1 else arm[rows]
+                tb /= np.exp(lin.beta0 + lin.beta1 * a + (0.0 if u_rows is None else lin.sigma * u_rows[rows]))
+                if power is not None:
+                    tb **= power
+                tb /= lam
+        time, event, entry = censor_drawn(t, u_entry, rng, self, scale)
         return None, {}, {"time": time, "event": event, "entry": entry}, {}
 
     def describe(self, lin: Linear | None = None) -> str:

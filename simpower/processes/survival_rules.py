@@ -2,9 +2,9 @@
 
 The fields (median or hazard0, shape, hazard_ratio, accrual, follow_up, loss to follow-up,
 time_resolution) mean the same in both; :class:`SurvivalRules` holds their checks, the control
-rate, the loss rate, the probability of a seen event and the analytic facts, and :func:`censor`
+rate, the loss rate, the probability of a seen event and the analytic facts, and :func:`censor_drawn`
 the censoring step of the draws (administrative censoring at the end of follow-up, loss to
-follow-up, rounding of the times).
+follow-up, rounding of the times), done in place.
 """
 
 from __future__ import annotations
@@ -18,24 +18,83 @@ from ..errors import ParameterError
 from ..facts import SurvivalFacts
 
 
-def censor(t, u_entry, e_loss, spec):
-    """Event times ``t`` censored at the end of follow-up and by loss to follow-up: ``(time, event, entry)``.
+#: cells (replicates x rows) of one block of the censoring step: its scratch arrays stay in cache
+CENSOR_BLOCK_CELLS = 1 << 14
 
-    ``u_entry`` are the uniform entry variates and ``e_loss`` the standard exponential loss variates
-    (same shape as ``t``); ``spec`` gives ``accrual``, ``follow_up``, ``loss_rate`` and
-    ``time_resolution`` (:class:`SurvivalTwoArm`, or the ``time_to_event`` layer). ``entry`` is the
-    calendar time of enrolment (the group-sequential looks at event counts need it).
+
+def contiguous(mask: np.ndarray):
+    """``mask`` (1-D bool) as a slice when its True entries are one run of columns, else the mask itself.
+
+    Indexing with the slice gives views (in-place arithmetic, no gather and scatter) and the same cells.
     """
-    cens = np.full(t.shape, math.inf)
-    if spec.follow_up is not None:
-        cens = spec.accrual + spec.follow_up - spec.accrual * u_entry
-    if spec.loss_rate > 0:
-        np.minimum(cens, e_loss / spec.loss_rate, out=cens)
-    event = (t <= cens).astype(np.int8)
-    time = np.minimum(t, cens)
-    if spec.time_resolution is not None:
-        time = np.ceil(time / spec.time_resolution) * spec.time_resolution
-    return time, event, spec.accrual * u_entry
+    idx = np.flatnonzero(mask)
+    if idx.size and idx[-1] - idx[0] + 1 == idx.size:
+        return slice(int(idx[0]), int(idx[-1]) + 1)
+    return mask
+
+
+def censor_drawn(t, u_entry, rng, spec, scale=None):
+    """Censor event times in place, drawing the loss variates as it goes: ``(time, event, entry)``.
+
+    ``t`` holds the standard exponential event variates and ``u_entry`` the uniform entry variates
+    (both (R, N), drawn before; they become ``time`` and ``entry``); ``u_entry`` None (only when
+    ``accrual`` is 0) has this draw them in blocks and throw them away, since every entry is then 0.
+    Then it draws the (R, N) standard exponential loss variates from ``rng``, always (so the stream
+    does not depend on the censoring settings). ``scale(block, rows)`` (optional) turns a block of
+    event variates (rows ``rows`` of ``t``) into event times in place. ``spec`` gives ``accrual``,
+    ``follow_up``, ``loss_rate`` and ``time_resolution`` (:class:`SurvivalTwoArm`, or the
+    ``time_to_event`` layer).
+
+    Element by element this is the arithmetic of the whole-array form (and its numbers, bit for
+    bit): ``entry = accrual * u``; ``cens = accrual + follow_up - entry`` (inf without follow-up),
+    lowered to ``e_loss / loss_rate`` with loss; ``event = t <= cens`` (int8); ``time = min(t,
+    cens)``, rounded up to ``time_resolution``. It runs over blocks of replicates, so that the
+    censoring times and loss variates live in small scratch arrays, never in (R, N) ones: the
+    loss variates are drawn block by block in the order of the whole-array draw (the generator's
+    stream is the same in pieces). ``entry`` is the calendar time of enrolment (the
+    group-sequential looks at event counts need it).
+    """
+    size, width = t.shape
+    accrual, follow_up, rate, res = spec.accrual, spec.follow_up, spec.loss_rate, spec.time_resolution
+    rows = max(1, CENSOR_BLOCK_CELLS // max(width, 1))
+    loss = np.empty((min(rows, size), width))
+    if u_entry is None:  # no accrual: the entry variates are drawn (the stream) but every entry is 0 * u = 0
+        for r0 in range(0, size, rows):
+            rng.random(out=loss[: min(size, r0 + rows) - r0])
+        entry = np.zeros((size, width)) if math.copysign(1.0, accrual) > 0 else np.full((size, width), -0.0)
+    else:
+        entry = np.multiply(u_entry, accrual, out=u_entry)
+    end = None if follow_up is None else accrual + follow_up  # the study's end: cens = end - entry
+    event = np.empty((size, width), bool)
+    cens = np.empty_like(loss) if end is not None and rate > 0 and accrual > 0 else None
+    for r0 in range(0, size, rows):
+        r1 = min(size, r0 + rows)
+        tb, lb = t[r0:r1], loss[: r1 - r0]
+        rng.standard_exponential(out=lb)  # loss variates of these replicates (drawn whatever the settings)
+        if scale is not None:
+            scale(tb, slice(r0, r1))
+        if rate > 0:
+            lb /= rate
+            if end is None:
+                cb = lb
+            elif accrual > 0:
+                cb = np.subtract(end, entry[r0:r1], out=cens[: r1 - r0])
+                np.minimum(cb, lb, out=cb)
+            else:  # no accrual: every entry is 0 and the end of follow-up is one number
+                cb = np.minimum(lb, end, out=lb)
+        elif end is None:
+            cb = math.inf  # no censoring
+        elif accrual > 0:
+            cb = np.subtract(end, entry[r0:r1], out=lb)
+        else:
+            cb = end
+        np.less_equal(tb, cb, out=event[r0:r1])
+        np.minimum(tb, cb, out=tb)
+        if res is not None:
+            tb /= res
+            np.ceil(tb, out=tb)
+            tb *= res
+    return t, event.view(np.int8), entry
 
 
 class SurvivalRules:
