@@ -161,3 +161,32 @@ def test_the_engine_takes_the_batch_path():
     res = sp.run(sp.Scenario(proc, Cox()), reps=200, seed=11, n_jobs=1)
     assert res.paths == {"cox": "batch"}
     assert math.isfinite(res.power) and res.summaries["cox"]["n_ok"] == 200
+
+
+@pytest.mark.parametrize("ties", ["breslow", "efron"])
+def test_missing_times_keep_the_batch_path_as_complete_cases_like_phreg(ties):
+    # 20% of the times hidden (NaN), as a missingness mechanism leaves them: the batch path leaves those rows
+    # out, as the per-replicate path does, and equals statsmodels PHReg fitted on the complete cases
+    from simpower.processes.design import apply_missing
+    from simpower.processes.missing import MCAR
+
+    proc = SurvivalTwoArm(**CENSORED, time_resolution=1.0)
+    b = proc.draw_batch(np.random.default_rng(77), 200)
+    apply_missing(MCAR(rate=0.2), np.random.default_rng(78), b.per_rep["time"], {}, b.per_rep, b.info)
+    assert b.info.get("missing") and np.isnan(b.per_rep["time"]).mean() > 0.15
+    an = Cox(ties=ties)
+    assert an.supports_batch(b)
+    res = an.batch(b)
+    est, se, p = (np.empty(b.size) for _ in range(3))
+    from statsmodels.duration.hazard_regression import PHReg
+
+    for i in range(b.size):
+        r = b.replicate(i)
+        keep = ~np.isnan(r["time"])
+        fit = PHReg(r["time"][keep], r["arm"][keep][:, None].astype(float), status=r["event"][keep], ties=ties).fit()
+        est[i], se[i], p[i] = fit.params[0], fit.bse[0], fit.pvalues[0]
+    np.testing.assert_allclose(res["estimate"], est, rtol=1e-6, atol=1e-12)
+    np.testing.assert_allclose(res["se"], se, rtol=1e-6)
+    assert np.mean((res["pvalue"] < 0.05) == (p < 0.05)) >= 0.999
+    vals, _, _ = rowwise(an, b, np.arange(b.size))
+    np.testing.assert_allclose(res["pvalue"], vals["pvalue"], rtol=1e-6, atol=1e-12)

@@ -461,8 +461,9 @@ class Cox(Analysis):
     before fitting so the engine counts the replicate as fit trouble; the
     fit's own warnings and errors propagate.
 
-    The batch path (layout ``survival``, no padding, arm shared by the
-    replicates) sorts each replicate's times once, reduces every event to one
+    The batch path (layout ``survival``, arm shared by the replicates;
+    padding rows and missing times are left out, complete cases as on the
+    per-replicate path) sorts each replicate's times once, reduces every event to one
     constant of the partial likelihood (:func:`_cox_event_terms`: risk sets
     by reversed cumulative counts per arm, Efron's correction within tie
     groups), and takes plain Newton-Raphson steps from 0 for all replicates
@@ -560,21 +561,26 @@ class Cox(Analysis):
     layouts = ("survival",)
 
     def _supports(self, layout):
-        """No missing outcomes; both arms in a design shared by all replicates (padding rows are left out).
+        """Both arms in a design shared by all replicates (padding rows and missing times are left out:
+        complete cases, as on the per-replicate path).
 
         With ``cov_type = 'cluster'``: a ``cluster`` column and both arm labels (shared or per replicate;
         padding and missing times are left out).
         """
         if self._robust:
             return "cluster" in layout and layout.labels == (0, 1)
-        return not layout.missing and "arm" in layout.shared and layout.labels == (0, 1)
+        return "arm" in layout.shared and layout.labels == (0, 1)
 
     def batch(self, batch):
         if self._robust:
             return self._robust_batch(batch)
         layout = self.batch_layout(batch)
         arm = np.asarray(layout.shared["arm"])
-        time, event, empty = absent_first(layout.time, layout.event, layout.present, arm)
+        present = layout.present
+        if layout.missing:  # a missing time (NaN) leaves its row out, like padding
+            seen = ~np.isnan(np.asarray(layout.time, float))
+            present = seen if present is None else present & seen
+        time, event, empty = absent_first(layout.time, layout.event, present, arm)
         event = np.asarray(event, float)
         beta, info = np.empty(batch.size), np.empty(batch.size)
         ok = np.empty(batch.size, bool)
@@ -585,7 +591,6 @@ class Cox(Analysis):
         # rows the per-replicate path would reject (it raises on them) go to it as well
         valid = np.all(np.isfinite(time) & (time >= 0) & ((event == 0) | (event == 1)), axis=1)
         if empty is not None:  # padding rows sit at -inf (see absent_first): only present rows are checked
-            present = layout.present
             valid = np.all(~present | (np.isfinite(layout.time) & (layout.time >= 0)), axis=1) & ~empty & \
                 np.all((event == 0) | (event == 1), axis=1)
         ok &= valid
