@@ -188,19 +188,26 @@ class Patterns:
         R, S, T = Y.shape
         q = u.shape[-1]
         obs = np.isfinite(Y)
-        code = obs.astype(np.int64) @ (1 << np.arange(T, dtype=np.int64))
-        codes = np.unique(code[code > 0])
+        code = np.zeros((R, S), np.int64)
+        for t in range(T):
+            code += obs[..., t].astype(np.int64) << t
+        codes = np.flatnonzero(np.bincount(code.ravel(), minlength=1 << T)[1:]) + 1   # sorted, as np.unique
         self.masks = ((codes[:, None] >> np.arange(T)) & 1).astype(bool)
         P = codes.size
-        # per pattern, sum over its subjects of z z' with z = (u, y): a batched product per pattern
+        # per pattern, sum over its subjects of z z' with z = (u, y): a batched product per pattern,
+        # a block of replicates at a time (the block's arrays stay in cache)
         Zt = np.concatenate([u, np.where(obs, Y, 0.0)], axis=2)                # (R, S, q+T)
         Z = np.ascontiguousarray(np.swapaxes(Zt, 1, 2))
         ZZ = np.empty((R, P, q + T, q + T))
         n = np.empty((R, P))
         for k in range(P):
-            h = code == codes[k]
-            n[:, k] = h.sum(axis=1)
-            ZZ[:, k] = (Z * h[:, None, :].astype(float)) @ Zt
+            n[:, k] = (code == codes[k]).sum(axis=1)
+        step = max(1, 2**17 // max(S * (q + T), 1))
+        for r0 in range(0, R, step):
+            r1 = min(R, r0 + step)
+            for k in range(P):
+                h = code[r0:r1] == codes[k]
+                ZZ[r0:r1, k] = (Z[r0:r1] * h[:, None, :].astype(float)) @ Zt[r0:r1]
         self.n = n
         self.U = np.ascontiguousarray(ZZ[..., :q, :q])
         self.M = np.ascontiguousarray(ZZ[..., q:, :q])
