@@ -173,6 +173,12 @@ def standardise(Y, sub_arm, b=None):
     return Ys, np.stack(cols, axis=-1), scale
 
 
+def _everything(sel, R) -> bool:
+    """Whether the integer index ``sel`` selects all R rows in order (a take that would only copy)."""
+    sel = np.asarray(sel)
+    return sel.dtype.kind in "iu" and sel.shape == (R,) and bool(np.all(sel == np.arange(R)))
+
+
 class Patterns:
     """Per-pattern sufficient statistics of a cube of outcomes.
 
@@ -222,6 +228,8 @@ class Patterns:
         self.joint = self.joint.reshape(R, T, T)
 
     def take(self, sel) -> "Patterns":
+        if _everything(sel, self.R):
+            return self
         out = object.__new__(Patterns)
         out.__dict__.update(self.__dict__)
         for k in ("n", "U", "M", "C", "n_obs", "n_subjects", "visit_U", "joint"):
@@ -433,7 +441,7 @@ class Evaluation:
     """
 
     #: per-replicate arrays (leading axis: replicate) a stage may have stored
-    _ROWS = ("theta", "Sigma", "J", "logdets", "W", "A", "Ainv", "B", "dev", "K", "G", "grad", "info", "Ak", "D")
+    _ROWS = ("theta", "Sigma", "J", "W", "Ainv", "B", "dev", "K", "G", "grad", "info", "Ak", "D")
 
     def __init__(self, theta, st: Patterns, kind: str, gradient: bool = True, information: bool = False):
         R, T, q, P = st.R, st.T, st.q, st.P
@@ -466,8 +474,11 @@ class Evaluation:
     # -- selecting and assembling replicates ------------------------------------------------------
     def take(self, sel, st: Patterns | None = None) -> "Evaluation":
         """The replicates ``sel`` (with their Patterns ``st``, else ``self.st.take(sel)``)."""
+        if _everything(sel, self.st.R) and (st is None or st is self.st):
+            return self
         out = object.__new__(Evaluation)
         out.__dict__.update(self.__dict__)
+        out.A = out.logdets = None                              # criterion-stage only: not carried
         for k in self._ROWS:
             v = getattr(self, k)
             if v is not None:
@@ -479,9 +490,16 @@ class Evaluation:
     def merge(parts, st: Patterns) -> "Evaluation":
         """One evaluation of the replicates of ``st`` from ``parts`` [(evaluation, its rows, their positions
         in st)] covering them all; a stage is kept only if every part has it."""
+        first, sel, pos = parts[0]
+        if len(parts) == 1 and _everything(sel, first.st.R) and _everything(pos, st.R):
+            out = object.__new__(Evaluation)
+            out.__dict__.update(first.__dict__)
+            out.st = st
+            return out
         out = object.__new__(Evaluation)
-        out.__dict__.update(parts[0][0].__dict__)
+        out.__dict__.update(first.__dict__)
         out.st = st
+        out.A = out.logdets = None                              # criterion-stage only: not carried
         for k in Evaluation._ROWS:
             vals = [getattr(e, k) for e, _, _ in parts]
             if any(v is None for v in vals):
@@ -581,6 +599,35 @@ def reml_deviance(Sigma, Y, u) -> np.ndarray:
 # ---------------------------------------------------------------------------
 # fitting
 # ---------------------------------------------------------------------------
+def complete_data_reml(st: Patterns):
+    """Replicates (R,) in which every subject is seen at every visit, and their REML Sigma (k, T, T).
+
+    With complete data every visit has the same regressors u, so GLS is least squares visit by visit
+    (Zellner 1962) and the REML estimate of an unstructured Sigma is the residual cross-product matrix
+    over N - q (the multivariate linear model's unbiased estimate; Anderson 2003, ch. 8). Replicates
+    whose estimate is not positive definite are left out (fitted iteratively).
+    """
+    full = np.flatnonzero(st.masks.all(axis=1))
+    closed = np.zeros(st.R, bool)
+    if full.size == 0:
+        return closed, np.zeros((0, st.T, st.T))
+    k = int(full[0])
+    others = np.delete(np.arange(st.P), k)
+    N = st.n[:, k]
+    closed = (st.n[:, others] == 0).all(axis=1) & (N > st.q + st.T)
+    r = np.flatnonzero(closed)
+    M, U, C = st.M[r, k], st.U[r, k], st.C[r, k]
+    with np.errstate(all="ignore"):
+        B = np.linalg.solve(U, np.swapaxes(M, 1, 2))                          # (k, q, T): U^-1 M'
+        E = C - M @ B
+        E = 0.5 * (E + np.swapaxes(E, 1, 2))
+        sigma = E / (N[r] - st.q)[:, None, None]
+        ev = np.linalg.eigvalsh(sigma)
+    pd = np.isfinite(ev).all(axis=1) & (ev[:, 0] > 1e-10 * np.maximum(ev[:, -1], 1e-300))
+    closed[r[~pd]] = False
+    return closed, sigma[pd]
+
+
 def fisher_scoring(theta, st: Patterns, kind: str, keep: bool = False):
     """Batched Fisher scoring with step halving; returns theta (R, m), a converged flag (R,) and a broken flag (R,).
 
@@ -934,20 +981,30 @@ def fit_batch(Y, u, scale, analysis: MMRM) -> BatchResult:
     fit = np.flatnonzero(~bad)
     if fit.size:
         sub = st.take(fit)
-        theta0 = theta_of(start_sigma(sub), kind)
-        theta, _, broken, ev = fisher_scoring(theta0, sub, kind, keep=True)
-        ok = ~broken
-        if ok.any():
-            sub_ok = ev.st
-            ev, dec, singular = _at_optimum(theta[ok], sub_ok, kind, ev)
-            L = contrast_vector(T, q, analysis.contrast)
-            e, v, d = inference(ev, sub_ok, L, analysis.df_method)
-            rows = fit[ok]
-            est[rows], var[rows], df[rows] = e, v, d
-            not_conv = ~np.isfinite(dec) | (dec > DECREMENT_TOL)   # the per-replicate path's criterion
-            flag_conv[rows] = not_conv
-            flag_sing[rows] = singular & ~not_conv
-        flag_conv[fit[broken]] = True
+        closed, sigma_c = complete_data_reml(sub) if kind == "unstructured" else (np.zeros(sub.R, bool), None)
+        groups = []                          # (rows of sub, theta, broken, evaluation at theta or None)
+        if closed.any():
+            c = np.flatnonzero(closed)
+            groups.append((c, theta_of(sigma_c, kind), np.zeros(c.size, bool), None))
+        rest = np.flatnonzero(~closed)
+        if rest.size:
+            sub_r = sub.take(rest)
+            theta0 = theta_of(start_sigma(sub_r), kind)
+            theta, _, broken, ev = fisher_scoring(theta0, sub_r, kind, keep=True)
+            groups.append((rest, theta, broken, ev))
+        L = contrast_vector(T, q, analysis.contrast)
+        for at, theta, broken, ev in groups:
+            ok = ~broken
+            if ok.any():
+                sub_ok = ev.st if ev is not None else sub.take(at[ok])
+                ev, dec, singular = _at_optimum(theta[ok], sub_ok, kind, ev)
+                e, v, d = inference(ev, sub_ok, L, analysis.df_method)
+                rows = fit[at[ok]]
+                est[rows], var[rows], df[rows] = e, v, d
+                not_conv = ~np.isfinite(dec) | (dec > DECREMENT_TOL)   # the per-replicate path's criterion
+                flag_conv[rows] = not_conv
+                flag_sing[rows] = singular & ~not_conv
+            flag_conv[fit[at[broken]]] = True
     out = analysis._fields(scale * est, scale * np.sqrt(var), df)
     res = BatchResult(**{k: out[k] for k in ("pvalue", "estimate", "se", "ci_low", "ci_high")})
     if bad.any():
