@@ -48,7 +48,11 @@ step halving) for all replicates at once, on arrays with a leading replicate
 axis, from a pairwise moment estimate of Sigma; the per-replicate path
 minimises the same REML criterion (analytic gradient) with scipy's BFGS from
 the same start (restarted if it stops short). Both call a fit converged when
-the Newton decrement is below :data:`DECREMENT_TOL`. Outcomes (and the baseline) are centred and
+the Newton decrement is below :data:`DECREMENT_TOL`. An evaluation is staged
+(criterion, gradient, information) and kept between steps and for the final
+information, so nothing is computed twice at one theta. With complete data
+and an unstructured Sigma the batch path takes the closed form
+(:func:`complete_data_reml`: residual cross-products over N - q). Outcomes (and the baseline) are centred and
 scaled per replicate before fitting; results are returned in outcome units.
 
 Trouble, per replicate, on both paths: a design that cannot be fitted (a
