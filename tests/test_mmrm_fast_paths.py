@@ -144,7 +144,8 @@ def test_pattern_sums_equal_a_subject_by_subject_loop():
     for r in range(R):
         for k, mask in enumerate(st.masks):
             rows = [i for i in range(S) if np.array_equal(obs[r, i], mask)]
-            z = np.array([np.concatenate([u[r, i], np.where(obs[r, i], Y[r, i], 0.0)]) for i in rows]).reshape(-1, 3 + T)
+            z = np.array([np.concatenate([u[r, i], np.where(obs[r, i], Y[r, i], 0.0)]) for i in rows])
+            z = z.reshape(-1, 3 + T)
             zz = z.T @ z
             assert st.n[r, k] == len(rows)
             np.testing.assert_allclose(st.U[r, k], zz[:3, :3], rtol=1e-12, atol=1e-12)
