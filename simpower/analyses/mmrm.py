@@ -48,7 +48,11 @@ step halving) for all replicates at once, on arrays with a leading replicate
 axis, from a pairwise moment estimate of Sigma; the per-replicate path
 minimises the same REML criterion (analytic gradient) with scipy's BFGS from
 the same start (restarted if it stops short). Both call a fit converged when
-the Newton decrement is below :data:`DECREMENT_TOL`. Outcomes (and the baseline) are centred and
+the Newton decrement is below :data:`DECREMENT_TOL`. An evaluation is staged
+(criterion, gradient, information) and kept between steps and for the final
+information, so nothing is computed twice at one theta. With complete data
+and an unstructured Sigma the batch path takes the closed form
+(:func:`complete_data_reml`: residual cross-products over N - q). Outcomes (and the baseline) are centred and
 scaled per replicate before fitting; results are returned in outcome units.
 
 Trouble, per replicate, on both paths: a design that cannot be fitted (a
@@ -173,6 +177,12 @@ def standardise(Y, sub_arm, b=None):
     return Ys, np.stack(cols, axis=-1), scale
 
 
+def _everything(sel, R) -> bool:
+    """Whether the integer index ``sel`` selects all R rows in order (a take that would only copy)."""
+    sel = np.asarray(sel)
+    return sel.dtype.kind in "iu" and sel.shape == (R,) and bool(np.all(sel == np.arange(R)))
+
+
 class Patterns:
     """Per-pattern sufficient statistics of a cube of outcomes.
 
@@ -188,19 +198,26 @@ class Patterns:
         R, S, T = Y.shape
         q = u.shape[-1]
         obs = np.isfinite(Y)
-        code = obs.astype(np.int64) @ (1 << np.arange(T, dtype=np.int64))
-        codes = np.unique(code[code > 0])
+        code = np.zeros((R, S), np.int64)
+        for t in range(T):
+            code += obs[..., t].astype(np.int64) << t
+        codes = np.flatnonzero(np.bincount(code.ravel(), minlength=1 << T)[1:]) + 1   # sorted, as np.unique
         self.masks = ((codes[:, None] >> np.arange(T)) & 1).astype(bool)
         P = codes.size
-        # per pattern, sum over its subjects of z z' with z = (u, y): a batched product per pattern
+        # per pattern, sum over its subjects of z z' with z = (u, y): a batched product per pattern,
+        # a block of replicates at a time (the block's arrays stay in cache)
         Zt = np.concatenate([u, np.where(obs, Y, 0.0)], axis=2)                # (R, S, q+T)
         Z = np.ascontiguousarray(np.swapaxes(Zt, 1, 2))
         ZZ = np.empty((R, P, q + T, q + T))
         n = np.empty((R, P))
         for k in range(P):
-            h = code == codes[k]
-            n[:, k] = h.sum(axis=1)
-            ZZ[:, k] = (Z * h[:, None, :].astype(float)) @ Zt
+            n[:, k] = (code == codes[k]).sum(axis=1)
+        step = max(1, 2**17 // max(S * (q + T), 1))
+        for r0 in range(0, R, step):
+            r1 = min(R, r0 + step)
+            for k in range(P):
+                h = code[r0:r1] == codes[k]
+                ZZ[r0:r1, k] = (Z[r0:r1] * h[:, None, :].astype(float)) @ Zt[r0:r1]
         self.n = n
         self.U = np.ascontiguousarray(ZZ[..., :q, :q])
         self.M = np.ascontiguousarray(ZZ[..., q:, :q])
@@ -215,6 +232,8 @@ class Patterns:
         self.joint = self.joint.reshape(R, T, T)
 
     def take(self, sel) -> "Patterns":
+        if _everything(sel, self.R):
+            return self
         out = object.__new__(Patterns)
         out.__dict__.update(self.__dict__)
         for k in ("n", "U", "M", "C", "n_obs", "n_subjects", "visit_U", "joint"):
@@ -418,13 +437,24 @@ class Evaluation:
 
     All patterns at once: the sums over patterns are batched matrix products over a (replicate,
     pattern) stack, with the index pairs of a Kronecker product laid out so that each is one product.
+
+    Staged: the criterion first, then (:meth:`add_gradient`) the gradient and (:meth:`add_information`)
+    the expected information, each from the stored pieces of the stage before; :meth:`take` and
+    :meth:`merge` select and assemble replicates. Every stage works replicate by replicate, so a
+    replicate's numbers do not depend on which others are evaluated with it or in which stage order.
     """
+
+    #: per-replicate arrays (leading axis: replicate) a stage may have stored
+    _ROWS = ("theta", "Sigma", "J", "W", "Ainv", "B", "dev", "K", "G", "grad", "info", "Ak", "D")
 
     def __init__(self, theta, st: Patterns, kind: str, gradient: bool = True, information: bool = False):
         R, T, q, P = st.R, st.T, st.q, st.P
         p, TT, qq = T * q, T * T, q * q
-        self.Sigma, J = sigma_of(theta, kind, T, jacobian=gradient or information)
-        logdets, W = _pattern_inverses(self.Sigma, st.masks)
+        self.st, self.kind = st, kind
+        self.theta = np.asarray(theta, float)
+        self.Sigma, self.J = sigma_of(theta, kind, T, jacobian=gradient or information)
+        self.logdets, W = _pattern_inverses(self.Sigma, st.masks)
+        self.W = W
         n = st.n
         Uf = st.U.reshape(R, P, qq)
         # X'V^-1 X = sum_p W_p (x) U_p, X'V^-1 y = sum_p W_p M_p, y'V^-1 y = sum_p tr(W_p C_p)
@@ -435,12 +465,68 @@ class Evaluation:
         La = np.linalg.cholesky(A)
         self.Ainv = np.linalg.inv(A)
         beta = (self.Ainv @ c.reshape(R, p, 1))[..., 0]
-        self.B = B = beta.reshape(R, T, q)
-        self.dev = ((n * logdets).sum(1) + 2.0 * np.log(np.diagonal(La, axis1=1, axis2=2)).sum(1) + yWy
+        self.B = beta.reshape(R, T, q)
+        self.dev = ((n * self.logdets).sum(1) + 2.0 * np.log(np.diagonal(La, axis1=1, axis2=2)).sum(1) + yWy
                     - np.einsum("ri,ri->r", c.reshape(R, p), beta) + (st.n_obs - p) * math.log(2.0 * math.pi))
         self.A = A
-        if not (gradient or information):
-            return
+        self.K = self.G = self.grad = self.info = self.Ak = self.D = None
+        if gradient or information:
+            self.add_gradient()
+        if information:
+            self.add_information()
+
+    # -- selecting and assembling replicates ------------------------------------------------------
+    def take(self, sel, st: Patterns | None = None) -> "Evaluation":
+        """The replicates ``sel`` (with their Patterns ``st``, else ``self.st.take(sel)``)."""
+        if _everything(sel, self.st.R) and (st is None or st is self.st):
+            return self
+        out = object.__new__(Evaluation)
+        out.__dict__.update(self.__dict__)
+        out.A = out.logdets = None                              # criterion-stage only: not carried
+        for k in self._ROWS:
+            v = getattr(self, k)
+            if v is not None:
+                setattr(out, k, v[sel])
+        out.st = self.st.take(sel) if st is None else st
+        return out
+
+    @staticmethod
+    def merge(parts, st: Patterns) -> "Evaluation":
+        """One evaluation of the replicates of ``st`` from ``parts`` [(evaluation, its rows, their positions
+        in st)] covering them all; a stage is kept only if every part has it."""
+        first, sel, pos = parts[0]
+        if len(parts) == 1 and _everything(sel, first.st.R) and _everything(pos, st.R):
+            out = object.__new__(Evaluation)
+            out.__dict__.update(first.__dict__)
+            out.st = st
+            return out
+        out = object.__new__(Evaluation)
+        out.__dict__.update(first.__dict__)
+        out.st = st
+        out.A = out.logdets = None                              # criterion-stage only: not carried
+        for k in Evaluation._ROWS:
+            vals = [getattr(e, k) for e, _, _ in parts]
+            if any(v is None for v in vals):
+                setattr(out, k, None)
+                continue
+            arr = np.empty((st.R,) + vals[0].shape[1:], vals[0].dtype)
+            for v, (_, sel, pos) in zip(vals, parts):
+                arr[pos] = v[sel]
+            setattr(out, k, arr)
+        return out
+
+    # -- stages -------------------------------------------------------------------------------------
+    def add_gradient(self) -> "Evaluation":
+        """Store ``grad`` = d(-2 l_R)/dtheta (R, m) (and the pieces the information needs)."""
+        if self.grad is not None:
+            return self
+        st, R = self.st, self.st.R
+        T, q, P = st.T, st.q, st.P
+        TT, qq = T * T, q * q
+        if self.J is None:
+            self.J = sigma_of(self.theta, self.kind, T)[1]
+        W, B, n = self.W, self.B, st.n
+        Uf = st.U.reshape(R, P, qq)
         # K_p = sum_i X_i A^-1 X_i' over the pattern's subjects: K_p[j, l] = sum_km Ainv[j,k,l,m] U_p[k,m]
         Ai = self.Ainv.reshape(R, T, q, T, q).transpose(0, 1, 3, 2, 4).reshape(R, TT, qq)
         K = (Ai @ Uf.transpose(0, 2, 1)).transpose(0, 2, 1).reshape(R, P, T, T)
@@ -451,36 +537,60 @@ class Evaluation:
         BUB = (BU.reshape(R, P * T, q) @ Bt).reshape(R, P, T, T)
         inner = n[..., None, None] * self.Sigma[:, None] - (st.C - MB - MB.transpose(0, 1, 3, 2) + BUB) - K
         G = (W @ inner @ W).sum(axis=1)
+        self.K = K
         self.G = G                                              # d(-2 l_R) = tr(G dSigma)
-        self.grad = (J.reshape(R, -1, TT) @ G.reshape(R, TT, 1))[..., 0]   # d(-2 l_R)/dtheta
-        if not information:
-            return
+        self.grad = (self.J.reshape(R, -1, TT) @ G.reshape(R, TT, 1))[..., 0]   # d(-2 l_R)/dtheta
+        return self
+
+    def add_information(self) -> "Evaluation":
+        """Store ``info``, the expected information of l_R in theta (R, m, m), with ``Ak`` and ``D``."""
+        if self.info is not None:
+            return self
+        self.add_gradient()
+        st, R = self.st, self.st.R
+        T, q, P = st.T, st.q, st.P
+        p, TT, qq = T * q, T * T, q * q
+        W, K, n = self.W, self.K, st.n
+        Uf = st.U.reshape(R, P, qq)
         # expected information in the free elements sigma_ab (a >= b) of Sigma, then D' I D with
         # D = dsigma/dtheta; S_ab = E_ab + E_ba (E_aa on the diagonal). W and X are symmetric.
         a_, b_ = np.tril_indices(T)
         half = np.where(a_ == b_, 0.5, 1.0)
         n_s = a_.size
         X = n[..., None, None] * W - 2.0 * W @ K @ W
-        # tr(X S_ab W S_cd) from Q[i, j, k, l] = sum_p X_p[l, i] W_p[j, k]
-        Q = (X.reshape(R, P, TT).transpose(0, 2, 1) @ W.reshape(R, P, TT)).reshape(R, T, T, T, T)  # [i,l,j,k]
-        Q = Q.transpose(0, 1, 3, 4, 2)
-        Q = Q + Q.transpose(0, 2, 1, 3, 4)
-        Q = Q + Q.transpose(0, 1, 2, 4, 3)
-        info = Q[:, a_, b_][:, :, a_, b_] * half[:, None] * half[None, :]
+        # tr(X S_ab W S_cd) from Q[i, l, j, k] = sum_p X_p[l, i] W_p[j, k], symmetrised in (i, j) and
+        # in (k, l): Q(a, b, c, d) + Q(b, a, c, d) + (Q(a, b, d, c) + Q(b, a, d, c)), read off at the pairs
+        Q = (X.reshape(R, P, TT).transpose(0, 2, 1) @ W.reshape(R, P, TT)).reshape(R, T**4)
+        i_, j_ = a_[:, None], b_[:, None]
+        k_, l_ = a_[None, :], b_[None, :]
+
+        def at(i, j, k, l):                                     # noqa: E741 - Q[i, j, k, l] in [i, l, j, k] storage
+            return np.take(Q, (((i * T + l) * T + j) * T + k).ravel(), axis=1).reshape(R, n_s, n_s)
+
+        info = (((at(i_, j_, k_, l_) + at(j_, i_, k_, l_)) + (at(i_, j_, l_, k_) + at(j_, i_, l_, k_)))
+                * half[:, None] * half[None, :])
         # A_ab = X' V^-1 S_ab V^-1 X = sum_p (W_p S_ab W_p) (x) U_p, from sum_p W_p[i,x] W_p[j,y] U_p[k,m]
         Wf = W.reshape(R, P, TT)
         WW = (Wf[..., :, None] * Wf[..., None, :]).reshape(R, P, TT * TT)
-        T4 = (WW.transpose(0, 2, 1) @ Uf).reshape(R, T, T, T, T, q, q)                # [i,x,j,y,k,m]
-        T4 = T4.transpose(0, 1, 3, 2, 5, 4, 6)                                        # [i,j,x,k,y,m]
-        T4 = T4 + T4.transpose(0, 2, 1, 3, 4, 5, 6)
-        Ak = T4[:, a_, b_].reshape(R, n_s, p, p) * half[:, None, None]
+        T4 = (WW.transpose(0, 2, 1) @ Uf).reshape(R, -1)                          # [i,x,j,y,k,m]
+        x_ = np.arange(T)[None, :, None, None, None]
+        k2 = np.arange(q)[None, None, :, None, None]
+        y_ = np.arange(T)[None, None, None, :, None]
+        m_ = np.arange(q)[None, None, None, None, :]
+        ia, ib = a_[:, None, None, None, None], b_[:, None, None, None, None]
+
+        def t4(i, j):                                           # [pair, x, k, y, m]: T4[i, x, j, y, k, m]
+            return np.take(T4, (((((i * T + x_) * T + j) * T + y_) * q + k2) * q + m_).ravel(), axis=1)
+
+        Ak = (t4(ia, ib) + t4(ib, ia)).reshape(R, n_s, p, p) * half[:, None, None]
         AiAk = (self.Ainv @ Ak.transpose(0, 2, 1, 3).reshape(R, p, n_s * p)).reshape(R, p, n_s, p)
         AiAk = AiAk.transpose(0, 2, 1, 3)                       # A^-1 A_ab
         info = info + AiAk.reshape(R, n_s, p * p) @ np.swapaxes(AiAk, 2, 3).reshape(R, n_s, p * p).transpose(0, 2, 1)
-        D = J[:, :, a_, b_].transpose(0, 2, 1)                  # (R, n_sigma, m)
+        D = self.J[:, :, a_, b_].transpose(0, 2, 1)             # (R, n_sigma, m)
         self.info = 0.5 * np.swapaxes(D, 1, 2) @ info @ D       # expected information of l_R in theta
         self.Ak = Ak                                            # X' V^-1 S_ab V^-1 X
         self.D = D
+        return self
 
 
 def reml_deviance(Sigma, Y, u) -> np.ndarray:
@@ -493,12 +603,44 @@ def reml_deviance(Sigma, Y, u) -> np.ndarray:
 # ---------------------------------------------------------------------------
 # fitting
 # ---------------------------------------------------------------------------
-def fisher_scoring(theta, st: Patterns, kind: str):
+def complete_data_reml(st: Patterns):
+    """Replicates (R,) in which every subject is seen at every visit, and their REML Sigma (k, T, T).
+
+    With complete data every visit has the same regressors u, so GLS is least squares visit by visit
+    (Zellner 1962) and the REML estimate of an unstructured Sigma is the residual cross-product matrix
+    over N - q (the multivariate linear model's unbiased estimate; Anderson 2003, ch. 8). Replicates
+    whose estimate is not positive definite are left out (fitted iteratively).
+    """
+    full = np.flatnonzero(st.masks.all(axis=1))
+    closed = np.zeros(st.R, bool)
+    if full.size == 0:
+        return closed, np.zeros((0, st.T, st.T))
+    k = int(full[0])
+    others = np.delete(np.arange(st.P), k)
+    N = st.n[:, k]
+    closed = (st.n[:, others] == 0).all(axis=1) & (N > st.q + st.T)
+    r = np.flatnonzero(closed)
+    M, U, C = st.M[r, k], st.U[r, k], st.C[r, k]
+    with np.errstate(all="ignore"):
+        B = np.linalg.solve(U, np.swapaxes(M, 1, 2))                          # (k, q, T): U^-1 M'
+        E = C - M @ B
+        E = 0.5 * (E + np.swapaxes(E, 1, 2))
+        sigma = E / (N[r] - st.q)[:, None, None]
+        ev = np.linalg.eigvalsh(sigma)
+    pd = np.isfinite(ev).all(axis=1) & (ev[:, 0] > 1e-10 * np.maximum(ev[:, -1], 1e-300))
+    closed[r[~pd]] = False
+    return closed, sigma[pd]
+
+
+def fisher_scoring(theta, st: Patterns, kind: str, keep: bool = False):
     """Batched Fisher scoring with step halving; returns theta (R, m), a converged flag (R,) and a broken flag (R,).
 
     The expected information changes slowly, so it is recomputed every :data:`REFRESH` iterations
     (chord steps in between), and for a replicate whose last step had to be shortened. A step is
-    taken only if it lowers the criterion (else halved, up to 30 times).
+    taken only if it lowers the criterion (else halved, up to 30 times). The criterion at an accepted
+    full step is kept for the next iteration (not evaluated twice). With ``keep``, also returns the
+    evaluation (with the gradient) at the returned theta of the replicates not broken, in order:
+    the same numbers as a fresh :class:`Evaluation` there.
     """
     theta = np.array(theta, float)
     R, m = theta.shape
@@ -507,6 +649,8 @@ def fisher_scoring(theta, st: Patterns, kind: str):
     stale = np.ones(R, bool)                 # the stored information must be recomputed
     info = np.zeros((R, m, m))
     active = np.arange(R)
+    cached = None                            # (evaluation, its rows, their positions in active)
+    final = []                               # (evaluation, its rows, replicates) at the replicates' final theta
     for it in range(MAX_ITER):
         if active.size == 0:
             break
@@ -515,30 +659,38 @@ def fisher_scoring(theta, st: Patterns, kind: str):
         sub = st.take(active)
         th = theta[active]
         need = stale[active]
-        ev, grad, ok = _score_and_information(th, sub, kind, need, info, active)
+        ev, at, grad, ok = _score_and_information(th, sub, kind, need, info, active, cached)
+        dev_all = np.full(active.size, np.nan)
+        dev_all[at >= 0] = ev.dev
         stale[active[need & ok]] = False
         broken[active[~ok]] = True
         with np.errstate(all="ignore"):
             step = np.linalg.solve(info[active][ok], -0.5 * grad[ok][..., None])[..., 0]
-        act, th, dev0 = active[ok], th[ok], ev[ok]
+        act, th, dev0, at = active[ok], th[ok], dev_all[ok], at[ok]
         finite = np.all(np.isfinite(step), axis=1)
         broken[act[~finite]] = True
         small = finite & (np.abs(step).max(axis=1) < STEP_TOL)
         done[act[small]] = True
+        final.append((ev, at[small], act[small]))
         move = finite & ~small
-        idx, th, step, dev0 = act[move], th[move], step[move], dev0[move]
+        idx, th, step, dev0, at = act[move], th[move], step[move], dev0[move], at[move]
         t = np.ones(idx.size)
         accepted = np.zeros(idx.size, bool)
         sub = st.take(idx)
+        full = None
         for half in range(30):
             cand = th + t[:, None] * step
             with np.errstate(all="ignore"):
                 try:
-                    dev = Evaluation(cand, sub, kind, gradient=False).dev
+                    ev_c = Evaluation(cand, sub, kind, gradient=False)
+                    dev = ev_c.dev
                 except np.linalg.LinAlgError:
+                    ev_c = None
                     dev = np.array([_dev_or_inf(cand[[i]], sub.take([i]), kind) for i in range(idx.size)])
             good = np.isfinite(dev) & (dev <= dev0 + 1e-12 * np.abs(dev0)) & ~accepted
             theta[idx[good]] = cand[good]
+            if half == 0 and ev_c is not None:
+                full = (ev_c, good)
             if half > 0:
                 stale[idx[good]] = True      # a shortened step: fresh information next time
             accepted |= good
@@ -547,40 +699,71 @@ def fisher_scoring(theta, st: Patterns, kind: str):
             t = np.where(accepted, t, 0.5 * t)
         # no decrease along the scoring direction at any step: at the optimum up to rounding
         done[idx[~accepted]] = True
+        final.append((ev, at[~accepted], idx[~accepted]))
         active = idx[accepted]
-    return theta, done & ~broken, broken
+        cached = None if full is None else (full[0], np.flatnonzero(full[1]), np.flatnonzero(full[1][accepted]))
+    if not keep:
+        return theta, done & ~broken, broken
+    rows = np.flatnonzero(~broken)
+    pos = np.full(R, -1)
+    pos[rows] = np.arange(rows.size)
+    parts = []
+    for e, sel, r in final:
+        mine = pos[r] >= 0
+        if mine.any():
+            parts.append((e, sel[mine], pos[r][mine]))
+    left = np.ones(rows.size, bool)
+    for _, _, p in parts:
+        left[p] = False
+    if left.any():                           # still moving at MAX_ITER: evaluate afresh
+        lr = rows[left]
+        with np.errstate(all="ignore"):
+            parts.append((Evaluation(theta[lr], st.take(lr), kind), np.arange(lr.size), np.flatnonzero(left)))
+    with np.errstate(all="ignore"):
+        ev_final = Evaluation.merge(parts, st.take(rows)).add_gradient()
+    return theta, done & ~broken, broken, ev_final
 
 
-def _score_and_information(th, sub, kind, need, info, active):
+def _score_and_information(th, sub, kind, need, info, active, cached=None):
     """Criterion and gradient at ``th``; the information of the replicates ``need`` stored into ``info``.
 
-    Returns the criterion (n,), the gradient (n, m) and which replicates could be evaluated (n,).
+    ``cached``: (evaluation, its rows, their positions) of replicates whose criterion at ``th`` is known.
+    Returns the evaluation (with the gradient) of the replicates that could be evaluated, the position
+    of each replicate in it (n,) (-1: not evaluated), the gradient (n, m) and which replicates could be
+    evaluated (n,).
     """
     n = th.shape[0]
     ok = np.ones(n, bool)
-    dev = np.full(n, np.nan)
     grad = np.full(th.shape, np.nan)
-    try:
-        with np.errstate(all="ignore"):
-            ev = Evaluation(th, sub, kind)
-            dev[:], grad[:] = ev.dev, ev.grad
-            if need.any():
-                rows = np.flatnonzero(need)
-                info[active[rows]] = Evaluation(th[rows], sub.take(rows), kind, information=True).info
-    except np.linalg.LinAlgError:                # some replicate broke: one by one
-        for i in range(n):
+    parts = []
+    fresh = np.ones(n, bool)
+    if cached is not None:
+        parts.append(cached)
+        fresh[cached[2]] = False
+    rest = np.flatnonzero(fresh)
+    with np.errstate(all="ignore"):
+        if rest.size:
             try:
-                with np.errstate(all="ignore"):
-                    e1 = Evaluation(th[[i]], sub.take([i]), kind, information=bool(need[i]))
-                dev[i], grad[i] = e1.dev[0], e1.grad[0]
-                if need[i]:
-                    info[active[i]] = e1.info[0]
-            except np.linalg.LinAlgError:
-                ok[i] = False
-    ok &= np.isfinite(dev) & np.all(np.isfinite(grad), axis=1)
+                parts.append((Evaluation(th[rest], sub.take(rest), kind, gradient=False), np.arange(rest.size), rest))
+            except np.linalg.LinAlgError:        # some replicate broke: one by one
+                for i in rest:
+                    try:
+                        parts.append((Evaluation(th[[i]], sub.take([i]), kind, gradient=False), np.array([0]),
+                                      np.array([i])))
+                    except np.linalg.LinAlgError:
+                        ok[i] = False
+        good = np.flatnonzero(ok)
+        at = np.full(n, -1)
+        at[good] = np.arange(good.size)
+        ev = Evaluation.merge([(e, s, at[p]) for e, s, p in parts], sub.take(good)).add_gradient()
+        grad[good] = ev.grad
+        rows = np.flatnonzero(need[good])
+        if rows.size:
+            info[active[good[rows]]] = ev.take(rows).add_information().info
+    ok[good] &= np.isfinite(ev.dev) & np.all(np.isfinite(ev.grad), axis=1)
     with np.errstate(all="ignore"):
         ok &= np.all(np.isfinite(info[active]), axis=(1, 2))
-    return dev, grad, ok
+    return ev, at, grad, ok
 
 
 def _dev_or_inf(theta, st, kind):
@@ -590,10 +773,13 @@ def _dev_or_inf(theta, st, kind):
         return math.inf
 
 
-def _at_optimum(theta, st, kind):
-    """Evaluation with the information at theta, the Newton decrement (R,) and the singular flag (R,)."""
+def _at_optimum(theta, st, kind, ev=None):
+    """Evaluation with the information at theta, the Newton decrement (R,) and the singular flag (R,).
+
+    ``ev``: the evaluation at theta if already made (its information is added).
+    """
     with np.errstate(all="ignore"):
-        ev = Evaluation(theta, st, kind, information=True)
+        ev = Evaluation(theta, st, kind, information=True) if ev is None else ev.add_information()
         s = -0.5 * ev.grad
         try:
             dec = np.einsum("ri,ri->r", s, np.linalg.solve(ev.info, s[..., None])[..., 0])
@@ -799,20 +985,30 @@ def fit_batch(Y, u, scale, analysis: MMRM) -> BatchResult:
     fit = np.flatnonzero(~bad)
     if fit.size:
         sub = st.take(fit)
-        theta0 = theta_of(start_sigma(sub), kind)
-        theta, _, broken = fisher_scoring(theta0, sub, kind)
-        ok = ~broken
-        if ok.any():
-            sub_ok = sub.take(np.flatnonzero(ok))
-            ev, dec, singular = _at_optimum(theta[ok], sub_ok, kind)
-            L = contrast_vector(T, q, analysis.contrast)
-            e, v, d = inference(ev, sub_ok, L, analysis.df_method)
-            rows = fit[ok]
-            est[rows], var[rows], df[rows] = e, v, d
-            not_conv = ~np.isfinite(dec) | (dec > DECREMENT_TOL)   # the per-replicate path's criterion
-            flag_conv[rows] = not_conv
-            flag_sing[rows] = singular & ~not_conv
-        flag_conv[fit[broken]] = True
+        closed, sigma_c = complete_data_reml(sub) if kind == "unstructured" else (np.zeros(sub.R, bool), None)
+        groups = []                          # (rows of sub, theta, broken, evaluation at theta or None)
+        if closed.any():
+            c = np.flatnonzero(closed)
+            groups.append((c, theta_of(sigma_c, kind), np.zeros(c.size, bool), None))
+        rest = np.flatnonzero(~closed)
+        if rest.size:
+            sub_r = sub.take(rest)
+            theta0 = theta_of(start_sigma(sub_r), kind)
+            theta, _, broken, ev = fisher_scoring(theta0, sub_r, kind, keep=True)
+            groups.append((rest, theta, broken, ev))
+        L = contrast_vector(T, q, analysis.contrast)
+        for at, theta, broken, ev in groups:
+            ok = ~broken
+            if ok.any():
+                sub_ok = ev.st if ev is not None else sub.take(at[ok])
+                ev, dec, singular = _at_optimum(theta[ok], sub_ok, kind, ev)
+                e, v, d = inference(ev, sub_ok, L, analysis.df_method)
+                rows = fit[at[ok]]
+                est[rows], var[rows], df[rows] = e, v, d
+                not_conv = ~np.isfinite(dec) | (dec > DECREMENT_TOL)   # the per-replicate path's criterion
+                flag_conv[rows] = not_conv
+                flag_sing[rows] = singular & ~not_conv
+            flag_conv[fit[at[broken]]] = True
     out = analysis._fields(scale * est, scale * np.sqrt(var), df)
     res = BatchResult(**{k: out[k] for k in ("pvalue", "estimate", "se", "ci_low", "ci_high")})
     if bad.any():
