@@ -70,6 +70,7 @@ per-replicate path raises ``ValueError`` and the batch path hands the replicate 
 from __future__ import annotations
 
 import math
+import os
 import warnings
 from dataclasses import dataclass
 
@@ -108,6 +109,46 @@ def gauss_hermite(points: int):
     """Nodes ``z_k`` and log weights ``log(w_k) + z_k^2`` of ``points``-point Gauss-Hermite quadrature."""
     z, w = np.polynomial.hermite.hermgauss(points)
     return z, np.log(w) + z * z
+
+
+#: environment variable: set to 1 (or true/yes), the batch fit uses the numpy log-likelihood
+NO_NUMBA_ENV = "SIMPOWER_NO_NUMBA"
+
+
+def glmm_backend() -> str:
+    """Which function the batch fit evaluates the log-likelihood with now: 'numba' or 'numpy'.
+
+    'numba' (the compiled :func:`simpower.analyses._glmm_kernels.aghq_cells`) when numba is
+    importable and ``SIMPOWER_NO_NUMBA`` is unset (or 0, false, no); read at each call. The two
+    agree to rounding; the per-replicate fit always uses :func:`loglik_cells` (numpy).
+    """
+    if os.environ.get(NO_NUMBA_ENV, "").strip().lower() not in ("", "0", "false", "no"):
+        return "numpy"
+    from . import _glmm_kernels  # imports numba (if there) on first use only
+
+    return "numba" if _glmm_kernels.HAVE_NUMBA else "numpy"
+
+
+def loglik_cells_compiled(theta, n, s, family: str, nodes, v0=None, gradient: bool = True, ca=None,
+                          hessian: bool = False):
+    """:func:`loglik_cells` by the compiled kernel (same arguments and returns; agrees to rounding)."""
+    from ._glmm_kernels import aghq_cells
+
+    z, logw = nodes
+    R, G, C = n.shape
+    ca = _cell_arms(n) if ca is None else ca
+    f = lambda x: np.ascontiguousarray(x, dtype=np.float64)  # noqa: E731
+    theta, n, s, ca = f(theta), f(n), f(s), f(np.broadcast_to(ca, n.shape))
+    want = 2 if hessian else 1 if gradient else 0
+    ll, v = np.empty(R), np.empty((R, G))
+    grad = np.zeros((R, 3)) if want else np.empty((0, 3))
+    H = np.zeros((R, 3, 3)) if want == 2 else np.empty((0, 3, 3))
+    use_v0 = v0 is not None
+    aghq_cells(theta, n, s, ca, f(z), f(logw), family == "binomial", f(v0) if use_v0 else v, use_v0, want,
+               MODE_STEPS, ll, grad, v, H)
+    if not gradient:
+        return ll, None, v
+    return (ll, grad, v, H) if hessian else (ll, grad, v)
 
 
 # ---------------------------------------------------------------------------
@@ -326,15 +367,17 @@ def log_factorial_total(y, mask):
     return np.where(mask, special.gammaln(np.where(mask, y, 0.0) + 1.0), 0.0).sum(-1)
 
 
-def _hessian(theta, n, s, family, nodes, v0, ca=None):
-    """Central finite-difference Hessian (..., 3, 3) of the analytic gradient, symmetrised."""
+def _hessian(theta, n, s, family, nodes, v0, ca=None, lik=None):
+    """Central finite-difference Hessian (..., 3, 3) of the analytic gradient, symmetrised
+    (``lik``: the log-likelihood function, default :func:`loglik_cells`)."""
+    lik = loglik_cells if lik is None else lik
     H = np.empty(theta.shape + (3,))
     step = FD_STEP * np.maximum(1.0, np.abs(theta))
     for j in range(3):
         e = np.zeros(theta.shape)
         e[..., j] = step[..., j]
-        gp = loglik_cells(theta + e, n, s, family, nodes, v0, ca=ca)[1]
-        gm = loglik_cells(theta - e, n, s, family, nodes, v0, ca=ca)[1]
+        gp = lik(theta + e, n, s, family, nodes, v0, ca=ca)[1]
+        gm = lik(theta - e, n, s, family, nodes, v0, ca=ca)[1]
         H[..., j] = (gp - gm) / (2.0 * step[..., j, None])
     return 0.5 * (H + np.swapaxes(H, -1, -2))
 
@@ -430,7 +473,8 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
     R = n.shape[0]
     cells = (lambda sel: (n[sel], s[sel], None if ca is None else ca[sel]))
     theta = start_values(n, s, family, ca)
-    ll, g, v, H = loglik_cells(theta, n, s, family, nodes, ca=ca, hessian=True)
+    lik = loglik_cells_compiled if glmm_backend() == "numba" else loglik_cells
+    ll, g, v, H = lik(theta, n, s, family, nodes, ca=ca, hessian=True)
     active = np.isfinite(ll) & np.all(np.isfinite(g), -1)
     iters = np.zeros(R, int)
     converged = np.zeros(R, bool)
@@ -454,7 +498,7 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
         iters[idx] += 1
         tol = 1e-12 * (1.0 + np.abs(l0))
         with np.errstate(all="ignore"):
-            l1, g1, v1, H1 = loglik_cells(th + step, nn, ss, family, nodes, vv, ca=cc, hessian=True)
+            l1, g1, v1, H1 = lik(th + step, nn, ss, family, nodes, vv, ca=cc, hessian=True)
         ok = np.isfinite(l1) & (l1 >= l0 - tol) & np.all(np.isfinite(g1), -1)
         new_th = th + step
         t = np.ones(idx.size)
@@ -465,7 +509,7 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
             t[k] *= 0.5
             trial = th[k] + t[k, None] * step[k]
             with np.errstate(all="ignore"):
-                lt = loglik_cells(trial, nn[k], ss[k], family, nodes, vv[k], gradient=False,
+                lt = lik(trial, nn[k], ss[k], family, nodes, vv[k], gradient=False,
                                   ca=None if cc is None else cc[k])[0]
             good = np.isfinite(lt) & (lt >= l0[k] - tol[k])
             new_th[k[good]] = trial[good]
@@ -474,14 +518,14 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
         redo = np.flatnonzero(ok & (t < 1))
         if redo.size:
             with np.errstate(all="ignore"):
-                out = loglik_cells(new_th[redo], nn[redo], ss[redo], family, nodes, vv[redo],
+                out = lik(new_th[redo], nn[redo], ss[redo], family, nodes, vv[redo],
                                    ca=None if cc is None else cc[redo], hessian=True)
             l1[redo], g1[redo], v1[redo], H1[redo] = out
         acc = idx[ok]
         theta[acc], ll[acc], g[acc], v[acc], H[acc] = new_th[ok], l1[ok], g1[ok], v1[ok], H1[ok]
         active[idx[~ok]] = False                                  # no step increases it: stop, unconverged
     with np.errstate(all="ignore"):
-        Hc = H if points > 1 else _hessian(theta, n, s, family, nodes, v, ca=ca)
+        Hc = H if points > 1 else _hessian(theta, n, s, family, nodes, v, ca=ca, lik=lik)
         cov = _inv(-Hc)
         lam = np.linalg.eigvalsh(np.where(np.isfinite(Hc), Hc, 0.0))
     nd = np.all(lam < 0, -1) & np.all(np.isfinite(Hc), (-1, -2))
