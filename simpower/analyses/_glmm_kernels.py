@@ -43,12 +43,12 @@ def _jit(fn):
 
 
 @_jit
-def aghq_cells(theta, n, s, ca, z, logw, binomial, v0, use_v0, want, mode_steps,
+def aghq_cells(theta, n, s, ca, m, z, logw, binomial, v0, use_v0, want, mode_steps,
                ll, grad, v, hess):  # pragma: no cover - compiled; checked against the numpy function
     """Fill ``ll`` (R,), ``grad`` (R, 3), ``v`` (R, G) and ``hess`` (R, 3, 3) for a cell table.
 
     ``theta`` (R, 3); ``n``, ``s``, ``ca`` (R, G, C) float: observed count, outcome total and arm
-    of each cell; ``z``, ``logw``: :func:`simpower.analyses.glmm.gauss_hermite`; ``binomial``:
+    of each cell; ``m`` (R, G): the weight of each cluster's terms (0: left out); ``z``, ``logw``: :func:`simpower.analyses.glmm.gauss_hermite`; ``binomial``:
     True for the logit link, False for the log link; ``v0`` (R, G): starting modes, used when
     ``use_v0``; ``want``: 0 the log-likelihood only, 1 also the gradient, 2 also the Hessian
     (Louis's identity with two or more nodes, the Laplace approximation with one).
@@ -74,6 +74,10 @@ def aghq_cells(theta, n, s, ca, z, logw, binomial, v0, use_v0, want, mode_steps,
                 S += s[r, g, c]
                 N += n[r, g, c]
                 base[c] = b0 + b1 * ca[r, g, c]
+            mg = m[r, g]
+            if N <= 0.0 or mg == 0.0:
+                v[r, g] = 0.0                             # a cluster without data adds nothing
+                continue
             # -- the mode of the log integrand: safeguarded Newton (see glmm._mode) --------------
             ea = sg * S
             if binomial:
@@ -124,8 +128,6 @@ def aghq_cells(theta, n, s, ca, z, logw, binomial, v0, use_v0, want, mode_steps,
                 if done or not np.isfinite(x):
                     break
             v[r, g] = x
-            if N <= 0.0:
-                continue                                  # a cluster without data adds nothing
             # -- curvature at the mode and the node movement's ingredients -----------------------
             r0 = 0.0
             wsum = 0.0
@@ -200,12 +202,13 @@ def aghq_cells(theta, n, s, ca, z, logw, binomial, v0, use_v0, want, mode_steps,
             for k in range(Q):
                 a[k] = math.exp(a[k] - top)
                 tot += a[k]
-            llr += math.log(sc) + math.log(tot) + top
+            llr += mg * (math.log(sc) + math.log(tot) + top)
             if want == 0:
                 continue
             m0 = m1 = m2 = e_gv = e_gvz = 0.0
+            inv = 1.0 / tot
             for k in range(Q):
-                p = a[k] / tot
+                p = a[k] * inv
                 a[k] = p
                 P = pP[k]
                 m0 += p * P
@@ -227,18 +230,18 @@ def aghq_cells(theta, n, s, ca, z, logw, binomial, v0, use_v0, want, mode_steps,
             ds1 = fac * -(-s2 * wp1 + g3 * dv1)
             ds2 = fac * -(-2.0 * sg * wsum - s2 * x * wp + g3 * dv2)
             cz = 1.0 / sc + e_gvz
-            g0 += m0 + e_gv * dv0 + cz * ds0
-            g1 += m1 + e_gv * dv1 + cz * ds1
-            g2 += m2 + e_gv * dv2 + cz * ds2
+            g0 += mg * (m0 + e_gv * dv0 + cz * ds0)
+            g1 += mg * (m1 + e_gv * dv1 + cz * ds1)
+            g2 += mg * (m2 + e_gv * dv2 + cz * ds2)
             if want < 2:
                 continue
             if Q == 1:                                    # Laplace: g_tt + g_tv g_tv' / h at the mode
-                h00 += -wsum + dgv0 * dv0
-                h01 += -w1 + dgv0 * dv1
-                h02 += -x * wsum + dgv0 * dv2
-                h11 += -w1 + dgv1 * dv1
-                h12 += -x * w1 + dgv1 * dv2
-                h22 += -x * x * wsum + dgv2 * dv2
+                h00 += mg * (-wsum + dgv0 * dv0)
+                h01 += mg * (-w1 + dgv0 * dv1)
+                h02 += mg * (-x * wsum + dgv0 * dv2)
+                h11 += mg * (-w1 + dgv1 * dv1)
+                h12 += mg * (-x * w1 + dgv1 * dv2)
+                h22 += mg * (-x * x * wsum + dgv2 * dv2)
                 continue
             e00 = e01 = e02 = e11 = e12 = e22 = 0.0       # Louis: E[g_tt + g_t g_t'] - E[g_t] E[g_t]'
             for k in range(Q):
@@ -254,12 +257,12 @@ def aghq_cells(theta, n, s, ca, z, logw, binomial, v0, use_v0, want, mode_steps,
                 e11 += p * (P1 * P1 - pB[k])
                 e12 += p * xv * q1
                 e22 += p * xv * xv * q0
-            h00 += e00 - m0 * m0
-            h01 += e01 - m0 * m1
-            h02 += e02 - m0 * m2
-            h11 += e11 - m1 * m1
-            h12 += e12 - m1 * m2
-            h22 += e22 - m2 * m2
+            h00 += mg * (e00 - m0 * m0)
+            h01 += mg * (e01 - m0 * m1)
+            h02 += mg * (e02 - m0 * m2)
+            h11 += mg * (e11 - m1 * m1)
+            h12 += mg * (e12 - m1 * m2)
+            h22 += mg * (e22 - m2 * m2)
         ll[r] = llr
         if want >= 1:
             grad[r, 0] = g0

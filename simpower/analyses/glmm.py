@@ -130,8 +130,12 @@ def glmm_backend() -> str:
 
 
 def loglik_cells_compiled(theta, n, s, family: str, nodes, v0=None, gradient: bool = True, ca=None,
-                          hessian: bool = False):
-    """:func:`loglik_cells` by the compiled kernel (same arguments and returns; agrees to rounding)."""
+                          hessian: bool = False, weights=None):
+    """:func:`loglik_cells` by the compiled kernel (same arguments and returns; agrees to rounding).
+
+    ``weights`` (R, G), optional: each cluster's contribution counts this many times (a table
+    of distinct clusters, :func:`distinct_clusters`); a cluster of weight 0 is left out.
+    """
     from ._glmm_kernels import aghq_cells
 
     z, logw = nodes
@@ -144,7 +148,8 @@ def loglik_cells_compiled(theta, n, s, family: str, nodes, v0=None, gradient: bo
     grad = np.zeros((R, 3)) if want else np.empty((0, 3))
     H = np.zeros((R, 3, 3)) if want == 2 else np.empty((0, 3, 3))
     use_v0 = v0 is not None
-    aghq_cells(theta, n, s, ca, f(z), f(logw), family == "binomial", f(v0) if use_v0 else v, use_v0, want,
+    m = np.ones((R, G)) if weights is None else f(weights)
+    aghq_cells(theta, n, s, ca, m, f(z), f(logw), family == "binomial", f(v0) if use_v0 else v, use_v0, want,
                MODE_STEPS, ll, grad, v, H)
     if not gradient:
         return ll, None, v
@@ -367,18 +372,19 @@ def log_factorial_total(y, mask):
     return np.where(mask, special.gammaln(np.where(mask, y, 0.0) + 1.0), 0.0).sum(-1)
 
 
-def _hessian(theta, n, s, family, nodes, v0, ca=None, lik=None):
-    """Central finite-difference Hessian (..., 3, 3) of the analytic gradient, symmetrised
-    (``lik``: the log-likelihood function, default :func:`loglik_cells`)."""
-    lik = loglik_cells if lik is None else lik
+def _hessian(theta, n, s, family, nodes, v0, ca=None):
+    """Central finite-difference Hessian (..., 3, 3) of the analytic gradient, symmetrised."""
+    return _fd_hessian(theta, lambda th: loglik_cells(th, n, s, family, nodes, v0, ca=ca)[1])
+
+
+def _fd_hessian(theta, gradient_at):
+    """Central finite differences (..., 3, 3) of ``gradient_at(theta)`` (..., 3), symmetrised."""
     H = np.empty(theta.shape + (3,))
     step = FD_STEP * np.maximum(1.0, np.abs(theta))
     for j in range(3):
         e = np.zeros(theta.shape)
         e[..., j] = step[..., j]
-        gp = lik(theta + e, n, s, family, nodes, v0, ca=ca)[1]
-        gm = lik(theta - e, n, s, family, nodes, v0, ca=ca)[1]
-        H[..., j] = (gp - gm) / (2.0 * step[..., j, None])
+        H[..., j] = (gradient_at(theta + e) - gradient_at(theta - e)) / (2.0 * step[..., j, None])
     return 0.5 * (H + np.swapaxes(H, -1, -2))
 
 
@@ -455,6 +461,39 @@ def unbounded(n, s, family):
     return np.all((S == 0) | (S == N), -1)
 
 
+def distinct_clusters(n, s, ca=None):
+    """Each replicate's distinct clusters and how often each occurs: ``n, s, ca`` (R, D, C), ``m`` (R, D).
+
+    Two clusters with the same cells (observed count, outcome total and arm of each) add the
+    same term to the log-likelihood, its gradient and Hessian at every parameter value, so a
+    replicate's sums can run over its distinct clusters, each weighted by its count ``m``.
+    D is the largest number of distinct clusters in a replicate; a replicate with fewer is
+    padded with empty clusters of weight 0. Clusters without data are dropped.
+    """
+    R, G, C = n.shape
+    ca = _cell_arms(n) if ca is None else np.broadcast_to(ca, n.shape)
+    keys = np.concatenate([n, s, ca], -1).reshape(R * G, 3 * C)
+    rep = np.repeat(np.arange(R), G)
+    keep = n.reshape(R * G, C).sum(-1) > 0
+    keys, rep = keys[keep], rep[keep]
+    order = np.lexsort(tuple(keys[:, j] for j in range(3 * C - 1, -1, -1)) + (rep,))
+    keys, rep = keys[order], rep[order]
+    first = np.ones(rep.size, bool)
+    first[1:] = (rep[1:] != rep[:-1]) | np.any(keys[1:] != keys[:-1], -1)
+    group = np.cumsum(first) - 1                               # distinct cluster, numbered over the batch
+    start = np.full(R, 0)
+    heads = np.flatnonzero(first)
+    new_rep = heads[np.r_[True, rep[heads[1:]] != rep[heads[:-1]]]] if heads.size else heads
+    start[rep[new_rep]] = group[new_rep]
+    local = group - start[rep]                                 # its number within its replicate
+    D = int(local.max()) + 1 if local.size else 1
+    m = np.bincount(rep * D + local, minlength=R * D).reshape(R, D).astype(float)
+    out = np.zeros((3 * C, R, D))
+    out[:, rep[first], local[first]] = keys[first].T
+    nd, sd, cd = (np.moveaxis(out[j * C:(j + 1) * C], 0, -1) for j in range(3))
+    return nd, sd, cd, m
+
+
 # ---------------------------------------------------------------------------
 # the batch fit: Newton across replicates
 # ---------------------------------------------------------------------------
@@ -471,10 +510,18 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
     """
     nodes = gauss_hermite(points)
     R = n.shape[0]
-    cells = (lambda sel: (n[sel], s[sel], None if ca is None else ca[sel]))
     theta = start_values(n, s, family, ca)
-    lik = loglik_cells_compiled if glmm_backend() == "numba" else loglik_cells
-    ll, g, v, H = lik(theta, n, s, family, nodes, ca=ca, hessian=True)
+    if glmm_backend() == "numba":
+        # each replicate's distinct clusters once, weighted by how often they occur
+        nd, sd, cd, md = distinct_clusters(n, s, ca)
+
+        def lik(th, sel, v0, **kw):
+            return loglik_cells_compiled(th, nd[sel], sd[sel], family, nodes, v0, ca=cd[sel], weights=md[sel], **kw)
+    else:
+        def lik(th, sel, v0, **kw):
+            return loglik_cells(th, n[sel], s[sel], family, nodes, v0, ca=None if ca is None else ca[sel], **kw)
+    everyone = slice(None)
+    ll, g, v, H = lik(theta, everyone, None, hessian=True)
     active = np.isfinite(ll) & np.all(np.isfinite(g), -1)
     iters = np.zeros(R, int)
     converged = np.zeros(R, bool)
@@ -494,11 +541,10 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
         if idx.size == 0:
             break
         th, vv, l0 = theta[idx], v[idx], ll[idx]
-        nn, ss, cc = cells(idx)
         iters[idx] += 1
         tol = 1e-12 * (1.0 + np.abs(l0))
         with np.errstate(all="ignore"):
-            l1, g1, v1, H1 = lik(th + step, nn, ss, family, nodes, vv, ca=cc, hessian=True)
+            l1, g1, v1, H1 = lik(th + step, idx, vv, hessian=True)
         ok = np.isfinite(l1) & (l1 >= l0 - tol) & np.all(np.isfinite(g1), -1)
         new_th = th + step
         t = np.ones(idx.size)
@@ -509,8 +555,7 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
             t[k] *= 0.5
             trial = th[k] + t[k, None] * step[k]
             with np.errstate(all="ignore"):
-                lt = lik(trial, nn[k], ss[k], family, nodes, vv[k], gradient=False,
-                                  ca=None if cc is None else cc[k])[0]
+                lt = lik(trial, idx[k], vv[k], gradient=False)[0]
             good = np.isfinite(lt) & (lt >= l0[k] - tol[k])
             new_th[k[good]] = trial[good]
             ok[k[good]] = True
@@ -518,14 +563,13 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
         redo = np.flatnonzero(ok & (t < 1))
         if redo.size:
             with np.errstate(all="ignore"):
-                out = lik(new_th[redo], nn[redo], ss[redo], family, nodes, vv[redo],
-                                   ca=None if cc is None else cc[redo], hessian=True)
+                out = lik(new_th[redo], idx[redo], vv[redo], hessian=True)
             l1[redo], g1[redo], v1[redo], H1[redo] = out
         acc = idx[ok]
         theta[acc], ll[acc], g[acc], v[acc], H[acc] = new_th[ok], l1[ok], g1[ok], v1[ok], H1[ok]
         active[idx[~ok]] = False                                  # no step increases it: stop, unconverged
     with np.errstate(all="ignore"):
-        Hc = H if points > 1 else _hessian(theta, n, s, family, nodes, v, ca=ca, lik=lik)
+        Hc = H if points > 1 else _fd_hessian(theta, lambda th: lik(th, everyone, v)[1])
         cov = _inv(-Hc)
         lam = np.linalg.eigvalsh(np.where(np.isfinite(Hc), Hc, 0.0))
     nd = np.all(lam < 0, -1) & np.all(np.isfinite(Hc), (-1, -2))
@@ -714,14 +758,16 @@ class GLMM(Analysis):
     # -- batch --------------------------------------------------------------------------
     def _supports(self, layout) -> bool:
         arm = np.asarray(layout.arm)
-        if layout.present is not None:
+        if not np.all((arm == 0) | (arm == 1)):       # labels outside 0/1 matter only on present rows
+            if layout.present is None:
+                return False
             arm = np.broadcast_to(arm, layout.y.shape)[layout.present]
-        if not np.all((arm == 0) | (arm == 1)):
-            return False
-        y = layout.y[layout.observed]
-        if self.family == "binomial":
-            return bool(np.all((y == 0) | (y == 1)))
-        return bool(np.all((y >= 0) & (y == np.floor(y))))
+            if not np.all((arm == 0) | (arm == 1)):
+                return False
+        y = layout.y
+        with np.errstate(invalid="ignore"):
+            bad = ~((y == 0) | (y == 1)) if self.family == "binomial" else ~((y >= 0) & (y == np.floor(y)))
+        return not np.any(bad & layout.observed) if bad.any() else True
 
     def batch_cells(self, batch):
         """The cell table of a batch: ``n``, ``s``, ``ca`` (R, G, C) and ``sum log y!`` per replicate.
@@ -733,11 +779,23 @@ class GLMM(Analysis):
         codes, G = layout.codes
         R, N = layout.y.shape
         obs = layout.observed
-        arm = np.broadcast_to(np.asarray(layout.arm), (R, N)).astype(np.intp)
+        lf = log_factorial_total(layout.y, obs) if self.family == "poisson" else np.zeros(R)
+        arm = np.asarray(layout.arm)
+        if arm.ndim == 1 and codes.ndim == 1:
+            # arms and clusters shared by all replicates: a cluster-randomised trial is seen from them alone
+            lo, hi = np.full(G, 2), np.full(G, -1)
+            np.minimum.at(lo, codes, arm.astype(np.intp))
+            np.maximum.at(hi, codes, arm.astype(np.intp))
+            if np.all((lo == hi) | (lo > hi)):
+                idx = (codes + G * np.arange(R)[:, None])[obs]
+                n = np.bincount(idx, minlength=R * G).reshape(R, G).astype(float)
+                s = np.bincount(idx, weights=layout.y[obs], minlength=R * G).reshape(R, G)
+                ca = np.where(n > 0, np.maximum(hi, 0).astype(float), 0.0)
+                return n[..., None], s[..., None], ca[..., None], lf
+        arm = np.broadcast_to(arm, (R, N)).astype(np.intp)
         idx = (np.broadcast_to(codes, (R, N)) * 2 + arm + (2 * G) * np.arange(R)[:, None])[obs]
         n = np.bincount(idx, minlength=R * G * 2).reshape(R, G, 2).astype(float)
         s = np.bincount(idx, weights=layout.y[obs], minlength=R * G * 2).reshape(R, G, 2)
-        lf = log_factorial_total(layout.y, obs) if self.family == "poisson" else np.zeros(R)
         ca = None
         if np.all(layout.cluster_randomised):
             one = n[..., 1] > 0
