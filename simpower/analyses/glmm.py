@@ -497,6 +497,36 @@ def distinct_clusters(n, s, ca=None):
 # ---------------------------------------------------------------------------
 # the batch fit: Newton across replicates
 # ---------------------------------------------------------------------------
+def _ascent_step(H, g):
+    """Newton's ascent step ``(-H~)^-1 g`` (R, 3): ``H~`` is ``H`` with its eigenvalues made negative and
+    at least 1e-8 of the largest (or of 1) in size.
+
+    Where ``-H`` is positive definite (Sylvester's leading minors) with its smallest eigenvalue
+    provably above that floor (it is at least ``det / (trace / 2)^2``, the largest at most the
+    trace), ``H~ = H`` and the step is solved by the cofactors of the 3 x 3 matrix; elsewhere
+    by the eigendecomposition.
+    """
+    A = -H
+    a00, a01, a02, a11, a12, a22 = A[:, 0, 0], A[:, 0, 1], A[:, 0, 2], A[:, 1, 1], A[:, 1, 2], A[:, 2, 2]
+    with np.errstate(all="ignore"):
+        c00, c01, c02 = a11 * a22 - a12 * a12, a02 * a12 - a01 * a22, a01 * a12 - a02 * a11
+        c11, c12, c22 = a00 * a22 - a02 * a02, a01 * a02 - a00 * a12, a00 * a11 - a01 * a01
+        det = a00 * c00 + a01 * c01 + a02 * c02
+        tr = a00 + a11 + a22
+        fast = (a00 > 0) & (c22 > 0) & (det > 0) & (det >= 1e-8 * np.maximum(1.0, tr) * (0.5 * tr) ** 2)
+        fast &= np.isfinite(det) & np.isfinite(tr) & np.all(np.isfinite(g), -1)
+        g0, g1, g2 = g[:, 0], g[:, 1], g[:, 2]
+        step = np.stack([c00 * g0 + c01 * g1 + c02 * g2, c01 * g0 + c11 * g1 + c12 * g2,
+                         c02 * g0 + c12 * g1 + c22 * g2], -1) / det[:, None]
+    slow = np.flatnonzero(~fast)
+    if slow.size:
+        with np.errstate(all="ignore"):
+            lam, V = np.linalg.eigh(np.where(np.isfinite(H[slow]), H[slow], 0.0))
+        lam = np.maximum(np.abs(lam), 1e-8 * np.maximum(1.0, np.abs(lam).max(-1, keepdims=True)))
+        step[slow] = np.einsum("rij,rj->ri", V, np.einsum("rji,rj->ri", V, g[slow]) / lam)
+    return step
+
+
 def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
     """Maximum likelihood fit of every replicate of a cell table (R, G, C), vectorised.
 
@@ -529,10 +559,7 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        with np.errstate(all="ignore"):
-            lam, V = np.linalg.eigh(np.where(np.isfinite(H[idx]), H[idx], 0.0))
-        lam = np.maximum(np.abs(lam), 1e-8 * np.maximum(1.0, np.abs(lam).max(-1, keepdims=True)))
-        step = np.einsum("rij,rj->ri", V, np.einsum("rji,rj->ri", V, g[idx]) / lam)   # (-H~)^-1 g: ascent
+        step = _ascent_step(H[idx], g[idx])
         # converged: the next Newton step (about the distance to the optimum) is negligible
         small = np.all(np.abs(step) <= STEP_TOL * (1.0 + np.abs(theta[idx])), -1)
         converged[idx[small]] = True
