@@ -37,7 +37,10 @@ to negative where needed, steps halved until the log-likelihood does not decreas
 per-replicate path hands the same log-likelihood and gradient to
 ``scipy.optimize.minimize`` (BFGS) and is the reference the batch path is tested against.
 The SE of ``b1`` is the root of the ``b1`` entry of minus the inverse of that Hessian at the
-optimum.
+optimum. With numba the batch fit evaluates the log-likelihood, gradient and Hessian by the
+compiled :func:`simpower.analyses._glmm_kernels.aghq_cells` (one pass over each cluster's nodes),
+over each replicate's distinct clusters weighted by their counts (:func:`distinct_clusters`); it
+equals :func:`loglik_cells` to rounding, and :func:`glmm_backend` says which one runs.
 
 ``sigma`` is optimised on the whole real line rather than as ``log sigma``: the
 likelihood is even in ``sigma`` and smooth through 0, where the model is the GLM (the
@@ -137,6 +140,7 @@ def loglik_cells_compiled(theta, n, s, family: str, nodes, v0=None, gradient: bo
     of distinct clusters, :func:`distinct_clusters`); a cluster of weight 0 is left out.
     """
     from ._glmm_kernels import aghq_cells
+    from ._rank_kernels import _compile_notice
 
     z, logw = nodes
     R, G, C = n.shape
@@ -149,8 +153,9 @@ def loglik_cells_compiled(theta, n, s, family: str, nodes, v0=None, gradient: bo
     H = np.zeros((R, 3, 3)) if want == 2 else np.empty((0, 3, 3))
     use_v0 = v0 is not None
     m = np.ones((R, G)) if weights is None else f(weights)
-    aghq_cells(theta, n, s, ca, m, f(z), f(logw), family == "binomial", f(v0) if use_v0 else v, use_v0, want,
-               MODE_STEPS, ll, grad, v, H)
+    with _compile_notice("glmm"):          # the first call of an installation compiles it: say so if slow
+        aghq_cells(theta, n, s, ca, m, f(z), f(logw), family == "binomial", f(v0) if use_v0 else v, use_v0, want,
+                   MODE_STEPS, ll, grad, v, H)
     if not gradient:
         return ll, None, v
     return (ll, grad, v, H) if hessian else (ll, grad, v)
