@@ -37,6 +37,41 @@ HAVE_NUMBA = numba is not None
 _HALF_LOG_2PI = 0.5 * math.log(2.0 * math.pi)
 
 
+#: seconds the kernel's first call in a process may take before the user is told it is compiling
+COMPILE_NOTICE_AFTER = 1.0
+_called = []
+
+
+class compile_notice:
+    """Around the kernel's calls: if the first one in this process takes longer than
+    :data:`COMPILE_NOTICE_AFTER` seconds (numba compiling it, before its cache exists), say so once
+    on standard error."""
+
+    def __enter__(self):
+        self.timer = None
+        if HAVE_NUMBA and not _called:
+            import threading
+
+            self.timer = threading.Timer(COMPILE_NOTICE_AFTER, self._say)
+            self.timer.daemon = True
+            self.timer.start()
+        return self
+
+    @staticmethod
+    def _say():
+        import sys
+
+        sys.stderr.write("simpower: compiling the glmm kernel for this machine (first use only; 5-20 s; later "
+                         "runs load it from numba's cache)...\n")
+        sys.stderr.flush()
+
+    def __exit__(self, *exc):
+        if self.timer is not None:
+            self.timer.cancel()
+            _called.append(True)
+        return False
+
+
 def _jit(fn):
     """``numba.njit(cache=True)`` when numba is there, else the plain function."""
     return numba.njit(cache=True)(fn) if HAVE_NUMBA else fn

@@ -139,8 +139,7 @@ def loglik_cells_compiled(theta, n, s, family: str, nodes, v0=None, gradient: bo
     ``weights`` (R, G), optional: each cluster's contribution counts this many times (a table
     of distinct clusters, :func:`distinct_clusters`); a cluster of weight 0 is left out.
     """
-    from ._glmm_kernels import aghq_cells
-    from ._rank_kernels import _compile_notice
+    from ._glmm_kernels import aghq_cells, compile_notice
 
     z, logw = nodes
     R, G, C = n.shape
@@ -153,7 +152,7 @@ def loglik_cells_compiled(theta, n, s, family: str, nodes, v0=None, gradient: bo
     H = np.zeros((R, 3, 3)) if want == 2 else np.empty((0, 3, 3))
     use_v0 = v0 is not None
     m = np.ones((R, G)) if weights is None else f(weights)
-    with _compile_notice("glmm"):          # the first call of an installation compiles it: say so if slow
+    with compile_notice():          # the first call of an installation compiles it: say so if slow
         aghq_cells(theta, n, s, ca, m, f(z), f(logw), family == "binomial", f(v0) if use_v0 else v, use_v0, want,
                    MODE_STEPS, ll, grad, v, H)
     if not gradient:
