@@ -366,3 +366,109 @@ def test_laplace_underestimates_a_large_sigma_for_binary_data():
     assert diff.mean() > 4 * diff.std(ddof=1) / math.sqrt(ok.sum())
     # and the many-node estimate is the closer one to the true sigma on average
     assert abs(many["sigma"][ok].mean() - 2.0) < abs(lap["sigma"][ok].mean() - 2.0)
+
+
+# -- the compiled kernel of the batch fit (simpower.analyses._glmm_kernels) ----------------------------
+def _backends(monkeypatch):
+    from simpower.analyses import glmm
+
+    if glmm.glmm_backend() != "numba":
+        pytest.skip("numba not importable: the batch fit uses the numpy function")
+    return glmm
+
+
+@pytest.mark.parametrize("family", ["binomial", "poisson"])
+def test_compiled_loglik_equals_direct_integration(family, monkeypatch):
+    # the same check as above (AGHQ with 30 nodes equals scipy.integrate.quad to 1e-8, Liu & Pierce 1994)
+    # on the kernel, for the whole batch of cell tables at once, with distinct clusters weighted by counts
+    glmm = _backends(monkeypatch)
+    proc = ClusterCounts(clusters=4, cluster_size=8, size_cv=0.4, sigma=1.0, b0=-0.3, effect=0.5, family=family,
+                         missing_rate=0.2)
+    batch = proc.draw_batch(np.random.default_rng(11), 3)
+    n, s, ca, lf = GLMM(family=family).batch_cells(batch)
+    nd, sd, cd, m = glmm.distinct_clusters(n, s, ca)
+    for theta in ((-0.3, 0.5, 1.2), (0.2, -0.4, 0.4)):
+        th = np.repeat([theta], 3, 0)
+        got = glmm.loglik_cells_compiled(th, nd, sd, family, gauss_hermite(30), ca=cd, weights=m, gradient=False)[0]
+        for i in range(3):
+            ref = quad_loglik(batch.replicate(i), *theta, family)
+            assert abs(got[i] - lf[i] - ref) <= 1e-8 * abs(ref), (i, theta)
+
+
+@pytest.mark.parametrize("family", ["binomial", "poisson"])
+@pytest.mark.parametrize("within", [False, True])
+@pytest.mark.parametrize("points", [1, 2, 10])
+def test_compiled_loglik_gradient_hessian_equal_numpy(family, within, points, monkeypatch):
+    # the kernel computes what loglik_cells computes (log-likelihood, gradient with the moving nodes, Louis's
+    # identity or the Laplace approximation), in another order: equal to rounding, here 1e-11 relative;
+    # one cell per cluster (cluster-randomised) and two (arms within clusters), on distinct clusters too
+    glmm = _backends(monkeypatch)
+    proc = ClusterCounts(clusters=5, cluster_size=6, size_cv=0.5, sigma=0.8, effect=0.4, family=family,
+                         missing_rate=0.2, within=within)
+    batch = proc.draw_batch(np.random.default_rng(3), 40)
+    n, s, ca, _ = GLMM(family=family).batch_cells(batch)
+    assert (ca is None) == within
+    theta = glmm.start_values(n, s, family, ca) + np.random.default_rng(1).normal(0.0, 0.3, (40, 3))
+    nodes = gauss_hermite(points)
+    ref = loglik_cells(theta, n, s, family, nodes, ca=ca, hessian=True)
+    nd, sd, cd, m = glmm.distinct_clusters(n, s, ca)
+    for got in (glmm.loglik_cells_compiled(theta, n, s, family, nodes, ca=ca, hessian=True),
+                glmm.loglik_cells_compiled(theta, nd, sd, family, nodes, ca=cd, weights=m, hessian=True)):
+        for k in (0, 1, 3):
+            np.testing.assert_allclose(got[k], ref[k], rtol=1e-11, atol=1e-11 * np.abs(ref[k]).max())
+    np.testing.assert_allclose(glmm.loglik_cells_compiled(theta, n, s, family, nodes, ca=ca)[2], ref[2],
+                               rtol=1e-11, atol=1e-12)           # the modes
+
+
+def test_distinct_clusters_keep_every_cluster_once_with_its_count(monkeypatch):
+    glmm = _backends(monkeypatch)
+    for missing in (0.0, 0.3):
+        proc = ClusterCounts(clusters=6, cluster_size=4, size_cv=0.5 if missing else 0.0, sigma=0.5,
+                             missing_rate=missing)
+        batch = proc.draw_batch(np.random.default_rng(4), 30)
+        n, s, ca, _ = GLMM().batch_cells(batch)
+        nd, sd, cd, m = glmm.distinct_clusters(n, s, ca)
+        if not missing:      # 6 clusters of 4 per arm: at most 5 event counts per arm, so at most 10 distinct
+            assert nd.shape[1] <= 10 < n.shape[1]
+        for r in range(30):
+            full = sorted((a, b, c) for a, b, c in zip(n[r, :, 0], s[r, :, 0], ca[r, :, 0]) if a > 0)
+            comp = sorted(x for a, b, c, k in zip(nd[r, :, 0], sd[r, :, 0], cd[r, :, 0], m[r])
+                          for x in [(a, b, c)] * int(k))
+            assert full == comp
+
+
+def test_newton_step_equals_the_eigendecomposition_step():
+    # the cofactor solve where -H is safely positive definite, the eigendecomposition elsewhere: both the
+    # step (-H~)^-1 g of the eigenvalue-flipped Hessian (numpy.linalg.eigh as the reference)
+    from simpower.analyses.glmm import _ascent_step
+
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(400, 3, 3))
+    H = -(X @ np.swapaxes(X, 1, 2)) - 0.1 * np.eye(3)
+    H[:100] = 0.5 * (X[:100] + np.swapaxes(X[:100], 1, 2))        # indefinite
+    H[100:120, 0, :] *= 1e-12
+    H[100:120, :, 0] *= 1e-12                                     # nearly singular: eigenvalues clamped
+    g = rng.normal(size=(400, 3))
+    lam, V = np.linalg.eigh(H)
+    lam = np.maximum(np.abs(lam), 1e-8 * np.maximum(1.0, np.abs(lam).max(-1, keepdims=True)))
+    ref = np.einsum("rij,rj->ri", V, np.einsum("rji,rj->ri", V, g) / lam)
+    np.testing.assert_allclose(_ascent_step(H, g), ref, rtol=1e-9, atol=1e-9 * np.abs(ref).max())
+
+
+def test_batch_fit_is_the_same_with_and_without_the_kernel(monkeypatch):
+    # SIMPOWER_NO_NUMBA=1 switches the batch fit to the numpy function: both reach the same optimum
+    # (estimates and SEs within 1e-8 relative, decisions identical)
+    _backends(monkeypatch)
+    proc = ClusterCounts(clusters=8, cluster_size=10, size_cv=0.4, sigma=0.6, b0=-0.6, effect=0.5, missing_rate=0.2)
+    batch = proc.draw_batch(np.random.default_rng(9), 150)
+    an = GLMM()
+    fast = an.batch(batch)
+    monkeypatch.setenv("SIMPOWER_NO_NUMBA", "1")
+    from simpower.analyses.glmm import glmm_backend
+
+    assert glmm_backend() == "numpy"
+    slow = an.batch(batch)
+    assert fast.trouble.keys() == slow.trouble.keys()
+    for f in FIELDS:
+        np.testing.assert_allclose(getattr(fast, f), getattr(slow, f), rtol=1e-8, atol=1e-10, err_msg=f)
+    assert np.array_equal(fast.pvalue <= 0.05, slow.pvalue <= 0.05)

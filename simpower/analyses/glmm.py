@@ -37,7 +37,10 @@ to negative where needed, steps halved until the log-likelihood does not decreas
 per-replicate path hands the same log-likelihood and gradient to
 ``scipy.optimize.minimize`` (BFGS) and is the reference the batch path is tested against.
 The SE of ``b1`` is the root of the ``b1`` entry of minus the inverse of that Hessian at the
-optimum.
+optimum. With numba the batch fit evaluates the log-likelihood, gradient and Hessian by the
+compiled :func:`simpower.analyses._glmm_kernels.aghq_cells` (one pass over each cluster's nodes),
+over each replicate's distinct clusters weighted by their counts (:func:`distinct_clusters`); it
+equals :func:`loglik_cells` to rounding, and :func:`glmm_backend` says which one runs.
 
 ``sigma`` is optimised on the whole real line rather than as ``log sigma``: the
 likelihood is even in ``sigma`` and smooth through 0, where the model is the GLM (the
@@ -70,6 +73,7 @@ per-replicate path raises ``ValueError`` and the batch path hands the replicate 
 from __future__ import annotations
 
 import math
+import os
 import warnings
 from dataclasses import dataclass
 
@@ -108,6 +112,52 @@ def gauss_hermite(points: int):
     """Nodes ``z_k`` and log weights ``log(w_k) + z_k^2`` of ``points``-point Gauss-Hermite quadrature."""
     z, w = np.polynomial.hermite.hermgauss(points)
     return z, np.log(w) + z * z
+
+
+#: environment variable: set to 1 (or true/yes), the batch fit uses the numpy log-likelihood
+NO_NUMBA_ENV = "SIMPOWER_NO_NUMBA"
+
+
+def glmm_backend() -> str:
+    """Which function the batch fit evaluates the log-likelihood with now: 'numba' or 'numpy'.
+
+    'numba' (the compiled :func:`simpower.analyses._glmm_kernels.aghq_cells`) when numba is
+    importable and ``SIMPOWER_NO_NUMBA`` is unset (or 0, false, no); read at each call. The two
+    agree to rounding; the per-replicate fit always uses :func:`loglik_cells` (numpy).
+    """
+    if os.environ.get(NO_NUMBA_ENV, "").strip().lower() not in ("", "0", "false", "no"):
+        return "numpy"
+    from . import _glmm_kernels  # imports numba (if there) on first use only
+
+    return "numba" if _glmm_kernels.HAVE_NUMBA else "numpy"
+
+
+def loglik_cells_compiled(theta, n, s, family: str, nodes, v0=None, gradient: bool = True, ca=None,
+                          hessian: bool = False, weights=None):
+    """:func:`loglik_cells` by the compiled kernel (same arguments and returns; agrees to rounding).
+
+    ``weights`` (R, G), optional: each cluster's contribution counts this many times (a table
+    of distinct clusters, :func:`distinct_clusters`); a cluster of weight 0 is left out.
+    """
+    from ._glmm_kernels import aghq_cells, compile_notice
+
+    z, logw = nodes
+    R, G, C = n.shape
+    ca = _cell_arms(n) if ca is None else ca
+    f = lambda x: np.ascontiguousarray(x, dtype=np.float64)  # noqa: E731
+    theta, n, s, ca = f(theta), f(n), f(s), f(np.broadcast_to(ca, n.shape))
+    want = 2 if hessian else 1 if gradient else 0
+    ll, v = np.empty(R), np.empty((R, G))
+    grad = np.zeros((R, 3)) if want else np.empty((0, 3))
+    H = np.zeros((R, 3, 3)) if want == 2 else np.empty((0, 3, 3))
+    use_v0 = v0 is not None
+    m = np.ones((R, G)) if weights is None else f(weights)
+    with compile_notice():          # the first call of an installation compiles it: say so if slow
+        aghq_cells(theta, n, s, ca, m, f(z), f(logw), family == "binomial", f(v0) if use_v0 else v, use_v0, want,
+                   MODE_STEPS, ll, grad, v, H)
+    if not gradient:
+        return ll, None, v
+    return (ll, grad, v, H) if hessian else (ll, grad, v)
 
 
 # ---------------------------------------------------------------------------
@@ -328,14 +378,17 @@ def log_factorial_total(y, mask):
 
 def _hessian(theta, n, s, family, nodes, v0, ca=None):
     """Central finite-difference Hessian (..., 3, 3) of the analytic gradient, symmetrised."""
+    return _fd_hessian(theta, lambda th: loglik_cells(th, n, s, family, nodes, v0, ca=ca)[1])
+
+
+def _fd_hessian(theta, gradient_at):
+    """Central finite differences (..., 3, 3) of ``gradient_at(theta)`` (..., 3), symmetrised."""
     H = np.empty(theta.shape + (3,))
     step = FD_STEP * np.maximum(1.0, np.abs(theta))
     for j in range(3):
         e = np.zeros(theta.shape)
         e[..., j] = step[..., j]
-        gp = loglik_cells(theta + e, n, s, family, nodes, v0, ca=ca)[1]
-        gm = loglik_cells(theta - e, n, s, family, nodes, v0, ca=ca)[1]
-        H[..., j] = (gp - gm) / (2.0 * step[..., j, None])
+        H[..., j] = (gradient_at(theta + e) - gradient_at(theta - e)) / (2.0 * step[..., j, None])
     return 0.5 * (H + np.swapaxes(H, -1, -2))
 
 
@@ -412,9 +465,72 @@ def unbounded(n, s, family):
     return np.all((S == 0) | (S == N), -1)
 
 
+def distinct_clusters(n, s, ca=None):
+    """Each replicate's distinct clusters and how often each occurs: ``n, s, ca`` (R, D, C), ``m`` (R, D).
+
+    Two clusters with the same cells (observed count, outcome total and arm of each) add the
+    same term to the log-likelihood, its gradient and Hessian at every parameter value, so a
+    replicate's sums can run over its distinct clusters, each weighted by its count ``m``.
+    D is the largest number of distinct clusters in a replicate; a replicate with fewer is
+    padded with empty clusters of weight 0. Clusters without data are dropped.
+    """
+    R, G, C = n.shape
+    ca = _cell_arms(n) if ca is None else np.broadcast_to(ca, n.shape)
+    keys = np.concatenate([n, s, ca], -1).reshape(R * G, 3 * C)
+    rep = np.repeat(np.arange(R), G)
+    keep = n.reshape(R * G, C).sum(-1) > 0
+    keys, rep = keys[keep], rep[keep]
+    order = np.lexsort(tuple(keys[:, j] for j in range(3 * C - 1, -1, -1)) + (rep,))
+    keys, rep = keys[order], rep[order]
+    first = np.ones(rep.size, bool)
+    first[1:] = (rep[1:] != rep[:-1]) | np.any(keys[1:] != keys[:-1], -1)
+    group = np.cumsum(first) - 1                               # distinct cluster, numbered over the batch
+    start = np.full(R, 0)
+    heads = np.flatnonzero(first)
+    new_rep = heads[np.r_[True, rep[heads[1:]] != rep[heads[:-1]]]] if heads.size else heads
+    start[rep[new_rep]] = group[new_rep]
+    local = group - start[rep]                                 # its number within its replicate
+    D = int(local.max()) + 1 if local.size else 1
+    m = np.bincount(rep * D + local, minlength=R * D).reshape(R, D).astype(float)
+    out = np.zeros((3 * C, R, D))
+    out[:, rep[first], local[first]] = keys[first].T
+    nd, sd, cd = (np.moveaxis(out[j * C:(j + 1) * C], 0, -1) for j in range(3))
+    return nd, sd, cd, m
+
+
 # ---------------------------------------------------------------------------
 # the batch fit: Newton across replicates
 # ---------------------------------------------------------------------------
+def _ascent_step(H, g):
+    """Newton's ascent step ``(-H~)^-1 g`` (R, 3): ``H~`` is ``H`` with its eigenvalues made negative and
+    at least 1e-8 of the largest (or of 1) in size.
+
+    Where ``-H`` is positive definite (Sylvester's leading minors) with its smallest eigenvalue
+    provably above that floor (it is at least ``det / (trace / 2)^2``, the largest at most the
+    trace), ``H~ = H`` and the step is solved by the cofactors of the 3 x 3 matrix; elsewhere
+    by the eigendecomposition.
+    """
+    A = -H
+    a00, a01, a02, a11, a12, a22 = A[:, 0, 0], A[:, 0, 1], A[:, 0, 2], A[:, 1, 1], A[:, 1, 2], A[:, 2, 2]
+    with np.errstate(all="ignore"):
+        c00, c01, c02 = a11 * a22 - a12 * a12, a02 * a12 - a01 * a22, a01 * a12 - a02 * a11
+        c11, c12, c22 = a00 * a22 - a02 * a02, a01 * a02 - a00 * a12, a00 * a11 - a01 * a01
+        det = a00 * c00 + a01 * c01 + a02 * c02
+        tr = a00 + a11 + a22
+        fast = (a00 > 0) & (c22 > 0) & (det > 0) & (det >= 1e-8 * np.maximum(1.0, tr) * (0.5 * tr) ** 2)
+        fast &= np.isfinite(det) & np.isfinite(tr) & np.all(np.isfinite(g), -1)
+        g0, g1, g2 = g[:, 0], g[:, 1], g[:, 2]
+        step = np.stack([c00 * g0 + c01 * g1 + c02 * g2, c01 * g0 + c11 * g1 + c12 * g2,
+                         c02 * g0 + c12 * g1 + c22 * g2], -1) / det[:, None]
+    slow = np.flatnonzero(~fast)
+    if slow.size:
+        with np.errstate(all="ignore"):
+            lam, V = np.linalg.eigh(np.where(np.isfinite(H[slow]), H[slow], 0.0))
+        lam = np.maximum(np.abs(lam), 1e-8 * np.maximum(1.0, np.abs(lam).max(-1, keepdims=True)))
+        step[slow] = np.einsum("rij,rj->ri", V, np.einsum("rji,rj->ri", V, g[slow]) / lam)
+    return step
+
+
 def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
     """Maximum likelihood fit of every replicate of a cell table (R, G, C), vectorised.
 
@@ -428,9 +544,18 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
     """
     nodes = gauss_hermite(points)
     R = n.shape[0]
-    cells = (lambda sel: (n[sel], s[sel], None if ca is None else ca[sel]))
     theta = start_values(n, s, family, ca)
-    ll, g, v, H = loglik_cells(theta, n, s, family, nodes, ca=ca, hessian=True)
+    if glmm_backend() == "numba":
+        # each replicate's distinct clusters once, weighted by how often they occur
+        nd, sd, cd, md = distinct_clusters(n, s, ca)
+
+        def lik(th, sel, v0, **kw):
+            return loglik_cells_compiled(th, nd[sel], sd[sel], family, nodes, v0, ca=cd[sel], weights=md[sel], **kw)
+    else:
+        def lik(th, sel, v0, **kw):
+            return loglik_cells(th, n[sel], s[sel], family, nodes, v0, ca=None if ca is None else ca[sel], **kw)
+    everyone = slice(None)
+    ll, g, v, H = lik(theta, everyone, None, hessian=True)
     active = np.isfinite(ll) & np.all(np.isfinite(g), -1)
     iters = np.zeros(R, int)
     converged = np.zeros(R, bool)
@@ -438,10 +563,7 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        with np.errstate(all="ignore"):
-            lam, V = np.linalg.eigh(np.where(np.isfinite(H[idx]), H[idx], 0.0))
-        lam = np.maximum(np.abs(lam), 1e-8 * np.maximum(1.0, np.abs(lam).max(-1, keepdims=True)))
-        step = np.einsum("rij,rj->ri", V, np.einsum("rji,rj->ri", V, g[idx]) / lam)   # (-H~)^-1 g: ascent
+        step = _ascent_step(H[idx], g[idx])
         # converged: the next Newton step (about the distance to the optimum) is negligible
         small = np.all(np.abs(step) <= STEP_TOL * (1.0 + np.abs(theta[idx])), -1)
         converged[idx[small]] = True
@@ -450,11 +572,10 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
         if idx.size == 0:
             break
         th, vv, l0 = theta[idx], v[idx], ll[idx]
-        nn, ss, cc = cells(idx)
         iters[idx] += 1
         tol = 1e-12 * (1.0 + np.abs(l0))
         with np.errstate(all="ignore"):
-            l1, g1, v1, H1 = loglik_cells(th + step, nn, ss, family, nodes, vv, ca=cc, hessian=True)
+            l1, g1, v1, H1 = lik(th + step, idx, vv, hessian=True)
         ok = np.isfinite(l1) & (l1 >= l0 - tol) & np.all(np.isfinite(g1), -1)
         new_th = th + step
         t = np.ones(idx.size)
@@ -465,8 +586,7 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
             t[k] *= 0.5
             trial = th[k] + t[k, None] * step[k]
             with np.errstate(all="ignore"):
-                lt = loglik_cells(trial, nn[k], ss[k], family, nodes, vv[k], gradient=False,
-                                  ca=None if cc is None else cc[k])[0]
+                lt = lik(trial, idx[k], vv[k], gradient=False)[0]
             good = np.isfinite(lt) & (lt >= l0[k] - tol[k])
             new_th[k[good]] = trial[good]
             ok[k[good]] = True
@@ -474,14 +594,13 @@ def fit_cells(n, s, family: str, points: int, maxiter: int, ca=None):
         redo = np.flatnonzero(ok & (t < 1))
         if redo.size:
             with np.errstate(all="ignore"):
-                out = loglik_cells(new_th[redo], nn[redo], ss[redo], family, nodes, vv[redo],
-                                   ca=None if cc is None else cc[redo], hessian=True)
+                out = lik(new_th[redo], idx[redo], vv[redo], hessian=True)
             l1[redo], g1[redo], v1[redo], H1[redo] = out
         acc = idx[ok]
         theta[acc], ll[acc], g[acc], v[acc], H[acc] = new_th[ok], l1[ok], g1[ok], v1[ok], H1[ok]
         active[idx[~ok]] = False                                  # no step increases it: stop, unconverged
     with np.errstate(all="ignore"):
-        Hc = H if points > 1 else _hessian(theta, n, s, family, nodes, v, ca=ca)
+        Hc = H if points > 1 else _fd_hessian(theta, lambda th: lik(th, everyone, v)[1])
         cov = _inv(-Hc)
         lam = np.linalg.eigvalsh(np.where(np.isfinite(Hc), Hc, 0.0))
     nd = np.all(lam < 0, -1) & np.all(np.isfinite(Hc), (-1, -2))
@@ -670,14 +789,16 @@ class GLMM(Analysis):
     # -- batch --------------------------------------------------------------------------
     def _supports(self, layout) -> bool:
         arm = np.asarray(layout.arm)
-        if layout.present is not None:
+        if not np.all((arm == 0) | (arm == 1)):       # labels outside 0/1 matter only on present rows
+            if layout.present is None:
+                return False
             arm = np.broadcast_to(arm, layout.y.shape)[layout.present]
-        if not np.all((arm == 0) | (arm == 1)):
-            return False
-        y = layout.y[layout.observed]
-        if self.family == "binomial":
-            return bool(np.all((y == 0) | (y == 1)))
-        return bool(np.all((y >= 0) & (y == np.floor(y))))
+            if not np.all((arm == 0) | (arm == 1)):
+                return False
+        y = layout.y
+        with np.errstate(invalid="ignore"):
+            bad = ~((y == 0) | (y == 1)) if self.family == "binomial" else ~((y >= 0) & (y == np.floor(y)))
+        return not np.any(bad & layout.observed) if bad.any() else True
 
     def batch_cells(self, batch):
         """The cell table of a batch: ``n``, ``s``, ``ca`` (R, G, C) and ``sum log y!`` per replicate.
@@ -689,11 +810,23 @@ class GLMM(Analysis):
         codes, G = layout.codes
         R, N = layout.y.shape
         obs = layout.observed
-        arm = np.broadcast_to(np.asarray(layout.arm), (R, N)).astype(np.intp)
+        lf = log_factorial_total(layout.y, obs) if self.family == "poisson" else np.zeros(R)
+        arm = np.asarray(layout.arm)
+        if arm.ndim == 1 and codes.ndim == 1:
+            # arms and clusters shared by all replicates: a cluster-randomised trial is seen from them alone
+            lo, hi = np.full(G, 2), np.full(G, -1)
+            np.minimum.at(lo, codes, arm.astype(np.intp))
+            np.maximum.at(hi, codes, arm.astype(np.intp))
+            if np.all((lo == hi) | (lo > hi)):
+                idx = (codes + G * np.arange(R)[:, None])[obs]
+                n = np.bincount(idx, minlength=R * G).reshape(R, G).astype(float)
+                s = np.bincount(idx, weights=layout.y[obs], minlength=R * G).reshape(R, G)
+                ca = np.where(n > 0, np.maximum(hi, 0).astype(float), 0.0)
+                return n[..., None], s[..., None], ca[..., None], lf
+        arm = np.broadcast_to(arm, (R, N)).astype(np.intp)
         idx = (np.broadcast_to(codes, (R, N)) * 2 + arm + (2 * G) * np.arange(R)[:, None])[obs]
         n = np.bincount(idx, minlength=R * G * 2).reshape(R, G, 2).astype(float)
         s = np.bincount(idx, weights=layout.y[obs], minlength=R * G * 2).reshape(R, G, 2)
-        lf = log_factorial_total(layout.y, obs) if self.family == "poisson" else np.zeros(R)
         ca = None
         if np.all(layout.cluster_randomised):
             one = n[..., 1] > 0
