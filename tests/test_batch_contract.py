@@ -55,6 +55,7 @@ PROCESSES = {
     "binary_missing": lambda: sp.BinaryTwoArm(n=15, p0=0.3, odds_ratio=2.0, missing=sp.MCAR(rate=0.2)),
     "counts_small": lambda: sp.CountTwoArm(n=4, rate0=0.3, rate_ratio=1.5),
     "clusters": lambda: sp.ClusterTrial(clusters=5, cluster_size=4, icc=0.1, effect=0.5),
+    "clusters_variable": lambda: sp.ClusterTrial(clusters=5, cluster_size=4, cluster_size_cv=0.5, icc=0.1, effect=0.5),
     "clusters_variable_missing": lambda: sp.ClusterTrial(clusters=5, cluster_size=4, cluster_size_cv=0.5, icc=0.1,
                                                          effect=0.5, missing=sp.MCAR(rate=0.2)),
     "clusters_individual": lambda: sp.ClusterTrial(clusters=5, cluster_size=4, cluster_size_cv=0.4, icc=0.1,
@@ -350,7 +351,8 @@ CASES = [
     ({"type": "ols", "term": "C(arm)[T.2]"}, "three_arms_missing", True),
     ({"type": "ols", "cov_type": "cluster"}, "clusters_variable_missing", True),
     ({"type": "ols", "cov_type": "cluster", "use_t": False}, "clusters_variable_missing", True),
-    ({"type": "ols", "cov_type": "cluster"}, "clusters", False),  # complete data: per replicate, as before
+    ({"type": "ols", "cov_type": "cluster"}, "clusters", True),   # complete data too (shared cluster ids)
+    ({"type": "ols", "cov_type": "cluster", "use_t": False}, "clusters_variable", True),  # padding, no missing
     ({"type": "ols"}, "clusters_variable_missing", True),
     ({"type": "ols"}, "three_arms", True),                # any complete table with the formula's columns
     ({"type": "dunnett"}, "three_arms", True),            # arms in sorted blocks of the table layout

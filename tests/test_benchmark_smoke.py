@@ -10,6 +10,8 @@ import json
 import math
 from pathlib import Path
 
+import pytest
+
 SCRIPT = Path(__file__).resolve().parents[1] / "scripts" / "benchmark.py"
 
 
@@ -56,7 +58,12 @@ def test_missing_rows_run_and_agree_with_the_libraries(tmp_path):
     out = tmp_path / "bench.json"
     assert bench.main(["--quick", "--only", "m", "--repeats", "1", "--json", str(out)]) == 0
     rows = json.loads(out.read_text())["rows"]
-    assert [r["row"] for r in rows] == [f"m{i:02d}" for i in range(1, 15)]
+    # each analysis with 20% MCAR outcomes, then on the same process with complete data
+    assert [r["row"] for r in rows] == [f"m{i:02d}{c}" for i in range(1, 15) for c in ("", "c")]
     for r in rows:
         assert r["answers_agree"] is True, r
         assert math.isfinite(r["ratio"]) and r["ratio"] > 0
+        # the ceiling: the bare draw rate over the loop's rate, stated in the note
+        assert r["ceiling"] == pytest.approx(r["draw_per_s"] / r["reference_per_s"])
+        assert f"ceiling = draw {r['draw_per_s']:,.0f}/s" in r["note"]
+        assert r["bounded_by_draw"] == (r["ratio"] < r["target"] and r["ceiling"] < r["target"])
