@@ -358,7 +358,7 @@ CASES = [
     ({"type": "dunnett"}, "three_arms", True),            # arms in sorted blocks of the table layout
     ({"type": "dunnett", "alternative": "less"}, "three_arms", True),
     ({"type": "dunnett"}, "two_arm", True),               # one comparison with control
-    ({"type": "dunnett"}, "two_arm_missing", False),      # missing values: per replicate
+    ({"type": "dunnett"}, "two_arm_missing", True),       # missing values: complete cases in the batch
     ({"type": "anova_f"}, "three_arms", True),
     ({"type": "anova_f"}, "one_sample", False),           # no arms
     ({"type": "multiple", "tests": [{"type": "t_test"}, {"type": "welch_t"}]}, "two_arm", True),
