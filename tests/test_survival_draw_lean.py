@@ -12,7 +12,6 @@ remission data of Freireich et al. (1963), as in tests/test_logrank_batch.py.
 
 from __future__ import annotations
 
-import math
 
 import numpy as np
 import pytest
@@ -21,8 +20,10 @@ import simpower as sp
 from simpower.analyses import _survival_kernels as kern
 from simpower.analyses import survival as surv
 from simpower.processes import survival_rules
-from simpower.processes.survival_rules import censor_drawn, contiguous
+from simpower.processes.survival_rules import contiguous
 from simpower.registry import build
+
+from test_factories import _old_survival_two_arm
 
 needs_numba = pytest.mark.skipif(surv.logrank_backend() != "numba", reason="numba not importable")
 
@@ -40,24 +41,10 @@ SETTINGS = [  # every branch of the censoring step: accrual, follow-up, loss, ro
 
 
 def whole_array_draw(p, rng, size):
-    """The whole-array form of the draw (survival_two_arm's arithmetic before the in-place step)."""
-    n0, m = p.n, p.n + p.n1
-    e_event = rng.standard_exponential((size, m))
-    u_entry = rng.random((size, m))
-    e_loss = rng.standard_exponential((size, m))
-    e_event[:, n0:] /= p.hazard_ratio
-    t = e_event if p.shape == 1 else e_event ** (1.0 / p.shape)
-    t /= p.rate0
-    cens = np.full((size, m), math.inf)
-    if p.follow_up is not None:
-        cens = p.accrual + p.follow_up - p.accrual * u_entry
-    if p.loss_rate > 0:
-        np.minimum(cens, e_loss / p.loss_rate, out=cens)
-    event = (t <= cens).astype(np.int8)
-    time = np.minimum(t, cens)
-    if p.time_resolution is not None:
-        time = np.ceil(time / p.time_resolution) * p.time_resolution
-    return {"time": time, "event": event, "entry": p.accrual * u_entry}
+    """The whole-array form of the draw (survival_two_arm's arithmetic before the in-place step; the
+    reference kept in tests/test_factories.py)."""
+    time, event, entry = _old_survival_two_arm(p, rng, size)
+    return {"time": time, "event": event, "entry": entry}
 
 
 @pytest.mark.parametrize("cells", [1, 50, 333, 1 << 14])
